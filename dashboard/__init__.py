@@ -1,0 +1,1 @@
+"""whirlwatch web dashboard and JSON API (Flask application factory)."""

@@ -1,0 +1,1 @@
+"""Click sub-commands of ``whirlwatch``, one module each."""
