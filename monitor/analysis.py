@@ -7,70 +7,36 @@ dashboard all read this dataclass; extend it, don't break it.
 
 from __future__ import annotations
 
+import datetime as _dt
+import math
 from dataclasses import dataclass, field
 from typing import Any, Literal
 
 import numpy as np
 
+from monitor import spectrum as sp
+from monitor import units
+from monitor.orders import OrderAmplitude, normalise_orders, order_amplitudes
 from monitor.readings import Waveform
 from monitor.registry import Machine, Point
+from monitor.spectrum import Peak, Spectrum
+from monitor.speed import estimate_speed, speed_from_tach
 
+__all__ = [
+    "OrderAmplitude",
+    "Peak",
+    "ReadingAnalysis",
+    "Spectrum",
+    "analyse_waveform",
+    "analysis_to_json",
+    "severity_band_hz",
+]
 
-@dataclass(frozen=True, eq=False)
-class Spectrum:
-    """A one-sided amplitude spectrum.
-
-    Attributes
-    ----------
-    freq_hz : numpy.ndarray
-        Bin frequencies, Hz.
-    amplitude : numpy.ndarray
-        Amplitude per bin in ``unit``; a sinusoid on a bin centre reads its amplitude
-        (``scaling='peak'``) or its RMS (``scaling='rms'``).
-    unit : str
-        Amplitude unit (``m/s^2``, ``g``, ``mm/s``, ``in/s``, ``um``, ``mil``).
-    scaling : {'peak', 'rms'}
-    resolution_hz : float
-        Bin spacing, Hz.
-    enbw_hz : float
-        Equivalent noise bandwidth of the window, Hz (needed to turn the amplitude
-        spectrum into band RMS values).
-    averages : int
-        Number of Welch segments averaged.
-    """
-
-    freq_hz: np.ndarray
-    amplitude: np.ndarray
-    unit: str
-    scaling: Literal["peak", "rms"]
-    resolution_hz: float
-    enbw_hz: float
-    averages: int = 1
-
-
-@dataclass(frozen=True)
-class Peak:
-    """A spectral peak: frequency (Hz) and amplitude (peak, in the spectrum's unit),
-    both interpolated between bins."""
-
-    hz: float
-    amplitude: float
-
-
-@dataclass(frozen=True)
-class OrderAmplitude:
-    """Amplitude at one order of running speed.
-
-    ``order`` (1.0 = 1x), ``frequency_hz`` = order x running speed (Hz), ``amplitude``
-    peak in the point's unit, ``velocity_mm_s`` peak velocity (mm/s) at that order,
-    ``phase_deg`` relative to the once-per-revolution reference when there is one.
-    """
-
-    order: float
-    frequency_hz: float
-    amplitude: float
-    velocity_mm_s: float
-    phase_deg: float | None = None
+#: ISO 20816 broadband velocity band, Hz; 2-1000 Hz for machines that can run below
+#: 600 r/min (ISO 10816-3:2009 / ISO 20816-3, section on measurement; from memory).
+ISO_BAND_HZ = (10.0, 1000.0)
+ISO_BAND_SLOW_HZ = (2.0, 1000.0)
+SLOW_MACHINE_RPM = 600.0
 
 
 @dataclass(frozen=True, eq=False)
@@ -128,6 +94,168 @@ class ReadingAnalysis:
         return None
 
 
-def analyse_waveform(waveform: Waveform, machine: Machine, point: Point) -> ReadingAnalysis:
-    """Analyse one waveform of ``point`` on ``machine``; see :class:`ReadingAnalysis`."""
-    raise NotImplementedError("filled in by the analysis core")
+def severity_band_hz(machine: Machine) -> tuple[float, float]:
+    """ISO 20816 velocity band (Hz) for ``machine``: 10-1000 Hz, or 2-1000 Hz when its
+    minimum speed is below 600 r/min (ISO 10816-3:2009 / ISO 20816-3; from memory)."""
+    return ISO_BAND_SLOW_HZ if machine.speed_range_rpm[0] < SLOW_MACHINE_RPM else ISO_BAND_HZ
+
+
+def _excitation_orders(machine: Machine) -> tuple[float, ...]:
+    return normalise_orders((1.0, 2.0, *machine.excitation_orders))
+
+
+def analyse_waveform(
+    waveform: Waveform,
+    machine: Machine,
+    point: Point,
+    *,
+    once_per_rev_s: np.ndarray | None = None,
+    band_hz: tuple[float, float] | None = None,
+    peak_count: int = 10,
+    harmonics: int = 8,
+) -> ReadingAnalysis:
+    """Analyse one waveform of ``point`` on ``machine``; see :class:`ReadingAnalysis`.
+
+    Parameters
+    ----------
+    waveform : Waveform
+        Samples in a unit of the point's quantity (converted to the point's unit).
+    machine, point : Machine, Point
+        Registry entries: speed range, excitation orders, sensor quantity and unit.
+    once_per_rev_s : array_like, optional
+        Once-per-revolution pulse times, seconds from the waveform's first sample. Give
+        the speed (when the waveform carries none) and the phase reference of the orders.
+    band_hz : (float, float), optional
+        Overall velocity band, Hz; default :func:`severity_band_hz` (ISO 20816).
+    peak_count : int
+        Number of spectral peaks to report.
+    harmonics : int
+        Harmonics of running speed used to estimate the speed.
+
+    Returns
+    -------
+    ReadingAnalysis
+        Speed in Hz, overall velocity in mm/s RMS, orders in the point's unit (peak) and
+        mm/s (peak), peaks in the point's unit (peak).
+
+    Raises
+    ------
+    ValueError
+        Bad samples, sample rate or unit, a unit of another quantity than the point's, or
+        a speed range that excludes every bin.
+
+    References
+    ----------
+    Hann window and ENBW (Harris 1978); band RMS by Parseval; ISO 20816 velocity band
+    (from memory); speed estimation and CRLB (Kay 1993, from memory).
+    """
+    unit = waveform.unit
+    if unit not in units.UNITS:
+        raise ValueError(
+            f"waveform unit {unit!r} is not a known unit; allowed: {', '.join(units.UNITS)}."
+        )
+    if units.quantity_of(unit) != point.quantity:
+        raise ValueError(
+            f"waveform unit {unit!r} measures {units.quantity_of(unit)} but point "
+            f"{point.id!r} measures {point.quantity}."
+        )
+    fs = sp._check_fs(waveform.fs_hz)
+    x = sp._check_samples(waveform.samples, "waveform samples")
+    if unit != point.unit:
+        x = x * (units.to_base_factor(unit) / units.to_base_factor(point.unit))
+        unit = point.unit
+    lo, hi = band_hz if band_hz is not None else severity_band_hz(machine)
+    lo = sp._freq_arg(lo, "band_hz low edge")
+    hi = sp._freq_arg(hi, "band_hz high edge")
+    if hi < lo:
+        raise ValueError(f"band_hz must run from low to high, got {band_hz!r}.")
+
+    record = sp.Record(x, fs)
+    spec = sp.amplitude_spectrum(x, fs, unit)
+    vel = sp.to_velocity(spec, f_low_hz=lo)
+    overall = sp.band_rms(vel, lo, min(hi, float(vel.freq_hz[-1])))
+
+    tach = speed_from_tach(once_per_rev_s) if once_per_rev_s is not None else None
+    if waveform.speed_hz is not None:
+        speed = sp._freq_arg(waveform.speed_hz, "waveform speed_hz", positive=True)
+        source: Literal["measured", "estimated"] = "measured"
+        uncertainty = 0.0
+    elif tach is not None:
+        speed, source, uncertainty = tach.speed_hz, "measured", tach.uncertainty_hz
+    else:
+        # velocity shows 1x above the high-frequency content that dominates acceleration
+        est = estimate_speed(
+            vel, machine.speed_range_hz, harmonics=harmonics, samples=record
+        )
+        speed, source, uncertainty = est.speed_hz, "estimated", est.uncertainty_hz
+
+    orders = order_amplitudes(
+        record,
+        fs,
+        unit,
+        speed,
+        _excitation_orders(machine),
+        reference_s=tach.reference_s if tach is not None else None,
+    )
+    one_x = next((o for o in orders if abs(o.order - 1.0) < 1e-9), None)
+    one_x_norm = one_x.velocity_mm_s / speed**2 if one_x is not None else math.nan
+    # skip the DC bin and the one next to it, where the removed mean and drift leak
+    peaks = sp.find_peaks(spec, count=peak_count, min_hz=2.0 * spec.resolution_hz)
+    return ReadingAnalysis(
+        machine=waveform.machine,
+        point=waveform.point,
+        ts=float(waveform.ts),
+        speed_hz=float(speed),
+        speed_source=source,
+        speed_uncertainty_hz=float(uncertainty),
+        overall_velocity_mm_s_rms=overall,
+        orders=orders,
+        one_x_normalised=float(one_x_norm),
+        peaks=peaks,
+        spectrum=spec,
+        velocity_spectrum=vel,
+        reading_id=waveform.reading_id,
+        extra={"unit": unit, "band_hz": (lo, hi)},
+    )
+
+
+def _iso_utc(ts: float) -> str:
+    t = _dt.datetime.fromtimestamp(ts, tz=_dt.UTC)
+    return t.isoformat(timespec="milliseconds").replace("+00:00", "Z")
+
+
+def _order_key(order: float) -> str:
+    return f"{order:g}"
+
+
+def _finite_or_none(v: float) -> float | None:
+    return v if math.isfinite(v) else None
+
+
+def analysis_to_json(a: ReadingAnalysis) -> dict[str, Any]:
+    """JSON-ready dict of an analysis (the ``analyse --json`` record of DESIGN.md section 3).
+
+    Keys: machine, point, ts (ISO 8601 UTC), speed_hz, speed_source,
+    speed_uncertainty_hz, overall_velocity_mm_s_rms, orders (order as a string such as
+    "1" or "9" -> amplitude in the point's unit, peak), peaks (list of {"hz",
+    "amplitude"}), reading_id; plus unit, one_x_normalised and order_velocity_mm_s
+    (order -> mm/s peak) and order_phase_deg (when a reference existed).
+    """
+    out: dict[str, Any] = {
+        "machine": a.machine,
+        "point": a.point,
+        "ts": _iso_utc(a.ts),
+        "speed_hz": a.speed_hz,
+        "speed_source": a.speed_source,
+        "speed_uncertainty_hz": a.speed_uncertainty_hz,
+        "overall_velocity_mm_s_rms": a.overall_velocity_mm_s_rms,
+        "orders": {_order_key(o.order): o.amplitude for o in a.orders},
+        "peaks": [{"hz": p.hz, "amplitude": p.amplitude} for p in a.peaks],
+        "reading_id": a.reading_id,
+        "unit": a.spectrum.unit,
+        "one_x_normalised": _finite_or_none(a.one_x_normalised),
+        "order_velocity_mm_s": {_order_key(o.order): o.velocity_mm_s for o in a.orders},
+    }
+    if any(o.phase_deg is not None for o in a.orders):
+        out["order_phase_deg"] = {_order_key(o.order): o.phase_deg for o in a.orders}
+    return out

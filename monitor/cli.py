@@ -36,6 +36,11 @@ def _attach() -> None:
 _COMMANDS: list[tuple[str, str]] = [
     ("monitor.commands.simulate", "simulate"),
     ("monitor.commands.analyse", "analyse"),
+    ("monitor.commands.db", "db"),
+    ("monitor.commands.machines", "machines"),
+    ("monitor.commands.users", "user"),
+    ("monitor.commands.users", "token"),
+    ("monitor.commands.dashboard", "dashboard"),
 ]
 
 _attach()

@@ -1,0 +1,149 @@
+"""Alarms page: filter, acknowledge with a comment, CSV export."""
+
+from __future__ import annotations
+
+import csv
+import datetime as dt
+import io
+import json
+from collections.abc import Mapping
+
+from flask import Blueprint, Response, flash, redirect, render_template, request, url_for
+
+from dashboard import queries
+from dashboard.db import db_session
+from dashboard.errors import BadRequest, Conflict, NotFound
+from dashboard.security import current, require
+from monitor.alarms import KINDS, SEVERITIES
+from monitor.store.models import Alarm
+
+bp = Blueprint("alarms", __name__, url_prefix="/alarms")
+
+STATES = ("open", "active", "acknowledged", "cleared")
+MAX_LIMIT = 500
+CSV_MAX_ROWS = 100_000
+
+
+def parse_time(value: str | None, name: str) -> dt.datetime | None:
+    """ISO 8601 (date or date-time; naive means UTC) or epoch seconds."""
+    if not value:
+        return None
+    try:
+        t = dt.datetime.fromtimestamp(float(value), dt.UTC)
+    except ValueError:
+        try:
+            t = dt.datetime.fromisoformat(value.replace("Z", "+00:00"))
+        except ValueError:
+            raise BadRequest(f"Parameter '{name}' must be ISO 8601 or epoch seconds, got {value!r}.") from None
+    except (OverflowError, OSError):
+        raise BadRequest(f"Parameter '{name}' is out of range: {value!r}.") from None
+    return t if t.tzinfo else t.replace(tzinfo=dt.UTC)
+
+
+def parse_filters(args: Mapping[str, str]) -> dict:
+    """The alarm filters shared by the page, the CSV export and the API."""
+    f: dict = {}
+    for key, allowed in (("state", STATES), ("kind", KINDS), ("severity", SEVERITIES)):
+        v = args.get(key) or None
+        if v is not None and v not in allowed:
+            raise BadRequest(f"Parameter '{key}' must be one of {', '.join(allowed)}, got {v!r}.")
+        f[key] = v
+    f["machine"] = args.get("machine") or None
+    f["point"] = args.get("point") or None
+    f["since"] = parse_time(args.get("from"), "from")
+    f["until"] = parse_time(args.get("to"), "to")
+    return f
+
+
+def parse_page(args: Mapping[str, str], default: int = 50) -> tuple[int, int | None]:
+    try:
+        limit = int(args.get("limit", default))
+    except ValueError:
+        raise BadRequest(f"Parameter 'limit' must be an integer 1-{MAX_LIMIT}, got {args.get('limit')!r}.") from None
+    if not 1 <= limit <= MAX_LIMIT:
+        raise BadRequest(f"Parameter 'limit' must be an integer 1-{MAX_LIMIT}, got {limit}.")
+    cursor = args.get("cursor")
+    if cursor in (None, ""):
+        return limit, None
+    try:
+        return limit, int(cursor)
+    except ValueError:
+        raise BadRequest(f"Parameter 'cursor' must be the 'next' value of a previous page, got {cursor!r}.") from None
+
+
+def do_acknowledge(alarm_id: int, comment: str) -> Alarm:
+    s = db_session()
+    a = s.get(Alarm, alarm_id)
+    if a is None:
+        raise NotFound(f"No alarm with id {alarm_id}.")
+    if a.state != "active":
+        raise Conflict(f"Alarm {alarm_id} is {a.state}; only an active alarm can be acknowledged.")
+    if len(comment) > 2000:
+        raise BadRequest("The comment must be at most 2000 characters.")
+    return queries.acknowledge(s, a, current().username, comment)
+
+
+@bp.get("/")
+@require("viewer")
+def index():
+    f = parse_filters(request.args)
+    limit, cursor = parse_page(request.args)
+    rows, nxt = queries.find_alarms(db_session(), **f, before_id=cursor, limit=limit)
+    args = {k: v for k, v in request.args.items() if k != "cursor" and v}
+    machines = [(m["id"], m["name"]) for m in queries.machine_list(db_session())]
+    return render_template(
+        "alarms/index.html", alarms=[queries.alarm_json(a) for a in rows], next_cursor=nxt,
+        args=args, states=STATES, kinds=KINDS, severities=SEVERITIES, machines=machines,
+        csv_url=url_for("alarms.export_csv", **args),
+        next_url=url_for("alarms.index", **args, cursor=nxt) if nxt else None,
+    )
+
+
+@bp.post("/<int:alarm_id>/acknowledge")
+@require("engineer")
+def acknowledge(alarm_id: int):
+    a = do_acknowledge(alarm_id, request.form.get("comment", "").strip())
+    flash(f"Alarm {a.id} acknowledged.", "ok")
+    back = request.form.get("back", "")
+    return redirect(back if back.startswith("/alarms") else url_for("alarms.index"))
+
+
+CSV_COLUMNS = ("id", "machine", "point", "kind", "subject", "severity", "state", "raised_at",
+               "cleared_at", "acknowledged_by", "acknowledged_at", "ack_comment", "evidence")
+
+
+def _csv_cell(v) -> str:
+    if isinstance(v, dict | list):
+        v = json.dumps(v, separators=(",", ":"))
+    text = "" if v is None else str(v)
+    # A cell starting with = + - @ would run as a formula in a spreadsheet.
+    return "'" + text if text[:1] in ("=", "+", "-", "@") else text
+
+
+@bp.get("/export.csv")
+@require("viewer")
+def export_csv():
+    f = parse_filters(request.args)
+
+    def rows():
+        buf = io.StringIO()
+        w = csv.writer(buf)
+        w.writerow(CSV_COLUMNS)
+        cursor, sent = None, 0
+        s = db_session()
+        while sent < CSV_MAX_ROWS:
+            page, cursor = queries.find_alarms(s, **f, before_id=cursor, limit=MAX_LIMIT)
+            for a in page:
+                d = queries.alarm_json(a)
+                w.writerow([_csv_cell(d[c]) for c in CSV_COLUMNS])
+            sent += len(page)
+            yield buf.getvalue()
+            buf.seek(0)
+            buf.truncate()
+            if cursor is None:
+                break
+
+    from flask import stream_with_context
+
+    return Response(stream_with_context(rows()), mimetype="text/csv",
+                    headers={"Content-Disposition": 'attachment; filename="whirlwatch-alarms.csv"'})

@@ -1,0 +1,190 @@
+"""JSON API under /api/v1 (described by dashboard/openapi.json, served at /api/v1/openapi.json).
+
+Reads need a session or an API token; writes need the engineer role. Lists come as
+``{"items": [...], "next": ...}``; errors in the fixed shape of :mod:`dashboard.errors`.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+from pathlib import Path
+
+from flask import Blueprint, Response, jsonify, request
+from sqlalchemy import select
+
+from dashboard import queries
+from dashboard.alarms import do_acknowledge, parse_filters, parse_page, parse_time
+from dashboard.db import db_session
+from dashboard.errors import BadRequest, Conflict, NotFound
+from dashboard.security import current, require
+from monitor.registry import RegistryError, parse_mode
+from monitor.store.models import Alarm, Machine, Mode, SpectrumSnapshot
+
+bp = Blueprint("api", __name__, url_prefix="/api/v1")
+
+OPENAPI_PATH = Path(__file__).with_name("openapi.json")
+MAX_TREND_POINTS = 5000
+DEFAULT_TREND_POINTS = 500
+DEFAULT_TREND_SPAN = dt.timedelta(days=7)
+
+
+def _machine_or_404(machine_id: str) -> Machine:
+    m = queries.get_machine(db_session(), machine_id)
+    if m is None:
+        raise NotFound(f"No machine with id {machine_id!r}.")
+    return m
+
+
+def _body() -> dict:
+    data = request.get_json(silent=True)
+    if not isinstance(data, dict):
+        raise BadRequest("The request body must be a JSON object (Content-Type: application/json).")
+    return data
+
+
+@bp.get("/openapi.json")
+def openapi():
+    # Public like any API description; it holds no plant data.
+    return Response(OPENAPI_PATH.read_bytes(), mimetype="application/json")
+
+
+@bp.get("/machines")
+@require("viewer")
+def machines():
+    return jsonify({"items": queries.machine_summaries(db_session()), "next": None})
+
+
+@bp.get("/machines/<machine_id>")
+@require("viewer")
+def machine(machine_id: str):
+    return jsonify(queries.machine_detail(db_session(), _machine_or_404(machine_id)))
+
+
+@bp.get("/machines/<machine_id>/trends")
+@require("viewer")
+def machine_trends(machine_id: str):
+    m = _machine_or_404(machine_id)
+    now = dt.datetime.now(dt.UTC)
+    t1 = parse_time(request.args.get("to"), "to") or now
+    t0 = parse_time(request.args.get("from"), "from") or (t1 - DEFAULT_TREND_SPAN)
+    if t0 >= t1:
+        raise BadRequest(f"Parameter 'from' ({t0.isoformat()}) must lie before 'to' ({t1.isoformat()}).")
+    try:
+        n = int(request.args.get("max_points", DEFAULT_TREND_POINTS))
+    except ValueError:
+        raise BadRequest(f"Parameter 'max_points' must be an integer 2-{MAX_TREND_POINTS}.") from None
+    if not 2 <= n <= MAX_TREND_POINTS:
+        raise BadRequest(f"Parameter 'max_points' must be an integer 2-{MAX_TREND_POINTS}, got {n}.")
+    known = [p.id for p in m.points if p.active]
+    wanted = request.args.getlist("point") or known
+    unknown = [p for p in wanted if p not in known]
+    if unknown:
+        raise NotFound(f"Machine {m.id!r} has no measurement point {unknown[0]!r}.")
+    return jsonify({
+        "machine": m.id, "from": queries.iso(t0), "to": queries.iso(t1), "max_points": n,
+        "points": queries.trends(db_session(), m, wanted, t0, t1, n),
+    })
+
+
+@bp.get("/machines/<machine_id>/modes")
+@require("viewer")
+def machine_modes(machine_id: str):
+    m = _machine_or_404(machine_id)
+    s = db_session()
+    modes = s.scalars(select(Mode).where(Mode.machine_id == m.id).order_by(Mode.position, Mode.id)).all()
+    return jsonify({"items": [queries.mode_json(x) for x in modes], "next": None,
+                    "history": queries.mode_history(s, m.id)})
+
+
+def _parse_mode_body(m: Machine, data: dict, base: Mode | None):
+    raw = dict(base.values()) if base is not None else {}
+    allowed = ("name", "frequency_hz", "damping_ratio", "amplification_factor",
+               "required_margin_pct", "source", "date")
+    extra = sorted(set(data) - set(allowed))
+    if extra:
+        raise BadRequest(f"Unknown field {extra[0]!r}; allowed: {', '.join(allowed)}.")
+    raw.update(data)
+    # Damping ratio and amplification factor are alternatives: a new one replaces the old.
+    for given, other in (("damping_ratio", "amplification_factor"), ("amplification_factor", "damping_ratio")):
+        if data.get(given) not in (None, "") and other not in data:
+            raw.pop(other, None)
+    raw = {k: v for k, v in raw.items() if v is not None and v != ""}
+    try:
+        return parse_mode(raw, m.id)
+    except RegistryError as exc:
+        raise BadRequest(str(exc)) from None
+
+
+def _name_clash(m: Machine, name: str, except_id: int | None) -> None:
+    other = db_session().scalar(select(Mode).where(Mode.machine_id == m.id, Mode.name == name))
+    if other is not None and other.id != except_id:
+        raise Conflict(f"Machine {m.id!r} already has a mode named {name!r}.")
+
+
+@bp.post("/machines/<machine_id>/modes")
+@require("engineer")
+def create_mode(machine_id: str):
+    m = _machine_or_404(machine_id)
+    values = _parse_mode_body(m, _body(), None)
+    _name_clash(m, values.name, None)
+    mode = queries.save_mode(db_session(), m, values, current().username, None)
+    return jsonify(queries.mode_json(mode)), 201
+
+
+@bp.put("/machines/<machine_id>/modes/<int:mode_id>")
+@require("engineer")
+def update_mode(machine_id: str, mode_id: int):
+    m = _machine_or_404(machine_id)
+    mode = db_session().get(Mode, mode_id)
+    if mode is None or mode.machine_id != m.id:
+        raise NotFound(f"Machine {m.id!r} has no mode with id {mode_id}.")
+    values = _parse_mode_body(m, _body(), mode)
+    _name_clash(m, values.name, mode.id)
+    mode = queries.save_mode(db_session(), m, values, current().username, mode)
+    return jsonify(queries.mode_json(mode))
+
+
+@bp.get("/alarms")
+@require("viewer")
+def alarms():
+    f = parse_filters(request.args)
+    limit, cursor = parse_page(request.args)
+    rows, nxt = queries.find_alarms(db_session(), **f, before_id=cursor, limit=limit)
+    return jsonify({"items": [queries.alarm_json(a) for a in rows],
+                    "next": None if nxt is None else str(nxt)})
+
+
+@bp.get("/alarms/<int:alarm_id>")
+@require("viewer")
+def alarm(alarm_id: int):
+    a = db_session().get(Alarm, alarm_id)
+    if a is None:
+        raise NotFound(f"No alarm with id {alarm_id}.")
+    return jsonify(queries.alarm_json(a, with_transitions=True))
+
+
+@bp.post("/alarms/<int:alarm_id>/acknowledge")
+@require("engineer")
+def acknowledge(alarm_id: int):
+    data = request.get_json(silent=True) if request.data else {}
+    if not isinstance(data, dict):
+        raise BadRequest("The request body must be a JSON object such as {\"comment\": \"...\"}.")
+    comment = data.get("comment", "")
+    if not isinstance(comment, str):
+        raise BadRequest("Field 'comment' must be a string.")
+    a = do_acknowledge(alarm_id, comment.strip())
+    return jsonify(queries.alarm_json(a))
+
+
+@bp.get("/spectra/<int:spectrum_id>")
+@require("viewer")
+def spectrum(spectrum_id: int):
+    sn = db_session().get(SpectrumSnapshot, spectrum_id)
+    if sn is None:
+        raise NotFound(f"No stored spectrum with id {spectrum_id}.")
+    return jsonify(queries.spectrum_json(sn))
+
+
+def openapi_document() -> dict:
+    return json.loads(OPENAPI_PATH.read_text())

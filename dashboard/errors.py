@@ -1,0 +1,115 @@
+"""Errors the dashboard raises, and the one handler that renders them.
+
+Exception tree::
+
+    DashboardError (status 500)
+     +-- BadRequest          400  a parameter or body is malformed
+     +-- Unauthorised        401  no session and no valid API token
+     +-- Forbidden           403  signed in, but the role does not allow it
+     +-- NotFound            404  no such machine, alarm, mode, user or token
+     +-- Conflict            409  the change clashes with the stored state
+     +-- TooManyAttempts     429  login attempts rate-limited
+
+Requests under ``/api/`` get JSON in one fixed shape::
+
+    {"error": {"status": 404, "code": "not_found", "message": "..."}}
+
+every other request gets the HTML error page. Werkzeug's own HTTP errors (unknown URL,
+wrong method, CSRF failure) go through the same handler, so the shape never varies.
+"""
+
+from __future__ import annotations
+
+from flask import Flask, jsonify, render_template, request
+from flask_wtf.csrf import CSRFError
+from werkzeug.exceptions import HTTPException
+
+
+class DashboardError(Exception):
+    """Base class: carries the HTTP status and a short machine-readable code."""
+
+    status = 500
+    code = "internal_error"
+
+    def __init__(self, message: str) -> None:
+        super().__init__(message)
+        self.message = message
+
+
+class BadRequest(DashboardError):
+    status = 400
+    code = "bad_request"
+
+
+class Unauthorised(DashboardError):
+    status = 401
+    code = "unauthorised"
+
+
+class Forbidden(DashboardError):
+    status = 403
+    code = "forbidden"
+
+
+class NotFound(DashboardError):
+    status = 404
+    code = "not_found"
+
+
+class Conflict(DashboardError):
+    status = 409
+    code = "conflict"
+
+
+class TooManyAttempts(DashboardError):
+    status = 429
+    code = "too_many_attempts"
+
+
+_HTTP_CODES = {
+    400: "bad_request",
+    401: "unauthorised",
+    403: "forbidden",
+    404: "not_found",
+    405: "method_not_allowed",
+    409: "conflict",
+    413: "too_large",
+    429: "too_many_attempts",
+}
+
+
+def error_body(status: int, code: str, message: str) -> dict:
+    """The fixed JSON error shape used by every ``/api/`` response."""
+    return {"error": {"status": status, "code": code, "message": message}}
+
+
+def _render(status: int, code: str, message: str):
+    if request.path.startswith("/api/"):
+        resp = jsonify(error_body(status, code, message))
+        resp.status_code = status
+        if status == 401:
+            resp.headers["WWW-Authenticate"] = 'Bearer realm="whirlwatch"'
+        return resp
+    return render_template("error.html", status=status, message=message), status
+
+
+def register(app: Flask) -> None:
+    """Attach the single error handler to ``app``."""
+
+    @app.errorhandler(DashboardError)
+    def _dashboard_error(exc: DashboardError):
+        return _render(exc.status, exc.code, exc.message)
+
+    @app.errorhandler(CSRFError)
+    def _csrf_error(exc: CSRFError):
+        return _render(400, "csrf_failed", f"The request was refused: {exc.description}")
+
+    @app.errorhandler(HTTPException)
+    def _http_error(exc: HTTPException):
+        status = exc.code or 500
+        return _render(status, _HTTP_CODES.get(status, "http_error"), exc.description or "")
+
+    @app.errorhandler(Exception)
+    def _unexpected(exc: Exception):
+        app.logger.exception("unhandled error on %s", request.path)
+        return _render(500, "internal_error", "The server hit an unexpected error.")

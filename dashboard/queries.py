@@ -1,0 +1,490 @@
+"""Reads and writes the dashboard needs, on the store's models.
+
+Every page-level read here issues a fixed number of SQL statements whatever the number
+of machines or stored readings: rows for all machines are fetched in one statement per
+table, the latest reading per point by an indexed correlated lookup, and trends are
+decimated in numpy from the indexed (machine, point, ts) range before the heavy JSON
+columns are fetched for the kept rows only.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import hashlib
+import secrets
+from collections import defaultdict
+from collections.abc import Iterable
+from typing import Any
+
+import numpy as np
+from sqlalchemy import and_, func, select
+from sqlalchemy.orm import Session, aliased
+
+from monitor import registry as reg
+from monitor.alarms import severity_rank
+from monitor.margins import margin_table
+from monitor.store.models import (
+    Alarm,
+    ApiToken,
+    Machine,
+    Measurement,
+    MeasurementPoint,
+    Mode,
+    ModeHistory,
+    SpectrumSnapshot,
+    User,
+    utcnow,
+)
+from monitor.store.registry_sync import record_mode_change
+from monitor.zones import zone_limits
+
+OPEN_STATES = ("active", "acknowledged")
+ZONE_ORDER = {"A": 1, "B": 2, "C": 3, "D": 4}
+#: Spectra longer than this are thinned (peak per bucket) before they go to the browser.
+MAX_SPECTRUM_BINS = 8192
+
+
+def iso(t: dt.datetime | None) -> str | None:
+    return None if t is None else t.astimezone(dt.UTC).isoformat().replace("+00:00", "Z")
+
+
+# ----------------------------------------------------------------------------- people
+
+
+def user_by_id(s: Session, uid: int) -> User | None:
+    u = s.get(User, uid)
+    return None if u is None or u.disabled else u
+
+
+def user_by_name(s: Session, name: str) -> User | None:
+    u = s.scalar(select(User).where(User.name == name))
+    return None if u is None or u.disabled else u
+
+
+def token_hash(token: str) -> str:
+    """sha256 hex digest of the token text: what ``api_tokens.token_hash`` stores."""
+    return hashlib.sha256(token.encode("utf-8")).hexdigest()
+
+
+def user_for_token(s: Session, token: str) -> User | None:
+    row = s.execute(
+        select(ApiToken, User)
+        .join(User, User.id == ApiToken.user_id)
+        .where(ApiToken.token_hash == token_hash(token), ApiToken.revoked_at.is_(None))
+    ).first()
+    if row is None or row.User.disabled:
+        return None
+    tok = row.ApiToken
+    now = utcnow()
+    # Record use coarsely: one write per token per ten minutes, not one per request.
+    if tok.last_used_at is None or now - tok.last_used_at > dt.timedelta(minutes=10):
+        tok.last_used_at = now
+        s.commit()
+    return row.User
+
+
+def create_token(s: Session, user_id: int, label: str) -> str:
+    """Store a new token's hash and return the token text (shown once)."""
+    text = "ww_" + secrets.token_urlsafe(32)
+    s.add(ApiToken(token_hash=token_hash(text), user_id=user_id, label=label))
+    s.commit()
+    return text
+
+
+def list_tokens(s: Session) -> list[dict]:
+    rows = s.execute(select(ApiToken, User.name).join(User).order_by(ApiToken.id.desc())).all()
+    return [
+        {"id": t.id, "username": n, "label": t.label, "created_at": t.created_at,
+         "last_used_at": t.last_used_at, "revoked_at": t.revoked_at}
+        for t, n in rows
+    ]
+
+
+# ----------------------------------------------------------------------------- registry
+
+
+def _to_registry(m: Machine, modes: Iterable[Mode]) -> reg.Machine:
+    return reg.Machine(
+        id=m.id, name=m.name, location=m.location, machine_class=m.machine_class,
+        speed_range_rpm=(m.speed_min_rpm, m.speed_max_rpm),
+        excitation_orders=tuple(float(o) for o in (m.excitation_orders or ())),
+        line_frequency_hz=m.line_frequency_hz,
+        modes=tuple(
+            reg.Mode(name=x.name, frequency_hz=x.frequency_hz, damping_ratio=x.damping_ratio,
+                     amplification_factor=x.amplification_factor,
+                     required_margin_pct=x.required_margin_pct, source=x.source, date=x.date)
+            for x in modes
+        ),
+        limits_mm_s=tuple(m.limits_mm_s) if m.limits_mm_s else None,
+        settings=m.settings or {},
+    )
+
+
+def margins_for(m: Machine, modes: list[Mode], speed_hz: float | None) -> list[dict]:
+    if speed_hz is None or not modes:
+        return []
+    default = (m.settings or {}).get("required_margin_pct")
+    return [r.to_json() for r in margin_table(_to_registry(m, modes), speed_hz, machine_default_pct=default)]
+
+
+def _latest_per_point(s: Session, machine_ids: list[str] | None):
+    """The newest measurement of every (active) point: one statement, one indexed
+    lookup per point through the (machine_id, point_id, ts) unique index."""
+    inner = aliased(Measurement)
+    newest_id = (
+        select(inner.id)
+        .where(inner.machine_id == MeasurementPoint.machine_id, inner.point_id == MeasurementPoint.id)
+        .order_by(inner.ts.desc())
+        .limit(1)
+        .correlate(MeasurementPoint)
+        .scalar_subquery()
+    )
+    q = (
+        select(Measurement)
+        .join(MeasurementPoint, and_(Measurement.id == newest_id))
+        .where(MeasurementPoint.active.is_(True))
+    )
+    if machine_ids is not None:
+        q = q.where(MeasurementPoint.machine_id.in_(machine_ids))
+    return s.scalars(q).all()
+
+
+def _machine_state(n_open: int, latest: dt.datetime | None) -> str:
+    if n_open:
+        return "alarm"
+    return "no_data" if latest is None else "normal"
+
+
+def _nearest(margins: list[dict]) -> dict | None:
+    # The row closest to (or furthest inside) its required margin.
+    rows = [r for r in margins if r["required_pct"] > 0] or margins
+    if not rows:
+        return None
+    r = min(rows, key=lambda r: r["margin_pct"] - r["required_pct"])
+    return {"mode": r["mode"], "mode_hz": r["mode_hz"], "order": r["excitation"].rstrip("x") if r["order"] is not None else r["excitation"],
+            "excitation": r["excitation"], "excitation_hz": r["excitation_hz"],
+            "margin_pct": r["margin_pct"], "required_pct": r["required_pct"],
+            "within_required": r["status"] == "inside", "status": r["status"]}
+
+
+def machine_summaries(s: Session) -> list[dict]:
+    """Every active machine with its current state, for the plant overview (5 statements)."""
+    machines = s.scalars(select(Machine).where(Machine.active.is_(True)).order_by(Machine.position, Machine.id)).all()
+    modes_by: dict[str, list[Mode]] = defaultdict(list)
+    for mo in s.scalars(select(Mode).join(Machine).where(Machine.active.is_(True)).order_by(Mode.position, Mode.id)):
+        modes_by[mo.machine_id].append(mo)
+    latest_by: dict[str, list[Measurement]] = defaultdict(list)
+    for me in _latest_per_point(s, None):
+        latest_by[me.machine_id].append(me)
+    open_by: dict[str, dict[str, int]] = defaultdict(dict)
+    for mid, sev, n in s.execute(
+        select(Alarm.machine_id, Alarm.severity, func.count())
+        .where(Alarm.state.in_(OPEN_STATES)).group_by(Alarm.machine_id, Alarm.severity)
+    ):
+        open_by[mid][sev] = n
+    out = []
+    for m in machines:
+        rows = latest_by.get(m.id, [])
+        newest = max(rows, key=lambda r: r.ts) if rows else None
+        speed = newest.speed_hz if newest else None
+        zoned = [r for r in rows if r.zone in ZONE_ORDER]
+        worst = max(zoned, key=lambda r: (ZONE_ORDER[r.zone], r.overall_velocity_mm_s_rms or 0)) if zoned else None
+        sev = open_by.get(m.id, {})
+        n_open = sum(sev.values())
+        out.append({
+            "id": m.id, "name": m.name or m.id, "location": m.location,
+            "class": m.machine_class,
+            "state": _machine_state(n_open, newest.ts if newest else None),
+            "speed_hz": speed, "speed_rpm": None if speed is None else speed * 60.0,
+            "last_reading_at": iso(newest.ts) if newest else None,
+            "nearest_margin": _nearest(margins_for(m, modes_by.get(m.id, []), speed)),
+            "worst_zone": None if worst is None else {
+                "point": worst.point_id, "zone": worst.zone,
+                "overall_mm_s_rms": worst.overall_velocity_mm_s_rms},
+            "active_alarms": n_open,
+            "worst_severity": max(sev, key=severity_rank) if sev else None,
+        })
+    return out
+
+
+def get_machine(s: Session, machine_id: str) -> Machine | None:
+    return s.get(Machine, machine_id)
+
+
+def mode_json(mo: Mode) -> dict:
+    d = mo.values()
+    d.update({"id": mo.id, "updated_at": iso(mo.updated_at)})
+    return d
+
+
+def _limits_for(m: Machine, p: MeasurementPoint):
+    try:
+        return zone_limits(m.machine_class, m.limits_mm_s, p.limits_mm_s)
+    except ValueError:
+        return None
+
+
+def _baseline_of(me: Measurement | None) -> float | None:
+    # The service records the learned baseline median in the reading's evaluation.
+    ev = (me.evaluation or {}) if me is not None else {}
+    for key in ("baseline_mm_s_rms", "baseline_mm_s", "baseline"):
+        v = ev.get(key)
+        if isinstance(v, dict):
+            v = v.get("median")
+        if isinstance(v, (int, float)):
+            return float(v)
+    growth = ev.get("growth")
+    if isinstance(growth, dict):
+        v = growth.get("baseline_mm_s_rms") or growth.get("baseline")
+        if isinstance(v, (int, float)):
+            return float(v)
+    return None
+
+
+def spectrum_json(sn: SpectrumSnapshot, max_bins: int = MAX_SPECTRUM_BINS) -> dict:
+    amp = sn.amplitude_array().astype(np.float64)
+    f = sn.freq_hz()
+    if amp.size > max_bins:
+        # Keep the largest bin of each bucket so no peak disappears.
+        k = int(np.ceil(amp.size / max_bins))
+        n = amp.size // k * k
+        a2 = amp[:n].reshape(-1, k)
+        idx = a2.argmax(axis=1) + np.arange(a2.shape[0]) * k
+        f, amp = f[idx], amp[idx]
+    return {"id": sn.id, "machine": sn.machine_id, "point": sn.point_id, "ts": iso(sn.ts),
+            "kind": sn.kind, "unit": sn.unit, "scaling": sn.scaling,
+            "df_hz": sn.df_hz, "evidence": sn.evidence,
+            "freq_hz": np.round(f, 4).tolist(), "amplitude": [float(f"{v:.5g}") for v in amp]}
+
+
+def _latest_spectra(s: Session, machine_id: str) -> list[SpectrumSnapshot]:
+    inner = aliased(SpectrumSnapshot)
+    newest_id = (
+        select(inner.id)
+        .where(inner.machine_id == MeasurementPoint.machine_id, inner.point_id == MeasurementPoint.id)
+        .order_by(inner.ts.desc(), (inner.kind == "velocity").desc())
+        .limit(1)
+        .correlate(MeasurementPoint)
+        .scalar_subquery()
+    )
+    return s.scalars(
+        select(SpectrumSnapshot)
+        .join(MeasurementPoint, SpectrumSnapshot.id == newest_id)
+        .where(MeasurementPoint.machine_id == machine_id, MeasurementPoint.active.is_(True))
+    ).all()
+
+
+def machine_detail(s: Session, m: Machine) -> dict:
+    """One machine: points, modes, latest readings and spectra, margins, open alarms."""
+    points = s.scalars(select(MeasurementPoint).where(
+        MeasurementPoint.machine_id == m.id, MeasurementPoint.active.is_(True)).order_by(MeasurementPoint.position)).all()
+    modes = s.scalars(select(Mode).where(Mode.machine_id == m.id).order_by(Mode.position, Mode.id)).all()
+    latest = {r.point_id: r for r in _latest_per_point(s, [m.id])}
+    newest = max(latest.values(), key=lambda r: r.ts) if latest else None
+    speed = newest.speed_hz if newest else None
+    n_open = s.scalar(select(func.count()).select_from(Alarm).where(
+        Alarm.machine_id == m.id, Alarm.state.in_(OPEN_STATES))) or 0
+    pts = []
+    for p in points:
+        lim = _limits_for(m, p)
+        me = latest.get(p.id)
+        pts.append({
+            "id": p.id, "direction": p.direction, "quantity": p.quantity, "unit": p.unit,
+            "zone_limits_mm_s": list(lim.as_tuple()) if lim else None,
+            "zone_limits_source": lim.source if lim else None,
+            "latest": None if me is None else {
+                "ts": iso(me.ts), "zone": me.zone, "overall_mm_s_rms": me.overall_velocity_mm_s_rms,
+                "speed_hz": me.speed_hz, "speed_source": me.speed_source,
+                "orders": me.orders, "peaks": me.peaks},
+            "baseline_mm_s_rms": _baseline_of(me),
+        })
+    return {
+        "id": m.id, "name": m.name or m.id, "location": m.location, "class": m.machine_class,
+        "speed_range_rpm": [m.speed_min_rpm, m.speed_max_rpm],
+        "excitation_orders": m.excitation_orders, "line_frequency_hz": m.line_frequency_hz,
+        "state": _machine_state(n_open, newest.ts if newest else None),
+        "active_alarms": n_open,
+        "speed_hz": speed, "speed_rpm": None if speed is None else speed * 60.0,
+        "last_reading_at": iso(newest.ts) if newest else None,
+        "points": pts,
+        "modes": [mode_json(x) for x in modes],
+        "margins": margins_for(m, list(modes), speed),
+        "latest_spectra": [spectrum_json(sn) for sn in _latest_spectra(s, m.id)],
+    }
+
+
+def mode_history(s: Session, machine_id: str, limit: int = 200) -> list[dict]:
+    rows = s.scalars(select(ModeHistory).where(ModeHistory.machine_id == machine_id)
+                     .order_by(ModeHistory.changed_at.desc(), ModeHistory.id.desc()).limit(limit))
+    return [{"id": h.id, "mode": h.mode_name, "change": h.change, "changed_by": h.changed_by,
+             "changed_at": iso(h.changed_at), "old": h.old_values, "new": h.new_values} for h in rows]
+
+
+def save_mode(s: Session, m: Machine, values: reg.Mode, user: str, mode: Mode | None) -> Mode:
+    """Create (``mode`` None) or update a mode and record the change in mode_history."""
+    old = mode.values() if mode is not None else None
+    if mode is None:
+        pos = s.scalar(select(func.coalesce(func.max(Mode.position), -1)).where(Mode.machine_id == m.id))
+        mode = Mode(machine_id=m.id, position=int(pos) + 1)
+        s.add(mode)
+    mode.name = values.name
+    mode.frequency_hz = values.frequency_hz
+    mode.damping_ratio = values.damping_ratio
+    mode.amplification_factor = values.amplification_factor
+    mode.required_margin_pct = values.required_margin_pct
+    mode.source = values.source
+    mode.date = values.date
+    mode.updated_at = utcnow()
+    s.flush()
+    record_mode_change(s, m.id, mode.name, "created" if old is None else "updated", user,
+                       old, mode.values(), at=mode.updated_at)
+    s.commit()
+    return mode
+
+
+# ----------------------------------------------------------------------------- trends
+
+
+def trends(s: Session, m: Machine, point_ids: list[str], t0: dt.datetime, t1: dt.datetime,
+           max_points: int) -> list[dict]:
+    """Per point: overall velocity, speed and order amplitudes in [t0, t1], at most
+    ``max_points`` readings. Two statements per point: the cheap columns over the
+    indexed range, then the JSON columns of the rows kept (the largest overall level of
+    each time bucket, so a short excursion is never averaged away)."""
+    out = []
+    for pid in point_ids:
+        rows = s.execute(
+            select(Measurement.id, Measurement.ts, Measurement.overall_velocity_mm_s_rms)
+            .where(Measurement.machine_id == m.id, Measurement.point_id == pid,
+                   Measurement.ts >= t0, Measurement.ts <= t1)
+            .order_by(Measurement.ts)
+        ).all()
+        n_total = len(rows)
+        if n_total:
+            ids = np.fromiter((r[0] for r in rows), dtype=np.int64, count=n_total)
+            ts = np.fromiter((r[1].timestamp() for r in rows), dtype=np.float64, count=n_total)
+            ov = np.fromiter((np.nan if r[2] is None else r[2] for r in rows), dtype=np.float64, count=n_total)
+            keep = decimate_indices(ts, ov, max_points)
+            ids = ids[keep]
+        else:
+            ids = np.empty(0, dtype=np.int64)
+        kept = s.execute(
+            select(Measurement.ts, Measurement.overall_velocity_mm_s_rms, Measurement.speed_hz,
+                   Measurement.orders, Measurement.zone)
+            .where(Measurement.id.in_(ids.tolist())).order_by(Measurement.ts)
+        ).all() if ids.size else []
+        labels: list[str] = []
+        for r in kept:
+            for o in r.orders or []:
+                lab = _order_label(o)
+                if lab is not None and lab not in labels:
+                    labels.append(lab)
+        orders: dict[str, list[float | None]] = {lab: [] for lab in labels}
+        for r in kept:
+            got = {_order_label(o): _order_value(o) for o in (r.orders or [])}
+            for lab in labels:
+                orders[lab].append(got.get(lab))
+        out.append({
+            "point": pid, "readings_in_range": n_total, "returned": len(kept),
+            "ts": [r.ts.timestamp() for r in kept],
+            "overall_mm_s_rms": [r.overall_velocity_mm_s_rms for r in kept],
+            "speed_hz": [r.speed_hz for r in kept],
+            "zone": [r.zone for r in kept],
+            "orders": orders,
+        })
+    return out
+
+
+def _order_label(o: Any) -> str | None:
+    if isinstance(o, dict) and "order" in o:
+        return f"{float(o['order']):g}x"
+    return None
+
+
+def _order_value(o: dict) -> float | None:
+    v = o.get("velocity_mm_s", o.get("amplitude"))
+    return None if v is None else float(v)
+
+
+def decimate_indices(ts: np.ndarray, values: np.ndarray, max_points: int) -> np.ndarray:
+    """Indices of at most ``max_points`` samples: in each of ``max_points`` equal time
+    buckets, the sample with the largest value (first sample when all are NaN)."""
+    n = ts.size
+    if n <= max_points:
+        return np.arange(n)
+    span = ts[-1] - ts[0]
+    if span <= 0:
+        return np.linspace(0, n - 1, max_points).astype(np.int64)
+    b = np.minimum(((ts - ts[0]) / span * max_points).astype(np.int64), max_points - 1)
+    v = np.where(np.isnan(values), -np.inf, values)
+    # Sort by bucket, then by value descending; the first of each bucket is its peak.
+    order = np.lexsort((-v, b))
+    first = np.ones(n, dtype=bool)
+    first[1:] = b[order][1:] != b[order][:-1]
+    return np.sort(order[first])
+
+
+# ----------------------------------------------------------------------------- alarms
+
+
+def alarm_json(a: Alarm, with_transitions: bool = False) -> dict:
+    d = {
+        "id": a.id, "machine": a.machine_id, "point": a.point_id, "kind": a.kind,
+        "subject": a.subject, "severity": a.severity, "state": a.state,
+        "raised_at": iso(a.raised_at), "cleared_at": iso(a.cleared_at),
+        "acknowledged_by": a.acknowledged_by, "acknowledged_at": iso(a.acknowledged_at),
+        "ack_comment": a.ack_comment, "evidence": a.evidence,
+        "last_transition": a.last_transition, "last_transition_at": iso(a.last_transition_at),
+    }
+    if with_transitions:
+        d["transitions"] = [
+            {"id": t.id, "transition": t.transition, "severity": t.severity, "state": t.state,
+             "at": iso(t.at), "user": t.user, "evidence": t.evidence,
+             "spectrum_id": t.spectrum_snapshot_id}
+            for t in a.transitions
+        ]
+    return d
+
+
+def find_alarms(s: Session, *, state: str | None = None, kind: str | None = None,
+                severity: str | None = None, machine: str | None = None, point: str | None = None,
+                since: dt.datetime | None = None, until: dt.datetime | None = None,
+                before_id: int | None = None, limit: int = 50) -> tuple[list[Alarm], int | None]:
+    """Alarms newest first; keyset pagination on id. Returns (rows, next before_id)."""
+    q = select(Alarm)
+    if state == "open":
+        q = q.where(Alarm.state.in_(OPEN_STATES))
+    elif state:
+        q = q.where(Alarm.state == state)
+    if kind:
+        q = q.where(Alarm.kind == kind)
+    if severity:
+        q = q.where(Alarm.severity == severity)
+    if machine:
+        q = q.where(Alarm.machine_id == machine)
+    if point:
+        q = q.where(Alarm.point_id == point)
+    if since:
+        q = q.where(Alarm.raised_at >= since)
+    if until:
+        q = q.where(Alarm.raised_at <= until)
+    if before_id is not None:
+        q = q.where(Alarm.id < before_id)
+    rows = s.scalars(q.order_by(Alarm.id.desc()).limit(limit + 1)).all()
+    nxt = rows[limit - 1].id if len(rows) > limit else None
+    return list(rows[:limit]), nxt
+
+
+def acknowledge(s: Session, a: Alarm, user: str, comment: str) -> Alarm:
+    """Mark an active alarm acknowledged by ``user``; the store records the transition."""
+    from monitor.store.writes import acknowledge_alarm
+
+    a = acknowledge_alarm(s, a.id, user, comment or None)
+    s.commit()
+    return a
+
+
+def machine_list(s: Session) -> list[dict]:
+    """Ids and names of active machines (for filter menus)."""
+    return [{"id": i, "name": n or i} for i, n in s.execute(
+        select(Machine.id, Machine.name).where(Machine.active.is_(True)).order_by(Machine.position, Machine.id))]

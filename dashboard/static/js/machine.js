@@ -1,0 +1,284 @@
+/* Machine page: resonance map, spectrum, trends, margins, modes and alarm history, all from the API. */
+"use strict";
+(function () {
+  const root = document.getElementById("machine-root");
+  const canEdit = root.dataset.canEdit === "1";
+  const el = WW.el;
+  let machine = null;
+  let trendData = null;
+  const charts = {};
+
+  function width(target) { return Math.max(320, target.clientWidth - 4); }
+
+  function put(id, opts, data) {
+    const target = document.getElementById(id);
+    if (charts[id]) charts[id].destroy();
+    target.replaceChildren();
+    opts.width = width(target);
+    charts[id] = new uPlot(opts, data, target);
+    target.dataset.series = opts.series.slice(1).map(s => s.label).join("|");
+    target.dataset.drawn = "1";
+    return charts[id];
+  }
+
+  // Mode bands (natural frequency +- the larger of its required margins) on the given axis.
+  function modeBands(axis) {
+    return u => {
+      const ctx = u.ctx;
+      const { left, top, width: w, height: h } = u.bbox;
+      ctx.save();
+      ctx.beginPath(); ctx.rect(left, top, w, h); ctx.clip();
+      for (const mo of machine.modes) {
+        const req = requiredPct(mo.name);
+        const lo = mo.frequency_hz * (1 - req / 100), hi = mo.frequency_hz * (1 + req / 100);
+        const a = u.valToPos(lo, axis, true), b = u.valToPos(hi, axis, true), c = u.valToPos(mo.frequency_hz, axis, true);
+        ctx.fillStyle = "rgba(181, 101, 29, 0.14)";
+        ctx.strokeStyle = "rgba(181, 101, 29, 0.9)";
+        ctx.setLineDash([]);
+        ctx.lineWidth = 1.5;
+        ctx.beginPath();
+        if (axis === "y") { ctx.fillRect(left, Math.min(a, b), w, Math.abs(a - b)); ctx.moveTo(left, c); ctx.lineTo(left + w, c); }
+        else { ctx.fillRect(Math.min(a, b), top, Math.abs(a - b), h); ctx.moveTo(c, top); ctx.lineTo(c, top + h); }
+        ctx.stroke();
+        ctx.fillStyle = "#7a4310";
+        ctx.font = (11 * devicePixelRatio) + "px system-ui";
+        if (axis === "y") ctx.fillText(mo.name + " " + WW.num(mo.frequency_hz, 1) + " Hz", left + 6, c - 4);
+        else ctx.fillText(mo.name, c + 4, top + 14 * devicePixelRatio);
+      }
+      ctx.restore();
+    };
+  }
+
+  function requiredPct(modeName) {
+    const rows = machine.margins.filter(r => r.mode === modeName);
+    if (!rows.length) return 10;
+    return Math.max(...rows.map(r => r.required_pct));
+  }
+
+  function orderList() {
+    return (machine.excitation_orders || []).map(Number).sort((a, b) => a - b);
+  }
+
+  function drawResonance() {
+    const pts = trendData.points.filter(p => p.ts.length);
+    if (!pts.length) { noData("chart-resonance"); return; }
+    // Speed from the point with most readings (all points share the machine's speed).
+    const p = pts.reduce((a, b) => (b.ts.length > a.ts.length ? b : a));
+    const orders = orderList();
+    const data = [p.ts].concat(orders.map(o => p.speed_hz.map(s => (s === null ? null : s * o))));
+    const maxMode = Math.max(0, ...machine.modes.map(m => m.frequency_hz * 1.3));
+    const maxExc = Math.max(0, ...data.slice(1).flat().filter(v => v !== null));
+    put("chart-resonance", {
+      height: 320,
+      scales: { x: { time: true }, y: { range: [0, Math.max(maxMode, maxExc * 1.1, 1)] } },
+      series: [{}].concat(orders.map((o, i) => ({ label: o + "x", stroke: WW.palette[i % WW.palette.length], width: 2, value: (u, v) => WW.num(v, 2) + " Hz" }))),
+      axes: [{}, { label: "Frequency, Hz", size: 60 }],
+      hooks: { drawClear: [modeBands("y")] },
+    }, data);
+  }
+
+  function noData(id, text) {
+    const t = document.getElementById(id);
+    if (charts[id]) { charts[id].destroy(); delete charts[id]; }
+    t.replaceChildren(el("p", { class: "empty" }, text || "No readings in this time range."));
+    t.dataset.drawn = "0";
+  }
+
+  function drawSpectrum(sp, caption) {
+    if (!sp) { noData("chart-spectrum", "No stored spectrum for this point yet."); return; }
+    const latestSpeed = (machine.points.find(p => p.id === sp.point) || {}).latest;
+    const speed = latestSpeed ? latestSpeed.speed_hz : machine.speed_hz;
+    const orders = orderList();
+    const markers = speed ? orders.map(o => ({ label: o + "x", hz: o * speed })) : [];
+    if (machine.line_frequency_hz) markers.push({ label: "2xLF", hz: 2 * machine.line_frequency_hz });
+    const drawMarkers = u => {
+      const ctx = u.ctx; const { top, height: h } = u.bbox;
+      ctx.save(); ctx.setLineDash([5, 4]); ctx.strokeStyle = "#1b6ca8"; ctx.fillStyle = "#1b6ca8";
+      ctx.font = (11 * devicePixelRatio) + "px system-ui"; ctx.lineWidth = 1;
+      for (const m of markers) {
+        const x = u.valToPos(m.hz, "x", true);
+        if (x < u.bbox.left || x > u.bbox.left + u.bbox.width) continue;
+        ctx.beginPath(); ctx.moveTo(x, top); ctx.lineTo(x, top + h); ctx.stroke();
+        ctx.fillText(m.label, x + 3, top + 28 * devicePixelRatio);
+      }
+      ctx.restore();
+    };
+    put("chart-spectrum", {
+      height: 300,
+      scales: { x: { time: false } },
+      cursor: { drag: { x: true, y: false } },
+      series: [{ label: "Hz", value: (u, v) => WW.num(v, 2) }, { label: sp.point + " " + sp.kind, stroke: "#3d405b", width: 1, value: (u, v) => WW.num(v, 4) + " " + sp.unit }],
+      axes: [{ label: "Frequency, Hz" }, { label: sp.unit + " " + sp.scaling, size: 70 }],
+      hooks: { drawClear: [modeBands("x")], draw: [drawMarkers] },
+    }, [sp.freq_hz, sp.amplitude]);
+    document.getElementById("spectrum-caption").textContent = caption || ("latest, " + WW.when(sp.ts));
+  }
+
+  function drawTrends() {
+    const pid = document.getElementById("trend-point").value;
+    const p = trendData.points.find(x => x.point === pid);
+    if (!p || !p.ts.length) { noData("chart-overall"); noData("chart-orders"); return; }
+    const meta = machine.points.find(x => x.id === pid) || {};
+    const lim = meta.zone_limits_mm_s || [];
+    const base = meta.baseline_mm_s_rms;
+    const flat = v => p.ts.map(() => v);
+    const series = [{}, { label: "overall", stroke: "#1d2433", width: 2, value: (u, v) => WW.num(v, 2) + " mm/s" }];
+    const data = [p.ts, p.overall_mm_s_rms];
+    const zoneColours = ["#7ea33a", "#d19a00", "#b3261e"];
+    ["A/B", "B/C", "C/D"].forEach((name, i) => {
+      if (lim[i] === undefined) return;
+      series.push({ label: name, stroke: zoneColours[i], dash: [6, 4], width: 1.5, points: { show: false } });
+      data.push(flat(lim[i]));
+    });
+    if (base !== null && base !== undefined) {
+      series.push({ label: "baseline", stroke: "#8d5a97", dash: [2, 3], width: 1.5, points: { show: false } });
+      data.push(flat(base));
+    }
+    const top = Math.max(lim[2] ? lim[2] * 1.15 : 0, ...p.overall_mm_s_rms.filter(v => v !== null).map(v => v * 1.1));
+    put("chart-overall", { height: 260, scales: { x: { time: true }, y: { range: [0, top || 1] } },
+      series: series, axes: [{}, { label: "mm/s RMS", size: 60 }] }, data);
+    const labels = Object.keys(p.orders);
+    if (!labels.length) { noData("chart-orders", "No order amplitudes stored."); return; }
+    put("chart-orders", { height: 220, scales: { x: { time: true } },
+      series: [{}].concat(labels.map((l, i) => ({ label: l, stroke: WW.palette[i % WW.palette.length], width: 1.5, value: (u, v) => WW.num(v, 3) + " mm/s" }))),
+      axes: [{}, { label: "order amplitude, mm/s", size: 60 }] }, [p.ts].concat(labels.map(l => p.orders[l])));
+  }
+
+  function renderFacts() {
+    document.getElementById("fact-state").replaceChildren(WW.stateTag(machine.state));
+    document.getElementById("fact-speed").textContent = machine.speed_hz === null ? "–" : WW.num(machine.speed_rpm, 0) + " r/min (" + WW.num(machine.speed_hz, 2) + " Hz)";
+    document.getElementById("fact-last").textContent = WW.when(machine.last_reading_at);
+    document.getElementById("fact-orders").textContent = orderList().map(o => o + "x").join(", ") || "–";
+  }
+
+  function renderMargins() {
+    const tb = document.querySelector("#margins-table tbody");
+    if (!machine.margins.length) { tb.replaceChildren(el("tr", {}, el("td", { colspan: 5, class: "empty" }, "No running speed or no modes yet."))); return; }
+    tb.replaceChildren(...machine.margins.map(r => el("tr", { class: "margin-" + r.status },
+      el("td", {}, r.mode, el("small", { class: "sub" }, WW.num(r.mode_hz, 2) + " Hz")),
+      el("td", {}, r.excitation, el("small", { class: "sub" }, WW.num(r.excitation_hz, 2) + " Hz")),
+      el("td", { class: "num " + (r.status === "inside" ? "short" : "") }, WW.num(r.margin_pct, 1)),
+      el("td", { class: "num", title: r.basis }, WW.num(r.required_pct, 1), el("small", { class: "sub" }, r.basis)),
+      el("td", { class: "num" }, r.amplification === null ? "–" : WW.num(r.amplification, 2)))));
+  }
+
+  async function renderModes() {
+    const data = await WW.api(root.dataset.modes);
+    const tb = document.querySelector("#modes-table tbody");
+    tb.replaceChildren(...data.items.map(mo => el("tr", { "data-mode": mo.id },
+      el("td", {}, mo.name), el("td", { class: "num" }, WW.num(mo.frequency_hz, 2)),
+      el("td", { class: "num" }, mo.damping_ratio === null ? "–" : WW.num(mo.damping_ratio, 3)),
+      el("td", { class: "num" }, mo.amplification_factor === null ? "–" : WW.num(mo.amplification_factor, 1)),
+      el("td", { class: "num" }, mo.required_margin_pct === null ? "rule" : WW.num(mo.required_margin_pct, 1)),
+      el("td", {}, mo.source || ""), el("td", {}, mo.date || ""),
+      el("td", {}, canEdit ? el("button", { type: "button", onclick: () => openForm(mo) }, "Edit") : null))));
+    const hb = document.querySelector("#mode-history tbody");
+    hb.replaceChildren(...data.history.map(h => el("tr", {},
+      el("td", {}, WW.when(h.changed_at)), el("td", {}, h.changed_by), el("td", {}, h.mode),
+      el("td", {}, h.change + ": " + describeChange(h.old, h.new)))));
+  }
+
+  function describeChange(oldV, newV) {
+    if (!oldV) return Object.entries(newV || {}).filter(([, v]) => v !== null && v !== "").map(([k, v]) => k + "=" + v).join(", ");
+    return Object.keys(newV || {}).filter(k => oldV[k] !== newV[k]).map(k => k + " " + oldV[k] + " → " + newV[k]).join(", ") || "no change";
+  }
+
+  const form = document.getElementById("mode-form");
+  function openForm(mo) {
+    form.hidden = false;
+    form.reset();
+    document.getElementById("mode-error").hidden = true;
+    document.getElementById("mode-form-title").textContent = mo ? "Edit mode " + mo.name : "Add a mode";
+    form.elements.id.value = mo ? mo.id : "";
+    if (mo) for (const k of ["name", "frequency_hz", "damping_ratio", "amplification_factor", "required_margin_pct", "source", "date"]) {
+      form.elements[k].value = mo[k] === null || mo[k] === undefined ? "" : mo[k];
+    }
+    form.elements.name.focus();
+  }
+  form.addEventListener("submit", async ev => {
+    ev.preventDefault();
+    const body = {};
+    for (const k of ["name", "source", "date"]) body[k] = form.elements[k].value.trim() || null;
+    for (const k of ["frequency_hz", "damping_ratio", "amplification_factor", "required_margin_pct"]) {
+      const v = form.elements[k].value; body[k] = v === "" ? null : Number(v);
+    }
+    if (!body.source) body.source = "";
+    const id = form.elements.id.value;
+    try {
+      await WW.api(root.dataset.modes + (id ? "/" + id : ""), { method: id ? "PUT" : "POST", body: body });
+      form.hidden = true;
+      await loadMachine();
+    } catch (e) {
+      const box = document.getElementById("mode-error"); box.textContent = e.message; box.hidden = false;
+    }
+  });
+  document.getElementById("mode-cancel").addEventListener("click", () => { form.hidden = true; });
+  if (canEdit) { const b = document.getElementById("mode-add"); b.hidden = false; b.addEventListener("click", () => openForm(null)); }
+
+  async function renderAlarms() {
+    const data = await WW.api(root.dataset.alarms + "?machine=" + encodeURIComponent(machine.id) + "&limit=50");
+    const tb = document.querySelector("#machine-alarms tbody");
+    if (!data.items.length) { tb.replaceChildren(el("tr", {}, el("td", { colspan: 8, class: "empty" }, "No alarms."))); return; }
+    tb.replaceChildren(...data.items.map(a => el("tr", { "data-alarm": a.id },
+      el("td", {}, WW.when(a.raised_at)), el("td", {}, a.point || "–"), el("td", {}, a.kind.replace(/_/g, " "), el("small", { class: "sub" }, a.subject)),
+      el("td", {}, WW.severityTag(a.severity)), el("td", {}, el("span", { class: "astate astate-" + a.state }, a.state)),
+      el("td", {}, WW.when(a.cleared_at)), el("td", {}, a.acknowledged_by || "–"),
+      el("td", {}, el("button", { type: "button", onclick: () => showEvidence(a.id) }, "Evidence")))));
+  }
+
+  async function showEvidence(alarmId) {
+    const a = await WW.api(root.dataset.alarmBase + alarmId);
+    const box = document.getElementById("alarm-evidence");
+    box.hidden = false;
+    box.replaceChildren(el("h3", {}, "Alarm " + a.id + ": " + a.kind.replace(/_/g, " ") + " " + a.subject),
+      el("table", { class: "grid" }, el("thead", {}, el("tr", {}, el("th", {}, "When"), el("th", {}, "Step"), el("th", {}, "Severity"), el("th", {}, "By"), el("th", {}, "Evidence"), el("th", {}, ""))),
+        el("tbody", {}, a.transitions.map(t => el("tr", {},
+          el("td", {}, WW.when(t.at)), el("td", {}, t.transition), el("td", {}, WW.severityTag(t.severity)), el("td", {}, t.user || ""),
+          el("td", {}, el("pre", {}, JSON.stringify(t.evidence, null, 1))),
+          el("td", {}, t.spectrum_id ? el("button", { type: "button", class: "open-spectrum", onclick: () => openStored(t) }, "Open spectrum") : "–"))))));
+  }
+
+  async function openStored(t) {
+    const sp = await WW.api(root.dataset.spectrumBase + t.spectrum_id);
+    drawSpectrum(sp, "stored with '" + t.transition + "' at " + WW.when(sp.ts));
+    document.getElementById("spectrum-latest").hidden = false;
+    document.getElementById("chart-spectrum").scrollIntoView({ behavior: "smooth" });
+  }
+
+  function latestFor(pid) { return machine.latest_spectra.find(s => s.point === pid); }
+
+  function fillPointSelects() {
+    for (const id of ["spectrum-point", "trend-point"]) {
+      const s = document.getElementById(id);
+      const cur = s.value;
+      s.replaceChildren(...machine.points.map(p => el("option", { value: p.id }, p.id + " (" + p.direction + ")")));
+      if (cur) s.value = cur;
+    }
+  }
+
+  async function loadTrends() {
+    const span = Number(document.getElementById("range").value);
+    const to = machine.last_reading_at ? new Date(machine.last_reading_at).getTime() / 1000 : Date.now() / 1000;
+    trendData = await WW.api(root.dataset.trends + "?from=" + (to - span) + "&to=" + (to + 1) + "&max_points=" + Math.min(2000, width(document.getElementById("chart-overall"))));
+    drawResonance();
+    drawTrends();
+  }
+
+  async function loadMachine() {
+    machine = await WW.api(root.dataset.api);
+    renderFacts();
+    fillPointSelects();
+    renderMargins();
+    drawSpectrum(latestFor(document.getElementById("spectrum-point").value));
+    await Promise.all([loadTrends(), renderModes(), renderAlarms()]);
+    document.body.dataset.loaded = "1";
+  }
+
+  document.getElementById("range").addEventListener("change", loadTrends);
+  document.getElementById("trend-point").addEventListener("change", drawTrends);
+  document.getElementById("spectrum-point").addEventListener("change", e => { drawSpectrum(latestFor(e.target.value)); });
+  document.getElementById("spectrum-latest").addEventListener("click", e => { e.target.hidden = true; drawSpectrum(latestFor(document.getElementById("spectrum-point").value)); });
+  let resizeTimer = null;
+  window.addEventListener("resize", () => { clearTimeout(resizeTimer); resizeTimer = setTimeout(() => { if (trendData) { drawResonance(); drawTrends(); } }, 200); });
+  loadMachine().catch(e => { document.getElementById("facts").append(el("p", { class: "notice notice-error" }, "Could not load: " + e.message)); });
+})();

@@ -1,0 +1,373 @@
+"""The alarm engine: one state machine per (machine, point, kind, subject).
+
+Each evaluation hands the engine, per alarm key, two severities computed by the detectors:
+
+- ``raise_level``: the highest severity whose (strict) raise condition holds now, or None;
+- ``hold_level``: the highest severity whose relaxed, hysteresis condition holds now
+  (always >= ``raise_level``), or None when even the relaxed condition fails.
+
+Lifecycle (every arrow is a :class:`Transition` carrying time, severity and evidence)::
+
+    (none) --raise_level for N readings--> active --ack(user, comment)--> acknowledged
+    active/acknowledged --raise_level above severity for N readings--> escalated (needs a new ack)
+    active/acknowledged --hold_level below severity for N readings--> de-escalated
+    active/acknowledged --hold_level None for N readings--> cleared
+    cleared --raise_level for N readings--> raised again (a new alarm id)
+
+N is the persistence count. Raise and clear use different levels (hysteresis), so a value
+hovering on a limit with noise raises once and does not chatter. Acknowledging never
+clears. The engine is deterministic: no clock, ids from a counter; ``snapshot()`` gives a
+JSON-able dict and ``AlarmEngine.restore`` rebuilds the same state after a restart.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+from dataclasses import dataclass, field
+from typing import Any, Literal
+
+#: Severities, lowest first. ``alert`` is ISO 20816's ALERT; ``advisory`` and ``severe``
+#: are our own words for the levels below and above it (docs/alarms.md).
+SEVERITIES = ("advisory", "alert", "severe")
+KINDS = ("resonance_proximity", "amplitude_growth", "mode_shift", "sensor_fault")
+TRANSITIONS = ("raised", "escalated", "de-escalated", "acknowledged", "cleared")
+State = Literal["active", "acknowledged", "cleared"]
+
+
+def severity_rank(severity: str | None) -> int:
+    """0 for None, 1 advisory, 2 alert, 3 severe."""
+    if severity is None:
+        return 0
+    try:
+        return SEVERITIES.index(severity) + 1
+    except ValueError:
+        raise ValueError(f"severity must be one of {SEVERITIES} or None, got {severity!r}.") from None
+
+
+def iso_utc(ts: float | None) -> str | None:
+    """Epoch seconds to ISO 8601 UTC ('...Z'), None stays None."""
+    if ts is None:
+        return None
+    return _dt.datetime.fromtimestamp(ts, _dt.UTC).isoformat().replace("+00:00", "Z")
+
+
+@dataclass(frozen=True)
+class AlarmKey:
+    """Identity of an alarm stream; ``point`` is None for machine-level alarms."""
+
+    machine: str
+    point: str | None
+    kind: str
+    subject: str
+
+    def __post_init__(self) -> None:
+        if self.kind not in KINDS:
+            raise ValueError(f"kind must be one of {KINDS}, got {self.kind!r}.")
+
+    def text(self) -> str:
+        return f"{self.machine}/{self.point or '-'}/{self.kind}/{self.subject}"
+
+
+@dataclass
+class Alarm:
+    """Current state of one alarm (one raise until its clear)."""
+
+    id: str
+    key: AlarmKey
+    severity: str
+    state: State
+    raised_at: float
+    cleared_at: float | None = None
+    acknowledged_by: str | None = None
+    acknowledged_at: float | None = None
+    ack_comment: str | None = None
+    evidence: dict[str, Any] = field(default_factory=dict)
+
+    def to_json(self) -> dict:
+        """The alarm as in the REST API (DESIGN.md section 3)."""
+        return {
+            "id": self.id,
+            "machine": self.key.machine,
+            "point": self.key.point,
+            "kind": self.key.kind,
+            "subject": self.key.subject,
+            "severity": self.severity,
+            "state": self.state,
+            "raised_at": iso_utc(self.raised_at),
+            "cleared_at": iso_utc(self.cleared_at),
+            "acknowledged_by": self.acknowledged_by,
+            "acknowledged_at": iso_utc(self.acknowledged_at),
+            "ack_comment": self.ack_comment,
+            "evidence": self.evidence,
+        }
+
+    def snapshot(self) -> dict:
+        return {
+            "id": self.id, "key": [self.key.machine, self.key.point, self.key.kind, self.key.subject],
+            "severity": self.severity, "state": self.state, "raised_at": self.raised_at,
+            "cleared_at": self.cleared_at, "acknowledged_by": self.acknowledged_by,
+            "acknowledged_at": self.acknowledged_at, "ack_comment": self.ack_comment,
+            "evidence": self.evidence,
+        }
+
+    @classmethod
+    def restore(cls, d: dict) -> Alarm:
+        m, p, k, s = d["key"]
+        return cls(
+            id=d["id"], key=AlarmKey(m, p, k, s), severity=d["severity"], state=d["state"],
+            raised_at=d["raised_at"], cleared_at=d.get("cleared_at"),
+            acknowledged_by=d.get("acknowledged_by"), acknowledged_at=d.get("acknowledged_at"),
+            ack_comment=d.get("ack_comment"), evidence=dict(d.get("evidence") or {}),
+        )
+
+
+@dataclass(frozen=True)
+class Transition:
+    """One step of an alarm's lifecycle.
+
+    ``name`` is one of :data:`TRANSITIONS`; ``ts`` epoch seconds UTC; ``severity`` after the
+    step and ``previous_severity`` before it; ``alarm`` the alarm's state after the step;
+    ``evidence`` what the detectors saw (feature values, margins, reading id ...).
+    """
+
+    name: str
+    ts: float
+    severity: str
+    previous_severity: str | None
+    alarm: dict[str, Any]
+    evidence: dict[str, Any]
+    reading_id: str | None = None
+    user: str | None = None
+    comment: str | None = None
+
+    @property
+    def alarm_id(self) -> str:
+        return self.alarm["id"]
+
+    @property
+    def kind(self) -> str:
+        return self.alarm["kind"]
+
+    def to_json(self) -> dict:
+        """The alarm's JSON (REST shape, current state) plus the ``transition`` (the MQTT
+        alarm event of DESIGN.md section 3)."""
+        out = dict(self.alarm)
+        out["transition"] = {
+            "name": self.name,
+            "ts": iso_utc(self.ts),
+            "severity": self.severity,
+            "previous_severity": self.previous_severity,
+            "reading_id": self.reading_id,
+            "user": self.user,
+            "comment": self.comment,
+            "evidence": self.evidence,
+        }
+        return out
+
+
+@dataclass
+class _Stream:
+    """Per-key counters: consecutive readings for raise/escalate/de-escalate/clear."""
+
+    seq: int = 0
+    alarm: Alarm | None = None
+    raise_count: int = 0
+    up_count: int = 0
+    down_count: int = 0
+    down_level: int = 0
+    clear_count: int = 0
+    last_ts: float | None = None
+
+
+class AlarmEngine:
+    """Alarm state machines keyed by :class:`AlarmKey`.
+
+    Parameters
+    ----------
+    persistence : int
+        Consecutive readings a condition must hold before a raise, escalation,
+        de-escalation or clear (N >= 1).
+    """
+
+    def __init__(self, persistence: int = 3) -> None:
+        if not isinstance(persistence, int) or isinstance(persistence, bool) or persistence < 1:
+            raise ValueError(f"persistence must be an integer >= 1 reading, got {persistence!r}.")
+        self.persistence = persistence
+        self._streams: dict[AlarmKey, _Stream] = {}
+
+    # ------------------------------------------------------------------ queries
+
+    def alarm(self, key: AlarmKey) -> Alarm | None:
+        """The current alarm of ``key`` (also after its clear, until the next raise)."""
+        s = self._streams.get(key)
+        return s.alarm if s else None
+
+    def active(self) -> list[Alarm]:
+        """Alarms not cleared, in key order."""
+        return [s.alarm for k, s in sorted(self._streams.items(), key=lambda kv: kv[0].text())
+                if s.alarm is not None and s.alarm.state != "cleared"]
+
+    def find(self, alarm_id: str) -> Alarm | None:
+        for s in self._streams.values():
+            if s.alarm is not None and s.alarm.id == alarm_id:
+                return s.alarm
+        return None
+
+    def keys(self) -> list[AlarmKey]:
+        return list(self._streams)
+
+    # ------------------------------------------------------------------ updates
+
+    def update(
+        self,
+        key: AlarmKey,
+        ts: float,
+        raise_level: str | None,
+        hold_level: str | None,
+        evidence: dict[str, Any] | None = None,
+        reading_id: str | None = None,
+        persistence: int | None = None,
+    ) -> list[Transition]:
+        """Feed one evaluation of ``key``; returns the transitions it caused (often none).
+
+        ``hold_level`` below ``raise_level`` is raised to it (the relaxed condition always
+        holds when the strict one does). ``persistence`` overrides the engine's count for
+        this key (1 for events that need no confirmation, e.g. a stale stream).
+        """
+        r = severity_rank(raise_level)
+        h = max(severity_rank(hold_level), r)
+        n = self.persistence if persistence is None else int(persistence)
+        ev = dict(evidence or {})
+        s = self._streams.setdefault(key, _Stream())
+        s.last_ts = ts
+        a = s.alarm
+        out: list[Transition] = []
+        if a is None or a.state == "cleared":
+            s.raise_count = s.raise_count + 1 if r > 0 else 0
+            if r > 0 and s.raise_count >= n:
+                s.seq += 1
+                s.alarm = Alarm(
+                    id=f"{key.text()}#{s.seq}", key=key, severity=SEVERITIES[r - 1], state="active",
+                    raised_at=ts, evidence=ev,
+                )
+                self._reset(s)
+                out.append(self._transition(s.alarm, "raised", ts, None, ev, reading_id))
+            return out
+        cur = severity_rank(a.severity)
+        # Escalation: the strict condition of a higher level holds for N readings.
+        s.up_count = s.up_count + 1 if r > cur else 0
+        # Clear: not even the relaxed condition of the lowest level holds for N readings.
+        s.clear_count = s.clear_count + 1 if h == 0 else 0
+        # De-escalation: only a lower level's relaxed condition holds for N readings.
+        if 0 < h < cur:
+            s.down_count += 1
+            s.down_level = h if s.down_count == 1 else max(s.down_level, h)
+        else:
+            s.down_count = 0
+        if s.up_count >= n:
+            prev = a.severity
+            a.severity = SEVERITIES[r - 1]
+            a.evidence = ev
+            if a.state == "acknowledged":
+                # A worse condition needs a person to see it again.
+                a.state = "active"
+                a.acknowledged_by = a.acknowledged_at = a.ack_comment = None
+            self._reset(s)
+            out.append(self._transition(a, "escalated", ts, prev, ev, reading_id))
+        elif s.clear_count >= n:
+            prev = a.severity
+            a.state = "cleared"
+            a.cleared_at = ts
+            self._reset(s)
+            s.raise_count = 0
+            out.append(self._transition(a, "cleared", ts, prev, ev, reading_id))
+        elif s.down_count >= n:
+            prev = a.severity
+            a.severity = SEVERITIES[s.down_level - 1]
+            a.evidence = ev
+            self._reset(s)
+            out.append(self._transition(a, "de-escalated", ts, prev, ev, reading_id))
+        return out
+
+    def acknowledge(self, alarm_id: str, user: str, comment: str, ts: float) -> Transition:
+        """Acknowledge an active alarm by a named ``user`` with a ``comment``; does not clear."""
+        if not isinstance(user, str) or not user.strip():
+            raise ValueError(f"user must name the person acknowledging, got {user!r}.")
+        if not isinstance(comment, str):
+            raise ValueError(f"comment must be a string, got {comment!r}.")
+        a = self.find(alarm_id)
+        if a is None:
+            prefix, _, seq = alarm_id.rpartition("#")
+            for k, st in self._streams.items():
+                if k.text() == prefix and seq.isdigit() and 0 < int(seq) < st.seq:
+                    raise ValueError(f"alarm {alarm_id!r} is already cleared and cannot be acknowledged.")
+            raise KeyError(f"no alarm {alarm_id!r}")
+        if a.state == "cleared":
+            raise ValueError(f"alarm {alarm_id!r} is already cleared and cannot be acknowledged.")
+        a.state = "acknowledged"
+        a.acknowledged_by = user.strip()
+        a.acknowledged_at = ts
+        a.ack_comment = comment
+        return self._transition(a, "acknowledged", ts, a.severity, {}, None, user=a.acknowledged_by,
+                                comment=comment)
+
+    @staticmethod
+    def _reset(s: _Stream) -> None:
+        s.up_count = s.down_count = s.down_level = s.clear_count = 0
+
+    @staticmethod
+    def _transition(a: Alarm, name: str, ts: float, prev: str | None, ev: dict, reading_id: str | None,
+                    user: str | None = None, comment: str | None = None) -> Transition:
+        return Transition(name=name, ts=ts, severity=a.severity, previous_severity=prev,
+                          alarm=a.to_json(), evidence=ev, reading_id=reading_id, user=user,
+                          comment=comment)
+
+    # ------------------------------------------------------------------ persistence
+
+    def snapshot(self) -> dict:
+        """JSON-able state: counters and alarms of every key."""
+        return {
+            "persistence": self.persistence,
+            "streams": [
+                {
+                    "key": [k.machine, k.point, k.kind, k.subject], "seq": s.seq,
+                    "alarm": s.alarm.snapshot() if s.alarm else None,
+                    "raise_count": s.raise_count, "up_count": s.up_count,
+                    "down_count": s.down_count, "down_level": s.down_level,
+                    "clear_count": s.clear_count, "last_ts": s.last_ts,
+                }
+                for k, s in self._streams.items()
+            ],
+        }
+
+    @classmethod
+    def restore(cls, data: dict) -> AlarmEngine:
+        e = cls(int(data["persistence"]))
+        for d in data.get("streams", []):
+            m, p, k, subj = d["key"]
+            e._streams[AlarmKey(m, p, k, subj)] = _Stream(
+                seq=d["seq"], alarm=Alarm.restore(d["alarm"]) if d.get("alarm") else None,
+                raise_count=d["raise_count"], up_count=d["up_count"], down_count=d["down_count"],
+                down_level=d["down_level"], clear_count=d["clear_count"], last_ts=d.get("last_ts"),
+            )
+        return e
+
+
+def levels_above(value: float, thresholds: dict[str, float], hysteresis: float) -> tuple[str | None, str | None]:
+    """``(raise_level, hold_level)`` for a feature where higher is worse.
+
+    ``thresholds`` maps severity -> raise limit; a level holds (hysteresis) while the value
+    stays above ``limit * (1 - hysteresis)``.
+    """
+    if not 0.0 <= hysteresis < 1.0:
+        raise ValueError(f"hysteresis must lie in [0, 1), got {hysteresis!r}.")
+    raise_l = hold_l = None
+    for sev in SEVERITIES:
+        lim = thresholds.get(sev)
+        if lim is None:
+            continue
+        if value >= lim:
+            raise_l = sev
+        if value >= lim * (1.0 - hysteresis):
+            hold_l = sev
+    return raise_l, hold_l

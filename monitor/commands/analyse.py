@@ -1,0 +1,176 @@
+"""``whirlwatch analyse FILE``: analyse every waveform of a stream file.
+
+Each line goes through ``monitor.ingest.decode_message``, so a file is validated exactly
+like live MQTT traffic (the freshness check excepted: a recording is old by nature).
+A waveform without its own speed takes the latest speed reading of its machine when that
+reading is at most :data:`SPEED_MATCH_S` seconds away; otherwise the analysis estimates
+the speed from the spectrum. Rejected lines are counted by reason and reported on stderr.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import math
+from collections import Counter
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import click
+
+from monitor.analysis import ReadingAnalysis, analyse_waveform, analysis_to_json
+from monitor.ingest import SPEED_STREAM, IngestLimits, Rejected, decode_message
+from monitor.readings import SpeedReading, Waveform
+from monitor.registry import Registry, RegistryError, load_registry
+from monitor.streams import DEFAULT_PREFIX, StreamError, iso_utc, read_stream
+
+#: Largest gap (s) between a speed reading and a waveform for the speed to count as
+#: measured for that waveform.
+SPEED_MATCH_S = 5.0
+
+# A file is a recording: any age is fine, every other check is the live one.
+_FILE_LIMITS = IngestLimits(max_age_s=math.inf, max_future_s=math.inf)
+
+
+@dataclasses.dataclass
+class _Outcome:
+    analyses: int = 0
+    seen: int = 0
+    rejected: Counter[str] = dataclasses.field(default_factory=Counter)
+    examples: dict[str, str] = dataclasses.field(default_factory=dict)
+
+    def reject(self, reason: str, detail: str) -> None:
+        self.rejected[reason] += 1
+        self.examples.setdefault(reason, detail)
+
+
+def analyse_stream(
+    path: Path, registry: Registry, *, prefix: str = DEFAULT_PREFIX, outcome: _Outcome | None = None
+) -> Iterator[ReadingAnalysis]:
+    """Analyses of every accepted waveform of stream file ``path``, in file order.
+
+    Rejections (malformed lines, messages ingest refuses, waveforms the analysis refuses)
+    are counted in ``outcome``; nothing here raises for bad content.
+    """
+    out = outcome if outcome is not None else _Outcome()
+    last_ts: dict[tuple[str, str], float] = {}
+    latest_speed: dict[str, SpeedReading] = {}
+    machines = registry.by_id()
+
+    def on_error(exc: StreamError) -> None:
+        out.seen += 1
+        out.reject("malformed_line", str(exc))
+
+    for topic, payload in read_stream(path, on_error=on_error):
+        out.seen += 1
+        try:
+            reading = decode_message(
+                topic, payload, registry, prefix=prefix,
+                last_ts=lambda m, p: last_ts.get((m, p)), limits=_FILE_LIMITS,
+            )
+        except Rejected as exc:
+            out.reject(exc.reason, exc.detail)
+            continue
+        if isinstance(reading, SpeedReading):
+            last_ts[(reading.machine, SPEED_STREAM)] = reading.ts
+            latest_speed[reading.machine] = reading
+            continue
+        assert isinstance(reading, Waveform)
+        last_ts[(reading.machine, reading.point)] = reading.ts
+        if reading.speed_hz is None:
+            sr = latest_speed.get(reading.machine)
+            if sr is not None and abs(reading.ts - sr.ts) <= SPEED_MATCH_S and sr.speed_hz > 0:
+                reading = dataclasses.replace(reading, speed_hz=sr.speed_hz)
+        machine = machines[reading.machine]
+        try:
+            analysis = analyse_waveform(reading, machine, machine.point(reading.point))
+        except ValueError as exc:
+            out.reject("analysis_refused", str(exc))
+            continue
+        out.analyses += 1
+        yield analysis
+
+
+def _fmt(v: float | None, spec: str = ".3g") -> str:
+    return "-" if v is None or not math.isfinite(v) else format(v, spec)
+
+
+def _table_row(a: ReadingAnalysis) -> str:
+    one, two = a.order(1.0), a.order(2.0)
+    peaks = "  ".join(f"{p.hz:.1f}Hz:{p.amplitude:.3g}" for p in a.peaks[:3])
+    src = "m" if a.speed_source == "measured" else "e"
+    return (
+        f"{iso_utc(a.ts):24}  {a.machine + '/' + a.point:16}  {a.speed_hz:8.2f} {src}  "
+        f"{a.overall_velocity_mm_s_rms:8.2f}  {_fmt(one.amplitude if one else None):>8}  "
+        f"{_fmt(two.amplitude if two else None):>8}  {peaks}"
+    )
+
+
+_HEADER = (
+    f"{'ts (UTC)':24}  {'machine/point':16}  {'speed Hz':>8} s  {'mm/s rms':>8}  "
+    f"{'1x pk':>8}  {'2x pk':>8}  top peaks (Hz:amplitude pk, sensor unit)"
+)
+
+
+def _json_safe(value: Any) -> Any:
+    """NaN and infinity -> null, so every line is strict JSON."""
+    if isinstance(value, float):
+        return value if math.isfinite(value) else None
+    if isinstance(value, dict):
+        return {k: _json_safe(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_json_safe(v) for v in value]
+    return value
+
+
+def _count_lines(path: Path) -> int:
+    n = 0
+    with path.open("rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 20), b""):
+            n += chunk.count(b"\n")
+    return n
+
+
+@click.command("analyse")
+@click.argument("file", type=click.Path(dir_okay=False, path_type=Path))
+@click.option("--machines", "machines_file", required=True,
+              type=click.Path(dir_okay=False, path_type=Path),
+              help="Machine registry (TOML) that names the machines and points of the file.")
+@click.option("--json", "as_json", is_flag=True,
+              help="One JSON object per analysed waveform instead of a table.")
+@click.option("--prefix", default=DEFAULT_PREFIX, show_default=True, help="MQTT topic prefix.")
+def analyse(file: Path, machines_file: Path, as_json: bool, prefix: str) -> None:
+    """Analyse every waveform of stream FILE (.jsonl): speed, overall velocity, 1x, 2x
+    and the largest peaks, one line per reading."""
+    if not file.is_file():
+        raise click.UsageError(f"stream file {str(file)!r} does not exist or is not a file.")
+    if not machines_file.is_file():
+        raise click.UsageError(f"machine registry {str(machines_file)!r} does not exist.")
+    try:
+        registry = load_registry(machines_file)
+    except RegistryError as exc:
+        raise click.ClickException(str(exc)) from exc
+    try:
+        total = _count_lines(file)
+    except OSError as exc:
+        raise click.ClickException(f"cannot read stream file {str(file)!r}: {exc.strerror}.") from exc
+    outcome = _Outcome()
+    err = click.get_text_stream("stderr")
+    if not as_json:
+        click.echo(_HEADER)
+    last_count = 0
+    with click.progressbar(length=total, label="analysing", file=err) as bar:
+        for a in analyse_stream(file, registry, prefix=prefix, outcome=outcome):
+            if as_json:
+                record = _json_safe(analysis_to_json(a))
+                click.echo(json.dumps(record, separators=(",", ":"), allow_nan=False))
+            else:
+                click.echo(_table_row(a))
+            bar.update(outcome.seen - last_count)
+            last_count = outcome.seen
+        bar.update(total - last_count)
+    n_rej = sum(outcome.rejected.values())
+    click.echo(f"{outcome.analyses} waveforms analysed, {n_rej} messages rejected.", err=True)
+    for reason, count in sorted(outcome.rejected.items()):
+        click.echo(f"  rejected {count} x {reason}: e.g. {outcome.examples[reason]}", err=True)

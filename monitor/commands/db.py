@@ -1,0 +1,100 @@
+"""``whirlwatch db``: create or upgrade the store's schema, thin old data."""
+
+from __future__ import annotations
+
+import click
+
+from monitor.config import ConfigError, load_settings
+
+
+def database_options(f):  # type: ignore[no-untyped-def]
+    """``--database URL`` and ``--config FILE`` (the URL wins; else the service file,
+    the environment and the default SQLite file, in that order)."""
+    f = click.option(
+        "--config",
+        "config_file",
+        type=click.Path(dir_okay=False),
+        default=None,
+        help="Service file (TOML) to take the database URL from.",
+    )(f)
+    f = click.option(
+        "--database",
+        "database_url",
+        metavar="URL",
+        default=None,
+        help="SQLAlchemy database URL (sqlite:///FILE or postgresql+psycopg://...).",
+    )(f)
+    return f
+
+
+def resolve_database_url(database_url: str | None, config_file: str | None) -> str:
+    """The database URL from the flag, else from the settings; UsageError on a bad file."""
+    try:
+        settings = load_settings(config_file, overrides={"database.url": database_url})
+    except ConfigError as exc:
+        raise click.UsageError(str(exc)) from exc
+    return settings.database.url
+
+
+def open_store(database_url: str | None, config_file: str | None):  # type: ignore[no-untyped-def]
+    """Open the store for a command; ClickException with the fix when the schema is missing."""
+    from monitor.store.db import Store, StoreError
+
+    url = resolve_database_url(database_url, config_file)
+    try:
+        return Store.open(url)
+    except StoreError as exc:
+        raise click.ClickException(str(exc)) from exc
+
+
+@click.group("db")
+def db() -> None:
+    """The SQL store: schema and housekeeping."""
+
+
+@db.command("upgrade")
+@database_options
+@click.option("--revision", default="head", show_default=True, help="Target schema revision.")
+def upgrade_cmd(database_url: str | None, config_file: str | None, revision: str) -> None:
+    """Create the tables or bring them up to the newest schema."""
+    from sqlalchemy.exc import OperationalError
+
+    from monitor.store.db import StoreError, make_engine
+    from monitor.store.migrate import current_revision, upgrade_engine
+
+    url = resolve_database_url(database_url, config_file)
+    try:
+        engine = make_engine(url)
+    except StoreError as exc:
+        raise click.UsageError(str(exc)) from exc
+    shown = engine.url.render_as_string(hide_password=True)
+    try:
+        upgrade_engine(engine, revision)
+        click.echo(f"database {shown} is at schema revision {current_revision(engine)}", err=True)
+    except OperationalError as exc:
+        raise click.ClickException(f"cannot reach database {shown}: {exc.orig}") from exc
+    finally:
+        engine.dispose()
+
+
+@db.command("thin")
+@database_options
+def thin_cmd(database_url: str | None, config_file: str | None) -> None:
+    """Apply the retention policy once (alarm history is never deleted)."""
+    from monitor.store.retention import apply_retention
+
+    try:
+        settings = load_settings(config_file, overrides={"database.url": database_url})
+    except ConfigError as exc:
+        raise click.UsageError(str(exc)) from exc
+    store = open_store(settings.database.url, None)
+    try:
+        with store.transaction() as session:
+            result = apply_retention(session, settings.retention.policy())
+    finally:
+        store.close()
+    click.echo(
+        f"deleted {result.measurements} measurements, {result.speed_readings} speed readings, "
+        f"{result.spectrum_snapshots} spectra, {result.dead_letters} dead letters",
+        err=True,
+    )

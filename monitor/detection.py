@@ -1,0 +1,701 @@
+"""State detection for one machine: readings in, alarm transitions and evaluations out.
+
+:class:`MachineEvaluator` ties together sensor health (``health``), separation margins
+(``margins``), severity zones (``zones``), baselines and trends (``growth``) and the alarm
+engine (``alarms``). It is deterministic and does no I/O: the caller passes each
+:class:`~monitor.analysis.ReadingAnalysis` with its :class:`~monitor.readings.Waveform`,
+speed readings, and the current time for stale-stream checks; it gets back
+:class:`~monitor.alarms.Transition` objects to store and publish, and a
+:class:`ReadingEvaluation` for the store and the dashboard. ``snapshot()`` returns a
+JSON-able dict; ``MachineEvaluator.restore`` rebuilds the same state after a restart.
+:class:`Detector` does the same for every machine of a registry.
+
+Rules
+-----
+- A reading flagged by sensor health raises ``sensor_fault`` alarms only: it updates no
+  machine alarm (resonance or growth), and its speed is not used.
+- Resonance alarms are per machine (``point`` None), subject ``'<mode>@<excitation>'``; they
+  advance on every new speed value (from a reading or a speed message; a value whose
+  time is not later than the last one is shown but not counted twice).
+- Growth ignores readings taken with an excitation inside a required band (not comparable
+  with the baseline); the next growth transition's evidence counts them.
+- Baseline ratios of speed-dependent features (overall, 1x, 2x, orders) are compared only
+  when the running speed is within ``baseline_speed_band_pct`` of the baseline's speed;
+  the speed-normalised 1x is always compared.
+
+Settings (keys of the machine's registry table, ``machine.settings``; docs/alarms.md):
+see :class:`DetectionSettings`.
+"""
+
+from __future__ import annotations
+
+import math
+from collections import deque
+from collections.abc import Mapping
+from dataclasses import dataclass, field, fields
+from typing import Any
+
+from monitor.alarms import AlarmEngine, AlarmKey, Transition, levels_above, severity_rank
+from monitor.analysis import ReadingAnalysis
+from monitor.growth import Baseline, Trend, TrendWindow, time_to_limit
+from monitor.health import HealthReport, check_waveform, is_stale
+from monitor.margins import (
+    ApproachForecast,
+    MarginRow,
+    approach_forecasts,
+    margin_table,
+    order_label,
+)
+from monitor.readings import SpeedReading, Waveform
+from monitor.registry import MACHINE_CLASSES, Machine, Registry
+from monitor.zones import ZoneLimits, next_boundary, zone_limits, zone_of
+
+#: Severity of each sensor-health check (docs/alarms.md).
+SENSOR_FAULT_SEVERITY = {
+    "flat_line": "alert", "clipping": "alert", "dropouts": "alert", "stale": "alert",
+    "sample_rate": "alert", "unit": "alert", "spikes": "advisory",
+}
+
+
+@dataclass(frozen=True)
+class DetectionSettings:
+    """Detection settings of one machine; the field names are the registry keys.
+
+    Attributes
+    ----------
+    required_margin_pct : float or None
+        Machine default required margin (%) for modes with no AF, damping or own margin;
+        None uses 10 % (common practice).
+    approach_factor : float
+        Approach band as a multiple of the required margin (default 1.5).
+    persistence : int
+        Consecutive readings before a raise, escalation, de-escalation or clear (3).
+    hysteresis_pct : float
+        A condition holds until the value falls this many percent inside its limit (10 %).
+    baseline_readings : int
+        Readings in the baseline learning window (20).
+    growth_ratios : tuple of two floats
+        Baseline ratios for advisory and alert (2, 4: +6 dB, +12 dB, common practice).
+    baseline_speed_band_pct : float
+        Speed-dependent features are compared with the baseline only within this speed
+        band, percent of the baseline speed (10 %).
+    baseline_sigmas : float
+        A ratio alarm also needs the value this many robust standard deviations (1.4826 x
+        MAD) above the baseline median, so a noisy feature does not alarm on noise (3).
+    trend_window : int
+        Readings in the sliding Theil-Sen window (50).
+    trend_min_readings : int
+        Readings before a trend is given (10).
+    trend_horizon_days : float
+        Alarm when the projected time to the next limit is shorter (7 days).
+    approach_warning_s : float
+        Advisory when a ramping speed brings an excitation into a required band within
+        this time, seconds (600).
+    speed_history : int
+        Speed values kept for the speed trend (12).
+    reading_interval_s : float or None
+        Expected time between readings of a point, seconds; None learns it (median of
+        the last intervals).
+    stale_intervals : float
+        A point is stale after this many expected intervals without a reading (3).
+    """
+
+    required_margin_pct: float | None = None
+    approach_factor: float = 1.5
+    persistence: int = 3
+    hysteresis_pct: float = 10.0
+    baseline_readings: int = 20
+    growth_ratios: tuple[float, float] = (2.0, 4.0)
+    baseline_speed_band_pct: float = 10.0
+    baseline_sigmas: float = 3.0
+    trend_window: int = 50
+    trend_min_readings: int = 10
+    trend_horizon_days: float = 7.0
+    approach_warning_s: float = 600.0
+    speed_history: int = 12
+    reading_interval_s: float | None = None
+    stale_intervals: float = 3.0
+
+    @classmethod
+    def from_mapping(cls, settings: Mapping[str, Any], where: str = "settings") -> DetectionSettings:
+        """Build from registry keys, ignoring keys that are not detection settings;
+        ValueError naming the key for a bad value."""
+        names = {f.name for f in fields(cls)}
+        kw = {k: v for k, v in settings.items() if k in names}
+        if "growth_ratios" in kw and isinstance(kw["growth_ratios"], list):
+            kw["growth_ratios"] = tuple(kw["growth_ratios"])
+        s = cls(**kw)
+        s.validate(where)
+        return s
+
+    def validate(self, where: str = "settings") -> None:
+        def num(name: str, lo: float, hi: float = math.inf, *, integer: bool = False,
+                lo_open: bool = False) -> None:
+            v = getattr(self, name)
+            ok = isinstance(v, int | float) and not isinstance(v, bool) and math.isfinite(v)
+            ok = ok and (v > lo if lo_open else v >= lo) and v <= hi
+            if integer:
+                ok = ok and isinstance(v, int)
+            if not ok:
+                kind = "an integer" if integer else "a number"
+                bound = f"> {lo:g}" if lo_open else f">= {lo:g}"
+                raise ValueError(f"{where}: '{name}' must be {kind} {bound}"
+                                 f"{'' if hi == math.inf else f' and <= {hi:g}'}, got {v!r}.")
+
+        if self.required_margin_pct is not None:
+            num("required_margin_pct", 0.0, 99.0)
+        num("approach_factor", 1.0)
+        num("persistence", 1, integer=True)
+        num("hysteresis_pct", 0.0, 90.0)
+        num("baseline_readings", 3, integer=True)
+        num("baseline_speed_band_pct", 0.0, lo_open=True)
+        num("baseline_sigmas", 0.0)
+        num("trend_window", 3, integer=True)
+        num("trend_min_readings", 3, self.trend_window, integer=True)
+        num("trend_horizon_days", 0.0, lo_open=True)
+        num("approach_warning_s", 0.0)
+        num("speed_history", 3, integer=True)
+        num("stale_intervals", 1.0)
+        if self.reading_interval_s is not None:
+            num("reading_interval_s", 0.0, lo_open=True)
+        r = self.growth_ratios
+        if (not isinstance(r, tuple) or len(r) != 2
+                or not all(isinstance(x, int | float) and math.isfinite(x) for x in r)
+                or not 1.0 < r[0] < r[1]):
+            raise ValueError(f"{where}: 'growth_ratios' must be two increasing numbers above 1, got {r!r}.")
+
+
+def validate_machine(machine: Machine) -> DetectionSettings:
+    """Check what detection relies on; ValueError naming the machine, entry and field.
+
+    Returns the machine's :class:`DetectionSettings`.
+    """
+    where = f"machine {machine.id!r}"
+    if machine.machine_class not in MACHINE_CLASSES:
+        raise ValueError(f"{where}: 'class' must be one of {MACHINE_CLASSES}, got {machine.machine_class!r}.")
+    for o in machine.excitation_orders:
+        if not (isinstance(o, int | float) and math.isfinite(o) and o > 0):
+            raise ValueError(f"{where}: 'excitation_orders' must be positive numbers, got {o!r}.")
+    if not machine.excitation_orders:
+        raise ValueError(f"{where}: 'excitation_orders' must not be empty.")
+    lf = machine.line_frequency_hz
+    if lf is not None and not (math.isfinite(lf) and lf > 0):
+        raise ValueError(f"{where}: 'line_frequency_hz' must be a positive frequency, got {lf!r}.")
+    for mode in machine.modes:
+        mw = f"{where}, mode {mode.name!r}"
+        f = mode.frequency_hz
+        if not (isinstance(f, int | float) and math.isfinite(f) and f > 0):
+            raise ValueError(f"{mw}: 'frequency_hz' must be a positive frequency in Hz, got {f!r}.")
+        z = mode.damping_ratio
+        if z is not None and not (math.isfinite(z) and 0.0 < z < 1.0):
+            raise ValueError(f"{mw}: 'damping_ratio' must lie in (0, 1), got {z!r}.")
+        af = mode.amplification_factor
+        if af is not None and not (math.isfinite(af) and af >= 1.0):
+            raise ValueError(f"{mw}: 'amplification_factor' must be >= 1, got {af!r}.")
+        rm = mode.required_margin_pct
+        if rm is not None and not (math.isfinite(rm) and 0.0 <= rm < 100.0):
+            raise ValueError(f"{mw}: 'required_margin_pct' must lie in [0, 100), got {rm!r}.")
+    zone_limits(machine.machine_class, machine.limits_mm_s)
+    for p in machine.points:
+        zone_limits(machine.machine_class, machine.limits_mm_s, p.limits_mm_s)
+    return DetectionSettings.from_mapping(machine.settings, where)
+
+
+@dataclass(frozen=True)
+class FeatureEvaluation:
+    """One growth feature of one reading.
+
+    ``value`` in ``unit``; baseline median/MAD in the same unit; ``ratio`` value over the
+    baseline median (None while learning or not comparable); ``baseline_status`` in words;
+    ``trend_per_day`` Theil-Sen slope (unit/day); ``limit_name``/``limit_value`` the next
+    limit the trend is projected to (a zone boundary for ``overall``, a baseline ratio
+    limit otherwise); ``time_to_limit_s`` seconds (None when not rising); ``raise_level``
+    and ``hold_level`` as given to the alarm engine.
+    """
+
+    name: str
+    value: float
+    unit: str
+    baseline_median: float | None
+    baseline_mad: float | None
+    baseline_status: str
+    ratio: float | None
+    trend_per_day: float | None
+    limit_name: str | None
+    limit_value: float | None
+    time_to_limit_s: float | None
+    raise_level: str | None
+    hold_level: str | None
+    causes: tuple[str, ...] = ()
+
+    def to_json(self) -> dict:
+        return {
+            "name": self.name, "value": self.value, "unit": self.unit,
+            "baseline_median": self.baseline_median, "baseline_mad": self.baseline_mad,
+            "baseline_status": self.baseline_status, "ratio": self.ratio,
+            "trend_per_day": self.trend_per_day, "limit_name": self.limit_name,
+            "limit_value": self.limit_value, "time_to_limit_s": self.time_to_limit_s,
+            "time_to_limit_days": None if self.time_to_limit_s is None else self.time_to_limit_s / 86400.0,
+            "raise_level": self.raise_level, "hold_level": self.hold_level,
+            "causes": list(self.causes),
+        }
+
+
+@dataclass(frozen=True)
+class ReadingEvaluation:
+    """What detection made of one reading (for the store and the dashboard).
+
+    ``zone`` of ``overall_velocity_mm_s_rms`` against ``zone_limits``; ``margins`` table at
+    the reading's speed; ``approach`` forecasts from the speed trend; ``features`` the
+    growth features; ``growth_ignored`` why growth skipped the reading (None when used);
+    ``machine_alarms_suppressed`` when sensor health flagged the reading; ``transitions``
+    the alarm transitions the reading caused.
+    """
+
+    machine: str
+    point: str
+    ts: float
+    reading_id: str | None
+    speed_hz: float | None
+    overall_velocity_mm_s_rms: float | None
+    zone: str | None
+    zone_limits: ZoneLimits
+    margins: tuple[MarginRow, ...]
+    approach: tuple[ApproachForecast, ...]
+    features: tuple[FeatureEvaluation, ...]
+    health: HealthReport
+    growth_ignored: str | None
+    machine_alarms_suppressed: bool
+    transitions: tuple[Transition, ...] = field(default_factory=tuple)
+
+    def feature(self, name: str) -> FeatureEvaluation | None:
+        for f in self.features:
+            if f.name == name:
+                return f
+        return None
+
+    def to_json(self) -> dict:
+        return {
+            "machine": self.machine, "point": self.point, "ts": self.ts,
+            "reading_id": self.reading_id, "speed_hz": self.speed_hz,
+            "overall_velocity_mm_s_rms": self.overall_velocity_mm_s_rms, "zone": self.zone,
+            "zone_limits_mm_s": list(self.zone_limits.as_tuple()),
+            "zone_limits_source": self.zone_limits.source,
+            "margins": [m.to_json() for m in self.margins],
+            "approach": [a.to_json() for a in self.approach],
+            "features": [f.to_json() for f in self.features],
+            "health": self.health.to_json(), "growth_ignored": self.growth_ignored,
+            "machine_alarms_suppressed": self.machine_alarms_suppressed,
+            "transitions": [t.to_json() for t in self.transitions],
+        }
+
+
+def _features(analysis: ReadingAnalysis, machine: Machine) -> list[tuple[str, float, str, bool]]:
+    """(name, value, unit, speed dependent) of the growth features present in ``analysis``."""
+    out: list[tuple[str, float, str, bool]] = [
+        ("overall", float(analysis.overall_velocity_mm_s_rms), "mm/s RMS", True)
+    ]
+    one = analysis.order(1.0)
+    if one is not None:
+        out.append(("1x", float(one.velocity_mm_s), "mm/s peak", True))
+    if math.isfinite(analysis.one_x_normalised):
+        out.append(("1x_norm", float(analysis.one_x_normalised), "mm/s peak per Hz^2", False))
+    for o in sorted({2.0, *(float(x) for x in machine.excitation_orders)} - {1.0}):
+        oa = analysis.order(o)
+        if oa is not None:
+            out.append((order_label(o), float(oa.velocity_mm_s), "mm/s peak", True))
+    return out
+
+
+class MachineEvaluator:
+    """Detection state of one machine (see the module docstring).
+
+    Parameters
+    ----------
+    machine : Machine
+        Validated with :func:`validate_machine` (ValueError naming the field).
+    """
+
+    def __init__(self, machine: Machine) -> None:
+        self.machine = machine
+        self.settings = validate_machine(machine)
+        s = self.settings
+        self.engine = AlarmEngine(s.persistence)
+        self._h = s.hysteresis_pct / 100.0
+        self._baselines: dict[tuple[str, str], Baseline] = {}
+        self._trends: dict[tuple[str, str], TrendWindow] = {}
+        self._ignored: dict[str, dict[str, int]] = {}
+        self._speed: deque[tuple[float, float]] = deque(maxlen=s.speed_history)
+        self._last_ts: dict[str, float] = {}
+        self._intervals: dict[str, deque[float]] = {}
+        self._limits = {p.id: zone_limits(machine.machine_class, machine.limits_mm_s, p.limits_mm_s)
+                        for p in machine.points}
+
+    # ------------------------------------------------------------------ readings
+
+    def evaluate(self, analysis: ReadingAnalysis | None, waveform: Waveform | None = None) -> ReadingEvaluation:
+        """Evaluate one reading of a point.
+
+        ``analysis`` may be None when the analysis failed (then only health is checked,
+        from ``waveform``); ``waveform`` may be None when only the analysis is at hand
+        (then no health checks). At least one is required.
+        """
+        src = analysis if analysis is not None else waveform
+        if src is None:
+            raise ValueError("evaluate needs an analysis or a waveform, got neither.")
+        if src.machine != self.machine.id:
+            raise ValueError(f"reading is for machine {src.machine!r}, this evaluator is for {self.machine.id!r}.")
+        point = self.machine.point(src.point)
+        ts = float(src.ts)
+        rid = src.reading_id
+        trans: list[Transition] = []
+
+        health = check_waveform(waveform, point) if waveform is not None else HealthReport()
+        trans += self._arrival(point.id, ts, rid)
+        trans += self._sensor_alarms(point.id, ts, rid, health)
+        suppressed = not health.ok or analysis is None
+
+        limits = self._limits[point.id]
+        speed = float(analysis.speed_hz) if analysis is not None else None
+        margins: tuple[MarginRow, ...] = ()
+        approach: tuple[ApproachForecast, ...] = ()
+        if speed is not None and math.isfinite(speed) and speed > 0:
+            if suppressed:
+                margins = self._margins(speed)
+            else:
+                margins, approach, t = self._speed_value(ts, speed, rid)
+                trans += t
+
+        overall = zone = None
+        feats: tuple[FeatureEvaluation, ...] = ()
+        ignored: str | None = None
+        if analysis is not None:
+            overall = float(analysis.overall_velocity_mm_s_rms)
+            zone = zone_of(overall, limits) if math.isfinite(overall) and overall >= 0 else None
+            if not health.ok:
+                ignored = "sensor fault: " + ", ".join(health.checks)
+            else:
+                inside = [m.subject for m in margins if m.status == "inside"]
+                if inside:
+                    ignored = "resonance band: " + ", ".join(inside)
+            feats, t = self._growth(analysis, point.id, limits, ignored)
+            trans += t
+        return ReadingEvaluation(
+            machine=self.machine.id, point=point.id, ts=ts, reading_id=rid, speed_hz=speed,
+            overall_velocity_mm_s_rms=overall, zone=zone, zone_limits=limits, margins=margins,
+            approach=approach, features=feats, health=health, growth_ignored=ignored,
+            machine_alarms_suppressed=suppressed, transitions=tuple(trans),
+        )
+
+    def observe_speed(self, reading: SpeedReading) -> list[Transition]:
+        """A running-speed message (Hz) for this machine; advances resonance alarms."""
+        if reading.machine != self.machine.id:
+            raise ValueError(f"speed is for machine {reading.machine!r}, this evaluator is for {self.machine.id!r}.")
+        sp = float(reading.speed_hz)
+        if not (math.isfinite(sp) and sp > 0):
+            raise ValueError(f"speed_hz must be a positive finite speed, got {reading.speed_hz!r}.")
+        return self._speed_value(float(reading.ts), sp, None)[2]
+
+    def margins_at(self, speed_hz: float) -> tuple[MarginRow, ...]:
+        """The margin table at any running speed (Hz), e.g. for a resonance map."""
+        return self._margins(speed_hz)
+
+    def check_stale(self, now: float) -> list[Transition]:
+        """Raise ``sensor_fault``/``stale`` for points silent for ``stale_intervals``
+        expected intervals at time ``now`` (epoch seconds); cleared by the next reading."""
+        out: list[Transition] = []
+        for pid, last in sorted(self._last_ts.items()):
+            exp = self._expected_interval(pid)
+            if is_stale(last, now, exp, self.settings.stale_intervals):
+                key = AlarmKey(self.machine.id, pid, "sensor_fault", "stale")
+                ev = {"check": "stale", "last_reading_ts": last, "now": now,
+                      "expected_interval_s": exp, "silent_s": now - last,
+                      "message": f"no reading for {now - last:.0f} s, expected one every {exp:.0f} s"}
+                out += self.engine.update(key, now, "alert", "alert", ev, None, persistence=1)
+        return out
+
+    # ------------------------------------------------------------------ engineer actions
+
+    def acknowledge(self, alarm_id: str, user: str, comment: str, ts: float) -> Transition:
+        """Acknowledge an alarm by a named user with a comment (does not clear it)."""
+        return self.engine.acknowledge(alarm_id, user, comment, ts)
+
+    def restart_baseline(self, point_id: str, ts: float, feature: str | None = None) -> None:
+        """Learn the baseline (and trend) of ``point_id`` again from the next readings,
+        for one ``feature`` or all; e.g. after maintenance."""
+        self.machine.point(point_id)
+        for (pid, name), b in list(self._baselines.items()):
+            if pid == point_id and (feature is None or name == feature):
+                b.restart(ts)
+                self._trends[(pid, name)].clear()
+
+    def active_alarms(self) -> list[dict]:
+        """JSON of every alarm not cleared."""
+        return [a.to_json() for a in self.engine.active()]
+
+    # ------------------------------------------------------------------ persistence
+
+    def snapshot(self) -> dict:
+        """JSON-able state of this machine's detection."""
+        return {
+            "machine": self.machine.id,
+            "engine": self.engine.snapshot(),
+            "baselines": [[p, f, b.snapshot()] for (p, f), b in self._baselines.items()],
+            "trends": [[p, f, w.snapshot()] for (p, f), w in self._trends.items()],
+            "ignored": {p: dict(c) for p, c in self._ignored.items()},
+            "speed": [list(x) for x in self._speed],
+            "last_ts": dict(self._last_ts),
+            "intervals": {p: list(d) for p, d in self._intervals.items()},
+        }
+
+    @classmethod
+    def restore(cls, machine: Machine, data: Mapping[str, Any]) -> MachineEvaluator:
+        """Rebuild from :meth:`snapshot` (the machine's registry entry may have changed)."""
+        if data.get("machine") != machine.id:
+            raise ValueError(f"snapshot is for machine {data.get('machine')!r}, not {machine.id!r}.")
+        ev = cls(machine)
+        eng = dict(data["engine"])
+        eng["persistence"] = ev.settings.persistence
+        ev.engine = AlarmEngine.restore(eng)
+        for p, f, b in data.get("baselines", []):
+            ev._baselines[(p, f)] = Baseline.restore(b)
+        for p, f, w in data.get("trends", []):
+            ev._trends[(p, f)] = TrendWindow.restore(w)
+        ev._ignored = {p: dict(c) for p, c in data.get("ignored", {}).items()}
+        ev._speed.extend((float(t), float(s)) for t, s in data.get("speed", []))
+        ev._last_ts = {p: float(t) for p, t in data.get("last_ts", {}).items()}
+        ev._intervals = {p: deque(v, maxlen=10) for p, v in data.get("intervals", {}).items()}
+        return ev
+
+    # ------------------------------------------------------------------ internals
+
+    def _margins(self, speed_hz: float) -> tuple[MarginRow, ...]:
+        s = self.settings
+        return margin_table(self.machine, speed_hz, approach_factor=s.approach_factor,
+                            machine_default_pct=s.required_margin_pct)
+
+    def _expected_interval(self, pid: str) -> float | None:
+        if self.settings.reading_interval_s is not None:
+            return self.settings.reading_interval_s
+        d = self._intervals.get(pid)
+        if not d or len(d) < 3:
+            return None
+        return sorted(d)[len(d) // 2]
+
+    def _arrival(self, pid: str, ts: float, rid: str | None) -> list[Transition]:
+        last = self._last_ts.get(pid)
+        if last is not None and ts > last:
+            self._intervals.setdefault(pid, deque(maxlen=10)).append(ts - last)
+        if last is None or ts > last:
+            self._last_ts[pid] = ts
+        key = AlarmKey(self.machine.id, pid, "sensor_fault", "stale")
+        a = self.engine.alarm(key)
+        if a is not None and a.state != "cleared":
+            return self.engine.update(key, ts, None, None, {"check": "stale", "message": "readings arrive again"},
+                                      rid, persistence=1)
+        return []
+
+    def _sensor_alarms(self, pid: str, ts: float, rid: str | None, health: HealthReport) -> list[Transition]:
+        out: list[Transition] = []
+        flagged = {f.check: f for f in health.flags}
+        for check, sev in SENSOR_FAULT_SEVERITY.items():
+            if check == "stale":
+                continue
+            key = AlarmKey(self.machine.id, pid, "sensor_fault", check)
+            f = flagged.get(check)
+            if f is None and self.engine.alarm(key) is None:
+                continue  # nothing to count for a check that never failed
+            lvl = sev if f is not None else None
+            ev = {"check": check, "message": f.message if f else "check passes",
+                  "value": f.value if f else None, "reading_id": rid}
+            out += self.engine.update(key, ts, lvl, lvl, ev, rid)
+        return out
+
+    def _speed_value(self, ts: float, speed: float, rid: str | None
+                     ) -> tuple[tuple[MarginRow, ...], tuple[ApproachForecast, ...], list[Transition]]:
+        rows = self._margins(speed)
+        if self._speed and ts <= self._speed[-1][0]:
+            return rows, (), []  # the same instant seen from another point: count it once
+        self._speed.append((ts, speed))
+        s = self.settings
+        approach: tuple[ApproachForecast, ...] = ()
+        if len(self._speed) >= 5:
+            t, v = zip(*self._speed, strict=True)
+            approach = tuple(a for a in approach_forecasts(
+                self.machine, t, v, machine_default_pct=s.required_margin_pct)
+                if a.seconds <= s.approach_warning_s * (1.0 + self._h))
+        soon = {a.subject: a for a in approach}
+        h = self._h
+        out: list[Transition] = []
+        for row in rows:
+            key = AlarmKey(self.machine.id, None, "resonance_proximity", row.subject)
+            if row.required_pct <= 0:
+                if self.engine.alarm(key) is not None:
+                    out += self.engine.update(key, ts, None, None, {"reason": "no margin required"}, rid)
+                continue
+            sm, req, appr = row.margin_pct, row.required_pct, row.approach_pct
+            zeta = 1.0 / (2.0 * row.amplification_factor) if row.amplification_factor else None
+            dev = abs(row.frequency_ratio - 1.0)
+            fc = soon.get(row.subject)
+            raise_l = hold_l = None
+            if fc is not None:
+                hold_l = "advisory"
+                if fc.seconds <= s.approach_warning_s:
+                    raise_l = "advisory"
+            if sm < appr:
+                raise_l = "advisory"
+            if sm < appr * (1 + h):
+                hold_l = "advisory"
+            if sm < req:
+                raise_l = "alert"
+            if sm < req * (1 + h):
+                hold_l = "alert"
+            if zeta is not None and sm < req and dev <= zeta:
+                raise_l = "severe"
+            if zeta is not None and sm < req * (1 + h) and dev <= zeta * (1 + h):
+                hold_l = "severe"
+            if raise_l is None and hold_l is None and self.engine.alarm(key) is None:
+                continue  # never alarmed and nothing to count
+            ev = {"speed_hz": speed, "reading_id": rid, **row.to_json()}
+            if fc is not None:
+                ev["approach"] = fc.to_json()
+            out += self.engine.update(key, ts, raise_l, hold_l, ev, rid)
+        return rows, approach, out
+
+    def _growth(self, analysis: ReadingAnalysis, pid: str, limits: ZoneLimits, ignored: str | None
+                ) -> tuple[tuple[FeatureEvaluation, ...], list[Transition]]:
+        s = self.settings
+        h = self._h
+        horizon_s = s.trend_horizon_days * 86400.0
+        ts = float(analysis.ts)
+        speed = float(analysis.speed_hz)
+        counts = self._ignored.setdefault(pid, {})
+        if ignored is not None:
+            reason = ignored.split(":")[0]
+            counts[reason] = counts.get(reason, 0) + 1
+        feats: list[FeatureEvaluation] = []
+        out: list[Transition] = []
+        for name, value, unit, speed_dep in _features(analysis, self.machine):
+            if not math.isfinite(value) or value < 0:
+                continue
+            k = (pid, name)
+            base = self._baselines.get(k)
+            if base is None:
+                base = self._baselines[k] = Baseline(s.baseline_readings)
+                self._trends[k] = TrendWindow(s.trend_window, s.trend_min_readings)
+            win = self._trends[k]
+            comparable = True
+            if ignored is None:
+                if not base.ready:
+                    base.add(value, speed, ts)
+                bs = base.speed_hz
+                comparable = not (speed_dep and bs and abs(speed - bs) > s.baseline_speed_band_pct / 100.0 * bs)
+                if comparable or name == "overall":
+                    win.add(ts, value)
+            st = base.stats
+            ratio = base.ratio(value) if (base.ready and comparable) else None
+            if not base.ready:
+                status = f"learning {len(base.values)}/{base.size}"
+            elif not comparable:
+                status = f"not comparable: speed {speed:.2f} Hz, baseline at {base.speed_hz:.2f} Hz"
+            else:
+                status = "ready"
+            trend: Trend | None = win.trend() if ignored is None else None
+            # Next limit: zone boundary for the overall level, baseline ratio limit otherwise.
+            lim_name = lim_val = None
+            if name == "overall":
+                nb = next_boundary(value, limits)
+                if nb is not None:
+                    lim_name, lim_val = nb
+            elif ratio is not None and st is not None:
+                for r in s.growth_ratios:
+                    if value < r * st.median:
+                        lim_name, lim_val = f"{r:g}x baseline", r * st.median
+                        break
+            ttl = time_to_limit(trend, lim_val) if (trend is not None and lim_val is not None) else None
+            # (raise level, hold level, cause) from each rule; the worst of each wins.
+            found: list[tuple[str | None, str | None, str]] = []
+            if name == "overall":
+                r, hl = levels_above(value, {"alert": limits.bc, "severe": limits.cd}, h)
+                found.append((r, hl, f"zone {zone_of(value, limits)} ({value:.3g} mm/s RMS)"))
+            if ratio is not None and st is not None:
+                r, hl = levels_above(ratio, {"advisory": s.growth_ratios[0], "alert": s.growth_ratios[1]}, h)
+                if value <= st.median + s.baseline_sigmas * st.sigma:
+                    r = None  # within the baseline's own scatter
+                found.append((r, hl, f"{ratio:.2f}x baseline"))
+            # Trend: only towards limits that matter (B/C and C/D, or a ratio limit).
+            if ttl is not None and lim_name != "A/B":
+                r = "advisory" if ttl <= horizon_s else None
+                hl = "advisory" if ttl <= horizon_s * (1 + h) else None
+                found.append((r, hl, f"{lim_name} in {ttl / 86400.0:.1f} days at the current trend"))
+            found = [f for f in found if f[0] is not None or f[1] is not None]
+            raise_l = max((f[0] for f in found), key=severity_rank, default=None)
+            hold_l = max((f[1] for f in found), key=severity_rank, default=None)
+            causes = [f[2] for f in found]
+            fe = FeatureEvaluation(
+                name=name, value=value, unit=unit,
+                baseline_median=st.median if st else None, baseline_mad=st.mad if st else None,
+                baseline_status=status, ratio=ratio,
+                trend_per_day=trend.slope_per_day if trend else None,
+                limit_name=lim_name, limit_value=lim_val, time_to_limit_s=ttl,
+                raise_level=raise_l, hold_level=hold_l, causes=tuple(causes),
+            )
+            feats.append(fe)
+            if ignored is not None:
+                continue
+            key = AlarmKey(self.machine.id, pid, "amplitude_growth", name)
+            if raise_l is None and hold_l is None and self.engine.alarm(key) is None:
+                continue
+            ev = {"reading_id": analysis.reading_id, "speed_hz": speed,
+                  "zone_limits_mm_s": list(limits.as_tuple()), **fe.to_json(),
+                  "ignored_readings": dict(counts)}
+            out += self.engine.update(key, ts, raise_l, hold_l, ev, analysis.reading_id)
+        if out:
+            counts.clear()  # reported in these transitions' evidence
+        return tuple(feats), out
+
+
+class Detector:
+    """State detection for every machine of a registry (one :class:`MachineEvaluator` each)."""
+
+    def __init__(self, registry: Registry) -> None:
+        self.evaluators = {m.id: MachineEvaluator(m) for m in registry.machines}
+
+    def evaluator(self, machine_id: str) -> MachineEvaluator:
+        try:
+            return self.evaluators[machine_id]
+        except KeyError:
+            raise KeyError(f"no machine {machine_id!r} in the registry") from None
+
+    def evaluate(self, analysis: ReadingAnalysis | None, waveform: Waveform | None = None) -> ReadingEvaluation:
+        src = analysis if analysis is not None else waveform
+        if src is None:
+            raise ValueError("evaluate needs an analysis or a waveform, got neither.")
+        return self.evaluator(src.machine).evaluate(analysis, waveform)
+
+    def observe_speed(self, reading: SpeedReading) -> list[Transition]:
+        return self.evaluator(reading.machine).observe_speed(reading)
+
+    def check_stale(self, now: float) -> list[Transition]:
+        return [t for e in self.evaluators.values() for t in e.check_stale(now)]
+
+    def acknowledge(self, alarm_id: str, user: str, comment: str, ts: float) -> Transition:
+        for e in self.evaluators.values():
+            if e.engine.find(alarm_id) is not None:
+                return e.acknowledge(alarm_id, user, comment, ts)
+        raise KeyError(f"no alarm {alarm_id!r}")
+
+    def active_alarms(self) -> list[dict]:
+        return [a for e in self.evaluators.values() for a in e.active_alarms()]
+
+    def snapshot(self) -> dict:
+        return {"machines": {mid: e.snapshot() for mid, e in self.evaluators.items()}}
+
+    @classmethod
+    def restore(cls, registry: Registry, data: Mapping[str, Any]) -> Detector:
+        """Rebuild; machines new to the registry start fresh, removed ones are dropped."""
+        d = cls(registry)
+        for mid, snap in data.get("machines", {}).items():
+            if mid in d.evaluators:
+                d.evaluators[mid] = MachineEvaluator.restore(registry.machine(mid), snap)
+        return d

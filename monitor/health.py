@@ -1,0 +1,173 @@
+"""Sensor health: is a waveform fit to judge the machine by?
+
+Checks on one block of samples (flat line, clipping, spikes, dropouts), on the block
+against the registry (sample rate, unit) and on the stream (stale: no reading for several
+expected intervals). A flagged reading raises a ``sensor_fault`` alarm and is kept out of
+machine alarms: a broken sensor says nothing about the machine.
+
+Thresholds are common practice (no published source), chosen so that sinusoids, broadband
+noise and their sums never trip them (see tests/test_health.py) while the faults do:
+
+- flat line: the block's peak-to-peak is zero (or below ``flat_ptp``), or one value repeats
+  for more than ``flat_run_fraction`` of the block;
+- clipping: at least ``clip_fraction`` of the samples sit in runs of 3 or more consecutive
+  samples at the block's maximum or minimum (a sensor or amplifier at its rail);
+- spikes: 1 to ``spike_max_fraction`` of the samples lie more than ``spike_z`` robust
+  standard deviations (1.4826 x MAD) from the median: isolated, not a signal;
+- dropouts: non-finite samples, or runs of exact zeros of ``dropout_run`` samples or more;
+- sample rate: differs from the point's ``fs_hz`` by more than 0.1 %;
+- unit: differs from the point's ``unit``.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from monitor.readings import Waveform
+from monitor.registry import Point
+
+CHECKS = ("flat_line", "clipping", "spikes", "dropouts", "sample_rate", "unit", "stale")
+
+
+@dataclass(frozen=True)
+class HealthLimits:
+    """Thresholds of the block checks (dimensionless fractions unless stated)."""
+
+    flat_ptp: float = 0.0
+    flat_run_fraction: float = 0.10
+    clip_fraction: float = 0.005
+    spike_z: float = 25.0
+    spike_max_fraction: float = 0.001
+    dropout_run: int = 16
+    fs_rel_tol: float = 1e-3
+
+
+@dataclass(frozen=True)
+class HealthFlag:
+    """One failed check: ``check`` (one of :data:`CHECKS`), a plain ``message`` and the
+    measured ``value`` behind it."""
+
+    check: str
+    message: str
+    value: float | str | None = None
+
+    def to_json(self) -> dict:
+        return {"check": self.check, "message": self.message, "value": self.value}
+
+
+@dataclass(frozen=True)
+class HealthReport:
+    """Result of the checks on one waveform; ``ok`` when no check failed."""
+
+    flags: tuple[HealthFlag, ...] = field(default_factory=tuple)
+
+    @property
+    def ok(self) -> bool:
+        return not self.flags
+
+    @property
+    def checks(self) -> tuple[str, ...]:
+        return tuple(f.check for f in self.flags)
+
+    def to_json(self) -> dict:
+        return {"ok": self.ok, "flags": [f.to_json() for f in self.flags]}
+
+
+def _longest_run(mask: np.ndarray) -> int:
+    if not mask.any():
+        return 0
+    d = np.diff(np.concatenate(([0], mask.view(np.int8), [0])))
+    starts = np.flatnonzero(d == 1)
+    ends = np.flatnonzero(d == -1)
+    return int((ends - starts).max())
+
+
+def _samples_in_runs(mask: np.ndarray, min_run: int) -> int:
+    if not mask.any():
+        return 0
+    d = np.diff(np.concatenate(([0], mask.view(np.int8), [0])))
+    lengths = np.flatnonzero(d == -1) - np.flatnonzero(d == 1)
+    return int(lengths[lengths >= min_run].sum())
+
+
+def check_block(samples: np.ndarray, limits: HealthLimits | None = None) -> tuple[HealthFlag, ...]:
+    """Flat line, clipping, spikes and dropouts in one block of samples (any unit)."""
+    lim = limits or HealthLimits()
+    x = np.asarray(samples, dtype=float)
+    if x.ndim != 1 or x.size < 8:
+        raise ValueError(f"samples must be a 1-D array of at least 8 samples, got shape {x.shape}.")
+    n = x.size
+    flags: list[HealthFlag] = []
+    finite = np.isfinite(x)
+    if not finite.all():
+        bad = int((~finite).sum())
+        flags.append(HealthFlag("dropouts", f"{bad} samples are not finite numbers", bad))
+        x = x[finite]
+        if x.size < 8:
+            return tuple(flags)
+    ptp = float(np.ptp(x))
+    same = np.concatenate(([False], np.diff(x) == 0.0))
+    longest_same = _longest_run(same) + 1 if same.any() else 1
+    if ptp <= lim.flat_ptp:
+        flags.append(HealthFlag("flat_line", "the signal does not vary at all", ptp))
+        return tuple(flags)
+    zero_run = _longest_run(x == 0.0)
+    if zero_run >= lim.dropout_run:
+        flags.append(HealthFlag("dropouts", f"{zero_run} consecutive samples are exactly zero", zero_run))
+    elif longest_same > lim.flat_run_fraction * n:
+        flags.append(
+            HealthFlag("flat_line", f"one value repeats for {longest_same} of {n} samples", longest_same)
+        )
+    tol = 1e-9 * ptp
+    at_rail = (x >= x.max() - tol) | (x <= x.min() + tol)
+    clipped = _samples_in_runs(at_rail, 3)
+    if clipped >= lim.clip_fraction * n:
+        flags.append(
+            HealthFlag("clipping", f"{clipped} samples sit at the signal's rails", clipped / n)
+        )
+    # Median and MAD from an evenly strided subset of about 2,048 samples: robust
+    # statistics of a stationary block barely change, and the full median is costly.
+    sub = x[:: max(1, x.size // 2048)]
+    med = float(np.median(sub))
+    sigma = 1.4826 * float(np.median(np.abs(sub - med)))
+    if sigma == 0.0 and sub.size < x.size:
+        # The stride aliased onto a periodic signal; use every sample.
+        med = float(np.median(x))
+        sigma = 1.4826 * float(np.median(np.abs(x - med)))
+    dev = np.abs(x - med)
+    if sigma > 0:
+        k = int((dev > lim.spike_z * sigma).sum())
+        if 1 <= k <= max(1, int(lim.spike_max_fraction * n)):
+            flags.append(
+                HealthFlag("spikes", f"{k} isolated samples exceed {lim.spike_z:g} robust standard deviations", k)
+            )
+    return tuple(flags)
+
+
+def check_waveform(waveform: Waveform, point: Point, limits: HealthLimits | None = None) -> HealthReport:
+    """All per-reading checks of ``waveform`` against its registry ``point``."""
+    lim = limits or HealthLimits()
+    flags: list[HealthFlag] = []
+    if point.fs_hz is not None and (
+        not math.isfinite(waveform.fs_hz) or abs(waveform.fs_hz - point.fs_hz) > lim.fs_rel_tol * point.fs_hz
+    ):
+        flags.append(
+            HealthFlag("sample_rate", f"sample rate {waveform.fs_hz:g} Hz, registry expects {point.fs_hz:g} Hz",
+                       float(waveform.fs_hz))
+        )
+    if waveform.unit != point.unit:
+        flags.append(
+            HealthFlag("unit", f"unit {waveform.unit!r}, registry expects {point.unit!r}", waveform.unit)
+        )
+    flags.extend(check_block(waveform.samples, lim))
+    return HealthReport(tuple(flags))
+
+
+def is_stale(last_ts: float | None, now: float, expected_interval_s: float | None, intervals: float) -> bool:
+    """True when no reading came for ``intervals`` expected intervals (seconds)."""
+    if last_ts is None or expected_interval_s is None or expected_interval_s <= 0:
+        return False
+    return now - last_ts > intervals * expected_interval_s

@@ -1,0 +1,407 @@
+"""Separation margins between excitations and natural frequencies.
+
+For every mode of a machine and every excitation (each configured order of running speed,
+and 2x line frequency on motors) this module gives the separation margin in percent of the
+mode frequency, which side of the excitation the mode lies on, the margin required for the
+mode, the single-degree-of-freedom dynamic amplification at the current frequency ratio,
+and, from a speed trend, how long until an excitation enters a required band.
+
+Conventions
+-----------
+- Separation margin ``SM = |f_exc - f_mode| / f_mode * 100`` (percent of the mode
+  frequency, the convention of DESIGN.md; API 684 leaves open which speed to divide by).
+- ``side`` says where the MODE lies relative to the excitation: ``'below'`` (mode below the
+  excitation, the API 684 case of a critical below minimum operating speed) or ``'above'``
+  (mode above the excitation, a critical above maximum continuous speed).
+- The required band around a mode is therefore asymmetric:
+  ``[f_mode * (1 - req_above/100), f_mode * (1 + req_below/100)]``.
+
+References
+----------
+API Standard 684, "Rotordynamic Tutorial", separation margin rule (as quoted by API 617).
+W. T. Thomson, Theory of Vibration with Applications, forced SDOF response and half-power
+bandwidth (AF = Q ~= 1 / (2 zeta) for light damping).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Literal
+
+import numpy as np
+
+from monitor.growth import theil_sen
+from monitor.registry import Machine, Mode
+
+#: Required margin used when a mode has no amplification factor, no damping ratio and no
+#: configured margin, and the machine sets no default: 10 % (common practice, no source).
+COMMON_PRACTICE_MARGIN_PCT = 10.0
+#: Approach band as a multiple of the required margin (default of the issue).
+DEFAULT_APPROACH_FACTOR = 1.5
+#: API 684: below this amplification factor a mode is critically damped, no margin needed.
+API684_AF_THRESHOLD = 2.5
+
+Side = Literal["below", "above"]
+Status = Literal["clear", "approach", "inside"]
+
+
+def amplification_factor_from_damping(damping_ratio: float) -> float:
+    """Amplification factor (dimensionless) from the damping ratio, ``AF = 1 / (2 zeta)``.
+
+    The half-power bandwidth relation for a lightly damped single-degree-of-freedom mode
+    (Q = f_n / (f_2 - f_1) ~= 1 / (2 zeta)).
+
+    References
+    ----------
+    Thomson, Theory of Vibration with Applications, section on the quality factor and
+    bandwidth; API 684 defines AF by the half-power points.
+    """
+    z = float(damping_ratio)
+    if not (math.isfinite(z) and 0.0 < z < 1.0):
+        raise ValueError(f"damping_ratio must lie in (0, 1), got {damping_ratio!r}.")
+    return 1.0 / (2.0 * z)
+
+
+def api684_required_margin(amplification_factor: float, side: Side) -> float:
+    """Separation margin required by API 684, percent of the mode frequency.
+
+    ``AF < 2.5``: 0 (critically damped). Mode below the excitation:
+    ``min(16, 17 * (1 - 1/(AF - 1.5)))``. Mode above the excitation:
+    ``min(26, 10 + 17 * (1 - 1/(AF - 1.5)))``.
+
+    References
+    ----------
+    API Standard 684 (rotordynamic tutorial), separation margin clause, as used by API 617.
+    """
+    af = float(amplification_factor)
+    if not (math.isfinite(af) and af >= 1.0):
+        raise ValueError(f"amplification_factor must be a finite number >= 1, got {amplification_factor!r}.")
+    if side not in ("below", "above"):
+        raise ValueError(f"side must be 'below' or 'above', got {side!r}.")
+    if af < API684_AF_THRESHOLD:
+        return 0.0
+    core = 17.0 * (1.0 - 1.0 / (af - 1.5))
+    return min(16.0, core) if side == "below" else min(26.0, 10.0 + core)
+
+
+def sdof_amplification(frequency_ratio: float | np.ndarray, damping_ratio: float) -> float | np.ndarray:
+    """Dynamic amplification ``H(r) = 1 / sqrt((1 - r^2)^2 + (2 zeta r)^2)`` (dimensionless).
+
+    ``r`` = excitation frequency / natural frequency. The steady-state response of a
+    single-degree-of-freedom mode over its static response.
+
+    References
+    ----------
+    Thomson, Theory of Vibration with Applications, harmonically excited vibration.
+    """
+    z = float(damping_ratio)
+    if not (math.isfinite(z) and 0.0 < z < 1.0):
+        raise ValueError(f"damping_ratio must lie in (0, 1), got {damping_ratio!r}.")
+    r = np.asarray(frequency_ratio, dtype=float)
+    if np.any(~np.isfinite(r)) or np.any(r < 0):
+        raise ValueError(f"frequency_ratio must be finite and >= 0, got {frequency_ratio!r}.")
+    h = 1.0 / np.sqrt((1.0 - r * r) ** 2 + (2.0 * z * r) ** 2)
+    return float(h) if h.ndim == 0 else h
+
+
+@dataclass(frozen=True)
+class Excitation:
+    """One excitation: ``label`` ('1x', '9x', '2xLF'), ``order`` of running speed (None
+    for a fixed-frequency excitation) and ``frequency_hz`` at the current speed (Hz)."""
+
+    label: str
+    order: float | None
+    frequency_hz: float
+
+
+def order_label(order: float) -> str:
+    """'1x', '2x', '9x', '0.5x' ..."""
+    return f"{order:g}x"
+
+
+def excitations(machine: Machine, speed_hz: float) -> tuple[Excitation, ...]:
+    """Excitations of ``machine`` at running speed ``speed_hz`` (Hz).
+
+    Each of ``machine.excitation_orders`` times running speed, plus twice the line
+    frequency (fixed, not speed dependent) when ``machine.line_frequency_hz`` is set.
+    """
+    s = float(speed_hz)
+    if not (math.isfinite(s) and s >= 0):
+        raise ValueError(f"speed_hz must be finite and >= 0, got {speed_hz!r}.")
+    out = [Excitation(order_label(o), float(o), float(o) * s) for o in sorted(set(machine.excitation_orders))]
+    if machine.line_frequency_hz:
+        out.append(Excitation("2xLF", None, 2.0 * float(machine.line_frequency_hz)))
+    return tuple(out)
+
+
+@dataclass(frozen=True)
+class RequiredMargin:
+    """Required separation margins of one mode, percent of the mode frequency, on each
+    side, and where they come from (``basis``: 'configured', 'API 684 (AF)',
+    'API 684 (AF from damping)', 'machine default', 'common practice')."""
+
+    below_pct: float
+    above_pct: float
+    basis: str
+    amplification_factor: float | None
+
+    def for_side(self, side: Side) -> float:
+        return self.below_pct if side == "below" else self.above_pct
+
+
+def required_margin(mode: Mode, machine_default_pct: float | None = None) -> RequiredMargin:
+    """Required margin for ``mode``, in this order of preference.
+
+    1. ``mode.required_margin_pct`` (configured, both sides);
+    2. API 684 from ``mode.amplification_factor``;
+    3. API 684 from ``mode.damping_ratio`` via ``AF = 1 / (2 zeta)``;
+    4. ``machine_default_pct`` (per-machine setting ``required_margin_pct``);
+    5. :data:`COMMON_PRACTICE_MARGIN_PCT` (10 %, common practice).
+    """
+    if mode.required_margin_pct is not None:
+        m = float(mode.required_margin_pct)
+        return RequiredMargin(m, m, "configured", _af_of(mode))
+    af = _af_of(mode)
+    if af is not None:
+        basis = "API 684 (AF)" if mode.amplification_factor is not None else "API 684 (AF from damping)"
+        return RequiredMargin(
+            api684_required_margin(af, "below"), api684_required_margin(af, "above"), basis, af
+        )
+    if machine_default_pct is not None:
+        return RequiredMargin(float(machine_default_pct), float(machine_default_pct), "machine default", None)
+    return RequiredMargin(COMMON_PRACTICE_MARGIN_PCT, COMMON_PRACTICE_MARGIN_PCT, "common practice", None)
+
+
+def _af_of(mode: Mode) -> float | None:
+    if mode.amplification_factor is not None:
+        return float(mode.amplification_factor)
+    if mode.damping_ratio is not None:
+        return amplification_factor_from_damping(mode.damping_ratio)
+    return None
+
+
+def _zeta_of(mode: Mode) -> float | None:
+    if mode.damping_ratio is not None:
+        return float(mode.damping_ratio)
+    if mode.amplification_factor is not None and mode.amplification_factor > 0.5:
+        # Inverse of the half-power relation; only meaningful for AF > 0.5 (zeta < 1).
+        return 1.0 / (2.0 * float(mode.amplification_factor))
+    return None
+
+
+@dataclass(frozen=True)
+class MarginRow:
+    """Separation of one excitation from one mode at the current speed.
+
+    Attributes
+    ----------
+    mode, excitation : str
+        Mode name and excitation label ('1x', '9x', '2xLF').
+    order : float or None
+        Order of running speed, None for a fixed-frequency excitation.
+    mode_hz, excitation_hz : float
+        Frequencies, Hz.
+    margin_pct : float
+        Separation margin, percent of the mode frequency.
+    side : {'below', 'above'}
+        Where the mode lies relative to the excitation.
+    required_pct : float
+        Required margin on this side, percent; 0 means none required.
+    approach_pct : float
+        Edge of the approach band, percent (``approach_factor * required_pct``).
+    basis : str
+        Source of the required margin (see :class:`RequiredMargin`).
+    amplification_factor : float or None
+    frequency_ratio : float
+        Excitation over mode frequency.
+    amplification : float or None
+        SDOF dynamic amplification at ``frequency_ratio`` (None without damping data).
+    in_half_power_band : bool
+        Excitation inside the mode's half-power band (``|r - 1| <= zeta``), the resonance
+        peak itself.
+    status : {'clear', 'approach', 'inside'}
+    """
+
+    mode: str
+    excitation: str
+    order: float | None
+    mode_hz: float
+    excitation_hz: float
+    margin_pct: float
+    side: Side
+    required_pct: float
+    approach_pct: float
+    basis: str
+    amplification_factor: float | None
+    frequency_ratio: float
+    amplification: float | None
+    in_half_power_band: bool
+    status: Status
+
+    @property
+    def subject(self) -> str:
+        """Alarm subject: ``'<mode>@<excitation>'``."""
+        return f"{self.mode}@{self.excitation}"
+
+    def to_json(self) -> dict:
+        return {
+            "mode": self.mode,
+            "excitation": self.excitation,
+            "order": self.order,
+            "mode_hz": self.mode_hz,
+            "excitation_hz": self.excitation_hz,
+            "margin_pct": self.margin_pct,
+            "side": self.side,
+            "required_pct": self.required_pct,
+            "approach_pct": self.approach_pct,
+            "basis": self.basis,
+            "amplification_factor": self.amplification_factor,
+            "frequency_ratio": self.frequency_ratio,
+            "amplification": self.amplification,
+            "in_half_power_band": self.in_half_power_band,
+            "status": self.status,
+        }
+
+
+def separation_margin(excitation_hz: float, mode_hz: float) -> tuple[float, Side]:
+    """Separation margin (percent of ``mode_hz``) and the side the mode lies on."""
+    if not (math.isfinite(mode_hz) and mode_hz > 0):
+        raise ValueError(f"mode_hz must be a positive finite frequency, got {mode_hz!r}.")
+    if not (math.isfinite(excitation_hz) and excitation_hz >= 0):
+        raise ValueError(f"excitation_hz must be finite and >= 0, got {excitation_hz!r}.")
+    side: Side = "below" if mode_hz <= excitation_hz else "above"
+    return abs(excitation_hz - mode_hz) / mode_hz * 100.0, side
+
+
+def margin_table(
+    machine: Machine,
+    speed_hz: float,
+    *,
+    approach_factor: float = DEFAULT_APPROACH_FACTOR,
+    machine_default_pct: float | None = None,
+) -> tuple[MarginRow, ...]:
+    """Margins of every excitation of ``machine`` from every mode at ``speed_hz`` (Hz).
+
+    Rows are ordered by mode, then excitation. See :class:`MarginRow`.
+    """
+    if not (math.isfinite(approach_factor) and approach_factor >= 1.0):
+        raise ValueError(f"approach_factor must be a finite number >= 1, got {approach_factor!r}.")
+    exc = excitations(machine, speed_hz)
+    rows: list[MarginRow] = []
+    for mode in machine.modes:
+        req = required_margin(mode, machine_default_pct)
+        zeta = _zeta_of(mode)
+        fm = float(mode.frequency_hz)
+        for e in exc:
+            sm, side = separation_margin(e.frequency_hz, fm)
+            need = req.for_side(side)
+            appr = need * approach_factor
+            r = e.frequency_hz / fm
+            amp = sdof_amplification(r, zeta) if zeta is not None and zeta < 1.0 else None
+            hp = zeta is not None and abs(r - 1.0) <= zeta
+            if need > 0 and sm < need:
+                status: Status = "inside"
+            elif need > 0 and sm < appr:
+                status = "approach"
+            else:
+                status = "clear"
+            rows.append(
+                MarginRow(
+                    mode=mode.name, excitation=e.label, order=e.order, mode_hz=fm,
+                    excitation_hz=e.frequency_hz, margin_pct=sm, side=side, required_pct=need,
+                    approach_pct=appr, basis=req.basis, amplification_factor=req.amplification_factor,
+                    frequency_ratio=r, amplification=amp, in_half_power_band=bool(hp and need > 0),
+                    status=status,
+                )
+            )
+    return tuple(rows)
+
+
+@dataclass(frozen=True)
+class ApproachForecast:
+    """Projected entry of an order excitation into a mode's required band.
+
+    ``seconds`` until the excitation reaches the band edge ``edge_hz`` (Hz, excitation
+    frequency) at the current speed slope ``speed_slope_hz_per_s`` (Hz/s, Theil-Sen).
+    """
+
+    mode: str
+    excitation: str
+    edge_hz: float
+    speed_at_entry_hz: float
+    seconds: float
+    speed_slope_hz_per_s: float
+
+    @property
+    def subject(self) -> str:
+        return f"{self.mode}@{self.excitation}"
+
+    def to_json(self) -> dict:
+        return {
+            "mode": self.mode, "excitation": self.excitation, "edge_hz": self.edge_hz,
+            "speed_at_entry_hz": self.speed_at_entry_hz, "seconds": self.seconds,
+            "speed_slope_hz_per_s": self.speed_slope_hz_per_s,
+        }
+
+
+def speed_trend(ts: Sequence[float], speed_hz: Sequence[float]) -> tuple[float, float, float, float]:
+    """Theil-Sen slope of running speed (Hz/s) with its 95 % interval and the fitted speed at
+    the last time (Hz): ``(slope, low, high, speed_now)``.
+
+    References
+    ----------
+    Sen (1968), Theil (1950); same estimator as ``scipy.stats.theilslopes``.
+    """
+    t = np.asarray(ts, dtype=float)
+    v = np.asarray(speed_hz, dtype=float)
+    if t.shape != v.shape or t.size < 3:
+        raise ValueError(f"ts and speed_hz must have the same length >= 3, got {t.size} and {v.size}.")
+    slope, inter, lo, hi = theil_sen(t - t[-1], v)
+    return slope, lo, hi, inter
+
+
+def approach_forecasts(
+    machine: Machine,
+    ts: Sequence[float],
+    speed_hz: Sequence[float],
+    *,
+    machine_default_pct: float | None = None,
+) -> tuple[ApproachForecast, ...]:
+    """Time until each order excitation enters a required band, for a ramping speed.
+
+    Only pairs whose excitation is outside the band now and moving towards it are reported,
+    and only when the 95 % interval of the Theil-Sen speed slope excludes zero (a real
+    ramp, not noise), projecting from the latest speed along the slope. Fixed-frequency
+    excitations (2x line) never move.
+    """
+    if len(ts) < 3:
+        return ()
+    slope, lo, hi, _ = speed_trend(ts, speed_hz)
+    if lo <= 0.0 <= hi or slope == 0.0:
+        return ()
+    # From the latest measured speed: the median-based intercept lags behind on a ramp
+    # that started inside the window.
+    now = float(speed_hz[-1])
+    out: list[ApproachForecast] = []
+    for mode in machine.modes:
+        req = required_margin(mode, machine_default_pct)
+        fm = float(mode.frequency_hz)
+        lo_edge = fm * (1.0 - req.above_pct / 100.0)
+        hi_edge = fm * (1.0 + req.below_pct / 100.0)
+        if req.above_pct <= 0 and req.below_pct <= 0:
+            continue
+        for o in sorted(set(machine.excitation_orders)):
+            f_now = o * now
+            if slope > 0 and f_now <= lo_edge:
+                edge = lo_edge
+            elif slope < 0 and f_now >= hi_edge:
+                edge = hi_edge
+            else:
+                continue
+            s_entry = edge / o
+            secs = (s_entry - now) / slope
+            if secs >= 0:
+                out.append(ApproachForecast(mode.name, order_label(o), edge, s_entry, secs, slope))
+    return tuple(out)

@@ -1,0 +1,837 @@
+"""Physics-based machine simulator: vibration waveforms and speed readings with known causes.
+
+The measured acceleration at a point is the modal superposition of the machine's modes,
+each a single-degree-of-freedom (SDOF) oscillator, plus a rigid-body term (the whole
+machine on its mounts), driven by the forces a rotating machine makes:
+
+- unbalance, a rotating force ``U * Omega^2`` at 1x (``U = m*e`` in kg m), so 1x grows
+  with the square of speed;
+- a 2x force (misalignment), constant amplitude in N;
+- vane or blade pass at the configured pass orders, growing with speed squared (fan laws);
+- further harmonic forces (looseness, ...) at chosen orders;
+- a magnetic force at twice line frequency (motors);
+- broadband force noise and additive sensor noise;
+- optionally a rolling-element bearing defect: impacts at a defect frequency (e.g. BPFO)
+  that ring a high-frequency resonance.
+
+The forces are built as time series from the speed history (shaft angle = integral of
+speed), then every mode is integrated in the time domain by an exact first-order-hold
+discretisation of its state equations run as a recursive filter
+(``scipy.signal.lfilter``). Run-ups and coast-downs therefore sweep through modes with
+the right transient behaviour (amplitude peak, lag growing through 90 degrees).
+
+Everything here is pure and deterministic for a given seed: numbers in, arrays and
+:mod:`monitor.readings` objects out; no clock, no files.
+
+Main entry points
+-----------------
+``sdof_response``       one mode driven by a force per unit mass (the physics check).
+``simulate_signal``     a continuous record at one point for a given speed history.
+``simulate_reading``    one steady-speed :class:`~monitor.readings.Waveform` (warm-up
+                        discarded), e.g. for trend scenarios spread over weeks.
+``simulate_run``        a continuous run along a :class:`SpeedProfile`, cut into
+                        waveform blocks plus :class:`~monitor.readings.SpeedReading` s.
+``apply_sensor_fault``  flat line, clipping, spikes or dropouts on a finished block.
+``grown_unbalance``     unbalance ``m*e`` after linear or exponential growth over days.
+``point_inertance``     closed-form steady-state acceleration per newton at a point.
+
+References
+----------
+W. T. Thomson, *Theory of Vibration with Applications*: forced harmonic vibration of a
+damped SDOF system, rotating unbalance.
+R. B. Randall and J. Antoni, "Rolling element bearing diagnostics: a tutorial",
+Mechanical Systems and Signal Processing 25 (2011) 485-520: defect frequencies, random
+slip of 1-2 % between impacts.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Iterator, Mapping, Sequence
+from dataclasses import dataclass, field, replace
+from typing import Literal
+
+import numpy as np
+from scipy import signal
+from scipy.constants import g as STANDARD_GRAVITY
+from scipy.integrate import cumulative_trapezoid
+
+from monitor.readings import SpeedReading, Waveform
+
+Output = Literal["displacement", "velocity", "acceleration"]
+_OUTPUTS = ("displacement", "velocity", "acceleration")
+_UNIT_SCALE = {  # SI quantity -> unit
+    "m/s^2": 1.0,
+    "g": 1.0 / STANDARD_GRAVITY,
+    "mm/s": 1e3,
+    "in/s": 1.0 / 0.0254,
+    "um": 1e6,
+    "mil": 1.0 / 25.4e-6,
+}
+_UNIT_QUANTITY = {
+    "m/s^2": "acceleration",
+    "g": "acceleration",
+    "mm/s": "velocity",
+    "in/s": "velocity",
+    "um": "displacement",
+    "mil": "displacement",
+}
+
+
+def _check_positive(name: str, value: float, *, allow_zero: bool = False) -> float:
+    v = float(value)
+    if not math.isfinite(v) or v < 0 or (v == 0 and not allow_zero):
+        allowed = "a finite number >= 0" if allow_zero else "a finite number > 0"
+        raise ValueError(f"{name} must be {allowed}, got {value!r}.")
+    return v
+
+
+def _check_damping(name: str, value: float) -> float:
+    v = float(value)
+    if not 0.0 < v < 1.0:
+        raise ValueError(f"{name} must lie in (0, 1), got {value!r}.")
+    return v
+
+
+# ----------------------------------------------------------------------------- model
+
+
+@dataclass(frozen=True)
+class ModalMode:
+    """One structural mode as the simulator sees it.
+
+    Attributes
+    ----------
+    frequency_hz : float
+        Undamped natural frequency, Hz.
+    damping_ratio : float
+        Fraction of critical damping, 0 < zeta < 1.
+    modal_mass_kg : float
+        Modal mass, kg: a force F (N) at the mode's natural frequency far below it gives a
+        static modal displacement F / (modal_mass_kg * (2 pi f_n)^2) m.
+    participation : mapping of point id -> float
+        Participation factor of the mode at each measurement point (product of the mode
+        shape at the force and at the point), dimensionless; points not listed use
+        ``default_participation``.
+    default_participation : float
+    name : str
+    """
+
+    frequency_hz: float
+    damping_ratio: float
+    modal_mass_kg: float = 100.0
+    participation: Mapping[str, float] = field(default_factory=dict)
+    default_participation: float = 1.0
+    name: str = ""
+
+    def factor(self, point: str) -> float:
+        return float(self.participation.get(point, self.default_participation))
+
+
+@dataclass(frozen=True)
+class BearingGeometry:
+    """Rolling-element bearing geometry; defect frequencies as multiples of shaft speed.
+
+    ``n_elements`` rolling elements of diameter ``ball_diameter`` on pitch diameter
+    ``pitch_diameter`` (any one length unit), contact angle ``contact_angle_deg``.
+    Outer race stationary, inner race turning with the shaft.
+
+    References: Randall and Antoni (2011), section 2.
+    """
+
+    n_elements: int
+    ball_diameter: float
+    pitch_diameter: float
+    contact_angle_deg: float = 0.0
+
+    def __post_init__(self) -> None:
+        if int(self.n_elements) < 1:
+            raise ValueError(f"n_elements must be >= 1, got {self.n_elements!r}.")
+        _check_positive("ball_diameter", self.ball_diameter)
+        _check_positive("pitch_diameter", self.pitch_diameter)
+        if not self.ball_diameter < self.pitch_diameter:
+            raise ValueError(
+                f"ball_diameter must be below pitch_diameter, got {self.ball_diameter!r} "
+                f">= {self.pitch_diameter!r}."
+            )
+
+    @property
+    def _ratio(self) -> float:
+        return self.ball_diameter / self.pitch_diameter * math.cos(
+            math.radians(self.contact_angle_deg)
+        )
+
+    @property
+    def ftf_order(self) -> float:
+        """Cage (fundamental train) frequency / shaft speed."""
+        return 0.5 * (1.0 - self._ratio)
+
+    @property
+    def bpfo_order(self) -> float:
+        """Ball pass frequency, outer race / shaft speed."""
+        return 0.5 * self.n_elements * (1.0 - self._ratio)
+
+    @property
+    def bpfi_order(self) -> float:
+        """Ball pass frequency, inner race / shaft speed."""
+        return 0.5 * self.n_elements * (1.0 + self._ratio)
+
+    @property
+    def bsf_order(self) -> float:
+        """Ball (roller) spin frequency / shaft speed."""
+        return self.pitch_diameter / (2.0 * self.ball_diameter) * (1.0 - self._ratio**2)
+
+
+@dataclass(frozen=True)
+class BearingDefect:
+    """A localised bearing defect: periodic impacts ringing a high-frequency resonance.
+
+    Attributes
+    ----------
+    order : float
+        Impact rate as a multiple of shaft speed, e.g. ``BearingGeometry.bpfo_order``.
+    impact_peak_m_s2 : float
+        Peak acceleration of one impact's ringing at ``reference_hz`` shaft speed, m/s^2;
+        scales with speed squared (impact velocity squared, common practice).
+    resonance_hz, resonance_damping : float
+        The structural/sensor resonance the impacts excite, Hz and damping ratio.
+    slip_pct : float
+        Standard deviation of the spacing between impacts, percent of the mean period
+        (rolling elements slip: 1-2 %, Randall and Antoni 2011).
+    reference_hz : float
+        Shaft speed at which ``impact_peak_m_s2`` holds, Hz.
+    participation : mapping of point id -> float
+        How strongly each point sees the impacts (default 1).
+    """
+
+    order: float
+    impact_peak_m_s2: float
+    resonance_hz: float = 1800.0
+    resonance_damping: float = 0.05
+    slip_pct: float = 1.0
+    reference_hz: float = 25.0
+    participation: Mapping[str, float] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class MachineModel:
+    """Everything the simulator needs about one machine; forces in N, masses in kg.
+
+    Attributes
+    ----------
+    machine_id : str
+    modes : tuple of ModalMode
+        Structural modes.
+    rigid_mass_kg : float or None
+        Mass of the whole machine on its mounts, kg: the rigid-body ("background") term
+        that gives a sensible response away from the modes (mass line F/M above the mount
+        frequency, stiffness line below). None leaves it out.
+    mount_frequency_hz, mount_damping_ratio : float
+        Natural frequency (Hz) and damping of the machine bouncing on its mounts.
+    unbalance_kg_m : float
+        Unbalance m*e, kg m; force U * (2 pi f)^2 N at 1x.
+    unbalance_phase_deg : float
+        Angle of the heavy spot from the shaft reference, degrees.
+    misalignment_n : float
+        2x force amplitude, N (independent of speed).
+    pass_orders : tuple of float
+        Vane/blade pass orders (vanes x 1), with force ``pass_force_n`` N at
+        ``pass_reference_hz`` shaft speed, growing with speed squared.
+    harmonic_forces_n : mapping of order -> N
+        Further constant-amplitude forces at orders of running speed (looseness, ...).
+    line_frequency_hz, magnetic_force_n : float
+        For motors: a force of ``magnetic_force_n`` N at twice line frequency.
+    force_noise_n : float
+        Broadband (white) force, N RMS, driven through the modes.
+    sensor_noise_m_s2 : float
+        Additive white measurement noise, m/s^2 RMS (converted for other units).
+    bearing : BearingDefect or None
+    """
+
+    machine_id: str
+    modes: tuple[ModalMode, ...] = ()
+    rigid_mass_kg: float | None = 500.0
+    mount_frequency_hz: float = 4.0
+    mount_damping_ratio: float = 0.2
+    unbalance_kg_m: float = 0.0
+    unbalance_phase_deg: float = 0.0
+    misalignment_n: float = 0.0
+    pass_orders: tuple[float, ...] = ()
+    pass_force_n: float = 0.0
+    pass_reference_hz: float = 25.0
+    harmonic_forces_n: Mapping[float, float] = field(default_factory=dict)
+    line_frequency_hz: float | None = None
+    magnetic_force_n: float = 0.0
+    force_noise_n: float = 0.0
+    sensor_noise_m_s2: float = 0.0
+    bearing: BearingDefect | None = None
+
+    def all_modes(self) -> tuple[ModalMode, ...]:
+        """Structural modes plus the rigid-body mount mode (when ``rigid_mass_kg`` is set)."""
+        if self.rigid_mass_kg is None:
+            return self.modes
+        mount = ModalMode(
+            frequency_hz=self.mount_frequency_hz,
+            damping_ratio=self.mount_damping_ratio,
+            modal_mass_kg=self.rigid_mass_kg,
+            name="rigid body on mounts",
+        )
+        return (mount, *self.modes)
+
+    def slowest_decay_s(self) -> float:
+        """Longest modal time constant 1/(zeta*omega_n), s."""
+        taus = [1.0 / (m.damping_ratio * 2 * math.pi * m.frequency_hz) for m in self.all_modes()]
+        return max(taus, default=0.0)
+
+
+def _validate_model(model: MachineModel) -> None:
+    for i, m in enumerate(model.all_modes()):
+        _check_positive(f"modes[{i}].frequency_hz", m.frequency_hz)
+        _check_damping(f"modes[{i}].damping_ratio", m.damping_ratio)
+        _check_positive(f"modes[{i}].modal_mass_kg", m.modal_mass_kg)
+    _check_positive("unbalance_kg_m", model.unbalance_kg_m, allow_zero=True)
+    _check_positive("force_noise_n", model.force_noise_n, allow_zero=True)
+    _check_positive("sensor_noise_m_s2", model.sensor_noise_m_s2, allow_zero=True)
+    if model.bearing is not None:
+        _check_positive("bearing.order", model.bearing.order)
+        _check_positive("bearing.resonance_hz", model.bearing.resonance_hz)
+        _check_damping("bearing.resonance_damping", model.bearing.resonance_damping)
+
+
+# ----------------------------------------------------------------------------- SDOF
+
+
+def _sdof_filter(
+    fs_hz: float, frequency_hz: float, damping_ratio: float, output: Output
+) -> tuple[np.ndarray, np.ndarray]:
+    w = 2.0 * math.pi * frequency_hz
+    a_c = np.array([[0.0, 1.0], [-w * w, -2.0 * damping_ratio * w]])
+    b_c = np.array([[0.0], [1.0]])
+    c_c = {
+        "displacement": np.array([[1.0, 0.0]]),
+        "velocity": np.array([[0.0, 1.0]]),
+        "acceleration": np.array([[-w * w, -2.0 * damping_ratio * w]]),
+    }[output]
+    d_c = np.array([[1.0 if output == "acceleration" else 0.0]])
+    # First-order hold is exact for a piecewise-linear input, so a sampled smooth force
+    # keeps its phase (zero-order hold would lag by half a sample).
+    ad, bd, cd, dd, _ = signal.cont2discrete((a_c, b_c, c_c, d_c), 1.0 / fs_hz, method="foh")
+    b, a = signal.ss2tf(ad, bd, cd, dd)
+    return np.asarray(b[0], dtype=float), np.asarray(a, dtype=float)
+
+
+def sdof_response(
+    force_per_mass: np.ndarray,
+    fs_hz: float,
+    frequency_hz: float,
+    damping_ratio: float,
+    output: Output = "displacement",
+) -> np.ndarray:
+    """Response of a damped SDOF oscillator started at rest, integrated in the time domain.
+
+    Solves ``x'' + 2 zeta omega_n x' + omega_n^2 x = u(t)`` with ``u`` = force / mass
+    (m/s^2) sampled at ``fs_hz``, using the exact first-order-hold discretisation of the
+    state equations run as a recursive filter.
+
+    Parameters
+    ----------
+    force_per_mass : array
+        Force divided by (modal) mass, m/s^2, one value per sample.
+    fs_hz : float
+        Sample rate, Hz.
+    frequency_hz : float
+        Undamped natural frequency, Hz.
+    damping_ratio : float
+        0 < zeta < 1.
+    output : {'displacement', 'velocity', 'acceleration'}
+        Returned quantity: m, m/s or m/s^2 (absolute acceleration x'').
+
+    Returns
+    -------
+    numpy.ndarray of the same length.
+
+    References
+    ----------
+    W. T. Thomson, Theory of Vibration with Applications: forced harmonic vibration; the
+    steady state is x = (u0/omega_n^2) H(r) cos(Omega t - phi) with
+    H = 1/sqrt((1-r^2)^2 + (2 zeta r)^2), phi = atan2(2 zeta r, 1 - r^2).
+    """
+    u = np.asarray(force_per_mass, dtype=float)
+    if u.ndim != 1:
+        raise ValueError(f"force_per_mass must be a 1-D array, got shape {u.shape}.")
+    fs_hz = _check_positive("fs_hz", fs_hz)
+    frequency_hz = _check_positive("frequency_hz", frequency_hz)
+    if frequency_hz >= fs_hz / 2:
+        raise ValueError(
+            f"frequency_hz must be below the Nyquist frequency {fs_hz / 2} Hz, got {frequency_hz!r}."
+        )
+    damping_ratio = _check_damping("damping_ratio", damping_ratio)
+    if output not in _OUTPUTS:
+        raise ValueError(f"output must be one of {_OUTPUTS}, got {output!r}.")
+    b, a = _sdof_filter(fs_hz, frequency_hz, damping_ratio, output)
+    return signal.lfilter(b, a, u)
+
+
+def point_inertance(model: MachineModel, point: str, freq_hz: np.ndarray | float) -> np.ndarray:
+    """Steady-state acceleration at ``point`` per unit force, (m/s^2)/N, complex.
+
+    The closed-form counterpart of the time-domain path (rigid-body term included),
+    ``sum_i phi_i / m_i * (-w^2) / (w_i^2 - w^2 + 2j zeta_i w_i w)``, for sizing a
+    scenario's forces to a target vibration level.
+    """
+    w = 2.0 * math.pi * np.asarray(freq_hz, dtype=float)
+    out = np.zeros(w.shape, dtype=complex)
+    for m in model.all_modes():
+        wn = 2.0 * math.pi * m.frequency_hz
+        out += m.factor(point) / m.modal_mass_kg * (-(w**2)) / (
+            wn * wn - w * w + 2j * m.damping_ratio * wn * w
+        )
+    return out
+
+
+# ----------------------------------------------------------------------------- speed
+
+
+@dataclass(frozen=True)
+class SpeedProfile:
+    """Running speed against time, piecewise linear between breakpoints.
+
+    ``times_s`` (s from the start, increasing, first 0) and ``speeds_hz`` (Hz, >= 0).
+    Build with :meth:`steady`, :meth:`ramp`, :meth:`steps`, :meth:`run_up`,
+    :meth:`coast_down`; join with :meth:`then`.
+    """
+
+    times_s: tuple[float, ...]
+    speeds_hz: tuple[float, ...]
+
+    def __post_init__(self) -> None:
+        t = np.asarray(self.times_s, dtype=float)
+        s = np.asarray(self.speeds_hz, dtype=float)
+        if t.size < 2 or t.size != s.size:
+            raise ValueError(
+                f"times_s and speeds_hz must have the same length >= 2, got {t.size} and {s.size}."
+            )
+        if t[0] != 0.0 or np.any(np.diff(t) <= 0):
+            raise ValueError("times_s must start at 0 and increase strictly.")
+        if not np.all(np.isfinite(s)) or np.any(s < 0):
+            raise ValueError("speeds_hz must be finite and >= 0.")
+
+    @property
+    def duration_s(self) -> float:
+        return float(self.times_s[-1])
+
+    def speed_at(self, t_s: np.ndarray | float) -> np.ndarray:
+        """Speed (Hz) at times ``t_s`` (s from the start); held constant past the end."""
+        return np.interp(t_s, self.times_s, self.speeds_hz)
+
+    @classmethod
+    def steady(cls, speed_hz: float, duration_s: float) -> SpeedProfile:
+        """Constant speed, Hz, for ``duration_s`` s."""
+        return cls((0.0, float(duration_s)), (float(speed_hz), float(speed_hz)))
+
+    @classmethod
+    def ramp(cls, start_hz: float, end_hz: float, duration_s: float) -> SpeedProfile:
+        """Linear change from ``start_hz`` to ``end_hz`` over ``duration_s`` s."""
+        return cls((0.0, float(duration_s)), (float(start_hz), float(end_hz)))
+
+    @classmethod
+    def steps(
+        cls, setpoints_hz: Sequence[float], dwell_s: float, ramp_hz_per_s: float
+    ) -> SpeedProfile:
+        """Drive set-point steps: dwell ``dwell_s`` s at each set-point, moving between
+        them at the drive's ramp rate ``ramp_hz_per_s`` (Hz/s)."""
+        _check_positive("dwell_s", dwell_s)
+        _check_positive("ramp_hz_per_s", ramp_hz_per_s)
+        if not setpoints_hz:
+            raise ValueError("setpoints_hz must list at least one speed.")
+        times, speeds = [0.0], [float(setpoints_hz[0])]
+        for nxt in setpoints_hz[1:]:
+            times.append(times[-1] + dwell_s)
+            speeds.append(speeds[-1])
+            dt = abs(float(nxt) - speeds[-1]) / ramp_hz_per_s
+            if dt > 0:
+                times.append(times[-1] + dt)
+                speeds.append(float(nxt))
+        times.append(times[-1] + dwell_s)
+        speeds.append(speeds[-1])
+        return cls(tuple(times), tuple(speeds))
+
+    @classmethod
+    def run_up(cls, top_hz: float, duration_s: float, start_hz: float = 0.0) -> SpeedProfile:
+        """Run-up at constant acceleration from ``start_hz`` to ``top_hz`` in ``duration_s`` s."""
+        return cls.ramp(start_hz, top_hz, duration_s)
+
+    @classmethod
+    def coast_down(
+        cls, start_hz: float, duration_s: float, friction_share: float = 0.2, points: int = 200
+    ) -> SpeedProfile:
+        """Coast-down to rest in ``duration_s`` s under constant friction plus a load
+        torque growing with speed squared (fans, pumps).
+
+        ``friction_share`` is the friction part of the decelerating torque at the start
+        (0-1). With d(Omega)/dt = -a - b Omega^2 the speed is
+        ``Omega(t) = sqrt(a/b) tan(atan(Omega0 sqrt(b/a)) - sqrt(ab) t)``.
+        """
+        _check_positive("start_hz", start_hz)
+        _check_positive("duration_s", duration_s)
+        if not 0.0 < friction_share < 1.0:
+            raise ValueError(f"friction_share must lie in (0, 1), got {friction_share!r}.")
+        rho = friction_share / (1.0 - friction_share)
+        phi0 = math.atan(1.0 / math.sqrt(rho))
+        t = np.linspace(0.0, duration_s, points)
+        f = start_hz * math.sqrt(rho) * np.tan(phi0 - phi0 * t / duration_s)
+        f[-1] = 0.0
+        return cls(tuple(t.tolist()), tuple(np.maximum(f, 0.0).tolist()))
+
+    def then(self, other: SpeedProfile) -> SpeedProfile:
+        """This profile followed by ``other`` (shifted to start where this one ends)."""
+        t0 = self.duration_s
+        return SpeedProfile(
+            self.times_s + tuple(t0 + t for t in other.times_s[1:]),
+            self.speeds_hz + tuple(other.speeds_hz[1:]),
+        )
+
+
+# ----------------------------------------------------------------------------- forces
+
+
+def _shaft_angle(speed_hz: np.ndarray, fs_hz: float) -> np.ndarray:
+    """Shaft angle, rad: 2 pi times the running integral of speed (phase = integral of
+    speed, so a changing speed keeps a continuous phase)."""
+    return 2.0 * math.pi * cumulative_trapezoid(speed_hz, dx=1.0 / fs_hz, initial=0.0)
+
+
+def _force(
+    model: MachineModel, speed_hz: np.ndarray, fs_hz: float, t0_s: float, rng: np.random.Generator
+) -> np.ndarray:
+    """Total force on the machine, N, one value per sample."""
+    theta = _shaft_angle(speed_hz, fs_hz)
+    omega = 2.0 * math.pi * speed_hz
+    f = model.unbalance_kg_m * omega**2 * np.cos(theta + math.radians(model.unbalance_phase_deg))
+    if model.misalignment_n:
+        f += model.misalignment_n * np.cos(2.0 * theta + 0.7)
+    if model.pass_force_n:
+        scale = (speed_hz / model.pass_reference_hz) ** 2
+        for k, order in enumerate(model.pass_orders):
+            f += model.pass_force_n * scale * np.cos(order * theta + 1.3 * k)
+    for k, (order, amp) in enumerate(sorted(model.harmonic_forces_n.items())):
+        f += float(amp) * np.cos(float(order) * theta + 0.4 + 0.9 * k)
+    if model.line_frequency_hz and model.magnetic_force_n:
+        t = t0_s + np.arange(speed_hz.size) / fs_hz
+        f += model.magnetic_force_n * np.cos(2.0 * math.pi * 2.0 * model.line_frequency_hz * t)
+    if model.force_noise_n:
+        f += rng.normal(0.0, model.force_noise_n, speed_hz.size)
+    return f
+
+
+def _bearing_impacts(
+    defect: BearingDefect, speed_hz: np.ndarray, fs_hz: float, rng: np.random.Generator
+) -> np.ndarray:
+    """Ringing of the bearing resonance after each impact, m/s^2 (before participation)."""
+    cycles = defect.order * _shaft_angle(speed_hz, fs_hz) / (2.0 * math.pi)
+    idx = np.flatnonzero(np.diff(np.floor(cycles)) > 0) + 1
+    out = np.zeros(speed_hz.size)
+    if idx.size == 0:
+        return out
+    # exact (fractional-sample) impact instants: rounding them to whole samples would
+    # add a periodic timing jitter that smears the high harmonics of the impact train
+    c0, c1 = cycles[idx - 1], cycles[idx]
+    pos = idx - 1 + (np.floor(c1) - c0) / (c1 - c0)
+    if defect.slip_pct > 0:
+        period = fs_hz / np.maximum(defect.order * speed_hz[idx], 1e-9)
+        pos = pos + rng.normal(0.0, defect.slip_pct / 100.0, idx.size) * period
+    keep = (pos >= 0) & (pos < out.size - 1)
+    pos, idx = pos[keep], idx[keep]
+    w = 2.0 * math.pi * defect.resonance_hz
+    # an impulse of area I rings the resonance with displacement peak ~ I/omega, so the
+    # output omega^2 x (force over mass, no direct feed-through spike) peaks at ~ I omega
+    area = defect.impact_peak_m_s2 * (speed_hz[idx] / defect.reference_hz) ** 2 / w
+    lo = np.floor(pos).astype(int)
+    frac = pos - lo
+    np.add.at(out, lo, (1.0 - frac) * area * fs_hz)
+    np.add.at(out, lo + 1, frac * area * fs_hz)
+    return w * w * sdof_response(
+        out, fs_hz, defect.resonance_hz, defect.resonance_damping, "displacement"
+    )
+
+
+def _to_unit(si: np.ndarray, unit: str) -> np.ndarray:
+    return si * _UNIT_SCALE[unit]
+
+
+def simulate_signal(
+    model: MachineModel,
+    point: str,
+    speed_hz: np.ndarray,
+    fs_hz: float,
+    *,
+    seed: int | np.random.SeedSequence | None = 0,
+    unit: str = "m/s^2",
+    t0_s: float = 0.0,
+    warmup_s: float | None = 0.0,
+) -> np.ndarray:
+    """A continuous vibration record at ``point`` for the speed history ``speed_hz``.
+
+    Parameters
+    ----------
+    model : MachineModel
+    point : str
+        Measurement point id (selects the participation factors).
+    speed_hz : array
+        Running speed per sample, Hz (rev/s); may vary (run-ups, coast-downs, steps).
+    fs_hz : float
+        Sample rate, Hz.
+    seed : int or SeedSequence
+        Seed of the noise, slip and spike generator; same seed, same record.
+    unit : str
+        Output unit: ``m/s^2`` or ``g`` (acceleration), ``mm/s`` or ``in/s`` (velocity),
+        ``um`` or ``mil`` (displacement).
+    t0_s : float
+        Absolute time of the first sample, s (phase of the line-frequency force).
+    warmup_s : float or None
+        Seconds simulated at the first speed before the record and discarded so the
+        record starts in steady state; None chooses 8 time constants of the slowest
+        mode (at most 30 s); 0 starts the machine at rest.
+
+    Returns
+    -------
+    numpy.ndarray, float64, same length as ``speed_hz``, in ``unit``.
+    """
+    _validate_model(model)
+    fs_hz = _check_positive("fs_hz", fs_hz)
+    speed = np.asarray(speed_hz, dtype=float)
+    if speed.ndim != 1 or speed.size == 0:
+        raise ValueError(f"speed_hz must be a non-empty 1-D array, got shape {speed.shape}.")
+    if not np.all(np.isfinite(speed)) or np.any(speed < 0):
+        raise ValueError("speed_hz must be finite and >= 0 everywhere.")
+    if unit not in _UNIT_SCALE:
+        raise ValueError(f"unit must be one of {tuple(_UNIT_SCALE)}, got {unit!r}.")
+    for m in model.all_modes():
+        if m.frequency_hz >= fs_hz / 2:
+            raise ValueError(
+                f"mode at {m.frequency_hz} Hz is above the Nyquist frequency of fs_hz={fs_hz}."
+            )
+    if warmup_s is None:
+        warmup_s = min(8.0 * model.slowest_decay_s(), 30.0)
+    n_warm = int(round(_check_positive("warmup_s", warmup_s, allow_zero=True) * fs_hz))
+    if n_warm:
+        speed = np.concatenate([np.full(n_warm, speed[0]), speed])
+    rng = np.random.default_rng(seed)
+    force = _force(model, speed, fs_hz, t0_s - n_warm / fs_hz, rng)
+    quantity: Output = _UNIT_QUANTITY[unit]  # type: ignore[assignment]
+    out = np.zeros(speed.size)
+    for m in model.all_modes():
+        phi = m.factor(point)
+        if phi:
+            out += phi * sdof_response(
+                force / m.modal_mass_kg, fs_hz, m.frequency_hz, m.damping_ratio, quantity
+            )
+    if model.bearing is not None:
+        ring = _bearing_impacts(model.bearing, speed, fs_hz, rng)
+        phi_b = float(model.bearing.participation.get(point, 1.0))
+        if quantity != "acceleration":
+            # the ringing is far above running speed: integrate in the frequency domain
+            ring = _integrate(ring, fs_hz, quantity)
+        out += phi_b * ring
+    if model.sensor_noise_m_s2:
+        noise = rng.normal(0.0, model.sensor_noise_m_s2, speed.size)
+        out += noise if quantity == "acceleration" else _integrate(noise, fs_hz, quantity)
+    return _to_unit(out[n_warm:], unit)
+
+
+def _integrate(a: np.ndarray, fs_hz: float, quantity: str, f_low_hz: float = 2.0) -> np.ndarray:
+    spec = np.fft.rfft(a)
+    f = np.fft.rfftfreq(a.size, 1.0 / fs_hz)
+    jw = 2j * np.pi * np.where(f < f_low_hz, np.inf, f)
+    spec = spec / jw if quantity == "velocity" else spec / jw**2
+    return np.fft.irfft(spec, a.size)
+
+
+# ----------------------------------------------------------------------------- faults
+
+
+FaultKind = Literal["flat_line", "clipping", "spikes", "dropout"]
+_FAULT_KINDS = ("flat_line", "clipping", "spikes", "dropout")
+
+
+@dataclass(frozen=True)
+class SensorFault:
+    """A sensor or cabling fault applied to a finished block.
+
+    Attributes
+    ----------
+    kind : {'flat_line', 'clipping', 'spikes', 'dropout'}
+        ``flat_line``: output stuck at ``level`` (sample's unit) from ``start_fraction``
+        of the block on; ``clipping``: samples limited to +-``level`` (an amplifier rail);
+        ``spikes``: ``count`` isolated samples of +-``level`` added; ``dropout``:
+        ``count`` gaps of zeros, each ``gap_fraction`` of the block long.
+    level : float
+    start_fraction : float
+        Where in the block the fault starts, 0-1 (flat line only).
+    count : int
+    gap_fraction : float
+    """
+
+    kind: FaultKind
+    level: float = 0.0
+    start_fraction: float = 0.0
+    count: int = 5
+    gap_fraction: float = 0.05
+
+
+def apply_sensor_fault(
+    samples: np.ndarray, fault: SensorFault, seed: int | np.random.SeedSequence | None = 0
+) -> np.ndarray:
+    """Return a copy of ``samples`` with ``fault`` applied (see :class:`SensorFault`)."""
+    if fault.kind not in _FAULT_KINDS:
+        raise ValueError(f"fault.kind must be one of {_FAULT_KINDS}, got {fault.kind!r}.")
+    x = np.array(samples, dtype=float)
+    n = x.size
+    rng = np.random.default_rng(seed)
+    if fault.kind == "flat_line":
+        if not 0.0 <= fault.start_fraction < 1.0:
+            raise ValueError(
+                f"fault.start_fraction must lie in [0, 1), got {fault.start_fraction!r}."
+            )
+        x[int(fault.start_fraction * n) :] = fault.level
+    elif fault.kind == "clipping":
+        rail = _check_positive("fault.level", fault.level)
+        np.clip(x, -rail, rail, out=x)
+    elif fault.kind == "spikes":
+        pos = rng.choice(n, size=min(int(fault.count), n), replace=False)
+        x[pos] += fault.level * rng.choice((-1.0, 1.0), size=pos.size)
+    else:
+        width = max(1, int(fault.gap_fraction * n))
+        for start in rng.integers(0, max(1, n - width), size=int(fault.count)):
+            x[start : start + width] = 0.0
+    return x
+
+
+# ----------------------------------------------------------------------------- slow faults
+
+
+def grown_unbalance(
+    initial_kg_m: float,
+    elapsed_days: float,
+    *,
+    doubling_days: float | None = None,
+    rate_kg_m_per_day: float | None = None,
+) -> float:
+    """Unbalance m*e (kg m) after ``elapsed_days`` of growth from ``initial_kg_m``.
+
+    Give ``doubling_days`` for exponential growth (erosion, build-up feeding on itself)
+    or ``rate_kg_m_per_day`` for linear growth; not both.
+    """
+    _check_positive("initial_kg_m", initial_kg_m, allow_zero=True)
+    if (doubling_days is None) == (rate_kg_m_per_day is None):
+        raise ValueError("give exactly one of doubling_days or rate_kg_m_per_day.")
+    if doubling_days is not None:
+        _check_positive("doubling_days", doubling_days)
+        return initial_kg_m * 2.0 ** (elapsed_days / doubling_days)
+    return initial_kg_m + float(rate_kg_m_per_day) * elapsed_days  # type: ignore[arg-type]
+
+
+# ----------------------------------------------------------------------------- readings
+
+
+def simulate_reading(
+    model: MachineModel,
+    point: str,
+    *,
+    speed_hz: float,
+    ts: float,
+    fs_hz: float,
+    n_samples: int,
+    unit: str = "m/s^2",
+    seed: int | np.random.SeedSequence | None = 0,
+    fault: SensorFault | None = None,
+    include_speed: bool = False,
+    reading_id: str | None = None,
+) -> Waveform:
+    """One block at steady speed ``speed_hz`` (Hz), starting in steady state.
+
+    ``ts`` is the epoch time (s, UTC) of the first sample; ``include_speed`` puts the
+    speed into the waveform (as a sensor with a tach input would).
+    """
+    if int(n_samples) < 1:
+        raise ValueError(f"n_samples must be >= 1, got {n_samples!r}.")
+    ss = np.random.SeedSequence(seed) if not isinstance(seed, np.random.SeedSequence) else seed
+    sig_seed, fault_seed = ss.spawn(2)
+    x = simulate_signal(
+        model, point, np.full(int(n_samples), float(speed_hz)), fs_hz,
+        seed=sig_seed, unit=unit, t0_s=ts, warmup_s=None,
+    )
+    if fault is not None:
+        x = apply_sensor_fault(x, fault, fault_seed)
+    return Waveform(
+        machine=model.machine_id,
+        point=point,
+        ts=float(ts),
+        fs_hz=float(fs_hz),
+        unit=unit,
+        samples=x,
+        speed_hz=float(speed_hz) if include_speed else None,
+        reading_id=reading_id,
+    )
+
+
+def simulate_run(
+    model: MachineModel,
+    profile: SpeedProfile,
+    *,
+    points: Sequence[str],
+    fs_hz: float,
+    block_samples: int,
+    interval_s: float,
+    start_ts: float,
+    unit: str = "m/s^2",
+    seed: int | np.random.SeedSequence | None = 0,
+    speed_readings: bool = True,
+    warmup_s: float | None = None,
+) -> list[Waveform | SpeedReading]:
+    """A continuous run along ``profile``, cut into blocks every ``interval_s`` s.
+
+    One continuous record is simulated per point (all driven by the same forces), so
+    transients through modes carry from block to block. Each block is a
+    :class:`Waveform` of ``block_samples`` samples starting at ``start_ts + k*interval_s``;
+    with ``speed_readings`` each block is preceded by a :class:`SpeedReading` at the same
+    ts with the mean speed over the block (Hz). Returned in time order.
+    """
+    _check_positive("interval_s", interval_s)
+    if int(block_samples) < 1:
+        raise ValueError(f"block_samples must be >= 1, got {block_samples!r}.")
+    n_total = int(math.floor(profile.duration_s * fs_hz)) + 1
+    speed = profile.speed_at(np.arange(n_total) / fs_hz)
+    step = int(round(interval_s * fs_hz))
+    starts = np.arange(0, n_total - int(block_samples) + 1, step)
+    ss = np.random.SeedSequence(seed) if not isinstance(seed, np.random.SeedSequence) else seed
+    records = {
+        p: simulate_signal(
+            model, p, speed, fs_hz, seed=s, unit=unit, t0_s=start_ts, warmup_s=warmup_s
+        )
+        for p, s in zip(points, ss.spawn(len(points)), strict=True)
+    }
+    out: list[Waveform | SpeedReading] = []
+    for k, i0 in enumerate(starts):
+        ts = round(start_ts + i0 / fs_hz, 3)
+        block = slice(int(i0), int(i0) + int(block_samples))
+        if speed_readings:
+            out.append(SpeedReading(model.machine_id, ts, float(np.mean(speed[block]))))
+        for p in points:
+            out.append(
+                Waveform(
+                    machine=model.machine_id, point=p, ts=ts, fs_hz=float(fs_hz), unit=unit,
+                    samples=records[p][block].copy(), reading_id=f"{model.machine_id}-{p}-{k}",
+                )
+            )
+    return out
+
+
+def iter_blocks(readings: Sequence[Waveform | SpeedReading]) -> Iterator[Waveform]:
+    """The waveforms among ``readings``, in order."""
+    return (r for r in readings if isinstance(r, Waveform))
+
+
+def with_unbalance(model: MachineModel, unbalance_kg_m: float) -> MachineModel:
+    """A copy of ``model`` with a different unbalance m*e (kg m)."""
+    return replace(model, unbalance_kg_m=float(unbalance_kg_m))

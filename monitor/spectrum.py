@@ -1,0 +1,556 @@
+"""Amplitude spectra: Hann window, Welch averaging, integration, band RMS, peak interpolation.
+
+All functions are pure. A :class:`Spectrum` is one-sided and amplitude-correct: a sinusoid
+centred on a bin reads its amplitude (``scaling='peak'``) or its RMS (``scaling='rms'``).
+Because the Hann window spreads a sinusoid over three bins and white noise over an
+equivalent noise bandwidth of 1.5 bins, band RMS values divide the summed power by the
+ENBW in bins (Parseval), and peak values are interpolated between bins.
+
+References
+----------
+F. J. Harris, "On the use of windows for harmonic analysis with the discrete Fourier
+transform", Proc. IEEE 66(1), 1978 (Hann coherent gain 0.5, ENBW 1.5 bins).
+P. D. Welch, "The use of fast Fourier transform for the estimation of power spectra",
+IEEE Trans. Audio Electroacoust. 15(2), 1967 (averaged overlapping segments).
+"""
+
+from __future__ import annotations
+
+import functools
+import math
+from dataclasses import dataclass, replace
+from typing import Literal
+
+import numpy as np
+import scipy.fft
+from numpy.lib.stride_tricks import sliding_window_view
+from numpy.typing import ArrayLike
+from scipy.signal import get_window
+
+from monitor import units
+
+MIN_SAMPLES = 16
+SCALINGS = ("peak", "rms")
+
+
+@dataclass(frozen=True, eq=False)
+class Spectrum:
+    """A one-sided amplitude spectrum.
+
+    Attributes
+    ----------
+    freq_hz : numpy.ndarray
+        Bin frequencies, Hz.
+    amplitude : numpy.ndarray
+        Amplitude per bin in ``unit``; a sinusoid on a bin centre reads its amplitude
+        (``scaling='peak'``) or its RMS (``scaling='rms'``).
+    unit : str
+        Amplitude unit (``m/s^2``, ``g``, ``mm/s``, ``in/s``, ``um``, ``mil``).
+    scaling : {'peak', 'rms'}
+    resolution_hz : float
+        Bin spacing, Hz.
+    enbw_hz : float
+        Equivalent noise bandwidth of the window, Hz (needed to turn the amplitude
+        spectrum into band RMS values).
+    averages : int
+        Number of Welch segments averaged.
+    segment_length : int or None
+        Samples per segment (the FFT length); sample rate = resolution_hz x segment_length.
+    """
+
+    freq_hz: np.ndarray
+    amplitude: np.ndarray
+    unit: str
+    scaling: Literal["peak", "rms"]
+    resolution_hz: float
+    enbw_hz: float
+    averages: int = 1
+    segment_length: int | None = None
+
+    @property
+    def quantity(self) -> str:
+        """``acceleration``, ``velocity`` or ``displacement``."""
+        return units.quantity_of(self.unit)
+
+
+@dataclass(frozen=True)
+class Peak:
+    """A spectral peak: frequency (Hz) and amplitude (peak, in the spectrum's unit),
+    both interpolated between bins."""
+
+    hz: float
+    amplitude: float
+
+
+# ----------------------------------------------------------------------------- caches
+
+
+@functools.lru_cache(maxsize=32)
+def hann(n: int) -> np.ndarray:
+    """Periodic Hann window of ``n`` samples (read-only, cached).
+
+    The periodic (DFT-even) form has coherent gain exactly 0.5 and ENBW exactly 1.5 bins.
+    """
+    w = get_window("hann", n)
+    w.setflags(write=False)
+    return w
+
+
+@functools.lru_cache(maxsize=32)
+def _window_sums(n: int) -> tuple[float, float]:
+    w = hann(n)
+    return float(w.sum()), float(np.dot(w, w))
+
+
+@functools.lru_cache(maxsize=32)
+def _freqs(n: int, fs_hz: float) -> np.ndarray:
+    f = scipy.fft.rfftfreq(n, 1.0 / fs_hz)
+    f.setflags(write=False)
+    return f
+
+
+# ----------------------------------------------------------------------------- validation
+
+
+def _check_samples(samples: ArrayLike, name: str = "samples") -> np.ndarray:
+    x = np.asarray(samples)
+    if x.ndim != 1:
+        raise ValueError(f"{name} must be a 1-D array, got shape {x.shape}.")
+    if x.size < MIN_SAMPLES:
+        raise ValueError(
+            f"{name} has {x.size} values; a spectrum needs at least {MIN_SAMPLES} samples."
+        )
+    if not np.issubdtype(x.dtype, np.number) or np.iscomplexobj(x):
+        raise ValueError(f"{name} must be real numbers, got dtype {x.dtype}.")
+    x = x.astype(np.float64, copy=False)
+    if not np.isfinite(x).all():
+        bad = int(np.flatnonzero(~np.isfinite(x))[0])
+        raise ValueError(f"{name} must be finite; sample {bad} is {x[bad]!r}.")
+    return x
+
+
+def _check_fs(fs_hz: object) -> float:
+    try:
+        fs = float(fs_hz)  # type: ignore[arg-type]
+    except (TypeError, ValueError):
+        raise ValueError(f"fs_hz must be a positive number of Hz, got {fs_hz!r}.") from None
+    if not math.isfinite(fs) or fs <= 0:
+        raise ValueError(f"fs_hz must be a positive finite sample rate in Hz, got {fs_hz!r}.")
+    return fs
+
+
+def _freq_arg(value: object, name: str, *, positive: bool = False) -> float:
+    """A finite, non-negative (or positive) frequency in Hz, else ValueError naming it."""
+    ok = isinstance(value, int | float | np.integer | np.floating) and not isinstance(value, bool)
+    v = float(value) if ok else math.nan  # type: ignore[arg-type]
+    if not math.isfinite(v) or v < 0 or (positive and v == 0):
+        kind = "positive" if positive else "non-negative"
+        raise ValueError(f"{name} must be a {kind} finite frequency in Hz, got {value!r}.")
+    return v
+
+
+def _check_spectrum(spectrum: object) -> Spectrum:
+    if not isinstance(spectrum, Spectrum):
+        raise ValueError(f"spectrum must be a Spectrum, got {type(spectrum).__name__}.")
+    return spectrum
+
+
+# ----------------------------------------------------------------------------- spectrum
+
+
+def amplitude_spectrum(
+    samples: ArrayLike,
+    fs_hz: float,
+    unit: str,
+    *,
+    scaling: Literal["peak", "rms"] = "peak",
+    segment_length: int | None = None,
+    overlap: float = 0.5,
+    detrend: bool = True,
+) -> Spectrum:
+    """One-sided, amplitude-correct spectrum of a real waveform (Hann window, Welch average).
+
+    Parameters
+    ----------
+    samples : array_like
+        Real waveform in ``unit`` (float32 or float64).
+    fs_hz : float
+        Sample rate, Hz.
+    unit : str
+        Unit of the samples (``m/s^2``, ``g``, ``mm/s``, ``in/s``, ``um``, ``mil``).
+    scaling : {'peak', 'rms'}
+        A sinusoid reads its peak amplitude or its RMS value.
+    segment_length : int, optional
+        Samples per Welch segment; default the whole record (one segment, finest
+        resolution).
+    overlap : float
+        Fraction of overlap between segments, 0 <= overlap < 1 (0.5 suits Hann).
+    detrend : bool
+        Remove each segment's mean first (as ``scipy.signal.welch`` does by default).
+
+    Returns
+    -------
+    Spectrum
+        ``resolution_hz = fs_hz / segment_length``, ``enbw_hz = 1.5 x resolution_hz``.
+
+    References
+    ----------
+    Harris 1978 (Hann window); Welch 1967 (averaging power over overlapping segments,
+    then the square root, so noise averages and a stable sinusoid keeps its amplitude).
+    """
+    x = _check_samples(samples)
+    fs = _check_fs(fs_hz)
+    units._check_unit(unit, "unit")
+    if scaling not in SCALINGS:
+        raise ValueError(f"scaling {scaling!r} is not allowed; use 'peak' or 'rms'.")
+    n = x.size if segment_length is None else segment_length
+    if isinstance(n, bool) or not isinstance(n, int | np.integer) or not MIN_SAMPLES <= n <= x.size:
+        raise ValueError(
+            f"segment_length must be an integer from {MIN_SAMPLES} to the record length "
+            f"{x.size}, got {segment_length!r}."
+        )
+    n = int(n)
+    if not (isinstance(overlap, int | float) and 0.0 <= overlap < 1.0):
+        raise ValueError(f"overlap must be a fraction in [0, 1), got {overlap!r}.")
+    step = max(1, int(round(n * (1.0 - overlap))))
+    w = hann(n)
+    s1, s2 = _window_sums(n)
+    if n == x.size:
+        spec = scipy.fft.rfft(x * w)
+        if detrend:
+            # rfft of the periodic Hann window is n/2 at bin 0, -n/4 at bin 1 and zero
+            # elsewhere, so removing the mean only changes those two bins
+            mean = x.mean()
+            spec[0] -= mean * 0.5 * n
+            spec[1] += mean * 0.25 * n
+        power = spec.real * spec.real + spec.imag * spec.imag
+        averages = 1
+    else:
+        segs = sliding_window_view(x, n)[::step]
+        if detrend:
+            segs = segs - segs.mean(axis=1, keepdims=True)
+        power = (np.abs(scipy.fft.rfft(segs * w, axis=1)) ** 2).mean(axis=0)
+        averages = segs.shape[0]
+    # One-sided power per bin in units^2 (RMS^2 of a bin-centred sinusoid), as
+    # scipy.signal.welch(scaling='spectrum'): divide by (sum w)^2 and double all bins
+    # except DC and (even n) Nyquist.
+    power *= 2.0 / (s1 * s1)
+    power[0] *= 0.5
+    if n % 2 == 0:
+        power[-1] *= 0.5
+    if scaling == "peak":
+        power *= _peak_factor2(n, power.size)
+    amp = np.sqrt(power)
+    resolution = fs / n
+    return Spectrum(
+        freq_hz=_freqs(n, fs),
+        amplitude=amp,
+        unit=unit,
+        scaling=scaling,
+        resolution_hz=resolution,
+        enbw_hz=resolution * n * s2 / (s1 * s1),
+        averages=averages,
+        segment_length=n,
+    )
+
+
+@functools.lru_cache(maxsize=32)
+def _peak_factor2(n: int, m: int) -> np.ndarray:
+    """Squared factor RMS -> peak per bin: 2 for sinusoids, 1 for DC and Nyquist (a
+    constant or an alternating sequence reads its value)."""
+    f = np.full(m, 2.0)
+    f[0] = 1.0
+    if n % 2 == 0:
+        f[-1] = 1.0
+    f.setflags(write=False)
+    return f
+
+
+def _seg_len(spectrum: Spectrum) -> int:
+    return spectrum.segment_length or 2 * (spectrum.amplitude.size - 1)
+
+
+def _power(spectrum: Spectrum) -> np.ndarray:
+    """One-sided power per bin (units^2, RMS^2) of a spectrum of either scaling."""
+    a2 = spectrum.amplitude * spectrum.amplitude
+    if spectrum.scaling == "rms":
+        return a2
+    return a2 / _peak_factor2(_seg_len(spectrum), a2.size)
+
+
+# ----------------------------------------------------------------------------- integration
+
+
+def _rescale(spectrum: Spectrum, factor: np.ndarray, unit: str) -> Spectrum:
+    return replace(spectrum, amplitude=spectrum.amplitude * factor, unit=unit)
+
+
+def integrate(
+    spectrum: Spectrum,
+    to: Literal["velocity", "displacement"] = "velocity",
+    *,
+    f_low_hz: float = 2.0,
+) -> Spectrum:
+    """Integrate an acceleration or velocity spectrum in the frequency domain.
+
+    Parameters
+    ----------
+    spectrum : Spectrum
+        Acceleration (``m/s^2``, ``g``) or velocity (``mm/s``, ``in/s``) spectrum.
+    to : {'velocity', 'displacement'}
+        Target quantity; output unit mm/s or um, same scaling (peak or RMS).
+    f_low_hz : float
+        Bins below this frequency (Hz) are set to zero, since 1/f (or 1/f^2) would
+        amplify low-frequency sensor noise without bound.
+
+    References
+    ----------
+    V(f) = A(f) / (j 2 pi f), D(f) = V(f) / (j 2 pi f): amplitudes divide by 2 pi f.
+    """
+    spectrum = _check_spectrum(spectrum)
+    steps = {"acceleration": {"velocity": 1, "displacement": 2}, "velocity": {"displacement": 1}}
+    q = spectrum.quantity
+    if to not in ("velocity", "displacement") or to not in steps.get(q, {}):
+        raise ValueError(
+            f"to {to!r} is not reachable by integrating a {q} spectrum; allowed: "
+            f"{', '.join(steps.get(q, {})) or 'none'}."
+        )
+    f_low_hz = _freq_arg(f_low_hz, "f_low_hz")
+    f = spectrum.freq_hz
+    omega = 2.0 * np.pi * np.where(f > 0, f, 1.0)
+    keep = (f >= f_low_hz) & (f > 0)
+    base = units.to_base_factor(spectrum.unit)
+    if q == "acceleration":
+        vel = base * 1e3 / omega  # m/s^2 -> mm/s
+        factor = vel if to == "velocity" else vel * 1e3 / omega  # mm/s -> um
+    else:
+        factor = base * 1e3 / omega
+    return _rescale(spectrum, np.where(keep, factor, 0.0), units.BASE_UNIT[to])
+
+
+def differentiate(
+    spectrum: Spectrum, to: Literal["velocity", "acceleration"] = "velocity"
+) -> Spectrum:
+    """Differentiate a displacement or velocity spectrum in the frequency domain.
+
+    Displacement (``um``, ``mil``) -> velocity (mm/s) or acceleration (m/s^2); velocity
+    -> acceleration (m/s^2). Amplitudes multiply by 2 pi f; same scaling.
+
+    References
+    ----------
+    V(f) = j 2 pi f D(f), A(f) = j 2 pi f V(f).
+    """
+    spectrum = _check_spectrum(spectrum)
+    steps = {"displacement": {"velocity": 1, "acceleration": 2}, "velocity": {"acceleration": 1}}
+    q = spectrum.quantity
+    if to not in steps.get(q, {}):
+        raise ValueError(
+            f"to {to!r} is not reachable by differentiating a {q} spectrum; allowed: "
+            f"{', '.join(steps.get(q, {})) or 'none'}."
+        )
+    omega = 2.0 * np.pi * spectrum.freq_hz
+    base = units.to_base_factor(spectrum.unit)
+    if q == "displacement":
+        vel = base * 1e-3 * omega  # um -> mm/s
+        factor = vel if to == "velocity" else vel * 1e-3 * omega  # mm/s -> m/s^2
+    else:
+        factor = base * 1e-3 * omega
+    return _rescale(spectrum, factor, units.BASE_UNIT[to])
+
+
+def to_velocity(spectrum: Spectrum, *, f_low_hz: float = 2.0) -> Spectrum:
+    """The velocity spectrum (mm/s) of any spectrum: integrated, differentiated or
+    converted as the quantity needs; ``f_low_hz`` applies to integration only."""
+    q = _check_spectrum(spectrum).quantity
+    if q == "acceleration":
+        return integrate(spectrum, "velocity", f_low_hz=f_low_hz)
+    if q == "displacement":
+        return differentiate(spectrum, "velocity")
+    if spectrum.unit == "mm/s":
+        return spectrum
+    return _rescale(spectrum, np.asarray(units.to_base_factor(spectrum.unit)), "mm/s")
+
+
+# ----------------------------------------------------------------------------- band RMS
+
+
+def band_rms(spectrum: Spectrum, f_lo_hz: float, f_hi_hz: float) -> float:
+    """RMS value (in the spectrum's unit) of the content between ``f_lo_hz`` and ``f_hi_hz``.
+
+    Sums the one-sided power of the bins with f_lo_hz <= f <= f_hi_hz and divides by the
+    window's ENBW in bins, so both a sinusoid (spread over the window's main lobe) and
+    broadband noise (each bin collecting ENBW worth of noise) read their true RMS.
+
+    References
+    ----------
+    Parseval's theorem; Harris 1978 (ENBW); scipy.signal.welch density vs spectrum scaling.
+    """
+    spectrum = _check_spectrum(spectrum)
+    f_lo_hz = _freq_arg(f_lo_hz, "f_lo_hz")
+    f_hi_hz = _freq_arg(f_hi_hz, "f_hi_hz")
+    if f_hi_hz < f_lo_hz:
+        raise ValueError(f"f_hi_hz {f_hi_hz!r} must not be below f_lo_hz {f_lo_hz!r}.")
+    df = spectrum.resolution_hz
+    i0 = max(0, int(math.ceil(f_lo_hz / df - 1e-9)))
+    i1 = min(spectrum.amplitude.size - 1, int(math.floor(f_hi_hz / df + 1e-9)))
+    if i1 < i0:
+        return 0.0
+    total = float(_power(spectrum)[i0 : i1 + 1].sum())
+    return math.sqrt(total * df / spectrum.enbw_hz)
+
+
+# ----------------------------------------------------------------------------- peaks
+
+
+def _hann_interpolate(a: np.ndarray, k: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Offset (bins) and amplitude correction of Hann-window peaks at bins ``k``.
+
+    The three-bin ratio delta = 2 (a[k+1] - a[k-1]) / (a[k-1] + 2 a[k] + a[k+1]) is exact
+    for the Hann main lobe of a single sinusoid; the amplitude is a[k] divided by the
+    window's normalised response sinc(delta) / (1 - delta^2).
+    """
+    k = np.clip(k, 1, a.size - 2)
+    am, a0, ap = a[k - 1], a[k], a[k + 1]
+    den = am + 2.0 * a0 + ap
+    delta = np.where(den > 0, 2.0 * (ap - am) / np.where(den > 0, den, 1.0), 0.0)
+    gain = np.sinc(delta) / (1.0 - delta * delta)
+    return k + delta, a0 / gain
+
+
+def find_peaks(spectrum: Spectrum, count: int = 10, min_hz: float = 0.0) -> tuple[Peak, ...]:
+    """The ``count`` largest local maxima at or above ``min_hz``, largest first.
+
+    Frequency (Hz) and amplitude (the spectrum's unit and scaling) are interpolated
+    between bins with the exact three-bin Hann formula, so an off-bin sinusoid reads its
+    true frequency and amplitude (no scalloping loss).
+    """
+    spectrum = _check_spectrum(spectrum)
+    if isinstance(count, bool) or not isinstance(count, int) or count < 0:
+        raise ValueError(f"count must be a non-negative integer, got {count!r}.")
+    min_hz = _freq_arg(min_hz, "min_hz")
+    a = spectrum.amplitude
+    start = max(1, int(math.ceil(min_hz / spectrum.resolution_hz)))
+    if count == 0 or start >= a.size - 1:
+        return ()
+    mid = a[start:-1]
+    is_peak = (mid > a[start - 1 : -2]) & (mid >= a[start + 1 :])
+    idx = np.flatnonzero(is_peak) + start
+    if idx.size > count:
+        idx = idx[np.argpartition(a[idx], -count)[-count:]]
+    pos, amp = _hann_interpolate(a, idx)
+    order = np.argsort(-amp, kind="stable")
+    df = spectrum.resolution_hz
+    return tuple(Peak(hz=float(pos[i] * df), amplitude=float(amp[i])) for i in order)
+
+
+def amplitude_at(spectrum: Spectrum, freq_hz: float, tolerance_hz: float) -> Peak:
+    """The interpolated peak nearest ``freq_hz``: the largest bin within ``tolerance_hz``
+    (at least one bin either side), interpolated as in :func:`find_peaks`."""
+    spectrum = _check_spectrum(spectrum)
+    df = spectrum.resolution_hz
+    a = spectrum.amplitude
+    freq_hz = _freq_arg(freq_hz, "freq_hz", positive=True)
+    if freq_hz > spectrum.freq_hz[-1]:
+        raise ValueError(
+            f"freq_hz {freq_hz!r} lies above the spectrum's last bin {spectrum.freq_hz[-1]:g} Hz."
+        )
+    tolerance_hz = _freq_arg(tolerance_hz, "tolerance_hz")
+    tol = max(tolerance_hz, df)
+    i0 = max(1, int(math.floor((freq_hz - tol) / df)))
+    i1 = min(a.size - 2, int(math.ceil((freq_hz + tol) / df)))
+    i1 = max(i1, i0)
+    k = i0 + int(np.argmax(a[i0 : i1 + 1]))
+    pos, amp = _hann_interpolate(a, np.array([k]))
+    return Peak(hz=float(pos[0] * df), amplitude=float(amp[0]))
+
+
+# ----------------------------------------------------------------------------- DTFT
+
+
+def _dft_kernel(u: np.ndarray, n: int) -> np.ndarray:
+    """(1/n) sum_{m=0}^{n-1} exp(j u m): the weight of DFT bin k in the DTFT at omega,
+    u = 2 pi k / n - omega (rad/sample)."""
+    half = 0.5 * u
+    den = np.sin(half)
+    small = np.abs(den) < 1e-12
+    ratio = np.where(small, float(n), np.sin(n * half) / np.where(small, 1.0, den))
+    return np.exp(1j * half * (n - 1)) * ratio / n
+
+
+def hann_from_dft(dft: np.ndarray, n: int) -> np.ndarray:
+    """rfft of x times the periodic Hann window, from the rfft of x (length n).
+
+    The window 0.5 - 0.5 cos(2 pi m / n) mixes each bin with its neighbours:
+    Xw[k] = 0.5 X[k] - 0.25 (X[k-1] + X[k+1]), with X[-1] = conj X[1] and past the last
+    bin the conjugate mirror.
+    """
+    out = 0.5 * dft
+    out[1:-1] -= 0.25 * (dft[:-2] + dft[2:])
+    out[0] -= 0.5 * dft[1].real
+    last_next = np.conj(dft[-2]) if n % 2 == 0 else np.conj(dft[-1])
+    out[-1] -= 0.25 * (dft[-2] + last_next)
+    return out
+
+
+@dataclass(frozen=True, eq=False)
+class Record:
+    """A validated waveform (float64) with its sample rate (Hz) and, computed once, the
+    rfft of its mean-removed samples; speed estimation, order tracking and the spectrum
+    of one block all read that single transform.
+    """
+
+    samples: np.ndarray
+    fs_hz: float
+
+    @classmethod
+    def of(cls, samples: ArrayLike | Record, fs_hz: float | None = None) -> Record:
+        """Validate ``samples`` (or pass a Record through) and bind the sample rate."""
+        if isinstance(samples, Record):
+            return samples
+        if fs_hz is None:
+            raise ValueError("fs_hz is required with samples: give the sample rate in Hz.")
+        return cls(_check_samples(samples), _check_fs(fs_hz))
+
+    @functools.cached_property
+    def mean(self) -> float:
+        return float(self.samples.mean())
+
+    @functools.cached_property
+    def dft(self) -> np.ndarray:
+        """rfft of the mean-removed samples (read-only)."""
+        x = self.samples
+        out = scipy.fft.rfft(x)
+        out[0] -= self.mean * x.size
+        out.setflags(write=False)
+        return out
+
+    def dtft(self, freqs_hz: ArrayLike, *, window: bool = False, half_width: int = 64) -> np.ndarray:
+        """DTFT of the mean-removed record, sum_m w[m] x[m] exp(-j 2 pi f m / fs), at each
+        frequency (Hz); w the periodic Hann window when ``window`` else 1; time zero at
+        the first sample.
+
+        Interpolated from the DFT bins within ``half_width`` bins of each frequency with
+        the exact bin weight (1/N) sum_m exp(j u m). With the Hann window the weights fall
+        as 1/d^3 and the result is exact to rounding; without it they fall as 1/d, so the
+        far bins left out add white noise of about 2 / (pi^2 half_width) of the noise
+        already in X(f) (0.3 % at 64) and a negligible, symmetric error on sinusoids.
+        """
+        f = np.atleast_1d(np.asarray(freqs_hz, dtype=float))
+        n = self.samples.size
+        dft = self.dft
+        half = n // 2
+        pos = f * n / self.fs_hz  # fractional bin
+        width = min(half_width, (n - 1) // 2)
+        k = np.rint(pos)[:, None] + np.arange(-width, width + 1)[None, :]
+        m = np.mod(k, n).astype(np.intp)
+        mirror = m > half
+        vals = np.where(mirror, np.conj(dft[np.where(mirror, n - m, 0)]), dft[np.minimum(m, half)])
+        u = 2.0 * np.pi * (k - pos[:, None]) / n
+        if window:
+            step = 2.0 * np.pi / n
+            ker = 0.5 * _dft_kernel(u, n) - 0.25 * (
+                _dft_kernel(u + step, n) + _dft_kernel(u - step, n)
+            )
+        else:
+            ker = _dft_kernel(u, n)
+        return np.sum(vals * ker, axis=1)

@@ -1,0 +1,405 @@
+"""SQLAlchemy 2.x models of the whirlwatch store.
+
+Tables (see docs/store.md for the full schema and the retention policy):
+
+- ``machines``, ``measurement_points``, ``modes`` and ``mode_history``: the machine
+  registry as the service uses it, with every mode change recorded (who, when, old and
+  new values).
+- ``measurements``: one row per analysed reading, unique on (machine, point, ts) so a
+  redelivered MQTT message inserts nothing.
+- ``spectrum_snapshots``: compressed float32 spectra, kept on a cadence and with every
+  alarm transition as evidence.
+- ``speed_readings``: the speed stream, unique on (machine, ts).
+- ``alarms`` and ``alarm_transitions``: the alarm history, never thinned.
+- ``users`` and ``api_tokens``: dashboard logins and hashed API tokens.
+- ``dead_letters``: rejected messages with their reason and first bytes.
+- ``detector_state``: one JSON snapshot per machine so a restarted service can rebuild
+  its detectors.
+
+Times are stored as UTC: ``UTCDateTime`` accepts aware datetimes, stores naive UTC on
+SQLite (which has no time zone type) and ``timestamptz`` on PostgreSQL, and always
+returns aware UTC datetimes.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import zlib
+from typing import Any
+
+import numpy as np
+from sqlalchemy import (
+    JSON,
+    BigInteger,
+    Boolean,
+    Date,
+    DateTime,
+    Float,
+    ForeignKey,
+    ForeignKeyConstraint,
+    Index,
+    Integer,
+    LargeBinary,
+    MetaData,
+    String,
+    Text,
+    UniqueConstraint,
+)
+from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column, relationship
+from sqlalchemy.types import TypeDecorator
+
+# Explicit constraint names so migrations and models compare equal on every backend.
+NAMING_CONVENTION = {
+    "ix": "ix_%(table_name)s_%(column_0_N_name)s",
+    "uq": "uq_%(table_name)s_%(column_0_N_name)s",
+    "ck": "ck_%(table_name)s_%(constraint_name)s",
+    "fk": "fk_%(table_name)s_%(column_0_N_name)s_%(referred_table_name)s",
+    "pk": "pk_%(table_name)s",
+}
+
+ROLES = ("viewer", "engineer", "admin")
+SPECTRUM_KINDS = ("native", "velocity")
+
+# SQLite only makes INTEGER PRIMARY KEY an auto-incrementing rowid alias.
+BigId = BigInteger().with_variant(Integer(), "sqlite")
+
+
+class UTCDateTime(TypeDecorator[dt.datetime]):
+    """A datetime stored as UTC and returned time-zone aware (UTC)."""
+
+    impl = DateTime(timezone=True)
+    cache_ok = True
+
+    def process_bind_param(self, value: dt.datetime | None, dialect: Any) -> dt.datetime | None:
+        if value is None:
+            return None
+        if value.tzinfo is None:
+            raise ValueError(f"naive datetime {value!r} given; store times as aware UTC.")
+        value = value.astimezone(dt.UTC)
+        if dialect.name == "sqlite":
+            return value.replace(tzinfo=None)
+        return value
+
+    def process_result_value(self, value: dt.datetime | None, dialect: Any) -> dt.datetime | None:
+        if value is None:
+            return None
+        if value.tzinfo is None:
+            return value.replace(tzinfo=dt.UTC)
+        return value.astimezone(dt.UTC)
+
+
+def utcnow() -> dt.datetime:
+    return dt.datetime.now(dt.UTC)
+
+
+class Base(DeclarativeBase):
+    metadata = MetaData(naming_convention=NAMING_CONVENTION)
+    type_annotation_map = {dict[str, Any]: JSON, list[Any]: JSON, dt.datetime: UTCDateTime}
+
+
+# ----------------------------------------------------------------------------- registry
+
+
+class Machine(Base):
+    __tablename__ = "machines"
+
+    id: Mapped[str] = mapped_column(String(64), primary_key=True)
+    name: Mapped[str] = mapped_column(String(200), default="")
+    location: Mapped[str] = mapped_column(String(200), default="")
+    machine_class: Mapped[str] = mapped_column(String(32))
+    speed_min_rpm: Mapped[float] = mapped_column(Float)
+    speed_max_rpm: Mapped[float] = mapped_column(Float)
+    excitation_orders: Mapped[list[Any]] = mapped_column(JSON)
+    line_frequency_hz: Mapped[float | None] = mapped_column(Float)
+    limits_mm_s: Mapped[list[Any] | None] = mapped_column(JSON)
+    settings: Mapped[dict[str, Any]] = mapped_column(JSON, default=dict)
+    # A machine dropped from the registry file is retired, not deleted: its history stays.
+    active: Mapped[bool] = mapped_column(Boolean, default=True)
+    position: Mapped[int] = mapped_column(Integer, default=0)
+    created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
+    updated_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
+
+    points: Mapped[list[MeasurementPoint]] = relationship(
+        back_populates="machine", order_by="MeasurementPoint.position"
+    )
+    modes: Mapped[list[Mode]] = relationship(
+        back_populates="machine", order_by="Mode.position", cascade="all, delete-orphan"
+    )
+
+
+class MeasurementPoint(Base):
+    __tablename__ = "measurement_points"
+
+    machine_id: Mapped[str] = mapped_column(
+        String(64), ForeignKey("machines.id", ondelete="CASCADE"), primary_key=True
+    )
+    id: Mapped[str] = mapped_column(String(64), primary_key=True)
+    direction: Mapped[str] = mapped_column(String(32))
+    quantity: Mapped[str] = mapped_column(String(32))
+    unit: Mapped[str] = mapped_column(String(16))
+    fs_hz: Mapped[float | None] = mapped_column(Float)
+    limits_mm_s: Mapped[list[Any] | None] = mapped_column(JSON)
+    active: Mapped[bool] = mapped_column(Boolean, default=True)
+    position: Mapped[int] = mapped_column(Integer, default=0)
+
+    machine: Mapped[Machine] = relationship(back_populates="points")
+
+
+class Mode(Base):
+    __tablename__ = "modes"
+    __table_args__ = (UniqueConstraint("machine_id", "name"),)
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    machine_id: Mapped[str] = mapped_column(
+        String(64), ForeignKey("machines.id", ondelete="CASCADE")
+    )
+    name: Mapped[str] = mapped_column(String(200))
+    frequency_hz: Mapped[float] = mapped_column(Float)
+    damping_ratio: Mapped[float | None] = mapped_column(Float)
+    amplification_factor: Mapped[float | None] = mapped_column(Float)
+    required_margin_pct: Mapped[float | None] = mapped_column(Float)
+    source: Mapped[str] = mapped_column(String(200), default="")
+    date: Mapped[dt.date | None] = mapped_column(Date)
+    position: Mapped[int] = mapped_column(Integer, default=0)
+    updated_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
+
+    machine: Mapped[Machine] = relationship(back_populates="modes")
+
+    def values(self) -> dict[str, Any]:
+        """The mode's registry values as JSON-ready data (what mode_history records)."""
+        return {
+            "name": self.name,
+            "frequency_hz": self.frequency_hz,
+            "damping_ratio": self.damping_ratio,
+            "amplification_factor": self.amplification_factor,
+            "required_margin_pct": self.required_margin_pct,
+            "source": self.source,
+            "date": self.date.isoformat() if self.date else None,
+        }
+
+
+class ModeHistory(Base):
+    """One row per change of a mode: created, updated or deleted, by whom and when."""
+
+    __tablename__ = "mode_history"
+    __table_args__ = (Index(None, "machine_id", "changed_at"),)
+
+    id: Mapped[int] = mapped_column(BigId, primary_key=True)
+    # No foreign key to modes: the history of a deleted mode stays.
+    machine_id: Mapped[str] = mapped_column(String(64), ForeignKey("machines.id"))
+    mode_name: Mapped[str] = mapped_column(String(200))
+    change: Mapped[str] = mapped_column(String(16))
+    changed_by: Mapped[str] = mapped_column(String(100))
+    changed_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
+    old_values: Mapped[dict[str, Any] | None] = mapped_column(JSON)
+    new_values: Mapped[dict[str, Any] | None] = mapped_column(JSON)
+
+
+# ----------------------------------------------------------------------------- readings
+
+
+class Measurement(Base):
+    """Features of one analysed waveform."""
+
+    __tablename__ = "measurements"
+    __table_args__ = (
+        # The idempotence key; also serves "latest per point" and time-range scans.
+        UniqueConstraint("machine_id", "point_id", "ts"),
+        ForeignKeyConstraint(
+            ["machine_id", "point_id"],
+            ["measurement_points.machine_id", "measurement_points.id"],
+        ),
+        Index(None, "ts"),
+    )
+
+    id: Mapped[int] = mapped_column(BigId, primary_key=True)
+    machine_id: Mapped[str] = mapped_column(String(64))
+    point_id: Mapped[str] = mapped_column(String(64))
+    ts: Mapped[dt.datetime] = mapped_column(UTCDateTime)
+    reading_id: Mapped[str | None] = mapped_column(String(128))
+    speed_hz: Mapped[float | None] = mapped_column(Float)
+    speed_source: Mapped[str | None] = mapped_column(String(16))
+    speed_uncertainty_hz: Mapped[float | None] = mapped_column(Float)
+    overall_velocity_mm_s_rms: Mapped[float | None] = mapped_column(Float)
+    one_x_normalised: Mapped[float | None] = mapped_column(Float)
+    orders: Mapped[list[Any]] = mapped_column(JSON, default=list)
+    peaks: Mapped[list[Any]] = mapped_column(JSON, default=list)
+    zone: Mapped[str | None] = mapped_column(String(8))
+    health: Mapped[dict[str, Any] | None] = mapped_column(JSON)
+    evaluation: Mapped[dict[str, Any] | None] = mapped_column(JSON)
+    stored_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
+
+
+class SpectrumSnapshot(Base):
+    """A stored spectrum: zlib-compressed little-endian float32 amplitudes.
+
+    Bin ``k`` lies at ``f0_hz + k * df_hz`` (Hz); amplitudes are in ``unit`` with
+    ``scaling`` ('peak' or 'rms'). ``evidence`` snapshots belong to alarm transitions
+    and are never thinned.
+    """
+
+    __tablename__ = "spectrum_snapshots"
+    __table_args__ = (
+        UniqueConstraint("machine_id", "point_id", "ts", "kind"),
+        ForeignKeyConstraint(
+            ["machine_id", "point_id"],
+            ["measurement_points.machine_id", "measurement_points.id"],
+        ),
+        Index(None, "ts"),
+    )
+
+    id: Mapped[int] = mapped_column(BigId, primary_key=True)
+    machine_id: Mapped[str] = mapped_column(String(64))
+    point_id: Mapped[str] = mapped_column(String(64))
+    ts: Mapped[dt.datetime] = mapped_column(UTCDateTime)
+    kind: Mapped[str] = mapped_column(String(16))
+    unit: Mapped[str] = mapped_column(String(16))
+    scaling: Mapped[str] = mapped_column(String(8))
+    f0_hz: Mapped[float] = mapped_column(Float)
+    df_hz: Mapped[float] = mapped_column(Float)
+    n_bins: Mapped[int] = mapped_column(Integer)
+    amplitudes: Mapped[bytes] = mapped_column(LargeBinary)
+    evidence: Mapped[bool] = mapped_column(Boolean, default=False)
+
+    def amplitude_array(self) -> np.ndarray:
+        """Amplitudes as float32, in ``unit``."""
+        return np.frombuffer(zlib.decompress(self.amplitudes), dtype="<f4").astype(np.float32)
+
+    def freq_hz(self) -> np.ndarray:
+        """Bin frequencies, Hz."""
+        return self.f0_hz + self.df_hz * np.arange(self.n_bins, dtype=np.float64)
+
+
+def pack_amplitudes(amplitude: np.ndarray) -> bytes:
+    """zlib of the little-endian float32 bytes of ``amplitude``."""
+    return zlib.compress(np.ascontiguousarray(amplitude, dtype="<f4").tobytes(), 6)
+
+
+class SpeedReadingRow(Base):
+    __tablename__ = "speed_readings"
+    __table_args__ = (UniqueConstraint("machine_id", "ts"), Index(None, "ts"))
+
+    id: Mapped[int] = mapped_column(BigId, primary_key=True)
+    machine_id: Mapped[str] = mapped_column(String(64), ForeignKey("machines.id"))
+    ts: Mapped[dt.datetime] = mapped_column(UTCDateTime)
+    speed_hz: Mapped[float] = mapped_column(Float)
+
+
+# ----------------------------------------------------------------------------- alarms
+
+
+class Alarm(Base):
+    """One alarm instance from raise to clear; identity (machine, point, kind, subject)."""
+
+    __tablename__ = "alarms"
+    __table_args__ = (
+        Index(None, "state", "machine_id"),
+        Index(None, "machine_id", "raised_at"),
+        Index(None, "raised_at"),
+    )
+
+    id: Mapped[int] = mapped_column(BigId, primary_key=True)
+    # The alarm engine's own id of this alarm (monitor.alarms), to relate MQTT events.
+    ref: Mapped[str | None] = mapped_column(String(64))
+    machine_id: Mapped[str] = mapped_column(String(64), ForeignKey("machines.id"))
+    point_id: Mapped[str | None] = mapped_column(String(64))
+    kind: Mapped[str] = mapped_column(String(32))
+    subject: Mapped[str] = mapped_column(String(200), default="")
+    severity: Mapped[str] = mapped_column(String(16))
+    state: Mapped[str] = mapped_column(String(16))
+    raised_at: Mapped[dt.datetime] = mapped_column(UTCDateTime)
+    cleared_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime)
+    acknowledged_by: Mapped[str | None] = mapped_column(String(100))
+    acknowledged_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime)
+    ack_comment: Mapped[str | None] = mapped_column(Text)
+    evidence: Mapped[dict[str, Any] | None] = mapped_column(JSON)
+    last_transition: Mapped[str] = mapped_column(String(32))
+    last_transition_at: Mapped[dt.datetime] = mapped_column(UTCDateTime)
+
+    transitions: Mapped[list[AlarmTransitionRow]] = relationship(
+        back_populates="alarm", order_by="AlarmTransitionRow.id"
+    )
+
+
+class AlarmTransitionRow(Base):
+    __tablename__ = "alarm_transitions"
+    __table_args__ = (
+        # A replayed transition (same alarm, name and instant) is not stored twice.
+        UniqueConstraint("alarm_id", "transition", "at"),
+        Index(None, "at"),
+    )
+
+    id: Mapped[int] = mapped_column(BigId, primary_key=True)
+    alarm_id: Mapped[int] = mapped_column(BigId, ForeignKey("alarms.id"))
+    transition: Mapped[str] = mapped_column(String(32))
+    severity: Mapped[str] = mapped_column(String(16))
+    state: Mapped[str] = mapped_column(String(16))
+    at: Mapped[dt.datetime] = mapped_column(UTCDateTime)
+    evidence: Mapped[dict[str, Any] | None] = mapped_column(JSON)
+    spectrum_snapshot_id: Mapped[int | None] = mapped_column(
+        BigId, ForeignKey("spectrum_snapshots.id")
+    )
+    user: Mapped[str | None] = mapped_column(String(100))
+
+    alarm: Mapped[Alarm] = relationship(back_populates="transitions")
+
+
+# ----------------------------------------------------------------------------- people
+
+
+class User(Base):
+    __tablename__ = "users"
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    name: Mapped[str] = mapped_column(String(100), unique=True)
+    password_hash: Mapped[str] = mapped_column(String(256))
+    role: Mapped[str] = mapped_column(String(16))
+    created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
+    disabled: Mapped[bool] = mapped_column(Boolean, default=False)
+
+    tokens: Mapped[list[ApiToken]] = relationship(back_populates="user")
+
+
+class ApiToken(Base):
+    """An API token, stored as the sha256 hex digest of the token text only."""
+
+    __tablename__ = "api_tokens"
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    token_hash: Mapped[str] = mapped_column(String(64), unique=True)
+    user_id: Mapped[int] = mapped_column(Integer, ForeignKey("users.id", ondelete="CASCADE"))
+    label: Mapped[str] = mapped_column(String(200), default="")
+    created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
+    revoked_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime)
+    last_used_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime)
+
+    user: Mapped[User] = relationship(back_populates="tokens")
+
+
+# ----------------------------------------------------------------------------- service
+
+
+class DeadLetter(Base):
+    __tablename__ = "dead_letters"
+    __table_args__ = (Index(None, "at"), Index(None, "reason"))
+
+    id: Mapped[int] = mapped_column(BigId, primary_key=True)
+    at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
+    topic: Mapped[str] = mapped_column(String(512))
+    reason: Mapped[str] = mapped_column(String(64))
+    detail: Mapped[str] = mapped_column(Text, default="")
+    payload_head: Mapped[bytes] = mapped_column(LargeBinary)
+    payload_size: Mapped[int] = mapped_column(Integer)
+
+
+class DetectorState(Base):
+    """The detectors' state of one machine as JSON, written with each reading."""
+
+    __tablename__ = "detector_state"
+
+    machine_id: Mapped[str] = mapped_column(
+        String(64), ForeignKey("machines.id", ondelete="CASCADE"), primary_key=True
+    )
+    state: Mapped[dict[str, Any]] = mapped_column(JSON)
+    ts: Mapped[dt.datetime | None] = mapped_column(UTCDateTime)
+    updated_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)

@@ -1,0 +1,553 @@
+"""Writes of the service: one reading's results and its alarm transitions in one
+transaction, idempotent on (machine, point, ts).
+
+The service calls, for each waveform message::
+
+    with store.transaction() as session:
+        result = write_reading(session, analysis, zone=..., transitions=..., ...)
+    client.ack(mid, qos)          # only after the commit
+
+A redelivered message finds its measurement row already there (``INSERT ... ON CONFLICT
+DO NOTHING`` returns no id) and writes nothing else: no second snapshot, no second alarm
+transition, no detector state overwritten with an older one. Two service processes racing
+on the same reading are serialised by the unique key the same way.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime as dt
+import enum
+import math
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any, Protocol
+
+import numpy as np
+from sqlalchemy import Table, and_, func, select
+from sqlalchemy.dialects import postgresql, sqlite
+from sqlalchemy.orm import Session
+
+from monitor.analysis import ReadingAnalysis, Spectrum
+from monitor.readings import SpeedReading
+from monitor.store.models import (
+    Alarm,
+    AlarmTransitionRow,
+    DeadLetter,
+    DetectorState,
+    Measurement,
+    SpectrumSnapshot,
+    SpeedReadingRow,
+    pack_amplitudes,
+    utcnow,
+)
+
+CLOSED_STATES = frozenset({"cleared"})
+DEAD_LETTER_HEAD_BYTES = 256
+
+
+class TransitionLike(Protocol):
+    """What the store needs of an alarm transition (``monitor.alarms`` provides one)."""
+
+    machine: str
+    point: str | None
+    kind: str
+    subject: str
+    severity: str
+    state: str
+    transition: str
+    time: Any  # epoch seconds UTC (float) or aware datetime
+    evidence: Mapping[str, Any] | None
+
+
+@dataclass(frozen=True)
+class AlarmTransitionInput:
+    """A plain alarm transition for callers without ``monitor.alarms`` objects.
+
+    ``time`` is epoch seconds UTC or an aware datetime; ``user`` names who caused it
+    (acknowledgements), None for the service.
+    """
+
+    machine: str
+    point: str | None
+    kind: str
+    subject: str
+    severity: str
+    state: str
+    transition: str
+    time: float | dt.datetime
+    evidence: Mapping[str, Any] | None = None
+    user: str | None = None
+
+
+@dataclass(frozen=True)
+class ReadingWrite:
+    """Outcome of :func:`write_reading`.
+
+    ``inserted`` is False for a replay (nothing was written); ``alarm_ids`` lists the alarm
+    rows the transitions touched, in order; ``snapshot_ids`` the spectrum snapshots stored.
+    """
+
+    inserted: bool
+    measurement_id: int | None
+    alarm_ids: tuple[int, ...] = ()
+    snapshot_ids: tuple[int, ...] = ()
+    evidence_snapshot_id: int | None = None
+
+
+# ----------------------------------------------------------------------------- helpers
+
+
+def to_datetime(t: float | int | dt.datetime) -> dt.datetime:
+    """Epoch seconds UTC or an aware datetime -> aware UTC datetime (microseconds)."""
+    if isinstance(t, dt.datetime):
+        if t.tzinfo is None:
+            raise ValueError(f"time {t!r} is naive; give an aware UTC datetime or epoch seconds.")
+        return t.astimezone(dt.UTC)
+    if isinstance(t, bool) or not isinstance(t, int | float) or not math.isfinite(t):
+        raise ValueError(f"time {t!r} must be finite epoch seconds or an aware datetime.")
+    # Round to the microsecond the database keeps, so a replay compares equal.
+    return dt.datetime(1970, 1, 1, tzinfo=dt.UTC) + dt.timedelta(microseconds=round(t * 1e6))
+
+
+def jsonable(obj: Any) -> Any:
+    """Turn dataclasses, numpy values, tuples, dates and enums into JSON data.
+
+    Non-finite floats become None (JSON has no NaN); mapping keys become strings.
+    """
+    if obj is None or isinstance(obj, bool | str | int):
+        return obj
+    if isinstance(obj, float):
+        return obj if math.isfinite(obj) else None
+    if isinstance(obj, np.generic):
+        return jsonable(obj.item())
+    if isinstance(obj, np.ndarray):
+        return [jsonable(x) for x in obj.tolist()]
+    if isinstance(obj, enum.Enum):
+        return jsonable(obj.value)
+    if isinstance(obj, dt.datetime | dt.date):
+        return obj.isoformat()
+    if dataclasses.is_dataclass(obj) and not isinstance(obj, type):
+        return {f.name: jsonable(getattr(obj, f.name)) for f in dataclasses.fields(obj)}
+    if isinstance(obj, Mapping):
+        return {str(k): jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, Iterable):
+        return [jsonable(x) for x in obj]
+    return str(obj)
+
+
+def _num(x: Any) -> float | None:
+    if x is None:
+        return None
+    v = float(x)
+    return v if math.isfinite(v) else None
+
+
+def insert_ignore(
+    session: Session, table: Table, values: Mapping[str, Any], keys: Sequence[str]
+) -> Any:
+    """``INSERT ... ON CONFLICT (keys) DO NOTHING RETURNING id``: the new id, or None
+    when a row with the same key exists."""
+    dialect = session.get_bind().dialect.name
+    ins_mod = postgresql if dialect == "postgresql" else sqlite
+    stmt = (
+        ins_mod.insert(table)
+        .values(**values)
+        .on_conflict_do_nothing(index_elements=list(keys))
+        .returning(table.c.id)
+    )
+    return session.execute(stmt).scalar_one_or_none()
+
+
+# ----------------------------------------------------------------------------- readings
+
+
+def _orders_json(analysis: ReadingAnalysis) -> list[dict[str, Any]]:
+    return [
+        {
+            "order": _num(o.order),
+            "frequency_hz": _num(o.frequency_hz),
+            "amplitude": _num(o.amplitude),
+            "velocity_mm_s": _num(o.velocity_mm_s),
+            "phase_deg": _num(o.phase_deg),
+        }
+        for o in analysis.orders
+    ]
+
+
+def _snapshot_values(
+    analysis: ReadingAnalysis, ts: dt.datetime, kind: str, spectrum: Spectrum, evidence: bool
+) -> dict[str, Any]:
+    freq = np.asarray(spectrum.freq_hz, dtype=np.float64)
+    amp = np.asarray(spectrum.amplitude)
+    return {
+        "machine_id": analysis.machine,
+        "point_id": analysis.point,
+        "ts": ts,
+        "kind": kind,
+        "unit": spectrum.unit,
+        "scaling": spectrum.scaling,
+        "f0_hz": float(freq[0]) if freq.size else 0.0,
+        "df_hz": float(spectrum.resolution_hz),
+        "n_bins": int(amp.size),
+        "amplitudes": pack_amplitudes(amp),
+        "evidence": evidence,
+    }
+
+
+def snapshot_due(
+    session: Session, machine: str, point: str, ts: dt.datetime, interval_s: float
+) -> bool:
+    """True when no spectrum of the point was kept in the ``interval_s`` before ``ts``."""
+    since = ts - dt.timedelta(seconds=interval_s)
+    n = session.execute(
+        select(func.count())
+        .select_from(SpectrumSnapshot)
+        .where(
+            SpectrumSnapshot.machine_id == machine,
+            SpectrumSnapshot.point_id == point,
+            SpectrumSnapshot.ts > since,
+            SpectrumSnapshot.ts <= ts,
+        )
+    ).scalar_one()
+    return n == 0
+
+
+def write_reading(
+    session: Session,
+    analysis: ReadingAnalysis,
+    *,
+    zone: str | None = None,
+    health: Any = None,
+    evaluation: Any = None,
+    transitions: Sequence[TransitionLike] = (),
+    snapshot_interval_s: float | None = None,
+    keep_spectrum: bool = False,
+    detector_state: Mapping[str, Any] | None = None,
+) -> ReadingWrite:
+    """Store one reading's results, spectrum snapshots, alarm transitions and detector
+    state, inside the caller's transaction; a replay of the same (machine, point, ts)
+    writes nothing and returns ``inserted=False``.
+
+    Parameters
+    ----------
+    analysis : ReadingAnalysis
+        The analysed waveform; its machine and point must exist in the registry tables.
+    zone : str, optional
+        ISO 20816 zone letter of the overall velocity.
+    health, evaluation : dataclass or mapping, optional
+        Sensor-health flags and the detection results (margins, baselines, ...), stored
+        as JSON (see :func:`jsonable`).
+    transitions : sequence of TransitionLike
+        Alarm transitions this reading caused; each gets the reading's velocity spectrum
+        as evidence.
+    snapshot_interval_s : float, optional
+        Keep the spectra when none of this point was kept in the last ``snapshot_interval_s``
+        seconds (the cadence); None keeps spectra only as evidence or on ``keep_spectrum``.
+    detector_state : mapping, optional
+        The machine's detector state after this reading (JSON-able), for restarts.
+    """
+    ts = to_datetime(analysis.ts)
+    values = {
+        "machine_id": analysis.machine,
+        "point_id": analysis.point,
+        "ts": ts,
+        "reading_id": analysis.reading_id,
+        "speed_hz": _num(analysis.speed_hz),
+        "speed_source": analysis.speed_source,
+        "speed_uncertainty_hz": _num(analysis.speed_uncertainty_hz),
+        "overall_velocity_mm_s_rms": _num(analysis.overall_velocity_mm_s_rms),
+        "one_x_normalised": _num(analysis.one_x_normalised),
+        "orders": _orders_json(analysis),
+        "peaks": [{"hz": _num(p.hz), "amplitude": _num(p.amplitude)} for p in analysis.peaks],
+        "zone": zone,
+        "health": jsonable(health),
+        "evaluation": jsonable(evaluation),
+        "stored_at": utcnow(),
+    }
+    mid = insert_ignore(session, Measurement.__table__, values, ("machine_id", "point_id", "ts"))
+    if mid is None:
+        return ReadingWrite(inserted=False, measurement_id=None)
+
+    evidence = bool(transitions)
+    keep = (
+        keep_spectrum
+        or evidence
+        or (
+            snapshot_interval_s is not None
+            and snapshot_due(session, analysis.machine, analysis.point, ts, snapshot_interval_s)
+        )
+    )
+    snapshot_ids: list[int] = []
+    evidence_id: int | None = None
+    if keep:
+        for kind, spectrum in (
+            ("native", analysis.spectrum),
+            ("velocity", analysis.velocity_spectrum),
+        ):
+            if spectrum is None:
+                continue
+            sid = insert_ignore(
+                session,
+                SpectrumSnapshot.__table__,
+                _snapshot_values(analysis, ts, kind, spectrum, evidence),
+                ("machine_id", "point_id", "ts", "kind"),
+            )
+            if sid is not None:
+                snapshot_ids.append(sid)
+                if kind == "velocity" or evidence_id is None:
+                    evidence_id = sid
+    alarm_ids = record_transitions(session, transitions, spectrum_snapshot_id=evidence_id)
+    if detector_state is not None:
+        save_detector_state(session, analysis.machine, detector_state, ts)
+    return ReadingWrite(
+        inserted=True,
+        measurement_id=mid,
+        alarm_ids=tuple(alarm_ids),
+        snapshot_ids=tuple(snapshot_ids),
+        evidence_snapshot_id=evidence_id if evidence else None,
+    )
+
+
+def write_speed_reading(session: Session, reading: SpeedReading) -> bool:
+    """Store a speed reading; False when one for (machine, ts) is already stored."""
+    rid = insert_ignore(
+        session,
+        SpeedReadingRow.__table__,
+        {
+            "machine_id": reading.machine,
+            "ts": to_datetime(reading.ts),
+            "speed_hz": float(reading.speed_hz),
+        },
+        ("machine_id", "ts"),
+    )
+    return rid is not None
+
+
+# ----------------------------------------------------------------------------- alarms
+
+
+@dataclass(frozen=True)
+class _Step:
+    machine: str
+    point: str | None
+    kind: str
+    subject: str
+    severity: str
+    state: str
+    name: str
+    at: dt.datetime
+    evidence: Any
+    user: str | None
+    comment: str | None
+    ref: str | None
+
+
+def _step(t: Any) -> _Step:
+    """Normalise a ``monitor.alarms.Transition`` (alarm dict + name/ts) or a
+    :class:`TransitionLike` into one shape."""
+    alarm = getattr(t, "alarm", None)
+    if isinstance(alarm, Mapping) and hasattr(t, "name") and hasattr(t, "ts"):
+        ref = alarm.get("id")
+        return _Step(
+            machine=str(alarm["machine"]),
+            point=alarm.get("point"),
+            kind=str(alarm["kind"]),
+            subject=str(alarm.get("subject") or ""),
+            severity=str(t.severity),
+            state=str(alarm["state"]),
+            name=str(t.name),
+            at=to_datetime(t.ts),
+            evidence=t.evidence,
+            user=getattr(t, "user", None),
+            comment=getattr(t, "comment", None),
+            ref=None if ref is None else str(ref),
+        )
+    return _Step(
+        machine=t.machine,
+        point=t.point,
+        kind=t.kind,
+        subject=t.subject or "",
+        severity=str(t.severity),
+        state=str(t.state),
+        name=str(t.transition),
+        at=to_datetime(t.time),
+        evidence=t.evidence,
+        user=getattr(t, "user", None),
+        comment=getattr(t, "comment", None),
+        ref=getattr(t, "ref", None),
+    )
+
+
+def _key_filter(t: _Step) -> Any:
+    point = Alarm.point_id.is_(None) if t.point is None else Alarm.point_id == t.point
+    return and_(
+        Alarm.machine_id == t.machine, point, Alarm.kind == t.kind, Alarm.subject == t.subject
+    )
+
+
+def record_transitions(
+    session: Session,
+    transitions: Iterable[Any],
+    *,
+    spectrum_snapshot_id: int | None = None,
+) -> list[int]:
+    """Apply alarm transitions to the ``alarms`` rows and append them to
+    ``alarm_transitions``, inside the caller's transaction.
+
+    Accepts ``monitor.alarms.Transition`` objects or any :class:`TransitionLike` (e.g.
+    :class:`AlarmTransitionInput`). An alarm is identified by (machine, point, kind,
+    subject); a transition opens a new alarm row when none of that identity is open
+    (state not ``cleared``). A transition already stored (same alarm identity, name and
+    instant) is skipped, so replays are no-ops. Returns the alarm ids touched, in order.
+    """
+    ids: list[int] = []
+    for raw in transitions:
+        t = _step(raw)
+        seen = session.execute(
+            select(AlarmTransitionRow.alarm_id)
+            .join(Alarm, Alarm.id == AlarmTransitionRow.alarm_id)
+            .where(
+                _key_filter(t),
+                AlarmTransitionRow.transition == t.name,
+                AlarmTransitionRow.at == t.at,
+            )
+            .limit(1)
+        ).scalar_one_or_none()
+        if seen is not None:
+            ids.append(seen)
+            continue
+        alarm = session.execute(
+            select(Alarm)
+            .where(_key_filter(t), Alarm.state.not_in(CLOSED_STATES))
+            .order_by(Alarm.id.desc())
+            .limit(1)
+        ).scalar_one_or_none()
+        evidence = jsonable(t.evidence) if t.evidence is not None else None
+        if isinstance(evidence, dict) and spectrum_snapshot_id is not None:
+            evidence["spectrum_snapshot_id"] = spectrum_snapshot_id
+        if alarm is None:
+            alarm = Alarm(
+                ref=t.ref,
+                machine_id=t.machine,
+                point_id=t.point,
+                kind=t.kind,
+                subject=t.subject,
+                severity=t.severity,
+                state=t.state,
+                raised_at=t.at,
+                last_transition=t.name,
+                last_transition_at=t.at,
+            )
+            session.add(alarm)
+        alarm.severity = t.severity
+        alarm.state = t.state
+        alarm.last_transition = t.name
+        alarm.last_transition_at = t.at
+        if t.ref is not None:
+            alarm.ref = t.ref
+        if evidence is not None and t.name != "acknowledged":
+            alarm.evidence = evidence
+        if t.state in CLOSED_STATES:
+            alarm.cleared_at = t.at
+        if t.name == "acknowledged":
+            alarm.acknowledged_by = t.user
+            alarm.acknowledged_at = t.at
+            alarm.ack_comment = t.comment
+        session.flush()
+        session.add(
+            AlarmTransitionRow(
+                alarm_id=alarm.id,
+                transition=t.name,
+                severity=t.severity,
+                state=t.state,
+                at=t.at,
+                evidence=evidence,
+                spectrum_snapshot_id=spectrum_snapshot_id,
+                user=t.user,
+            )
+        )
+        session.flush()
+        ids.append(alarm.id)
+    return ids
+
+
+def acknowledge_alarm(
+    session: Session,
+    alarm_id: int,
+    user: str,
+    comment: str | None = None,
+    *,
+    at: dt.datetime | None = None,
+) -> Alarm:
+    """Record that ``user`` acknowledged alarm ``alarm_id`` (a transition
+    ``acknowledged``); the state becomes ``acknowledged`` unless the alarm is cleared.
+    Raises LookupError when there is no such alarm."""
+    alarm = session.get(Alarm, alarm_id)
+    if alarm is None:
+        raise LookupError(f"no alarm with id {alarm_id}.")
+    when = at or utcnow()
+    alarm.acknowledged_by = user
+    alarm.acknowledged_at = when
+    alarm.ack_comment = comment
+    if alarm.state not in CLOSED_STATES:
+        alarm.state = "acknowledged"
+    alarm.last_transition = "acknowledged"
+    alarm.last_transition_at = when
+    session.add(
+        AlarmTransitionRow(
+            alarm_id=alarm.id,
+            transition="acknowledged",
+            severity=alarm.severity,
+            state=alarm.state,
+            at=when,
+            evidence={"comment": comment} if comment else None,
+            user=user,
+        )
+    )
+    session.flush()
+    return alarm
+
+
+# ----------------------------------------------------------------------------- service state
+
+
+def save_detector_state(
+    session: Session, machine: str, state: Mapping[str, Any], ts: dt.datetime | float | None = None
+) -> None:
+    """Upsert the detector state JSON of ``machine`` (inside the caller's transaction)."""
+    row = session.get(DetectorState, machine)
+    when = to_datetime(ts) if ts is not None else None
+    if row is None:
+        session.add(
+            DetectorState(machine_id=machine, state=jsonable(state), ts=when, updated_at=utcnow())
+        )
+    else:
+        row.state = jsonable(state)
+        row.ts = when
+        row.updated_at = utcnow()
+    session.flush()
+
+
+def add_dead_letter(
+    session: Session,
+    *,
+    topic: str,
+    reason: str,
+    detail: str = "",
+    payload: bytes = b"",
+    at: dt.datetime | None = None,
+) -> int:
+    """Record a rejected message: its topic, the counted reason, a one-line detail and
+    the first 256 bytes of the payload."""
+    row = DeadLetter(
+        at=at or utcnow(),
+        topic=topic[:512],
+        reason=reason[:64],
+        detail=detail,
+        payload_head=bytes(payload[:DEAD_LETTER_HEAD_BYTES]),
+        payload_size=len(payload),
+    )
+    session.add(row)
+    session.flush()
+    return row.id

@@ -1,0 +1,224 @@
+"""A private Mosquitto for the tests: started on a free loopback port, stoppable and restartable.
+
+Tests need a broker they can stop, kill and restart (same port, same persistence directory)
+without touching anything else on the machine, so each :class:`PrivateBroker` runs its own
+``mosquitto`` process from a temporary configuration.
+
+Fixtures (registered from ``tests/conftest.py`` through ``pytest_plugins``):
+
+``mosquitto``
+    Session-scoped running broker shared by tests that only publish and subscribe.
+``fresh_mosquitto``
+    Function-scoped broker of its own, for tests that stop, kill or restart it.
+
+Both skip, with the reason, when the ``mosquitto`` binary is not installed.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import signal
+import socket
+import subprocess
+import tempfile
+import time
+from collections.abc import Iterator
+from pathlib import Path
+
+import pytest
+
+
+def find_mosquitto() -> str | None:
+    """Path of the ``mosquitto`` binary, or None (Debian installs it in /usr/sbin)."""
+    found = shutil.which("mosquitto")
+    if found:
+        return found
+    return "/usr/sbin/mosquitto" if os.access("/usr/sbin/mosquitto", os.X_OK) else None
+
+
+def free_port() -> int:
+    """A TCP port on 127.0.0.1 that nothing listens on right now."""
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+        s.bind(("127.0.0.1", 0))
+        return int(s.getsockname()[1])
+
+
+class PrivateBroker:
+    """One ``mosquitto`` process on 127.0.0.1 with persistence in a private directory.
+
+    ``max_queued_messages`` is raised from Mosquitto's default of 1000 on purpose: beyond it
+    an offline session's backlog is silently dropped, which would hide lost messages in the
+    delivery tests. ``autosave_interval`` is 1 s because Mosquitto writes its persistence
+    file only on that interval and at a clean shutdown.
+    """
+
+    def __init__(
+        self,
+        workdir: Path,
+        *,
+        port: int | None = None,
+        max_queued_messages: int = 100_000,
+        max_inflight_messages: int = 20,
+        autosave_interval_s: int = 1,
+    ) -> None:
+        binary = find_mosquitto()
+        if binary is None:
+            raise FileNotFoundError("the mosquitto binary is not installed.")
+        self.binary = binary
+        self.workdir = Path(workdir)
+        self.workdir.mkdir(parents=True, exist_ok=True)
+        self.port = port or free_port()
+        self.host = "127.0.0.1"
+        self.persistence_dir = self.workdir / "persist"
+        self.persistence_dir.mkdir(exist_ok=True)
+        self.config_path = self.workdir / "mosquitto.conf"
+        self.log_path = self.workdir / "mosquitto.log"
+        lines = [
+            f"listener {self.port} 127.0.0.1",
+            "allow_anonymous true",
+            "persistence true",
+            f"persistence_location {self.persistence_dir}/",
+            f"autosave_interval {autosave_interval_s}",
+            f"max_queued_messages {max_queued_messages}",
+            f"max_inflight_messages {max_inflight_messages}",
+            "log_dest stderr",
+            "log_type error",
+            "log_type warning",
+        ]
+        if os.geteuid() == 0:
+            # Started as root, Mosquitto switches to the 'mosquitto' user, which cannot write
+            # the private persistence directory; stay the user that created it.
+            lines.append("user root")
+        self.config_path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+        self.proc: subprocess.Popen[bytes] | None = None
+
+    @property
+    def url(self) -> str:
+        return f"mqtt://{self.host}:{self.port}"
+
+    @property
+    def running(self) -> bool:
+        return self.proc is not None and self.proc.poll() is None
+
+    def start(self, timeout_s: float = 10.0) -> None:
+        """Start the broker and return once it accepts TCP connections."""
+        if self.running:
+            return
+        log = open(self.log_path, "ab")  # noqa: SIM115 (the child keeps it open)
+        try:
+            self.proc = subprocess.Popen(
+                [self.binary, "-c", str(self.config_path)],
+                stdout=log,
+                stderr=subprocess.STDOUT,
+                stdin=subprocess.DEVNULL,
+            )
+        finally:
+            log.close()
+        deadline = time.monotonic() + timeout_s
+        while time.monotonic() < deadline:
+            if self.proc.poll() is not None:
+                raise RuntimeError(
+                    f"mosquitto exited with {self.proc.returncode}: {self.log_tail()}"
+                )
+            try:
+                with socket.create_connection((self.host, self.port), timeout=0.2):
+                    return
+            except OSError:
+                time.sleep(0.02)
+        self.kill()
+        raise RuntimeError(f"mosquitto did not listen on port {self.port}: {self.log_tail()}")
+
+    def stop(self, timeout_s: float = 10.0) -> None:
+        """SIGTERM: Mosquitto writes its persistence file and exits."""
+        if self.proc is None:
+            return
+        if self.proc.poll() is None:
+            self.proc.send_signal(signal.SIGTERM)
+            try:
+                self.proc.wait(timeout_s)
+            except subprocess.TimeoutExpired:
+                self.proc.kill()
+                self.proc.wait()
+        self.proc = None
+
+    def kill(self) -> None:
+        """SIGKILL: no shutdown save; only what the last autosave wrote survives."""
+        if self.proc is None:
+            return
+        if self.proc.poll() is None:
+            self.proc.kill()
+            self.proc.wait()
+        self.proc = None
+
+    def restart(self, *, hard: bool = False) -> None:
+        """Stop (or kill, with ``hard``) and start again on the same port and persistence."""
+        if hard:
+            self.kill()
+        else:
+            self.stop()
+        self.start()
+
+    def log_tail(self, n: int = 20) -> str:
+        try:
+            lines = self.log_path.read_text(encoding="utf-8", errors="replace").splitlines()
+        except OSError:
+            return "(no log)"
+        return " | ".join(lines[-n:])
+
+
+def publish_many(
+    broker: PrivateBroker, messages: list[tuple[str, bytes]], *, timeout_s: float = 30.0
+) -> None:
+    """Publish ``(topic, payload)`` pairs at QoS 1 as a sensor would, and wait for every PUBACK.
+
+    Uses paho directly (not ``monitor.mqtt``) so the tests' sender is independent of the
+    code under test.
+    """
+    import paho.mqtt.client as paho
+    from paho.mqtt.enums import CallbackAPIVersion
+
+    client = paho.Client(CallbackAPIVersion.VERSION2, client_id="", protocol=paho.MQTTv5)
+    client.max_inflight_messages_set(500)
+    client.max_queued_messages_set(0)
+    client.connect(broker.host, broker.port)
+    client.loop_start()
+    try:
+        infos = [client.publish(topic, payload, qos=1) for topic, payload in messages]
+        deadline = time.monotonic() + timeout_s
+        for info in infos:
+            info.wait_for_publish(max(0.0, deadline - time.monotonic()))
+            if not info.is_published():
+                raise RuntimeError("the private broker did not acknowledge a test message in time.")
+    finally:
+        client.disconnect()
+        client.loop_stop()
+
+
+def _make_broker(tmp: Path) -> PrivateBroker:
+    if find_mosquitto() is None:
+        pytest.skip("the mosquitto binary is not installed (apt-get install mosquitto)")
+    broker = PrivateBroker(tmp)
+    broker.start()
+    return broker
+
+
+@pytest.fixture(scope="session")
+def mosquitto() -> Iterator[PrivateBroker]:
+    """A private broker shared by the whole session; do not stop or restart it."""
+    with tempfile.TemporaryDirectory(prefix="ww-mosquitto-") as tmp:
+        broker = _make_broker(Path(tmp))
+        try:
+            yield broker
+        finally:
+            broker.kill()
+
+
+@pytest.fixture()
+def fresh_mosquitto(tmp_path: Path) -> Iterator[PrivateBroker]:
+    """A private broker for one test, free to be stopped, killed and restarted."""
+    broker = _make_broker(tmp_path / "broker")
+    try:
+        yield broker
+    finally:
+        broker.kill()

@@ -1,0 +1,9 @@
+"""Fixtures shared by the test modules.
+
+Fixture plugins live in their own modules next to this file; add yours with
+``pytest_plugins.append("module")`` rather than assigning the list again.
+"""
+
+pytest_plugins: list[str] = []
+pytest_plugins.append("broker")  # private Mosquitto: mosquitto, fresh_mosquitto (tests/broker.py)
+pytest_plugins.append("fixtures_db")  # databases: database_url, store, plant (tests/fixtures_db.py)

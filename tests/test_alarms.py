@@ -1,0 +1,152 @@
+"""Alarm engine: lifecycle, persistence, hysteresis, acknowledgement, persistence of state."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+
+from monitor.alarms import AlarmEngine, AlarmKey, levels_above
+
+KEY = AlarmKey("fan-1", "de-h", "amplitude_growth", "overall")
+
+
+def _feed(engine, levels, key=KEY, t0=0.0):
+    out = []
+    for i, (r, h) in enumerate(levels):
+        out += engine.update(key, t0 + i, r, h, {"i": i}, f"r{i}")
+    return out
+
+
+def test_persistence_before_raise():
+    e = AlarmEngine(persistence=3)
+    assert _feed(e, [("alert", "alert")] * 2 + [(None, None)] + [("alert", "alert")] * 2) == []
+    tr = _feed(e, [("alert", "alert")], t0=10)
+    assert [t.name for t in tr] == ["raised"]
+    assert tr[0].severity == "alert" and tr[0].ts == 10 and tr[0].reading_id == "r0"
+
+
+def test_full_lifecycle_and_json_shape():
+    e = AlarmEngine(persistence=2)
+    tr = _feed(e, [("advisory", "advisory")] * 2)
+    aid = tr[0].alarm_id
+    # Escalation needs the higher raise condition for N readings.
+    tr = _feed(e, [("alert", "alert")] * 2, t0=10)
+    assert [(t.name, t.previous_severity, t.severity) for t in tr] == [("escalated", "advisory", "alert")]
+    ack = e.acknowledge(aid, "r.okafor", "checked on site, planning balancing", 20.0)
+    assert ack.name == "acknowledged" and ack.user == "r.okafor"
+    a = e.find(aid)
+    assert a.state == "acknowledged" and a.acknowledged_by == "r.okafor"
+    # Acknowledging does not clear: the alarm stays until its condition goes away.
+    assert _feed(e, [("alert", "alert")] * 5, t0=30) == []
+    assert e.find(aid).state == "acknowledged"
+    # De-escalation: only the lower level's relaxed condition holds for N readings; ack kept.
+    tr = _feed(e, [(None, "advisory")] * 2, t0=40)
+    assert [(t.name, t.severity) for t in tr] == [("de-escalated", "advisory")]
+    assert e.find(aid).state == "acknowledged"
+    tr = _feed(e, [(None, None)] * 2, t0=50)
+    assert [t.name for t in tr] == ["cleared"]
+    assert e.find(aid).cleared_at == 51
+    js = tr[0].to_json()
+    for k in ("id", "machine", "point", "kind", "severity", "state", "raised_at", "cleared_at",
+              "acknowledged_by", "evidence"):
+        assert k in js
+    assert js["state"] == "cleared" and js["kind"] == "amplitude_growth"
+    assert js["raised_at"] == "1970-01-01T00:00:01Z"
+    assert js["transition"]["name"] == "cleared"
+    json.dumps(js)  # serialisable
+    # Re-raised after a clear: a new alarm id.
+    tr = _feed(e, [("alert", "alert")] * 2, t0=60)
+    assert tr[0].name == "raised" and tr[0].alarm_id != aid
+    with pytest.raises(ValueError, match="already cleared"):
+        e.acknowledge(aid, "x", "", 70.0)
+
+
+def test_escalation_needs_new_ack():
+    e = AlarmEngine(persistence=1)
+    aid = _feed(e, [("advisory", "advisory")])[0].alarm_id
+    e.acknowledge(aid, "a.user", "seen", 1.0)
+    _feed(e, [("severe", "severe")], t0=2)
+    a = e.find(aid)
+    assert a.severity == "severe" and a.state == "active" and a.acknowledged_by is None
+
+
+def test_hold_level_keeps_alarm():
+    e = AlarmEngine(persistence=2)
+    _feed(e, [("alert", "alert")] * 2)
+    assert _feed(e, [(None, "alert")] * 50, t0=10) == []
+    assert e.alarm(KEY).state == "active"
+
+
+def test_ack_validation():
+    e = AlarmEngine(persistence=1)
+    aid = _feed(e, [("alert", "alert")])[0].alarm_id
+    with pytest.raises(ValueError, match="user"):
+        e.acknowledge(aid, "  ", "x", 1.0)
+    with pytest.raises(KeyError):
+        e.acknowledge("nope", "u", "x", 1.0)
+
+
+def test_levels_above():
+    th = {"advisory": 2.0, "alert": 4.0}
+    assert levels_above(1.0, th, 0.1) == (None, None)
+    assert levels_above(1.9, th, 0.1) == (None, "advisory")
+    assert levels_above(2.0, th, 0.1) == ("advisory", "advisory")
+    assert levels_above(3.7, th, 0.1) == ("advisory", "alert")
+    assert levels_above(4.0, th, 0.1) == ("alert", "alert")
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_no_chatter_hovering_on_limit(seed):
+    # 1,000 readings of a feature hovering on its limit with noise (sigma 2 % of the limit):
+    # at most one raise and one clear (hysteresis 10 %, persistence 3).
+    rng = np.random.default_rng(seed)
+    limit = 4.5
+    e = AlarmEngine(persistence=3)
+    values = limit * (1 + 0.02 * rng.standard_normal(1000))
+    trans = []
+    for i, v in enumerate(values):
+        r, h = levels_above(v, {"alert": limit}, 0.10)
+        trans += e.update(KEY, float(i), r, h, {"value": v})
+    names = [t.name for t in trans]
+    assert names.count("raised") <= 1 and names.count("cleared") <= 1
+    assert names.count("raised") == 1  # it did sit on the limit
+
+
+def test_no_chatter_then_clear_after_leaving():
+    rng = np.random.default_rng(11)
+    limit = 4.5
+    e = AlarmEngine(persistence=3)
+    values = np.concatenate([limit * (1 + 0.02 * rng.standard_normal(1000)),
+                             0.7 * limit * (1 + 0.02 * rng.standard_normal(20))])
+    names = []
+    for i, v in enumerate(values):
+        r, h = levels_above(v, {"alert": limit}, 0.10)
+        names += [t.name for t in e.update(KEY, float(i), r, h)]
+    assert names == ["raised", "cleared"]
+
+
+def test_snapshot_restore_mid_stream_is_equivalent():
+    rng = np.random.default_rng(4)
+    seq = []
+    for v in 4.5 * (1 + 0.15 * rng.standard_normal(300)):
+        seq.append(levels_above(v, {"advisory": 3.0, "alert": 4.5, "severe": 6.0}, 0.1))
+    a = AlarmEngine(persistence=3)
+    b = AlarmEngine(persistence=3)
+    out_a = [t.to_json() for i, (r, h) in enumerate(seq) for t in a.update(KEY, float(i), r, h)]
+    out_b = []
+    for i, (r, h) in enumerate(seq):
+        if i % 37 == 0:
+            b = AlarmEngine.restore(json.loads(json.dumps(b.snapshot())))
+        out_b += [t.to_json() for t in b.update(KEY, float(i), r, h)]
+    assert out_a == out_b and len(out_a) > 2
+
+
+def test_bad_arguments():
+    with pytest.raises(ValueError, match="persistence"):
+        AlarmEngine(persistence=0)
+    with pytest.raises(ValueError, match="kind"):
+        AlarmKey("m", None, "vibration", "x")
+    with pytest.raises(ValueError, match="severity"):
+        AlarmEngine().update(KEY, 0.0, "critical", None)

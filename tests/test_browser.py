@@ -1,0 +1,135 @@
+"""The real dashboard server in a real headless Chromium: sign in, overview, machine
+charts, acknowledge an alarm. Screenshots go to test-artifacts/."""
+
+from __future__ import annotations
+
+import os
+import shutil
+import socket
+import subprocess
+import sys
+import time
+import urllib.request
+from pathlib import Path
+
+import pytest
+
+from tests.dashboard_seed import PASSWORDS, seed
+
+CHROMIUM = "/usr/bin/chromium"
+ARTIFACTS = Path(__file__).resolve().parent.parent / "test-artifacts"
+
+pytestmark = [pytest.mark.browser, pytest.mark.slow]
+
+try:
+    from playwright.sync_api import sync_playwright
+except ImportError:  # pragma: no cover
+    sync_playwright = None
+
+
+def _free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+@pytest.fixture(scope="module")
+def server(tmp_path_factory):
+    if sync_playwright is None:
+        pytest.skip("the playwright Python package is not installed")
+    if not os.path.exists(CHROMIUM):
+        pytest.skip(f"Chromium is not installed at {CHROMIUM} (apt-get install chromium)")
+    db = tmp_path_factory.mktemp("browser") / "store.sqlite"
+    url = f"sqlite:///{db}"
+    seed(url, machines=6, readings_per_point=300, names={2: "<script>alert(1)</script>"})
+    port = _free_port()
+    exe = shutil.which("whirlwatch", path=str(Path(sys.executable).parent)) or "whirlwatch"
+    proc = subprocess.Popen([exe, "dashboard", "--port", str(port), "--database", url],
+                            stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+    base = f"http://127.0.0.1:{port}"
+    deadline = time.monotonic() + 30
+    while True:
+        try:
+            urllib.request.urlopen(base + "/api/v1/openapi.json", timeout=1).read()
+            break
+        except OSError:
+            if proc.poll() is not None or time.monotonic() > deadline:
+                proc.kill()
+                raise RuntimeError("dashboard did not start: " + proc.stderr.read().decode()[-2000:]) from None
+            time.sleep(0.2)
+    yield base
+    proc.terminate()
+    proc.wait(10)
+    proc.stderr.close()
+
+
+@pytest.fixture(scope="module")
+def page(server):
+    ARTIFACTS.mkdir(exist_ok=True)
+    with sync_playwright() as pw:
+        browser = pw.chromium.launch(
+            executable_path=CHROMIUM,
+            args=["--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking", "--disable-component-update"],
+        )
+        ctx = browser.new_context(viewport={"width": 1400, "height": 1000})
+        pg = ctx.new_page()
+        pg.errors = []
+        pg.on("console", lambda m: pg.errors.append(m.text) if m.type == "error" else None)
+        pg.on("pageerror", lambda e: pg.errors.append(str(e)))
+        yield pg
+        browser.close()
+
+
+def _canvas_ink(page, selector):
+    # Count non-transparent pixels of the chart's canvas: a drawn chart has many.
+    return page.eval_on_selector(selector + " canvas", """c => {
+        const d = c.getContext('2d').getImageData(0, 0, c.width, c.height).data;
+        let n = 0; for (let i = 3; i < d.length; i += 4) if (d[i] > 0) n++; return n; }""")
+
+
+def test_walkthrough(server, page):
+    page.goto(server + "/")
+    assert "/login" in page.url
+    page.fill("input[name=username]", "eng")
+    page.fill("input[name=password]", PASSWORDS["eng"])
+    page.click("#login-form button[type=submit]")
+    page.wait_for_selector("body[data-loaded='1']")
+    rows = page.locator("#machines-table tbody tr")
+    assert rows.count() == 6
+    # A machine named <script> shows as text.
+    assert page.locator("#machines-table tbody tr[data-machine='fan-002'] a").inner_text() == "<script>alert(1)</script>"
+    assert page.locator("#caution").is_visible()
+    page.fill("#f-text", "Dryer fan 4")
+    assert rows.count() == 1
+    page.fill("#f-text", "")
+    page.screenshot(path=str(ARTIFACTS / "overview.png"), full_page=True)
+
+    page.click("#machines-table tbody tr[data-machine='fan-001'] a")
+    page.wait_for_selector("body[data-loaded='1']")
+    page.wait_for_selector("#chart-overall[data-drawn='1']")
+    assert page.get_attribute("#chart-resonance", "data-series") == "1x|2x|7x"
+    assert page.get_attribute("#chart-spectrum", "data-series") == "de-h velocity"
+    assert page.get_attribute("#chart-overall", "data-series").startswith("overall|A/B|B/C|C/D")
+    for sel in ("#chart-resonance", "#chart-spectrum", "#chart-overall", "#chart-orders"):
+        assert _canvas_ink(page, sel) > 1000, sel
+    assert page.locator("#margins-table tbody tr").count() == 6
+    page.click("#machine-alarms tbody tr >> nth=0 >> button")
+    page.wait_for_selector(".open-spectrum")
+    page.click(".open-spectrum")
+    page.locator("#spectrum-latest").wait_for(state="visible")
+    assert page.locator("#spectrum-caption").inner_text().startswith("stored with 'raised'")
+    page.screenshot(path=str(ARTIFACTS / "machine.png"), full_page=True)
+
+    page.goto(server + "/alarms/?state=active&machine=fan-001")
+    row = page.locator("#alarms-table tbody tr").first
+    alarm_id = row.get_attribute("data-alarm")
+    row.locator("input[name=comment]").fill("checked the pedestal bolts")
+    row.locator("button").click()
+    page.wait_for_load_state()
+    page.goto(server + "/alarms/?machine=fan-001")
+    done = page.locator(f"#alarms-table tr[data-alarm='{alarm_id}']")
+    assert done.locator(".astate").inner_text() == "acknowledged"
+    assert done.locator(".ack-by").inner_text() == "eng"
+    page.screenshot(path=str(ARTIFACTS / "alarms.png"), full_page=True)
+    # No script errors and no CSP violations on any page.
+    assert page.errors == [], page.errors

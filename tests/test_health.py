@@ -1,0 +1,92 @@
+"""Sensor health checks on closed-form signals (thresholds are common practice)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from monitor.health import check_block, check_waveform, is_stale
+from monitor.readings import Waveform
+from monitor.registry import Point
+
+FS = 25600.0
+N = 16384
+T = np.arange(N) / FS
+
+
+def _healthy(seed: int = 0) -> np.ndarray:
+    rng = np.random.default_rng(seed)
+    return (2.0 * np.sin(2 * np.pi * 24.6 * T) + 0.7 * np.sin(2 * np.pi * 49.2 * T + 0.3)
+            + 0.2 * rng.standard_normal(N))
+
+
+@pytest.mark.parametrize(
+    "x",
+    [
+        _healthy(0),
+        _healthy(1),
+        np.sin(2 * np.pi * 25.0 * T),  # 1,024 samples per cycle: same phase every cycle
+        np.sin(2 * np.pi * 3200.0 * T),  # 8 samples per cycle: aliases on a stride of 8
+        np.random.default_rng(5).standard_normal(N),
+        np.random.default_rng(6).standard_t(5, N),  # heavy-tailed but no sensor fault
+    ],
+    ids=["machine", "machine2", "bin-locked sine", "8-sample sine", "gaussian", "student-t"],
+)
+def test_healthy_signals_pass(x):
+    assert check_block(x) == ()
+
+
+def test_flat_line():
+    assert [f.check for f in check_block(np.full(N, 0.37))] == ["flat_line"]
+    x = _healthy()
+    x[: N // 4] = 1.234  # stuck for a quarter of the block
+    assert "flat_line" in [f.check for f in check_block(x)]
+
+
+def test_clipping():
+    x = np.clip(3.0 * _healthy(), -4.0, 4.0)  # rails at +-4
+    flags = {f.check: f for f in check_block(x)}
+    assert "clipping" in flags
+    assert flags["clipping"].value > 0.005
+
+
+def test_spikes():
+    x = _healthy()
+    x[[1000, 5000, 9000]] += 80.0
+    assert [f.check for f in check_block(x)] == ["spikes"]
+
+
+def test_dropouts_zero_run_and_nan():
+    x = _healthy()
+    x[4000:4200] = 0.0
+    assert "dropouts" in [f.check for f in check_block(x)]
+    y = _healthy()
+    y[10] = np.nan
+    assert "dropouts" in [f.check for f in check_block(y)]
+
+
+def _wf(**kw) -> Waveform:
+    base = dict(machine="m", point="p", ts=0.0, fs_hz=FS, unit="m/s^2", samples=_healthy())
+    base.update(kw)
+    return Waveform(**base)
+
+
+def test_registry_mismatch():
+    p = Point("p", fs_hz=FS, unit="m/s^2")
+    assert check_waveform(_wf(), p).ok
+    rep = check_waveform(_wf(fs_hz=12800.0, unit="g"), p)
+    assert set(rep.checks) == {"sample_rate", "unit"}
+    assert not rep.ok
+    assert rep.to_json()["flags"][0]["check"] == "sample_rate"
+
+
+def test_stale():
+    assert not is_stale(None, 100.0, 10.0, 3)
+    assert not is_stale(70.0, 100.0, 10.0, 3)
+    assert is_stale(69.0, 100.0, 10.0, 3)
+    assert not is_stale(0.0, 100.0, None, 3)
+
+
+def test_bad_input():
+    with pytest.raises(ValueError, match="samples"):
+        check_block(np.zeros(3))
