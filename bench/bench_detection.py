@@ -2,7 +2,8 @@
 
 A machine with 6 modes and 5 excitation orders (1x, 2x, 3x, 7x blade pass, 12x) and 2x
 line frequency; one point; 16,384-sample blocks at 25.6 kHz. The evaluator is warmed up
-first (baselines learned, trend windows full), so every reading runs every check: sensor
+first (baselines learned, trend windows full) and no excitation sits inside a required
+band, so every reading runs every check: sensor
 health on the samples, the 6 x 6 margin table with the speed-trend forecast, zones,
 baseline ratios and a Theil-Sen trend per feature, and the alarm engine.
 Target: detection <= 0.2 x analysis.
@@ -11,6 +12,7 @@ Target: detection <= 0.2 x analysis.
 from __future__ import annotations
 
 import time
+from dataclasses import replace
 
 import numpy as np
 
@@ -27,8 +29,8 @@ TARGET = 0.2
 def _machine() -> Machine:
     modes = tuple(
         Mode(f"mode {i + 1}", f, damping_ratio=z)
-        for i, (f, z) in enumerate([(8.5, 0.04), (17.0, 0.03), (31.0, 0.05), (55.0, 0.02),
-                                    (140.0, 0.03), (260.0, 0.04)])
+        for i, (f, z) in enumerate([(8.5, 0.03), (15.0, 0.03), (38.0, 0.03), (140.0, 0.03),
+                                    (240.0, 0.03), (420.0, 0.03)])
     )
     return Machine(
         id="bench-fan", machine_class="group2/flexible", speed_range_rpm=(300.0, 1800.0),
@@ -56,54 +58,50 @@ def _best(fn, reps: int) -> float:
     return best
 
 
-def run(quick: bool = False) -> list[dict]:
+def _measure(label: str, speed: float | None, quick: bool) -> list[dict]:
     rng = np.random.default_rng(0)
     m = _machine()
     p = m.points[0]
-    rows: list[dict] = []
-    for label, speed in (("measured speed", 24.6), ("estimated speed", None)):
-        wfs = [_waveform(i, speed, rng) for i in range(8)]
-        analyses = [analyse_waveform(w, m, p) for w in wfs]
-        ev = MachineEvaluator(m)
-        for i in range(60):  # warm up: baselines learned, trend windows full
-            w = _waveform(100 + i, speed, rng)
-            ev.evaluate(analyse_waveform(w, m, p), w)
-        k = [0]
-        base_ts = 1.7e9 + 3600.0 * 1000
+    # Distinct readings (no repeated values, which would make ties in every trend window).
+    wfs = [_waveform(i, speed, rng) for i in range(32)]
+    analyses = [analyse_waveform(w, m, p) for w in wfs]
+    ev = MachineEvaluator(m)
+    for i in range(60):  # warm up: baselines learned, trend windows full
+        w = _waveform(100 + i, speed, rng)
+        ev.evaluate(analyse_waveform(w, m, p), w)
+    clock = [1.7e9 + 3600.0 * 1000]
 
-        def detect() -> None:
-            for a, w in zip(analyses, wfs, strict=True):
-                k[0] += 1
-                ts = base_ts + 3600.0 * k[0]
-                ev.evaluate(_shift(a, ts), _shift_wf(w, ts))
+    def detect() -> None:
+        for a, w in zip(analyses, wfs, strict=True):
+            clock[0] += 3600.0
+            ev.evaluate(_shift(a, clock[0]), _shift(w, clock[0]))
 
-        def analyse() -> None:
-            for w in wfs:
-                analyse_waveform(w, m, p)
+    def analyse() -> None:
+        for w in wfs:
+            analyse_waveform(w, m, p)
 
-        reps = 3 if quick else 15
-        t_an = _best(analyse, reps) / len(wfs)
-        t_det = _best(detect, reps) / len(wfs)
-        ratio = t_det / t_an
-        rows.append({"name": f"analysis per reading ({label})", "value": t_an * 1e3, "unit": "ms"})
-        rows.append({
-            "name": f"detection per reading, 6 modes x 5 orders ({label})", "value": t_det * 1e3,
-            "unit": "ms", "floor": t_an * 1e3, "ratio": ratio, "target": f"<= {TARGET}x analysis",
-            "met": ratio <= TARGET,
-        })
-    return rows
-
-
-def _shift(a, ts):
-    from dataclasses import replace
-
-    return replace(a, ts=ts)
+    reps = 3 if quick else 15
+    # Interleave so both see the same machine load; keep each one's best.
+    t_an = t_det = float("inf")
+    for _ in range(reps):
+        t_an = min(t_an, _best(analyse, 1) / len(wfs))
+        t_det = min(t_det, _best(detect, 1) / len(wfs))
+    ratio = t_det / t_an
+    return [
+        {"name": f"analysis per reading ({label})", "value": t_an * 1e3, "unit": "ms"},
+        {"name": f"detection per reading, 6 modes x 5 orders ({label})", "value": t_det * 1e3,
+         "unit": "ms", "floor": t_an * 1e3, "ratio": ratio, "target": f"<= {TARGET}x analysis",
+         "met": ratio <= TARGET},
+    ]
 
 
-def _shift_wf(w, ts):
-    from dataclasses import replace
+def run(quick: bool = False) -> list[dict]:
+    """Rows for bench/run.py: analysis and detection per reading (ms) and their ratio."""
+    return _measure("measured speed", 24.6, quick) + _measure("estimated speed", None, quick)
 
-    return replace(w, ts=ts)
+
+def _shift(obj, ts):
+    return replace(obj, ts=ts)
 
 
 if __name__ == "__main__":

@@ -23,6 +23,7 @@ JSON-able dict and ``AlarmEngine.restore`` rebuilds the same state after a resta
 from __future__ import annotations
 
 import datetime as _dt
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any, Literal
 
@@ -213,7 +214,7 @@ class AlarmEngine:
                 return s.alarm
         return None
 
-    def keys(self) -> list[AlarmKey]:
+    def alarm_keys(self) -> list[AlarmKey]:
         return list(self._streams)
 
     # ------------------------------------------------------------------ updates
@@ -224,7 +225,7 @@ class AlarmEngine:
         ts: float,
         raise_level: str | None,
         hold_level: str | None,
-        evidence: dict[str, Any] | None = None,
+        evidence: dict[str, Any] | Callable[[], dict[str, Any]] | None = None,
         reading_id: str | None = None,
         persistence: int | None = None,
     ) -> list[Transition]:
@@ -233,25 +234,29 @@ class AlarmEngine:
         ``hold_level`` below ``raise_level`` is raised to it (the relaxed condition always
         holds when the strict one does). ``persistence`` overrides the engine's count for
         this key (1 for events that need no confirmation, e.g. a stale stream).
+        ``evidence`` may be a function returning the dict; it is called only when a
+        transition happens (building evidence for every reading is wasted work).
         """
         r = severity_rank(raise_level)
         h = max(severity_rank(hold_level), r)
         n = self.persistence if persistence is None else int(persistence)
-        ev = dict(evidence or {})
         s = self._streams.setdefault(key, _Stream())
         s.last_ts = ts
         a = s.alarm
         out: list[Transition] = []
+
+        def ev() -> dict[str, Any]:
+            return dict((evidence() if callable(evidence) else evidence) or {})
         if a is None or a.state == "cleared":
             s.raise_count = s.raise_count + 1 if r > 0 else 0
             if r > 0 and s.raise_count >= n:
                 s.seq += 1
                 s.alarm = Alarm(
                     id=f"{key.text()}#{s.seq}", key=key, severity=SEVERITIES[r - 1], state="active",
-                    raised_at=ts, evidence=ev,
+                    raised_at=ts, evidence=ev(),
                 )
                 self._reset(s)
-                out.append(self._transition(s.alarm, "raised", ts, None, ev, reading_id))
+                out.append(self._transition(s.alarm, "raised", ts, None, s.alarm.evidence, reading_id))
             return out
         cur = severity_rank(a.severity)
         # Escalation: the strict condition of a higher level holds for N readings.
@@ -267,26 +272,26 @@ class AlarmEngine:
         if s.up_count >= n:
             prev = a.severity
             a.severity = SEVERITIES[r - 1]
-            a.evidence = ev
+            a.evidence = ev()
             if a.state == "acknowledged":
                 # A worse condition needs a person to see it again.
                 a.state = "active"
                 a.acknowledged_by = a.acknowledged_at = a.ack_comment = None
             self._reset(s)
-            out.append(self._transition(a, "escalated", ts, prev, ev, reading_id))
+            out.append(self._transition(a, "escalated", ts, prev, a.evidence, reading_id))
         elif s.clear_count >= n:
             prev = a.severity
             a.state = "cleared"
             a.cleared_at = ts
             self._reset(s)
             s.raise_count = 0
-            out.append(self._transition(a, "cleared", ts, prev, ev, reading_id))
+            out.append(self._transition(a, "cleared", ts, prev, ev(), reading_id))
         elif s.down_count >= n:
             prev = a.severity
             a.severity = SEVERITIES[s.down_level - 1]
-            a.evidence = ev
+            a.evidence = ev()
             self._reset(s)
-            out.append(self._transition(a, "de-escalated", ts, prev, ev, reading_id))
+            out.append(self._transition(a, "de-escalated", ts, prev, a.evidence, reading_id))
         return out
 
     def acknowledge(self, alarm_id: str, user: str, comment: str, ts: float) -> Transition:

@@ -171,7 +171,7 @@ def analyse_waveform(
         raise ValueError(f"band_hz must run from low to high, got {band_hz!r}.")
 
     record = sp.Record(x, fs)
-    spec = sp.amplitude_spectrum(x, fs, unit)
+    spec = sp.record_spectrum(record, unit)
     vel = sp.to_velocity(spec, f_low_hz=lo)
     overall = sp.band_rms(vel, lo, min(hi, float(vel.freq_hz[-1])))
 

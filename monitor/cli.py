@@ -41,6 +41,8 @@ _COMMANDS: list[tuple[str, str]] = [
     ("monitor.commands.users", "user"),
     ("monitor.commands.users", "token"),
     ("monitor.commands.dashboard", "dashboard"),
+    ("monitor.commands.run", "run"),
+    ("monitor.commands.demo", "demo"),
 ]
 
 _attach()

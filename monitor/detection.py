@@ -20,8 +20,9 @@ Rules
 - Growth ignores readings taken with an excitation inside a required band (not comparable
   with the baseline); the next growth transition's evidence counts them.
 - Baseline ratios of speed-dependent features (overall, 1x, 2x, orders) are compared only
-  when the running speed is within ``baseline_speed_band_pct`` of the baseline's speed;
-  the speed-normalised 1x is always compared.
+  when the running speed is within ``baseline_speed_band_pct`` of the baseline's speed,
+  and their trend window starts afresh when the speed leaves that band around the speed
+  the window started at; the speed-normalised 1x is always compared and trended.
 
 Settings (keys of the machine's registry table, ``machine.settings``; docs/alarms.md):
 see :class:`DetectionSettings`.
@@ -29,21 +30,25 @@ see :class:`DetectionSettings`.
 
 from __future__ import annotations
 
+import functools
 import math
 from collections import deque
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field, fields
 from typing import Any
 
+import numpy as np
+
 from monitor.alarms import AlarmEngine, AlarmKey, Transition, levels_above, severity_rank
 from monitor.analysis import ReadingAnalysis
-from monitor.growth import Baseline, Trend, TrendWindow, time_to_limit
+from monitor.growth import Baseline, Trend, TrendWindow, theil_sen_many, time_to_limit
 from monitor.health import HealthReport, check_waveform, is_stale
 from monitor.margins import (
     ApproachForecast,
+    MarginGrid,
     MarginRow,
+    MarginState,
     approach_forecasts,
-    margin_table,
     order_label,
 )
 from monitor.readings import SpeedReading, Waveform
@@ -88,6 +93,9 @@ class DetectionSettings:
         Readings before a trend is given (10).
     trend_horizon_days : float
         Alarm when the projected time to the next limit is shorter (7 days).
+    trend_refit_every : int
+        Refit the Theil-Sen trend after this many new readings; in between its line is
+        carried forward (5).
     approach_warning_s : float
         Advisory when a ramping speed brings an excitation into a required band within
         this time, seconds (600).
@@ -111,6 +119,7 @@ class DetectionSettings:
     trend_window: int = 50
     trend_min_readings: int = 10
     trend_horizon_days: float = 7.0
+    trend_refit_every: int = 5
     approach_warning_s: float = 600.0
     speed_history: int = 12
     reading_interval_s: float | None = None
@@ -153,6 +162,7 @@ class DetectionSettings:
         num("trend_window", 3, integer=True)
         num("trend_min_readings", 3, self.trend_window, integer=True)
         num("trend_horizon_days", 0.0, lo_open=True)
+        num("trend_refit_every", 1, integer=True)
         num("approach_warning_s", 0.0)
         num("speed_history", 3, integer=True)
         num("stale_intervals", 1.0)
@@ -246,7 +256,7 @@ class ReadingEvaluation:
     """What detection made of one reading (for the store and the dashboard).
 
     ``zone`` of ``overall_velocity_mm_s_rms`` against ``zone_limits``; ``margins`` table at
-    the reading's speed; ``approach`` forecasts from the speed trend; ``features`` the
+    the reading's speed (built on first use from ``margin_rows``); ``approach`` forecasts from the speed trend; ``features`` the
     growth features; ``growth_ignored`` why growth skipped the reading (None when used);
     ``machine_alarms_suppressed`` when sensor health flagged the reading; ``transitions``
     the alarm transitions the reading caused.
@@ -260,13 +270,18 @@ class ReadingEvaluation:
     overall_velocity_mm_s_rms: float | None
     zone: str | None
     zone_limits: ZoneLimits
-    margins: tuple[MarginRow, ...]
+    margin_rows: Callable[[], tuple[MarginRow, ...]]
     approach: tuple[ApproachForecast, ...]
     features: tuple[FeatureEvaluation, ...]
     health: HealthReport
     growth_ignored: str | None
     machine_alarms_suppressed: bool
     transitions: tuple[Transition, ...] = field(default_factory=tuple)
+
+    @functools.cached_property
+    def margins(self) -> tuple[MarginRow, ...]:
+        """The margin table at the reading's speed (built on first use)."""
+        return self.margin_rows()
 
     def feature(self, name: str) -> FeatureEvaluation | None:
         for f in self.features:
@@ -328,6 +343,10 @@ class MachineEvaluator:
         self._speed: deque[tuple[float, float]] = deque(maxlen=s.speed_history)
         self._last_ts: dict[str, float] = {}
         self._intervals: dict[str, deque[float]] = {}
+        self._keys: dict[tuple[str | None, str, str], AlarmKey] = {}
+        self._grid = MarginGrid(machine, approach_factor=s.approach_factor,
+                                machine_default_pct=s.required_margin_pct)
+        self._res_seen: set[int] = set()  # margin rows that ever fed the alarm engine
         self._limits = {p.id: zone_limits(machine.machine_class, machine.limits_mm_s, p.limits_mm_s)
                         for p in machine.points}
 
@@ -357,14 +376,16 @@ class MachineEvaluator:
 
         limits = self._limits[point.id]
         speed = float(analysis.speed_hz) if analysis is not None else None
-        margins: tuple[MarginRow, ...] = ()
+        state: MarginState | None = None
         approach: tuple[ApproachForecast, ...] = ()
         if speed is not None and math.isfinite(speed) and speed > 0:
             if suppressed:
-                margins = self._margins(speed)
+                state = self._grid.compute(speed)
             else:
-                margins, approach, t = self._speed_value(ts, speed, rid)
+                state, approach, t = self._speed_value(ts, speed, rid)
                 trans += t
+        grid = self._grid
+        margin_rows = (lambda: grid.rows(state)) if state is not None else tuple
 
         overall = zone = None
         feats: tuple[FeatureEvaluation, ...] = ()
@@ -375,14 +396,15 @@ class MachineEvaluator:
             if not health.ok:
                 ignored = "sensor fault: " + ", ".join(health.checks)
             else:
-                inside = [m.subject for m in margins if m.status == "inside"]
+                inside = ([grid.subjects[k] for k in np.flatnonzero(state.status == 2)]
+                          if state is not None else [])
                 if inside:
                     ignored = "resonance band: " + ", ".join(inside)
             feats, t = self._growth(analysis, point.id, limits, ignored)
             trans += t
         return ReadingEvaluation(
             machine=self.machine.id, point=point.id, ts=ts, reading_id=rid, speed_hz=speed,
-            overall_velocity_mm_s_rms=overall, zone=zone, zone_limits=limits, margins=margins,
+            overall_velocity_mm_s_rms=overall, zone=zone, zone_limits=limits, margin_rows=margin_rows,
             approach=approach, features=feats, health=health, growth_ignored=ignored,
             machine_alarms_suppressed=suppressed, transitions=tuple(trans),
         )
@@ -398,7 +420,7 @@ class MachineEvaluator:
 
     def margins_at(self, speed_hz: float) -> tuple[MarginRow, ...]:
         """The margin table at any running speed (Hz), e.g. for a resonance map."""
-        return self._margins(speed_hz)
+        return self._grid.rows(self._grid.compute(speed_hz))
 
     def check_stale(self, now: float) -> list[Transition]:
         """Raise ``sensor_fault``/``stale`` for points silent for ``stale_intervals``
@@ -465,14 +487,23 @@ class MachineEvaluator:
         ev._speed.extend((float(t), float(s)) for t, s in data.get("speed", []))
         ev._last_ts = {p: float(t) for p, t in data.get("last_ts", {}).items()}
         ev._intervals = {p: deque(v, maxlen=10) for p, v in data.get("intervals", {}).items()}
+        index = {subj: k for k, subj in enumerate(ev._grid.subjects)}
+        ev._res_seen = {index[k.subject] for k in ev.engine.alarm_keys()
+                        if k.kind == "resonance_proximity" and k.subject in index}
         return ev
 
     # ------------------------------------------------------------------ internals
 
-    def _margins(self, speed_hz: float) -> tuple[MarginRow, ...]:
-        s = self.settings
-        return margin_table(self.machine, speed_hz, approach_factor=s.approach_factor,
-                            machine_default_pct=s.required_margin_pct)
+    def _key(self, point: str | None, kind: str, subject: str) -> AlarmKey:
+        k = (point, kind, subject)
+        key = self._keys.get(k)
+        if key is None:
+            key = self._keys[k] = AlarmKey(self.machine.id, point, kind, subject)
+        return key
+
+    @staticmethod
+    def _fit_trends(wins: list[TrendWindow]) -> None:
+        _fit_windows(wins)
 
     def _expected_interval(self, pid: str) -> float | None:
         if self.settings.reading_interval_s is not None:
@@ -501,7 +532,7 @@ class MachineEvaluator:
         for check, sev in SENSOR_FAULT_SEVERITY.items():
             if check == "stale":
                 continue
-            key = AlarmKey(self.machine.id, pid, "sensor_fault", check)
+            key = self._key(pid, "sensor_fault", check)
             f = flagged.get(check)
             if f is None and self.engine.alarm(key) is None:
                 continue  # nothing to count for a check that never failed
@@ -512,55 +543,62 @@ class MachineEvaluator:
         return out
 
     def _speed_value(self, ts: float, speed: float, rid: str | None
-                     ) -> tuple[tuple[MarginRow, ...], tuple[ApproachForecast, ...], list[Transition]]:
-        rows = self._margins(speed)
+                     ) -> tuple[MarginState, tuple[ApproachForecast, ...], list[Transition]]:
+        grid = self._grid
+        st = grid.compute(speed)
         if self._speed and ts <= self._speed[-1][0]:
-            return rows, (), []  # the same instant seen from another point: count it once
+            return st, (), []  # the same instant seen from another point: count it once
         self._speed.append((ts, speed))
         s = self.settings
+        h = self._h
         approach: tuple[ApproachForecast, ...] = ()
         if len(self._speed) >= 5:
             t, v = zip(*self._speed, strict=True)
             approach = tuple(a for a in approach_forecasts(
                 self.machine, t, v, machine_default_pct=s.required_margin_pct)
-                if a.seconds <= s.approach_warning_s * (1.0 + self._h))
+                if a.seconds <= s.approach_warning_s * (1.0 + h))
         soon = {a.subject: a for a in approach}
-        h = self._h
+        # Only rows near a band, forecast to enter one, or with alarm history need the
+        # engine; the rest hold no condition and have nothing to count.
+        sm, req, appr = st.margin_pct.ravel(), st.required_pct.ravel(), st.approach_pct.ravel()
+        near = set(np.flatnonzero((req > 0) & (sm < appr * (1 + h))).tolist())
+        near |= self._res_seen
+        near |= {k for k, subj in enumerate(grid.subjects) if subj in soon}
         out: list[Transition] = []
-        for row in rows:
-            key = AlarmKey(self.machine.id, None, "resonance_proximity", row.subject)
-            if row.required_pct <= 0:
-                if self.engine.alarm(key) is not None:
-                    out += self.engine.update(key, ts, None, None, {"reason": "no margin required"}, rid)
+        r_flat = st.ratio.ravel()
+        for k in sorted(near):
+            subject = grid.subjects[k]
+            key = self._key(None, "resonance_proximity", subject)
+            self._res_seen.add(k)
+            m, rq, ap = float(sm[k]), float(req[k]), float(appr[k])
+            if rq <= 0:
+                out += self.engine.update(key, ts, None, None, {"reason": "no margin required"}, rid)
                 continue
-            sm, req, appr = row.margin_pct, row.required_pct, row.approach_pct
-            zeta = 1.0 / (2.0 * row.amplification_factor) if row.amplification_factor else None
-            dev = abs(row.frequency_ratio - 1.0)
-            fc = soon.get(row.subject)
+            zeta = grid.zetas[k // grid.n_exc]
+            dev = abs(float(r_flat[k]) - 1.0)
+            fc = soon.get(subject)
             raise_l = hold_l = None
             if fc is not None:
                 hold_l = "advisory"
                 if fc.seconds <= s.approach_warning_s:
                     raise_l = "advisory"
-            if sm < appr:
+            if m < ap:
                 raise_l = "advisory"
-            if sm < appr * (1 + h):
+            if m < ap * (1 + h):
                 hold_l = "advisory"
-            if sm < req:
+            if m < rq:
                 raise_l = "alert"
-            if sm < req * (1 + h):
+            if m < rq * (1 + h):
                 hold_l = "alert"
-            if zeta is not None and sm < req and dev <= zeta:
+            # Inside the half-power band the excitation sits on the resonance peak itself.
+            if zeta is not None and m < rq and dev <= zeta:
                 raise_l = "severe"
-            if zeta is not None and sm < req * (1 + h) and dev <= zeta * (1 + h):
+            if zeta is not None and m < rq * (1 + h) and dev <= zeta * (1 + h):
                 hold_l = "severe"
-            if raise_l is None and hold_l is None and self.engine.alarm(key) is None:
-                continue  # never alarmed and nothing to count
-            ev = {"speed_hz": speed, "reading_id": rid, **row.to_json()}
-            if fc is not None:
-                ev["approach"] = fc.to_json()
-            out += self.engine.update(key, ts, raise_l, hold_l, ev, rid)
-        return rows, approach, out
+            out += self.engine.update(
+                key, ts, raise_l, hold_l,
+                functools.partial(_resonance_evidence, speed, rid, grid, st, k, fc), rid)
+        return st, approach, out
 
     def _growth(self, analysis: ReadingAnalysis, pid: str, limits: ZoneLimits, ignored: str | None
                 ) -> tuple[tuple[FeatureEvaluation, ...], list[Transition]]:
@@ -573,8 +611,7 @@ class MachineEvaluator:
         if ignored is not None:
             reason = ignored.split(":")[0]
             counts[reason] = counts.get(reason, 0) + 1
-        feats: list[FeatureEvaluation] = []
-        out: list[Transition] = []
+        rows = []
         for name, value, unit, speed_dep in _features(analysis, self.machine):
             if not math.isfinite(value) or value < 0:
                 continue
@@ -582,7 +619,9 @@ class MachineEvaluator:
             base = self._baselines.get(k)
             if base is None:
                 base = self._baselines[k] = Baseline(s.baseline_readings)
-                self._trends[k] = TrendWindow(s.trend_window, s.trend_min_readings)
+                self._trends[k] = TrendWindow(
+                    s.trend_window, s.trend_min_readings, s.trend_refit_every,
+                    s.baseline_speed_band_pct / 100.0 if speed_dep else None)
             win = self._trends[k]
             comparable = True
             if ignored is None:
@@ -590,8 +629,13 @@ class MachineEvaluator:
                     base.add(value, speed, ts)
                 bs = base.speed_hz
                 comparable = not (speed_dep and bs and abs(speed - bs) > s.baseline_speed_band_pct / 100.0 * bs)
-                if comparable or name == "overall":
-                    win.add(ts, value)
+                win.add(ts, value, speed)
+            rows.append((name, value, unit, base, win, comparable))
+        if ignored is None:
+            self._fit_trends([r[4] for r in rows])
+        feats: list[FeatureEvaluation] = []
+        out: list[Transition] = []
+        for name, value, unit, base, win, comparable in rows:
             st = base.stats
             ratio = base.ratio(value) if (base.ready and comparable) else None
             if not base.ready:
@@ -616,8 +660,11 @@ class MachineEvaluator:
             # (raise level, hold level, cause) from each rule; the worst of each wins.
             found: list[tuple[str | None, str | None, str]] = []
             if name == "overall":
-                r, hl = levels_above(value, {"alert": limits.bc, "severe": limits.cd}, h)
-                found.append((r, hl, f"zone {zone_of(value, limits)} ({value:.3g} mm/s RMS)"))
+                zone = zone_of(value, limits)
+                _, hl = levels_above(value, {"alert": limits.bc, "severe": limits.cd}, h)
+                # Raise by the zone itself (a zone includes its upper boundary).
+                r = {"C": "alert", "D": "severe"}.get(zone)
+                found.append((r, hl, f"zone {zone} ({value:.3g} mm/s RMS)"))
             if ratio is not None and st is not None:
                 r, hl = levels_above(ratio, {"advisory": s.growth_ratios[0], "alert": s.growth_ratios[1]}, h)
                 if value <= st.median + s.baseline_sigmas * st.sigma:
@@ -643,16 +690,43 @@ class MachineEvaluator:
             feats.append(fe)
             if ignored is not None:
                 continue
-            key = AlarmKey(self.machine.id, pid, "amplitude_growth", name)
+            key = self._key(pid, "amplitude_growth", name)
             if raise_l is None and hold_l is None and self.engine.alarm(key) is None:
                 continue
-            ev = {"reading_id": analysis.reading_id, "speed_hz": speed,
-                  "zone_limits_mm_s": list(limits.as_tuple()), **fe.to_json(),
-                  "ignored_readings": dict(counts)}
-            out += self.engine.update(key, ts, raise_l, hold_l, ev, analysis.reading_id)
+            out += self.engine.update(
+                key, ts, raise_l, hold_l,
+                functools.partial(_growth_evidence, analysis.reading_id, speed, limits, fe, counts),
+                analysis.reading_id)
         if out:
             counts.clear()  # reported in these transitions' evidence
         return tuple(feats), out
+
+
+def _resonance_evidence(speed: float, rid: str | None, grid: MarginGrid, st: MarginState, k: int,
+                        fc: ApproachForecast | None) -> dict[str, Any]:
+    ev = {"speed_hz": speed, "reading_id": rid, **grid.row(st, k).to_json()}
+    if fc is not None:
+        ev["approach"] = fc.to_json()
+    return ev
+
+
+def _growth_evidence(rid: str | None, speed: float, limits: ZoneLimits, fe: FeatureEvaluation,
+                     counts: dict[str, int]) -> dict[str, Any]:
+    return {"reading_id": rid, "speed_hz": speed, "zone_limits_mm_s": list(limits.as_tuple()),
+            **fe.to_json(), "ignored_readings": dict(counts)}
+
+
+def _fit_windows(wins: list[TrendWindow]) -> None:
+    """Fit every window that is due, one batch per distinct time axis."""
+    groups: dict[tuple[float, ...], list[TrendWindow]] = {}
+    for w in wins:
+        if w.needs_fit():
+            groups.setdefault(tuple(w.ts), []).append(w)
+    for tkey, ws in groups.items():
+        t = np.asarray(tkey)
+        fits = theil_sen_many(t - t[-1], np.asarray([list(w.values) for w in ws]))
+        for w, (slope, inter, lo, hi) in zip(ws, fits, strict=True):
+            w.set_fit(Trend(slope, lo, hi, inter, t.size))
 
 
 class Detector:

@@ -61,6 +61,7 @@ class Baseline:
         self.speeds: list[float] = []
         self.started_at: float | None = None
         self._stats: BaselineStats | None = None
+        self._speed: float | None = None
 
     @property
     def ready(self) -> bool:
@@ -73,13 +74,14 @@ class Baseline:
     @property
     def speed_hz(self) -> float | None:
         """Median running speed of the learning readings (Hz), once learned."""
-        return float(np.median(self.speeds)) if self.ready and self.speeds else None
+        return self._speed
 
     def restart(self, ts: float | None = None) -> None:
         """Forget the learned baseline and learn again from the next readings."""
         self.values.clear()
         self.speeds.clear()
         self._stats = None
+        self._speed = None
         self.started_at = ts
 
     def add(self, value: float, speed_hz: float | None = None, ts: float | None = None) -> bool:
@@ -98,6 +100,7 @@ class Baseline:
             arr = np.asarray(self.values)
             med = float(np.median(arr))
             self._stats = BaselineStats(med, float(np.median(np.abs(arr - med))), arr.size)
+            self._speed = float(np.median(self.speeds)) if self.speeds else None
         return self._stats is not None
 
     def ratio(self, value: float) -> float | None:
@@ -258,40 +261,95 @@ def time_to_limit(trend: Trend, limit: float) -> float | None:
 
 
 class TrendWindow:
-    """Sliding window of (ts, value) for a Theil-Sen trend; ``size`` readings kept,
-    ``min_readings`` before a trend is given."""
+    """Sliding window of (ts, value) for a Theil-Sen trend.
 
-    def __init__(self, size: int = 50, min_readings: int = 10) -> None:
+    ``size`` readings kept, ``min_readings`` before a trend is given. The fit is redone
+    when ``refit_every`` readings have arrived since the last fit; in between, the last
+    fit's line is carried forward to the latest reading (a 50-reading trend moves little
+    in a few readings, and the fit is the costly part of detection).
+
+    With ``speed_band`` (a fraction, e.g. 0.1) and speeds given to :meth:`add`, the window
+    starts afresh when the running speed leaves ``speed_band`` of the speed at which the
+    window started: a speed-dependent amplitude at another speed is a different operating
+    point, not growth.
+    """
+
+    def __init__(self, size: int = 50, min_readings: int = 10, refit_every: int = 1,
+                 speed_band: float | None = None) -> None:
         if not isinstance(size, int) or size < 3:
             raise ValueError(f"size must be an integer >= 3 readings, got {size!r}.")
         if not isinstance(min_readings, int) or not 3 <= min_readings <= size:
             raise ValueError(f"min_readings must be an integer in [3, size], got {min_readings!r}.")
+        if not isinstance(refit_every, int) or refit_every < 1:
+            raise ValueError(f"refit_every must be an integer >= 1, got {refit_every!r}.")
         self.size = size
         self.min_readings = min_readings
+        self.refit_every = refit_every
+        self.speed_band = speed_band
+        self.ref_speed: float | None = None
         self.ts: deque[float] = deque(maxlen=size)
         self.values: deque[float] = deque(maxlen=size)
+        self._fit: Trend | None = None
+        self._fit_ts = 0.0
+        self._since_fit = 0
 
-    def add(self, ts: float, value: float) -> None:
+    def add(self, ts: float, value: float, speed_hz: float | None = None) -> None:
+        if self.speed_band is not None and speed_hz is not None:
+            if self.ref_speed is not None and abs(speed_hz - self.ref_speed) > self.speed_band * self.ref_speed:
+                self.clear()
+            if self.ref_speed is None:
+                self.ref_speed = float(speed_hz)
         if math.isfinite(value) and math.isfinite(ts) and (not self.ts or ts > self.ts[-1]):
             self.ts.append(float(ts))
             self.values.append(float(value))
+            self._since_fit += 1
 
     def clear(self) -> None:
         self.ts.clear()
         self.values.clear()
+        self._fit = None
+        self._since_fit = 0
+        self.ref_speed = None
+
+    def needs_fit(self) -> bool:
+        return len(self.ts) >= self.min_readings and (self._fit is None or self._since_fit >= self.refit_every)
+
+    def set_fit(self, trend: Trend) -> None:
+        """Store a fit of the current window (from :meth:`trend` or a batch fit)."""
+        self._fit = trend
+        self._fit_ts = self.ts[-1]
+        self._since_fit = 0
 
     def trend(self) -> Trend | None:
+        """The trend at the latest reading (None with too few readings)."""
         if len(self.ts) < self.min_readings:
             return None
-        return theil_sen_trend(list(self.ts), list(self.values))
+        if self.needs_fit():
+            self.set_fit(theil_sen_trend(list(self.ts), list(self.values)))
+        f = self._fit
+        assert f is not None
+        if self.ts[-1] == self._fit_ts:
+            return f
+        return Trend(f.slope_per_s, f.low_per_s, f.high_per_s,
+                     f.fitted_now + f.slope_per_s * (self.ts[-1] - self._fit_ts), f.n)
 
     def snapshot(self) -> dict:
-        return {"size": self.size, "min_readings": self.min_readings,
-                "ts": list(self.ts), "values": list(self.values)}
+        f = self._fit
+        return {"size": self.size, "min_readings": self.min_readings, "refit_every": self.refit_every,
+                "speed_band": self.speed_band, "ref_speed": self.ref_speed,
+                "ts": list(self.ts), "values": list(self.values),
+                "fit": None if f is None else [f.slope_per_s, f.low_per_s, f.high_per_s, f.fitted_now, f.n],
+                "fit_ts": self._fit_ts, "since_fit": self._since_fit}
 
     @classmethod
     def restore(cls, data: dict) -> TrendWindow:
-        w = cls(int(data["size"]), int(data["min_readings"]))
-        for t, v in zip(data.get("ts", []), data.get("values", []), strict=False):
-            w.add(t, v)
+        w = cls(int(data["size"]), int(data["min_readings"]), int(data.get("refit_every", 1)),
+                data.get("speed_band"))
+        w.ref_speed = data.get("ref_speed")
+        w.ts.extend(float(t) for t in data.get("ts", []))
+        w.values.extend(float(v) for v in data.get("values", []))
+        f = data.get("fit")
+        w._fit = None if f is None else Trend(f[0], f[1], f[2], f[3], int(f[4]))
+        w._fit_ts = float(data.get("fit_ts", 0.0))
+        w._since_fit = int(data.get("since_fit", 0))
         return w

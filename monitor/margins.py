@@ -286,37 +286,104 @@ def margin_table(
 
     Rows are ordered by mode, then excitation. See :class:`MarginRow`.
     """
-    if not (math.isfinite(approach_factor) and approach_factor >= 1.0):
-        raise ValueError(f"approach_factor must be a finite number >= 1, got {approach_factor!r}.")
-    exc = excitations(machine, speed_hz)
-    rows: list[MarginRow] = []
-    for mode in machine.modes:
-        req = required_margin(mode, machine_default_pct)
-        zeta = _zeta_of(mode)
-        fm = float(mode.frequency_hz)
-        for e in exc:
-            sm, side = separation_margin(e.frequency_hz, fm)
-            need = req.for_side(side)
-            appr = need * approach_factor
-            r = e.frequency_hz / fm
-            amp = sdof_amplification(r, zeta) if zeta is not None and zeta < 1.0 else None
-            hp = zeta is not None and abs(r - 1.0) <= zeta
-            if need > 0 and sm < need:
-                status: Status = "inside"
-            elif need > 0 and sm < appr:
-                status = "approach"
-            else:
-                status = "clear"
-            rows.append(
-                MarginRow(
-                    mode=mode.name, excitation=e.label, order=e.order, mode_hz=fm,
-                    excitation_hz=e.frequency_hz, margin_pct=sm, side=side, required_pct=need,
-                    approach_pct=appr, basis=req.basis, amplification_factor=req.amplification_factor,
-                    frequency_ratio=r, amplification=amp, in_half_power_band=bool(hp and need > 0),
-                    status=status,
-                )
-            )
-    return tuple(rows)
+    grid = MarginGrid(machine, approach_factor=approach_factor, machine_default_pct=machine_default_pct)
+    return grid.rows(grid.compute(speed_hz))
+
+
+@dataclass(frozen=True, eq=False)
+class MarginState:
+    """All (mode, excitation) margins at one speed as (modes x excitations) arrays.
+
+    ``exc_hz`` (E,) Hz; ``margin_pct``, ``required_pct``, ``approach_pct`` in percent;
+    ``ratio`` excitation over mode frequency; ``mode_below`` the mode lies below the
+    excitation; ``half_power`` inside the half-power band; ``status`` 0 clear, 1 approach,
+    2 inside.
+    """
+
+    speed_hz: float
+    exc_hz: np.ndarray
+    margin_pct: np.ndarray
+    required_pct: np.ndarray
+    approach_pct: np.ndarray
+    ratio: np.ndarray
+    mode_below: np.ndarray
+    half_power: np.ndarray
+    status: np.ndarray
+
+
+_STATUS: tuple[Status, ...] = ("clear", "approach", "inside")
+
+
+class MarginGrid:
+    """The margins of one machine, set up once and evaluated per speed with numpy.
+
+    The per-reading path of detection: :meth:`compute` gives arrays, :meth:`row` or
+    :meth:`rows` the :class:`MarginRow` objects on demand. :func:`margin_table` is this.
+    """
+
+    def __init__(self, machine: Machine, *, approach_factor: float = DEFAULT_APPROACH_FACTOR,
+                 machine_default_pct: float | None = None) -> None:
+        if not (math.isfinite(approach_factor) and approach_factor >= 1.0):
+            raise ValueError(f"approach_factor must be a finite number >= 1, got {approach_factor!r}.")
+        self.approach_factor = float(approach_factor)
+        self.modes = machine.modes
+        self.required = tuple(required_margin(m, machine_default_pct) for m in machine.modes)
+        zetas = [_zeta_of(m) for m in machine.modes]
+        self.mode_hz = np.array([float(m.frequency_hz) for m in machine.modes]).reshape(-1, 1)
+        self.req_below = np.array([r.below_pct for r in self.required]).reshape(-1, 1)
+        self.req_above = np.array([r.above_pct for r in self.required]).reshape(-1, 1)
+        self.zeta = np.array([np.nan if z is None else z for z in zetas]).reshape(-1, 1)
+        self.zetas = zetas
+        orders = sorted(set(float(o) for o in machine.excitation_orders))
+        self.labels = [order_label(o) for o in orders]
+        self.orders: list[float | None] = list(orders)
+        fixed = [0.0] * len(orders)
+        if machine.line_frequency_hz:
+            self.labels.append("2xLF")
+            self.orders.append(None)
+            fixed.append(2.0 * float(machine.line_frequency_hz))
+        self.order_arr = np.array([0.0 if o is None else o for o in self.orders])
+        self.fixed_arr = np.array(fixed)
+        self.n_exc = len(self.labels)
+        self.subjects = [f"{m.name}@{lab}" for m in machine.modes for lab in self.labels]
+
+    def compute(self, speed_hz: float) -> MarginState:
+        s = float(speed_hz)
+        if not (math.isfinite(s) and s >= 0):
+            raise ValueError(f"speed_hz must be finite and >= 0, got {speed_hz!r}.")
+        exc = self.order_arr * s + self.fixed_arr
+        fm = self.mode_hz
+        sm = np.abs(exc - fm) / fm * 100.0
+        below = fm <= exc
+        req = np.where(below, self.req_below, self.req_above)
+        appr = req * self.approach_factor
+        r = exc / fm
+        with np.errstate(invalid="ignore"):
+            hp = (np.abs(r - 1.0) <= self.zeta) & (req > 0)
+        status = np.where((req > 0) & (sm < req), 2, np.where((req > 0) & (sm < appr), 1, 0))
+        return MarginState(s, exc, sm, req, appr, r, below, hp, status)
+
+    def row(self, st: MarginState, index: int) -> MarginRow:
+        """The row of flat ``index`` (mode-major, as :attr:`subjects`)."""
+        i, j = divmod(index, self.n_exc)
+        z = self.zetas[i]
+        r = float(st.ratio[i, j])
+        req = self.required[i]
+        return MarginRow(
+            mode=self.modes[i].name, excitation=self.labels[j], order=self.orders[j],
+            mode_hz=float(self.mode_hz[i, 0]), excitation_hz=float(st.exc_hz[j]),
+            margin_pct=float(st.margin_pct[i, j]),
+            side="below" if st.mode_below[i, j] else "above",
+            required_pct=float(st.required_pct[i, j]), approach_pct=float(st.approach_pct[i, j]),
+            basis=req.basis, amplification_factor=req.amplification_factor, frequency_ratio=r,
+            # Same formula as sdof_amplification, scalar (this runs per row).
+            amplification=(1.0 / math.sqrt((1.0 - r * r) ** 2 + (2.0 * z * r) ** 2)
+                           if z is not None and z < 1.0 else None),
+            in_half_power_band=bool(st.half_power[i, j]), status=_STATUS[int(st.status[i, j])],
+        )
+
+    def rows(self, st: MarginState) -> tuple[MarginRow, ...]:
+        return tuple(self.row(st, k) for k in range(len(self.subjects)))
 
 
 @dataclass(frozen=True)
@@ -378,6 +445,9 @@ def approach_forecasts(
     """
     if len(ts) < 3:
         return ()
+    lo_s, hi_s = min(speed_hz), max(speed_hz)
+    if hi_s - lo_s <= 1e-3 * hi_s:
+        return ()  # steady within 0.1 %: no ramp to project
     slope, lo, hi, _ = speed_trend(ts, speed_hz)
     if lo <= 0.0 <= hi or slope == 0.0:
         return ()

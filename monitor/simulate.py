@@ -422,7 +422,7 @@ class SpeedProfile:
 
     def speed_at(self, t_s: np.ndarray | float) -> np.ndarray:
         """Speed (Hz) at times ``t_s`` (s from the start); held constant past the end."""
-        return np.interp(t_s, self.times_s, self.speeds_hz)
+        return np.asarray(np.interp(t_s, self.times_s, self.speeds_hz))
 
     @classmethod
     def steady(cls, speed_hz: float, duration_s: float) -> SpeedProfile:

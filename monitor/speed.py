@@ -7,10 +7,12 @@ Estimation runs in three steps:
    collects the same peaks at higher harmonic numbers, scores lower);
 2. spectral: interpolate each clearly visible harmonic with the exact Hann three-bin
    formula and combine f_h / h weighted by h^2 A_h^2 (their inverse variances);
-3. fine (when the samples are given): maximise the harmonic periodogram
-   sum_h |X(h f)|^2 of the unwindowed record by Newton steps on its exact DTFT, the
-   approximate maximum-likelihood estimator for harmonics in white noise, which reaches
-   the Cramer-Rao bound at moderate SNR.
+3. fine (when the samples are given): maximise the least-squares fit of the harmonics
+   (real cosine and sine per harmonic) to the record over the fundamental, by parabolic
+   steps; the fit is made on the unwindowed DFT bins around each harmonic with the
+   model's exact closed-form DFT. This is the maximum-likelihood estimator for harmonics
+   in white Gaussian noise and reaches the Cramer-Rao bound above threshold SNR
+   (tests/test_speed.py measures it).
 
 The stated uncertainty is the Cramer-Rao bound for the harmonics used, at the SNR read from
 the spectrum's noise floor.
@@ -105,19 +107,26 @@ def _median_over_mean(averages: int) -> float:
     return float(stats.chi2.median(dof) / dof)
 
 
-def noise_variance(spectrum: Spectrum) -> float:
-    """Per-sample variance (unit^2) of white noise that explains the spectrum's floor.
+#: bins either side of a harmonic whose median power gives its local noise floor; the
+#: innermost bins (the Hann main lobe and its first neighbours) are left out.
+_FLOOR_HALF_WIDTH = 32
+_FLOOR_GAP = 3
 
-    The median bin power over the chi-square median/mean ratio gives the mean noise power
-    per bin, robust to the few bins that hold sinusoids; E[P] = 2 sigma^2 ENBW_bins / N for
-    a one-sided spectrum of N-sample segments.
+
+def local_noise_power(spectrum: Spectrum, bins: np.ndarray) -> np.ndarray:
+    """Mean noise power per bin (unit^2, one-sided RMS^2) around each of ``bins``.
+
+    The median power of the bins 4-32 away on either side, divided by the chi-square
+    median/mean ratio: robust to the few bins that hold sinusoids, and local, so a
+    coloured floor (a velocity spectrum falls as 1/f) is read where the harmonic sits.
     """
-    power = sp._power(spectrum)[1:]
-    # a strided subset keeps the median cheap on long records without biasing it
-    stride = max(1, power.size // 4096)
-    mean_p = float(np.median(power[::stride])) / _median_over_mean(spectrum.averages)
-    enbw_bins = spectrum.enbw_hz / spectrum.resolution_hz
-    return mean_p * sp._seg_len(spectrum) / (2.0 * enbw_bins)
+    a = spectrum.amplitude
+    offs = np.arange(_FLOOR_GAP + 1, _FLOOR_HALF_WIDTH + 1)
+    offs = np.concatenate([-offs[::-1], offs])
+    idx = np.clip(np.rint(bins).astype(np.intp)[:, None] + offs[None, :], 1, a.size - 2)
+    amp = a[idx]
+    power = amp * amp / (2.0 if spectrum.scaling == "peak" else 1.0)
+    return np.median(power, axis=1) / _median_over_mean(spectrum.averages)
 
 
 def crlb_frequency_var(eta: float, n: int, fs_hz: float) -> float:
@@ -144,79 +153,105 @@ def _coarse(a: np.ndarray, lo_bin: float, hi_bin: float, harmonics: int) -> floa
     if cand.size == 0:
         cand = np.array([lo_bin])
     last = a.size - 1
-    score = np.zeros(cand.size)
-    for h in range(1, harmonics + 1):
-        pos = cand * h
-        inside = pos <= last
-        lo_i = np.minimum(np.floor(pos).astype(np.intp), last)
-        hi_i = np.minimum(lo_i + 1, last)
-        score += np.where(inside, np.maximum(a[lo_i], a[hi_i]), 0.0) / h
+    hs = np.arange(1, harmonics + 1, dtype=float)
+    pos = np.outer(cand, hs)
+    lo_i = np.minimum(pos.astype(np.intp), last)
+    hi_i = np.minimum(lo_i + 1, last)
+    vals = np.where(pos <= last, np.maximum(a[lo_i], a[hi_i]), 0.0)
+    score = vals @ (1.0 / hs)
     return float(cand[int(np.argmax(score))])
 
 
 def _spectral_refine(
-    spectrum: Spectrum, c_bin: float, harmonics: int, noise_p: float
-) -> tuple[float, list[tuple[int, float, float]]]:
+    spectrum: Spectrum, c_bin: float, harmonics: int
+) -> tuple[float, np.ndarray, np.ndarray]:
     """Interpolated frequency of each clearly visible harmonic near h x c_bin.
 
-    Returns the combined speed (bins) and [(h, f_h in bins, amplitude)] for the harmonics
-    that stand at least 10 dB above the mean noise power per bin.
+    Returns the combined speed (bins), the harmonic numbers used and their SNR
+    eta_h = A_h^2 / (2 sigma_h^2) against the local floor. Used are the harmonics standing
+    at least 10 dB above their local mean noise power per bin (1x alone when none does).
     """
     a = spectrum.amplitude
-    peak2 = 2.0 if spectrum.scaling == "peak" else 1.0
-    found: list[tuple[int, float, float]] = []
-    for h in range(1, harmonics + 1):
-        centre = h * c_bin
-        if centre > a.size - 3:
-            break
-        i0 = max(1, int(math.floor(centre - 1.0)))
-        i1 = min(a.size - 2, int(math.ceil(centre + 1.0)))
-        k = i0 + int(np.argmax(a[i0 : i1 + 1]))
-        pos, amp = sp._hann_interpolate(a, np.array([k]))
-        if (amp[0] ** 2 / peak2) >= _MIN_HARMONIC_SNR * noise_p or h == 1:
-            found.append((h, float(pos[0]), float(amp[0])))
-    strong = [t for t in found if t[2] ** 2 / peak2 >= _MIN_HARMONIC_SNR * noise_p]
-    use = strong or found[:1]
-    if not use:
-        return c_bin, []
-    wts = np.array([h * h * amp * amp for h, _, amp in use])
-    est = np.array([f / h for h, f, _ in use])
+    hs = np.arange(1, harmonics + 1)
+    hs = hs[hs * c_bin <= a.size - 3]
+    if hs.size == 0:
+        return c_bin, np.array([], dtype=int), np.array([])
+    centres = hs * c_bin
+    i0 = np.maximum(1, np.floor(centres - 1.0).astype(np.intp))
+    idx = np.minimum(i0[:, None] + np.arange(4)[None, :], a.size - 2)
+    k = idx[np.arange(hs.size), np.argmax(a[idx], axis=1)]
+    pos, amp = sp._hann_interpolate(a, k)
+    sine_p = amp * amp / (2.0 if spectrum.scaling == "peak" else 1.0)
+    noise_p = local_noise_power(spectrum, k)
+    strong = sine_p >= _MIN_HARMONIC_SNR * noise_p
+    if not strong.any():
+        strong = hs == 1
+    # E[P_noise] = 2 sigma^2 ENBW_bins / N per bin and P_sine = A^2 / 2 (one-sided), so
+    # eta = A^2 / (2 sigma^2) = 2 P_sine ENBW_bins / (N P_noise)
+    enbw_bins = spectrum.enbw_hz / spectrum.resolution_hz
+    n_seg = sp._seg_len(spectrum)
+    with np.errstate(divide="ignore"):
+        eta = np.where(noise_p > 0, 2.0 * sine_p * enbw_bins / (n_seg * noise_p), np.inf)
+    hs, pos, amp, eta = hs[strong], pos[strong], amp[strong], eta[strong]
+    wts = hs * hs * amp * amp
+    est = pos / hs
     if wts.sum() <= 0:
-        return float(est[0]), use
-    return float(np.dot(wts, est) / wts.sum()), use
+        return float(est[0]), hs, eta
+    return float(np.dot(wts, est) / wts.sum()), hs, eta
 
 
-def _dirichlet(u: np.ndarray, n: int) -> np.ndarray:
-    """sum over t = n' - (n - 1)/2, n' = 0..n-1, of cos(u t) = sin(n u / 2) / sin(u / 2)."""
+#: DFT bins kept either side of each harmonic by the fine step. The kept bins are an
+#: orthogonal projection of the record, so noise stays white in them and the fit is
+#: exact; a sinusoid keeps all but about 2 / (pi^2 x 32) = 0.6 % of its information.
+_FIT_HALF_WIDTH = 32
+
+
+def _dft_of_exp(theta: np.ndarray, bins: np.ndarray, n: int) -> np.ndarray:
+    """DFT at ``bins`` of exp(j theta m), m = 0..n-1: sum_m exp(j (theta - 2 pi k / n) m),
+    shape (len(theta), len(bins))."""
+    u = theta[:, None] - (2.0 * np.pi / n) * bins[None, :]
     half = 0.5 * u
     den = np.sin(half)
     small = np.abs(den) < 1e-12
-    return np.where(small, float(n), np.sin(n * half) / np.where(small, 1.0, den))
+    ratio = np.where(small, float(n), np.sin(n * half) / np.where(small, 1.0, den))
+    return np.exp(1j * half * (n - 1)) * ratio
+
+
+def _kept_bins(n: int, centre_bin: float, hs: np.ndarray) -> np.ndarray:
+    half = n // 2
+    centres = np.rint(hs * centre_bin).astype(np.intp)
+    bins = np.unique((centres[:, None] + np.arange(-_FIT_HALF_WIDTH, _FIT_HALF_WIDTH + 1)).ravel())
+    # DC is gone with the mean, and Nyquist holds no sinusoid's phase
+    return bins[(bins >= 1) & (bins < half)]
 
 
 def _harmonic_fit(
-    record: sp.Record, omegas: np.ndarray, hs: np.ndarray
+    record: sp.Record, omegas: np.ndarray, hs: np.ndarray, bins: np.ndarray
 ) -> tuple[np.ndarray, np.ndarray]:
-    """Least-squares fit of sum_h a_h cos(h w t) + b_h sin(h w t) at each w in ``omegas``.
+    """Least-squares fit of sum_h a_h cos(h w m) + b_h sin(h w m) at each w in ``omegas``,
+    made on the record's DFT bins ``bins`` (each stands for itself and its conjugate
+    mirror, hence weight 2).
 
-    Returns the explained energy J(w) = c' Gc^-1 c + s' Gs^-1 s (the concentrated
-    log-likelihood for harmonics in white Gaussian noise) and the fitted amplitudes
-    sqrt(a_h^2 + b_h^2), shape (len(omegas), len(hs)). With time centred on the record
-    the cosine and sine columns are orthogonal and the Gram blocks are Dirichlet sums,
-    so the fit is exact, including each harmonic's negative-frequency image.
+    Returns the explained energy J(w) (the concentrated log-likelihood for harmonics in
+    white Gaussian noise) and the fitted amplitudes sqrt(a_h^2 + b_h^2), shape
+    (len(omegas), len(hs)). The model's DFT is exact in closed form, including each
+    harmonic's negative-frequency image and its leakage into the other harmonics' bins.
     """
     n = record.samples.size
-    hw = np.outer(omegas, hs)  # (W, H)
-    x_c = record.dtft(hw.ravel() * (record.fs_hz / (2.0 * np.pi))).reshape(hw.shape)
-    x_c = x_c * np.exp(1j * hw * 0.5 * (n - 1))  # time origin at the record centre
-    c, s = x_c.real, -x_c.imag
-    dm = _dirichlet((hs[:, None] - hs[None, :]) * omegas[:, None, None], n)
-    dp = _dirichlet((hs[:, None] + hs[None, :]) * omegas[:, None, None], n)
-    gc, gs = 0.5 * (dm + dp), 0.5 * (dm - dp)
-    a = np.linalg.solve(gc, c[..., None])[..., 0]
-    b = np.linalg.solve(gs, s[..., None])[..., 0]
-    energy = np.sum(a * c, axis=1) + np.sum(b * s, axis=1)
-    return energy, np.hypot(a, b)
+    y = record.dft[bins]
+    nw, nh = omegas.size, hs.size
+    theta = np.outer(omegas, hs).ravel()
+    dp = _dft_of_exp(theta, bins, n).reshape(nw, nh, bins.size)
+    dm = _dft_of_exp(-theta, bins, n).reshape(nw, nh, bins.size)
+    model = np.concatenate([0.5 * (dp + dm), -0.5j * (dp - dm)], axis=1)  # cos, sin rows
+    # einsum, not BLAS: these products are tiny and BLAS threading costs far more
+    conj = np.conj(model)
+    gram = 2.0 * np.real(np.einsum("wik,wjk->wij", conj, model))
+    rhs = 2.0 * np.real(np.einsum("wik,k->wi", conj, y))
+    coef = np.linalg.solve(gram, rhs[..., None])[..., 0]
+    energy = np.einsum("wi,wi->w", rhs, coef)
+    amps = np.hypot(coef[:, :nh], coef[:, nh:])
+    return energy, amps
 
 
 def _ml_refine(
@@ -224,16 +259,21 @@ def _ml_refine(
 ) -> tuple[float, np.ndarray]:
     """Maximise the harmonic least-squares energy near ``omega0`` (rad/sample).
 
-    Each step fits a parabola through J at w - e, w, w + e (e = 0.005 bin of the highest
-    harmonic) and moves to its vertex, at most a quarter of that harmonic's bin. Returns
-    the maximiser and the fitted amplitudes (peak, the samples' unit).
+    Each step fits a parabola through J at w - e, w, w + e and moves to its vertex, at
+    most a quarter bin of the highest harmonic. Returns the maximiser and the fitted
+    amplitudes (peak, the samples' unit).
     """
     n = record.samples.size
+    bins = _kept_bins(n, omega0 * n / (2.0 * np.pi), hs)
     bin_w = 2.0 * np.pi / n / hs.max()
-    eps = 0.005 * bin_w
+    # first stencil wide enough to see the curvature from a start 0.1 bin off, then
+    # narrow ones: each parabola step cuts the error roughly to its cube
+    stencils = (0.05, 0.005, 0.005, 0.005, 0.005, 0.005, 0.005, 0.005)[:iterations]
     w = omega0
-    for _ in range(iterations):
-        j, amp = _harmonic_fit(record, np.array([w - eps, w, w + eps]), hs)
+    amp = np.zeros((3, hs.size))
+    for i, rel in enumerate(stencils):
+        eps = rel * bin_w
+        j, amp = _harmonic_fit(record, np.array([w - eps, w, w + eps]), hs, bins)
         curv = j[2] - 2.0 * j[1] + j[0]
         if curv < 0:
             step = 0.5 * eps * (j[0] - j[2]) / curv
@@ -241,9 +281,9 @@ def _ml_refine(
             step = math.copysign(0.25 * bin_w, j[2] - j[0])
         step = max(-0.25 * bin_w, min(0.25 * bin_w, step))
         w += step
-        # near the vertex Newton steps shrink quadratically: once a step is this small
-        # the remaining error is far below the Cramer-Rao spread
-        if abs(step) < 1e-4 * bin_w:
+        # after a concave narrow step the remaining error is far below the
+        # Cramer-Rao spread (cubic convergence of parabolic interpolation)
+        if i >= 1 and curv < 0 and abs(step) < 0.02 * bin_w:
             break
     return w, amp[1]
 
@@ -310,36 +350,28 @@ def estimate_speed(
     c_bin = _coarse(spectrum.amplitude, lo_bin, hi_bin, harmonics)
     n_seg = sp._seg_len(spectrum)
     fs_seg = df * n_seg
-    sigma2 = noise_variance(spectrum)
-    enbw_bins = spectrum.enbw_hz / df
-    noise_p = 2.0 * sigma2 * enbw_bins / n_seg
-    f_bin, used = _spectral_refine(spectrum, c_bin, harmonics, noise_p)
-    if not used:
+    f_bin, hs_used, etas = _spectral_refine(spectrum, c_bin, harmonics)
+    if hs_used.size == 0:
         return SpeedEstimate(speed_hz=c_bin * df, uncertainty_hz=df / math.sqrt(12.0))
-    hs_used = tuple(h for h, _, _ in used)
-    amps = np.array([amp for _, _, amp in used])
-    if spectrum.scaling == "rms":
-        amps = amps * math.sqrt(2.0)
+    # segments overlap, so averaging K of them carries about K x N samples of information
     n_eff = n_seg * spectrum.averages
     speed = f_bin * df
+    loss = _SPECTRAL_PATH_LOSS
     if record is not None:
         n = record.samples.size
-        hs = np.array(hs_used, dtype=float)
         omega0 = 2.0 * np.pi * f_bin / n
-        w, fitted = _ml_refine(record, omega0, hs)
+        w, _fitted = _ml_refine(record, omega0, hs_used.astype(float))
         # a move of more than half a bin means the fine step left the main lobe
         if abs(w - omega0) <= 0.5 * 2.0 * np.pi / n:
             speed = w * fs_seg / (2.0 * np.pi)
-            amps = fitted
+            loss = 1.0
         n_eff = n
-    etas = amps**2 / (2.0 * sigma2) if sigma2 > 0 else np.full(amps.size, np.inf)
     inv_var = sum(
-        h * h / crlb_frequency_var(float(e), n_eff, fs_seg)
+        float(h * h) / crlb_frequency_var(float(e), n_eff, fs_seg)
         for h, e in zip(hs_used, etas, strict=True)
     )
-    unc = math.sqrt(1.0 / inv_var) if inv_var > 0 else df / math.sqrt(12.0)
-    if record is None:
-        unc *= _SPECTRAL_PATH_LOSS
+    unc = loss * math.sqrt(1.0 / inv_var) if inv_var > 0 else df / math.sqrt(12.0)
+    hs_used = tuple(int(h) for h in hs_used)
     return SpeedEstimate(speed_hz=float(speed), uncertainty_hz=unc, harmonics=hs_used)
 
 

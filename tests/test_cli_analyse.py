@@ -64,7 +64,7 @@ class TestJson:
         assert len(rows) == 2
         assert "2 messages rejected" in err and "malformed_line" in err and "unknown_machine" in err
         for row, source in zip(rows, ("measured", "estimated"), strict=True):
-            assert KEYS <= set(row)
+            assert set(row) >= KEYS
             assert row["machine"] == "rig-1" and row["point"] == "de-h"
             assert row["speed_source"] == source
             # measured: the speed sent; estimated: within one tenth of a 0.3125 Hz bin

@@ -159,8 +159,9 @@ class TestGrowth:
         ev = MachineEvaluator(_machine())
         out = [ev.evaluate(_analysis(i, 12.0, overall=2.8)) for i in range(5)]
         assert out[-1].zone == "B"
-        # ...but the alarm rule is ">= B/C" at the boundary itself (conservative).
-        assert any(t.kind == "amplitude_growth" for e in out for t in e.transitions)
+        assert not any(t.kind == "amplitude_growth" for e in out for t in e.transitions)
+        above = [ev.evaluate(_analysis(10 + i, 12.0, overall=2.8001)) for i in range(3)]
+        assert [t.severity for e in above for t in e.transitions] == ["alert"]
 
     def test_baseline_ratio_alarms_and_restart(self):
         ev = MachineEvaluator(_machine(settings={"baseline_readings": 10}))
@@ -290,3 +291,17 @@ def test_detector_and_json():
     assert d2.evaluator("fan-7").snapshot() == d.evaluator("fan-7").snapshot()
     with pytest.raises(ValueError, match="machine"):
         d.evaluator("fan-7").evaluate(_analysis(0.0, 12.0, machine="other"))
+
+
+def test_waveform_without_analysis_checks_health_only():
+    # The service passes analysis=None when the analysis rejected the block.
+    ev = MachineEvaluator(_machine())
+    trans = []
+    for i in range(3):
+        e = ev.evaluate(None, _waveform(i, samples=np.zeros(4096)))
+        trans += e.transitions
+    assert [(t.kind, t.name) for t in trans] == [("sensor_fault", "raised")]
+    assert e.machine_alarms_suppressed and e.zone is None and e.margins == ()
+    json.dumps(e.to_json())
+    with pytest.raises(ValueError, match="neither"):
+        ev.evaluate(None, None)

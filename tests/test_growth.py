@@ -6,7 +6,14 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from monitor.growth import MAD_TO_SIGMA, Baseline, TrendWindow, theil_sen, theil_sen_trend, time_to_limit
+from monitor.growth import (
+    MAD_TO_SIGMA,
+    Baseline,
+    TrendWindow,
+    theil_sen,
+    theil_sen_trend,
+    time_to_limit,
+)
 
 
 class TestTheilSen:

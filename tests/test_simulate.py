@@ -18,6 +18,7 @@ from monitor.simulate import (
     SpeedProfile,
     apply_sensor_fault,
     grown_unbalance,
+    point_inertance,
     sdof_response,
     simulate_reading,
     simulate_run,
@@ -119,6 +120,14 @@ class TestUnbalance:
             h = _textbook(r, 0.2)[0]
             assert amps[-1] == pytest.approx(0.004 * (2 * math.pi * f) ** 2 / 400 * r * r * h, rel=0.02)
         assert amps[1] / amps[0] == pytest.approx(4.0, rel=0.03)
+
+    def test_point_inertance_matches_scipy_freqs(self) -> None:
+        # scipy.signal.freqs of the SDOF acceleration transfer (s^2/m) / (s^2 + 2 zeta wn s + wn^2)
+        model = _one_mode(20.0, 0.05, 200.0, 0.0)
+        f = np.array([5.0, 19.0, 20.0, 40.0])
+        wn = 2 * math.pi * 20.0
+        _, h = signal.freqs([1 / 200.0, 0, 0], [1, 2 * 0.05 * wn, wn * wn], worN=2 * np.pi * f)
+        assert np.allclose(point_inertance(model, "p", f), h, rtol=1e-9)
 
     def test_growth(self) -> None:
         assert grown_unbalance(1.0, 10.0, doubling_days=5.0) == pytest.approx(4.0)

@@ -12,6 +12,7 @@ from __future__ import annotations
 import dataclasses
 import json
 import math
+import sys
 from collections import Counter
 from collections.abc import Iterator
 from pathlib import Path
@@ -156,7 +157,7 @@ def analyse(file: Path, machines_file: Path, as_json: bool, prefix: str) -> None
     except OSError as exc:
         raise click.ClickException(f"cannot read stream file {str(file)!r}: {exc.strerror}.") from exc
     outcome = _Outcome()
-    err = click.get_text_stream("stderr")
+    err = sys.stderr
     if not as_json:
         click.echo(_HEADER)
     last_count = 0

@@ -19,6 +19,7 @@ from __future__ import annotations
 import datetime as _dt
 import heapq
 import math
+import sys
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, replace
 from pathlib import Path
@@ -395,8 +396,16 @@ _PROFILES = ("steady", "ramp", "steps", "run-up", "coast-down")
 
 
 @click.command("simulate")
-@click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False, path_type=Path),
+@click.option("--out", "out_dir", default=None, type=click.Path(file_okay=False, path_type=Path),
               help="Directory for the stream files (.jsonl) and the registry (.toml).")
+@click.option("--broker", default=None, metavar="URL",
+              help="Publish the traffic to this broker (mqtt:// or mqtts://) instead of, or "
+                   "as well as, writing files.")
+@click.option("--speedup", type=float, default=1.0, show_default=True,
+              help="With --broker: play this many times faster than real time (0 = as fast "
+                   "as possible); timestamps are moved so the last message is stamped now.")
+@click.option("--max-gap", "max_gap_s", type=float, default=None,
+              help="With --broker: longest wall-clock wait between two messages, s.")
 @click.option("--scenario", type=click.Choice(("plant", *_PROFILES)), default="plant",
               show_default=True,
               help="'plant': the demo plant of sample_streams/; otherwise one test rig "
@@ -412,9 +421,15 @@ _PROFILES = ("steady", "ramp", "steps", "run-up", "coast-down")
 @click.option("--prefix", default=DEFAULT_PREFIX, show_default=True, help="MQTT topic prefix.")
 def simulate(
     out_dir: Path, scenario: str, seed: int, machine_ids: tuple[str, ...], speed_hz: float,
-    duration_s: float, prefix: str,
+    duration_s: float, prefix: str, broker: str | None = None, speedup: float = 1.0,
+    max_gap_s: float | None = None,
 ) -> None:
-    """Write synthetic vibration and speed streams (.jsonl) plus their machine registry."""
+    """Write synthetic vibration and speed streams (.jsonl) plus their machine registry,
+    or publish them to a broker (--broker)."""
+    if out_dir is None and broker is None:
+        raise click.UsageError("give --out DIR to write files or --broker URL to publish (or both).")
+    if speedup != 0 and speedup < 1:
+        raise click.UsageError(f"--speedup must be 0 (as fast as possible) or >= 1, got {speedup}.")
     if scenario == "plant":
         plans = _plans()
         known = [p.machine.id for p in plans]
@@ -431,6 +446,10 @@ def simulate(
             raise click.UsageError(f"--duration must lie in [5, 3600] s, got {duration_s}.")
         plans = [_rig(scenario, speed_hz, duration_s)]
         registry_name = "rig.toml"
+    if broker is not None:
+        _publish(plans, seed, machine_ids, prefix, broker, speedup, max_gap_s)
+    if out_dir is None:
+        return
     try:
         out_dir.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
@@ -445,7 +464,7 @@ def simulate(
     selected = [(p, s) for p, s in zip(plans, seeds, strict=True)
                 if not machine_ids or p.machine.id in machine_ids]
     total = sum(p.count for p, _ in selected)
-    with click.progressbar(length=total, label="simulating", file=click.get_text_stream("stderr")) as bar:
+    with click.progressbar(length=total, label="simulating", file=sys.stderr) as bar:
         for plan, s in selected:
             path = out_dir / f"{plan.machine.id}.jsonl"
 
@@ -461,3 +480,26 @@ def simulate(
                 raise click.ClickException(f"cannot write {str(path)!r}: {exc.strerror}.") from exc
             click.echo(f"{path}: {n} messages", err=True)
     click.echo(f"{out_dir / registry_name}: {len(registry.machines)} machines", err=True)
+
+
+def _publish(plans: list[_Plan], seed: int, machine_ids: tuple[str, ...], prefix: str,
+             broker: str, speedup: float, max_gap_s: float | None) -> None:
+    """Simulate the selected machines, merge in time order and publish at QoS 1."""
+    from monitor.mqtt import MqttConfigError
+    from monitor.replay import StreamPublisher, replay
+
+    seeds = np.random.SeedSequence(seed).spawn(len(plans))
+    streams = [_machine_messages(p, s, prefix) for p, s in zip(plans, seeds, strict=True)
+               if not machine_ids or p.machine.id in machine_ids]
+    messages = [m for _ts, _k, m in heapq.merge(*streams, key=lambda x: (x[0], x[1]))]
+    try:
+        pub = StreamPublisher(broker)
+    except (MqttConfigError, OSError) as exc:
+        raise click.ClickException(f"cannot publish to {broker!r}: {exc}") from None
+    try:
+        with click.progressbar(length=len(messages), label="publishing", file=sys.stderr) as bar:
+            n = replay(messages, pub, speedup=speedup, max_gap_s=max_gap_s,
+                       progress=lambda _i, _n: bar.update(1))
+    finally:
+        pub.close()
+    click.echo(f"{broker}: {n} messages published", err=True)

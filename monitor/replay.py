@@ -1,0 +1,152 @@
+"""Publish recorded or simulated traffic to a broker, as live sensors would.
+
+The stream's timestamps are moved so that no message is stamped in the future and the
+last one is stamped at the moment it is sent: with ``speedup = 1`` every message carries
+the wall-clock time of its publication; with ``speedup = N`` the stream plays N times
+faster and its timestamps keep their original spacing (a six-week stream replayed in
+minutes still spans six weeks, ending now), so growth trends and reading intervals mean
+what they meant. A service that rejects readings older than its ``max_age_s`` (30 days by
+default) needs that bound widened for long accelerated replays; the demo does so.
+"""
+
+from __future__ import annotations
+
+import json
+import threading
+import time
+from collections.abc import Callable, Iterable, Sequence
+from pathlib import Path
+from typing import Any
+
+import paho.mqtt.client as paho
+from paho.mqtt.enums import CallbackAPIVersion
+
+from monitor.mqtt import parse_broker_url
+from monitor.streams import iso_utc, parse_ts
+
+Message = tuple[str, dict[str, Any]]
+
+
+def load_streams(paths: Iterable[str | Path]) -> list[Message]:
+    """Every ``(topic, payload dict)`` of the stream files, merged in time order (stable)."""
+    out: list[tuple[float, int, Message]] = []
+    k = 0
+    for p in paths:
+        with Path(p).open(encoding="utf-8") as fh:
+            for line in fh:
+                if not line.strip():
+                    continue
+                obj = json.loads(line)
+                payload = obj["payload"]
+                out.append((parse_ts(payload["ts"]), k, (obj["topic"], payload)))
+                k += 1
+    out.sort(key=lambda x: (x[0], x[1]))
+    return [m for _, _, m in out]
+
+
+def retimed(messages: Sequence[Message], end_ts: float) -> tuple[list[tuple[float, Message]], float]:
+    """``[(stream offset s, message with ts shifted)]`` so the last message is at ``end_ts``;
+    also returns the shift applied, s."""
+    if not messages:
+        return [], 0.0
+    times = [parse_ts(p["ts"]) for _, p in messages]
+    t0, t1 = times[0], times[-1]
+    shift = end_ts - t1
+    out = []
+    for (topic, payload), t in zip(messages, times, strict=True):
+        body = dict(payload)
+        body["ts"] = iso_utc(t + shift)
+        out.append((t - t0, (topic, body)))
+    return out, shift
+
+
+class StreamPublisher:
+    """A QoS 1 publisher (paho, MQTT 5 or 3.1.1) that waits for every PUBACK at the end."""
+
+    def __init__(self, url: str, *, username: str | None = None, password: str | None = None,
+                 protocol: str = "5", client_id: str = "") -> None:
+        addr = parse_broker_url(url)
+        v5 = protocol == "5"
+        self.client = paho.Client(
+            CallbackAPIVersion.VERSION2, client_id=client_id,
+            protocol=paho.MQTTv5 if v5 else paho.MQTTv311,
+            clean_session=None if v5 else True,
+        )
+        user = username if username is not None else addr.username
+        if user is not None:
+            self.client.username_pw_set(user, password if password is not None else addr.password)
+        if addr.tls:
+            self.client.tls_set()
+        self.client.max_inflight_messages_set(200)
+        self._connected = threading.Event()
+        self.client.on_connect = lambda *a: self._connected.set()
+        self.client.connect(addr.host, addr.port)
+        self.client.loop_start()
+        if not self._connected.wait(10.0):
+            self.close()
+            raise ConnectionError(f"no connection to the broker at {url} within 10 s.")
+        self._infos: list[Any] = []
+
+    def publish(self, topic: str, payload: bytes) -> None:
+        self._infos.append(self.client.publish(topic, payload, qos=1))
+        if len(self._infos) > 1000:
+            self._drain(self._infos[:500])
+            del self._infos[:500]
+
+    def _drain(self, infos: list[Any], timeout_s: float = 60.0) -> None:
+        deadline = time.monotonic() + timeout_s
+        for info in infos:
+            info.wait_for_publish(max(0.01, deadline - time.monotonic()))
+            if not info.is_published():
+                raise TimeoutError("the broker did not acknowledge a published message in time.")
+
+    def flush(self) -> None:
+        self._drain(self._infos)
+        self._infos.clear()
+
+    def close(self) -> None:
+        self.client.disconnect()
+        self.client.loop_stop()
+
+
+def replay(
+    messages: Sequence[Message],
+    publisher: StreamPublisher,
+    *,
+    speedup: float = 1.0,
+    max_gap_s: float | None = None,
+    stop: threading.Event | None = None,
+    progress: Callable[[int, int], None] | None = None,
+) -> int:
+    """Publish ``messages`` paced ``speedup`` times faster than recorded (0 = no pacing).
+
+    ``max_gap_s`` caps a wall-clock wait between two messages (s), so quiet weeks of a
+    stream do not stall a demo. Returns the number published (fewer if ``stop`` is set).
+    """
+    if speedup != 0 and speedup < 1:
+        raise ValueError(f"speedup must be 0 (as fast as possible) or >= 1, got {speedup!r}.")
+    if not messages:
+        return 0
+    times = [parse_ts(p["ts"]) for _, p in messages]
+    # Wall-clock offset of each message: the recorded spacing / speedup, gaps capped.
+    wall = [0.0]
+    for a, b in zip(times, times[1:], strict=False):
+        gap = (b - a) / speedup if speedup > 0 else 0.0
+        wall.append(wall[-1] + (min(gap, max_gap_s) if max_gap_s is not None else gap))
+    # Stamp the last message at the moment it will be sent; each message then carries a
+    # time no later than its own sending (the wall spacing never exceeds the recorded one).
+    plan, _ = retimed(messages, time.time() + wall[-1])
+    start = time.monotonic()
+    n = 0
+    for w, (_offset, (topic, payload)) in zip(wall, plan, strict=True):
+        if stop is not None and stop.is_set():
+            break
+        wait = start + w - time.monotonic()
+        if wait > 0 and (stop.wait(wait) if stop is not None else time.sleep(wait)):
+            break
+        publisher.publish(topic, json.dumps(payload, separators=(",", ":")).encode())
+        n += 1
+        if progress is not None:
+            progress(n, len(plan))
+    publisher.flush()
+    return n
