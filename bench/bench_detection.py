@@ -3,9 +3,10 @@
 A machine with 6 modes and 5 excitation orders (1x, 2x, 3x, 7x blade pass, 12x) and 2x
 line frequency; one point; 16,384-sample blocks at 25.6 kHz. The evaluator is warmed up
 first (baselines learned, trend windows full) and no excitation sits inside a required
-band, so every reading runs every check: sensor
-health on the samples, the 6 x 6 margin table with the speed-trend forecast, zones,
-baseline ratios and a Theil-Sen trend per feature, and the alarm engine.
+band, so every reading runs every check: sensor health on the samples, the 6 x 6 margins
+with the speed-trend forecast, zones, baseline ratios and a Theil-Sen trend per feature,
+and the alarm engine. After warm-up six pairs sit in their approach bands with live
+advisory alarms and the overall level is in zone C, so the engine has real work too.
 Target: detection <= 0.2 x analysis.
 """
 

@@ -2,8 +2,6 @@
 
 from __future__ import annotations
 
-import re
-
 from flask import Blueprint, flash, redirect, render_template, request, url_for
 from sqlalchemy import select
 from werkzeug.security import check_password_hash, generate_password_hash
@@ -12,11 +10,11 @@ from dashboard import queries
 from dashboard.db import db_session
 from dashboard.errors import BadRequest, NotFound
 from dashboard.security import ROLES, current, limiter, require, start_session
+from monitor.store.auth import AuthError, create_user, get_user, verify_password
 from monitor.store.models import ApiToken, User, utcnow
 
 bp = Blueprint("auth", __name__)
 
-_NAME = re.compile(r"^[A-Za-z0-9_.@-]{1,64}$")
 # Compared against when the user does not exist, so timing does not reveal names.
 _DUMMY_HASH = generate_password_hash("not-a-real-password")
 
@@ -37,9 +35,12 @@ def login():
     password = request.form.get("password", "")
     addr = request.remote_addr or "-"
     limiter().check(name, addr)
-    user = queries.user_by_name(db_session(), name)
-    ok = check_password_hash(user.password_hash if user else _DUMMY_HASH, password) and user is not None
-    if not ok:
+    s = db_session()
+    user = verify_password(s, name, password)
+    if user is None and get_user(s, name) is None:
+        # Spend the same hashing time as for a known name, so timing does not reveal names.
+        check_password_hash(_DUMMY_HASH, password)
+    if user is None:
         limiter().failed(name, addr)
         return render_template("auth/login.html", error="User name or password is wrong.",
                                username=name, next=request.form.get("next")), 401
@@ -64,18 +65,15 @@ def users():
         name = request.form.get("username", "").strip()
         password = request.form.get("password", "")
         role = request.form.get("role", "")
-        if not _NAME.match(name):
-            raise BadRequest("The user name must be 1-64 letters, digits or . _ @ -.")
-        if len(password) < 8:
-            raise BadRequest("The password must have at least 8 characters.")
-        if role not in ROLES:
-            raise BadRequest(f"The role must be one of {', '.join(ROLES)}, got {role!r}.")
-        if s.scalar(select(User).where(User.name == name)) is not None:
+        if get_user(s, name) is not None:
             flash(f"A user named {name} exists already.", "error")
-        else:
-            s.add(User(name=name, password_hash=generate_password_hash(password), role=role))
-            s.commit()
-            flash(f"User {name} added as {role}.", "ok")
+            return redirect(url_for("auth.users"))
+        try:
+            create_user(s, name, password, role)
+        except AuthError as exc:
+            raise BadRequest(str(exc)) from None
+        s.commit()
+        flash(f"User {name} added as {role}.", "ok")
         return redirect(url_for("auth.users"))
     return render_template("auth/users.html", users=s.scalars(select(User).order_by(User.name)).all(), roles=ROLES)
 
@@ -110,7 +108,7 @@ def tokens():
         if u is None:
             raise NotFound(f"No user with id {uid}.")
         label = request.form.get("label", "").strip()[:100]
-        new_token, new_user = queries.create_token(s, u.id, label), u.name
+        new_token, new_user = queries.create_token(s, u, label), u.name
     resp = render_template("auth/tokens.html", tokens=queries.list_tokens(s),
                            users=s.scalars(select(User).order_by(User.name)).all(),
                            new_token=new_token, new_token_user=new_user)

@@ -10,8 +10,6 @@ columns are fetched for the kept rows only.
 from __future__ import annotations
 
 import datetime as dt
-import hashlib
-import secrets
 from collections import defaultdict
 from collections.abc import Iterable
 from typing import Any
@@ -23,6 +21,7 @@ from sqlalchemy.orm import Session, aliased
 from monitor import registry as reg
 from monitor.alarms import severity_rank
 from monitor.margins import margin_table
+from monitor.store.auth import create_api_token, verify_api_token
 from monitor.store.models import (
     Alarm,
     ApiToken,
@@ -56,37 +55,19 @@ def user_by_id(s: Session, uid: int) -> User | None:
     return None if u is None or u.disabled else u
 
 
-def user_by_name(s: Session, name: str) -> User | None:
-    u = s.scalar(select(User).where(User.name == name))
-    return None if u is None or u.disabled else u
-
-
-def token_hash(token: str) -> str:
-    """sha256 hex digest of the token text: what ``api_tokens.token_hash`` stores."""
-    return hashlib.sha256(token.encode("utf-8")).hexdigest()
-
-
 def user_for_token(s: Session, token: str) -> User | None:
-    row = s.execute(
-        select(ApiToken, User)
-        .join(User, User.id == ApiToken.user_id)
-        .where(ApiToken.token_hash == token_hash(token), ApiToken.revoked_at.is_(None))
-    ).first()
-    if row is None or row.User.disabled:
-        return None
-    tok = row.ApiToken
-    now = utcnow()
-    # Record use coarsely: one write per token per ten minutes, not one per request.
-    if tok.last_used_at is None or now - tok.last_used_at > dt.timedelta(minutes=10):
-        tok.last_used_at = now
+    """The user an API token acts for (the store's check: sha256 digest, not revoked,
+    user not disabled), or None. The store stamps the time of use; commit it."""
+    user = verify_api_token(s, token)
+    if user is not None:
         s.commit()
-    return row.User
+    return user
 
 
-def create_token(s: Session, user_id: int, label: str) -> str:
-    """Store a new token's hash and return the token text (shown once)."""
-    text = "ww_" + secrets.token_urlsafe(32)
-    s.add(ApiToken(token_hash=token_hash(text), user_id=user_id, label=label))
+def create_token(s: Session, user: User, label: str) -> str:
+    """Store a new token's hash (the store's ``create_api_token``); returns the token
+    text, shown once."""
+    text = create_api_token(s, user.name, label)
     s.commit()
     return text
 
@@ -103,7 +84,8 @@ def list_tokens(s: Session) -> list[dict]:
 # ----------------------------------------------------------------------------- registry
 
 
-def _to_registry(m: Machine, modes: Iterable[Mode]) -> reg.Machine:
+def _to_registry(m: Any, modes: Iterable[Any]) -> reg.Machine:
+    # ``m`` and ``modes``: ORM objects or column rows with the same attribute names.
     return reg.Machine(
         id=m.id, name=m.name, location=m.location, machine_class=m.machine_class,
         speed_range_rpm=(m.speed_min_rpm, m.speed_max_rpm),
@@ -120,18 +102,82 @@ def _to_registry(m: Machine, modes: Iterable[Mode]) -> reg.Machine:
     )
 
 
-def margins_for(m: Machine, modes: list[Mode], speed_hz: float | None) -> list[dict]:
+#: Margin tables computed here (when no stored evaluation fits), keyed by everything they
+#: depend on: machine orders and line frequency, the mode set and the running speed.
+_MARGIN_CACHE: dict[tuple, list[dict]] = {}
+_MARGIN_CACHE_MAX = 4096
+
+
+def margins_for(m: Any, modes: list[Any], speed_hz: float | None) -> list[dict]:
+    """Margin table (``MarginRow.to_json`` rows) at ``speed_hz``, computed by
+    monitor.margins; cached per machine set-up, mode set and speed."""
     if speed_hz is None or not modes:
         return []
     default = (m.settings or {}).get("required_margin_pct")
-    return [r.to_json() for r in margin_table(_to_registry(m, modes), speed_hz, machine_default_pct=default)]
+    key = (m.id, tuple(m.excitation_orders or ()), m.line_frequency_hz, default, float(speed_hz),
+           tuple((x.name, x.frequency_hz, x.damping_ratio, x.amplification_factor, x.required_margin_pct)
+                 for x in modes))
+    rows = _MARGIN_CACHE.get(key)
+    if rows is None:
+        rows = [r.to_json() for r in margin_table(_to_registry(m, modes), speed_hz, machine_default_pct=default)]
+        if len(_MARGIN_CACHE) >= _MARGIN_CACHE_MAX:
+            _MARGIN_CACHE.clear()
+        _MARGIN_CACHE[key] = rows
+    return rows
 
 
-def _latest_per_point(s: Session, machine_ids: list[str] | None):
-    """The newest measurement of every (active) point: one statement, one indexed
-    lookup per point through the (machine_id, point_id, ts) unique index."""
+def current_margins(m: Any, modes: list[Any], speed_hz: float | None,
+                    evaluation: dict | None, evaluated_at: dt.datetime | None) -> list[dict]:
+    """The margin table at the newest reading's speed: the rows the service stored in
+    that reading's evaluation when they were computed with the current mode set (same
+    names and frequencies, no mode or machine edited since), else computed here."""
+    stored = evaluation_view(evaluation)["margins"]
+    if speed_hz is not None and stored and modes and evaluated_at is not None:
+        edited = max([x.updated_at for x in modes if x.updated_at] + ([m.updated_at] if m.updated_at else []),
+                     default=None)
+        same_modes = {(r.get("mode"), r.get("mode_hz")) for r in stored} == {(x.name, x.frequency_hz) for x in modes}
+        if same_modes and (edited is None or edited <= evaluated_at):
+            return stored
+    return margins_for(m, modes, speed_hz)
+
+
+def evaluation_view(ev: Any) -> dict:
+    """The parts of a stored ``ReadingEvaluation`` the dashboard shows.
+
+    The service stores the detector's evaluation either as ``to_json()`` (zone limits as
+    ``zone_limits_mm_s`` + ``zone_limits_source``) or field by field (``zone_limits`` as
+    ``{"ab", "bc", "cd", "source"}``); margins rows and features carry the same keys in both.
+    """
+    ev = ev if isinstance(ev, dict) else {}
+    lim, src = ev.get("zone_limits_mm_s"), ev.get("zone_limits_source")
+    z = ev.get("zone_limits")
+    if lim is None and isinstance(z, dict):
+        lim, src = [z.get("ab"), z.get("bc"), z.get("cd")], z.get("source")
+    if not (isinstance(lim, list) and len(lim) == 3 and all(isinstance(v, (int, float)) for v in lim)):
+        lim, src = None, None
+    features = {f["name"]: f for f in ev.get("features") or () if isinstance(f, dict) and "name" in f}
+    margins = [r for r in ev.get("margins") or () if isinstance(r, dict) and "margin_pct" in r]
+    return {"zone_limits_mm_s": lim, "zone_limits_source": src, "features": features, "margins": margins,
+            "growth_ignored": ev.get("growth_ignored")}
+
+
+def feature_json(f: dict) -> dict:
+    """One growth feature of a stored evaluation: value and learned baseline (median and
+    MAD, in ``unit``), ratio to it, Theil-Sen trend per day and projected time to limit."""
+    ttl = f.get("time_to_limit_s")
+    return {"name": f.get("name"), "unit": f.get("unit"), "value": f.get("value"),
+            "baseline_median": f.get("baseline_median"), "baseline_mad": f.get("baseline_mad"),
+            "baseline_status": f.get("baseline_status"), "ratio": f.get("ratio"),
+            "trend_per_day": f.get("trend_per_day"), "limit_name": f.get("limit_name"),
+            "limit_value": f.get("limit_value"),
+            "time_to_limit_days": None if ttl is None else ttl / 86400.0}
+
+
+def _newest_id():
+    # The newest measurement of a point: one indexed lookup through the
+    # (machine_id, point_id, ts) unique index, correlated to measurement_points.
     inner = aliased(Measurement)
-    newest_id = (
+    return (
         select(inner.id)
         .where(inner.machine_id == MeasurementPoint.machine_id, inner.point_id == MeasurementPoint.id)
         .order_by(inner.ts.desc())
@@ -139,14 +185,26 @@ def _latest_per_point(s: Session, machine_ids: list[str] | None):
         .correlate(MeasurementPoint)
         .scalar_subquery()
     )
-    q = (
+
+
+def _latest_per_point(s: Session, machine_ids: list[str]):
+    """The newest measurement of every active point of ``machine_ids``, one statement."""
+    return s.scalars(
         select(Measurement)
-        .join(MeasurementPoint, and_(Measurement.id == newest_id))
+        .join(MeasurementPoint, Measurement.id == _newest_id())
+        .where(MeasurementPoint.active.is_(True), MeasurementPoint.machine_id.in_(machine_ids))
+    ).all()
+
+
+def _latest_per_point_rows(s: Session):
+    """The cheap columns of the newest measurement of every active point, one statement."""
+    return s.execute(
+        select(Measurement.id, Measurement.machine_id, Measurement.point_id, Measurement.ts,
+               Measurement.speed_hz, Measurement.zone, Measurement.overall_velocity_mm_s_rms,
+               Measurement.stored_at)
+        .join(MeasurementPoint, Measurement.id == _newest_id())
         .where(MeasurementPoint.active.is_(True))
-    )
-    if machine_ids is not None:
-        q = q.where(MeasurementPoint.machine_id.in_(machine_ids))
-    return s.scalars(q).all()
+    ).all()
 
 
 def _machine_state(n_open: int, latest: dt.datetime | None) -> str:
@@ -168,14 +226,29 @@ def _nearest(margins: list[dict]) -> dict | None:
 
 
 def machine_summaries(s: Session) -> list[dict]:
-    """Every active machine with its current state, for the plant overview (5 statements)."""
-    machines = s.scalars(select(Machine).where(Machine.active.is_(True)).order_by(Machine.position, Machine.id)).all()
-    modes_by: dict[str, list[Mode]] = defaultdict(list)
-    for mo in s.scalars(select(Mode).join(Machine).where(Machine.active.is_(True)).order_by(Mode.position, Mode.id)):
+    """Every active machine with its current state, for the plant overview (6 statements).
+
+    Plain column rows, not ORM objects (the page reads a few columns of thousands of rows);
+    the nearest margin comes from the margin rows the service stored with each machine's
+    newest reading (:func:`current_margins`), and only that part of its evaluation is read."""
+    machines = s.execute(select(
+        Machine.id, Machine.name, Machine.location, Machine.machine_class, Machine.speed_min_rpm,
+        Machine.speed_max_rpm, Machine.excitation_orders, Machine.line_frequency_hz, Machine.limits_mm_s,
+        Machine.settings, Machine.updated_at,
+    ).where(Machine.active.is_(True)).order_by(Machine.position, Machine.id)).all()
+    modes_by: dict[str, list] = defaultdict(list)
+    for mo in s.execute(select(
+            Mode.machine_id, Mode.name, Mode.frequency_hz, Mode.damping_ratio, Mode.amplification_factor,
+            Mode.required_margin_pct, Mode.source, Mode.date, Mode.updated_at,
+    ).join(Machine).where(Machine.active.is_(True)).order_by(Mode.position, Mode.id)):
         modes_by[mo.machine_id].append(mo)
-    latest_by: dict[str, list[Measurement]] = defaultdict(list)
-    for me in _latest_per_point(s, None):
+    latest_by: dict[str, list] = defaultdict(list)
+    for me in _latest_per_point_rows(s):
         latest_by[me.machine_id].append(me)
+    newest_by = {mid: max(rows, key=lambda r: r.ts) for mid, rows in latest_by.items()}
+    stored = dict(s.execute(
+        select(Measurement.id, Measurement.evaluation["margins"])
+        .where(Measurement.id.in_([r.id for r in newest_by.values()]))).all()) if newest_by else {}
     open_by: dict[str, dict[str, int]] = defaultdict(dict)
     for mid, sev, n in s.execute(
         select(Alarm.machine_id, Alarm.severity, func.count())
@@ -185,8 +258,11 @@ def machine_summaries(s: Session) -> list[dict]:
     out = []
     for m in machines:
         rows = latest_by.get(m.id, [])
-        newest = max(rows, key=lambda r: r.ts) if rows else None
+        newest = newest_by.get(m.id)
         speed = newest.speed_hz if newest else None
+        margins = current_margins(m, modes_by.get(m.id, []), speed,
+                                  {"margins": stored.get(newest.id)} if newest else None,
+                                  newest.stored_at if newest else None)
         zoned = [r for r in rows if r.zone in ZONE_ORDER]
         worst = max(zoned, key=lambda r: (ZONE_ORDER[r.zone], r.overall_velocity_mm_s_rms or 0)) if zoned else None
         sev = open_by.get(m.id, {})
@@ -197,7 +273,7 @@ def machine_summaries(s: Session) -> list[dict]:
             "state": _machine_state(n_open, newest.ts if newest else None),
             "speed_hz": speed, "speed_rpm": None if speed is None else speed * 60.0,
             "last_reading_at": iso(newest.ts) if newest else None,
-            "nearest_margin": _nearest(margins_for(m, modes_by.get(m.id, []), speed)),
+            "nearest_margin": _nearest(margins),
             "worst_zone": None if worst is None else {
                 "point": worst.point_id, "zone": worst.zone,
                 "overall_mm_s_rms": worst.overall_velocity_mm_s_rms},
@@ -222,23 +298,6 @@ def _limits_for(m: Machine, p: MeasurementPoint):
         return zone_limits(m.machine_class, m.limits_mm_s, p.limits_mm_s)
     except ValueError:
         return None
-
-
-def _baseline_of(me: Measurement | None) -> float | None:
-    # The service records the learned baseline median in the reading's evaluation.
-    ev = (me.evaluation or {}) if me is not None else {}
-    for key in ("baseline_mm_s_rms", "baseline_mm_s", "baseline"):
-        v = ev.get(key)
-        if isinstance(v, dict):
-            v = v.get("median")
-        if isinstance(v, (int, float)):
-            return float(v)
-    growth = ev.get("growth")
-    if isinstance(growth, dict):
-        v = growth.get("baseline_mm_s_rms") or growth.get("baseline")
-        if isinstance(v, (int, float)):
-            return float(v)
-    return None
 
 
 def spectrum_json(sn: SpectrumSnapshot, max_bins: int = MAX_SPECTRUM_BINS) -> dict:
@@ -286,17 +345,23 @@ def machine_detail(s: Session, m: Machine) -> dict:
         Alarm.machine_id == m.id, Alarm.state.in_(OPEN_STATES))) or 0
     pts = []
     for p in points:
-        lim = _limits_for(m, p)
         me = latest.get(p.id)
+        view = evaluation_view(me.evaluation if me is not None else None)
+        lim = _limits_for(m, p)
+        limits = list(lim.as_tuple()) if lim else view["zone_limits_mm_s"]
+        overall = view["features"].get("overall", {})
         pts.append({
             "id": p.id, "direction": p.direction, "quantity": p.quantity, "unit": p.unit,
-            "zone_limits_mm_s": list(lim.as_tuple()) if lim else None,
-            "zone_limits_source": lim.source if lim else None,
+            "zone_limits_mm_s": limits,
+            "zone_limits_source": lim.source if lim else view["zone_limits_source"],
             "latest": None if me is None else {
                 "ts": iso(me.ts), "zone": me.zone, "overall_mm_s_rms": me.overall_velocity_mm_s_rms,
                 "speed_hz": me.speed_hz, "speed_source": me.speed_source,
                 "orders": me.orders, "peaks": me.peaks},
-            "baseline_mm_s_rms": _baseline_of(me),
+            # The learned baseline of the overall level (mm/s RMS; None while learning).
+            "baseline_mm_s_rms": overall.get("baseline_median"),
+            "features": [feature_json(f) for f in view["features"].values()],
+            "growth_ignored": view["growth_ignored"],
         })
     return {
         "id": m.id, "name": m.name or m.id, "location": m.location, "class": m.machine_class,
@@ -308,7 +373,8 @@ def machine_detail(s: Session, m: Machine) -> dict:
         "last_reading_at": iso(newest.ts) if newest else None,
         "points": pts,
         "modes": [mode_json(x) for x in modes],
-        "margins": margins_for(m, list(modes), speed),
+        "margins": current_margins(m, list(modes), speed, newest.evaluation if newest else None,
+                                   newest.stored_at if newest else None),
         "latest_spectra": [spectrum_json(sn) for sn in _latest_spectra(s, m.id)],
     }
 
@@ -347,10 +413,16 @@ def save_mode(s: Session, m: Machine, values: reg.Mode, user: str, mode: Mode | 
 
 def trends(s: Session, m: Machine, point_ids: list[str], t0: dt.datetime, t1: dt.datetime,
            max_points: int) -> list[dict]:
-    """Per point: overall velocity, speed and order amplitudes in [t0, t1], at most
-    ``max_points`` readings. Two statements per point: the cheap columns over the
-    indexed range, then the JSON columns of the rows kept (the largest overall level of
-    each time bucket, so a short excursion is never averaged away)."""
+    """Per point: overall velocity (mm/s RMS), speed (Hz) and order amplitudes (1x, 2x and
+    each excitation order, velocity mm/s peak) in [t0, t1], at most ``max_points``
+    readings, with the ISO 20816 zone boundaries of the point and the learned baseline of
+    each feature as the detector stored it with each kept reading (None while learning).
+
+    Two statements per point: the cheap columns over the indexed (machine, point, ts)
+    range, decimated in numpy (the largest overall level of each time bucket, so a short
+    excursion is never averaged away), then the JSON columns of the rows kept."""
+    points = {p.id: p for p in s.scalars(select(MeasurementPoint).where(MeasurementPoint.machine_id == m.id))}
+    want = [_order_label(o) for o in sorted({1.0, 2.0, *(float(o) for o in (m.excitation_orders or ()))})]
     out = []
     for pid in point_ids:
         rows = s.execute(
@@ -364,33 +436,36 @@ def trends(s: Session, m: Machine, point_ids: list[str], t0: dt.datetime, t1: dt
             ids = np.fromiter((r[0] for r in rows), dtype=np.int64, count=n_total)
             ts = np.fromiter((r[1].timestamp() for r in rows), dtype=np.float64, count=n_total)
             ov = np.fromiter((np.nan if r[2] is None else r[2] for r in rows), dtype=np.float64, count=n_total)
-            keep = decimate_indices(ts, ov, max_points)
-            ids = ids[keep]
+            ids = ids[decimate_indices(ts, ov, max_points)]
         else:
             ids = np.empty(0, dtype=np.int64)
         kept = s.execute(
             select(Measurement.ts, Measurement.overall_velocity_mm_s_rms, Measurement.speed_hz,
-                   Measurement.orders, Measurement.zone)
+                   Measurement.orders, Measurement.zone, Measurement.evaluation)
             .where(Measurement.id.in_(ids.tolist())).order_by(Measurement.ts)
         ).all() if ids.size else []
-        labels: list[str] = []
-        for r in kept:
-            for o in r.orders or []:
-                lab = _order_label(o)
-                if lab is not None and lab not in labels:
-                    labels.append(lab)
-        orders: dict[str, list[float | None]] = {lab: [] for lab in labels}
-        for r in kept:
-            got = {_order_label(o): _order_value(o) for o in (r.orders or [])}
-            for lab in labels:
-                orders[lab].append(got.get(lab))
+        got = [{lab: v for lab, v in ((_order_label(o), _order_value(o)) for o in (r.orders or [])) if lab}
+               for r in kept]
+        labels = want + [lab for lab in dict.fromkeys(k for g in got for k in g) if lab not in want]
+        labels = [lab for lab in labels if any(g.get(lab) is not None for g in got)]
+        views = [evaluation_view(r.evaluation) for r in kept]
+        baseline: dict[str, list[float | None]] = {}
+        for name in ("overall", *labels):
+            b = [v["features"].get(name, {}).get("baseline_median") for v in views]
+            if any(x is not None for x in b):
+                baseline[name] = b
+        p = points.get(pid)
+        lim = _limits_for(m, p) if p is not None else None
         out.append({
             "point": pid, "readings_in_range": n_total, "returned": len(kept),
             "ts": [r.ts.timestamp() for r in kept],
             "overall_mm_s_rms": [r.overall_velocity_mm_s_rms for r in kept],
             "speed_hz": [r.speed_hz for r in kept],
             "zone": [r.zone for r in kept],
-            "orders": orders,
+            "orders": {lab: [g.get(lab) for g in got] for lab in labels},
+            "units": {"overall": "mm/s RMS", **{lab: "mm/s peak" for lab in labels}},
+            "baseline": baseline,
+            "zone_limits_mm_s": list(lim.as_tuple()) if lim else None,
         })
     return out
 
@@ -402,7 +477,8 @@ def _order_label(o: Any) -> str | None:
 
 
 def _order_value(o: dict) -> float | None:
-    v = o.get("velocity_mm_s", o.get("amplitude"))
+    # Velocity, mm/s peak, as detection's order features use (not the point's own unit).
+    v = o.get("velocity_mm_s")
     return None if v is None else float(v)
 
 

@@ -37,12 +37,13 @@ State = Literal["active", "acknowledged", "cleared"]
 
 def severity_rank(severity: str | None) -> int:
     """0 for None, 1 advisory, 2 alert, 3 severe."""
-    if severity is None:
-        return 0
     try:
-        return SEVERITIES.index(severity) + 1
-    except ValueError:
+        return _RANK[severity]
+    except (KeyError, TypeError):
         raise ValueError(f"severity must be one of {SEVERITIES} or None, got {severity!r}.") from None
+
+
+_RANK: dict[str | None, int] = {None: 0, **{s: i + 1 for i, s in enumerate(SEVERITIES)}}
 
 
 def iso_utc(ts: float | None) -> str | None:
@@ -237,6 +238,13 @@ class AlarmEngine:
         ``evidence`` may be a function returning the dict; it is called only when a
         transition happens (building evidence for every reading is wasted work).
         """
+        if raise_level is None and hold_level is None:
+            # Nothing holds: for a key with no live alarm and nothing counted this changes
+            # only the time seen, the common case on every reading.
+            s = self._streams.get(key)
+            if s is not None and s.raise_count == 0 and (s.alarm is None or s.alarm.state == "cleared"):
+                s.last_ts = ts
+                return []
         r = severity_rank(raise_level)
         h = max(severity_rank(hold_level), r)
         n = self.persistence if persistence is None else int(persistence)

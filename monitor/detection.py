@@ -33,7 +33,7 @@ from __future__ import annotations
 import functools
 import math
 from collections import deque
-from collections.abc import Callable, Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field, fields
 from typing import Any
 
@@ -47,6 +47,7 @@ from monitor.margins import (
     ApproachForecast,
     MarginGrid,
     MarginRow,
+    MarginRows,
     MarginState,
     approach_forecasts,
     order_label,
@@ -256,7 +257,7 @@ class ReadingEvaluation:
     """What detection made of one reading (for the store and the dashboard).
 
     ``zone`` of ``overall_velocity_mm_s_rms`` against ``zone_limits``; ``margins`` table at
-    the reading's speed (built on first use from ``margin_rows``); ``approach`` forecasts from the speed trend; ``features`` the
+    the reading's speed (a sequence of :class:`MarginRow`, built on first use); ``approach`` forecasts from the speed trend; ``features`` the
     growth features; ``growth_ignored`` why growth skipped the reading (None when used);
     ``machine_alarms_suppressed`` when sensor health flagged the reading; ``transitions``
     the alarm transitions the reading caused.
@@ -270,18 +271,13 @@ class ReadingEvaluation:
     overall_velocity_mm_s_rms: float | None
     zone: str | None
     zone_limits: ZoneLimits
-    margin_rows: Callable[[], tuple[MarginRow, ...]]
+    margins: Sequence[MarginRow]
     approach: tuple[ApproachForecast, ...]
     features: tuple[FeatureEvaluation, ...]
     health: HealthReport
     growth_ignored: str | None
     machine_alarms_suppressed: bool
     transitions: tuple[Transition, ...] = field(default_factory=tuple)
-
-    @functools.cached_property
-    def margins(self) -> tuple[MarginRow, ...]:
-        """The margin table at the reading's speed (built on first use)."""
-        return self.margin_rows()
 
     def feature(self, name: str) -> FeatureEvaluation | None:
         for f in self.features:
@@ -347,6 +343,19 @@ class MachineEvaluator:
         self._grid = MarginGrid(machine, approach_factor=s.approach_factor,
                                 machine_default_pct=s.required_margin_pct)
         self._res_seen: set[int] = set()  # margin rows that ever fed the alarm engine
+        # Excitation frequencies (Hz) between which each (mode, excitation) pair can be
+        # near its band (margin inside the approach band with hysteresis), widened by a
+        # part in 10^9 so rounding never hides a pair (a stray candidate only costs the
+        # exact computation); readings whose excitations lie
+        # outside every such window skip the margin arrays altogether.
+        g = self._grid
+        widest = g.approach_factor * (1.0 + self._h) / 100.0 * (1.0 + 1e-9)
+        self._near_lo = g.mode_hz * (1.0 - g.req_above * widest - 1e-9)
+        self._near_hi = g.mode_hz * (1.0 + g.req_below * widest + 1e-9)
+        # Per flat pair (mode-major): mode Hz, order, fixed Hz, required % below/above.
+        self._pairs = [(float(g.mode_hz[i, 0]), float(g.order_arr[j]), float(g.fixed_arr[j]),
+                        float(g.req_below[i, 0]), float(g.req_above[i, 0]))
+                       for i in range(len(g.modes)) for j in range(g.n_exc)]
         self._limits = {p.id: zone_limits(machine.machine_class, machine.limits_mm_s, p.limits_mm_s)
                         for p in machine.points}
 
@@ -376,16 +385,14 @@ class MachineEvaluator:
 
         limits = self._limits[point.id]
         speed = float(analysis.speed_hz) if analysis is not None else None
-        state: MarginState | None = None
         approach: tuple[ApproachForecast, ...] = ()
+        margins = MarginRows()
+        inside: list[str] = []
         if speed is not None and math.isfinite(speed) and speed > 0:
-            if suppressed:
-                state = self._grid.compute(speed)
-            else:
-                state, approach, t = self._speed_value(ts, speed, rid)
+            if not suppressed:
+                inside, approach, t = self._speed_value(ts, speed, rid)
                 trans += t
-        grid = self._grid
-        margin_rows = (lambda: grid.rows(state)) if state is not None else tuple
+            margins = MarginRows(self._grid, speed_hz=speed)
 
         overall = zone = None
         feats: tuple[FeatureEvaluation, ...] = ()
@@ -395,16 +402,13 @@ class MachineEvaluator:
             zone = zone_of(overall, limits) if math.isfinite(overall) and overall >= 0 else None
             if not health.ok:
                 ignored = "sensor fault: " + ", ".join(health.checks)
-            else:
-                inside = ([grid.subjects[k] for k in np.flatnonzero(state.status == 2)]
-                          if state is not None else [])
-                if inside:
+            elif inside:
                     ignored = "resonance band: " + ", ".join(inside)
             feats, t = self._growth(analysis, point.id, limits, ignored)
             trans += t
         return ReadingEvaluation(
             machine=self.machine.id, point=point.id, ts=ts, reading_id=rid, speed_hz=speed,
-            overall_velocity_mm_s_rms=overall, zone=zone, zone_limits=limits, margin_rows=margin_rows,
+            overall_velocity_mm_s_rms=overall, zone=zone, zone_limits=limits, margins=margins,
             approach=approach, features=feats, health=health, growth_ignored=ignored,
             machine_alarms_suppressed=suppressed, transitions=tuple(trans),
         )
@@ -542,15 +546,41 @@ class MachineEvaluator:
             out += self.engine.update(key, ts, lvl, lvl, ev, rid)
         return out
 
-    def _speed_value(self, ts: float, speed: float, rid: str | None
-                     ) -> tuple[MarginState, tuple[ApproachForecast, ...], list[Transition]]:
+    def _pair(self, k: int, speed: float) -> tuple[float, float, float, float]:
+        """(margin %, required %, approach %, frequency ratio) of flat pair ``k``: the
+        arithmetic of :meth:`MarginGrid.compute` on one pair (same IEEE operations, so
+        the same numbers)."""
+        fm, order, fixed, rb, ra = self._pairs[k]
+        exc = order * speed + fixed
+        rq = rb if fm <= exc else ra
+        return abs(exc - fm) / fm * 100.0, rq, rq * self._grid.approach_factor, exc / fm
+
+    def _candidates(self, speed: float) -> list[int]:
+        """Flat pairs whose excitation lies in the (widened) window where it can be near
+        its band; every other pair holds no condition at this speed."""
         grid = self._grid
-        st = grid.compute(speed)
+        exc = grid.order_arr * speed + grid.fixed_arr
+        return np.flatnonzero((exc > self._near_lo) & (exc < self._near_hi)).tolist()
+
+    def _speed_value(self, ts: float, speed: float, rid: str | None
+                     ) -> tuple[list[str], tuple[ApproachForecast, ...], list[Transition]]:
+        """Resonance alarms at a new speed value: (subjects with an excitation inside
+        their required band, approach forecasts, transitions)."""
+        grid = self._grid
+        cand = self._candidates(speed)
+        inside: list[str] = []
+        near: set[int] = set()
+        h = self._h
+        for k in cand:
+            m, rq, ap, _ = self._pair(k, speed)
+            if rq > 0 and m < ap * (1 + h):
+                near.add(k)
+                if m < rq:
+                    inside.append(grid.subjects[k])
         if self._speed and ts <= self._speed[-1][0]:
-            return st, (), []  # the same instant seen from another point: count it once
+            return inside, (), []  # the same instant seen from another point: count it once
         self._speed.append((ts, speed))
         s = self.settings
-        h = self._h
         approach: tuple[ApproachForecast, ...] = ()
         if len(self._speed) >= 5:
             t, v = zip(*self._speed, strict=True)
@@ -560,22 +590,21 @@ class MachineEvaluator:
         soon = {a.subject: a for a in approach}
         # Only rows near a band, forecast to enter one, or with alarm history need the
         # engine; the rest hold no condition and have nothing to count.
-        sm, req, appr = st.margin_pct.ravel(), st.required_pct.ravel(), st.approach_pct.ravel()
-        near = set(np.flatnonzero((req > 0) & (sm < appr * (1 + h))).tolist())
         near |= self._res_seen
-        near |= {k for k, subj in enumerate(grid.subjects) if subj in soon}
+        if soon:
+            near |= {k for k, subj in enumerate(grid.subjects) if subj in soon}
         out: list[Transition] = []
-        r_flat = st.ratio.ravel()
+        state: list[MarginState] = []  # the arrays, built only for a transition's evidence
         for k in sorted(near):
             subject = grid.subjects[k]
             key = self._key(None, "resonance_proximity", subject)
             self._res_seen.add(k)
-            m, rq, ap = float(sm[k]), float(req[k]), float(appr[k])
+            m, rq, ap, ratio = self._pair(k, speed)
             if rq <= 0:
                 out += self.engine.update(key, ts, None, None, {"reason": "no margin required"}, rid)
                 continue
             zeta = grid.zetas[k // grid.n_exc]
-            dev = abs(float(r_flat[k]) - 1.0)
+            dev = abs(ratio - 1.0)
             fc = soon.get(subject)
             raise_l = hold_l = None
             if fc is not None:
@@ -597,8 +626,8 @@ class MachineEvaluator:
                 hold_l = "severe"
             out += self.engine.update(
                 key, ts, raise_l, hold_l,
-                functools.partial(_resonance_evidence, speed, rid, grid, st, k, fc), rid)
-        return st, approach, out
+                functools.partial(_resonance_evidence, speed, rid, grid, state, k, fc), rid)
+        return inside, approach, out
 
     def _growth(self, analysis: ReadingAnalysis, pid: str, limits: ZoneLimits, ignored: str | None
                 ) -> tuple[tuple[FeatureEvaluation, ...], list[Transition]]:
@@ -675,10 +704,16 @@ class MachineEvaluator:
                 r = "advisory" if ttl <= horizon_s else None
                 hl = "advisory" if ttl <= horizon_s * (1 + h) else None
                 found.append((r, hl, f"{lim_name} in {ttl / 86400.0:.1f} days at the current trend"))
-            found = [f for f in found if f[0] is not None or f[1] is not None]
-            raise_l = max((f[0] for f in found), key=severity_rank, default=None)
-            hold_l = max((f[1] for f in found), key=severity_rank, default=None)
-            causes = [f[2] for f in found]
+            raise_l = hold_l = None
+            causes = []
+            for fr, fh, fc in found:
+                if fr is None and fh is None:
+                    continue
+                causes.append(fc)
+                if severity_rank(fr) > severity_rank(raise_l):
+                    raise_l = fr
+                if severity_rank(fh) > severity_rank(hold_l):
+                    hold_l = fh
             fe = FeatureEvaluation(
                 name=name, value=value, unit=unit,
                 baseline_median=st.median if st else None, baseline_mad=st.mad if st else None,
@@ -702,9 +737,11 @@ class MachineEvaluator:
         return tuple(feats), out
 
 
-def _resonance_evidence(speed: float, rid: str | None, grid: MarginGrid, st: MarginState, k: int,
-                        fc: ApproachForecast | None) -> dict[str, Any]:
-    ev = {"speed_hz": speed, "reading_id": rid, **grid.row(st, k).to_json()}
+def _resonance_evidence(speed: float, rid: str | None, grid: MarginGrid, state: list[MarginState],
+                        k: int, fc: ApproachForecast | None) -> dict[str, Any]:
+    if not state:
+        state.append(grid.compute(speed))
+    ev = {"speed_hz": speed, "reading_id": rid, **grid.row(state[0], k).to_json()}
     if fc is not None:
         ev["approach"] = fc.to_json()
     return ev

@@ -205,7 +205,7 @@ def theil_sen_many(x: np.ndarray, ys: np.ndarray) -> list[tuple[float, float, fl
         raise ValueError("x must not be all identical.")
     if not keep.all():
         i, j, dx = i[keep], j[keep], dx[keep]
-    slopes = (ys[:, j] - ys[:, i]) / dx
+    slopes = (np.take(ys, j, axis=1) - np.take(ys, i, axis=1)) / dx
     slopes.sort(axis=1)
     nt = slopes.shape[1]
     xs = np.sort(x)
@@ -213,18 +213,34 @@ def theil_sen_many(x: np.ndarray, ys: np.ndarray) -> list[tuple[float, float, fl
     med = _sorted_median_rows(slopes)
     inter = _sorted_median_rows(yss) - med * _sorted_median(xs)
     base = n * (n - 1) * (2 * n + 5) - _tie_term(xs)
-    y_ties = (yss[:, 1:] == yss[:, :-1]).any(axis=1)
+    sigsq = (base - _tie_terms_rows(yss)) / 18.0
     out = []
     for r in range(ys.shape[0]):
-        sigsq = (base - (_tie_term(yss[r]) if y_ties[r] else 0.0)) / 18.0
-        if not sigsq > 0:
+        sq = float(sigsq[r])
+        if not sq > 0:
             out.append((float(med[r]), float(inter[r]), math.nan, math.nan))
             continue
-        zs = _Z_95 * math.sqrt(sigsq)
+        zs = _Z_95 * math.sqrt(sq)
         ru = min(int(round((nt - zs) / 2.0)), nt - 1)
         rl = max(int(round((nt + zs) / 2.0)) - 1, 0)
         out.append((float(med[r]), float(inter[r]), float(slopes[r, rl]), float(slopes[r, ru])))
     return out
+
+
+def _tie_terms_rows(sorted_rows: np.ndarray) -> np.ndarray:
+    """:func:`_tie_term` of each row of ``sorted_rows`` (F, n), all rows at once.
+
+    Same sum as :func:`_tie_term`, with the runs of every row found in one pass.
+    """
+    f, n = sorted_rows.shape
+    same = np.zeros((f, n + 1), dtype=np.int8)
+    np.equal(sorted_rows[:, 1:], sorted_rows[:, :-1], out=same[:, 1:n].view(bool))
+    if not same.any():
+        return np.zeros(f)
+    # Runs of equal neighbours, row by row: a run of m equal pairs is a group of m + 1.
+    rs, cs = np.nonzero(np.diff(same, axis=1))
+    k = (cs[1::2] - cs[::2] + 1).astype(float)
+    return np.bincount(rs[::2], weights=k * (k - 1) * (2 * k + 5), minlength=f)
 
 
 def _sorted_median_rows(a: np.ndarray) -> np.ndarray:

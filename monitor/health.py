@@ -111,36 +111,42 @@ def check_block(samples: np.ndarray, limits: HealthLimits | None = None) -> tupl
         raise ValueError(f"samples must be a 1-D array of at least 8 samples, got shape {x.shape}.")
     n = x.size
     flags: list[HealthFlag] = []
-    if not np.isfinite(x.sum()):  # one cheap pass; the sum is non-finite if any sample is
-        finite = np.isfinite(x)
-        bad = int(np.count_nonzero(~finite))
-        if bad:
-            flags.append(HealthFlag("dropouts", f"{bad} samples are not finite numbers", bad))
-            x = x[finite]
-            if x.size < 8:
-                return tuple(flags)
+    # One pass each for max and min; NaN propagates into them and an infinity becomes
+    # one of them, so they also tell whether any sample is not finite.
     xmax = float(x.max())
     xmin = float(x.min())
+    if not (math.isfinite(xmax) and math.isfinite(xmin)):
+        finite = np.isfinite(x)
+        bad = int(n - np.count_nonzero(finite))
+        flags.append(HealthFlag("dropouts", f"{bad} samples are not finite numbers", bad))
+        x = x[finite]
+        if x.size < 8:
+            return tuple(flags)
+        xmax = float(x.max())
+        xmin = float(x.min())
     ptp = xmax - xmin
     if ptp <= lim.flat_ptp:
         flags.append(HealthFlag("flat_line", "the signal does not vary at all", ptp))
         return tuple(flags)
-    # Cheap counts first; run lengths only when there is something to measure.
-    zeros = x == 0.0
-    zero_run = _longest_run(zeros) if np.count_nonzero(zeros) >= lim.dropout_run else 0
+    # Equal neighbours, counted once: a run of zeros of length L has L - 1 of them and a
+    # repeated value as many, so with few of them neither check needs another pass.
+    same = x[1:] == x[:-1]
+    n_same = int(np.count_nonzero(same))
+    zero_run = 0
+    if n_same >= lim.dropout_run - 1:
+        zeros = x == 0.0
+        zero_run = _longest_run(zeros) if np.count_nonzero(zeros) >= lim.dropout_run else 0
     if zero_run >= lim.dropout_run:
         flags.append(HealthFlag("dropouts", f"{zero_run} consecutive samples are exactly zero", zero_run))
-    else:
-        same = x[1:] == x[:-1]
-        if np.count_nonzero(same) > lim.flat_run_fraction * n:
-            longest_same = _longest_run(same) + 1
-            if longest_same > lim.flat_run_fraction * n:
-                flags.append(HealthFlag(
-                    "flat_line", f"one value repeats for {longest_same} of {n} samples", longest_same))
+    elif n_same > lim.flat_run_fraction * n:
+        longest_same = _longest_run(same) + 1
+        if longest_same > lim.flat_run_fraction * n:
+            flags.append(HealthFlag(
+                "flat_line", f"one value repeats for {longest_same} of {n} samples", longest_same))
     tol = 1e-9 * ptp
-    at_rail = (x >= xmax - tol) | (x <= xmin + tol)
-    if np.count_nonzero(at_rail) >= lim.clip_fraction * n:
-        clipped = _samples_in_runs(at_rail, 3)
+    n_rail = int(np.count_nonzero(x >= xmax - tol)) + int(np.count_nonzero(x <= xmin + tol))
+    if n_rail >= lim.clip_fraction * n:
+        clipped = _samples_in_runs((x >= xmax - tol) | (x <= xmin + tol), 3)
         if clipped >= lim.clip_fraction * n:
             flags.append(HealthFlag("clipping", f"{clipped} samples sit at the signal's rails", clipped / n))
     # Median and MAD from an evenly strided subset of about 2,048 samples: robust
@@ -152,9 +158,11 @@ def check_block(samples: np.ndarray, limits: HealthLimits | None = None) -> tupl
         # The stride aliased onto a periodic signal; use every sample.
         med = _median(x)
         sigma = 1.4826 * _median(np.abs(x - med))
-    dev = np.abs(x - med)
-    if sigma > 0:
-        k = int(np.count_nonzero(dev > lim.spike_z * sigma))
+    # The largest deviation from the median is at the maximum or the minimum (rounding
+    # is monotonic), so a block with neither beyond the limit needs no counting pass.
+    lim_dev = lim.spike_z * sigma
+    if sigma > 0 and (xmax - med > lim_dev or med - xmin > lim_dev):
+        k = int(np.count_nonzero(np.abs(x - med) > lim_dev))
         if 1 <= k <= max(1, int(lim.spike_max_fraction * n)):
             flags.append(
                 HealthFlag("spikes", f"{k} isolated samples exceed {lim.spike_z:g} robust standard deviations", k)

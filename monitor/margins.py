@@ -386,6 +386,55 @@ class MarginGrid:
         return tuple(self.row(st, k) for k in range(len(self.subjects)))
 
 
+class MarginRows(Sequence[MarginRow]):
+    """The rows of a :class:`MarginGrid` at one speed, built on first use.
+
+    Detection decides on the arrays; most readings' tables are never looked at, so
+    building 36 row objects per reading would be wasted. Behaves as a read-only sequence
+    (``len``, indexing, iteration, equality with a tuple).
+    """
+
+    def __init__(self, grid: MarginGrid | None = None, state: MarginState | None = None,
+                 speed_hz: float | None = None) -> None:
+        # ``speed_hz`` instead of ``state`` defers even the array computation.
+        self._grid = grid
+        self._state = state
+        self._speed = speed_hz
+        self._rows: tuple[MarginRow, ...] | None = (
+            None if (grid and (state is not None or speed_hz is not None)) else ())
+
+    def _all(self) -> tuple[MarginRow, ...]:
+        if self._rows is None:
+            assert self._grid is not None
+            if self._state is None:
+                assert self._speed is not None
+                self._state = self._grid.compute(self._speed)
+            self._rows = self._grid.rows(self._state)
+        return self._rows
+
+    def __len__(self) -> int:
+        if self._rows is not None:
+            return len(self._rows)
+        assert self._grid is not None
+        return len(self._grid.subjects)
+
+    def __getitem__(self, index):  # type: ignore[override]
+        return self._all()[index]
+
+    def __iter__(self):
+        return iter(self._all())
+
+    def __eq__(self, other: object) -> bool:
+        if isinstance(other, MarginRows | tuple | list):
+            return tuple(self) == tuple(other)
+        return NotImplemented
+
+    __hash__ = None  # type: ignore[assignment]
+
+    def __repr__(self) -> str:
+        return f"MarginRows({len(self)} rows)"
+
+
 @dataclass(frozen=True)
 class ApproachForecast:
     """Projected entry of an order excitation into a mode's required band.

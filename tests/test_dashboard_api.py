@@ -1,28 +1,59 @@
-"""Dashboard and JSON API through the Flask test client on a real temporary SQLite file."""
+"""Dashboard and JSON API through the Flask test client, on a real temporary SQLite file
+and on PostgreSQL (a fresh schema in database ``test`` at 127.0.0.1:5432), seeded with
+readings the real analysis and detection code made (tests/dashboard_seed.py)."""
 
 from __future__ import annotations
 
+import contextlib
 import json
 import re
+import uuid
 
 import pytest
 from sqlalchemy import event
 
 from dashboard import create_app
 from tests.dashboard_seed import PASSWORDS, seed
+from tests.fixtures_db import PG_SERVER_URL, postgres_unreachable_reason
+
+BACKENDS = ["sqlite", pytest.param("postgresql", marks=pytest.mark.postgres)]
 
 
-@pytest.fixture(scope="module")
-def db_url(tmp_path_factory):
-    path = tmp_path_factory.mktemp("dash") / "store.sqlite"
-    url = f"sqlite:///{path}"
-    seed(url, machines=4, readings_per_point=60, names={1: "<script>alert(1)</script>"})
-    return url
+@contextlib.contextmanager
+def fresh_database(kind: str, directory):
+    """A URL of an empty database: a SQLite file in ``directory`` or a new PostgreSQL
+    schema (dropped afterwards), as tests/fixtures_db.py's ``database_url`` makes them."""
+    if kind == "sqlite":
+        yield f"sqlite:///{directory / f'store-{uuid.uuid4().hex[:8]}.sqlite'}"
+        return
+    reason = postgres_unreachable_reason()
+    if reason:
+        pytest.skip(reason)
+    import psycopg
+
+    schema = f"t_{uuid.uuid4().hex[:12]}"
+    dsn = "host=127.0.0.1 port=5432 user=postgres dbname=test"
+    with psycopg.connect(dsn, autocommit=True) as conn:
+        conn.execute(f'CREATE SCHEMA "{schema}"')
+    try:
+        yield f"{PG_SERVER_URL}?options=-csearch_path%3D{schema}"
+    finally:
+        with psycopg.connect(dsn, autocommit=True) as conn:
+            conn.execute(f'DROP SCHEMA "{schema}" CASCADE')
+
+
+@pytest.fixture(scope="module", params=BACKENDS)
+def db_url(request, tmp_path_factory):
+    with fresh_database(request.param, tmp_path_factory.mktemp("dash")) as url:
+        seed(url, machines=4, readings_per_point=60, names={1: "<script>alert(1)</script>"})
+        yield url
 
 
 @pytest.fixture()
 def app(db_url):
-    return create_app({"DATABASE_URL": db_url, "SECRET_KEY": "test", "TESTING": True})
+    a = create_app({"DATABASE_URL": db_url, "SECRET_KEY": "test", "TESTING": True})
+    yield a
+    a.extensions["whirlwatch_engine"].dispose()
 
 
 @pytest.fixture()
@@ -73,11 +104,30 @@ def test_overview_and_machine(client, auth):
     # Separation margin = |f_exc - f_mode| / f_mode (DESIGN.md section 4; API 684 convention).
     nm = m["nearest_margin"]
     assert nm["margin_pct"] == pytest.approx(abs(nm["excitation_hz"] - nm["mode_hz"]) / nm["mode_hz"] * 100)
+    # The overview's nearest margin is the machine page's row closest to its required margin.
     d = client.get("/api/v1/machines/fan-000").get_json()
+    near = min(d["margins"], key=lambda r: r["margin_pct"] - r["required_pct"])
+    assert (nm["mode"], nm["excitation"]) == (near["mode"], near["excitation"])
+    assert nm["margin_pct"] == pytest.approx(near["margin_pct"])
     assert {p["id"] for p in d["points"]} == {"de-h", "nde-v"}
     # ISO 10816-3:2009 Table A.1/A.2, group 2 flexible, from memory.
     assert d["points"][0]["zone_limits_mm_s"] == [2.3, 4.5, 7.1]
     assert len(d["margins"]) == 2 * 3
+    for r in d["margins"]:
+        # Separation margin, % of the mode frequency (DESIGN.md section 4).
+        assert r["margin_pct"] == pytest.approx(abs(r["excitation_hz"] - r["mode_hz"]) / r["mode_hz"] * 100)
+        assert r["excitation_hz"] == pytest.approx(r["order"] * d["speed_hz"])
+        # SDOF dynamic amplification 1/sqrt((1-r^2)^2 + (2 zeta r)^2) (any vibration
+        # textbook, e.g. Rao, Mechanical Vibrations, eq. 3.30); zeta = 0.04 for this mode.
+        if r["mode"] == "pedestal rocking":
+            fr = r["excitation_hz"] / r["mode_hz"]
+            assert r["amplification"] == pytest.approx(1 / ((1 - fr**2) ** 2 + (2 * 0.04 * fr) ** 2) ** 0.5, rel=1e-6)
+    # The learned baseline and the growth features the detector stored with the reading.
+    de = d["points"][0]
+    feats = {f["name"]: f for f in de["features"]}
+    assert {"overall", "1x", "2x", "7x"} <= set(feats)
+    assert de["baseline_mm_s_rms"] == feats["overall"]["baseline_median"] is not None
+    assert feats["overall"]["ratio"] == pytest.approx(feats["overall"]["value"] / feats["overall"]["baseline_median"])
     assert len(d["latest_spectra"]) == 2
     _err(client.get("/api/v1/machines/nope"), 404)
 
@@ -87,7 +137,17 @@ def test_trends_decimated(client, auth):
     r = client.get("/api/v1/machines/fan-000/trends?from=0&max_points=10&point=de-h").get_json()
     (p,) = r["points"]
     assert p["readings_in_range"] == 60 and p["returned"] <= 10
-    assert p["ts"] == sorted(p["ts"]) and set(p["orders"]) == {"1x", "2x"}
+    # 1x, 2x and each configured excitation order (the plant's fans have orders 1, 2, 7).
+    assert p["ts"] == sorted(p["ts"]) and list(p["orders"]) == ["1x", "2x", "7x"]
+    assert all(len(v) == p["returned"] for v in p["orders"].values())
+    assert p["zone_limits_mm_s"] == [2.3, 4.5, 7.1]  # ISO 10816-3:2009 Table A.1, group 2 flexible, from memory
+    assert {"overall", "1x", "2x", "7x"} <= set(p["baseline"])
+    # The last kept reading is the newest: its baseline is the one the machine page shows.
+    d = client.get("/api/v1/machines/fan-000").get_json()
+    assert p["baseline"]["overall"][-1] == d["points"][0]["baseline_mm_s_rms"]
+    # Decimation keeps the largest overall level of the range (the excursion survives).
+    full = client.get("/api/v1/machines/fan-000/trends?from=0&max_points=100&point=de-h").get_json()["points"][0]
+    assert max(full["overall_mm_s_rms"]) == max(p["overall_mm_s_rms"])
     _err(client.get("/api/v1/machines/fan-000/trends?max_points=1"), 400)
     _err(client.get("/api/v1/machines/fan-000/trends?point=zz"), 404)
 
@@ -127,6 +187,9 @@ def test_viewer_cannot_write_and_csrf(client, auth, app):
     mid = r.get_json()["id"]
     r = client.put(f"/api/v1/machines/fan-002/modes/{mid}", json={"frequency_hz": 44.0}, headers={"X-CSRFToken": tok})
     assert r.get_json()["frequency_hz"] == 44.0 and r.get_json()["amplification_factor"] == 5
+    # The stored margins no longer fit the mode set: the table is recomputed with the new mode.
+    rows = client.get("/api/v1/machines/fan-002").get_json()["margins"]
+    assert len(rows) == 3 * 3 and {r["mode_hz"] for r in rows if r["mode"] == "shaft bending"} == {44.0}
     hist = client.get("/api/v1/machines/fan-002/modes").get_json()["history"]
     assert [h["change"] for h in hist[:2]] == ["updated", "created"] and hist[0]["changed_by"] == "eng"
     _err(client.post("/api/v1/machines/fan-002/modes", json={"name": "bad", "frequency_hz": -1}, headers={"X-CSRFToken": tok}), 400)
@@ -219,14 +282,16 @@ def _count_statements(app, paths, client):
     return out
 
 
-def test_statement_count_does_not_grow(tmp_path):
+@pytest.mark.parametrize("backend", BACKENDS)
+def test_statement_count_does_not_grow(tmp_path, backend):
     counts = []
     for n in (10, 500):
-        url = f"sqlite:///{tmp_path}/n{n}.sqlite"
-        seed(url, machines=n, readings_per_point=20 if n == 10 else 4)
-        app = create_app({"DATABASE_URL": url, "SECRET_KEY": "t"})
-        c = app.test_client()
-        Auth(c).login("vic")
-        counts.append(_count_statements(app, ["/", "/api/v1/machines", "/machines/fan-001", "/api/v1/machines/fan-001",
-                                              "/api/v1/machines/fan-001/trends?from=0"], c))
+        with fresh_database(backend, tmp_path) as url:
+            seed(url, machines=n, readings_per_point=20 if n == 10 else 4, detected=1)
+            app = create_app({"DATABASE_URL": url, "SECRET_KEY": "t"})
+            c = app.test_client()
+            Auth(c).login("vic")
+            counts.append(_count_statements(app, ["/", "/api/v1/machines", "/machines/fan-001", "/api/v1/machines/fan-001",
+                                                  "/api/v1/machines/fan-001/trends?from=0"], c))
+            app.extensions["whirlwatch_engine"].dispose()
     assert counts[0] == counts[1], counts

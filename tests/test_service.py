@@ -138,7 +138,7 @@ def bad_inputs(good: bytes) -> list[tuple[str, bytes, str]]:
         (wave, b"[1, 2]", "not_object"),
         ("whirlwatch/zz-9/de-h/waveform", good, "unknown_machine"),
         ("whirlwatch/ef-2/zz/waveform", good, "unknown_point"),
-        ("whirlwatch/ef-2/de-h/blob", good, "topic_malformed"),
+        (wave, w(samples_f32=None, samples=[0.5] * 10), "samples_too_few"),
         (wave, w(ts=None), "ts_missing"),
         (wave, w(ts="2026-05-28T10:00:00"), "ts_no_timezone"),
         (wave, w(ts=time.time() + 86400), "ts_future"),
@@ -177,7 +177,8 @@ def test_bad_input_rejected_while_good_data_flows(fresh_mosquitto: PrivateBroker
                 return list(s.scalars(select(DeadLetter)))
 
         want = len(waveform_keys(good))
-        assert wait_for(lambda: len(dead()) >= len(bad) and measurement_count(sqlite_url)[0] >= want, 60)
+        ok = wait_for(lambda: len(dead()) >= len(bad) and measurement_count(sqlite_url)[0] >= want, 60)
+        assert ok, (sorted(d.reason for d in dead()), measurement_count(sqlite_url), want)
         letters = dead()
         store.close()
     finally:
