@@ -347,6 +347,11 @@ def estimate_speed(
             f"speed_range_hz ({lo:g}, {hi:g}) Hz excludes every bin of the spectrum, "
             f"whose usable bins run from {df:g} to {nyq - df:g} Hz."
         )
+    if not np.any(spectrum.amplitude[1:] > 0):
+        raise ValueError(
+            "samples carry no signal (the spectrum is zero above DC), so the running speed "
+            "cannot be estimated from them."
+        )
     c_bin = _coarse(spectrum.amplitude, lo_bin, hi_bin, harmonics)
     n_seg = sp._seg_len(spectrum)
     fs_seg = df * n_seg
@@ -366,11 +371,13 @@ def estimate_speed(
             speed = w * fs_seg / (2.0 * np.pi)
             loss = 1.0
         n_eff = n
-    inv_var = sum(
-        float(h * h) / crlb_frequency_var(float(e), n_eff, fs_seg)
-        for h, e in zip(hs_used, etas, strict=True)
-    )
-    unc = loss * math.sqrt(1.0 / inv_var) if inv_var > 0 else df / math.sqrt(12.0)
+    bounds = [crlb_frequency_var(float(e), n_eff, fs_seg) for e in etas]
+    if any(b == 0.0 for b in bounds):
+        # a noise-free harmonic (eta infinite) pins the frequency exactly
+        unc = 0.0
+    else:
+        inv_var = sum(float(h * h) / b for h, b in zip(hs_used, bounds, strict=True))
+        unc = loss * math.sqrt(1.0 / inv_var) if inv_var > 0 else df / math.sqrt(12.0)
     hs_used = tuple(int(h) for h in hs_used)
     return SpeedEstimate(speed_hz=float(speed), uncertainty_hz=unc, harmonics=hs_used)
 

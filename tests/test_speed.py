@@ -166,3 +166,23 @@ class TestTach:
     def test_bad_pulses(self, times, match):
         with pytest.raises(ValueError, match=f"pulse_times_s.*{match}|{match}"):
             speed_from_tach(times)
+
+
+class TestDegenerateRecords:
+    """Records with no noise or no signal must not crash the estimator."""
+
+    def test_all_zero_record_is_a_clear_error(self):
+        fs, n = 2560.0, 4096
+        spec = sp.amplitude_spectrum(np.zeros(n), fs, "m/s^2")
+        with pytest.raises(ValueError, match="no signal"):
+            estimate_speed(spec, (5.0, 50.0), samples=np.zeros(n), fs_hz=fs)
+
+    def test_noise_free_sine_gives_its_frequency(self):
+        # a pure sinusoid: the estimate is its frequency (definition of frequency)
+        fs, n, f0 = 2560.0, 4096, 24.37
+        t = np.arange(n) / fs
+        x = np.sin(2 * np.pi * f0 * t) + 0.3 * np.sin(2 * np.pi * 2 * f0 * t)
+        spec = sp.amplitude_spectrum(x, fs, "m/s^2")
+        est = estimate_speed(spec, (5.0, 50.0), samples=x, fs_hz=fs)
+        assert est.speed_hz == pytest.approx(f0, abs=1e-6)
+        assert np.isfinite(est.uncertainty_hz)
