@@ -15,7 +15,7 @@ from collections.abc import Iterable
 from typing import Any
 
 import numpy as np
-from sqlalchemy import and_, func, select
+from sqlalchemy import func, select
 from sqlalchemy.orm import Session, aliased
 
 from monitor import registry as reg

@@ -39,9 +39,9 @@ from typing import Any
 
 import numpy as np
 
-from monitor.alarms import AlarmEngine, AlarmKey, Transition, levels_above, severity_rank
+from monitor.alarms import SEVERITIES, AlarmEngine, AlarmKey, Transition
 from monitor.analysis import ReadingAnalysis
-from monitor.growth import Baseline, Trend, TrendWindow, theil_sen_many, time_to_limit
+from monitor.growth import Baseline, Trend, TrendWindow, theil_sen_many
 from monitor.health import HealthReport, check_waveform, is_stale
 from monitor.margins import (
     ApproachForecast,
@@ -54,7 +54,7 @@ from monitor.margins import (
 )
 from monitor.readings import SpeedReading, Waveform
 from monitor.registry import MACHINE_CLASSES, Machine, Registry
-from monitor.zones import ZoneLimits, next_boundary, zone_limits, zone_of
+from monitor.zones import ZoneLimits, zone_limits, zone_of
 
 #: Severity of each sensor-health check (docs/alarms.md).
 SENSOR_FAULT_SEVERITY = {
@@ -273,13 +273,15 @@ class ReadingEvaluation:
     zone_limits: ZoneLimits
     margins: Sequence[MarginRow]
     approach: tuple[ApproachForecast, ...]
-    features: tuple[FeatureEvaluation, ...]
+    features: Sequence[FeatureEvaluation]
     health: HealthReport
     growth_ignored: str | None
     machine_alarms_suppressed: bool
     transitions: tuple[Transition, ...] = field(default_factory=tuple)
 
     def feature(self, name: str) -> FeatureEvaluation | None:
+        if isinstance(self.features, FeatureRows):
+            return self.features.get(name)
         for f in self.features:
             if f.name == name:
                 return f
@@ -395,7 +397,7 @@ class MachineEvaluator:
             margins = MarginRows(self._grid, speed_hz=speed)
 
         overall = zone = None
-        feats: tuple[FeatureEvaluation, ...] = ()
+        feats: Sequence[FeatureEvaluation] = ()
         ignored: str | None = None
         if analysis is not None:
             overall = float(analysis.overall_velocity_mm_s_rms)
@@ -630,16 +632,18 @@ class MachineEvaluator:
         return inside, approach, out
 
     def _growth(self, analysis: ReadingAnalysis, pid: str, limits: ZoneLimits, ignored: str | None
-                ) -> tuple[tuple[FeatureEvaluation, ...], list[Transition]]:
+                ) -> tuple[FeatureRows, list[Transition]]:
         s = self.settings
         h = self._h
         horizon_s = s.trend_horizon_days * 86400.0
         ts = float(analysis.ts)
         speed = float(analysis.speed_hz)
+        rid = analysis.reading_id
         counts = self._ignored.setdefault(pid, {})
         if ignored is not None:
             reason = ignored.split(":")[0]
             counts[reason] = counts.get(reason, 0) + 1
+        band = s.baseline_speed_band_pct / 100.0
         rows = []
         for name, value, unit, speed_dep in _features(analysis, self.machine):
             if not math.isfinite(value) or value < 0:
@@ -650,91 +654,187 @@ class MachineEvaluator:
                 base = self._baselines[k] = Baseline(s.baseline_readings)
                 self._trends[k] = TrendWindow(
                     s.trend_window, s.trend_min_readings, s.trend_refit_every,
-                    s.baseline_speed_band_pct / 100.0 if speed_dep else None)
+                    band if speed_dep else None)
             win = self._trends[k]
             comparable = True
             if ignored is None:
                 if not base.ready:
                     base.add(value, speed, ts)
                 bs = base.speed_hz
-                comparable = not (speed_dep and bs and abs(speed - bs) > s.baseline_speed_band_pct / 100.0 * bs)
+                comparable = not (speed_dep and bs and abs(speed - bs) > band * bs)
                 win.add(ts, value, speed)
             rows.append((name, value, unit, base, win, comparable))
         if ignored is None:
             self._fit_trends([r[4] for r in rows])
-        feats: list[FeatureEvaluation] = []
-        out: list[Transition] = []
+        # Levels are decided here on plain floats; the FeatureEvaluation objects (and their
+        # words) are built only when something reads them (FeatureRows, a transition's
+        # evidence): most readings' features are never looked at.
+        r_adv, r_alert = s.growth_ratios
+        hold = 1.0 - h
+        ab, bc, cd = limits.ab, limits.bc, limits.cd
+        specs: list[tuple] = []
+        alarm = self.engine.alarm
+        due: list[tuple[int, AlarmKey, str | None, str | None]] = []
         for name, value, unit, base, win, comparable in rows:
             st = base.stats
-            ratio = base.ratio(value) if (base.ready and comparable) else None
-            if not base.ready:
-                status = f"learning {len(base.values)}/{base.size}"
+            if st is None:
+                status: tuple = ("learning", len(base.values), base.size)
             elif not comparable:
-                status = f"not comparable: speed {speed:.2f} Hz, baseline at {base.speed_hz:.2f} Hz"
+                status = ("speed", speed, base.speed_hz)
             else:
-                status = "ready"
-            trend: Trend | None = win.trend() if ignored is None else None
+                status = ("ready",)
+            ratio = value / st.median if (st is not None and comparable and st.median > 0) else None
+            line = win.line() if ignored is None else None
             # Next limit: zone boundary for the overall level, baseline ratio limit otherwise.
             lim_name = lim_val = None
             if name == "overall":
-                nb = next_boundary(value, limits)
-                if nb is not None:
-                    lim_name, lim_val = nb
-            elif ratio is not None and st is not None:
+                if value <= ab:
+                    lim_name, lim_val = "A/B", ab
+                elif value <= bc:
+                    lim_name, lim_val = "B/C", bc
+                elif value <= cd:
+                    lim_name, lim_val = "C/D", cd
+            elif ratio is not None:
                 for r in s.growth_ratios:
                     if value < r * st.median:
                         lim_name, lim_val = f"{r:g}x baseline", r * st.median
                         break
-            ttl = time_to_limit(trend, lim_val) if (trend is not None and lim_val is not None) else None
-            # (raise level, hold level, cause) from each rule; the worst of each wins.
-            found: list[tuple[str | None, str | None, str]] = []
+            ttl = None
+            if line is not None and lim_val is not None:
+                # time_to_limit on the carried-forward line (same arithmetic).
+                slope, low, fitted = line
+                if fitted >= lim_val:
+                    ttl = 0.0
+                elif low > 0.0 and slope > 0:
+                    ttl = (lim_val - fitted) / slope
+            # (raise rank, hold rank) from each rule; the worst of each wins. Ranks as
+            # severity_rank: 1 advisory, 2 alert, 3 severe.
+            rr = hr = 0
+            causes: list[tuple] = []
             if name == "overall":
-                zone = zone_of(value, limits)
-                _, hl = levels_above(value, {"alert": limits.bc, "severe": limits.cd}, h)
-                # Raise by the zone itself (a zone includes its upper boundary).
-                r = {"C": "alert", "D": "severe"}.get(zone)
-                found.append((r, hl, f"zone {zone} ({value:.3g} mm/s RMS)"))
-            if ratio is not None and st is not None:
-                r, hl = levels_above(ratio, {"advisory": s.growth_ratios[0], "alert": s.growth_ratios[1]}, h)
+                zr = 1 if value <= ab else 2 if value <= bc else 3 if value <= cd else 4
+                # Raise by the zone itself (a zone includes its upper boundary); hold by
+                # levels_above(value, {alert: B/C, severe: C/D}, h).
+                r = 2 if zr == 3 else 3 if zr == 4 else 0
+                hl = 3 if value >= cd * hold else 2 if value >= bc * hold else 0
+                if r or hl:
+                    causes.append(("zone", "ABCD"[zr - 1], value))
+                    rr, hr = max(rr, r), max(hr, hl)
+            if ratio is not None:
+                r = 2 if ratio >= r_alert else 1 if ratio >= r_adv else 0
+                hl = 2 if ratio >= r_alert * hold else 1 if ratio >= r_adv * hold else 0
                 if value <= st.median + s.baseline_sigmas * st.sigma:
-                    r = None  # within the baseline's own scatter
-                found.append((r, hl, f"{ratio:.2f}x baseline"))
+                    r = 0  # within the baseline's own scatter
+                if r or hl:
+                    causes.append(("ratio", ratio))
+                    rr, hr = max(rr, r), max(hr, hl)
             # Trend: only towards limits that matter (B/C and C/D, or a ratio limit).
             if ttl is not None and lim_name != "A/B":
-                r = "advisory" if ttl <= horizon_s else None
-                hl = "advisory" if ttl <= horizon_s * (1 + h) else None
-                found.append((r, hl, f"{lim_name} in {ttl / 86400.0:.1f} days at the current trend"))
-            raise_l = hold_l = None
-            causes = []
-            for fr, fh, fc in found:
-                if fr is None and fh is None:
-                    continue
-                causes.append(fc)
-                if severity_rank(fr) > severity_rank(raise_l):
-                    raise_l = fr
-                if severity_rank(fh) > severity_rank(hold_l):
-                    hold_l = fh
-            fe = FeatureEvaluation(
-                name=name, value=value, unit=unit,
-                baseline_median=st.median if st else None, baseline_mad=st.mad if st else None,
-                baseline_status=status, ratio=ratio,
-                trend_per_day=trend.slope_per_day if trend else None,
-                limit_name=lim_name, limit_value=lim_val, time_to_limit_s=ttl,
-                raise_level=raise_l, hold_level=hold_l, causes=tuple(causes),
-            )
-            feats.append(fe)
+                r = 1 if ttl <= horizon_s else 0
+                hl = 1 if ttl <= horizon_s * (1 + h) else 0
+                if r or hl:
+                    causes.append(("trend", lim_name, ttl))
+                    rr, hr = max(rr, r), max(hr, hl)
+            raise_l = _LEVELS[rr]
+            hold_l = _LEVELS[hr]
+            specs.append((name, value, unit, st, status, ratio,
+                          None if line is None else line[0] * 86400.0,
+                          lim_name, lim_val, ttl, raise_l, hold_l, causes))
             if ignored is not None:
                 continue
             key = self._key(pid, "amplitude_growth", name)
-            if raise_l is None and hold_l is None and self.engine.alarm(key) is None:
-                continue
+            if rr or hr or alarm(key) is not None:
+                due.append((len(specs) - 1, key, raise_l, hold_l))
+        feats = FeatureRows(specs)
+        out: list[Transition] = []
+        for i, key, raise_l, hold_l in due:
             out += self.engine.update(
                 key, ts, raise_l, hold_l,
-                functools.partial(_growth_evidence, analysis.reading_id, speed, limits, fe, counts),
-                analysis.reading_id)
+                functools.partial(_growth_evidence, rid, speed, limits, feats, i, counts), rid)
         if out:
             counts.clear()  # reported in these transitions' evidence
-        return tuple(feats), out
+        return feats, out
+
+
+_LEVELS: tuple[str | None, ...] = (None, *SEVERITIES)
+
+
+def _feature_of(spec: tuple) -> FeatureEvaluation:
+    """The :class:`FeatureEvaluation` of one row of :meth:`MachineEvaluator._growth`."""
+    (name, value, unit, st, status, ratio, per_day, lim_name, lim_val, ttl,
+     raise_l, hold_l, parts) = spec
+    if status[0] == "learning":
+        words = f"learning {status[1]}/{status[2]}"
+    elif status[0] == "speed":
+        words = f"not comparable: speed {status[1]:.2f} Hz, baseline at {status[2]:.2f} Hz"
+    else:
+        words = "ready"
+    causes = []
+    for p in parts:
+        if p[0] == "zone":
+            causes.append(f"zone {p[1]} ({p[2]:.3g} mm/s RMS)")
+        elif p[0] == "ratio":
+            causes.append(f"{p[1]:.2f}x baseline")
+        else:
+            causes.append(f"{p[1]} in {p[2] / 86400.0:.1f} days at the current trend")
+    return FeatureEvaluation(
+        name=name, value=value, unit=unit,
+        baseline_median=st.median if st else None, baseline_mad=st.mad if st else None,
+        baseline_status=words, ratio=ratio, trend_per_day=per_day,
+        limit_name=lim_name, limit_value=lim_val, time_to_limit_s=ttl,
+        raise_level=raise_l, hold_level=hold_l, causes=tuple(causes),
+    )
+
+
+class FeatureRows(Sequence[FeatureEvaluation]):
+    """The growth features of one reading, each :class:`FeatureEvaluation` built on first
+    use. Behaves as a read-only sequence (``len``, indexing, iteration, equality with a
+    tuple); :meth:`get` finds one feature by name without building the others."""
+
+    __slots__ = ("_specs", "_made")
+
+    def __init__(self, specs: Sequence[tuple] = ()) -> None:
+        self._specs = list(specs)
+        self._made: list[FeatureEvaluation | None] = [None] * len(self._specs)
+
+    def _one(self, i: int) -> FeatureEvaluation:
+        fe = self._made[i]
+        if fe is None:
+            fe = self._made[i] = _feature_of(self._specs[i])
+        return fe
+
+    def names(self) -> tuple[str, ...]:
+        return tuple(sp[0] for sp in self._specs)
+
+    def get(self, name: str) -> FeatureEvaluation | None:
+        for i, sp in enumerate(self._specs):
+            if sp[0] == name:
+                return self._one(i)
+        return None
+
+    def __len__(self) -> int:
+        return len(self._specs)
+
+    def __getitem__(self, index):  # type: ignore[override]
+        if isinstance(index, slice):
+            return tuple(self)[index]
+        n = len(self._specs)
+        if not -n <= index < n:
+            raise IndexError("feature index out of range")
+        return self._one(index % n)
+
+    def __iter__(self):
+        return (self._one(i) for i in range(len(self._specs)))
+
+    def __eq__(self, other: object) -> bool:
+        if isinstance(other, FeatureRows | tuple | list):
+            return tuple(self) == tuple(other)
+        return NotImplemented
+
+    __hash__ = None  # type: ignore[assignment]
+
+    def __repr__(self) -> str:
+        return f"FeatureRows({', '.join(self.names())})"
 
 
 def _resonance_evidence(speed: float, rid: str | None, grid: MarginGrid, state: list[MarginState],
@@ -747,10 +847,10 @@ def _resonance_evidence(speed: float, rid: str | None, grid: MarginGrid, state: 
     return ev
 
 
-def _growth_evidence(rid: str | None, speed: float, limits: ZoneLimits, fe: FeatureEvaluation,
+def _growth_evidence(rid: str | None, speed: float, limits: ZoneLimits, feats: FeatureRows, i: int,
                      counts: dict[str, int]) -> dict[str, Any]:
     return {"reading_id": rid, "speed_hz": speed, "zone_limits_mm_s": list(limits.as_tuple()),
-            **fe.to_json(), "ignored_readings": dict(counts)}
+            **feats[i].to_json(), "ignored_readings": dict(counts)}
 
 
 def _fit_windows(wins: list[TrendWindow]) -> None:

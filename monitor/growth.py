@@ -206,24 +206,37 @@ def theil_sen_many(x: np.ndarray, ys: np.ndarray) -> list[tuple[float, float, fl
     if not keep.all():
         i, j, dx = i[keep], j[keep], dx[keep]
     slopes = (np.take(ys, j, axis=1) - np.take(ys, i, axis=1)) / dx
-    slopes.sort(axis=1)
     nt = slopes.shape[1]
     xs = np.sort(x)
     yss = np.sort(ys, axis=1)
-    med = _sorted_median_rows(slopes)
-    inter = _sorted_median_rows(yss) - med * _sorted_median(xs)
     base = n * (n - 1) * (2 * n + 5) - _tie_term(xs)
-    sigsq = (base - _tie_terms_rows(yss)) / 18.0
-    out = []
-    for r in range(ys.shape[0]):
-        sq = float(sigsq[r])
+    sigsq = (base - _tie_terms_rows(yss)).tolist()
+    # Ranks of the interval's ends (Sen 1968, eq. 2.6); rows differ only by ties in y.
+    ends: list[tuple[int, int] | None] = []
+    for b in sigsq:
+        sq = b / 18.0
         if not sq > 0:
-            out.append((float(med[r]), float(inter[r]), math.nan, math.nan))
+            ends.append(None)
             continue
         zs = _Z_95 * math.sqrt(sq)
-        ru = min(int(round((nt - zs) / 2.0)), nt - 1)
-        rl = max(int(round((nt + zs) / 2.0)) - 1, 0)
-        out.append((float(med[r]), float(inter[r]), float(slopes[r, rl]), float(slopes[r, ru])))
+        ends.append((max(int(round((nt + zs) / 2.0)) - 1, 0), min(int(round((nt - zs) / 2.0)), nt - 1)))
+    # Only a few order statistics are needed (the median and the interval's ends): a
+    # partition at those ranks puts the same values there as a full sort, in O(n).
+    mid = nt // 2
+    kth = {mid} if nt % 2 else {mid - 1, mid}
+    for e in ends:
+        if e is not None:
+            kth.update(e)
+    slopes.partition(sorted(kth), axis=1)
+    med = _sorted_median_rows(slopes)
+    inter = (_sorted_median_rows(yss) - med * _sorted_median(xs)).tolist()
+    med = med.tolist()
+    out = []
+    for r, e in enumerate(ends):
+        if e is None:
+            out.append((med[r], inter[r], math.nan, math.nan))
+        else:
+            out.append((med[r], inter[r], float(slopes[r, e[0]]), float(slopes[r, e[1]])))
     return out
 
 
@@ -348,6 +361,20 @@ class TrendWindow:
             return f
         return Trend(f.slope_per_s, f.low_per_s, f.high_per_s,
                      f.fitted_now + f.slope_per_s * (self.ts[-1] - self._fit_ts), f.n)
+
+    def line(self) -> tuple[float, float, float] | None:
+        """``(slope_per_s, low_per_s, fitted_now)`` of :meth:`trend` without building a
+        :class:`Trend` (the same numbers; detection calls this for every feature)."""
+        if len(self.ts) < self.min_readings:
+            return None
+        if self.needs_fit():
+            self.set_fit(theil_sen_trend(list(self.ts), list(self.values)))
+        f = self._fit
+        assert f is not None
+        last = self.ts[-1]
+        if last == self._fit_ts:
+            return f.slope_per_s, f.low_per_s, f.fitted_now
+        return f.slope_per_s, f.low_per_s, f.fitted_now + f.slope_per_s * (last - self._fit_ts)
 
     def snapshot(self) -> dict:
         f = self._fit

@@ -16,10 +16,10 @@ import paho.mqtt.client as paho
 from paho.mqtt.enums import CallbackAPIVersion
 from sqlalchemy import func, select
 
+from monitor.registry import load_registry
 from monitor.replay import load_streams, retimed
 from monitor.store import Store, import_registry, upgrade
 from monitor.store.models import Measurement
-from monitor.registry import load_registry
 
 ROOT = Path(__file__).resolve().parent.parent
 SAMPLES = ROOT / "sample_streams"

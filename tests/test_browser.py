@@ -41,7 +41,7 @@ def server(tmp_path_factory):
         pytest.skip(f"Chromium is not installed at {CHROMIUM} (apt-get install chromium)")
     db = tmp_path_factory.mktemp("browser") / "store.sqlite"
     url = f"sqlite:///{db}"
-    seed(url, machines=6, readings_per_point=300, names={2: "<script>alert(1)</script>"})
+    seed(url, machines=6, readings_per_point=60, names={2: "<script>alert(1)</script>"})
     port = _free_port()
     exe = shutil.which("whirlwatch", path=str(Path(sys.executable).parent)) or "whirlwatch"
     proc = subprocess.Popen([exe, "dashboard", "--port", str(port), "--database", url],
@@ -109,7 +109,9 @@ def test_walkthrough(server, page):
     page.wait_for_selector("#chart-overall[data-drawn='1']")
     assert page.get_attribute("#chart-resonance", "data-series") == "1x|2x|7x"
     assert page.get_attribute("#chart-spectrum", "data-series") == "de-h velocity"
-    assert page.get_attribute("#chart-overall", "data-series").startswith("overall|A/B|B/C|C/D")
+    assert page.get_attribute("#chart-overall", "data-series") == "overall|A/B|B/C|C/D|baseline"
+    assert page.get_attribute("#chart-orders", "data-series") == "1x|1x baseline|2x|2x baseline|7x|7x baseline"
+    assert page.locator("#caution").is_visible()
     for sel in ("#chart-resonance", "#chart-spectrum", "#chart-overall", "#chart-orders"):
         assert _canvas_ink(page, sel) > 1000, sel
     assert page.locator("#margins-table tbody tr").count() == 6
@@ -130,6 +132,7 @@ def test_walkthrough(server, page):
     done = page.locator(f"#alarms-table tr[data-alarm='{alarm_id}']")
     assert done.locator(".astate").inner_text() == "acknowledged"
     assert done.locator(".ack-by").inner_text() == "eng"
+    assert page.locator("#caution").is_visible()
     page.screenshot(path=str(ARTIFACTS / "alarms.png"), full_page=True)
     # No script errors and no CSP violations on any page.
     assert page.errors == [], page.errors

@@ -6,6 +6,7 @@ in the database, so every published waveform ends with exactly one measurement r
 
 from __future__ import annotations
 
+import contextlib
 import random
 import signal
 import threading
@@ -13,7 +14,6 @@ import uuid
 from pathlib import Path
 
 import pytest
-
 from broker import PrivateBroker, publish_many
 from fixtures_db import PG_SERVER_URL, postgres_unreachable_reason
 from service_helpers import (
@@ -115,7 +115,5 @@ def test_two_processes_share_the_stream_exactly_once(fresh_mosquitto: PrivateBro
             log = (tmp_path / f"svc-{i}.log").read_text(errors="replace")
             assert '"service stopped"' in log
     finally:
-        try:
+        with contextlib.suppress(StopIteration):
             next(gen)
-        except StopIteration:
-            pass

@@ -8,15 +8,8 @@ import time
 from pathlib import Path
 
 import pytest
-from sqlalchemy import select
-
 from broker import PrivateBroker, publish_many
-from monitor.config import load_settings
-from monitor.service import Service
-from monitor.store import Store
-from monitor.store.models import Alarm, DeadLetter
 from service_helpers import (
-    PLANT,
     Recorder,
     measurement_count,
     plant_store,
@@ -24,6 +17,12 @@ from service_helpers import (
     wait_for,
     waveform_keys,
 )
+from sqlalchemy import select
+
+from monitor.config import load_settings
+from monitor.service import Service
+from monitor.store import Store
+from monitor.store.models import Alarm, DeadLetter
 
 pytestmark = pytest.mark.broker
 

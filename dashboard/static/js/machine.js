@@ -118,11 +118,10 @@
     const pid = document.getElementById("trend-point").value;
     const p = trendData.points.find(x => x.point === pid);
     if (!p || !p.ts.length) { noData("chart-overall"); noData("chart-orders"); return; }
-    const meta = machine.points.find(x => x.id === pid) || {};
-    const lim = meta.zone_limits_mm_s || [];
-    const base = meta.baseline_mm_s_rms;
+    const lim = p.zone_limits_mm_s || [];
+    const base = p.baseline || {};
     const flat = v => p.ts.map(() => v);
-    const series = [{}, { label: "overall", stroke: "#1d2433", width: 2, value: (u, v) => WW.num(v, 2) + " mm/s" }];
+    const series = [{}, { label: "overall", stroke: "#1d2433", width: 2, value: (u, v) => WW.num(v, 2) + " mm/s RMS" }];
     const data = [p.ts, p.overall_mm_s_rms];
     const zoneColours = ["#7ea33a", "#d19a00", "#b3261e"];
     ["A/B", "B/C", "C/D"].forEach((name, i) => {
@@ -130,18 +129,28 @@
       series.push({ label: name, stroke: zoneColours[i], dash: [6, 4], width: 1.5, points: { show: false } });
       data.push(flat(lim[i]));
     });
-    if (base !== null && base !== undefined) {
-      series.push({ label: "baseline", stroke: "#8d5a97", dash: [2, 3], width: 1.5, points: { show: false } });
-      data.push(flat(base));
+    if (base.overall) {
+      // The learned baseline as the detector held it at each reading (gaps while learning).
+      series.push({ label: "baseline", stroke: "#8d5a97", dash: [2, 3], width: 2, points: { show: false }, value: (u, v) => WW.num(v, 2) + " mm/s RMS" });
+      data.push(base.overall);
     }
     const top = Math.max(lim[2] ? lim[2] * 1.15 : 0, ...p.overall_mm_s_rms.filter(v => v !== null).map(v => v * 1.1));
     put("chart-overall", { height: 260, scales: { x: { time: true }, y: { range: [0, top || 1] } },
-      series: series, axes: [{}, { label: "mm/s RMS", size: 60 }] }, data);
+      series: series, axes: [{}, { label: "overall velocity, mm/s RMS", size: 60 }] }, data);
     const labels = Object.keys(p.orders);
     if (!labels.length) { noData("chart-orders", "No order amplitudes stored."); return; }
-    put("chart-orders", { height: 220, scales: { x: { time: true } },
-      series: [{}].concat(labels.map((l, i) => ({ label: l, stroke: WW.palette[i % WW.palette.length], width: 1.5, value: (u, v) => WW.num(v, 3) + " mm/s" }))),
-      axes: [{}, { label: "order amplitude, mm/s", size: 60 }] }, [p.ts].concat(labels.map(l => p.orders[l])));
+    const oSeries = [{}], oData = [p.ts];
+    labels.forEach((l, i) => {
+      const colour = WW.palette[i % WW.palette.length];
+      oSeries.push({ label: l, stroke: colour, width: 1.8, value: (u, v) => WW.num(v, 3) + " mm/s peak" });
+      oData.push(p.orders[l]);
+      if (base[l]) {
+        oSeries.push({ label: l + " baseline", stroke: colour, dash: [2, 3], width: 1.5, points: { show: false }, value: (u, v) => WW.num(v, 3) + " mm/s peak" });
+        oData.push(base[l]);
+      }
+    });
+    put("chart-orders", { height: 240, scales: { x: { time: true } },
+      series: oSeries, axes: [{}, { label: "order amplitude, mm/s peak", size: 60 }] }, oData);
   }
 
   function renderFacts() {

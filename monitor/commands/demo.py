@@ -1,0 +1,39 @@
+"""``whirlwatch demo``: broker, store, service, dashboard and the sample plant at once."""
+
+from __future__ import annotations
+
+import threading
+from pathlib import Path
+
+import click
+
+
+@click.command("demo")
+@click.option("--broker", default=None, metavar="URL",
+              help="Use this broker instead of starting a private one.")
+@click.option("--database", default=None, metavar="URL",
+              help="SQLAlchemy URL of the store (default: SQLite in --data-dir).")
+@click.option("--machines", type=click.Path(dir_okay=False, exists=True, path_type=Path), default=None,
+              help="Machine registry TOML (default: the sample plant).")
+@click.option("--for", "duration_s", type=click.FloatRange(1, 86400), default=120.0, show_default=True,
+              help="Stop by itself after this many seconds.")
+@click.option("--data-dir", type=click.Path(file_okay=False, path_type=Path), default=Path("demo-data"),
+              show_default=True, help="Folder for the demo's database and broker files.")
+@click.option("--host", default="127.0.0.1", show_default=True, help="Dashboard address.")
+@click.option("--port", type=click.IntRange(0, 65535), default=8050, show_default=True,
+              help="Dashboard port (a free one if taken; 0 = any).")
+def demo(broker: str | None, database: str | None, machines: Path | None, duration_s: float,
+         data_dir: Path, host: str, port: int) -> None:
+    """Run everything on embedded defaults and replay the sample plant, accelerated."""
+    from monitor.demo import install_stop_signals, run_demo
+    from monitor.service import configure_logging
+
+    configure_logging("WARNING")
+    stop = threading.Event()
+    install_stop_signals(stop)
+    click.echo(f"data folder: {data_dir.resolve()}")
+    try:
+        run_demo(data_dir=data_dir, broker_url=broker, database_url=database, machines=machines,
+                 duration_s=duration_s, host=host, port=port, say=click.echo, stop=stop)
+    except RuntimeError as exc:
+        raise click.ClickException(str(exc)) from None

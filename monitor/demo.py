@@ -1,0 +1,287 @@
+"""Everything at once on embedded defaults: a private broker, SQLite in a folder, the
+service, the dashboard and the sample plant's traffic replayed accelerated.
+
+The broker is a private Mosquitto on a free port when the binary is installed, else an
+embedded amqtt broker in this process (MQTT 3.1.1 only, so the service then speaks 3.1.1
+and logs in with a user name: amqtt keeps offline messages only for named clients).
+"""
+
+from __future__ import annotations
+
+import asyncio
+import os
+import secrets
+import shutil
+import signal
+import socket
+import subprocess
+import tempfile
+import threading
+import time
+from collections.abc import Callable
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from monitor.ingest import IngestLimits
+from monitor.replay import Message, StreamPublisher, load_streams, replay
+
+#: Where the sample streams live in a source checkout.
+SAMPLES = Path(__file__).resolve().parent.parent / "sample_streams"
+DEMO_USER = "demo"
+
+
+def free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return int(s.getsockname()[1])
+
+
+def find_mosquitto() -> str | None:
+    found = shutil.which("mosquitto")
+    if found:
+        return found
+    return "/usr/sbin/mosquitto" if os.access("/usr/sbin/mosquitto", os.X_OK) else None
+
+
+class DemoBroker:
+    """A private broker for the demo; ``url``, ``protocol`` and ``username`` say how to reach it."""
+
+    def __init__(self, workdir: Path) -> None:
+        self.workdir = workdir
+        self.port = free_port()
+        self.url = f"mqtt://127.0.0.1:{self.port}"
+        self.protocol = "5"
+        self.username: str | None = None
+        self.kind = ""
+        self._proc: subprocess.Popen[bytes] | None = None
+        self._loop: asyncio.AbstractEventLoop | None = None
+        self._thread: threading.Thread | None = None
+
+    def start(self) -> None:
+        binary = find_mosquitto()
+        if binary:
+            self._start_mosquitto(binary)
+        else:
+            self._start_amqtt()
+        deadline = time.monotonic() + 15
+        while time.monotonic() < deadline:
+            try:
+                with socket.create_connection(("127.0.0.1", self.port), timeout=0.2):
+                    return
+            except OSError:
+                time.sleep(0.05)
+        raise RuntimeError(f"the demo broker did not listen on port {self.port}.")
+
+    def _start_mosquitto(self, binary: str) -> None:
+        persist = self.workdir / "broker"
+        persist.mkdir(parents=True, exist_ok=True)
+        conf = persist / "mosquitto.conf"
+        lines = [f"listener {self.port} 127.0.0.1", "allow_anonymous true", "persistence false",
+                 "max_queued_messages 100000", "log_dest none"]
+        if os.geteuid() == 0:
+            lines.append("user root")
+        conf.write_text("\n".join(lines) + "\n", encoding="utf-8")
+        self._proc = subprocess.Popen([binary, "-c", str(conf)], stdout=subprocess.DEVNULL,
+                                      stderr=subprocess.DEVNULL, stdin=subprocess.DEVNULL)
+        self.kind = f"private Mosquitto ({binary})"
+
+    def _start_amqtt(self) -> None:
+        try:
+            from amqtt.broker import Broker
+        except ImportError as exc:
+            raise RuntimeError(
+                "no mosquitto binary and no embedded broker: install mosquitto or "
+                "`pip install whirlwatch[embedded-broker]`, or pass --broker URL."
+            ) from exc
+        config = {
+            "listeners": {"default": {"type": "tcp", "bind": f"127.0.0.1:{self.port}"}},
+            "sys_interval": 0,
+            "auth": {"allow-anonymous": True},
+            "topic-check": {"enabled": False},
+        }
+        self.protocol = "3.1.1"
+        self.username = "whirlwatch-demo"
+        ready = threading.Event()
+
+        def run() -> None:
+            loop = asyncio.new_event_loop()
+            self._loop = loop
+            asyncio.set_event_loop(loop)
+            broker = Broker(config, loop=loop)
+            loop.run_until_complete(broker.start())
+            self._broker = broker
+            ready.set()
+            loop.run_forever()
+            loop.run_until_complete(broker.shutdown())
+            loop.close()
+
+        self._thread = threading.Thread(target=run, name="amqtt", daemon=True)
+        self._thread.start()
+        ready.wait(15)
+        self.kind = "embedded amqtt broker (MQTT 3.1.1)"
+
+    def stop(self) -> None:
+        if self._proc is not None:
+            self._proc.terminate()
+            try:
+                self._proc.wait(10)
+            except subprocess.TimeoutExpired:
+                self._proc.kill()
+        if self._loop is not None:
+            self._loop.call_soon_threadsafe(self._loop.stop)
+            if self._thread is not None:
+                self._thread.join(10)
+
+
+def sample_messages() -> tuple[Path, list[Message], str]:
+    """(registry file, every sample message in time order, where they came from).
+
+    From ``sample_streams/`` in a checkout; else simulated now (installed as a wheel).
+    """
+    if (SAMPLES / "plant.toml").is_file():
+        return SAMPLES / "plant.toml", load_streams(sorted(SAMPLES.glob("*.jsonl"))), str(SAMPLES)
+    from monitor.commands.simulate import plant_messages, plant_registry
+    from monitor.registry import dump_registry
+
+    tmp = Path(tempfile.mkdtemp(prefix="whirlwatch-plant-"))
+    reg = tmp / "plant.toml"
+    reg.write_text(dump_registry(plant_registry()), encoding="utf-8")
+    return reg, list(plant_messages()), "the simulator (sample_streams/ not found)"
+
+
+@dataclass
+class DemoResult:
+    data_dir: Path
+    database_url: str
+    broker_url: str
+    dashboard_url: str | None
+    user: str
+    password: str
+    published: int
+    measurements: int
+    alarms: int
+
+
+def run_demo(
+    *,
+    data_dir: Path,
+    broker_url: str | None = None,
+    database_url: str | None = None,
+    machines: Path | None = None,
+    duration_s: float = 120.0,
+    host: str = "127.0.0.1",
+    port: int | None = 8050,
+    say: Callable[[str], None] = print,
+    stop: threading.Event | None = None,
+) -> DemoResult:
+    """Run the demo for ``duration_s`` seconds (or until ``stop`` is set); see the module."""
+    from sqlalchemy import func, select
+
+    from monitor.config import load_settings
+    from monitor.registry import load_registry
+    from monitor.service import Service
+    from monitor.store import Store, create_user, import_registry, upgrade
+    from monitor.store.models import Alarm, Measurement
+
+    stop = stop or threading.Event()
+    data_dir = data_dir.resolve()
+    data_dir.mkdir(parents=True, exist_ok=True)
+    db = database_url or f"sqlite:///{data_dir / 'whirlwatch.sqlite'}"
+    registry_file, messages, origin = sample_messages()
+    if machines is not None:
+        registry_file = machines
+    upgrade(db)
+    password = secrets.token_urlsafe(12)
+    user = f"{DEMO_USER}-{secrets.token_hex(2)}"
+    store = Store.open(db)
+    with store.transaction() as s:
+        import_registry(s, load_registry(registry_file), user="demo")
+        create_user(s, user, password, role="engineer")
+    store.close()
+
+    broker = None
+    protocol, username = "5", None
+    if broker_url is None:
+        broker = DemoBroker(data_dir)
+        broker.start()
+        broker_url, protocol, username = broker.url, broker.protocol, broker.username
+        say(f"broker: {broker.kind} at {broker_url}")
+    server = None
+    dashboard_url = None
+    service = None
+    published = 0
+    try:
+        settings = load_settings(None, env={}, overrides={
+            "broker.url": broker_url, "database.url": db, "broker.protocol": protocol,
+            "broker.username": username or "", "broker.client_id": f"whirlwatch-demo-{os.getpid()}",
+            "service.data_dir": str(data_dir), "retention.enabled": False,
+        })
+        # The sample plant's six weeks end now; accept readings that old, and leave the
+        # stale-stream check off (the replay's clock runs thousands of times faster).
+        service = Service(settings, limits=IngestLimits(max_age_s=90 * 86400.0), stale_check_s=0)
+        service.start()
+        server, dashboard_url = _start_dashboard(db, host, port, say)
+        say(f"database: {db}")
+        if dashboard_url:
+            say(f"dashboard: {dashboard_url}  login: {user} / {password} (engineer)")
+        say(f"MQTT: subscribe to whirlwatch/+/alarms and whirlwatch/+/status at {broker_url}")
+        say(f"replaying {len(messages)} messages from {origin}, accelerated")
+        pub = StreamPublisher(broker_url, username=username, protocol=protocol)
+        counter = {"n": 0}
+        t_end = time.monotonic() + duration_s
+
+        def feed() -> None:
+            # About 60 s of wall time for the whole plant history.
+            from monitor.streams import parse_ts
+
+            span = parse_ts(messages[-1][1]["ts"]) - parse_ts(messages[0][1]["ts"])
+            counter["n"] = replay(messages, pub, speedup=max(1.0, span / 60.0), max_gap_s=1.0,
+                                  stop=stop, progress=lambda i, _n: counter.__setitem__("n", i))
+
+        feeder = threading.Thread(target=feed, name="replay", daemon=True)
+        feeder.start()
+        while not stop.wait(min(5.0, max(0.0, t_end - time.monotonic()))):
+            if time.monotonic() >= t_end:
+                break
+            say(f"  published {counter['n']}/{len(messages)}, in flight {service.source.stats.in_flight if service.source else 0}")
+        stop.set()
+        feeder.join(30)
+        published = counter["n"]
+        pub.close()
+    finally:
+        if service is not None:
+            service.stop()
+        if server is not None:
+            server.shutdown()
+        if broker is not None:
+            broker.stop()
+    store = Store.open(db)
+    with store.session() as s:
+        n_meas = int(s.scalar(select(func.count()).select_from(Measurement)) or 0)
+        n_alarms = int(s.scalar(select(func.count()).select_from(Alarm)) or 0)
+    store.close()
+    say(f"done: {published} messages published, {n_meas} measurements and {n_alarms} alarms in {db}")
+    return DemoResult(data_dir, db, broker_url, dashboard_url, user, password, published, n_meas, n_alarms)
+
+
+def _start_dashboard(db: str, host: str, port: int | None, say: Callable[[str], None]) -> tuple[Any, str | None]:
+    try:
+        from werkzeug.serving import make_server
+
+        from dashboard import create_app
+    except ImportError:
+        say("dashboard: not available in this installation")
+        return None, None
+    app = create_app({"DATABASE_URL": db})
+    try:
+        server = make_server(host, port or 0, app, threaded=True)
+    except OSError:
+        server = make_server(host, 0, app, threaded=True)
+    threading.Thread(target=server.serve_forever, name="dashboard", daemon=True).start()
+    return server, f"http://{host}:{server.server_port}/"
+
+
+def install_stop_signals(stop: threading.Event) -> None:
+    for sig in (signal.SIGINT, signal.SIGTERM):
+        signal.signal(sig, lambda *_: stop.set())
