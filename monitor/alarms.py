@@ -65,6 +65,11 @@ class AlarmKey:
     def __post_init__(self) -> None:
         if self.kind not in KINDS:
             raise ValueError(f"kind must be one of {KINDS}, got {self.kind!r}.")
+        # Keys are looked up several times per reading; hash the four fields once.
+        object.__setattr__(self, "_hash", hash((self.machine, self.point, self.kind, self.subject)))
+
+    def __hash__(self) -> int:
+        return self._hash  # type: ignore[attr-defined]
 
     def text(self) -> str:
         return f"{self.machine}/{self.point or '-'}/{self.kind}/{self.subject}"

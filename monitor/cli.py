@@ -43,6 +43,8 @@ _COMMANDS: list[tuple[str, str]] = [
     ("monitor.commands.dashboard", "dashboard"),
     ("monitor.commands.run", "run"),
     ("monitor.commands.demo", "demo"),
+    ("monitor.commands.bumptest", "bumptest"),
+    ("monitor.commands.passage", "passage"),
 ]
 
 _attach()

@@ -30,6 +30,7 @@ see :class:`DetectionSettings`.
 
 from __future__ import annotations
 
+import bisect
 import functools
 import math
 from collections import deque
@@ -287,6 +288,15 @@ class ReadingEvaluation:
                 return f
         return None
 
+    def nearest_margin(self) -> MarginRow | None:
+        """The tightest (mode, excitation) pair at this reading's speed: the margin row
+        with the smallest ``margin_pct - required_pct`` (percent; the first on a tie), or
+        None without a margin table. Cheaper than scanning :attr:`margins` (one row is
+        built)."""
+        if isinstance(self.margins, MarginRows):
+            return self.margins.nearest_margin()
+        return min(self.margins, key=lambda r: r.margin_pct - r.required_pct, default=None)
+
     def to_json(self) -> dict:
         return {
             "machine": self.machine, "point": self.point, "ts": self.ts,
@@ -358,6 +368,25 @@ class MachineEvaluator:
         self._pairs = [(float(g.mode_hz[i, 0]), float(g.order_arr[j]), float(g.fixed_arr[j]),
                         float(g.req_below[i, 0]), float(g.req_above[i, 0]))
                        for i in range(len(g.modes)) for j in range(g.n_exc)]
+        # The same windows as running-speed intervals, widened again by a part in 10^9:
+        # between two consecutive interval ends the candidate set does not change, so a
+        # reading finds its candidates by one bisection instead of array arithmetic.
+        always: list[int] = []
+        spans: list[tuple[float, float, int]] = []
+        for k, (_, order, fixed, _, _) in enumerate(self._pairs):
+            lo = float(self._near_lo[k // g.n_exc, 0])
+            hi = float(self._near_hi[k // g.n_exc, 0])
+            if order == 0.0:
+                if lo < fixed < hi:
+                    always.append(k)
+                continue
+            a, b = (lo - fixed) / order, (hi - fixed) / order
+            spans.append((a - 1e-9 * abs(a) - 1e-12, b + 1e-9 * abs(b) + 1e-12, k))
+        self._cand_edges = sorted({e for a, b, _ in spans for e in (a, b)})
+        edges = [-math.inf, *self._cand_edges, math.inf]
+        self._cand_sets = [
+            sorted(always + [k for a, b, k in spans if a <= edges[i] and b >= edges[i + 1]])
+            for i in range(len(edges) - 1)]
         self._limits = {p.id: zone_limits(machine.machine_class, machine.limits_mm_s, p.limits_mm_s)
                         for p in machine.points}
 
@@ -560,9 +589,7 @@ class MachineEvaluator:
     def _candidates(self, speed: float) -> list[int]:
         """Flat pairs whose excitation lies in the (widened) window where it can be near
         its band; every other pair holds no condition at this speed."""
-        grid = self._grid
-        exc = grid.order_arr * speed + grid.fixed_arr
-        return np.flatnonzero((exc > self._near_lo) & (exc < self._near_hi)).tolist()
+        return self._cand_sets[bisect.bisect_right(self._cand_edges, speed)]
 
     def _speed_value(self, ts: float, speed: float, rid: str | None
                      ) -> tuple[list[str], tuple[ApproachForecast, ...], list[Transition]]:

@@ -418,6 +418,21 @@ class MarginRows(Sequence[MarginRow]):
         assert self._grid is not None
         return len(self._grid.subjects)
 
+    def nearest_margin(self) -> MarginRow | None:
+        """The tightest pair: the row with the smallest ``margin_pct - required_pct``
+        (percent; the first such row on a tie), None for an empty table. Builds that one
+        row only."""
+        if self._rows is not None:
+            return min(self._rows, key=lambda r: r.margin_pct - r.required_pct, default=None)
+        assert self._grid is not None
+        if self._state is None:
+            assert self._speed is not None
+            self._state = self._grid.compute(self._speed)
+        st = self._state
+        if st.margin_pct.size == 0:
+            return None
+        return self._grid.row(st, int(np.argmin(st.margin_pct - st.required_pct)))
+
     def __getitem__(self, index):  # type: ignore[override]
         return self._all()[index]
 

@@ -442,7 +442,12 @@ def decay_decrement(
         if not lo < fn < hi:
             raise ValueError(f"band_hz {band_hz!r} must contain frequency_hz {fn:g}.")
         sos = signal.butter(4, (max(lo, 1e-6 * fs), hi), btype="bandpass", fs=fs, output="sos")
-        x = signal.sosfiltfilt(sos, x)
+        # Extend the record backwards by a few periods so the filter sees no step: a
+        # mirror image when it starts near a peak (released from a displacement), a
+        # point reflection when it starts near zero (at rest, then hit).
+        v0_over_w = (x[1] - x[0]) * fs / (2 * math.pi * fn)
+        pad = "even" if abs(x[0]) >= abs(v0_over_w) else "odd"
+        x = signal.sosfiltfilt(sos, x, padtype=pad, padlen=min(x.size - 1, int(4 * fs / fn)))
     idx, _ = signal.find_peaks(x, distance=max(1, int(0.6 * fs / fn)))
     if idx.size < 3:
         return None

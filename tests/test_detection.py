@@ -286,6 +286,10 @@ def test_detector_and_json():
     js = json.loads(json.dumps(e.to_json()))
     assert js["zone"] == "C" and js["zone_limits_mm_s"] == [1.4, 2.8, 4.5]
     assert js["margins"][0]["status"] == "inside"
+    # The tightest pair is the row the whole table gives (DESIGN.md: SM minus required).
+    assert e.nearest_margin() == min(e.margins, key=lambda r: r.margin_pct - r.required_pct)
+    # Features built on access are the same objects however they are reached.
+    assert e.feature("overall") is e.features[0] and tuple(e.features) == e.features
     assert js["health"]["ok"] is True
     d2 = Detector.restore(Registry((m,)), json.loads(json.dumps(d.snapshot())))
     assert d2.evaluator("fan-7").snapshot() == d.evaluator("fan-7").snapshot()

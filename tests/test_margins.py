@@ -10,6 +10,8 @@ from scipy import signal
 
 from monitor.margins import (
     COMMON_PRACTICE_MARGIN_PCT,
+    MarginGrid,
+    MarginRows,
     amplification_factor_from_damping,
     api684_required_margin,
     approach_forecasts,
@@ -173,6 +175,19 @@ class TestSeparationMargin:
         m = _machine(excitation_orders=(1.0,))
         assert margin_table(m, 20.5)[0].in_half_power_band  # |r - 1| = 0.025 <= 0.05
         assert not margin_table(m, 18.5)[0].in_half_power_band
+
+    def test_nearest_margin(self):
+        # Mode at 20 Hz, zeta 0.05 -> AF = 10 -> API 684: 15 % below, 25 % above; speed
+        # 9.5 Hz: 1x at 9.5 Hz is 52.5 % below the mode (needs 25 %), 2x at 19 Hz is 5 %
+        # below (needs 25 %), 9x at 85.5 Hz is 327.5 % above (needs 15 %). DESIGN.md
+        # definition of SM; the tightest is 2x, 20 % inside its band.
+        m = _machine()
+        rows = MarginRows(MarginGrid(m), speed_hz=9.5)
+        near = rows.nearest_margin()
+        assert near.subject == "lateral@2x"
+        assert near.margin_pct - near.required_pct == pytest.approx(5.0 - 25.0)
+        assert near == min(margin_table(m, 9.5), key=lambda r: r.margin_pct - r.required_pct)
+        assert MarginRows().nearest_margin() is None
 
 
 class TestApproachForecast:

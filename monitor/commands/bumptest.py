@@ -1,0 +1,389 @@
+"""``whirlwatch bumptest FILE``: natural frequencies and damping from an impact test.
+
+FILE is a stream file (.jsonl): each waveform on ``{prefix}/{machine}/{point}/waveform``
+is one hit (the whole decay in one block). Hits of the same point are averaged. With
+``--force-point ID`` the waveforms of that point are the hammer (force) channel: each is
+paired with the response waveforms of the same machine and timestamp and gives the H1
+frequency response and its coherence; its ``unit`` may be ``N``, ``kN`` or ``lbf``.
+
+Lines are validated by ``monitor.ingest.decode_message`` like live traffic, without the
+age limits (a recording is old by nature). Without ``--machines`` every machine and point
+of the file is accepted (the point's quantity taken from the unit of its first waveform).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import math
+import sys
+from collections import Counter, defaultdict
+from collections.abc import Callable, Iterator
+from pathlib import Path
+from typing import Any
+
+import click
+import numpy as np
+
+from monitor import units
+from monitor.ingest import (
+    UNIT_QUANTITY,
+    IngestLimits,
+    Rejected,
+    decode_message,
+    parse_topic,
+)
+from monitor.modes import (
+    DEFAULT_SHIFT_TOLERANCE_PCT,
+    BumpTest,
+    ModeShift,
+    bump_test,
+    compare_modes,
+)
+from monitor.readings import SpeedReading, Waveform
+from monitor.registry import Machine, Point, Registry, RegistryError, load_registry
+from monitor.streams import DEFAULT_PREFIX, StreamError, read_stream
+
+#: Units a hammer (force) channel may carry.
+FORCE_UNITS = ("N", "kN", "lbf")
+# A file is a recording: any age is fine, every other check is the live one.
+FILE_LIMITS = IngestLimits(max_age_s=math.inf, max_future_s=math.inf)
+#: Force and response blocks pair when their timestamps differ by at most this, s.
+PAIR_TOLERANCE_S = 1e-3
+# Placeholder the force channel is decoded under (ingest knows vibration units only).
+_FORCE_PLACEHOLDER = "m/s^2"
+
+
+@dataclasses.dataclass
+class Outcome:
+    """Counts of a pass over a stream file (for the summary on stderr)."""
+
+    seen: int = 0
+    accepted: int = 0
+    rejected: Counter[str] = dataclasses.field(default_factory=Counter)
+    examples: dict[str, str] = dataclasses.field(default_factory=dict)
+
+    def reject(self, reason: str, detail: str) -> None:
+        self.rejected[reason] += 1
+        self.examples.setdefault(reason, detail)
+
+    def report(self, what: str) -> None:
+        n_rej = sum(self.rejected.values())
+        click.echo(f"{self.accepted} {what}, {n_rej} messages rejected.", err=True)
+        for reason, count in sorted(self.rejected.items()):
+            click.echo(f"  rejected {count} x {reason}: e.g. {self.examples[reason]}", err=True)
+
+
+def count_lines(path: Path) -> int:
+    n = 0
+    with path.open("rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 20), b""):
+            n += chunk.count(b"\n")
+    return n
+
+
+def _open_registry(machines_file: Path | None) -> Registry | None:
+    if machines_file is None:
+        return None
+    if not machines_file.is_file():
+        raise click.UsageError(f"machine registry {str(machines_file)!r} does not exist.")
+    try:
+        return load_registry(machines_file)
+    except RegistryError as exc:
+        raise click.ClickException(str(exc)) from exc
+
+
+def _with_point(registry: Registry, machine_id: str, point: Point | None) -> Registry:
+    """``registry`` with ``machine_id`` (and ``point``) added when missing."""
+    machines = list(registry.machines)
+    for i, m in enumerate(machines):
+        if m.id == machine_id:
+            if point is None or any(p.id == point.id for p in m.points):
+                return registry
+            machines[i] = dataclasses.replace(m, points=(*m.points, point))
+            return Registry(tuple(machines))
+    return Registry((*machines, Machine(id=machine_id, points=() if point is None else (point,))))
+
+
+def read_hits(
+    path: Path,
+    registry: Registry | None,
+    *,
+    prefix: str = DEFAULT_PREFIX,
+    force_point: str | None = None,
+    machine_id: str | None = None,
+    outcome: Outcome,
+    on_line: Callable[[], None] = lambda: None,
+) -> tuple[dict[tuple[str, str], list[Waveform]], dict[str, list[tuple[Waveform, str]]], Registry]:
+    """Waveforms of ``path`` by (machine, point), force blocks by machine (with their
+    unit), and the registry used (``registry`` or one built from the file)."""
+    reg = registry if registry is not None else Registry()
+    adhoc = registry is None
+    hits: dict[tuple[str, str], list[Waveform]] = defaultdict(list)
+    forces: dict[str, list[tuple[Waveform, str]]] = defaultdict(list)
+    last_ts: dict[tuple[str, str], float] = {}
+
+    def on_error(exc: StreamError) -> None:
+        outcome.seen += 1
+        outcome.reject("malformed_line", str(exc))
+        on_line()
+
+    for topic, payload in read_stream(path, on_error=on_error):
+        outcome.seen += 1
+        on_line()
+        try:
+            m_id, p_id, _kind = parse_topic(topic, prefix)
+        except Rejected as exc:
+            outcome.reject(exc.reason, exc.detail)
+            continue
+        if machine_id is not None and m_id != machine_id:
+            continue
+        force_unit = None
+        if p_id is not None and p_id == force_point:
+            try:
+                raw = json.loads(payload)
+                force_unit = raw.get("unit") if isinstance(raw, dict) else None
+            except ValueError:
+                raw = None
+            if isinstance(raw, dict) and force_unit in FORCE_UNITS:
+                raw["unit"] = _FORCE_PLACEHOLDER
+                payload = json.dumps(raw, separators=(",", ":")).encode("utf-8")
+            reg = _with_point(reg, m_id, Point(p_id, quantity="acceleration",
+                                               unit=_FORCE_PLACEHOLDER))
+        elif adhoc and p_id is not None:
+            try:
+                unit = json.loads(payload).get("unit")
+            except (ValueError, AttributeError):
+                unit = None
+            quantity = UNIT_QUANTITY.get(unit, "acceleration") if isinstance(unit, str) else (
+                "acceleration")
+            reg = _with_point(reg, m_id, Point(p_id, quantity=quantity,
+                                               unit=units.BASE_UNIT[quantity]))
+        elif adhoc:
+            reg = _with_point(reg, m_id, None)
+        try:
+            reading = decode_message(
+                topic, payload, reg, prefix=prefix, limits=FILE_LIMITS,
+                last_ts=lambda m, p: last_ts.get((m, p)),
+            )
+        except Rejected as exc:
+            outcome.reject(exc.reason, exc.detail)
+            continue
+        if isinstance(reading, SpeedReading):
+            continue  # a bump test is taken at standstill; speed is not needed
+        assert isinstance(reading, Waveform)
+        last_ts[(reading.machine, reading.point)] = reading.ts
+        outcome.accepted += 1
+        if reading.point == force_point:
+            forces[reading.machine].append((reading, force_unit or _FORCE_PLACEHOLDER))
+        else:
+            hits[(reading.machine, reading.point)].append(reading)
+    return hits, forces, reg
+
+
+@dataclasses.dataclass(frozen=True)
+class PointResult:
+    machine: str
+    point: str
+    test: BumpTest
+    comparison: tuple[ModeShift, ...]
+    hits_used: int
+    hits_skipped: int
+
+
+def analyse_point(
+    machine: str,
+    point: str,
+    waves: list[Waveform],
+    forces: list[tuple[Waveform, str]],
+    *,
+    band_hz: tuple[float, float] | None,
+    stored: Machine | None,
+    tolerance_pct: float,
+) -> PointResult:
+    """Average the hits of one point (paired with force blocks when there are any)."""
+    first = waves[0]
+    fs, unit = first.fs_hz, first.unit
+    pairs: list[tuple[Waveform, Waveform | None]] = []
+    force_unit = None
+    for w in waves:
+        if w.fs_hz != fs or units.quantity_of(w.unit) != units.quantity_of(unit):
+            continue
+        partner = None
+        if forces:
+            near = [(abs(fw.ts - w.ts), fw, fu) for fw, fu in forces if fw.fs_hz == fs]
+            near = [x for x in near if x[0] <= PAIR_TOLERANCE_S]
+            if not near:
+                continue
+            _, partner, fu = min(near, key=lambda x: x[0])
+            if force_unit is None:
+                force_unit = fu
+            elif fu != force_unit:
+                continue
+        pairs.append((w, partner))
+    if not pairs:
+        raise ValueError(
+            f"{machine}/{point}: no hit has a force block with the same timestamp "
+            f"(within {PAIR_TOLERANCE_S * 1e3:g} ms) and sample rate."
+        )
+    n = min(min(w.samples.size for w, _ in pairs),
+            min((f.samples.size for _, f in pairs if f is not None), default=10**12))
+    resp = np.stack([units.convert(w.samples[:n], w.unit, unit) for w, _ in pairs])
+    force = (np.stack([f.samples[:n] for _, f in pairs]) if pairs[0][1] is not None else None)
+    test = bump_test(
+        resp, fs, force=force, quantity=units.quantity_of(unit), unit=unit,
+        force_unit=force_unit or "N", band_hz=band_hz,
+    )
+    comparison: tuple[ModeShift, ...] = ()
+    if stored is not None and stored.modes:
+        comparison = compare_modes(
+            stored.modes, [m.frequency_hz for m in test.modes], tolerance_pct=tolerance_pct
+        )
+    return PointResult(machine, point, test, comparison, len(pairs), len(waves) - len(pairs))
+
+
+def _json_safe(value: Any) -> Any:
+    if isinstance(value, float):
+        return value if math.isfinite(value) else None
+    if isinstance(value, dict):
+        return {k: _json_safe(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_json_safe(v) for v in value]
+    return value
+
+
+def result_json(r: PointResult) -> dict[str, Any]:
+    """The ``bumptest --json`` object of one measurement point (docs/modes.md)."""
+    t = r.test
+    return _json_safe({
+        "machine": r.machine,
+        "point": r.point,
+        "hits": r.hits_used,
+        "hits_skipped": r.hits_skipped,
+        "kind": t.frf.kind,
+        "unit": t.frf.unit,
+        "resolution_hz": t.frf.resolution_hz,
+        "band_hz": list(t.band_hz),
+        "modes": [m.to_json() for m in t.modes],
+        "comparison": [c.to_json() for c in r.comparison],
+    })
+
+
+def _f(v: float | None, spec: str) -> str:
+    return "-" if v is None or not math.isfinite(v) else format(v, spec)
+
+
+def print_table(r: PointResult) -> None:
+    t = r.test
+    click.echo(
+        f"{r.machine}/{r.point}: {r.hits_used} hit(s), {t.frf.kind} ({t.frf.unit}), "
+        f"resolution {t.frf.resolution_hz:.3g} Hz, band {t.band_hz[0]:.4g}-{t.band_hz[1]:.4g} Hz"
+    )
+    if not t.modes:
+        click.echo("  no mode found in the band.")
+    else:
+        click.echo(
+            f"  {'#':>2} {'f Hz':>9} {'zeta -3dB':>9} {'zeta decr':>9} {'zeta fit':>15} "
+            f"{'AF API684':>9} {'1/(2zeta)':>9} {'margin below/above %':>20} {'coh':>5}"
+        )
+    for i, m in enumerate(t.modes, 1):
+        fit = "-" if m.fit is None else f"{m.fit.damping_ratio:.4f}+-{m.fit.damping_ratio_std:.4f}"
+        req = m.required_margin_pct()
+        reqs = "-" if req is None else f"{req[0]:.1f} / {req[1]:.1f}"
+        click.echo(
+            f"  {i:>2} {m.frequency_hz:9.3f} {_f(m.damping_ratio_half_power, '.4f'):>9} "
+            f"{_f(m.damping_ratio_decrement, '.4f'):>9} {fit:>15} "
+            f"{_f(m.amplification_factor, '.1f'):>9} "
+            f"{_f(m.amplification_factor_from_damping, '.1f'):>9} {reqs:>20} "
+            f"{_f(m.coherence, '.3f'):>5}"
+        )
+    for c in r.comparison:
+        if c.status == "not_found":
+            click.echo(f"  stored mode {c.mode!r} at {c.stored_hz:.3f} Hz: not found in this test.")
+        else:
+            click.echo(
+                f"  stored mode {c.mode!r} at {c.stored_hz:.3f} Hz -> {c.identified_hz:.3f} Hz: "
+                f"{c.shift_pct:+.1f} % ({c.status}, tolerance {c.tolerance_pct:g} %)"
+            )
+
+
+def check_file(file: Path) -> int:
+    if not file.is_file():
+        raise click.UsageError(f"stream file {str(file)!r} does not exist or is not a file.")
+    try:
+        return count_lines(file)
+    except OSError as exc:
+        raise click.ClickException(
+            f"cannot read stream file {str(file)!r}: {exc.strerror}."
+        ) from exc
+
+
+def _results(
+    hits: dict[tuple[str, str], list[Waveform]],
+    forces: dict[str, list[tuple[Waveform, str]]],
+    registry: Registry | None,
+    band: tuple[float, float] | None,
+    tolerance: float,
+    outcome: Outcome,
+) -> Iterator[PointResult]:
+    known = registry.by_id() if registry is not None else {}
+    for (m_id, p_id), waves in sorted(hits.items()):
+        try:
+            yield analyse_point(
+                m_id, p_id, waves, forces.get(m_id, []), band_hz=band,
+                stored=known.get(m_id), tolerance_pct=tolerance,
+            )
+        except ValueError as exc:
+            outcome.reject("analysis_refused", str(exc))
+
+
+@click.command("bumptest")
+@click.argument("file", type=click.Path(dir_okay=False, path_type=Path))
+@click.option("--machines", "machines_file", default=None,
+              type=click.Path(dir_okay=False, path_type=Path),
+              help="Machine registry (TOML): validates the file and gives the stored modes "
+                   "to compare with.")
+@click.option("--machine", "machine_id", default=None,
+              help="Only this machine of the file.")
+@click.option("--band", nargs=2, type=float, default=None, metavar="LO HI",
+              help="Search band for modes, Hz.")
+@click.option("--force-point", default=None, metavar="POINT",
+              help="Point id whose waveforms are the hammer force (unit N, kN or lbf).")
+@click.option("--tolerance", "tolerance_pct", type=float, default=DEFAULT_SHIFT_TOLERANCE_PCT,
+              show_default=True, help="Mode shift tolerance, percent of the stored frequency.")
+@click.option("--json", "as_json", is_flag=True, help="One JSON object per measurement point.")
+@click.option("--prefix", default=DEFAULT_PREFIX, show_default=True, help="MQTT topic prefix.")
+def bumptest(file: Path, machines_file: Path | None, machine_id: str | None,
+             band: tuple[float, float] | None, force_point: str | None, tolerance_pct: float,
+             as_json: bool, prefix: str) -> None:
+    """Identify natural frequencies, damping (half-power and logarithmic decrement) and
+    amplification factors from the impact-test hits in stream FILE (.jsonl)."""
+    total = check_file(file)
+    registry = _open_registry(machines_file)
+    if band is not None and not (0 <= band[0] < band[1] and all(map(math.isfinite, band))):
+        raise click.UsageError(f"--band must be two frequencies LO < HI in Hz, got {band!r}.")
+    if not (math.isfinite(tolerance_pct) and 0 < tolerance_pct < 100):
+        raise click.UsageError(f"--tolerance must lie between 0 and 100 %, got {tolerance_pct!r}.")
+    if registry is not None and machine_id is not None:
+        try:
+            registry.machine(machine_id)
+        except KeyError:
+            raise click.UsageError(
+                f"machine {machine_id!r} is not in the registry {str(machines_file)!r}."
+            ) from None
+    outcome = Outcome()
+    with click.progressbar(length=total, label="reading hits", file=sys.stderr) as bar:
+        hits, forces, _ = read_hits(
+            file, registry, prefix=prefix, force_point=force_point, machine_id=machine_id,
+            outcome=outcome, on_line=lambda: bar.update(1),
+        )
+    if not hits:
+        outcome.report("waveforms accepted")
+        who = f" of machine {machine_id!r}" if machine_id else ""
+        raise click.ClickException(f"stream file {str(file)!r} holds no response waveform{who}.")
+    for r in _results(hits, forces, registry, band, tolerance_pct, outcome):
+        if as_json:
+            click.echo(json.dumps(result_json(r), separators=(",", ":"), allow_nan=False))
+        else:
+            print_table(r)
+    outcome.report("waveforms accepted")

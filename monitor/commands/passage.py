@@ -1,0 +1,230 @@
+"""``whirlwatch passage FILE``: resonance passages in a run-up or coast-down stream.
+
+Every waveform of the machine goes through the same analysis as ``whirlwatch analyse``
+(speed from the speed stream, or estimated from the spectrum); the 1x amplitude of each
+point against speed is the Bode plot's data, in which :func:`monitor.modes.find_passages`
+finds the critical speeds, their amplification factors (API 684) and, when the
+waveforms carry a once-per-revolution reference, the phase. The passages are compared
+with the stored modes and turned into drive skip bands, next to the skip bands of the
+stored modes.
+
+Stream files carry no once-per-revolution pulses, so the phase columns stay empty here;
+the API (:func:`monitor.modes.order_point` with ``reference_s``) gives phase when a
+reference exists.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import math
+import sys
+from collections import defaultdict
+from pathlib import Path
+from typing import Any
+
+import click
+import numpy as np
+
+from monitor.analysis import ReadingAnalysis
+from monitor.commands.analyse import _Outcome, analyse_stream
+from monitor.commands.bumptest import _json_safe, _open_registry, check_file
+from monitor.modes import (
+    DEFAULT_SHIFT_TOLERANCE_PCT,
+    BodeData,
+    ModeShift,
+    Passage,
+    SkipBand,
+    bode_data,
+    compare_modes,
+    find_passages,
+    machine_skip_bands,
+)
+from monitor.registry import Machine
+
+AMPLITUDES = ("velocity", "displacement", "native")
+
+
+@dataclasses.dataclass(frozen=True)
+class PointPassages:
+    machine: str
+    point: str
+    bode: BodeData
+    passages: tuple[Passage, ...]
+    comparison: tuple[ModeShift, ...]
+    skip_identified: tuple[SkipBand, ...]
+
+
+def _amplitude(a: ReadingAnalysis, kind: str) -> tuple[float, float | None, str] | None:
+    one = a.order(1.0)
+    if one is None:
+        return None
+    if kind == "velocity":
+        return one.velocity_mm_s, one.phase_deg, "mm/s"
+    if kind == "displacement":
+        # x = v / omega; um from mm/s
+        return one.velocity_mm_s / (2 * math.pi * one.frequency_hz) * 1e3, one.phase_deg, "um"
+    return one.amplitude, one.phase_deg, a.spectrum.unit
+
+
+def point_passages(
+    machine: Machine, point: str, analyses: list[ReadingAnalysis], *, amplitude: str,
+    min_speed_hz: float, tolerance_pct: float, prominence: float,
+) -> PointPassages | None:
+    rows = [(a.speed_hz, *v) for a in analyses
+            if a.speed_hz >= min_speed_hz and (v := _amplitude(a, amplitude)) is not None]
+    if len(rows) < 5:
+        return None
+    speed = np.array([r[0] for r in rows])
+    amp = np.array([r[1] for r in rows])
+    phases = [r[2] for r in rows]
+    phase = None if any(p is None for p in phases) else np.array(phases, dtype=float)
+    bode = bode_data(speed, amp, phase, unit=rows[0][3])
+    passages = find_passages(bode, prominence=prominence)
+    identified = [p.as_mode(f"{point} passage {i}") for i, p in enumerate(passages, 1)]
+    comparison = compare_modes(
+        machine.modes, [p.frequency_hz for p in passages], tolerance_pct=tolerance_pct
+    ) if machine.modes else ()
+    return PointPassages(machine.id, point, bode, passages, comparison,
+                         machine_skip_bands(machine, identified))
+
+
+def _bands_text(bands: tuple[SkipBand, ...]) -> str:
+    if not bands:
+        return "none"
+    return ", ".join(f"{b.low_rpm:.0f}-{b.high_rpm:.0f} r/min ({' '.join(b.causes)})"
+                     for b in bands)
+
+
+def _f(v: float | None, spec: str) -> str:
+    return "-" if v is None or not math.isfinite(v) else format(v, spec)
+
+
+def print_table(r: PointPassages) -> None:
+    b = r.bode
+    click.echo(
+        f"{r.machine}/{r.point}: {b.direction}, {b.speed_hz.size} points, "
+        f"{b.speed_rpm.min():.0f}-{b.speed_rpm.max():.0f} r/min, 1x amplitude in {b.unit} peak"
+    )
+    if not r.passages:
+        click.echo("  no resonance passage found.")
+    else:
+        click.echo(f"  {'#':>2} {'Nc r/min':>9} {'Nc Hz':>8} {'peak':>10} {'N1-N2 r/min':>15} "
+                   f"{'AF':>6} {'zeta':>7} {'phase@Nc':>9} {'dphase':>7}")
+    for i, p in enumerate(r.passages, 1):
+        hp = ("-" if p.half_power_speeds_hz is None else
+              f"{p.half_power_speeds_hz[0] * 60:.0f}-{p.half_power_speeds_hz[1] * 60:.0f}")
+        click.echo(
+            f"  {i:>2} {p.critical_speed_rpm:9.1f} {p.critical_speed_hz:8.3f} "
+            f"{p.peak_amplitude:10.4g} {hp:>15} {_f(p.amplification_factor, '.1f'):>6} "
+            f"{_f(p.damping_ratio, '.4f'):>7} {_f(p.phase_at_peak_deg, '.1f'):>9} "
+            f"{_f(p.phase_change_deg, '.1f'):>7}"
+        )
+    for c in r.comparison:
+        if c.status == "not_found":
+            click.echo(f"  stored mode {c.mode!r} at {c.stored_hz:.3f} Hz: no passage near it.")
+        else:
+            click.echo(
+                f"  stored mode {c.mode!r} at {c.stored_hz:.3f} Hz -> {c.identified_hz:.3f} Hz: "
+                f"{c.shift_pct:+.1f} % ({c.status}, tolerance {c.tolerance_pct:g} %)"
+            )
+    click.echo(f"  skip bands from these passages: {_bands_text(r.skip_identified)}")
+
+
+def result_json(r: PointPassages, stored_bands: tuple[SkipBand, ...]) -> dict[str, Any]:
+    """The ``passage --json`` object of one measurement point (docs/modes.md)."""
+    return _json_safe({
+        "machine": r.machine,
+        "point": r.point,
+        "direction": r.bode.direction,
+        "passages": [p.to_json() for p in r.passages],
+        "comparison": [c.to_json() for c in r.comparison],
+        "skip_bands": {
+            "stored_modes": [b.to_json() for b in stored_bands],
+            "identified": [b.to_json() for b in r.skip_identified],
+        },
+        "bode": r.bode.to_json(),
+    })
+
+
+@click.command("passage")
+@click.argument("file", type=click.Path(dir_okay=False, path_type=Path))
+@click.option("--machines", "machines_file", required=True,
+              type=click.Path(dir_okay=False, path_type=Path),
+              help="Machine registry (TOML) with the machine's points, modes and orders.")
+@click.option("--machine", "machine_id", required=True, help="Machine id to analyse.")
+@click.option("--amplitude", type=click.Choice(AMPLITUDES), default="velocity",
+              show_default=True,
+              help="1x amplitude used: velocity (mm/s peak), displacement (um peak) or the "
+                   "sensor's own unit.")
+@click.option("--min-speed", "min_speed_rpm", type=float, default=None,
+              help="Ignore readings below this speed, r/min (default: the machine's minimum "
+                   "operating speed / 2).")
+@click.option("--prominence", type=float, default=0.3, show_default=True,
+              help="A passage's peak must stand out by this fraction of the largest 1x.")
+@click.option("--tolerance", "tolerance_pct", type=float, default=DEFAULT_SHIFT_TOLERANCE_PCT,
+              show_default=True, help="Mode shift tolerance, percent of the stored frequency.")
+@click.option("--json", "as_json", is_flag=True, help="One JSON object per measurement point.")
+@click.option("--prefix", default="whirlwatch", show_default=True, help="MQTT topic prefix.")
+def passage(file: Path, machines_file: Path, machine_id: str, amplitude: str,
+            min_speed_rpm: float | None, prominence: float, tolerance_pct: float,
+            as_json: bool, prefix: str) -> None:
+    """Find the resonance passages (critical speeds, amplification factors, phase) in the
+    run-up or coast-down stream FILE (.jsonl), with drive skip bands."""
+    total = check_file(file)
+    registry = _open_registry(machines_file)
+    assert registry is not None
+    try:
+        machine = registry.machine(machine_id)
+    except KeyError:
+        raise click.UsageError(
+            f"machine {machine_id!r} is not in the registry {str(machines_file)!r}."
+        ) from None
+    if not (math.isfinite(tolerance_pct) and 0 < tolerance_pct < 100):
+        raise click.UsageError(f"--tolerance must lie between 0 and 100 %, got {tolerance_pct!r}.")
+    if not (math.isfinite(prominence) and 0 < prominence < 1):
+        raise click.UsageError(f"--prominence must lie between 0 and 1, got {prominence!r}.")
+    if min_speed_rpm is not None and not (math.isfinite(min_speed_rpm) and min_speed_rpm >= 0):
+        raise click.UsageError(f"--min-speed must be a speed >= 0 in r/min, got {min_speed_rpm!r}.")
+    min_hz = (machine.speed_range_rpm[0] / 2 if min_speed_rpm is None else min_speed_rpm) / 60.0
+    outcome = _Outcome()
+    by_point: dict[str, list[ReadingAnalysis]] = defaultdict(list)
+    last = 0
+    with click.progressbar(length=total, label="analysing", file=sys.stderr) as bar:
+        for a in analyse_stream(file, registry, prefix=prefix, outcome=outcome):
+            if a.machine == machine_id:
+                by_point[a.point].append(a)
+            bar.update(outcome.seen - last)
+            last = outcome.seen
+        bar.update(total - last)
+    if not by_point:
+        raise click.ClickException(
+            f"stream file {str(file)!r} holds no waveform of machine {machine_id!r} that "
+            "could be analysed."
+        )
+    stored_bands = machine_skip_bands(machine)
+    found = 0
+    for point in sorted(by_point):
+        try:
+            r = point_passages(machine, point, by_point[point], amplitude=amplitude,
+                               min_speed_hz=min_hz, tolerance_pct=tolerance_pct,
+                               prominence=prominence)
+        except ValueError as exc:
+            click.echo(f"{machine_id}/{point}: skipped, {exc}", err=True)
+            continue
+        if r is None:
+            click.echo(f"{machine_id}/{point}: fewer than 5 readings above "
+                       f"{min_hz * 60:.0f} r/min; no passage analysis.", err=True)
+            continue
+        found += 1
+        if as_json:
+            click.echo(json.dumps(result_json(r, stored_bands), separators=(",", ":"),
+                                  allow_nan=False))
+        else:
+            print_table(r)
+    if not as_json:
+        click.echo(f"skip bands from the stored modes: {_bands_text(stored_bands)}")
+    n_rej = sum(outcome.rejected.values())
+    click.echo(f"{outcome.analyses} waveforms analysed, {n_rej} messages rejected.", err=True)
+    for reason, count in sorted(outcome.rejected.items()):
+        click.echo(f"  rejected {count} x {reason}: e.g. {outcome.examples[reason]}", err=True)
