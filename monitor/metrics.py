@@ -51,6 +51,10 @@ class ServiceMetrics:
             "whirlwatch_alarm_transitions", "Alarm transitions published, by name.", ["transition"],
             registry=r,
         )
+        self.batch_size = Histogram(
+            "whirlwatch_batch_size", "Messages committed together in one transaction.",
+            buckets=(1, 2, 4, 8, 16, 32, 64), registry=r,
+        )
         self.db_retries = Counter("whirlwatch_db_retries", "Database transactions retried.", registry=r)
         self.publish_failures = Counter(
             "whirlwatch_publish_failures", "Status or alarm publications that failed.", registry=r

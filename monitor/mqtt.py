@@ -10,8 +10,9 @@ at-least-once delivery with bounded memory (docs/mqtt.md is the contract):
   broker stops sending once ``receive_maximum`` messages are unacknowledged, so a slow
   consumer holds back the broker, not our memory. It reconnects with back-off and
   subscribes again on every connection.
-- :class:`Publisher` publishes the retained machine status and the alarm events at QoS 1
-  and waits for the broker's acknowledgement.
+- :class:`Publisher` publishes the retained machine status and the alarm events at QoS 1,
+  either waiting for the broker's acknowledgement or handing them to paho's bounded
+  outbound queue (sent and resent until acknowledged) so the caller does not wait.
 
 Exceptions::
 
@@ -299,6 +300,8 @@ class MessageSource:
         self._subscribed = threading.Event()
         self._worker: threading.Thread | None = None
         self._handler: Callable[[InboundMessage], None] | None = None
+        self._batch_handler: Callable[[list[InboundMessage]], None] | None = None
+        self._max_batch = 1
         self.last_error: str | None = None
         self._client = _make_client(
             settings, settings.client_id, manual_ack=True, persistent=True
@@ -380,7 +383,7 @@ class MessageSource:
     # -- worker thread
 
     def _work(self) -> None:
-        assert self._handler is not None
+        assert self._handler is not None or self._batch_handler is not None
         while True:
             try:
                 item = self._queue.get(timeout=0.05)
@@ -388,11 +391,26 @@ class MessageSource:
                 if self._stopping.is_set():
                     return
                 continue
+            if self._batch_handler is None:
+                try:
+                    self._handler(item)  # type: ignore[misc]
+                except Exception:
+                    self.stats.handler_errors += 1
+                    log.exception("handler failed on %s; left unacknowledged", item.topic)
+                continue
+            # Group commit: take what is already waiting, never wait for more, so a lone
+            # message is handled at once and a backlog is handled max_batch at a time.
+            batch = [item]
+            while len(batch) < self._max_batch:
+                try:
+                    batch.append(self._queue.get_nowait())
+                except queue.Empty:
+                    break
             try:
-                self._handler(item)
+                self._batch_handler(batch)
             except Exception:
                 self.stats.handler_errors += 1
-                log.exception("handler failed on %s; left unacknowledged", item.topic)
+                log.exception("handler failed on %d messages; left unacknowledged", len(batch))
 
     # -- public
 
@@ -401,6 +419,23 @@ class MessageSource:
         if self._worker is not None:
             raise MqttError("this MessageSource was already started.")
         self._handler = handler
+        self._worker = threading.Thread(target=self._work, name="mqtt-worker", daemon=True)
+        self._worker.start()
+        _connect_async(self._client, self.settings, persistent=True)
+        self._client.loop_start()
+
+    def start_batches(
+        self, handler: Callable[[list[InboundMessage]], None], max_batch: int = 32
+    ) -> None:
+        """Like :meth:`start`, but ``handler`` gets the messages already waiting in the
+        hand-off queue together (at most ``max_batch``, at least one, in arrival order), so
+        the consumer can commit them in one transaction and then acknowledge them all."""
+        if isinstance(max_batch, bool) or not isinstance(max_batch, int) or max_batch < 1:
+            raise MqttConfigError(f"max_batch must be a whole number >= 1, got {max_batch!r}.")
+        if self._worker is not None:
+            raise MqttError("this MessageSource was already started.")
+        self._batch_handler = handler
+        self._max_batch = max_batch
         self._worker = threading.Thread(target=self._work, name="mqtt-worker", daemon=True)
         self._worker.start()
         _connect_async(self._client, self.settings, persistent=True)
@@ -459,6 +494,9 @@ class Publisher:
     subscribes to nothing, so there is no session worth keeping.
     """
 
+    #: Most messages waiting in paho's outbound queue (not yet acknowledged by the broker).
+    MAX_QUEUED = 10_000
+
     def __init__(self, settings: MqttSettings) -> None:
         self.settings = settings
         self._connected = threading.Event()
@@ -467,6 +505,10 @@ class Publisher:
         )
         self._client.on_connect = self._on_connect
         self._client.on_disconnect = self._on_disconnect
+        # Bounded: while the broker is away at most this many messages wait in memory.
+        self._client.max_queued_messages_set(self.MAX_QUEUED)
+        self._pending: list[paho.MQTTMessageInfo] = []
+        self._pending_lock = threading.Lock()
 
     def _on_connect(self, _c: paho.Client, _u: Any, _f: Any, reason: Any, _p: Any) -> None:
         if not reason.is_failure:
@@ -483,10 +525,23 @@ class Publisher:
             raise MqttError(f"no connection to the broker at {self.settings.url} within {timeout_s:g} s.")
 
     def publish(
-        self, topic: str, payload: bytes, *, retain: bool = False, timeout_s: float = 10.0
+        self, topic: str, payload: bytes, *, retain: bool = False, timeout_s: float = 10.0,
+        wait: bool = True,
     ) -> None:
-        """Publish at QoS 1 and wait for the broker's PUBACK (:class:`MqttError` if none)."""
+        """Publish at QoS 1; with ``wait``, wait for the broker's PUBACK (:class:`MqttError`
+        if none). Without it the message goes to paho's outbound queue (sent, and resent
+        after a reconnect, until acknowledged; :meth:`flush` waits for them);
+        :class:`MqttError` only when that queue is full."""
         info = self._client.publish(topic, payload, qos=1, retain=retain)
+        if info.rc == paho.MQTT_ERR_QUEUE_SIZE:
+            raise MqttError(
+                f"publishing to {topic!r} failed: {self.MAX_QUEUED} messages already wait for the broker."
+            )
+        if not wait:
+            with self._pending_lock:
+                self._pending = [i for i in self._pending if not i.is_published()]
+                self._pending.append(info)
+            return
         try:
             info.wait_for_publish(timeout_s)
         except (ValueError, RuntimeError) as exc:
@@ -494,19 +549,36 @@ class Publisher:
         if not info.is_published():
             raise MqttError(f"the broker did not acknowledge the message on {topic!r} within {timeout_s:g} s.")
 
-    def publish_status(self, machine: str, status: Mapping[str, Any]) -> None:
+    def flush(self, timeout_s: float = 5.0) -> bool:
+        """Wait until every message published without waiting is acknowledged; True if
+        all were within ``timeout_s`` seconds."""
+        deadline = time.monotonic() + timeout_s
+        while True:
+            with self._pending_lock:
+                self._pending = [i for i in self._pending if not i.is_published()]
+                left = len(self._pending)
+            if not left:
+                return True
+            if time.monotonic() >= deadline:
+                return False
+            time.sleep(0.01)
+
+    def publish_status(self, machine: str, status: Mapping[str, Any], *, wait: bool = True) -> None:
         """Replace the retained status of ``machine`` on ``{prefix}/{machine}/status``."""
-        self.publish(self.settings.status_topic(machine), _json(status), retain=True)
+        self.publish(self.settings.status_topic(machine), _json(status), retain=True, wait=wait)
 
     def clear_status(self, machine: str) -> None:
         """Remove the retained status (an empty retained message deletes it)."""
         self.publish(self.settings.status_topic(machine), b"", retain=True)
 
-    def publish_alarm(self, machine: str, event: Mapping[str, Any]) -> None:
+    def publish_alarm(self, machine: str, event: Mapping[str, Any], *, wait: bool = True) -> None:
         """Publish one alarm transition on ``{prefix}/{machine}/alarms`` (not retained)."""
-        self.publish(self.settings.alarms_topic(machine), _json(event))
+        self.publish(self.settings.alarms_topic(machine), _json(event), wait=wait)
 
-    def stop(self) -> None:
+    def stop(self, flush_s: float = 5.0) -> None:
+        """Send what is still queued (up to ``flush_s`` seconds), then disconnect."""
+        if self._connected.is_set():
+            self.flush(flush_s)
         self._client.disconnect()
         self._client.loop_stop()
 

@@ -40,7 +40,7 @@ from typing import Any
 from sqlalchemy import func, select
 
 from monitor.alarms import Transition, severity_rank
-from monitor.analysis import analyse_waveform
+from monitor.analysis import ReadingAnalysis, analyse_waveform
 from monitor.config import Settings
 from monitor.detection import MachineEvaluator, ReadingEvaluation
 from monitor.ingest import SPEED_STREAM, IngestLimits, Rejected, RejectionCounter, decode_message
@@ -55,19 +55,37 @@ from monitor.store import (
     export_registry,
     import_registry,
     record_transitions,
-    save_detector_state,
-    write_reading,
-    write_speed_reading,
 )
-from monitor.store.models import Alarm, DetectorState, Measurement, utcnow
+from monitor.store.models import (
+    Alarm,
+    DetectorState,
+    Measurement,
+    SpectrumSnapshot,
+    SpeedReadingRow,
+    utcnow,
+)
 from monitor.store.queries import alarm_as_json, alarm_counts_by_state
-from monitor.store.writes import insert_ignore, jsonable, to_datetime
+from monitor.store.writes import (
+    existing_measurements,
+    existing_speed_readings,
+    insert_ignore,
+    insert_many_ignore,
+    jsonable,
+    measurement_values,
+    save_detector_states,
+    snapshot_rows,
+    snapshot_times,
+    to_datetime,
+)
 
 log = logging.getLogger("whirlwatch.service")
 
 #: Back-off of database retries, s (doubling up to the maximum).
 DB_RETRY_MIN_S = 0.2
 DB_RETRY_MAX_S = 10.0
+
+#: Most messages taken from the hand-off queue into one transaction (group commit).
+MAX_BATCH = 32
 
 
 class ServiceError(RuntimeError):
@@ -118,6 +136,36 @@ class Outcome:
     reason: str | None = None
     events: list[dict[str, Any]] = field(default_factory=list)
     status: dict[str, Any] | None = None
+
+
+@dataclass
+class _Item:
+    """One message on its way through a batch."""
+
+    topic: str
+    payload: bytes
+    reading: Waveform | SpeedReading | None = None
+    rejection: Rejected | None = None
+    analysis: ReadingAnalysis | None = None
+    evaluation: ReadingEvaluation | None = None
+    transitions: list[Transition] = field(default_factory=list)
+    outcome: Outcome | None = None
+
+
+class _Raced(Exception):
+    """A reading appeared in the store between the existence check and the insert."""
+
+
+def _wkey(w: Any) -> tuple[str, str, dt.datetime]:
+    return (w.machine, w.point, to_datetime(w.ts))
+
+
+def _skey(r: Any) -> tuple[str, dt.datetime]:
+    return (r.machine, to_datetime(r.ts))
+
+
+def _evaluation_json(evaluation: ReadingEvaluation) -> Any:
+    return jsonable(evaluation)
 
 
 @dataclass
@@ -186,11 +234,15 @@ class Service:
         clock: Callable[[], float] | None = None,
         client_id: str | None = None,
         stale_check_s: float = 30.0,
+        max_batch: int = MAX_BATCH,
     ) -> None:
         self.settings = settings
         self.limits = limits or IngestLimits()
         self.clock = clock or time.time
         self.stale_check_s = stale_check_s
+        if isinstance(max_batch, bool) or not isinstance(max_batch, int) or max_batch < 1:
+            raise ValueError(f"max_batch must be a whole number of messages >= 1, got {max_batch!r}.")
+        self.max_batch = max_batch
         self.mqtt = mqtt_settings(settings, client_id)
         self.prefix = settings.broker.topic_prefix
         self.rejections = RejectionCounter(60.0)
@@ -247,49 +299,78 @@ class Service:
 
     # -- detector state
 
-    def _take_state(self, s: Any, machine: str) -> tuple[MachineEvaluator, int]:
-        """Lock (PostgreSQL) and read the stored state; reload the evaluator if it moved on."""
-        stmt = select(DetectorState).where(DetectorState.machine_id == machine)
+    def _take_states(self, s: Any, machines: list[str]) -> dict[str, MachineEvaluator]:
+        """Lock (PostgreSQL, in machine order so two processes cannot deadlock) and check
+        the stored state versions of ``machines`` in one query; reload an evaluator only
+        when another process moved its state on."""
+        if not machines:
+            return {}
+        version = DetectorState.state["version"].as_integer()
+        stmt = select(DetectorState.machine_id, version).where(
+            DetectorState.machine_id.in_(machines)).order_by(DetectorState.machine_id)
         if self._pg:
             stmt = stmt.with_for_update()
-        row = s.execute(stmt).scalar_one_or_none()
-        stored = row.state if row is not None else None
-        version = int(stored.get("version", 0)) if isinstance(stored, dict) else 0
-        if self._versions.get(machine) != version:
-            spec = self.registry.machine(machine)
-            if isinstance(stored, dict) and "evaluator" in stored:
-                self._evaluators[machine] = MachineEvaluator.restore(spec, stored["evaluator"])
-            else:
-                self._evaluators[machine] = MachineEvaluator(spec)
-            self._versions[machine] = version
-        return self._evaluators[machine], version
+        stored = {m: int(v or 0) for m, v in s.execute(stmt).all()}
+        for machine in machines:
+            v = stored.get(machine, 0)
+            if self._versions.get(machine) != v:
+                self._reload(s, machine, v)
+        return {m: self._evaluators[m] for m in machines}
 
-    def _sync_acks(self, s: Any, machine: str, ev: MachineEvaluator) -> list[Transition]:
-        """Acknowledgements made in the dashboard, applied to the detector (and returned
-        for publishing; the dashboard has stored them already)."""
-        active = {a.id: a for a in ev.engine.active() if a.state == "active"}
+    def _reload(self, s: Any, machine: str, version: int) -> None:
+        state = s.execute(
+            select(DetectorState.state).where(DetectorState.machine_id == machine)
+        ).scalar_one_or_none()
+        spec = self.registry.machine(machine)
+        if isinstance(state, dict) and "evaluator" in state:
+            self._evaluators[machine] = MachineEvaluator.restore(spec, state["evaluator"])
+        else:
+            self._evaluators[machine] = MachineEvaluator(spec)
+        self._versions[machine] = version
+
+    def _sync_acks(self, s: Any, evaluators: dict[str, MachineEvaluator]) -> dict[str, list[Transition]]:
+        """Acknowledgements made in the dashboard, applied to the detectors (and returned
+        per machine for publishing; the dashboard has stored them already). One query."""
+        active = {
+            (m, a.id): ev for m, ev in evaluators.items() for a in ev.engine.active() if a.state == "active"
+        }
         if not active:
-            return []
+            return {}
         rows = s.execute(
-            select(Alarm.ref, Alarm.acknowledged_by, Alarm.acknowledged_at, Alarm.ack_comment).where(
-                Alarm.machine_id == machine,
+            select(Alarm.machine_id, Alarm.ref, Alarm.acknowledged_by, Alarm.acknowledged_at, Alarm.ack_comment)
+            .where(
+                Alarm.machine_id.in_(sorted({m for m, _ in active})),
                 Alarm.state == "acknowledged",
-                Alarm.ref.in_(list(active)),
+                Alarm.ref.in_(sorted({r for _, r in active})),
             )
+            .order_by(Alarm.id)
         ).all()
-        out = []
-        for ref, user, at, comment in rows:
+        out: dict[str, list[Transition]] = {}
+        for machine, ref, user, at, comment in rows:
+            ev = active.pop((machine, ref), None)
+            if ev is None:
+                continue
             when = at.timestamp() if at is not None else self.clock()
-            out.append(ev.acknowledge(ref, user or "unknown", comment or "", when))
+            out.setdefault(machine, []).append(ev.acknowledge(ref, user or "unknown", comment or "", when))
         return out
 
-    def _save_state(self, s: Any, machine: str, ev: MachineEvaluator, version: int, ts: float) -> None:
-        save_detector_state(s, machine, {"version": version + 1, "evaluator": ev.snapshot()}, ts)
+    def _save_states(self, s: Any, touched: dict[str, float]) -> None:
+        """The new state of every machine the batch touched (``{machine: latest ts}``),
+        one row each; the version moves on by one per batch."""
+        save_detector_states(s, {
+            m: ({"version": (self._versions.get(m) or 0) + 1, "evaluator": self._evaluators[m].snapshot()}, ts)
+            for m, ts in touched.items()
+        })
 
-    def _forget(self, machine: str | None) -> None:
-        """After a failed transaction the in-memory evaluator may be ahead of the database."""
-        if machine is not None:
-            self._versions[machine] = None
+    def _saved(self, touched: Any) -> None:
+        """After the commit: the cached versions match what was written."""
+        for m in touched:
+            self._versions[m] = (self._versions.get(m) or 0) + 1
+
+    def _forget(self, machines: Any) -> None:
+        """After a failed transaction the in-memory evaluators may be ahead of the database."""
+        for m in machines:
+            self._versions[m] = None
 
     # -- messages
 
@@ -298,45 +379,92 @@ class Service:
 
     def handle(self, topic: str, payload: bytes) -> Outcome:
         """Process one message up to the commit (no MQTT); see the module docstring."""
+        return self.handle_batch([(topic, payload)])[0]
+
+    def handle_batch(self, messages: list[tuple[str, bytes]]) -> list[Outcome]:
+        """Process messages up to one commit for all of them (no MQTT), in order.
+
+        Decode and analyse each, then one transaction: one query finds the redeliveries,
+        the detector states of the machines touched are taken once, every new reading is
+        evaluated in arrival order, the rows go in with multi-row inserts and each
+        machine's detector state is written once. Returns one :class:`Outcome` per
+        message; a machine's status rides on the last of its outcomes that has one.
+        """
         t0 = time.perf_counter()
         now = self.clock()
-        try:
-            reading = decode_message(
-                topic, payload, self.registry, prefix=self.prefix, now=now,
-                last_ts=self._last, limits=self.limits,
-            )
-        except Rejected as rej:
-            self._reject(topic, payload, rej)
-            self.metrics.observe(time.perf_counter() - t0)
-            return Outcome("rejected", reason=rej.reason)
-        out = self._waveform(reading) if isinstance(reading, Waveform) else self._speed(reading)
-        self.metrics.messages_in.labels(kind=out.kind).inc()
-        self.metrics.observe(time.perf_counter() - t0)
-        return out
+        pending: dict[tuple[str, str], float] = {}
 
-    def _reject(self, topic: str, payload: bytes, rej: Rejected) -> None:
+        def last(machine: str, point: str) -> float | None:
+            a, b = self._last_ts.get((machine, point)), pending.get((machine, point))
+            return b if a is None else a if b is None else max(a, b)
+
+        items: list[_Item] = []
+        for topic, payload in messages:
+            item = _Item(topic, payload)
+            try:
+                item.reading = decode_message(
+                    topic, payload, self.registry, prefix=self.prefix, now=now,
+                    last_ts=last, limits=self.limits,
+                )
+            except Rejected as rej:
+                item.rejection = rej
+                self._count_rejection(topic, rej)
+            else:
+                r = item.reading
+                key = (r.machine, r.point if isinstance(r, Waveform) else SPEED_STREAM)
+                pending[key] = max(r.ts, pending.get(key, r.ts))
+                if isinstance(r, Waveform):
+                    item.analysis = self._analyse(r)
+            items.append(item)
+
+        machines = sorted({it.reading.machine for it in items if it.reading is not None})
+        self._retry(lambda: self._commit(items), machines)
+        for it in items:
+            r, out = it.reading, it.outcome
+            assert out is not None
+            if r is not None and out.kind in ("waveform", "speed"):
+                key = (r.machine, r.point if isinstance(r, Waveform) else SPEED_STREAM)
+                self._last_ts[key] = max(r.ts, self._last_ts.get(key, 0.0))
+            self.metrics.messages_in.labels(kind=out.kind).inc()
+        share = (time.perf_counter() - t0) / max(1, len(items))
+        for _ in items:
+            self.metrics.observe(share)
+        self.metrics.batch_size.observe(len(items))
+        return [it.outcome for it in items if it.outcome is not None]
+
+    def _count_rejection(self, topic: str, rej: Rejected) -> None:
         self.metrics.rejected.labels(reason=rej.reason).inc()
-        self.metrics.messages_in.labels(kind="rejected").inc()
         if self.rejections.record(rej.reason, time.monotonic()):
             log.warning(
                 "message rejected",
                 extra={"reason": rej.reason, "detail": rej.detail, "topic": topic[:200],
                        "suppressed_since_last": self.rejections.take_suppressed(rej.reason)},
             )
-        self._retry(lambda: self._dead_letter(topic, payload, rej), None)
 
-    def _dead_letter(self, topic: str, payload: bytes, rej: Rejected) -> None:
-        with self.store.transaction() as s:
-            add_dead_letter(s, topic=topic, reason=rej.reason, detail=rej.detail, payload=payload)
+    def _analyse(self, w: Waveform) -> ReadingAnalysis | None:
+        machine = self.registry.machine(w.machine)
+        try:
+            return analyse_waveform(w, machine, machine.point(w.point))
+        except Exception as exc:
+            # A waveform the analysis cannot use (a dead sensor's flat zeros, too short for
+            # the speed range, ...): health checks still run on it and sensor-fault alarms
+            # follow; one bad block must not stall the stream behind it.
+            log.warning("analysis failed", extra={
+                "machine": w.machine, "point": w.point, "error": f"{type(exc).__name__}: {exc}"[:200]})
+            return None
 
-    def _retry(self, work: Callable[[], Any], machine: str | None) -> Any:
+    def _retry(self, work: Callable[[], Any], machines: list[str]) -> Any:
         """Run a database unit of work until it commits; back off between attempts."""
         delay = DB_RETRY_MIN_S
         while True:
             try:
                 return work()
+            except _Raced:
+                # Another process stored one of these readings after our existence check:
+                # run again; the check now sees it.
+                self._forget(machines)
             except Exception as exc:
-                self._forget(machine)
+                self._forget(machines)
                 if self._stop.is_set():
                     raise
                 log.warning("database work failed; retrying", extra={"error": str(exc)[:300], "retry_in_s": delay})
@@ -344,95 +472,144 @@ class Service:
                 time.sleep(delay)
                 delay = min(delay * 2, DB_RETRY_MAX_S)
 
-    def _waveform(self, w: Waveform) -> Outcome:
-        machine = self.registry.machine(w.machine)
-        point = machine.point(w.point)
-        analysis = None
-        try:
-            analysis = analyse_waveform(w, machine, point)
-        except Exception as exc:
-            # A waveform the analysis cannot use (a dead sensor's flat zeros, too short for
-            # the speed range, ...): health checks still run on it and sensor-fault alarms
-            # follow; one bad block must not stall the stream behind it.
-            log.warning("analysis failed", extra={
-                "machine": w.machine, "point": w.point, "error": f"{type(exc).__name__}: {exc}"[:200]})
+    def _commit(self, items: list[_Item]) -> None:
+        """One transaction for a batch (see :meth:`handle_batch`); sets each item's outcome."""
+        touched: dict[str, float] = {}
+        with self._lock, self.store.transaction() as s:
+            stored_at = utcnow()
+            for it in items:
+                it.outcome = None
+                if it.rejection is not None:
+                    add_dead_letter(s, topic=it.topic, reason=it.rejection.reason,
+                                    detail=it.rejection.detail, payload=it.payload)
+                    it.outcome = Outcome("rejected", reason=it.rejection.reason)
+            waves = [it for it in items if isinstance(it.reading, Waveform)]
+            speeds = [it for it in items if isinstance(it.reading, SpeedReading)]
+            have_w = existing_measurements(s, [_wkey(it.reading) for it in waves])
+            have_s = existing_speed_readings(s, [_skey(it.reading) for it in speeds])
+            fresh: list[_Item] = []
+            for it in items:
+                r = it.reading
+                if r is None:
+                    continue
+                key = _wkey(r) if isinstance(r, Waveform) else _skey(r)
+                seen = have_w if isinstance(r, Waveform) else have_s
+                if key in seen:  # a redelivery (or a repeat within the batch)
+                    it.outcome = Outcome("duplicate", machine=r.machine)
+                    continue
+                seen.add(key)  # type: ignore[arg-type]
+                fresh.append(it)
+            if not fresh:
+                return
+            for it in fresh:
+                assert it.reading is not None
+                touched[it.reading.machine] = max(it.reading.ts, touched.get(it.reading.machine, it.reading.ts))
+            evaluators = self._take_states(s, sorted(touched))
+            acks = self._sync_acks(s, evaluators)
+            cadence = self.settings.spectra.snapshot_interval_s or None
+            kept = self._kept_snapshots(s, [it for it in fresh if it.analysis is not None], cadence)
 
-        def work() -> Outcome:
-            with self._lock, self.store.transaction() as s:
-                exists = s.execute(
-                    select(Measurement.id).where(
-                        Measurement.machine_id == w.machine,
-                        Measurement.point_id == w.point,
-                        Measurement.ts == to_datetime(w.ts),
-                    ).limit(1)
-                ).scalar_one_or_none()
-                if exists is not None:
-                    return Outcome("duplicate", machine=w.machine)
-                ev, version = self._take_state(s, w.machine)
-                acks = self._sync_acks(s, w.machine, ev)
-                evaluation = ev.evaluate(analysis, w)
-                if analysis is None:
-                    # No spectrum to keep, but the reading still gets its one row (health
-                    # flags and evaluation), so it is stored exactly once like any other.
-                    mid = insert_ignore(s, Measurement.__table__, {
-                        "machine_id": w.machine, "point_id": w.point, "ts": to_datetime(w.ts),
-                        "reading_id": w.reading_id, "speed_hz": w.speed_hz,
-                        "speed_source": "measured" if w.speed_hz is not None else None,
-                        "orders": [], "peaks": [], "zone": None,
-                        "health": jsonable(evaluation.health), "evaluation": jsonable(evaluation),
-                        "stored_at": utcnow(),
-                    }, ("machine_id", "point_id", "ts"))
-                    if mid is None:
-                        self._forget(w.machine)
-                        return Outcome("duplicate", machine=w.machine)
-                    ids = record_transitions(s, evaluation.transitions)
-                    self._save_state(s, w.machine, ev, version, w.ts)
-                    events = self._events(s, evaluation.transitions, ids, acks)
-                    self._versions[w.machine] = version + 1
-                    return Outcome("waveform", machine=w.machine, events=events,
-                                   status=self._status(s, w.machine, ev, evaluation))
-                result = write_reading(
-                    s, analysis, zone=evaluation.zone, health=evaluation.health,
-                    evaluation=evaluation, transitions=evaluation.transitions,
-                    snapshot_interval_s=self.settings.spectra.snapshot_interval_s or None,
-                    detector_state={"version": version + 1, "evaluator": ev.snapshot()},
-                )
-                if not result.inserted:
-                    # Another process stored it between our check and our insert.
-                    self._forget(w.machine)
-                    return Outcome("duplicate", machine=w.machine)
-                events = self._events(s, evaluation.transitions, list(result.alarm_ids), acks)
-                status = self._status(s, w.machine, ev, evaluation)
-                self._versions[w.machine] = version + 1
-                return Outcome("waveform", machine=w.machine, events=events, status=status)
+            meas_rows: list[dict[str, Any]] = []
+            bare_rows: list[dict[str, Any]] = []
+            speed_rows: list[dict[str, Any]] = []
+            snap_rows: list[dict[str, Any]] = []
+            for it in fresh:
+                r = it.reading
+                ev = evaluators[r.machine]
+                if isinstance(r, Waveform):
+                    a = it.analysis
+                    evaluation = ev.evaluate(a, r)
+                    it.transitions = list(evaluation.transitions)
+                    it.evaluation = evaluation
+                    self._update_view(r.machine, evaluation)
+                    if a is None:
+                        # No spectrum to keep, but the reading still gets its one row
+                        # (health flags and evaluation), so it is stored exactly once.
+                        bare_rows.append({
+                            "machine_id": r.machine, "point_id": r.point, "ts": to_datetime(r.ts),
+                            "reading_id": r.reading_id, "speed_hz": r.speed_hz,
+                            "speed_source": "measured" if r.speed_hz is not None else None,
+                            "orders": [], "peaks": [], "zone": None,
+                            "health": jsonable(evaluation.health), "evaluation": _evaluation_json(evaluation),
+                            "stored_at": stored_at,
+                        })
+                        continue
+                    meas_rows.append(measurement_values(
+                        a, zone=evaluation.zone, health=evaluation.health, evaluation=None, stored_at=stored_at))
+                    meas_rows[-1]["evaluation"] = _evaluation_json(evaluation)
+                    if it.transitions:
+                        # Kept below as the transitions' evidence; counts for the cadence.
+                        kept.setdefault((a.machine, a.point), []).append(to_datetime(a.ts))
+                    elif self._snapshot_due(kept, a, cadence):
+                        snap_rows.extend(snapshot_rows(a))
+                else:
+                    speed_rows.append({"machine_id": r.machine, "ts": to_datetime(r.ts), "speed_hz": float(r.speed_hz)})
+                    it.transitions = ev.observe_speed(r) if r.speed_hz > 0 else []
+                    view = self._views[r.machine]
+                    view.speed_hz, view.speed_source = r.speed_hz, "measured"
 
-        out = self._retry(work, w.machine)
-        if out.kind == "waveform":
-            self._last_ts[(w.machine, w.point)] = max(w.ts, self._last_ts.get((w.machine, w.point), 0.0))
-        return out
+            mkeys = ("machine_id", "point_id", "ts")
+            new = insert_many_ignore(s, Measurement.__table__, meas_rows, mkeys)
+            new += insert_many_ignore(s, Measurement.__table__, bare_rows, mkeys)
+            new += insert_many_ignore(s, SpeedReadingRow.__table__, speed_rows, ("machine_id", "ts"))
+            if new != len(meas_rows) + len(bare_rows) + len(speed_rows):
+                raise _Raced
+            insert_many_ignore(s, SpectrumSnapshot.__table__, snap_rows, ("machine_id", "point_id", "ts", "kind"))
 
-    def _speed(self, r: SpeedReading) -> Outcome:
-        def work() -> Outcome:
-            with self._lock, self.store.transaction() as s:
-                if not write_speed_reading(s, r):
-                    return Outcome("duplicate", machine=r.machine)
-                ev, version = self._take_state(s, r.machine)
-                acks = self._sync_acks(s, r.machine, ev)
-                trans = ev.observe_speed(r) if r.speed_hz > 0 else []
-                ids = record_transitions(s, trans)
-                self._save_state(s, r.machine, ev, version, r.ts)
-                view = self._views[r.machine]
-                view.speed_hz, view.speed_source = r.speed_hz, "measured"
-                events = self._events(s, trans, ids, acks)
-                status = self._status(s, r.machine, ev, None) if events else None
-                self._versions[r.machine] = version + 1
-                return Outcome("speed", machine=r.machine, events=events, status=status)
+            # Alarm transitions in arrival order; each waveform's spectra are its evidence.
+            acks_sent: set[str] = set()
+            for it in fresh:
+                r = it.reading
+                trans = it.transitions
+                ids: list[int] = []
+                if trans:
+                    evidence_id = None
+                    if isinstance(r, Waveform) and it.analysis is not None:
+                        for row in snapshot_rows(it.analysis, evidence=True):
+                            sid = insert_ignore(s, SpectrumSnapshot.__table__, row,
+                                                ("machine_id", "point_id", "ts", "kind"))
+                            if sid is not None and (row["kind"] == "velocity" or evidence_id is None):
+                                evidence_id = sid
+                    ids = record_transitions(s, trans, spectrum_snapshot_id=evidence_id)
+                mine = [] if r.machine in acks_sent else acks.get(r.machine, [])
+                acks_sent.add(r.machine)
+                kind = "waveform" if isinstance(r, Waveform) else "speed"
+                it.outcome = Outcome(kind, machine=r.machine,
+                                     events=self._events(s, trans, ids, mine) if trans or mine else [])
+            self._save_states(s, touched)
 
-        out = self._retry(work, r.machine)
-        if out.kind == "speed":
-            key = (r.machine, SPEED_STREAM)
-            self._last_ts[key] = max(r.ts, self._last_ts.get(key, 0.0))
-        return out
+            # The retained status once per machine: after its last waveform, or after its
+            # last event when only speed readings came.
+            for machine in touched:
+                mine_out = [it for it in fresh if it.reading.machine == machine]
+                carrier = next((it for it in reversed(mine_out)
+                                if it.outcome.kind == "waveform" or it.outcome.events), None)
+                if carrier is not None:
+                    carrier.outcome.status = self._status(machine, evaluators[machine])
+        self._saved(touched)
+
+    def _kept_snapshots(self, s: Any, waves: list[_Item], cadence: float | None
+                        ) -> dict[tuple[str, str], list[dt.datetime]]:
+        if cadence is None or not waves:
+            return {}
+        tss = [to_datetime(it.reading.ts) for it in waves]
+        return snapshot_times(s, [(it.reading.machine, it.reading.point) for it in waves],
+                              min(tss) - dt.timedelta(seconds=cadence), max(tss))
+
+    @staticmethod
+    def _snapshot_due(kept: dict[tuple[str, str], list[dt.datetime]], a: ReadingAnalysis,
+                      cadence: float | None) -> bool:
+        """No spectrum of the point kept in the ``cadence`` seconds up to this reading
+        (counting those kept earlier in the batch); records this one when due."""
+        if cadence is None:
+            return False
+        ts = to_datetime(a.ts)
+        since = ts - dt.timedelta(seconds=cadence)
+        times = kept.setdefault((a.machine, a.point), [])
+        if any(since < t <= ts for t in times):
+            return False
+        times.append(ts)
+        return True
 
     # -- outbound payloads
 
@@ -462,21 +639,25 @@ class Service:
             "ref": t.alarm_id,
         }
 
-    def _status(
-        self, s: Any, machine: str, ev: MachineEvaluator, evaluation: ReadingEvaluation | None
-    ) -> dict[str, Any]:
+    def _update_view(self, machine: str, evaluation: ReadingEvaluation) -> None:
         view = self._views[machine]
-        if evaluation is not None:
-            view.ts = max(view.ts or 0.0, evaluation.ts)
-            view.zones[evaluation.point] = evaluation.zone
-            if evaluation.speed_hz is not None:
-                view.speed_hz = evaluation.speed_hz
-            if evaluation.margins:
-                m = min(evaluation.margins, key=lambda r: r.margin_pct - r.required_pct)
-                view.nearest = {
-                    "subject": m.subject, "margin_pct": m.margin_pct,
-                    "required_pct": m.required_pct, "status": m.status,
-                }
+        view.ts = max(view.ts or 0.0, evaluation.ts)
+        view.zones[evaluation.point] = evaluation.zone
+        if evaluation.speed_hz is not None:
+            view.speed_hz = evaluation.speed_hz
+        nearest = getattr(evaluation, "nearest_margin", None)
+        if callable(nearest):
+            m = nearest()
+        else:
+            m = min(evaluation.margins, key=lambda r: r.margin_pct - r.required_pct, default=None)
+        if m is not None:
+            view.nearest = {
+                "subject": m.subject, "margin_pct": m.margin_pct,
+                "required_pct": m.required_pct, "status": m.status,
+            }
+
+    def _status(self, machine: str, ev: MachineEvaluator) -> dict[str, Any]:
+        view = self._views[machine]
         active = ev.engine.active()
         worst = max((a.severity for a in active), key=severity_rank, default=None)
         zones = [z for z in view.zones.values() if z]
@@ -496,28 +677,31 @@ class Service:
         }
 
     def publish(self, out: Outcome) -> None:
-        """Send an outcome's alarm events and status (after the commit and the ack)."""
+        """Hand an outcome's alarm events and status to the publisher (after the commit
+        and the ack). QoS 1 without waiting for the broker: paho's outbound queue sends
+        and resends them, so the worker never waits on a PUBACK."""
         if self.publisher is None or out.machine is None:
             return
         try:
             if self.settings.alarms.publish:
                 for e in out.events:
-                    self.publisher.publish_alarm(out.machine, e)
+                    self.publisher.publish_alarm(out.machine, e, wait=False)
             if self.settings.alarms.publish_status and out.status is not None:
-                self.publisher.publish_status(out.machine, out.status)
+                self.publisher.publish_status(out.machine, out.status, wait=False)
         except MqttError as exc:
             self.metrics.publish_failures.inc()
             log.warning("publishing failed", extra={"machine": out.machine, "error": str(exc)})
 
     # -- MQTT glue
 
-    def _on_message(self, msg: InboundMessage) -> None:
-        self.metrics.in_flight.set(self.source.stats.in_flight if self.source else 0)
-        out = self.handle(msg.topic, msg.payload)
+    def _on_batch(self, msgs: list[InboundMessage]) -> None:
         assert self.source is not None
-        self.source.ack(msg)
-        self.publish(out)
-        if out.events:
+        self.metrics.in_flight.set(self.source.stats.in_flight)
+        outs = self.handle_batch([(m.topic, m.payload) for m in msgs])
+        for m in msgs:
+            self.source.ack(m)
+        for out in outs:
+            self.publish(out)
             for e in out.events:
                 self.metrics.transitions.labels(transition=str(e.get("transition"))).inc()
                 log.info("alarm transition", extra={
@@ -532,7 +716,7 @@ class Service:
         except MqttError as exc:
             raise ServiceError(str(exc)) from exc
         self.source = MessageSource(self.mqtt)
-        self.source.start(self._on_message)
+        self.source.start_batches(self._on_batch, self.max_batch)
         if not self.source.wait_subscribed(wait_s):
             raise ServiceError(
                 f"no subscription at the broker {self.mqtt.url} within {wait_s:g} s"
@@ -610,18 +794,18 @@ class Service:
         for m in self.registry.machines:
             def work(mid: str = m.id) -> Outcome | None:
                 with self._lock, self.store.transaction() as s:
-                    ev, version = self._take_state(s, mid)
+                    ev = self._take_states(s, [mid])[mid]
                     trans = ev.check_stale(now)
                     if not trans:
                         return None
                     ids = record_transitions(s, trans)
-                    self._save_state(s, mid, ev, version, now)
+                    self._save_states(s, {mid: now})
                     out = Outcome("stale", machine=mid, events=self._events(s, trans, ids, []),
-                                  status=self._status(s, mid, ev, None))
-                    self._versions[mid] = version + 1
-                    return out
+                                  status=self._status(mid, ev))
+                self._saved([mid])
+                return out
 
-            o = self._retry(work, m.id)
+            o = self._retry(work, [m.id])
             if o is not None:
                 outs.append(o)
                 self.publish(o)

@@ -229,7 +229,8 @@ def analyse_point(
     n = min(min(w.samples.size for w, _ in pairs),
             min((f.samples.size for _, f in pairs if f is not None), default=10**12))
     resp = np.stack([units.convert(w.samples[:n], w.unit, unit) for w, _ in pairs])
-    force = (np.stack([f.samples[:n] for _, f in pairs]) if pairs[0][1] is not None else None)
+    partners = [f for _, f in pairs if f is not None]
+    force = np.stack([f.samples[:n] for f in partners]) if partners else None
     test = bump_test(
         resp, fs, force=force, quantity=units.quantity_of(unit), unit=unit,
         force_unit=force_unit or "N", band_hz=band_hz,
@@ -287,7 +288,7 @@ def print_table(r: PointResult) -> None:
             f"{'AF API684':>9} {'1/(2zeta)':>9} {'margin below/above %':>20} {'coh':>5}"
         )
     for i, m in enumerate(t.modes, 1):
-        fit = "-" if m.fit is None else f"{m.fit.damping_ratio:.4f}+-{m.fit.damping_ratio_std:.4f}"
+        fit = "-" if m.fit is None else f"{m.fit.damping_ratio:.4f}+-{m.fit.damping_ratio_std:.1g}"
         req = m.required_margin_pct()
         reqs = "-" if req is None else f"{req[0]:.1f} / {req[1]:.1f}"
         click.echo(

@@ -213,6 +213,127 @@ def snapshot_due(
     return n == 0
 
 
+def measurement_values(
+    analysis: ReadingAnalysis,
+    *,
+    zone: str | None = None,
+    health: Any = None,
+    evaluation: Any = None,
+    stored_at: dt.datetime | None = None,
+) -> dict[str, Any]:
+    """The ``measurements`` row of one analysed reading (see :func:`write_reading`)."""
+    return {
+        "machine_id": analysis.machine,
+        "point_id": analysis.point,
+        "ts": to_datetime(analysis.ts),
+        "reading_id": analysis.reading_id,
+        "speed_hz": _num(analysis.speed_hz),
+        "speed_source": analysis.speed_source,
+        "speed_uncertainty_hz": _num(analysis.speed_uncertainty_hz),
+        "overall_velocity_mm_s_rms": _num(analysis.overall_velocity_mm_s_rms),
+        "one_x_normalised": _num(analysis.one_x_normalised),
+        "orders": _orders_json(analysis),
+        "peaks": [{"hz": _num(p.hz), "amplitude": _num(p.amplitude)} for p in analysis.peaks],
+        "zone": zone,
+        "health": jsonable(health),
+        "evaluation": jsonable(evaluation),
+        "stored_at": stored_at or utcnow(),
+    }
+
+
+def snapshot_rows(
+    analysis: ReadingAnalysis, *, evidence: bool = False
+) -> list[dict[str, Any]]:
+    """The ``spectrum_snapshots`` rows (native, then velocity) of one analysed reading."""
+    ts = to_datetime(analysis.ts)
+    return [
+        _snapshot_values(analysis, ts, kind, spectrum, evidence)
+        for kind, spectrum in (("native", analysis.spectrum), ("velocity", analysis.velocity_spectrum))
+        if spectrum is not None
+    ]
+
+
+#: Rows per multi-row INSERT; keeps the bound parameters far below SQLite's limit.
+_ROWS_PER_INSERT = 200
+
+
+def insert_many_ignore(
+    session: Session, table: Table, rows: Sequence[Mapping[str, Any]], keys: Sequence[str]
+) -> int:
+    """Multi-row ``INSERT ... ON CONFLICT (keys) DO NOTHING``; returns how many rows were
+    new (rows whose key already exists are skipped). All rows must have the same columns."""
+    if not rows:
+        return 0
+    dialect = session.get_bind().dialect.name
+    ins_mod = postgresql if dialect == "postgresql" else sqlite
+    inserted = 0
+    for i in range(0, len(rows), _ROWS_PER_INSERT):
+        stmt = (
+            ins_mod.insert(table)
+            .values(list(rows[i : i + _ROWS_PER_INSERT]))
+            .on_conflict_do_nothing(index_elements=list(keys))
+            .returning(table.c.id)
+        )
+        inserted += len(session.execute(stmt).all())
+    return inserted
+
+
+def existing_measurements(
+    session: Session, keys: Iterable[tuple[str, str, dt.datetime]]
+) -> set[tuple[str, str, dt.datetime]]:
+    """Which of the (machine, point, ts) keys are already stored, in one query."""
+    want = set(keys)
+    if not want:
+        return set()
+    rows = session.execute(
+        select(Measurement.machine_id, Measurement.point_id, Measurement.ts).where(
+            Measurement.ts.in_(sorted({k[2] for k in want})),
+            Measurement.machine_id.in_(sorted({k[0] for k in want})),
+        )
+    ).all()
+    return {(m, p, t) for m, p, t in rows} & want
+
+
+def existing_speed_readings(
+    session: Session, keys: Iterable[tuple[str, dt.datetime]]
+) -> set[tuple[str, dt.datetime]]:
+    """Which of the (machine, ts) speed-reading keys are already stored, in one query."""
+    want = set(keys)
+    if not want:
+        return set()
+    rows = session.execute(
+        select(SpeedReadingRow.machine_id, SpeedReadingRow.ts).where(
+            SpeedReadingRow.ts.in_(sorted({k[1] for k in want})),
+            SpeedReadingRow.machine_id.in_(sorted({k[0] for k in want})),
+        )
+    ).all()
+    return {(m, t) for m, t in rows} & want
+
+
+def snapshot_times(
+    session: Session, points: Iterable[tuple[str, str]], since: dt.datetime, until: dt.datetime
+) -> dict[tuple[str, str], list[dt.datetime]]:
+    """Instants of the spectrum snapshots kept per (machine, point) in ``(since, until]``,
+    in one query (the batch form of :func:`snapshot_due`)."""
+    pairs = set(points)
+    out: dict[tuple[str, str], list[dt.datetime]] = {p: [] for p in pairs}
+    if not pairs:
+        return out
+    rows = session.execute(
+        select(SpectrumSnapshot.machine_id, SpectrumSnapshot.point_id, SpectrumSnapshot.ts)
+        .where(
+            SpectrumSnapshot.machine_id.in_(sorted({p[0] for p in pairs})),
+            SpectrumSnapshot.ts > since,
+            SpectrumSnapshot.ts <= until,
+        )
+        .distinct()
+    ).all()
+    for m, p, t in rows:
+        if (m, p) in out:
+            out[(m, p)].append(t)
+    return out
+
+
 def write_reading(
     session: Session,
     analysis: ReadingAnalysis,
@@ -248,23 +369,7 @@ def write_reading(
         The machine's detector state after this reading (JSON-able), for restarts.
     """
     ts = to_datetime(analysis.ts)
-    values = {
-        "machine_id": analysis.machine,
-        "point_id": analysis.point,
-        "ts": ts,
-        "reading_id": analysis.reading_id,
-        "speed_hz": _num(analysis.speed_hz),
-        "speed_source": analysis.speed_source,
-        "speed_uncertainty_hz": _num(analysis.speed_uncertainty_hz),
-        "overall_velocity_mm_s_rms": _num(analysis.overall_velocity_mm_s_rms),
-        "one_x_normalised": _num(analysis.one_x_normalised),
-        "orders": _orders_json(analysis),
-        "peaks": [{"hz": _num(p.hz), "amplitude": _num(p.amplitude)} for p in analysis.peaks],
-        "zone": zone,
-        "health": jsonable(health),
-        "evaluation": jsonable(evaluation),
-        "stored_at": utcnow(),
-    }
+    values = measurement_values(analysis, zone=zone, health=health, evaluation=evaluation)
     mid = insert_ignore(session, Measurement.__table__, values, ("machine_id", "point_id", "ts"))
     if mid is None:
         return ReadingWrite(inserted=False, measurement_id=None)
@@ -527,6 +632,32 @@ def save_detector_state(
         row.ts = when
         row.updated_at = utcnow()
     session.flush()
+
+
+def save_detector_states(
+    session: Session, states: Mapping[str, tuple[Mapping[str, Any], dt.datetime | float | None]]
+) -> None:
+    """Upsert the detector state JSON of several machines (``{machine: (state, ts)}``) with
+    one Core statement each, inside the caller's transaction."""
+    if not states:
+        return
+    dialect = session.get_bind().dialect.name
+    ins_mod = postgresql if dialect == "postgresql" else sqlite
+    table = DetectorState.__table__
+    now = utcnow()
+    for machine in sorted(states):
+        state, ts = states[machine]
+        stmt = ins_mod.insert(table).values(
+            machine_id=machine,
+            state=jsonable(state),
+            ts=to_datetime(ts) if ts is not None else None,
+            updated_at=now,
+        )
+        stmt = stmt.on_conflict_do_update(
+            index_elements=["machine_id"],
+            set_={"state": stmt.excluded.state, "ts": stmt.excluded.ts, "updated_at": stmt.excluded.updated_at},
+        )
+        session.execute(stmt)
 
 
 def add_dead_letter(
