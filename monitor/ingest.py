@@ -31,6 +31,11 @@ from typing import Any
 
 import numpy as np
 
+try:  # SIMD base64 (~100x faster on an 87 kB block); the standard library otherwise
+    from pybase64 import b64decode as _b64decode
+except ImportError:  # pragma: no cover - pybase64 is a dependency, this is a fallback
+    _b64decode = base64.b64decode
+
 from monitor.readings import SpeedReading, Waveform
 from monitor.registry import QUANTITIES, UNITS_BY_QUANTITY, Registry
 
@@ -305,7 +310,7 @@ def _samples_from_f32(value: Any, limits: IngestLimits) -> np.ndarray:
     if len(value) // 4 * 3 // 4 > limits.max_samples:
         _check_count(len(value) // 4 * 3 // 4, limits)
     try:
-        raw = base64.b64decode(value, validate=True)
+        raw = _b64decode(value, validate=True)
     except (binascii.Error, ValueError):
         raise Rejected("samples_f32_base64", "'samples_f32' is not valid base64.") from None
     if len(raw) % 4:

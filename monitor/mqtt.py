@@ -24,10 +24,12 @@ Exceptions::
 
 from __future__ import annotations
 
+import contextlib
 import json
 import logging
 import queue
 import re
+import socket
 import threading
 import time
 from collections.abc import Callable, Mapping
@@ -223,7 +225,15 @@ def _make_client(
     if address.tls:
         client.tls_set(ca_certs=settings.ca_file, certfile=settings.cert_file, keyfile=settings.key_file)
     client.reconnect_delay_set(settings.reconnect_min_s, settings.reconnect_max_s)  # type: ignore[arg-type]
+    client.on_socket_open = _no_delay
     return client
+
+
+def _no_delay(_c: paho.Client, _u: Any, sock: Any) -> None:
+    """paho leaves Nagle's algorithm on: a small packet (a PUBACK, the tail of a payload)
+    then waits for the peer's delayed ACK, some 40 ms on Linux, on every message."""
+    with contextlib.suppress(OSError, AttributeError):  # not a TCP socket
+        sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
 
 
 def _connect_async(client: paho.Client, settings: MqttSettings, *, persistent: bool) -> None:
@@ -507,8 +517,11 @@ class Publisher:
         self._client.on_disconnect = self._on_disconnect
         # Bounded: while the broker is away at most this many messages wait in memory.
         self._client.max_queued_messages_set(self.MAX_QUEUED)
-        self._pending: list[paho.MQTTMessageInfo] = []
+        # Packet ids published without waiting and not yet acknowledged (for flush).
+        self._pending: set[int] = set()
+        self._early: set[int] = set()
         self._pending_lock = threading.Lock()
+        self._client.on_publish = self._on_publish
 
     def _on_connect(self, _c: paho.Client, _u: Any, _f: Any, reason: Any, _p: Any) -> None:
         if not reason.is_failure:
@@ -516,6 +529,13 @@ class Publisher:
 
     def _on_disconnect(self, _c: paho.Client, _u: Any, _f: Any, _r: Any, _p: Any) -> None:
         self._connected.clear()
+
+    def _on_publish(self, _c: paho.Client, _u: Any, mid: int, _r: Any, _p: Any) -> None:
+        with self._pending_lock:
+            if mid in self._pending:
+                self._pending.discard(mid)
+            elif len(self._early) < self.MAX_QUEUED:
+                self._early.add(mid)
 
     def start(self, timeout_s: float = 10.0) -> None:
         """Connect; raise :class:`MqttError` if not connected within ``timeout_s`` seconds."""
@@ -539,13 +559,18 @@ class Publisher:
             )
         if not wait:
             with self._pending_lock:
-                self._pending = [i for i in self._pending if not i.is_published()]
-                self._pending.append(info)
+                # The PUBACK may already have come (on_publish ran first).
+                if info.mid in self._early:
+                    self._early.discard(info.mid)
+                else:
+                    self._pending.add(info.mid)
             return
         try:
             info.wait_for_publish(timeout_s)
         except (ValueError, RuntimeError) as exc:
             raise MqttError(f"publishing to {topic!r} failed: {exc}.") from exc
+        with self._pending_lock:
+            self._early.discard(info.mid)
         if not info.is_published():
             raise MqttError(f"the broker did not acknowledge the message on {topic!r} within {timeout_s:g} s.")
 
@@ -555,7 +580,6 @@ class Publisher:
         deadline = time.monotonic() + timeout_s
         while True:
             with self._pending_lock:
-                self._pending = [i for i in self._pending if not i.is_published()]
                 left = len(self._pending)
             if not left:
                 return True

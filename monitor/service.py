@@ -548,6 +548,10 @@ class Service:
                     view = self._views[r.machine]
                     view.speed_hz, view.speed_source = r.speed_hz, "measured"
 
+            # Stamped as late as possible: stored_at is what publish-to-commit latency uses.
+            stored_at = utcnow()
+            for row in (*meas_rows, *bare_rows):
+                row["stored_at"] = stored_at
             mkeys = ("machine_id", "point_id", "ts")
             new = insert_many_ignore(s, Measurement.__table__, meas_rows, mkeys)
             new += insert_many_ignore(s, Measurement.__table__, bare_rows, mkeys)

@@ -110,11 +110,29 @@ def to_datetime(t: float | int | dt.datetime) -> dt.datetime:
     return dt.datetime(1970, 1, 1, tzinfo=dt.UTC) + dt.timedelta(microseconds=round(t * 1e6))
 
 
+_DATACLASS_FIELDS: dict[type, tuple[str, ...]] = {}
+
+
 def jsonable(obj: Any) -> Any:
     """Turn dataclasses, numpy values, tuples, dates and enums into JSON data.
 
     Non-finite floats become None (JSON has no NaN); mapping keys become strings.
     """
+    # The common plain types first, by exact type: this runs on every stored reading.
+    t = type(obj)
+    if t is float:
+        return obj if math.isfinite(obj) else None
+    if t is str or t is int or t is bool or obj is None:
+        return obj
+    if t is dict:
+        return {k if type(k) is str else str(k): jsonable(v) for k, v in obj.items()}
+    if t is list or t is tuple:
+        return [jsonable(x) for x in obj]
+    names = _DATACLASS_FIELDS.get(t)
+    if names is None and dataclasses.is_dataclass(obj) and not isinstance(obj, type):
+        names = _DATACLASS_FIELDS[t] = tuple(f.name for f in dataclasses.fields(obj))
+    if names is not None:
+        return {n: jsonable(getattr(obj, n)) for n in names}
     if obj is None or isinstance(obj, bool | str | int):
         return obj
     if isinstance(obj, float):
@@ -253,10 +271,6 @@ def snapshot_rows(
     ]
 
 
-#: Rows per multi-row INSERT; keeps the bound parameters far below SQLite's limit.
-_ROWS_PER_INSERT = 200
-
-
 def insert_many_ignore(
     session: Session, table: Table, rows: Sequence[Mapping[str, Any]], keys: Sequence[str]
 ) -> int:
@@ -266,16 +280,14 @@ def insert_many_ignore(
         return 0
     dialect = session.get_bind().dialect.name
     ins_mod = postgresql if dialect == "postgresql" else sqlite
-    inserted = 0
-    for i in range(0, len(rows), _ROWS_PER_INSERT):
-        stmt = (
-            ins_mod.insert(table)
-            .values(list(rows[i : i + _ROWS_PER_INSERT]))
-            .on_conflict_do_nothing(index_elements=list(keys))
-            .returning(table.c.id)
-        )
-        inserted += len(session.execute(stmt).all())
-    return inserted
+    # One statement executed with many parameter sets: SQLAlchemy sends it as batched
+    # multi-row VALUES ("insertmanyvalues") and compiles it once, not once per row count.
+    stmt = (
+        ins_mod.insert(table)
+        .on_conflict_do_nothing(index_elements=list(keys))
+        .returning(table.c.id)
+    )
+    return len(session.execute(stmt, [dict(r) for r in rows]).all())
 
 
 def existing_measurements(
