@@ -10,8 +10,14 @@ from dashboard import queries
 from dashboard.db import db_session
 from dashboard.errors import BadRequest, NotFound
 from dashboard.security import ROLES, current, limiter, require, start_session
-from monitor.store.auth import AuthError, create_user, get_user, verify_password
-from monitor.store.models import ApiToken, User, utcnow
+from monitor.store.auth import (
+    AuthError,
+    create_user,
+    get_user,
+    revoke_api_token_by_id,
+    verify_password,
+)
+from monitor.store.models import ApiToken, User
 
 bp = Blueprint("auth", __name__)
 
@@ -119,11 +125,9 @@ def tokens():
 @require("admin")
 def revoke_token(token_id: int):
     s = db_session()
-    t = s.get(ApiToken, token_id)
-    if t is None:
+    if s.get(ApiToken, token_id) is None:
         raise NotFound(f"No API token with id {token_id}.")
-    if t.revoked_at is None:
-        t.revoked_at = utcnow()
+    if revoke_api_token_by_id(s, token_id):
         s.commit()
     flash("Token revoked.", "ok")
     return redirect(url_for("auth.tokens"))

@@ -68,3 +68,42 @@ def test_bad_registry_file_is_a_usage_error(tmp_path):
     f.write_text('[[machines]]\nid = "m1"\nclass = "group9/rigid"\n')
     r = _run(["machines", "import", str(f), "--database", url])
     assert r.exit_code == 2 and "'class'" in r.output
+
+
+def test_token_use_is_recorded_coarsely_and_revocation_by_id(database_url):
+    from monitor.store.auth import (
+        LAST_USE_RESOLUTION,
+        create_api_token,
+        create_user,
+        revoke_api_token_by_id,
+    )
+
+    assert _run(["db", "upgrade", "--database", database_url]).exit_code == 0
+    store = Store.open(database_url)
+    try:
+        with store.transaction() as s:
+            create_user(s, "cy", "pw-long-enough", "viewer")
+            token = create_api_token(s, "cy")
+        with store.transaction() as s:
+            assert verify_api_token(s, token).name == "cy"
+            first = s.execute(select(ApiToken)).scalar_one().last_used_at
+            assert first is not None
+        with store.transaction() as s:
+            # a second use inside the resolution window writes nothing
+            assert verify_api_token(s, token).name == "cy"
+            assert not s.dirty
+            row = s.execute(select(ApiToken)).scalar_one()
+            assert row.last_used_at == first
+            row.last_used_at = first - 2 * LAST_USE_RESOLUTION
+        with store.transaction() as s:
+            assert verify_api_token(s, token).name == "cy"
+            assert s.execute(select(ApiToken)).scalar_one().last_used_at != first - 2 * LAST_USE_RESOLUTION
+        with store.transaction() as s:
+            token_id = s.execute(select(ApiToken.id)).scalar_one()
+            assert revoke_api_token_by_id(s, token_id) is True
+            assert revoke_api_token_by_id(s, token_id) is False
+            assert revoke_api_token_by_id(s, token_id + 1000) is False
+        with store.transaction() as s:
+            assert verify_api_token(s, token) is None
+    finally:
+        store.close()

@@ -7,6 +7,7 @@ leaked database does not leak usable tokens.
 
 from __future__ import annotations
 
+import datetime as dt
 import hashlib
 import hmac
 import re
@@ -20,6 +21,8 @@ from monitor.store.models import ROLES, ApiToken, User, utcnow
 
 _NAME = re.compile(r"^[A-Za-z0-9_.@-]{1,100}$")
 MIN_PASSWORD_LENGTH = 8
+# Recording every use would turn each API read into a write; minutes are precise enough.
+LAST_USE_RESOLUTION = dt.timedelta(minutes=10)
 
 
 class AuthError(ValueError):
@@ -82,7 +85,7 @@ def create_api_token(session: Session, user_name: str, label: str = "") -> str:
 
 def verify_api_token(session: Session, token: str) -> User | None:
     """The user owning ``token`` when it is known, not revoked and the user not
-    disabled; else None. Records the time of use."""
+    disabled; else None. Records the time of use to within ``LAST_USE_RESOLUTION``."""
     if not token:
         return None
     digest = hash_token(token)
@@ -94,7 +97,12 @@ def verify_api_token(session: Session, token: str) -> User | None:
         return None
     if row.user.disabled:
         return None
-    row.last_used_at = utcnow()
+    now = utcnow()
+    last = row.last_used_at
+    if last is not None and last.tzinfo is None:  # SQLite returns naive UTC
+        last = last.replace(tzinfo=dt.UTC)
+    if last is None or now - last >= LAST_USE_RESOLUTION:
+        row.last_used_at = now
     return row.user
 
 
@@ -103,6 +111,16 @@ def revoke_api_token(session: Session, token: str) -> bool:
     row = session.execute(
         select(ApiToken).where(ApiToken.token_hash == hash_token(token))
     ).scalar_one_or_none()
+    if row is None or row.revoked_at is not None:
+        return False
+    row.revoked_at = utcnow()
+    return True
+
+
+def revoke_api_token_by_id(session: Session, token_id: int) -> bool:
+    """Revoke the token with database id ``token_id`` (admins never see the token text);
+    False when it is unknown or already revoked."""
+    row = session.get(ApiToken, token_id)
     if row is None or row.revoked_at is not None:
         return False
     row.revoked_at = utcnow()
