@@ -34,6 +34,7 @@ from monitor.store.models import (
     User,
     utcnow,
 )
+from monitor.store.queries import alarm_as_json
 from monitor.store.registry_sync import record_mode_change
 from monitor.zones import zone_limits
 
@@ -504,14 +505,7 @@ def decimate_indices(ts: np.ndarray, values: np.ndarray, max_points: int) -> np.
 
 
 def alarm_json(a: Alarm, with_transitions: bool = False) -> dict:
-    d = {
-        "id": a.id, "machine": a.machine_id, "point": a.point_id, "kind": a.kind,
-        "subject": a.subject, "severity": a.severity, "state": a.state,
-        "raised_at": iso(a.raised_at), "cleared_at": iso(a.cleared_at),
-        "acknowledged_by": a.acknowledged_by, "acknowledged_at": iso(a.acknowledged_at),
-        "ack_comment": a.ack_comment, "evidence": a.evidence,
-        "last_transition": a.last_transition, "last_transition_at": iso(a.last_transition_at),
-    }
+    d = alarm_as_json(a)  # one shape for REST and for the MQTT alarm events
     if with_transitions:
         d["transitions"] = [
             {"id": t.id, "transition": t.transition, "severity": t.severity, "state": t.state,

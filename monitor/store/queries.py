@@ -348,7 +348,8 @@ def alarm_transitions(session: Session, alarm_id: int) -> list[AlarmTransitionRo
 
 
 def alarm_as_json(alarm: Alarm) -> dict[str, Any]:
-    """The alarm in the JSON shape of the REST API and the MQTT alarm events."""
+    """The alarm in the JSON shape of the REST API; an MQTT alarm event is this object
+    with the event's own ``transition`` and ``transition_at`` added (monitor.service)."""
 
     def iso(t: dt.datetime | None) -> str | None:
         return t.isoformat().replace("+00:00", "Z") if t else None
@@ -367,8 +368,8 @@ def alarm_as_json(alarm: Alarm) -> dict[str, Any]:
         "acknowledged_at": iso(alarm.acknowledged_at),
         "ack_comment": alarm.ack_comment,
         "evidence": alarm.evidence,
-        "transition": alarm.last_transition,
-        "transition_at": iso(alarm.last_transition_at),
+        "last_transition": alarm.last_transition,
+        "last_transition_at": iso(alarm.last_transition_at),
     }
 
 
