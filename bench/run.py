@@ -48,6 +48,8 @@ def main(argv: list[str] | None = None) -> int:
                 print(json.dumps(row))
                 continue
             line = f"  {row['name']:<58} {row['value']:>12.4g} {row.get('unit', '')}"
+            if "floor" in row:
+                line += f"   floor {row['floor']:.4g} {row.get('unit', '')}"
             if "ratio" in row:
                 line += f"   ratio {row['ratio']:.3g}"
             if "target" in row:

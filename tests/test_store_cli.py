@@ -56,6 +56,18 @@ def test_commands_end_to_end(database_url, tmp_path):
     finally:
         store.close()
 
+    # revoking through the command: the token no longer authenticates
+    r = _run(["token", "revoke", "--token-stdin", "--database", database_url], input=token + "\n")
+    assert r.exit_code == 0, r.output
+    r = _run(["token", "revoke", "--token-stdin", "--database", database_url], input=token + "\n")
+    assert r.exit_code == 2 and "already revoked" in r.output
+    store = Store.open(database_url)
+    try:
+        with store.transaction() as s:
+            assert verify_api_token(s, token) is None
+    finally:
+        store.close()
+
     r = _run(["token", "create", "--user", "nobody", "--database", database_url])
     assert r.exit_code == 2 and "nobody" in r.output
     r = _run(["user", "add", "bo", "--role", "boss", "--database", database_url, "--password-stdin"], input="x\n")

@@ -1,4 +1,4 @@
-"""``whirlwatch user add`` and ``whirlwatch token create``: logins and API tokens."""
+"""``whirlwatch user add`` and ``whirlwatch token create|revoke``: logins and API tokens."""
 
 from __future__ import annotations
 
@@ -70,3 +70,30 @@ def create_cmd(
     finally:
         store.close()
     click.echo(text)
+
+
+@token.command("revoke")
+@click.option(
+    "--token-stdin",
+    is_flag=True,
+    required=True,
+    help="Read the token to revoke from the first line of standard input.",
+)
+@database_options
+def revoke_cmd(token_stdin: bool, database_url: str | None, config_file: str | None) -> None:
+    """Revoke an API token read from standard input (never from the command line, where
+    it would land in shell history)."""
+    from monitor.store.auth import revoke_api_token
+
+    text = sys.stdin.readline().strip()
+    if not text:
+        raise click.UsageError("no token on standard input; pipe the token to revoke.")
+    store = open_store(database_url, config_file)
+    try:
+        with store.transaction() as session:
+            revoked = revoke_api_token(session, text)
+    finally:
+        store.close()
+    if not revoked:
+        raise click.UsageError("that token is unknown or already revoked.")
+    click.echo("token revoked", err=True)
