@@ -23,6 +23,8 @@ def test_persistence_before_raise():
     e = AlarmEngine(persistence=3)
     assert _feed(e, [("alert", "alert")] * 2 + [(None, None)] + [("alert", "alert")] * 2) == []
     tr = _feed(e, [("alert", "alert")], t0=10)
+    # definition of persistence (DESIGN.md section 5): raised on the 3rd consecutive reading,
+    # stamped with that reading's time and id (t0 + 0)
     assert [t.name for t in tr] == ["raised"]
     assert tr[0].severity == "alert" and tr[0].ts == 10 and tr[0].reading_id == "r0"
 
@@ -47,7 +49,7 @@ def test_full_lifecycle_and_json_shape():
     assert e.find(aid).state == "acknowledged"
     tr = _feed(e, [(None, None)] * 2, t0=50)
     assert [t.name for t in tr] == ["cleared"]
-    assert e.find(aid).cleared_at == 51
+    assert e.find(aid).cleared_at == 51  # persistence 2: the 2nd clear reading, t0 50 + 1
     js = tr[0].to_json()
     for k in ("id", "machine", "point", "kind", "severity", "state", "raised_at", "cleared_at",
               "acknowledged_by", "evidence"):
@@ -89,6 +91,8 @@ def test_ack_validation():
 
 
 def test_levels_above():
+    # definition of hysteresis (DESIGN.md section 5): (raise, hold) levels; a level is raised
+    # at its limit and held down to limit x (1 - 0.1): 1.9 holds advisory, 3.7 holds alert
     th = {"advisory": 2.0, "alert": 4.0}
     assert levels_above(1.0, th, 0.1) == (None, None)
     assert levels_above(1.9, th, 0.1) == (None, "advisory")

@@ -136,6 +136,7 @@ def test_trends_decimated(client, auth):
     auth.login("vic")
     r = client.get("/api/v1/machines/fan-000/trends?from=0&max_points=10&point=de-h").get_json()
     (p,) = r["points"]
+    # 60: readings_per_point the fixture seeded above (a count, not a measured value)
     assert p["readings_in_range"] == 60 and p["returned"] <= 10
     # 1x, 2x and each configured excitation order (the plant's fans have orders 1, 2, 7).
     assert p["ts"] == sorted(p["ts"]) and list(p["orders"]) == ["1x", "2x", "7x"]
@@ -247,6 +248,7 @@ def test_login_rate_limited(app):
     a = Auth(c)
     tok = a.csrf()
     codes = [c.post("/login", data={"username": "eng", "password": "wrong", "csrf_token": tok}).status_code for _ in range(6)]
+    # 401 Unauthorized (RFC 9110) / 429 Too Many Requests (RFC 6585) after our 5-attempt limit
     assert codes[:5] == [401] * 5 and codes[5] == 429
     # Even the right password is refused while limited.
     assert c.post("/login", data={"username": "eng", "password": PASSWORDS["eng"], "csrf_token": tok}).status_code == 429

@@ -42,6 +42,7 @@ class TestTheilSen:
         t = np.arange(20.0) * 3600.0 + 1.7e9
         v = 2.0 + 1e-5 * (t - t[0])
         tr = theil_sen_trend(t, v)
+        # analytic: the exact line built above; 1e-5 /s x 86400 s/day = 0.864 /day
         assert tr.slope_per_s == pytest.approx(1e-5)
         assert tr.fitted_now == pytest.approx(v[-1])
         assert tr.slope_per_day == pytest.approx(0.864)
@@ -67,6 +68,8 @@ class TestTimeToLimit:
         truth = (limit - (2.0 + rate * t[-1])) / rate
         ttl = time_to_limit(theil_sen_trend(t, v), limit)
         assert ttl is not None
+        # tolerance: 20 %, engineering choice; the noise (0.05 mm/s over 12 days of readings)
+        # moves the Theil-Sen slope by a few percent, so 20 % leaves a wide margin
         assert abs(ttl - truth) <= 0.2 * truth
 
     def test_flat_gives_none(self):
@@ -77,6 +80,7 @@ class TestTimeToLimit:
 
     def test_already_over(self):
         t = np.arange(10.0)
+        # definition: a value already above the limit has no time left
         assert time_to_limit(theil_sen_trend(t, 5.0 + 0.0 * t), 4.5) == 0.0
 
 
@@ -90,17 +94,24 @@ class TestBaseline:
         for v in vals:
             b.add(v, 10.0)
         assert b.ready
+        # reference: numpy.median of all 200 values, wild ones included
         assert b.stats.median == pytest.approx(np.median(vals))
+        # analytic: 0.1 is the sigma of the generated normal values. tolerance: 20 %; the
+        # MAD estimate of sigma from ~200 normal values scatters by about 8 % (efficiency
+        # 37 % of the standard deviation, Hampel 1974, from memory) and the 5 % one-sided
+        # wild readings inflate it a few percent more
         assert b.stats.sigma == pytest.approx(0.1, rel=0.2)
+        # MAD_TO_SIGMA is our constant; it should equal 1 / scipy.stats.norm.ppf(0.75) = 1.4826
+        # (Hampel 1974), which this line does not check
         assert b.stats.sigma == pytest.approx(MAD_TO_SIGMA * b.stats.mad)
-        assert b.ratio(4.0) == pytest.approx(4.0 / b.stats.median)
+        assert b.ratio(4.0) == pytest.approx(4.0 / b.stats.median)  # definition of the ratio
         assert b.speed_hz == 10.0
 
     def test_frozen_after_learning_and_restartable(self):
         b = Baseline(size=3)
         for v in (1.0, 2.0, 3.0):
             b.add(v)
-        assert b.stats.median == 2.0
+        assert b.stats.median == 2.0  # definition: median of 1, 2, 3
         b.add(100.0)
         assert b.stats.median == 2.0 and b.stats.count == 3
         b.restart(ts=5.0)
@@ -129,8 +140,8 @@ def test_trend_window_slides_and_restores():
     assert w.trend() is None
     for i in range(10):
         w.add(float(i), 2.0 * i)
-    assert list(w.ts) == [5.0, 6.0, 7.0, 8.0, 9.0]
-    assert w.trend().slope_per_s == pytest.approx(2.0)
+    assert list(w.ts) == [5.0, 6.0, 7.0, 8.0, 9.0]  # the last 5 of 10 readings
+    assert w.trend().slope_per_s == pytest.approx(2.0)  # analytic: the line v = 2 t
     w.add(3.0, 0.0)  # out-of-order time is ignored
     assert len(w.ts) == 5 and w.ts[-1] == 9.0
     w2 = TrendWindow.restore(w.snapshot())

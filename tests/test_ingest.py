@@ -281,7 +281,7 @@ class TestGoodPayloads:
 
     def test_waveform_speed_and_id(self):
         w = _decode(WAVE, wave(speed_rpm=2970, id="r-0001"))
-        assert w.speed_hz == pytest.approx(49.5, rel=0, abs=1e-12)
+        assert w.speed_hz == pytest.approx(49.5, rel=0, abs=1e-12)  # 2970 r/min / 60 (definition)
         assert w.reading_id == "r-0001"
         assert _decode(WAVE, wave(speed_hz=12.5)).speed_hz == 12.5
         assert _decode(WAVE, wave()).speed_hz is None

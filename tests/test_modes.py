@@ -132,16 +132,22 @@ class TestHalfPower:
         assert m.frequency_hz == pytest.approx(fn * math.sqrt(1 - 2 * zeta**2), rel=1e-4)
         r1, r2 = half_power_ratios(zeta)
         assert m.half_power_hz is not None
+        # textbook half-power points (REFERENCES.md); tolerance: 5e-4, engineering choice
+        # for a noise-free sampled response
         assert m.half_power_hz[0] == pytest.approx(fn * r1, rel=5e-4)
         assert m.half_power_hz[1] == pytest.approx(fn * r2, rel=5e-4)
         # zeta = (f2 - f1) / (2 f_n): the half-power estimate is biased by O(zeta^2);
         # tolerance 1 % of zeta covers it up to zeta = 0.05 (0.5 % there, computed from
         # the r1, r2 formula)
         assert m.damping_ratio_half_power == pytest.approx(zeta, rel=1e-2)
+        # tolerance: 0.5 %, engineering choice: the decrement of a noise-free decay is exact
+        # up to sampling of the peaks
         assert m.damping_ratio_decrement == pytest.approx(zeta, rel=5e-3)
         # API 684 AF = f_n / (f2 - f1) ~ 1 / (2 zeta) for light damping
         assert m.amplification_factor == pytest.approx(1 / (2 * zeta), rel=1e-2)
         assert m.fit is not None
+        # analytic: the fn and zeta of the closed-form impulse response; tolerances
+        # 1e-4 / 1e-3, engineering choice for a noise-free curve fit
         assert m.fit.frequency_hz == pytest.approx(fn, rel=1e-4)
         assert m.fit.damping_ratio == pytest.approx(zeta, rel=1e-3)
         assert m.fit.damping_ratio_std < 0.01 * zeta
@@ -215,6 +221,8 @@ class TestFrequencyResponse:
         (m,) = test.modes
         assert m.coherence is not None and m.coherence > 0.95
         assert m.fit is not None
+        # analytic: FN and ZETA of the simulated system; tolerances 0.2 % / 5 %, engineering
+        # choice for five hits with added force and response noise
         assert m.fit.frequency_hz == pytest.approx(self.FN, rel=2e-3)
         assert m.fit.damping_ratio == pytest.approx(self.ZETA, rel=0.05)
         assert m.decrement_hits == 5
@@ -242,6 +250,8 @@ class TestFrequencyResponse:
             # peak of each receptance at fn sqrt(1 - 2 zeta^2), shifted a little by the
             # other mode: 0.2 %
             assert m.frequency_hz == pytest.approx(fn, rel=2e-3)
+            # analytic: zeta 0.01 of both simulated modes; tolerance: 5 %, engineering choice
+            # for the other mode's skirt overlapping the half-power band
             assert m.damping_ratio_half_power == pytest.approx(0.01, rel=0.05)
             assert m.damping_ratio_decrement == pytest.approx(0.01, rel=0.05)
 
@@ -329,11 +339,12 @@ class TestRunUp:
         assert rev.direction == "coast-down"
         (p,) = modes.find_passages(rev)
         (q,) = modes.find_passages(bode)
+        # definition: the same points in reverse order give the same passage
         assert p.critical_speed_hz == pytest.approx(q.critical_speed_hz, rel=1e-12)
         doc = json.loads(json.dumps(rev.to_json()))
         assert set(doc) == {"order", "unit", "direction", "speed_hz", "speed_rpm",
                             "amplitude", "phase_deg"}
-        assert doc["speed_rpm"][0] == pytest.approx(60 * doc["speed_hz"][0])
+        assert doc["speed_rpm"][0] == pytest.approx(60 * doc["speed_hz"][0])  # 1 Hz = 60 r/min
 
     def test_bad_bode_input(self) -> None:
         with pytest.raises(ValueError, match="speed_hz and amplitude"):
@@ -363,6 +374,7 @@ class TestModeShift:
     def test_compare_assigns_each_peak_once(self) -> None:
         stored = (Mode("a", 10.0), Mode("b", 11.0), Mode("c", 40.0))
         out = modes.compare_modes(stored, [10.9, 10.2])
+        # definition: each stored mode takes the nearest unused peak; (10.2 - 10) / 10 = 2 %
         assert [o.identified_hz for o in out] == [10.2, 10.9, None]
         assert [o.status for o in out] == ["unchanged", "unchanged", "not_found"]
         assert out[0].shift_pct == pytest.approx(2.0)
@@ -410,6 +422,7 @@ class TestSkipBands:
         assert modes.skip_bands([damped], [1], (0, 3000)) == ()
         conf = Mode("c", 20.0, required_margin_pct=10.0)
         (band,) = modes.skip_bands([conf], [1], (0, 3000))
+        # 20 Hz +- 10 % = 18-22 Hz = 1080-1320 r/min (1 Hz = 60 r/min)
         assert (band.low_rpm, band.high_rpm) == (pytest.approx(1080.0), pytest.approx(1320.0))
 
     def test_bad_range(self) -> None:
@@ -466,6 +479,8 @@ class TestBumptestCommand:
         (m,) = doc["modes"]
         # accelerance peak at r = 1 / sqrt(1 - 2 zeta^2), within 1e-3 of f_n (Thomson)
         assert m["frequency_hz"] == pytest.approx(self.FN, rel=1e-3)
+        # analytic: ZETA of the simulated system; tolerance: 2 %, engineering choice for
+        # three hits of a sampled response
         assert m["damping_ratio_half_power"] == pytest.approx(self.ZETA, rel=0.02)
         assert m["damping_ratio_decrement"] == pytest.approx(self.ZETA, rel=0.02)
         assert m["fit"]["damping_ratio"] == pytest.approx(self.ZETA, rel=0.02)
@@ -519,6 +534,8 @@ class TestPassageCommand:
         # the simulated mode is at 15 Hz; velocity of the unbalance response peaks within
         # O(zeta^2) of it; 1.5 % allows for the 0.16 Hz spacing of the readings
         assert p["critical_speed_rpm"] == pytest.approx(900.0, rel=0.015)
+        # API 684 AF ~ 1 / (2 zeta) (REFERENCES.md); tolerance: 15 %, engineering choice:
+        # the half-power width 2 zeta fn = 0.9 Hz spans only about 6 readings 0.16 Hz apart
         assert p["amplification_factor"] == pytest.approx(1 / (2 * 0.03), rel=0.15)
         assert doc["comparison"][0]["status"] == "unchanged"
         # stored mode zeta 0.03 -> AF = 1 / (2 zeta) = 16.67 -> API 684:

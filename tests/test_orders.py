@@ -21,7 +21,10 @@ def test_amplitudes_at_orders():
     out = order_amplitudes(x.astype(np.float32), FS, "g", speed, [7, 1, 2, 2.0])
     assert [o.order for o in out] == [1.0, 2.0, 7.0]
     for o, a in zip(out, (0.4, 0.1, 1.5), strict=True):
+        # analytic: the input amplitudes of the synthesised components; tolerance: 1e-4,
+        # engineering choice for a noise-free float32 record
         assert o.amplitude == pytest.approx(a, rel=1e-4)
+        # definition of an order: order x shaft speed
         assert o.frequency_hz == pytest.approx(o.order * speed)
         # V = A / (2 pi f) with A in m/s^2 (g = 9.80665 m/s^2, CGPM 1901)
         assert o.velocity_mm_s == pytest.approx(
@@ -41,6 +44,9 @@ def test_phase_against_reference_pulse(phi_deg):
     x = 2.0 * np.cos(2 * np.pi * speed * (t - t_ref) - phi)
     x += 0.5 * np.cos(2 * 2 * np.pi * speed * (t - t_ref) - 2 * phi)
     (one, two) = order_amplitudes(x, FS, "mm/s", speed, [1, 2], reference_s=t_ref)
+    # analytic: the lags phi (1x) and 2 phi (2x) built into the synthesised cosines, and the
+    # 1x input amplitude 2.0 (unit mm/s, so velocity is the amplitude itself); tolerance:
+    # 0.05 deg, engineering choice for a noise-free record
     assert (one.phase_deg - phi_deg + 180) % 360 - 180 == pytest.approx(0.0, abs=0.05)
     assert (two.phase_deg - (2 * phi_deg) % 360 + 180) % 360 - 180 == pytest.approx(0.0, abs=0.05)
     assert one.velocity_mm_s == pytest.approx(2.0, rel=1e-4)
@@ -52,6 +58,7 @@ def test_phase_independent_of_which_pulse():
     x = np.cos(2 * np.pi * speed * (t - 0.01) - 1.0)
     p1 = order_amplitudes(x, FS, "g", speed, [1], reference_s=0.01)[0].phase_deg
     p2 = order_amplitudes(x, FS, "g", speed, [1], reference_s=0.01 + 7 / speed)[0].phase_deg
+    # analytic: pulses a whole number of revolutions apart give the same phase
     assert p1 == pytest.approx(p2, abs=1e-6)
 
 

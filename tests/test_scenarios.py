@@ -116,6 +116,8 @@ def test_unbalance_growth_alarms_before_zone_d_with_time_to_limit():
     # v(t) = 1.2 (1 + 0.25 t) mm/s RMS reaches the limit at t* = (limit/1.2 - 1)/0.25 days.
     limit = t.evidence["limit_value"]
     truth = ((limit / 1.2 - 1.0) / growth - days) * DAY
+    # tolerance: 20 %, engineering choice, as in test_growth.py: the trend is fitted on
+    # noisy simulated readings taken early in the growth
     assert ttl == pytest.approx(truth, rel=0.2)
 
 

@@ -48,6 +48,7 @@ class TestAmplitudeSpectrum:
     def test_rms_scaling(self):
         n = 4096
         spec = sp.amplitude_spectrum(sine(n, 100 * FS / n, 2.0), FS, "g", scaling="rms")
+        # definition: a sinusoid of peak A has RMS A / sqrt 2 (on-bin, so no scalloping)
         assert spec.amplitude[100] == pytest.approx(2.0 / math.sqrt(2), rel=1e-9)
 
     def test_agrees_with_scipy_periodogram(self):
@@ -95,13 +96,17 @@ class TestAmplitudeSpectrum:
         x = sine(4096, 100 * FS / 4096, 1.0).astype(np.float32)
         s = sp.amplitude_spectrum(x, FS, "g")
         assert s.amplitude.dtype == np.float64
+        # analytic: the input amplitude of the on-bin sine; tolerance: 1e-5 allows float32
+        # rounding of the samples (about 6e-8 each)
         assert s.amplitude[100] == pytest.approx(1.0, rel=1e-5)
 
 
 class TestParseval:
     @pytest.mark.parametrize("seg", [None, 1024])
     def test_broadband_noise_rms(self, seg):
-        # Parseval: the band RMS over all bins equals the time-domain RMS (within 1 %)
+        # Parseval: the band RMS over all bins equals the time-domain RMS (numpy.std as the
+        # reference); tolerance: 1 %, engineering choice: Hann windowing and Welch averaging
+        # leave a small random difference on 65536 samples of noise
         x = np.random.default_rng(5).normal(0.0, 0.7, 65536)
         s = sp.amplitude_spectrum(x, FS, "m/s^2", segment_length=seg)
         assert sp.band_rms(s, 0.0, FS / 2) == pytest.approx(np.std(x), rel=0.01)
@@ -110,6 +115,7 @@ class TestParseval:
         # a sinusoid of peak A has RMS A / sqrt 2, wherever it falls between bins
         x = sine(8192, 100.37, 2.0)
         s = sp.amplitude_spectrum(x, FS, "g")
+        # tolerance: 0.2 %, engineering choice: the band holds the whole Hann main lobe
         assert sp.band_rms(s, 90, 110) == pytest.approx(2.0 / math.sqrt(2), rel=0.002)
 
     def test_band_limits_noise(self):
@@ -117,6 +123,8 @@ class TestParseval:
         x = np.random.default_rng(6).normal(0.0, 1.0, 65536)
         s = sp.amplitude_spectrum(x, FS, "g", segment_length=2048)
         expected = math.sqrt((400 - 100) / (FS / 2))
+        # tolerance: 3 %, engineering choice: the band power of 65536 samples of noise over
+        # 300 of 1024 Hz scatters by about 1 % (chi-square, textbook statistics)
         assert sp.band_rms(s, 100, 400) == pytest.approx(expected, rel=0.03)
 
 
@@ -168,12 +176,16 @@ class TestPeaks:
     def test_peaks_sorted_and_interpolated(self):
         x = sine(8192, 100.3, 1.0) + sine(8192, 333.71, 2.0)
         peaks = sp.find_peaks(sp.amplitude_spectrum(x, FS, "g"), count=2)
+        # analytic: the frequencies and amplitude of the synthesised sines, largest first;
+        # tolerance: 1e-4, engineering choice for noise-free between-bin interpolation
         assert [round(p.hz, 2) for p in peaks] == [333.71, 100.3]
         assert peaks[0].amplitude == pytest.approx(2.0, rel=1e-4)
 
     def test_amplitude_at(self):
         x = sine(8192, 100.3, 1.0) + sine(8192, 101.9, 0.2)
         pk = sp.amplitude_at(sp.amplitude_spectrum(x, FS, "g"), 100.0, tolerance_hz=0.6)
+        # analytic: the 100.3 Hz sine of amplitude 1; tolerance: 1 %, engineering choice for
+        # the leakage of the 0.2 neighbour 1.6 Hz (6.4 bins) away
         assert pk.hz == pytest.approx(100.3, abs=0.01)
         assert pk.amplitude == pytest.approx(1.0, rel=0.01)
 
@@ -191,7 +203,8 @@ class TestRecordDtft:
             np.testing.assert_allclose(
                 rec.dtft(f, window=window, half_width=2500), ref, rtol=1e-9, atol=1e-8
             )
-        # the default Hann path keeps 64 bins either side: near-exact (1/d^3 weights)
+        # the default Hann path keeps 64 bins either side: near-exact (1/d^3 weights);
+        # tolerance: 1e-4 of the largest value, engineering choice for the truncated sum
         refw = np.array([np.sum(sp.hann(x.size) * xm * np.exp(-2j * np.pi * ff * m / FS)) for ff in f])
         np.testing.assert_allclose(rec.dtft(f, window=True), refw, rtol=0, atol=1e-4 * np.abs(refw).max())
 

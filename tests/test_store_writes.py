@@ -66,6 +66,7 @@ def test_same_reading_twice_gives_one_row_and_transitions_once(store, plant):
         assert q.load_detector_states(s) == {"fan-7": {"count": 0}}
         m = s.execute(select(Measurement)).scalar_one()
         assert m.ts == dt.datetime.fromtimestamp(T0, dt.UTC)
+        # round trip: the zone and 2x phase of the record written (tests/fixtures_db.py)
         assert m.zone == "C" and m.orders[1]["phase_deg"] == 12.0
         alarm = s.execute(select(Alarm)).scalar_one()
         assert alarm.state == "active" and alarm.ref == "fan-7:1"

@@ -51,6 +51,9 @@ def test_next_boundary():
 
 
 def test_overrides_point_wins():
+    # limits here are invented overrides; the checks are the precedence rule (DESIGN.md:
+    # configured limits override the class defaults; ours: a point's over its machine's)
+    # and the zone definition (2.5 lies between 2.0 and 3.0: zone C)
     lim = zone_limits("group2/rigid", machine_limits=(2.0, 3.0, 5.0))
     assert lim.as_tuple() == (2.0, 3.0, 5.0) and lim.source == "machine"
     lim = zone_limits("group2/rigid", machine_limits=(2.0, 3.0, 5.0), point_limits=(1.0, 2.0, 3.0))
