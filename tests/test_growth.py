@@ -101,9 +101,10 @@ class TestBaseline:
         # 37 % of the standard deviation, Hampel 1974, from memory) and the 5 % one-sided
         # wild readings inflate it a few percent more
         assert b.stats.sigma == pytest.approx(0.1, rel=0.2)
-        # MAD_TO_SIGMA is our constant; it should equal 1 / scipy.stats.norm.ppf(0.75) = 1.4826
-        # (Hampel 1974), which this line does not check
-        assert b.stats.sigma == pytest.approx(MAD_TO_SIGMA * b.stats.mad)
+        # consistency constant of the MAD for a normal distribution: 1 / Phi^-1(3/4)
+        # (Hampel 1974; scipy.stats.norm as the reference)
+        assert pytest.approx(1.0 / stats.norm.ppf(0.75), rel=1e-6) == MAD_TO_SIGMA
+        assert b.stats.sigma == pytest.approx(b.stats.mad / stats.norm.ppf(0.75), rel=1e-6)
         assert b.ratio(4.0) == pytest.approx(4.0 / b.stats.median)  # definition of the ratio
         assert b.speed_hz == 10.0
 
