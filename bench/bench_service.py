@@ -162,8 +162,11 @@ def _end_to_end(broker, url, workdir, msgs, procs: int, tag: str) -> float:
     return rate
 
 
-def _latency(broker, url, workdir, msgs, rate_hz: float) -> list[float]:
-    """Publish at ``rate_hz``; latency = commit time (stored_at) - publish time, s."""
+def _latency(broker, url, workdir, msgs, rate_hz: float, warm_up: int = 0) -> list[float]:
+    """Publish at ``rate_hz``; latency = commit time (stored_at) - publish time, s.
+
+    The first ``warm_up`` messages are published at the same rate but not counted: the
+    figure is for a service in its steady state, not its first second."""
     p = _spawn(broker, url, workdir, "lat", "lat")
     _wait_log(workdir / "lat.log", '"service started"')
     import paho.mqtt.client as paho
@@ -181,7 +184,9 @@ def _latency(broker, url, workdir, msgs, rate_hz: float) -> list[float]:
             time.sleep(wait)
         sent[json.loads(payload)["ts"]] = time.time()
         c.publish(topic, payload, qos=1)
-    base_n = len(msgs)
+    for key in list(sent)[:warm_up]:
+        del sent[key]
+    base_n = len(msgs) - warm_up
     end = time.monotonic() + 60
     s = Store.open(url)
     lat: list[float] = []
@@ -285,8 +290,9 @@ def run(quick: bool = False) -> list[dict]:
                 timed("pgtwo", _fresh_pg(pg, "two"), 2)
             bare_runs.append(_bare_analysis(msgs, registry))
             lat_n = 40 if quick else 240
+            warm = 10 if quick else 60
             lat = sorted(_latency(broker, _fresh_db(work, "lat.sqlite"), work,
-                                  _messages(lat_n, time.time()), e2e["one"] / 2))
+                                  _messages(lat_n + warm, time.time()), e2e["one"] / 2, warm))
         finally:
             broker.kill()
             for schema in schemas:
