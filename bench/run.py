@@ -53,7 +53,9 @@ def main(argv: list[str] | None = None) -> int:
             if "ratio" in row:
                 line += f"   ratio {row['ratio']:.3g}"
             if "target" in row:
-                ok = row.get("met", True)
+                if "met" not in row:
+                    raise ValueError(f"bench row {row['name']!r} states a target but no verdict")
+                ok = bool(row["met"])
                 line += f"   target {row['target']}  {'MET' if ok else 'NOT MET'}"
                 failed |= not ok
             print(line, flush=True)
