@@ -93,3 +93,26 @@ def test_mode_changes_are_recorded(store):
         rows = s.execute(select(ModeHistory).order_by(ModeHistory.id)).scalars().all()
         assert [(r.change, r.changed_by) for r in rows] == [("created", "ana"), ("updated", "ben")]
         assert rows[1].old_values["frequency_hz"] == 18.4 and rows[1].new_values["frequency_hz"] == 17.9
+
+
+def test_every_registry_key_is_documented():
+    # DESIGN.md section 3: "more keys are allowed; document them"
+    import re
+    import tomllib
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parents[1]
+    documented = set(re.findall(r"^\| `([a-z_]+)` \|", (root / "docs" / "registry.md").read_text(), re.M))
+    documented |= set(re.findall(r"^\| `([a-z_]+)` \|", (root / "docs" / "alarms.md").read_text(), re.M))
+    plant = tomllib.loads((root / "sample_streams" / "plant.toml").read_text())
+    used: set[str] = set()
+    for m in plant["machines"]:
+        used |= {k for k in m if k not in ("points", "modes")}
+        for p in m.get("points", []):
+            used |= set(p)
+        for mode in m.get("modes", []):
+            used |= set(mode)
+    from monitor.registry import _MACHINE_KEYS
+
+    used |= _MACHINE_KEYS - {"points", "modes"}
+    assert used - documented == set()
