@@ -14,8 +14,8 @@ from typing import Any, Literal
 
 import numpy as np
 
+from monitor import bearings, units
 from monitor import spectrum as sp
-from monitor import units
 from monitor.orders import OrderAmplitude, normalise_orders, order_amplitudes
 from monitor.readings import Waveform
 from monitor.registry import Machine, Point
@@ -113,6 +113,7 @@ def analyse_waveform(
     band_hz: tuple[float, float] | None = None,
     peak_count: int = 10,
     harmonics: int = 8,
+    bearing_band_hz: tuple[float, float] | None = None,
 ) -> ReadingAnalysis:
     """Analyse one waveform of ``point`` on ``machine``; see :class:`ReadingAnalysis`.
 
@@ -131,12 +132,20 @@ def analyse_waveform(
         Number of spectral peaks to report.
     harmonics : int
         Harmonics of running speed used to estimate the speed.
+    bearing_band_hz : (float, float), optional
+        Demodulation band (Hz) of the bearing envelope analysis; default the band of
+        highest spectral kurtosis (:func:`monitor.bearings.choose_band`).
 
     Returns
     -------
     ReadingAnalysis
         Speed in Hz, overall velocity in mm/s RMS, orders in the point's unit (peak) and
-        mm/s (peak), peaks in the point's unit (peak).
+        mm/s (peak), peaks in the point's unit (peak). When the machine's settings carry
+        a bearing geometry and the point measures acceleration, ``extra["bearing"]``
+        holds :meth:`monitor.bearings.BearingAnalysis.to_json` (envelope amplitudes in
+        m/s^2 peak, indicators in dB); when the geometry or the envelope analysis is
+        unusable, ``extra["bearing_error"]`` holds the reason instead and the rest of
+        the analysis stands.
 
     Raises
     ------
@@ -147,7 +156,8 @@ def analyse_waveform(
     References
     ----------
     Hann window and ENBW (Harris 1978); band RMS by Parseval; ISO 20816 velocity band
-    (from memory); speed estimation and CRLB (Kay 1993, from memory).
+    (from memory); speed estimation and CRLB (Kay 1993, from memory); bearing envelope
+    analysis (Randall and Antoni 2011; spectral kurtosis, Antoni 2006).
     """
     unit = waveform.unit
     if unit not in units.UNITS:
@@ -201,6 +211,20 @@ def analyse_waveform(
     one_x_norm = one_x.velocity_mm_s / speed**2 if one_x is not None else math.nan
     # skip the DC bin and the one next to it, where the removed mean and drift leak
     peaks = sp.find_peaks(spec, count=peak_count, min_hz=2.0 * spec.resolution_hz)
+    extra: dict[str, Any] = {"unit": unit, "band_hz": (lo, hi)}
+    if point.quantity == "acceleration" and any(
+        k in machine.settings for k in bearings.SETTINGS_KEYS
+    ):
+        # a bad geometry or a block too short for the envelope must not cost the reading
+        # its spectrum, orders and overall level: report why and carry on
+        try:
+            geometry = bearings.BearingGeometry.from_settings(machine.settings)
+            if geometry is not None:
+                extra["bearing"] = bearings.analyse_bearing(
+                    record, None, speed, geometry, unit=unit, band_hz=bearing_band_hz
+                ).to_json()
+        except ValueError as exc:
+            extra["bearing_error"] = str(exc)
     return ReadingAnalysis(
         machine=waveform.machine,
         point=waveform.point,
@@ -215,7 +239,7 @@ def analyse_waveform(
         spectrum=spec,
         velocity_spectrum=vel,
         reading_id=waveform.reading_id,
-        extra={"unit": unit, "band_hz": (lo, hi)},
+        extra=extra,
     )
 
 
@@ -239,7 +263,9 @@ def analysis_to_json(a: ReadingAnalysis) -> dict[str, Any]:
     speed_uncertainty_hz, overall_velocity_mm_s_rms, orders (order as a string such as
     "1" or "9" -> amplitude in the point's unit, peak), peaks (list of {"hz",
     "amplitude"}), reading_id; plus unit, one_x_normalised and order_velocity_mm_s
-    (order -> mm/s peak) and order_phase_deg (when a reference existed).
+    (order -> mm/s peak) and order_phase_deg (when a reference existed); bearing (the
+    envelope analysis, docs/bearings.md) or bearing_error when the machine has a bearing
+    geometry.
     """
     out: dict[str, Any] = {
         "machine": a.machine,
@@ -258,4 +284,8 @@ def analysis_to_json(a: ReadingAnalysis) -> dict[str, Any]:
     }
     if any(o.phase_deg is not None for o in a.orders):
         out["order_phase_deg"] = {_order_key(o.order): o.phase_deg for o in a.orders}
+    if "bearing" in a.extra:
+        out["bearing"] = a.extra["bearing"]
+    if "bearing_error" in a.extra:
+        out["bearing_error"] = a.extra["bearing_error"]
     return out

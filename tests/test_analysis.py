@@ -152,3 +152,79 @@ def test_bad_input():
     slow = Waveform("m1", "p1", 0.0, 100.0, "m/s^2", np.random.default_rng(0).standard_normal(512))
     with pytest.raises(ValueError, match="speed_range_hz"):
         analyse_waveform(slow, fast, p)
+
+
+# --------------------------------------------------------------------- bearing envelope
+
+BEARING = {  # CWRU drive-end geometry in mm (REFERENCES.md): 9 balls, 0.3126 in, 1.537 in
+    "bearing_elements": 9,
+    "bearing_ball_diameter_mm": 0.3126 * 25.4,
+    "bearing_pitch_diameter_mm": 1.537 * 25.4,
+}
+
+
+def bearing_machine(settings, point=None):
+    m, p = machine(rpm=(1200.0, 1800.0), point=point)
+    return Machine(id=m.id, speed_range_rpm=m.speed_range_rpm, excitation_orders=(1, 2),
+                   points=m.points, settings=settings), p
+
+
+def ringing(rate_hz, resonance_hz=1800.0, zeta=0.05):
+    """Closed form: impacts every 1/rate_hz s ringing an SDOF resonance (Thomson, free
+    damped vibration), plus white noise."""
+    w = 2 * np.pi * resonance_hz
+    x = np.random.default_rng(11).normal(0, 0.2, N)
+    t = T
+    for t0 in np.arange(0.0, N / FS, 1.0 / rate_hz):
+        tau = t[t >= t0] - t0
+        x[t >= t0] += np.exp(-zeta * w * tau) * np.sin(w * math.sqrt(1 - zeta**2) * tau)
+    return x
+
+
+def test_bearing_envelope_in_extra_and_json():
+    shaft = 25.0
+    m, p = bearing_machine(BEARING)
+    # CWRU published BPFO multiple 3.5848 (REFERENCES.md)
+    x = ringing(3.5848 * shaft)
+    a = analyse_waveform(waveform(x, speed_hz=shaft), m, p)
+    b = a.extra["bearing"]
+    assert b["frequencies_hz"]["bpfo"] == pytest.approx(3.5848 * shaft, abs=1e-4 * shaft)
+    assert b["frequencies_hz"]["bpfi"] == pytest.approx(5.4152 * shaft, abs=1e-4 * shaft)
+    # the band holds the 1.8 kHz resonance the impacts ring (closed-form signal above)
+    assert b["band_hz"][0] <= 1800.0 <= b["band_hz"][1]
+    # a periodic ring train is far above the envelope floor at BPFO (common practice)
+    assert b["indicator_db"]["bpfo"] > 20.0
+    assert b["indicator_db"]["bpfi"] < b["indicator_db"]["bpfo"] - 10.0
+    rec = json.loads(json.dumps(analysis_to_json(a)))
+    assert rec["bearing"] == json.loads(json.dumps(b))
+    assert set(rec["bearing"]["envelope"]) == {"bpfo", "bpfi", "bsf", "ftf"}
+
+
+def test_bearing_only_with_geometry_and_acceleration():
+    shaft = 25.0
+    x = ringing(3.5848 * shaft)
+    plain, p = bearing_machine({})
+    with_bearing, _ = bearing_machine(BEARING)
+    a0 = analyse_waveform(waveform(x, speed_hz=shaft), plain, p)
+    a1 = analyse_waveform(waveform(x, speed_hz=shaft), with_bearing, p)
+    assert "bearing" not in a0.extra and "bearing" not in analysis_to_json(a0)
+    # every other field is untouched by the bearing analysis
+    j1 = analysis_to_json(a1)
+    del j1["bearing"]
+    assert j1 == analysis_to_json(a0)
+    # a velocity point gets no envelope analysis (it needs acceleration)
+    pv = Point(id="p1", quantity="velocity", unit="mm/s", fs_hz=FS)
+    mv, _ = bearing_machine(BEARING, point=pv)
+    av = analyse_waveform(waveform(x, "mm/s", speed_hz=shaft), mv, pv)
+    assert "bearing" not in av.extra
+
+
+def test_bad_bearing_settings_keep_the_rest():
+    m, p = bearing_machine({**BEARING, "bearing_elements": 2})
+    x = np.cos(2 * np.pi * 25.0 * T)
+    a = analyse_waveform(waveform(x, speed_hz=25.0), m, p)
+    assert "bearing" not in a.extra
+    assert "bearing_elements" in a.extra["bearing_error"]
+    assert analysis_to_json(a)["bearing_error"] == a.extra["bearing_error"]
+    # definition: a sinusoid of peak A reads A in a peak-scaled spectrum (Hann interpolated)
+    assert a.order(1.0).amplitude == pytest.approx(1.0, rel=0.005)
