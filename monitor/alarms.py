@@ -252,6 +252,15 @@ class AlarmEngine:
                 return []
         r = severity_rank(raise_level)
         h = max(severity_rank(hold_level), r)
+        s = self._streams.get(key)
+        if s is not None:
+            a = s.alarm
+            if a is not None and a.state != "cleared" and r <= _RANK[a.severity] == h:
+                # A live alarm whose own level still holds and nothing worse is raised:
+                # every counter restarts and no transition can follow (the steady case).
+                s.up_count = s.clear_count = s.down_count = 0
+                s.last_ts = ts
+                return []
         n = self.persistence if persistence is None else int(persistence)
         s = self._streams.setdefault(key, _Stream())
         s.last_ts = ts

@@ -1,9 +1,10 @@
 """Everything at once on embedded defaults: a private broker, SQLite in a folder, the
 service, the dashboard and the sample plant's traffic replayed accelerated.
 
-The broker is a private Mosquitto on a free port when the binary is installed, else an
-embedded amqtt broker in this process (MQTT 3.1.1 only, so the service then speaks 3.1.1
-and logs in with a user name: amqtt keeps offline messages only for named clients).
+The broker is a private Mosquitto on a free port when the binary is installed, else (or
+when ``embedded_broker`` asks for it) an embedded amqtt broker in this process (MQTT 3.1.1
+only, so the service then speaks 3.1.1 and logs in with a user name: amqtt keeps offline
+messages only for named clients).
 """
 
 from __future__ import annotations
@@ -47,8 +48,9 @@ def find_mosquitto() -> str | None:
 class DemoBroker:
     """A private broker for the demo; ``url``, ``protocol`` and ``username`` say how to reach it."""
 
-    def __init__(self, workdir: Path) -> None:
+    def __init__(self, workdir: Path, *, embedded: bool = False) -> None:
         self.workdir = workdir
+        self.embedded = embedded
         self.port = free_port()
         self.url = f"mqtt://127.0.0.1:{self.port}"
         self.protocol = "5"
@@ -59,11 +61,12 @@ class DemoBroker:
         self._thread: threading.Thread | None = None
 
     def start(self) -> None:
-        binary = find_mosquitto()
-        if binary:
-            self._start_mosquitto(binary)
-        else:
+        binary = None if self.embedded else find_mosquitto()
+        if not binary:
+            # Ready once its listener is bound; a bare TCP probe would only make it log an error.
             self._start_amqtt()
+            return
+        self._start_mosquitto(binary)
         deadline = time.monotonic() + 15
         while time.monotonic() < deadline:
             try:
@@ -94,11 +97,15 @@ class DemoBroker:
                 "no mosquitto binary and no embedded broker: install mosquitto or "
                 "`pip install whirlwatch[embedded-broker]`, or pass --broker URL."
             ) from exc
+        # amqtt 0.12 configures plugins in a ``plugins`` table. Its older ``auth`` and
+        # ``sys_interval`` keys make it load every installed plugin instead, and then the
+        # password-file plugin refuses any client that gives a user name. Only the anonymous
+        # plugin, with anonymous clients refused: amqtt queues offline QoS 1 messages only
+        # for a session that logged in with a user name, and with anonymous clients allowed
+        # it marks every session anonymous, so the service's backlog would be dropped.
         config = {
             "listeners": {"default": {"type": "tcp", "bind": f"127.0.0.1:{self.port}"}},
-            "sys_interval": 0,
-            "auth": {"allow-anonymous": True},
-            "topic-check": {"enabled": False},
+            "plugins": {"amqtt.plugins.authentication.AnonymousAuthPlugin": {"allow_anonymous": False}},
         }
         self.protocol = "3.1.1"
         self.username = "whirlwatch-demo"
@@ -118,7 +125,8 @@ class DemoBroker:
 
         self._thread = threading.Thread(target=run, name="amqtt", daemon=True)
         self._thread.start()
-        ready.wait(15)
+        if not ready.wait(15):
+            raise RuntimeError(f"the embedded broker did not start on port {self.port}.")
         self.kind = "embedded amqtt broker (MQTT 3.1.1)"
 
     def stop(self) -> None:
@@ -174,8 +182,12 @@ def run_demo(
     port: int | None = 8050,
     say: Callable[[str], None] = print,
     stop: threading.Event | None = None,
+    embedded_broker: bool = False,
 ) -> DemoResult:
-    """Run the demo for ``duration_s`` seconds (or until ``stop`` is set); see the module."""
+    """Run the demo for ``duration_s`` seconds (or until ``stop`` is set); see the module.
+
+    ``embedded_broker`` starts the in-process amqtt broker even when Mosquitto is installed.
+    """
     from sqlalchemy import func, select
 
     from monitor.config import load_settings
@@ -203,7 +215,7 @@ def run_demo(
     broker = None
     protocol, username = "5", None
     if broker_url is None:
-        broker = DemoBroker(data_dir)
+        broker = DemoBroker(data_dir, embedded=embedded_broker)
         broker.start()
         broker_url, protocol, username = broker.url, broker.protocol, broker.username
         say(f"broker: {broker.kind} at {broker_url}")

@@ -32,6 +32,7 @@ from __future__ import annotations
 
 import bisect
 import functools
+import itertools
 import math
 from collections import deque
 from collections.abc import Mapping, Sequence
@@ -313,8 +314,16 @@ class ReadingEvaluation:
         }
 
 
-def _features(analysis: ReadingAnalysis, machine: Machine) -> list[tuple[str, float, str, bool]]:
-    """(name, value, unit, speed dependent) of the growth features present in ``analysis``."""
+def _growth_orders(machine: Machine) -> tuple[tuple[float, str], ...]:
+    """(order, feature name) of the order features other than 1x, in growth's order."""
+    return tuple((o, order_label(o))
+                 for o in sorted({2.0, *(float(x) for x in machine.excitation_orders)} - {1.0}))
+
+
+def _features(analysis: ReadingAnalysis, machine: Machine,
+              orders: tuple[tuple[float, str], ...] | None = None) -> list[tuple[str, float, str, bool]]:
+    """(name, value, unit, speed dependent) of the growth features present in ``analysis``;
+    ``orders`` is :func:`_growth_orders` of ``machine`` when the caller keeps it."""
     out: list[tuple[str, float, str, bool]] = [
         ("overall", float(analysis.overall_velocity_mm_s_rms), "mm/s RMS", True)
     ]
@@ -323,10 +332,10 @@ def _features(analysis: ReadingAnalysis, machine: Machine) -> list[tuple[str, fl
         out.append(("1x", float(one.velocity_mm_s), "mm/s peak", True))
     if math.isfinite(analysis.one_x_normalised):
         out.append(("1x_norm", float(analysis.one_x_normalised), "mm/s peak per Hz^2", False))
-    for o in sorted({2.0, *(float(x) for x in machine.excitation_orders)} - {1.0}):
+    for o, name in (_growth_orders(machine) if orders is None else orders):
         oa = analysis.order(o)
         if oa is not None:
-            out.append((order_label(o), float(oa.velocity_mm_s), "mm/s peak", True))
+            out.append((name, float(oa.velocity_mm_s), "mm/s peak", True))
     return out
 
 
@@ -352,9 +361,11 @@ class MachineEvaluator:
         self._last_ts: dict[str, float] = {}
         self._intervals: dict[str, deque[float]] = {}
         self._keys: dict[tuple[str | None, str, str], AlarmKey] = {}
+        self._orders = _growth_orders(machine)
         self._grid = MarginGrid(machine, approach_factor=s.approach_factor,
                                 machine_default_pct=s.required_margin_pct)
         self._res_seen: set[int] = set()  # margin rows that ever fed the alarm engine
+        self._fault_seen: set[str] = set()  # points whose block checks ever fed the engine
         # Excitation frequencies (Hz) between which each (mode, excitation) pair can be
         # near its band (margin inside the approach band with hysteresis), widened by a
         # part in 10^9 so rounding never hides a pair (a stray candidate only costs the
@@ -523,6 +534,8 @@ class MachineEvaluator:
         ev._last_ts = {p: float(t) for p, t in data.get("last_ts", {}).items()}
         ev._intervals = {p: deque(v, maxlen=10) for p, v in data.get("intervals", {}).items()}
         index = {subj: k for k, subj in enumerate(ev._grid.subjects)}
+        ev._fault_seen = {k.point for k in ev.engine.alarm_keys()
+                          if k.kind == "sensor_fault" and k.subject != "stale" and k.point is not None}
         ev._res_seen = {index[k.subject] for k in ev.engine.alarm_keys()
                         if k.kind == "resonance_proximity" and k.subject in index}
         return ev
@@ -562,6 +575,9 @@ class MachineEvaluator:
         return []
 
     def _sensor_alarms(self, pid: str, ts: float, rid: str | None, health: HealthReport) -> list[Transition]:
+        if not health.flags and pid not in self._fault_seen:
+            return []  # no check fails and none ever did: nothing to count
+        self._fault_seen.add(pid)
         out: list[Transition] = []
         flagged = {f.check: f for f in health.flags}
         for check, sev in SENSOR_FAULT_SEVERITY.items():
@@ -672,7 +688,7 @@ class MachineEvaluator:
             counts[reason] = counts.get(reason, 0) + 1
         band = s.baseline_speed_band_pct / 100.0
         rows = []
-        for name, value, unit, speed_dep in _features(analysis, self.machine):
+        for name, value, unit, speed_dep in _features(analysis, self.machine, self._orders):
             if not math.isfinite(value) or value < 0:
                 continue
             k = (pid, name)
@@ -888,7 +904,9 @@ def _fit_windows(wins: list[TrendWindow]) -> None:
             groups.setdefault(tuple(w.ts), []).append(w)
     for tkey, ws in groups.items():
         t = np.asarray(tkey)
-        fits = theil_sen_many(t - t[-1], np.asarray([list(w.values) for w in ws]))
+        ys = np.fromiter(itertools.chain.from_iterable(w.values for w in ws), float,
+                         len(ws) * t.size).reshape(len(ws), t.size)
+        fits = theil_sen_many(t - t[-1], ys)
         for w, (slope, inter, lo, hi) in zip(ws, fits, strict=True):
             w.set_fit(Trend(slope, lo, hi, inter, t.size))
 

@@ -205,7 +205,11 @@ def theil_sen_many(x: np.ndarray, ys: np.ndarray) -> list[tuple[float, float, fl
         raise ValueError("x must not be all identical.")
     if not keep.all():
         i, j, dx = i[keep], j[keep], dx[keep]
-    slopes = (np.take(ys, j, axis=1) - np.take(ys, i, axis=1)) / dx
+    # One buffer for the slopes (same operations as (ys[:, j] - ys[:, i]) / dx, fewer
+    # temporaries of F x n(n-1)/2).
+    slopes = np.take(ys, j, axis=1)
+    slopes -= np.take(ys, i, axis=1)
+    slopes /= dx
     nt = slopes.shape[1]
     xs = np.sort(x)
     yss = np.sort(ys, axis=1)

@@ -29,7 +29,8 @@ TIME_BUCKETS = (0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.
 
 class ServiceMetrics:
     """Counters and gauges: messages in (by kind), rejected (by reason), processing time,
-    in flight, alarm transitions, alarms by state, database retries, publish failures."""
+    in flight, alarm transitions, alarms by state, database retries, batch reruns, publish
+    failures."""
 
     def __init__(self) -> None:
         r = self.registry = CollectorRegistry()
@@ -56,6 +57,11 @@ class ServiceMetrics:
             buckets=(1, 2, 4, 8, 16, 32, 64), registry=r,
         )
         self.db_retries = Counter("whirlwatch_db_retries", "Database transactions retried.", registry=r)
+        self.batch_reruns = Counter(
+            "whirlwatch_batch_reruns",
+            "Batches run again because another process stored one of their readings first.",
+            registry=r,
+        )
         self.publish_failures = Counter(
             "whirlwatch_publish_failures", "Status or alarm publications that failed.", registry=r
         )

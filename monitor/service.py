@@ -481,6 +481,7 @@ class Service:
                 # Another process stored one of these readings after our existence check:
                 # run again; the check now sees it.
                 self._forget(machines)
+                self.metrics.batch_reruns.inc()
             except Exception as exc:
                 self._forget(machines)
                 if self._stop.is_set():
@@ -722,6 +723,8 @@ class Service:
         outs = self.handle_batch([(m.topic, m.payload) for m in msgs])
         for m in msgs:
             self.source.ack(m)
+        # Again after the acks, so an idle service does not show its last batch as in flight.
+        self.metrics.in_flight.set(self.source.stats.in_flight)
         for out in outs:
             self.publish(out)
             for e in out.events:

@@ -97,3 +97,46 @@ def test_stale():
 def test_bad_input():
     with pytest.raises(ValueError, match="samples"):
         check_block(np.zeros(3))
+
+
+def _spike_rule(x: np.ndarray) -> bool:
+    """The documented spike rule computed directly with np.median (numpy as the reference):
+    1 to 1 % of the samples more than 25 x 1.4826 x MAD from the median, the median and MAD
+    taken on the same evenly strided subset of about 2,048 samples as the module."""
+    sub = x[:: max(1, x.size // 2048)]
+    med = np.median(sub)
+    sigma = 1.4826 * np.median(np.abs(sub - med))
+    if sigma == 0.0 and sub.size < x.size:
+        med = np.median(x)
+        sigma = 1.4826 * np.median(np.abs(x - med))
+    k = int(np.count_nonzero(np.abs(x - med) > 25.0 * sigma))
+    return sigma > 0 and 1 <= k <= max(1, int(0.01 * x.size))
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_spike_flag_matches_rule_on_varied_blocks(seed):
+    # Spread, bunched, quantised and sparse blocks with spikes near the limit: the flag is
+    # exactly the rule (the module may skip the median when it can prove no spike).
+    rng = np.random.default_rng(seed)
+    n = 4096
+    t = np.arange(n)
+    blocks = [
+        rng.standard_normal(n),
+        np.sin(2 * np.pi * t / 97.0) + 0.01 * rng.standard_normal(n),
+        np.round(rng.standard_normal(n) * 0.7),
+        np.where(rng.random(n) < 0.05, rng.standard_normal(n), 0.0) + 1e-3 * rng.standard_normal(n),
+        rng.standard_normal(n) ** 3,
+        rng.standard_cauchy(n),
+    ]
+    flagged = 0
+    for x in blocks:
+        for amp in (10.0, 24.0, 26.0, 60.0):
+            y = x.copy()
+            sub = y[:: max(1, n // 2048)]
+            scale = 1.4826 * np.median(np.abs(sub - np.median(sub))) or 1e-3
+            y[rng.choice(n, 3, replace=False)] += amp * scale
+            want = _spike_rule(y)
+            got = "spikes" in [f.check for f in check_block(y)]
+            assert got == want
+            flagged += want
+    assert 0 < flagged < 24  # both outcomes occur

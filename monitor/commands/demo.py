@@ -22,18 +22,23 @@ import click
 @click.option("--host", default="127.0.0.1", show_default=True, help="Dashboard address.")
 @click.option("--port", type=click.IntRange(0, 65535), default=8050, show_default=True,
               help="Dashboard port (a free one if taken; 0 = any).")
+@click.option("--embedded-broker", is_flag=True, default=False,
+              help="Start the in-process amqtt broker (MQTT 3.1.1) even when Mosquitto is installed.")
 def demo(broker: str | None, database: str | None, machines: Path | None, duration_s: float,
-         data_dir: Path, host: str, port: int) -> None:
+         data_dir: Path, host: str, port: int, embedded_broker: bool) -> None:
     """Run everything on embedded defaults and replay the sample plant, accelerated."""
     from monitor.demo import install_stop_signals, run_demo
     from monitor.service import configure_logging
 
+    if embedded_broker and broker is not None:
+        raise click.UsageError("--embedded-broker and --broker exclude each other; give one of them.")
     configure_logging("WARNING")
     stop = threading.Event()
     install_stop_signals(stop)
     click.echo(f"data folder: {data_dir.resolve()}")
     try:
         run_demo(data_dir=data_dir, broker_url=broker, database_url=database, machines=machines,
-                 duration_s=duration_s, host=host, port=port, say=click.echo, stop=stop)
+                 duration_s=duration_s, host=host, port=port, say=click.echo, stop=stop,
+                 embedded_broker=embedded_broker)
     except RuntimeError as exc:
         raise click.ClickException(str(exc)) from None
