@@ -399,7 +399,9 @@ class Service:
         """Process one message up to the commit (no MQTT); see the module docstring."""
         return self.handle_batch([(topic, payload)])[0]
 
-    def handle_batch(self, messages: list[tuple[str, bytes]]) -> list[Outcome]:
+    def handle_batch(
+        self, messages: list[tuple[str, bytes]], redelivered: list[bool] | None = None
+    ) -> list[Outcome]:
         """Process messages up to one commit for all of them (no MQTT), in order.
 
         Decode and analyse each, then one transaction: one query finds the redeliveries,
@@ -417,12 +419,20 @@ class Service:
             return b if a is None else a if b is None else max(a, b)
 
         items: list[_Item] = []
-        for topic, payload in messages:
+        flags = redelivered if redelivered is not None else [False] * len(messages)
+        if len(flags) != len(messages):
+            raise ValueError(
+                f"redelivered has {len(flags)} flags for {len(messages)} messages; give one each."
+            )
+        for (topic, payload), dup in zip(messages, flags, strict=True):
             item = _Item(topic, payload)
             try:
+                # A broker redelivery (DUP set) of a message whose commit never happened may
+                # lie far behind its stream when another process or a later batch moved on:
+                # the replay check would drop it, so redeliveries go to the idempotent insert.
                 item.reading = decode_message(
                     topic, payload, self.registry, prefix=self.prefix, now=now,
-                    last_ts=last, limits=self.limits,
+                    last_ts=None if dup else last, limits=self.limits,
                 )
             except Rejected as rej:
                 item.rejection = rej
@@ -720,7 +730,7 @@ class Service:
     def _on_batch(self, msgs: list[InboundMessage]) -> None:
         assert self.source is not None
         self.metrics.in_flight.set(self.source.stats.in_flight)
-        outs = self.handle_batch([(m.topic, m.payload) for m in msgs])
+        outs = self.handle_batch([(m.topic, m.payload) for m in msgs], [m.dup for m in msgs])
         for m in msgs:
             self.source.ack(m)
         # Again after the acks, so an idle service does not show its last batch as in flight.

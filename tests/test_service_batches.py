@@ -383,3 +383,28 @@ def test_every_transition_is_published_and_a_clean_stop_flushes(
     status.close()
     # A retained status for every machine with an alarm (a late subscriber gets it at once).
     assert {body["machine"] for body in rest.values()} <= retained
+
+
+def test_broker_redelivery_far_behind_its_stream_is_stored_not_dropped(tmp_path: Path) -> None:
+    # MQTT 5.0 section 3.3.1.1 / 3.1.1 section 3.3.1.1: DUP marks a redelivery. A message
+    # whose commit never happened (its process died) may come back after later readings
+    # of the stream were stored elsewhere; at-least-once delivery (DESIGN.md section 3)
+    # means it must still be stored, while a fresh publish that old is a replay.
+    msgs = waveforms("ab-1", 6)
+    old, newer = msgs[0], msgs[1:]
+    url = sqlite(tmp_path, "redelivery.sqlite")
+    svc = Service(settings_for(url), stale_check_s=0)
+    try:
+        gap = svc.limits.replay_window_s
+        first_ts = decode_message(old[0], old[1], svc.registry, prefix="whirlwatch").ts
+        last_ts = decode_message(newer[-1][0], newer[-1][1], svc.registry, prefix="whirlwatch").ts
+        assert last_ts - first_ts > gap, "the sample stream must span more than the replay window"
+        assert [o.kind for o in svc.handle_batch(newer)] == ["waveform"] * len(newer)
+        fresh = svc.handle_batch([old])
+        assert (fresh[0].kind, fresh[0].reason) == ("rejected", "ts_replayed")
+        redelivered = svc.handle_batch([old], [True])
+        assert [o.kind for o in redelivered] == ["waveform"]
+        assert [o.kind for o in svc.handle_batch([old], [True])] == ["duplicate"]
+    finally:
+        svc.store.close()
+    assert measurement_count(url) == (6, 6)
