@@ -63,8 +63,9 @@ def _measure(label: str, speed: float | None, quick: bool) -> list[dict]:
     rng = np.random.default_rng(0)
     m = _machine()
     p = m.points[0]
-    # Distinct readings (no repeated values, which would make ties in every trend window).
-    wfs = [_waveform(i, speed, rng) for i in range(32)]
+    # 64 distinct readings cycled: any 50-reading trend window holds no repeated values
+    # (repeats would make ties in every window, which real data does not have).
+    wfs = [_waveform(i, speed, rng) for i in range(64)]
     analyses = [analyse_waveform(w, m, p) for w in wfs]
     ev = MachineEvaluator(m)
     for i in range(60):  # warm up: baselines learned, trend windows full
