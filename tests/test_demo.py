@@ -26,5 +26,7 @@ def test_demo_runs_and_stops_by_itself(tmp_path: Path) -> None:
     out = proc.stdout
     assert (data / "whirlwatch.sqlite").is_file()
     assert re.search(r"login: demo-\w+ / \S+ \(engineer\)", out)
+    # the console keeps to progress; the JSON-line logs go to the data folder
+    assert (data / "whirlwatch.log").is_file() and '"logger":' not in out
     m = re.search(r"done: (\d+) messages published, (\d+) measurements", out)
     assert m and int(m.group(1)) > 0 and int(m.group(2)) > 0, out

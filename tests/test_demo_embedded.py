@@ -39,7 +39,13 @@ def test_demo_on_the_embedded_broker_stores_readings_and_alarms(tmp_path: Path) 
     assert "embedded amqtt broker (MQTT 3.1.1)" in out, out
     assert "Mosquitto" not in out
     # No broker errors: a refused login or a failed session would be logged at WARNING+.
+    log = (data / "whirlwatch.log").read_text()
     assert '"logger": "amqtt' not in proc.stderr, proc.stderr[-2000:]
+    broker_trouble = [
+        line for line in log.splitlines()
+        if '"logger": "amqtt' in line and ('"level": "warning"' in line or '"level": "error"' in line)
+    ]
+    assert broker_trouble == [], broker_trouble[:5]
     m = re.search(r"done: (\d+) messages published, (\d+) measurements and (\d+) alarms", out)
     assert m, out
     db = data / "whirlwatch.sqlite"

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import logging
 import threading
 from pathlib import Path
 
@@ -32,13 +33,21 @@ def demo(broker: str | None, database: str | None, machines: Path | None, durati
 
     if embedded_broker and broker is not None:
         raise click.UsageError("--embedded-broker and --broker exclude each other; give one of them.")
-    configure_logging("WARNING")
-    stop = threading.Event()
-    install_stop_signals(stop)
-    click.echo(f"data folder: {data_dir.resolve()}")
-    try:
-        run_demo(data_dir=data_dir, broker_url=broker, database_url=database, machines=machines,
-                 duration_s=duration_s, host=host, port=port, say=click.echo, stop=stop,
-                 embedded_broker=embedded_broker)
-    except RuntimeError as exc:
-        raise click.ClickException(str(exc)) from None
+    data_dir.mkdir(parents=True, exist_ok=True)
+    log_path = data_dir.resolve() / "whirlwatch.log"
+    # The console keeps to progress and where to look; the service's and the dashboard's
+    # JSON-line logs go to a file in the data folder.
+    with log_path.open("a", encoding="utf-8") as log_file:
+        configure_logging("INFO", stream=log_file)
+        stop = threading.Event()
+        install_stop_signals(stop)
+        click.echo(f"data folder: {data_dir.resolve()}")
+        click.echo(f"logs: {log_path}")
+        try:
+            run_demo(data_dir=data_dir, broker_url=broker, database_url=database,
+                     machines=machines, duration_s=duration_s, host=host, port=port,
+                     say=click.echo, stop=stop, embedded_broker=embedded_broker)
+        except RuntimeError as exc:
+            raise click.ClickException(str(exc)) from None
+        finally:
+            logging.getLogger().handlers[:] = []
