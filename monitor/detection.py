@@ -320,6 +320,11 @@ def _growth_orders(machine: Machine) -> tuple[tuple[float, str], ...]:
                  for o in sorted({2.0, *(float(x) for x in machine.excitation_orders)} - {1.0}))
 
 
+# An envelope line needs this much prominence over the envelope spectrum's floor before it
+# counts as a defect line (common practice: a line well clear of the noise, ~15 dB).
+BEARING_NOISE_DB = 15.0
+
+
 def _features(analysis: ReadingAnalysis, machine: Machine,
               orders: tuple[tuple[float, str], ...] | None = None) -> list[tuple[str, float, str, bool]]:
     """(name, value, unit, speed dependent) of the growth features present in ``analysis``;
@@ -336,6 +341,18 @@ def _features(analysis: ReadingAnalysis, machine: Machine,
         oa = analysis.order(o)
         if oa is not None:
             out.append((name, float(oa.velocity_mm_s), "mm/s peak", True))
+    bearing = analysis.extra.get("bearing") if analysis.extra else None
+    if bearing:
+        # The envelope line over the envelope spectrum's floor (linear), not the line's
+        # amplitude: the demodulation band may move between readings, the prominence
+        # hardly does (monitor/bearings.py). A defect shows as this ratio growing against
+        # its own baseline.
+        # Lines less prominent than BEARING_NOISE_DB are envelope noise: clamping them there
+        # keeps a healthy bearing's baseline flat, so only a line that stands out grows.
+        for defect, db in bearing.get("indicator_db", {}).items():
+            if db is not None and math.isfinite(db):
+                prominence = 10.0 ** (max(db, BEARING_NOISE_DB) / 20.0)
+                out.append((f"bearing_{defect}", prominence, "line / floor", False))
     return out
 
 
