@@ -31,6 +31,7 @@ Exceptions::
 from __future__ import annotations
 
 import datetime as dt
+import gc
 import json
 import logging
 import socket
@@ -41,7 +42,7 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any
 
-from sqlalchemy import event, func, select
+from sqlalchemy import bindparam, event, func, select
 
 from monitor.alarms import Transition, severity_rank
 from monitor.analysis import ReadingAnalysis, analyse_waveform
@@ -152,6 +153,7 @@ class _Item:
     rejection: Rejected | None = None
     analysis: ReadingAnalysis | None = None
     evaluation: ReadingEvaluation | None = None
+    check: bool = True  # look it up in the store before evaluating it
     transitions: list[Transition] = field(default_factory=list)
     outcome: Outcome | None = None
 
@@ -175,7 +177,9 @@ def _skey(r: Any) -> tuple[str, dt.datetime]:
 
 
 def _evaluation_json(evaluation: ReadingEvaluation) -> Any:
-    return jsonable(evaluation)
+    # The detector's own JSON form (zone limits as ``zone_limits_mm_s``; the dashboard
+    # reads both forms); jsonable turns NaN into null, which JSON columns need.
+    return jsonable(evaluation.to_json())
 
 
 @dataclass
@@ -187,6 +191,20 @@ class _MachineView:
     speed_source: str | None = None
     zones: dict[str, str | None] = field(default_factory=dict)
     nearest: dict[str, Any] | None = None
+    #: Evaluations since the status was last built, oldest first: the nearest margin is
+    #: taken from the newest that has one when the status is built (once per batch),
+    #: not computed for every reading.
+    unseen: list[Any] = field(default_factory=list)
+
+    def nearest_margin(self) -> dict[str, Any] | None:
+        for evaluation in reversed(self.unseen):
+            m = evaluation.nearest_margin()
+            if m is not None:
+                self.nearest = {"subject": m.subject, "margin_pct": m.margin_pct,
+                                "required_pct": m.required_pct, "status": m.status}
+                break
+        self.unseen.clear()
+        return self.nearest
 
 
 # ----------------------------------------------------------------------------- service
@@ -272,6 +290,12 @@ class Service:
         self._versions: dict[str, int | None] = {}
         self._views: dict[str, _MachineView] = {m.id: _MachineView() for m in self.registry.machines}
         self._last_ts: dict[tuple[str, str], float] = {}
+        # Hot-path statements, built once (building costs about what running them does).
+        self._versions_stmt: Any = None
+        # Spectrum snapshots this process committed, per (machine, point): a reading with
+        # one of them inside its cadence window is not due, without asking the database.
+        self._kept: dict[tuple[str, str], list[dt.datetime]] = {}
+        self._acks_stmt: Any = None
         self._lock = threading.RLock()
         self._stop = threading.Event()
         self._periodic: threading.Thread | None = None
@@ -317,18 +341,29 @@ class Service:
 
     # -- detector state
 
+    def _write_lock(self, s: Any) -> None:
+        """SQLite: take the database's write lock first (waiting up to busy_timeout).
+
+        A transaction that reads and then writes cannot wait for the lock: if another
+        process committed since its first read, SQLite fails the write at once with
+        "database is locked" and the whole batch is retried after a back-off. A write that
+        matches no row takes the lock before any read, so the wait is the busy handler's.
+        (PostgreSQL serialises on the detector-state row locks instead.)"""
+        if self._sqlite:
+            s.connection().exec_driver_sql("UPDATE detector_state SET machine_id = machine_id WHERE 0")
+
     def _take_states(self, s: Any, machines: list[str]) -> dict[str, MachineEvaluator]:
         """Lock (PostgreSQL, in machine order so two processes cannot deadlock) and check
         the stored state versions of ``machines`` in one query; reload an evaluator only
         when another process moved its state on."""
         if not machines:
             return {}
-        version = DetectorState.state["version"].as_integer()
-        stmt = select(DetectorState.machine_id, version).where(
-            DetectorState.machine_id.in_(machines)).order_by(DetectorState.machine_id)
-        if self._pg:
-            stmt = stmt.with_for_update()
-        stored = {m: int(v or 0) for m, v in s.execute(stmt).all()}
+        if self._versions_stmt is None:
+            t = DetectorState.__table__.c
+            stmt = select(t.machine_id, t.state["version"].as_integer()).where(
+                t.machine_id.in_(bindparam("machines", expanding=True))).order_by(t.machine_id)
+            self._versions_stmt = stmt.with_for_update() if self._pg else stmt
+        stored = {m: int(v or 0) for m, v in s.execute(self._versions_stmt, {"machines": machines}).all()}
         for machine in machines:
             v = stored.get(machine, 0)
             if self._versions.get(machine) != v:
@@ -354,15 +389,19 @@ class Service:
         }
         if not active:
             return {}
-        rows = s.execute(
-            select(Alarm.machine_id, Alarm.ref, Alarm.acknowledged_by, Alarm.acknowledged_at, Alarm.ack_comment)
-            .where(
-                Alarm.machine_id.in_(sorted({m for m, _ in active})),
-                Alarm.state == "acknowledged",
-                Alarm.ref.in_(sorted({r for _, r in active})),
+        if self._acks_stmt is None:
+            t = Alarm.__table__.c
+            self._acks_stmt = (
+                select(t.machine_id, t.ref, t.acknowledged_by, t.acknowledged_at, t.ack_comment)
+                .where(
+                    t.machine_id.in_(bindparam("machines", expanding=True)),
+                    t.state == "acknowledged",
+                    t.ref.in_(bindparam("refs", expanding=True)),
+                )
+                .order_by(t.id)
             )
-            .order_by(Alarm.id)
-        ).all()
+        rows = s.execute(self._acks_stmt, {
+            "machines": sorted({m for m, _ in active}), "refs": sorted({r for _, r in active})}).all()
         out: dict[str, list[Transition]] = {}
         for machine, ref, user, at, comment in rows:
             ev = active.pop((machine, ref), None)
@@ -380,10 +419,18 @@ class Service:
             for m, ts in touched.items()
         })
 
-    def _saved(self, touched: Any) -> None:
-        """After the commit: the cached versions match what was written."""
+    def _saved(self, touched: Any, kept: dict[tuple[str, str], list[dt.datetime]] | None = None) -> None:
+        """After the commit: the cached versions match what was written, and the snapshots
+        the batch kept (or saw) are remembered for the cadence."""
         for m in touched:
             self._versions[m] = (self._versions.get(m) or 0) + 1
+        cadence = self.settings.spectra.snapshot_interval_s
+        for p, times in (kept or {}).items():
+            if times:
+                # Only the latest window matters for readings arriving in order.
+                latest = max(times)
+                self._kept[p] = sorted(t for t in {*self._kept.get(p, ()), *times}
+                                       if t > latest - dt.timedelta(seconds=2 * cadence))
 
     def _forget(self, machines: Any) -> None:
         """After a failed transaction the in-memory evaluators may be ahead of the database."""
@@ -443,10 +490,24 @@ class Service:
                 pending[key] = max(r.ts, pending.get(key, r.ts))
                 if isinstance(r, Waveform):
                     item.analysis = self._analyse(r)
+                # Only a reading not newer than its stream's last commit here can already
+                # be stored by this process: a redelivery, a repeat, an out-of-order copy.
+                # A newer one stored by another process makes the insert come back short
+                # and the batch run again with the check.
+                stored = self._last_ts.get(key)
+                item.check = dup or (stored is not None and r.ts <= stored)
             items.append(item)
 
         machines = sorted({it.reading.machine for it in items if it.reading is not None})
-        self._retry(lambda: self._commit(items), machines)
+        attempts = [0]
+
+        def work() -> None:
+            # A run after a failed one (a reading raced in, a database error) checks
+            # every reading of the batch against the store.
+            attempts[0] += 1
+            self._commit(items, check_all=attempts[0] > 1)
+
+        self._retry(work, machines)
         for it in items:
             r, out = it.reading, it.outcome
             assert out is not None
@@ -501,10 +562,14 @@ class Service:
                 time.sleep(delay)
                 delay = min(delay * 2, DB_RETRY_MAX_S)
 
-    def _commit(self, items: list[_Item]) -> None:
-        """One transaction for a batch (see :meth:`handle_batch`); sets each item's outcome."""
+    def _commit(self, items: list[_Item], *, check_all: bool = True) -> None:
+        """One transaction for a batch (see :meth:`handle_batch`); sets each item's outcome.
+
+        The existence query runs when ``check_all`` or any reading needs it (``_Item.check``);
+        otherwise every reading is taken as new and a short insert raises :class:`_Raced`."""
         touched: dict[str, float] = {}
         with self._lock, self.store.transaction() as s:
+            self._write_lock(s)
             stored_at = utcnow()
             for it in items:
                 it.outcome = None
@@ -514,6 +579,8 @@ class Service:
                     it.outcome = Outcome("rejected", reason=it.rejection.reason)
             waves = [it for it in items if isinstance(it.reading, Waveform)]
             speeds = [it for it in items if isinstance(it.reading, SpeedReading)]
+            if not (check_all or any(it.check for it in items if it.reading is not None)):
+                waves = speeds = []
             have_w = existing_measurements(s, [_wkey(it.reading) for it in waves])
             have_s = existing_speed_readings(s, [_skey(it.reading) for it in speeds])
             fresh: list[_Item] = []
@@ -619,15 +686,21 @@ class Service:
                                 if it.outcome.kind == "waveform" or it.outcome.events), None)
                 if carrier is not None:
                     carrier.outcome.status = self._status(machine, evaluators[machine])
-        self._saved(touched)
+        self._saved(touched, kept)
 
     def _kept_snapshots(self, s: Any, waves: list[_Item], cadence: float | None
                         ) -> dict[tuple[str, str], list[dt.datetime]]:
+        """Snapshot instants kept per point, enough to decide each reading's cadence: from
+        this process's own commits when each reading has one inside its window (exact: a
+        committed snapshot inside the window settles "not due"), else from one query."""
         if cadence is None or not waves:
             return {}
+        window = dt.timedelta(seconds=cadence)
         tss = [to_datetime(it.reading.ts) for it in waves]
-        return snapshot_times(s, [(it.reading.machine, it.reading.point) for it in waves],
-                              min(tss) - dt.timedelta(seconds=cadence), max(tss))
+        points = [(it.reading.machine, it.reading.point) for it in waves]
+        if all(any(ts - window < t <= ts for t in self._kept.get(p, ())) for p, ts in zip(points, tss, strict=True)):
+            return {p: list(self._kept[p]) for p in set(points)}
+        return snapshot_times(s, points, min(tss) - window, max(tss))
 
     @staticmethod
     def _snapshot_due(kept: dict[tuple[str, str], list[dt.datetime]], a: ReadingAnalysis,
@@ -678,16 +751,7 @@ class Service:
         view.zones[evaluation.point] = evaluation.zone
         if evaluation.speed_hz is not None:
             view.speed_hz = evaluation.speed_hz
-        nearest = getattr(evaluation, "nearest_margin", None)
-        if callable(nearest):
-            m = nearest()
-        else:
-            m = min(evaluation.margins, key=lambda r: r.margin_pct - r.required_pct, default=None)
-        if m is not None:
-            view.nearest = {
-                "subject": m.subject, "margin_pct": m.margin_pct,
-                "required_pct": m.required_pct, "status": m.status,
-            }
+        view.unseen.append(evaluation)
 
     def _status(self, machine: str, ev: MachineEvaluator) -> dict[str, Any]:
         view = self._views[machine]
@@ -699,7 +763,7 @@ class Service:
             "ts": None if view.ts is None else dt.datetime.fromtimestamp(view.ts, dt.UTC).isoformat().replace("+00:00", "Z"),
             "state": worst or "normal",
             "speed_hz": view.speed_hz,
-            "nearest_margin": view.nearest,
+            "nearest_margin": view.nearest_margin(),
             "zone": max(zones) if zones else None,
             "zones": dict(view.zones),
             "active_alarms": [
@@ -745,6 +809,12 @@ class Service:
 
     def start(self, *, wait_s: float = 15.0) -> None:
         """Connect, subscribe and start the periodic jobs (stale streams, retention)."""
+        # The start-up heap (numpy, scipy, SQLAlchemy, paho: some 150,000 objects) never
+        # becomes garbage, but every full collection walks it: 100-200 ms with the GIL
+        # held, a stall of the worker every few seconds under load. Collected once here and
+        # moved out of the collector's sight; later objects are collected as usual.
+        gc.collect()
+        gc.freeze()
         self.publisher = Publisher(self.mqtt)
         try:
             self.publisher.start(wait_s)
@@ -779,7 +849,14 @@ class Service:
         if self.metrics_server is not None:
             self.metrics_server.stop()
         self.store.close()
-        log.info("service stopped")
+        src = self.source
+        get = self.metrics.registry.get_sample_value
+        log.info("service stopped", extra={
+            "received": src.stats.received if src else 0, "acked": src.stats.acked if src else 0,
+            "batches": int(get("whirlwatch_batch_size_count") or 0),
+            "db_retries": int(get("whirlwatch_db_retries_total") or 0),
+            "batch_reruns": int(get("whirlwatch_batch_reruns_total") or 0),
+        })
 
     def health(self) -> dict[str, Any]:
         """The health view: connected to the broker, messages in flight and handled."""
@@ -832,6 +909,7 @@ class Service:
         for m in self.registry.machines:
             def work(mid: str = m.id) -> Outcome | None:
                 with self._lock, self.store.transaction() as s:
+                    self._write_lock(s)
                     ev = self._take_states(s, [mid])[mid]
                     trans = ev.check_stale(now)
                     if not trans:

@@ -24,7 +24,7 @@ from dataclasses import dataclass
 from typing import Any, Protocol
 
 import numpy as np
-from sqlalchemy import Table, and_, func, select
+from sqlalchemy import Table, and_, bindparam, func, select
 from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.orm import Session
 
@@ -111,6 +111,18 @@ def to_datetime(t: float | int | dt.datetime) -> dt.datetime:
 
 
 _DATACLASS_FIELDS: dict[type, tuple[str, ...]] = {}
+
+#: Statements of the service's hot path, built once per key: building a SQLAlchemy
+#: statement (coercions, cache key, ``excluded`` columns) costs about as much as running
+#: it on SQLite, and a batch of one reading runs several.
+_STATEMENTS: dict[tuple[Any, ...], Any] = {}
+
+
+def _statement(key: tuple[Any, ...], build: Any) -> Any:
+    stmt = _STATEMENTS.get(key)
+    if stmt is None:
+        stmt = _STATEMENTS[key] = build()
+    return stmt
 
 
 def jsonable(obj: Any) -> Any:
@@ -282,11 +294,11 @@ def insert_many_ignore(
     ins_mod = postgresql if dialect == "postgresql" else sqlite
     # One statement executed with many parameter sets: SQLAlchemy sends it as batched
     # multi-row VALUES ("insertmanyvalues") and compiles it once, not once per row count.
-    stmt = (
+    stmt = _statement(("insert_many_ignore", dialect, table.name, tuple(keys)), lambda: (
         ins_mod.insert(table)
         .on_conflict_do_nothing(index_elements=list(keys))
         .returning(table.c.id)
-    )
+    ))
     return len(session.execute(stmt, [dict(r) for r in rows]).all())
 
 
@@ -297,11 +309,11 @@ def existing_measurements(
     want = set(keys)
     if not want:
         return set()
+    t = Measurement.__table__.c
+    stmt = _statement(("existing_measurements",), lambda: select(t.machine_id, t.point_id, t.ts).where(
+        t.ts.in_(bindparam("ts", expanding=True)), t.machine_id.in_(bindparam("machines", expanding=True))))
     rows = session.execute(
-        select(Measurement.machine_id, Measurement.point_id, Measurement.ts).where(
-            Measurement.ts.in_(sorted({k[2] for k in want})),
-            Measurement.machine_id.in_(sorted({k[0] for k in want})),
-        )
+        stmt, {"ts": sorted({k[2] for k in want}), "machines": sorted({k[0] for k in want})}
     ).all()
     return {(m, p, t) for m, p, t in rows} & want
 
@@ -313,11 +325,11 @@ def existing_speed_readings(
     want = set(keys)
     if not want:
         return set()
+    t = SpeedReadingRow.__table__.c
+    stmt = _statement(("existing_speed_readings",), lambda: select(t.machine_id, t.ts).where(
+        t.ts.in_(bindparam("ts", expanding=True)), t.machine_id.in_(bindparam("machines", expanding=True))))
     rows = session.execute(
-        select(SpeedReadingRow.machine_id, SpeedReadingRow.ts).where(
-            SpeedReadingRow.ts.in_(sorted({k[1] for k in want})),
-            SpeedReadingRow.machine_id.in_(sorted({k[0] for k in want})),
-        )
+        stmt, {"ts": sorted({k[1] for k in want}), "machines": sorted({k[0] for k in want})}
     ).all()
     return {(m, t) for m, t in rows} & want
 
@@ -331,14 +343,14 @@ def snapshot_times(
     out: dict[tuple[str, str], list[dt.datetime]] = {p: [] for p in pairs}
     if not pairs:
         return out
+    t = SpectrumSnapshot.__table__.c
+    stmt = _statement(("snapshot_times",), lambda: select(t.machine_id, t.point_id, t.ts).where(
+        t.machine_id.in_(bindparam("machines", expanding=True)),
+        t.ts > bindparam("since", type_=t.ts.type),
+        t.ts <= bindparam("until", type_=t.ts.type),
+    ).distinct())
     rows = session.execute(
-        select(SpectrumSnapshot.machine_id, SpectrumSnapshot.point_id, SpectrumSnapshot.ts)
-        .where(
-            SpectrumSnapshot.machine_id.in_(sorted({p[0] for p in pairs})),
-            SpectrumSnapshot.ts > since,
-            SpectrumSnapshot.ts <= until,
-        )
-        .distinct()
+        stmt, {"machines": sorted({p[0] for p in pairs}), "since": since, "until": until}
     ).all()
     for m, p, t in rows:
         if (m, p) in out:
@@ -650,26 +662,26 @@ def save_detector_states(
     session: Session, states: Mapping[str, tuple[Mapping[str, Any], dt.datetime | float | None]]
 ) -> None:
     """Upsert the detector state JSON of several machines (``{machine: (state, ts)}``) with
-    one Core statement each, inside the caller's transaction."""
+    one statement (one parameter set per machine), inside the caller's transaction."""
     if not states:
         return
     dialect = session.get_bind().dialect.name
     ins_mod = postgresql if dialect == "postgresql" else sqlite
     table = DetectorState.__table__
-    now = utcnow()
-    for machine in sorted(states):
-        state, ts = states[machine]
-        stmt = ins_mod.insert(table).values(
-            machine_id=machine,
-            state=jsonable(state),
-            ts=to_datetime(ts) if ts is not None else None,
-            updated_at=now,
-        )
-        stmt = stmt.on_conflict_do_update(
+
+    def build() -> Any:
+        stmt = ins_mod.insert(table)
+        return stmt.on_conflict_do_update(
             index_elements=["machine_id"],
             set_={"state": stmt.excluded.state, "ts": stmt.excluded.ts, "updated_at": stmt.excluded.updated_at},
         )
-        session.execute(stmt)
+
+    now = utcnow()
+    session.execute(_statement(("save_detector_states", dialect), build), [
+        {"machine_id": machine, "state": jsonable(state),
+         "ts": to_datetime(ts) if ts is not None else None, "updated_at": now}
+        for machine, (state, ts) in sorted(states.items())
+    ])
 
 
 def add_dead_letter(
