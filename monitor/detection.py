@@ -298,20 +298,24 @@ class ReadingEvaluation:
             return self.margins.nearest_margin()
         return min(self.margins, key=lambda r: r.margin_pct - r.required_pct, default=None)
 
-    def to_json(self) -> dict:
-        return {
+    def to_json(self, *, margins: bool = True) -> dict:
+        """JSON-able form; ``margins=False`` leaves out the margin table (the costly part),
+        for readings whose table nobody will read (a store keeping it on the newest only)."""
+        out = {
             "machine": self.machine, "point": self.point, "ts": self.ts,
             "reading_id": self.reading_id, "speed_hz": self.speed_hz,
             "overall_velocity_mm_s_rms": self.overall_velocity_mm_s_rms, "zone": self.zone,
             "zone_limits_mm_s": list(self.zone_limits.as_tuple()),
             "zone_limits_source": self.zone_limits.source,
-            "margins": [m.to_json() for m in self.margins],
             "approach": [a.to_json() for a in self.approach],
             "features": [f.to_json() for f in self.features],
             "health": self.health.to_json(), "growth_ignored": self.growth_ignored,
             "machine_alarms_suppressed": self.machine_alarms_suppressed,
             "transitions": [t.to_json() for t in self.transitions],
         }
+        if margins:
+            out["margins"] = [m.to_json() for m in self.margins]
+        return out
 
 
 def _growth_orders(machine: Machine) -> tuple[tuple[float, str], ...]:

@@ -176,10 +176,10 @@ def _skey(r: Any) -> tuple[str, dt.datetime]:
     return (r.machine, to_datetime(r.ts))
 
 
-def _evaluation_json(evaluation: ReadingEvaluation) -> Any:
+def _evaluation_json(evaluation: ReadingEvaluation, *, margins: bool = True) -> Any:
     # The detector's own JSON form (zone limits as ``zone_limits_mm_s``; the dashboard
     # reads both forms); jsonable turns NaN into null, which JSON columns need.
-    return jsonable(evaluation.to_json())
+    return jsonable(evaluation.to_json(margins=margins))
 
 
 @dataclass
@@ -609,6 +609,7 @@ class Service:
             bare_rows: list[dict[str, Any]] = []
             speed_rows: list[dict[str, Any]] = []
             snap_rows: list[dict[str, Any]] = []
+            pending_json: list[tuple[dict[str, Any], ReadingEvaluation]] = []
             for it in fresh:
                 r = it.reading
                 ev = evaluators[r.machine]
@@ -632,7 +633,7 @@ class Service:
                         continue
                     meas_rows.append(measurement_values(
                         a, zone=evaluation.zone, health=evaluation.health, evaluation=None, stored_at=stored_at))
-                    meas_rows[-1]["evaluation"] = _evaluation_json(evaluation)
+                    pending_json.append((meas_rows[-1], evaluation))
                     if it.transitions:
                         # Kept below as the transitions' evidence; counts for the cadence.
                         kept.setdefault((a.machine, a.point), []).append(to_datetime(a.ts))
@@ -643,6 +644,15 @@ class Service:
                     it.transitions = ev.observe_speed(r) if r.speed_hz > 0 else []
                     view = self._views[r.machine]
                     view.speed_hz, view.speed_source = r.speed_hz, "measured"
+
+            # The margin table is kept with the batch's last reading of each machine only:
+            # the dashboard reads it from a machine's newest reading (and recomputes it
+            # when absent), and building it for every reading is a sizeable share of the
+            # per-reading cost.
+            last_of_machine = {row["machine_id"]: i for i, (row, _) in enumerate(pending_json)}
+            for i, (row, evaluation) in enumerate(pending_json):
+                row["evaluation"] = _evaluation_json(
+                    evaluation, margins=last_of_machine[row["machine_id"]] == i)
 
             # Stamped as late as possible: stored_at is what publish-to-commit latency uses.
             stored_at = utcnow()

@@ -408,3 +408,28 @@ def test_broker_redelivery_far_behind_its_stream_is_stored_not_dropped(tmp_path:
     finally:
         svc.store.close()
     assert measurement_count(url) == (6, 6)
+
+
+def test_margin_table_is_kept_with_each_machines_newest_reading_of_a_batch(tmp_path: Path) -> None:
+    # The dashboard reads the margin table from a machine's newest reading; the service
+    # keeps it there and leaves it out of the older readings of the same batch.
+    from monitor.store.models import Measurement
+
+    msgs = waveforms("ab-1", 4)
+    url = sqlite(tmp_path, "margins.sqlite")
+    svc = Service(settings_for(url), stale_check_s=0)
+    try:
+        assert [o.kind for o in svc.handle_batch(msgs[:3])] == ["waveform"] * 3
+        assert [o.kind for o in svc.handle_batch(msgs[3:])] == ["waveform"]
+    finally:
+        svc.store.close()
+    store = Store.open(url)
+    try:
+        with store.session() as s:
+            rows = s.execute(select(Measurement.ts, Measurement.evaluation).order_by(Measurement.ts)).all()
+    finally:
+        store.close()
+    has_margins = ["margins" in ev for _, ev in rows]
+    assert has_margins == [False, False, True, True]
+    # the kept table is the full mode x excitation table: 1 mode x (1x, 2x, 13x) for ab-1
+    assert len(rows[-1][1]["margins"]) == 3
