@@ -8,8 +8,9 @@ Per batch of messages (those already waiting in the hand-off queue, at most
 2. waveforms: analyse (pure, outside any transaction);
 3. one transaction: one query finds the readings already stored (a redelivery is never
    fed to the detector twice); one query takes the detector-state versions of the machines
-   touched (row locks on PostgreSQL) and reloads an evaluator only when another process
-   moved it on; acknowledgements made in the dashboard are applied; each new reading is
+   touched (row locks on PostgreSQL) with their alarms acknowledged in the dashboard,
+   reloads an evaluator only when another process moved it on and applies those
+   acknowledgements; each new reading is
    evaluated in arrival order; measurements, speed readings and spectra go in as multi-row
    ``INSERT ... ON CONFLICT DO NOTHING``; alarm transitions are recorded in order; each
    machine's detector state is written once;
@@ -42,7 +43,7 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any
 
-from sqlalchemy import bindparam, event, func, select
+from sqlalchemy import and_, bindparam, event, func, select
 
 from monitor.alarms import Transition, severity_rank
 from monitor.analysis import ReadingAnalysis, analyse_waveform
@@ -341,34 +342,69 @@ class Service:
 
     # -- detector state
 
-    def _write_lock(self, s: Any) -> None:
+    def _write_lock(self, s: Any) -> Any:
         """SQLite: take the database's write lock first (waiting up to busy_timeout).
 
         A transaction that reads and then writes cannot wait for the lock: if another
         process committed since its first read, SQLite fails the write at once with
         "database is locked" and the whole batch is retried after a back-off. A write that
         matches no row takes the lock before any read, so the wait is the busy handler's.
-        (PostgreSQL serialises on the detector-state row locks instead.)"""
+        (PostgreSQL serialises on the detector-state row locks instead.) Returns the
+        session's connection (its transaction begun)."""
+        c = s.connection()
         if self._sqlite:
-            s.connection().exec_driver_sql("UPDATE detector_state SET machine_id = machine_id WHERE 0")
+            # Straight on the driver's connection: through SQLAlchemy this no-op costs
+            # several times what SQLite spends on it.
+            c.connection.driver_connection.execute("UPDATE detector_state SET machine_id = machine_id WHERE 0")
+        return c
 
-    def _take_states(self, s: Any, machines: list[str]) -> dict[str, MachineEvaluator]:
+    def _take_states(self, s: Any, machines: list[str], *, acks: bool = True
+                     ) -> tuple[dict[str, MachineEvaluator], dict[str, list[Transition]]]:
         """Lock (PostgreSQL, in machine order so two processes cannot deadlock) and check
-        the stored state versions of ``machines`` in one query; reload an evaluator only
-        when another process moved its state on."""
+        the stored state versions of ``machines``, reloading an evaluator only when another
+        process moved its state on, and apply the acknowledgements made in the dashboard
+        (returned per machine for publishing; the dashboard has stored them already),
+        unless ``acks`` is false.
+
+        One query: the state rows joined to the machines' acknowledged alarms (the alarms
+        still open and acknowledged: a few at most; only the detector-state rows are locked)."""
         if not machines:
-            return {}
+            return {}, {}
         if self._versions_stmt is None:
-            t = DetectorState.__table__.c
-            stmt = select(t.machine_id, t.state["version"].as_integer()).where(
-                t.machine_id.in_(bindparam("machines", expanding=True))).order_by(t.machine_id)
-            self._versions_stmt = stmt.with_for_update() if self._pg else stmt
-        stored = {m: int(v or 0) for m, v in s.execute(self._versions_stmt, {"machines": machines}).all()}
+            d, a = DetectorState.__table__, Alarm.__table__
+            stmt = (
+                select(d.c.machine_id, d.c.state["version"].as_integer(), a.c.ref,
+                       a.c.acknowledged_by, a.c.acknowledged_at, a.c.ack_comment)
+                .select_from(d.outerjoin(a, and_(a.c.machine_id == d.c.machine_id,
+                                                 a.c.state == "acknowledged")))
+                .where(d.c.machine_id.in_(bindparam("machines", expanding=True)))
+                .order_by(d.c.machine_id, a.c.id)
+            )
+            self._versions_stmt = stmt.with_for_update(of=d) if self._pg else stmt
+        rows = s.connection().execute(self._versions_stmt, {"machines": machines}).all()
+        stored = {m: int(v or 0) for m, v, *_ in rows}
         for machine in machines:
             v = stored.get(machine, 0)
             if self._versions.get(machine) != v:
                 self._reload(s, machine, v)
-        return {m: self._evaluators[m] for m in machines}
+        evaluators = {m: self._evaluators[m] for m in machines}
+        active = {
+            (m, a.id): ev for m, ev in evaluators.items() for a in ev.engine.active() if a.state == "active"
+        }
+        if not (acks and active):
+            return evaluators, {}
+        if any(m not in stored for m, _ in active):
+            # Open alarms but no stored state row (removed by hand): the join cannot see
+            # their acknowledgements, so ask the alarms alone.
+            return evaluators, self._sync_acks(s, evaluators)
+        out: dict[str, list[Transition]] = {}
+        for machine, _v, ref, user, at, comment in rows:
+            ev = active.pop((machine, ref), None) if ref is not None else None
+            if ev is None:
+                continue
+            when = at.timestamp() if at is not None else self.clock()
+            out.setdefault(machine, []).append(ev.acknowledge(ref, user or "unknown", comment or "", when))
+        return evaluators, out
 
     def _reload(self, s: Any, machine: str, version: int) -> None:
         state = s.execute(
@@ -569,7 +605,9 @@ class Service:
         otherwise every reading is taken as new and a short insert raises :class:`_Raced`."""
         touched: dict[str, float] = {}
         with self._lock, self.store.transaction() as s:
-            self._write_lock(s)
+            # Core statements run on the session's connection (same transaction): the ORM
+            # Session's execute adds about as much per statement as SQLite takes.
+            c = self._write_lock(s)
             stored_at = utcnow()
             for it in items:
                 it.outcome = None
@@ -581,8 +619,8 @@ class Service:
             speeds = [it for it in items if isinstance(it.reading, SpeedReading)]
             if not (check_all or any(it.check for it in items if it.reading is not None)):
                 waves = speeds = []
-            have_w = existing_measurements(s, [_wkey(it.reading) for it in waves])
-            have_s = existing_speed_readings(s, [_skey(it.reading) for it in speeds])
+            have_w = existing_measurements(c, [_wkey(it.reading) for it in waves])
+            have_s = existing_speed_readings(c, [_skey(it.reading) for it in speeds])
             fresh: list[_Item] = []
             for it in items:
                 r = it.reading
@@ -600,10 +638,9 @@ class Service:
             for it in fresh:
                 assert it.reading is not None
                 touched[it.reading.machine] = max(it.reading.ts, touched.get(it.reading.machine, it.reading.ts))
-            evaluators = self._take_states(s, sorted(touched))
-            acks = self._sync_acks(s, evaluators)
+            evaluators, acks = self._take_states(s, sorted(touched))
             cadence = self.settings.spectra.snapshot_interval_s or None
-            kept = self._kept_snapshots(s, [it for it in fresh if it.analysis is not None], cadence)
+            kept = self._kept_snapshots(c, [it for it in fresh if it.analysis is not None], cadence)
 
             meas_rows: list[dict[str, Any]] = []
             bare_rows: list[dict[str, Any]] = []
@@ -659,12 +696,12 @@ class Service:
             for row in (*meas_rows, *bare_rows):
                 row["stored_at"] = stored_at
             mkeys = ("machine_id", "point_id", "ts")
-            new = insert_many_ignore(s, Measurement.__table__, meas_rows, mkeys)
-            new += insert_many_ignore(s, Measurement.__table__, bare_rows, mkeys)
-            new += insert_many_ignore(s, SpeedReadingRow.__table__, speed_rows, ("machine_id", "ts"))
+            new = insert_many_ignore(c, Measurement.__table__, meas_rows, mkeys)
+            new += insert_many_ignore(c, Measurement.__table__, bare_rows, mkeys)
+            new += insert_many_ignore(c, SpeedReadingRow.__table__, speed_rows, ("machine_id", "ts"))
             if new != len(meas_rows) + len(bare_rows) + len(speed_rows):
                 raise _Raced
-            insert_many_ignore(s, SpectrumSnapshot.__table__, snap_rows, ("machine_id", "point_id", "ts", "kind"))
+            insert_many_ignore(c, SpectrumSnapshot.__table__, snap_rows, ("machine_id", "point_id", "ts", "kind"))
 
             # Alarm transitions in arrival order; each waveform's spectra are its evidence.
             acks_sent: set[str] = set()
@@ -686,7 +723,7 @@ class Service:
                 kind = "waveform" if isinstance(r, Waveform) else "speed"
                 it.outcome = Outcome(kind, machine=r.machine,
                                      events=self._events(s, trans, ids, mine) if trans or mine else [])
-            self._save_states(s, touched)
+            self._save_states(c, touched)
 
             # The retained status once per machine: after its last waveform, or after its
             # last event when only speed readings came.
@@ -920,7 +957,7 @@ class Service:
             def work(mid: str = m.id) -> Outcome | None:
                 with self._lock, self.store.transaction() as s:
                     self._write_lock(s)
-                    ev = self._take_states(s, [mid])[mid]
+                    ev = self._take_states(s, [mid], acks=False)[0][mid]
                     trans = ev.check_stale(now)
                     if not trans:
                         return None

@@ -433,3 +433,44 @@ def test_margin_table_is_kept_with_each_machines_newest_reading_of_a_batch(tmp_p
     assert has_margins == [False, False, True, True]
     # the kept table is the full mode x excitation table: 1 mode x (1x, 2x, 13x) for ab-1
     assert len(rows[-1][1]["margins"]) == 3
+
+
+def test_acknowledgement_from_the_dashboard_reaches_the_service_and_is_published(tmp_path: Path) -> None:
+    # DESIGN.md section 5: an alarm is acknowledged by a named user (here through the
+    # store function the dashboard calls); the service applies it to its detector and
+    # publishes the transition once, and acknowledging does not clear the alarm.
+    from monitor.store.models import Alarm
+    from monitor.store.writes import acknowledge_alarm
+
+    msgs = traffic("bwm-1")  # the motor whose sensor fails (sample_streams/README.md)
+    url = sqlite(tmp_path, "ack.sqlite")
+    svc = Service(settings_for(url), stale_check_s=0)
+    try:
+        raised_at = None
+        for i in range(0, len(msgs), 8):
+            svc.handle_batch(msgs[i:i + 8])
+            with Store.open(url).session() as s:
+                active = s.execute(select(Alarm).where(Alarm.state == "active")).scalars().first()
+                if active is not None:
+                    raised_at, alarm_id = i + 8, active.id
+                    break
+        assert raised_at is not None, "the failing sensor raised no alarm"
+        store = Store.open(url)
+        try:
+            with store.transaction() as s:
+                acknowledge_alarm(s, alarm_id, "maria", "cable connector ordered")
+        finally:
+            store.close()
+        rest = msgs[raised_at:raised_at + 8]
+        assert rest, "the stream ended before a further batch"
+        outs = svc.handle_batch(rest)
+        events = [e for o in outs for e in o.events if e.get("transition") == "acknowledged"]
+        assert len(events) == 1 and events[0]["acknowledged_by"] == "maria"
+        assert events[0]["state"] == "acknowledged" and events[0]["cleared_at"] is None
+        later = svc.handle_batch(msgs[raised_at + 8:raised_at + 16])
+        assert not [e for o in later for e in o.events if e.get("transition") == "acknowledged"]
+        ref = events[0]["ref"]
+        assert any(a["id"] == ref and a["state"] == "acknowledged"
+                   for a in svc._evaluators["bwm-1"].active_alarms())
+    finally:
+        svc.store.close()

@@ -24,7 +24,7 @@ from dataclasses import dataclass
 from typing import Any, Protocol
 
 import numpy as np
-from sqlalchemy import Table, and_, bindparam, func, select
+from sqlalchemy import Connection, Table, and_, bindparam, func, select
 from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.orm import Session
 
@@ -118,6 +118,12 @@ _DATACLASS_FIELDS: dict[type, tuple[str, ...]] = {}
 _STATEMENTS: dict[tuple[Any, ...], Any] = {}
 
 
+def _dialect_name(db: Session | Connection) -> str:
+    """The dialect of a Session or of a Core Connection (the service runs its hot
+    statements on the session's connection: the ORM layer costs more than SQLite does)."""
+    return db.dialect.name if isinstance(db, Connection) else db.get_bind().dialect.name
+
+
 def _statement(key: tuple[Any, ...], build: Any) -> Any:
     stmt = _STATEMENTS.get(key)
     if stmt is None:
@@ -178,7 +184,7 @@ def insert_ignore(
 ) -> Any:
     """``INSERT ... ON CONFLICT (keys) DO NOTHING RETURNING id``: the new id, or None
     when a row with the same key exists."""
-    dialect = session.get_bind().dialect.name
+    dialect = _dialect_name(session)
     ins_mod = postgresql if dialect == "postgresql" else sqlite
     stmt = (
         ins_mod.insert(table)
@@ -284,13 +290,13 @@ def snapshot_rows(
 
 
 def insert_many_ignore(
-    session: Session, table: Table, rows: Sequence[Mapping[str, Any]], keys: Sequence[str]
+    session: Session | Connection, table: Table, rows: Sequence[Mapping[str, Any]], keys: Sequence[str]
 ) -> int:
     """Multi-row ``INSERT ... ON CONFLICT (keys) DO NOTHING``; returns how many rows were
     new (rows whose key already exists are skipped). All rows must have the same columns."""
     if not rows:
         return 0
-    dialect = session.get_bind().dialect.name
+    dialect = _dialect_name(session)
     ins_mod = postgresql if dialect == "postgresql" else sqlite
     # One statement executed with many parameter sets: SQLAlchemy sends it as batched
     # multi-row VALUES ("insertmanyvalues") and compiles it once, not once per row count.
@@ -303,7 +309,7 @@ def insert_many_ignore(
 
 
 def existing_measurements(
-    session: Session, keys: Iterable[tuple[str, str, dt.datetime]]
+    session: Session | Connection, keys: Iterable[tuple[str, str, dt.datetime]]
 ) -> set[tuple[str, str, dt.datetime]]:
     """Which of the (machine, point, ts) keys are already stored, in one query."""
     want = set(keys)
@@ -319,7 +325,7 @@ def existing_measurements(
 
 
 def existing_speed_readings(
-    session: Session, keys: Iterable[tuple[str, dt.datetime]]
+    session: Session | Connection, keys: Iterable[tuple[str, dt.datetime]]
 ) -> set[tuple[str, dt.datetime]]:
     """Which of the (machine, ts) speed-reading keys are already stored, in one query."""
     want = set(keys)
@@ -335,7 +341,7 @@ def existing_speed_readings(
 
 
 def snapshot_times(
-    session: Session, points: Iterable[tuple[str, str]], since: dt.datetime, until: dt.datetime
+    session: Session | Connection, points: Iterable[tuple[str, str]], since: dt.datetime, until: dt.datetime
 ) -> dict[tuple[str, str], list[dt.datetime]]:
     """Instants of the spectrum snapshots kept per (machine, point) in ``(since, until]``,
     in one query (the batch form of :func:`snapshot_due`)."""
@@ -659,13 +665,13 @@ def save_detector_state(
 
 
 def save_detector_states(
-    session: Session, states: Mapping[str, tuple[Mapping[str, Any], dt.datetime | float | None]]
+    session: Session | Connection, states: Mapping[str, tuple[Mapping[str, Any], dt.datetime | float | None]]
 ) -> None:
     """Upsert the detector state JSON of several machines (``{machine: (state, ts)}``) with
     one statement (one parameter set per machine), inside the caller's transaction."""
     if not states:
         return
-    dialect = session.get_bind().dialect.name
+    dialect = _dialect_name(session)
     ins_mod = postgresql if dialect == "postgresql" else sqlite
     table = DetectorState.__table__
 
