@@ -31,13 +31,16 @@ from monitor.streams import DEFAULT_PREFIX, StreamError, iso_utc, read_stream
 SPEED_MATCH_S = 5.0
 
 # A file is a recording: any age is fine, every other check is the live one.
-_FILE_LIMITS = IngestLimits(max_age_s=math.inf, max_future_s=math.inf)
+FILE_LIMITS = IngestLimits(max_age_s=math.inf, max_future_s=math.inf)
 
 
 @dataclasses.dataclass
-class _Outcome:
-    analyses: int = 0
+class Outcome:
+    """Counts of a pass over a stream file (for the summary on stderr); shared by the
+    commands that read stream files (analyse, bumptest, passage)."""
+
     seen: int = 0
+    accepted: int = 0
     rejected: Counter[str] = dataclasses.field(default_factory=Counter)
     examples: dict[str, str] = dataclasses.field(default_factory=dict)
 
@@ -45,16 +48,22 @@ class _Outcome:
         self.rejected[reason] += 1
         self.examples.setdefault(reason, detail)
 
+    def report(self, what: str) -> None:
+        n_rej = sum(self.rejected.values())
+        click.echo(f"{self.accepted} {what}, {n_rej} messages rejected.", err=True)
+        for reason, count in sorted(self.rejected.items()):
+            click.echo(f"  rejected {count} x {reason}: e.g. {self.examples[reason]}", err=True)
+
 
 def analyse_stream(
-    path: Path, registry: Registry, *, prefix: str = DEFAULT_PREFIX, outcome: _Outcome | None = None
+    path: Path, registry: Registry, *, prefix: str = DEFAULT_PREFIX, outcome: Outcome | None = None
 ) -> Iterator[ReadingAnalysis]:
     """Analyses of every accepted waveform of stream file ``path``, in file order.
 
     Rejections (malformed lines, messages ingest refuses, waveforms the analysis refuses)
     are counted in ``outcome``; nothing here raises for bad content.
     """
-    out = outcome if outcome is not None else _Outcome()
+    out = outcome if outcome is not None else Outcome()
     last_ts: dict[tuple[str, str], float] = {}
     latest_speed: dict[str, SpeedReading] = {}
     machines = registry.by_id()
@@ -68,7 +77,7 @@ def analyse_stream(
         try:
             reading = decode_message(
                 topic, payload, registry, prefix=prefix,
-                last_ts=lambda m, p: last_ts.get((m, p)), limits=_FILE_LIMITS,
+                last_ts=lambda m, p: last_ts.get((m, p)), limits=FILE_LIMITS,
             )
         except Rejected as exc:
             out.reject(exc.reason, exc.detail)
@@ -89,7 +98,7 @@ def analyse_stream(
         except ValueError as exc:
             out.reject("analysis_refused", str(exc))
             continue
-        out.analyses += 1
+        out.accepted += 1
         yield analysis
 
 
@@ -156,7 +165,7 @@ def analyse(file: Path, machines_file: Path, as_json: bool, prefix: str) -> None
         total = _count_lines(file)
     except OSError as exc:
         raise click.ClickException(f"cannot read stream file {str(file)!r}: {exc.strerror}.") from exc
-    outcome = _Outcome()
+    outcome = Outcome()
     err = sys.stderr
     if not as_json:
         click.echo(_HEADER)
@@ -171,7 +180,4 @@ def analyse(file: Path, machines_file: Path, as_json: bool, prefix: str) -> None
             bar.update(outcome.seen - last_count)
             last_count = outcome.seen
         bar.update(total - last_count)
-    n_rej = sum(outcome.rejected.values())
-    click.echo(f"{outcome.analyses} waveforms analysed, {n_rej} messages rejected.", err=True)
-    for reason, count in sorted(outcome.rejected.items()):
-        click.echo(f"  rejected {count} x {reason}: e.g. {outcome.examples[reason]}", err=True)
+    outcome.report("waveforms analysed")

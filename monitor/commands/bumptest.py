@@ -17,7 +17,7 @@ import dataclasses
 import json
 import math
 import sys
-from collections import Counter, defaultdict
+from collections import defaultdict
 from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import Any
@@ -26,9 +26,9 @@ import click
 import numpy as np
 
 from monitor import units
+from monitor.commands.analyse import FILE_LIMITS, Outcome
 from monitor.ingest import (
     UNIT_QUANTITY,
-    IngestLimits,
     Rejected,
     decode_message,
     parse_topic,
@@ -46,32 +46,10 @@ from monitor.streams import DEFAULT_PREFIX, StreamError, read_stream
 
 #: Units a hammer (force) channel may carry.
 FORCE_UNITS = ("N", "kN", "lbf")
-# A file is a recording: any age is fine, every other check is the live one.
-FILE_LIMITS = IngestLimits(max_age_s=math.inf, max_future_s=math.inf)
 #: Force and response blocks pair when their timestamps differ by at most this, s.
 PAIR_TOLERANCE_S = 1e-3
 # Placeholder the force channel is decoded under (ingest knows vibration units only).
 _FORCE_PLACEHOLDER = "m/s^2"
-
-
-@dataclasses.dataclass
-class Outcome:
-    """Counts of a pass over a stream file (for the summary on stderr)."""
-
-    seen: int = 0
-    accepted: int = 0
-    rejected: Counter[str] = dataclasses.field(default_factory=Counter)
-    examples: dict[str, str] = dataclasses.field(default_factory=dict)
-
-    def reject(self, reason: str, detail: str) -> None:
-        self.rejected[reason] += 1
-        self.examples.setdefault(reason, detail)
-
-    def report(self, what: str) -> None:
-        n_rej = sum(self.rejected.values())
-        click.echo(f"{self.accepted} {what}, {n_rej} messages rejected.", err=True)
-        for reason, count in sorted(self.rejected.items()):
-            click.echo(f"  rejected {count} x {reason}: e.g. {self.examples[reason]}", err=True)
 
 
 def count_lines(path: Path) -> int:

@@ -27,7 +27,7 @@ import click
 import numpy as np
 
 from monitor.analysis import ReadingAnalysis
-from monitor.commands.analyse import _Outcome, analyse_stream
+from monitor.commands.analyse import Outcome, analyse_stream
 from monitor.commands.bumptest import _json_safe, _open_registry, check_file
 from monitor.modes import (
     DEFAULT_SHIFT_TOLERANCE_PCT,
@@ -187,7 +187,7 @@ def passage(file: Path, machines_file: Path, machine_id: str, amplitude: str,
     if min_speed_rpm is not None and not (math.isfinite(min_speed_rpm) and min_speed_rpm >= 0):
         raise click.UsageError(f"--min-speed must be a speed >= 0 in r/min, got {min_speed_rpm!r}.")
     min_hz = (machine.speed_range_rpm[0] / 2 if min_speed_rpm is None else min_speed_rpm) / 60.0
-    outcome = _Outcome()
+    outcome = Outcome()
     by_point: dict[str, list[ReadingAnalysis]] = defaultdict(list)
     last = 0
     with click.progressbar(length=total, label="analysing", file=sys.stderr) as bar:
@@ -224,7 +224,4 @@ def passage(file: Path, machines_file: Path, machine_id: str, amplitude: str,
             print_table(r)
     if not as_json:
         click.echo(f"skip bands from the stored modes: {_bands_text(stored_bands)}")
-    n_rej = sum(outcome.rejected.values())
-    click.echo(f"{outcome.analyses} waveforms analysed, {n_rej} messages rejected.", err=True)
-    for reason, count in sorted(outcome.rejected.items()):
-        click.echo(f"  rejected {count} x {reason}: e.g. {outcome.examples[reason]}", err=True)
+    outcome.report("waveforms analysed")
