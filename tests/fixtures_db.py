@@ -12,6 +12,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import datetime as dt
 import uuid
 from collections.abc import Iterator
@@ -39,10 +40,12 @@ def postgres_unreachable_reason() -> str | None:
     return _pg_state["reason"]
 
 
-@pytest.fixture(params=["sqlite", pytest.param("postgresql", marks=pytest.mark.postgres)])
-def database_url(request: pytest.FixtureRequest, tmp_path) -> Iterator[str]:
-    if request.param == "sqlite":
-        yield f"sqlite:///{tmp_path / 'store.sqlite'}"
+@contextlib.contextmanager
+def fresh_database(kind: str, directory) -> Iterator[str]:
+    """A URL of an empty database: a SQLite file in ``directory`` or a new PostgreSQL
+    schema (dropped afterwards); skips when PostgreSQL is unreachable."""
+    if kind == "sqlite":
+        yield f"sqlite:///{directory / f'store-{uuid.uuid4().hex[:8]}.sqlite'}"
         return
     reason = postgres_unreachable_reason()
     if reason:
@@ -58,6 +61,12 @@ def database_url(request: pytest.FixtureRequest, tmp_path) -> Iterator[str]:
     finally:
         with psycopg.connect(dsn, autocommit=True) as conn:
             conn.execute(f'DROP SCHEMA "{schema}" CASCADE')
+
+
+@pytest.fixture(params=["sqlite", pytest.param("postgresql", marks=pytest.mark.postgres)])
+def database_url(request: pytest.FixtureRequest, tmp_path) -> Iterator[str]:
+    with fresh_database(request.param, tmp_path) as url:
+        yield url
 
 
 @pytest.fixture

@@ -4,42 +4,17 @@ readings the real analysis and detection code made (tests/dashboard_seed.py)."""
 
 from __future__ import annotations
 
-import contextlib
 import json
 import re
-import uuid
 
 import pytest
 from sqlalchemy import event
 
 from dashboard import create_app
 from tests.dashboard_seed import PASSWORDS, seed
-from tests.fixtures_db import PG_SERVER_URL, postgres_unreachable_reason
+from tests.fixtures_db import fresh_database
 
 BACKENDS = ["sqlite", pytest.param("postgresql", marks=pytest.mark.postgres)]
-
-
-@contextlib.contextmanager
-def fresh_database(kind: str, directory):
-    """A URL of an empty database: a SQLite file in ``directory`` or a new PostgreSQL
-    schema (dropped afterwards), as tests/fixtures_db.py's ``database_url`` makes them."""
-    if kind == "sqlite":
-        yield f"sqlite:///{directory / f'store-{uuid.uuid4().hex[:8]}.sqlite'}"
-        return
-    reason = postgres_unreachable_reason()
-    if reason:
-        pytest.skip(reason)
-    import psycopg
-
-    schema = f"t_{uuid.uuid4().hex[:12]}"
-    dsn = "host=127.0.0.1 port=5432 user=postgres dbname=test"
-    with psycopg.connect(dsn, autocommit=True) as conn:
-        conn.execute(f'CREATE SCHEMA "{schema}"')
-    try:
-        yield f"{PG_SERVER_URL}?options=-csearch_path%3D{schema}"
-    finally:
-        with psycopg.connect(dsn, autocommit=True) as conn:
-            conn.execute(f'DROP SCHEMA "{schema}" CASCADE')
 
 
 @pytest.fixture(scope="module", params=BACKENDS)
