@@ -604,7 +604,7 @@ class Service:
         The existence query runs when ``check_all`` or any reading needs it (``_Item.check``);
         otherwise every reading is taken as new and a short insert raises :class:`_Raced`."""
         touched: dict[str, float] = {}
-        with self._lock, self.store.transaction() as s:
+        with self._lock, self.store.writer_gate(), self.store.transaction() as s:
             # Core statements run on the session's connection (same transaction): the ORM
             # Session's execute adds about as much per statement as SQLite takes.
             c = self._write_lock(s)
@@ -955,7 +955,7 @@ class Service:
         outs: list[Outcome] = []
         for m in self.registry.machines:
             def work(mid: str = m.id) -> Outcome | None:
-                with self._lock, self.store.transaction() as s:
+                with self._lock, self.store.writer_gate(), self.store.transaction() as s:
                     self._write_lock(s)
                     ev = self._take_states(s, [mid], acks=False)[0][mid]
                     trans = ev.check_stale(now)

@@ -210,6 +210,23 @@ def messages_by_kind(metrics: dict) -> dict[str, float]:
 def test_two_processes_receiving_the_same_readings_store_them_once(
     fresh_mosquitto: PrivateBroker, pg_url: str, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:
+    two_processes_store_each_reading_once(fresh_mosquitto, pg_url, tmp_path, monkeypatch)
+
+
+@pytest.mark.slow
+def test_two_processes_share_one_sqlite_file_through_the_writer_gate(
+    fresh_mosquitto: PrivateBroker, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # Same checks on SQLite: the writers of both processes queue on the file lock beside
+    # the database (Store.writer_gate) and still store every reading exactly once.
+    url = sqlite(tmp_path, "shared.sqlite")
+    two_processes_store_each_reading_once(fresh_mosquitto, url, tmp_path, monkeypatch)
+    assert (tmp_path / "shared.sqlite.writers").exists()
+
+
+def two_processes_store_each_reading_once(
+    broker: PrivateBroker, url: str, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     # The fan's run-up through its pedestal mode raises a resonance alarm (API 684 margin,
     # see test_service.py), so there are transitions that a double evaluation would repeat.
     msgs = traffic("ef-2", 0, 120)
@@ -223,11 +240,11 @@ def test_two_processes_receiving_the_same_readings_store_them_once(
     for i, port in enumerate(ports):
         # The service file's key service.metrics_address, set through its environment variable.
         monkeypatch.setenv("WHIRLWATCH_SERVICE_METRICS_ADDRESS", f"127.0.0.1:{port}")
-        procs.append(service_process(fresh_mosquitto.url, pg_url, tmp_path, client_id=f"svc-{i}", group="g"))
+        procs.append(service_process(broker.url, url, tmp_path, client_id=f"svc-{i}", group="g"))
     try:
         for i in range(2):
             wait_started(tmp_path, f"svc-{i}", 1)
-        publish_many(fresh_mosquitto, published)
+        publish_many(broker, published)
 
         def totals() -> list[dict[str, float]]:
             return [messages_by_kind(scrape(p)) for p in ports]
@@ -252,8 +269,8 @@ def test_two_processes_receiving_the_same_readings_store_them_once(
     assert total["waveform"] == want
     assert total["speed"] == speeds
     assert sum(total.values()) == len(published)
-    assert measurement_count(pg_url) == (want, want)
-    store = Store.open(pg_url)
+    assert measurement_count(url) == (want, want)
+    store = Store.open(url)
     try:
         with store.session() as s:
             keys = s.execute(

@@ -2,11 +2,15 @@
 
 from __future__ import annotations
 
+import subprocess
+import sys
+import time
+
 from alembic.autogenerate import compare_metadata
 from alembic.runtime.migration import MigrationContext
 from sqlalchemy import inspect, text
 
-from monitor.store import make_engine, upgrade
+from monitor.store import Store, make_engine, upgrade
 from monitor.store.migrate import current_revision
 from monitor.store.models import Base
 
@@ -53,3 +57,37 @@ def test_postgres_url_uses_psycopg3():
 
     assert normalise_url("postgresql://u@h/db").drivername == "postgresql+psycopg"
     assert normalise_url("postgres://u@h/db").drivername == "postgresql+psycopg"
+
+
+def test_sqlite_writer_gate_queues_a_second_process(tmp_path):
+    # flock(2) locks are per open file and exclusive across processes (Linux man page
+    # flock(2)): a second process entering the gate waits until the first leaves it.
+    url = f"sqlite:///{tmp_path / 'gate.sqlite'}"
+    store = Store(make_engine(url))
+    script = (
+        "import sys, time\n"
+        "from monitor.store.db import Store, make_engine\n"
+        "s = Store(make_engine(sys.argv[1]))\n"
+        "print('ready', flush=True)\n"
+        "with s.writer_gate():\n"
+        "    print(time.time(), flush=True)\n"
+    )
+    try:
+        with store.writer_gate():
+            child = subprocess.Popen([sys.executable, "-c", script, url], stdout=subprocess.PIPE, text=True)
+            assert child.stdout.readline().strip() == "ready"
+            time.sleep(0.5)
+            released = time.time()
+        out, _ = child.communicate(timeout=30)
+        entered = float(out.strip())
+        assert entered >= released
+    finally:
+        store.close()
+    # PostgreSQL and in-memory SQLite have no file to lock: the gate is a no-op there.
+    memory = Store(make_engine("sqlite://"))
+    try:
+        with memory.writer_gate():
+            pass
+        assert [p.name for p in tmp_path.glob("*.writers")] == ["gate.sqlite.writers"]
+    finally:
+        memory.close()
