@@ -32,7 +32,6 @@ from __future__ import annotations
 
 import bisect
 import functools
-import itertools
 import math
 from collections import deque
 from collections.abc import Mapping, Sequence
@@ -383,6 +382,10 @@ class MachineEvaluator:
         self._intervals: dict[str, deque[float]] = {}
         self._keys: dict[tuple[str | None, str, str], AlarmKey] = {}
         self._orders = _growth_orders(machine)
+        # Per point: feature name -> (baseline, trend window, alarm key), the same objects
+        # as in _baselines/_trends, so a reading finds all three with one lookup.
+        self._slots: dict[str, dict[str, tuple[Baseline, TrendWindow, AlarmKey]]] = {}
+        self._ratio_limits = tuple((float(r), f"{r:g}x baseline") for r in s.growth_ratios)
         self._grid = MarginGrid(machine, approach_factor=s.approach_factor,
                                 machine_default_pct=s.required_margin_pct)
         self._res_seen: set[int] = set()  # margin rows that ever fed the alarm engine
@@ -414,6 +417,8 @@ class MachineEvaluator:
                 continue
             a, b = (lo - fixed) / order, (hi - fixed) / order
             spans.append((a - 1e-9 * abs(a) - 1e-12, b + 1e-9 * abs(b) + 1e-12, k))
+        self._res_keys = [self._key(None, "resonance_proximity", subj) for subj in g.subjects]
+        self._pair_zetas = [g.zetas[k // g.n_exc] for k in range(len(self._pairs))]
         self._cand_edges = sorted({e for a, b, _ in spans for e in (a, b)})
         edges = [-math.inf, *self._cand_edges, math.inf]
         self._cand_sets = [
@@ -570,6 +575,21 @@ class MachineEvaluator:
             key = self._keys[k] = AlarmKey(self.machine.id, point, kind, subject)
         return key
 
+    def _slot(self, pid: str, name: str, speed_band: float | None
+              ) -> tuple[Baseline, TrendWindow, AlarmKey]:
+        """The baseline, trend window and growth alarm key of one feature of a point,
+        made on the feature's first reading (or taken from a restored snapshot)."""
+        s = self.settings
+        k = (pid, name)
+        base = self._baselines.get(k)
+        if base is None:
+            base = self._baselines[k] = Baseline(s.baseline_readings)
+        win = self._trends.get(k)
+        if win is None:
+            win = self._trends[k] = TrendWindow(
+                s.trend_window, s.trend_min_readings, s.trend_refit_every, speed_band)
+        return base, win, self._key(pid, "amplitude_growth", name)
+
     @staticmethod
     def _fit_trends(wins: list[TrendWindow]) -> None:
         _fit_windows(wins)
@@ -588,7 +608,7 @@ class MachineEvaluator:
             self._intervals.setdefault(pid, deque(maxlen=10)).append(ts - last)
         if last is None or ts > last:
             self._last_ts[pid] = ts
-        key = AlarmKey(self.machine.id, pid, "sensor_fault", "stale")
+        key = self._key(pid, "sensor_fault", "stale")
         a = self.engine.alarm(key)
         if a is not None and a.state != "cleared":
             return self.engine.update(key, ts, None, None, {"check": "stale", "message": "readings arrive again"},
@@ -633,15 +653,14 @@ class MachineEvaluator:
         """Resonance alarms at a new speed value: (subjects with an excitation inside
         their required band, approach forecasts, transitions)."""
         grid = self._grid
-        cand = self._candidates(speed)
+        h1 = 1.0 + self._h
         inside: list[str] = []
-        near: set[int] = set()
-        h = self._h
-        for k in cand:
-            m, rq, ap, _ = self._pair(k, speed)
-            if rq > 0 and m < ap * (1 + h):
-                near.add(k)
-                if m < rq:
+        near: dict[int, tuple[float, float, float, float]] = {}
+        for k in self._candidates(speed):
+            p = self._pair(k, speed)
+            if p[1] > 0 and p[0] < p[2] * h1:
+                near[k] = p
+                if p[0] < p[1]:
                     inside.append(grid.subjects[k])
         if self._speed and ts <= self._speed[-1][0]:
             return inside, (), []  # the same instant seen from another point: count it once
@@ -652,26 +671,27 @@ class MachineEvaluator:
             t, v = zip(*self._speed, strict=True)
             approach = tuple(a for a in approach_forecasts(
                 self.machine, t, v, machine_default_pct=s.required_margin_pct)
-                if a.seconds <= s.approach_warning_s * (1.0 + h))
+                if a.seconds <= s.approach_warning_s * h1)
         soon = {a.subject: a for a in approach}
         # Only rows near a band, forecast to enter one, or with alarm history need the
         # engine; the rest hold no condition and have nothing to count.
-        near |= self._res_seen
+        todo = set(near)
+        todo |= self._res_seen
         if soon:
-            near |= {k for k, subj in enumerate(grid.subjects) if subj in soon}
+            todo |= {k for k, subj in enumerate(grid.subjects) if subj in soon}
+        self._res_seen |= todo
         out: list[Transition] = []
         state: list[MarginState] = []  # the arrays, built only for a transition's evidence
-        for k in sorted(near):
-            subject = grid.subjects[k]
-            key = self._key(None, "resonance_proximity", subject)
-            self._res_seen.add(k)
-            m, rq, ap, ratio = self._pair(k, speed)
+        update = self.engine.update
+        for k in sorted(todo):
+            key = self._res_keys[k]
+            p = near.get(k)
+            m, rq, ap, ratio = p if p is not None else self._pair(k, speed)
             if rq <= 0:
-                out += self.engine.update(key, ts, None, None, {"reason": "no margin required"}, rid)
+                out += update(key, ts, None, None, {"reason": "no margin required"}, rid)
                 continue
-            zeta = grid.zetas[k // grid.n_exc]
-            dev = abs(ratio - 1.0)
-            fc = soon.get(subject)
+            zeta = self._pair_zetas[k]
+            fc = soon.get(key.subject) if soon else None
             raise_l = hold_l = None
             if fc is not None:
                 hold_l = "advisory"
@@ -679,20 +699,21 @@ class MachineEvaluator:
                     raise_l = "advisory"
             if m < ap:
                 raise_l = "advisory"
-            if m < ap * (1 + h):
+            if m < ap * h1:
                 hold_l = "advisory"
             if m < rq:
                 raise_l = "alert"
-            if m < rq * (1 + h):
+            if m < rq * h1:
                 hold_l = "alert"
-            # Inside the half-power band the excitation sits on the resonance peak itself.
-            if zeta is not None and m < rq and dev <= zeta:
-                raise_l = "severe"
-            if zeta is not None and m < rq * (1 + h) and dev <= zeta * (1 + h):
-                hold_l = "severe"
-            out += self.engine.update(
-                key, ts, raise_l, hold_l,
-                functools.partial(_resonance_evidence, speed, rid, grid, state, k, fc), rid)
+                # Inside the half-power band the excitation sits on the resonance peak.
+                if zeta is not None:
+                    dev = abs(ratio - 1.0)
+                    if m < rq and dev <= zeta:
+                        raise_l = "severe"
+                    if dev <= zeta * h1:
+                        hold_l = "severe"
+            out += update(key, ts, raise_l, hold_l,
+                          functools.partial(_resonance_evidence, speed, rid, grid, state, k, fc), rid)
         return inside, approach, out
 
     def _growth(self, analysis: ReadingAnalysis, pid: str, limits: ZoneLimits, ignored: str | None
@@ -708,18 +729,17 @@ class MachineEvaluator:
             reason = ignored.split(":")[0]
             counts[reason] = counts.get(reason, 0) + 1
         band = s.baseline_speed_band_pct / 100.0
+        slots = self._slots.get(pid)
+        if slots is None:
+            slots = self._slots[pid] = {}
         rows = []
         for name, value, unit, speed_dep in _features(analysis, self.machine, self._orders):
-            if not math.isfinite(value) or value < 0:
+            if not (0.0 <= value < math.inf):  # finite and not negative (NaN fails too)
                 continue
-            k = (pid, name)
-            base = self._baselines.get(k)
-            if base is None:
-                base = self._baselines[k] = Baseline(s.baseline_readings)
-                self._trends[k] = TrendWindow(
-                    s.trend_window, s.trend_min_readings, s.trend_refit_every,
-                    band if speed_dep else None)
-            win = self._trends[k]
+            slot = slots.get(name)
+            if slot is None:
+                slot = slots[name] = self._slot(pid, name, band if speed_dep else None)
+            base, win, key = slot
             comparable = True
             if ignored is None:
                 if not base.ready:
@@ -727,7 +747,7 @@ class MachineEvaluator:
                 bs = base.speed_hz
                 comparable = not (speed_dep and bs and abs(speed - bs) > band * bs)
                 win.add(ts, value, speed)
-            rows.append((name, value, unit, base, win, comparable))
+            rows.append((name, value, unit, base, win, comparable, key))
         if ignored is None:
             self._fit_trends([r[4] for r in rows])
         # Levels are decided here on plain floats; the FeatureEvaluation objects (and their
@@ -739,7 +759,8 @@ class MachineEvaluator:
         specs: list[tuple] = []
         alarm = self.engine.alarm
         due: list[tuple[int, AlarmKey, str | None, str | None]] = []
-        for name, value, unit, base, win, comparable in rows:
+        ratio_limits = self._ratio_limits
+        for name, value, unit, base, win, comparable, key in rows:
             st = base.stats
             if st is None:
                 status: tuple = ("learning", len(base.values), base.size)
@@ -759,9 +780,9 @@ class MachineEvaluator:
                 elif value <= cd:
                     lim_name, lim_val = "C/D", cd
             elif ratio is not None:
-                for r in s.growth_ratios:
+                for r, r_name in ratio_limits:
                     if value < r * st.median:
-                        lim_name, lim_val = f"{r:g}x baseline", r * st.median
+                        lim_name, lim_val = r_name, r * st.median
                         break
             ttl = None
             if line is not None and lim_val is not None:
@@ -806,7 +827,6 @@ class MachineEvaluator:
                           lim_name, lim_val, ttl, raise_l, hold_l, causes))
             if ignored is not None:
                 continue
-            key = self._key(pid, "amplitude_growth", name)
             if rr or hr or alarm(key) is not None:
                 due.append((len(specs) - 1, key, raise_l, hold_l))
         feats = FeatureRows(specs)
@@ -919,15 +939,22 @@ def _growth_evidence(rid: str | None, speed: float, limits: ZoneLimits, feats: F
 
 def _fit_windows(wins: list[TrendWindow]) -> None:
     """Fit every window that is due, one batch per distinct time axis."""
-    groups: dict[tuple[float, ...], list[TrendWindow]] = {}
+    groups: list[tuple[TrendWindow, list[TrendWindow]]] = []
     for w in wins:
-        if w.needs_fit():
-            groups.setdefault(tuple(w.ts), []).append(w)
-    for tkey, ws in groups.items():
-        t = np.asarray(tkey)
-        ys = np.fromiter(itertools.chain.from_iterable(w.values for w in ws), float,
-                         len(ws) * t.size).reshape(len(ws), t.size)
-        fits = theil_sen_many(t - t[-1], ys)
+        if not w.needs_fit():
+            continue
+        for first, ws in groups:
+            # Same times (deques compare element by element); the ends are checked first.
+            if first.ts[-1] == w.ts[-1] and first.ts[0] == w.ts[0] and first.ts == w.ts:
+                ws.append(w)
+                break
+        else:
+            groups.append((w, [w]))
+    for first, ws in groups:
+        t = np.array(first.ts)
+        ys = np.array([w.values for w in ws])
+        # Window times only ever increase (TrendWindow.add).
+        fits = theil_sen_many(t - t[-1], ys, x_increasing=True)
         for w, (slope, inter, lo, hi) in zip(ws, fits, strict=True):
             w.set_fit(Trend(slope, lo, hi, inter, t.size))
 

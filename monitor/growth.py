@@ -188,8 +188,13 @@ def theil_sen(x: np.ndarray, y: np.ndarray) -> tuple[float, float, float, float]
     return theil_sen_many(np.asarray(x, dtype=float), np.asarray(y, dtype=float)[None, :])[0]
 
 
-def theil_sen_many(x: np.ndarray, ys: np.ndarray) -> list[tuple[float, float, float, float]]:
-    """:func:`theil_sen` of each row of ``ys`` (shape (F, n)) against one ``x`` (n,)."""
+def theil_sen_many(x: np.ndarray, ys: np.ndarray, *, x_increasing: bool = False
+                   ) -> list[tuple[float, float, float, float]]:
+    """:func:`theil_sen` of each row of ``ys`` (shape (F, n)) against one ``x`` (n,).
+
+    ``x_increasing`` tells that ``x`` is strictly increasing (a time axis), which spares
+    sorting it and looking for pairs without a slope; the results are the same.
+    """
     n = x.size
     if ys.ndim != 2 or ys.shape[1] != n:
         raise ValueError(f"ys must have shape (F, {n}), got {ys.shape}.")
@@ -198,45 +203,59 @@ def theil_sen_many(x: np.ndarray, ys: np.ndarray) -> list[tuple[float, float, fl
         pairs = _PAIRS[n] = np.triu_indices(n, 1)
     i, j = pairs
     dx = x[j] - x[i]
-    # Each unordered pair once; its slope is the same in either order (scipy keeps the
-    # ordering with dx > 0), and pairs with equal x give no slope.
-    keep = dx != 0
-    if not keep.any():
-        raise ValueError("x must not be all identical.")
-    if not keep.all():
-        i, j, dx = i[keep], j[keep], dx[keep]
+    if x_increasing:
+        xs, x_ties = x, 0.0
+    else:
+        xs = np.sort(x)
+        keep = dx != 0
+        if not keep.any():
+            raise ValueError("x must not be all identical.")
+        if not keep.all():
+            # Each unordered pair once; its slope is the same in either order (scipy
+            # keeps the ordering with dx > 0), and pairs with equal x give no slope.
+            i, j, dx = i[keep], j[keep], dx[keep]
+        x_ties = _tie_term(xs)
     # One buffer for the slopes (same operations as (ys[:, j] - ys[:, i]) / dx, fewer
     # temporaries of F x n(n-1)/2).
     slopes = np.take(ys, j, axis=1)
     slopes -= np.take(ys, i, axis=1)
     slopes /= dx
     nt = slopes.shape[1]
-    xs = np.sort(x)
     yss = np.sort(ys, axis=1)
-    base = n * (n - 1) * (2 * n + 5) - _tie_term(xs)
-    sigsq = (base - _tie_terms_rows(yss)).tolist()
+    base = n * (n - 1) * (2 * n + 5) - x_ties
     # Ranks of the interval's ends (Sen 1968, eq. 2.6); rows differ only by ties in y.
-    ends: list[tuple[int, int] | None] = []
+    if (yss[:, 1:] != yss[:, :-1]).all():
+        sigsq = [base] * ys.shape[0]
+    else:
+        sigsq = (base - _tie_terms_rows(yss)).tolist()
+    by_sq: dict[float, tuple[int, int] | None] = {}
     for b in sigsq:
-        sq = b / 18.0
-        if not sq > 0:
-            ends.append(None)
-            continue
-        zs = _Z_95 * math.sqrt(sq)
-        ends.append((max(int(round((nt + zs) / 2.0)) - 1, 0), min(int(round((nt - zs) / 2.0)), nt - 1)))
+        if b not in by_sq:
+            sq = b / 18.0
+            if not sq > 0:
+                by_sq[b] = None
+            else:
+                zs = _Z_95 * math.sqrt(sq)
+                by_sq[b] = (max(int(round((nt + zs) / 2.0)) - 1, 0), min(int(round((nt - zs) / 2.0)), nt - 1))
     # Only a few order statistics are needed (the median and the interval's ends): a
     # partition at those ranks puts the same values there as a full sort, in O(n).
     mid = nt // 2
     kth = {mid} if nt % 2 else {mid - 1, mid}
-    for e in ends:
+    for e in by_sq.values():
         if e is not None:
             kth.update(e)
     slopes.partition(sorted(kth), axis=1)
     med = _sorted_median_rows(slopes)
     inter = (_sorted_median_rows(yss) - med * _sorted_median(xs)).tolist()
     med = med.tolist()
+    if len(by_sq) == 1:
+        e = by_sq[sigsq[0]]
+        if e is not None:
+            lo_hi = slopes[:, list(e)].tolist()
+            return [(med[r], inter[r], lo_hi[r][0], lo_hi[r][1]) for r in range(len(med))]
     out = []
-    for r, e in enumerate(ends):
+    for r, b in enumerate(sigsq):
+        e = by_sq[b]
         if e is None:
             out.append((med[r], inter[r], math.nan, math.nan))
         else:
@@ -369,13 +388,15 @@ class TrendWindow:
     def line(self) -> tuple[float, float, float] | None:
         """``(slope_per_s, low_per_s, fitted_now)`` of :meth:`trend` without building a
         :class:`Trend` (the same numbers; detection calls this for every feature)."""
-        if len(self.ts) < self.min_readings:
+        ts = self.ts
+        if len(ts) < self.min_readings:
             return None
-        if self.needs_fit():
-            self.set_fit(theil_sen_trend(list(self.ts), list(self.values)))
         f = self._fit
-        assert f is not None
-        last = self.ts[-1]
+        if f is None or self._since_fit >= self.refit_every:
+            self.set_fit(theil_sen_trend(list(ts), list(self.values)))
+            f = self._fit
+            assert f is not None
+        last = ts[-1]
         if last == self._fit_ts:
             return f.slope_per_s, f.low_per_s, f.fitted_now
         return f.slope_per_s, f.low_per_s, f.fitted_now + f.slope_per_s * (last - self._fit_ts)

@@ -11,6 +11,7 @@ from monitor.growth import (
     Baseline,
     TrendWindow,
     theil_sen,
+    theil_sen_many,
     theil_sen_trend,
     time_to_limit,
 )
@@ -37,6 +38,21 @@ class TestTheilSen:
         ref = stats.theilslopes(y, x)
         got = theil_sen(x, y)
         assert got == pytest.approx((ref.slope, ref.intercept, ref.low_slope, ref.high_slope))
+
+    def test_many_rows_on_a_time_axis_against_scipy(self):
+        # The batch fit used by detection (strictly increasing times, rows with and without
+        # ties in y) gives scipy.stats.theilslopes' numbers for every row.
+        rng = np.random.default_rng(7)
+        x = np.cumsum(rng.uniform(0.5, 2.0, 30))
+        ys = np.stack([
+            0.2 * x + rng.standard_normal(30),
+            np.round(0.2 * x + rng.standard_normal(30)),  # quantised: many ties
+            -0.1 * x + rng.standard_normal(30),
+        ])
+        for row, got in zip(ys, theil_sen_many(x, ys, x_increasing=True), strict=True):
+            ref = stats.theilslopes(row, x)
+            assert got == pytest.approx((ref.slope, ref.intercept, ref.low_slope, ref.high_slope),
+                                        rel=1e-12, abs=1e-12)
 
     def test_trend_intercept_is_value_now(self):
         t = np.arange(20.0) * 3600.0 + 1.7e9
