@@ -333,7 +333,9 @@ def run(quick: bool = False) -> list[dict]:
     schemas: list[str] = []
     with tempfile.TemporaryDirectory(prefix="ww-bench-") as tmp:
         work = Path(tmp)
-        broker = PrivateBroker(work / "broker")
+        # Persistence as deploy/mosquitto.conf sets it (autosave every 5 s; the tests' 1 s
+        # would have the broker rewrite its whole backlog every second of the drain).
+        broker = PrivateBroker(work / "broker", autosave_interval_s=5)
         # As docs/service.md recommends for a deployment: without it Mosquitto holds the
         # tail of each delivery for the receiver's delayed ACK (~40 ms on Linux).
         with open(broker.config_path, "a", encoding="utf-8") as conf:

@@ -179,8 +179,8 @@ def _skey(r: Any) -> tuple[str, dt.datetime]:
 
 def _evaluation_json(evaluation: ReadingEvaluation, *, margins: bool = True) -> Any:
     # The detector's own JSON form (zone limits as ``zone_limits_mm_s``; the dashboard
-    # reads both forms); jsonable turns NaN into null, which JSON columns need.
-    return jsonable(evaluation.to_json(margins=margins))
+    # reads both forms). The store's JSON serialiser turns NaN into null (store/db.py).
+    return evaluation.to_json(margins=margins)
 
 
 @dataclass

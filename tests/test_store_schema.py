@@ -91,3 +91,30 @@ def test_sqlite_writer_gate_queues_a_second_process(tmp_path):
         assert [p.name for p in tmp_path.glob("*.writers")] == ["gate.sqlite.writers"]
     finally:
         memory.close()
+
+
+def test_json_columns_store_nan_as_null_and_plain_data_unchanged(tmp_path):
+    # RFC 8259 section 6: NaN and Infinity are not permitted JSON numbers; the store writes
+    # null for them. Plain data is written exactly as json.dumps writes it.
+    import json
+
+    import numpy as np
+
+    from monitor.store.db import dumps_json
+
+    plain = {"a": [1, 2.5, "x", None, True], "b": {"c": -0.0}}
+    assert dumps_json(plain) == json.dumps(plain)
+    assert json.loads(dumps_json({"v": float("nan"), "w": [float("inf"), 1.0]})) == {"v": None, "w": [None, 1.0]}
+    assert json.loads(dumps_json({"n": np.int64(3), "f": np.float32(0.5)})) == {"n": 3, "f": 0.5}
+    engine = make_engine(f"sqlite:///{tmp_path / 'j.sqlite'}")
+    try:
+        with engine.begin() as conn:
+            conn.execute(text("CREATE TABLE t (j JSON)"))
+            from sqlalchemy import JSON, Column, MetaData, Table
+
+            t = Table("t", MetaData(), Column("j", JSON))
+            conn.execute(t.insert(), [{"j": {"ratio": float("nan"), "value": 2.0}}])
+            raw = conn.execute(text("SELECT j FROM t")).scalar()
+        assert json.loads(raw) == {"ratio": None, "value": 2.0}
+    finally:
+        engine.dispose()

@@ -8,6 +8,7 @@ module, decides where they start and end. ``postgresql://`` URLs are routed to p
 from __future__ import annotations
 
 import fcntl
+import json
 import os
 from collections.abc import Iterator
 from contextlib import contextmanager, nullcontext
@@ -56,11 +57,27 @@ def make_engine(
         if database and database != ":memory:" and not database.startswith("file:"):
             Path(database).expanduser().parent.mkdir(parents=True, exist_ok=True)
         engine = create_engine(
-            parsed, echo=echo, connect_args={"timeout": busy_timeout_ms / 1000.0}
+            parsed, echo=echo, connect_args={"timeout": busy_timeout_ms / 1000.0},
+            json_serializer=dumps_json,
         )
         _sqlite_setup(engine, busy_timeout_ms)
         return engine
-    return create_engine(parsed, echo=echo, pool_pre_ping=True)
+    return create_engine(parsed, echo=echo, pool_pre_ping=True, json_serializer=dumps_json)
+
+
+def dumps_json(value: Any) -> str:
+    """JSON text of a JSON column's value: plain data goes straight to json.dumps; anything
+    else (NaN or infinity, which JSON lacks, numpy values, dataclasses) goes through
+    :func:`monitor.store.writes.jsonable` first (non-finite numbers become null).
+
+    Callers may hand over a reading's evaluation as it is: the check for NaN is the
+    serialisation itself, not a second walk over the data."""
+    try:
+        return json.dumps(value, allow_nan=False)
+    except (ValueError, TypeError):
+        from monitor.store.writes import jsonable  # writes imports this module
+
+        return json.dumps(jsonable(value), allow_nan=False)
 
 
 def _sqlite_setup(engine: Engine, busy_timeout_ms: int) -> None:
