@@ -243,16 +243,20 @@ class AlarmEngine:
         ``evidence`` may be a function returning the dict; it is called only when a
         transition happens (building evidence for every reading is wasted work).
         """
-        if raise_level is None and hold_level is None:
-            # Nothing holds: for a key with no live alarm and nothing counted this changes
-            # only the time seen, the common case on every reading.
-            s = self._streams.get(key)
-            if s is not None and s.raise_count == 0 and (s.alarm is None or s.alarm.state == "cleared"):
-                s.last_ts = ts
-                return []
-        r = severity_rank(raise_level)
-        h = max(severity_rank(hold_level), r)
         s = self._streams.get(key)
+        # Nothing holds: for a key with no live alarm and nothing counted this changes only
+        # the time seen, the common case on every reading.
+        if (raise_level is None and hold_level is None and s is not None and s.raise_count == 0
+                and (s.alarm is None or s.alarm.state == "cleared")):
+            s.last_ts = ts
+            return []
+        r = _RANK.get(raise_level, -1)
+        h = _RANK.get(hold_level, -1)
+        if r < 0 or h < 0:
+            severity_rank(raise_level)  # raises the error naming the bad value
+            severity_rank(hold_level)
+        if r > h:
+            h = r
         if s is not None:
             a = s.alarm
             if a is not None and a.state != "cleared" and r <= _RANK[a.severity] == h:

@@ -32,6 +32,7 @@ from __future__ import annotations
 
 import bisect
 import functools
+import itertools
 import math
 from collections import deque
 from collections.abc import Mapping, Sequence
@@ -335,13 +336,16 @@ def _features(analysis: ReadingAnalysis, machine: Machine,
     out: list[tuple[str, float, str, bool]] = [
         ("overall", float(analysis.overall_velocity_mm_s_rms), "mm/s RMS", True)
     ]
-    one = analysis.order(1.0)
+    # Order amplitudes by their order, looked up exactly first (the analysis computes the
+    # machine's own orders) and by ReadingAnalysis.order's tolerance otherwise.
+    by_order = {o.order: o for o in analysis.orders}
+    one = by_order.get(1.0) or analysis.order(1.0)
     if one is not None:
         out.append(("1x", float(one.velocity_mm_s), "mm/s peak", True))
     if math.isfinite(analysis.one_x_normalised):
         out.append(("1x_norm", float(analysis.one_x_normalised), "mm/s peak per Hz^2", False))
     for o, name in (_growth_orders(machine) if orders is None else orders):
-        oa = analysis.order(o)
+        oa = by_order.get(o) or analysis.order(o)
         if oa is not None:
             out.append((name, float(oa.velocity_mm_s), "mm/s peak", True))
     bearing = analysis.extra.get("bearing") if analysis.extra else None
@@ -952,7 +956,8 @@ def _fit_windows(wins: list[TrendWindow]) -> None:
             groups.append((w, [w]))
     for first, ws in groups:
         t = np.array(first.ts)
-        ys = np.array([w.values for w in ws])
+        ys = np.fromiter(itertools.chain.from_iterable(w.values for w in ws), float,
+                         len(ws) * t.size).reshape(len(ws), t.size)
         # Window times only ever increase (TrendWindow.add).
         fits = theil_sen_many(t - t[-1], ys, x_increasing=True)
         for w, (slope, inter, lo, hi) in zip(ws, fits, strict=True):
