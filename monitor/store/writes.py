@@ -684,7 +684,8 @@ def save_detector_states(
 
     now = utcnow()
     session.execute(_statement(("save_detector_states", dialect), build), [
-        {"machine_id": machine, "state": jsonable(state),
+        # The JSON column's serialiser (store/db.py dumps_json) makes NaN null.
+        {"machine_id": machine, "state": state,
          "ts": to_datetime(ts) if ts is not None else None, "updated_at": now}
         for machine, (state, ts) in sorted(states.items())
     ])
