@@ -172,7 +172,7 @@ class Transition:
         return out
 
 
-@dataclass
+@dataclass(slots=True)
 class _Stream:
     """Per-key counters: consecutive readings for raise/escalate/de-escalate/clear."""
 

@@ -53,6 +53,8 @@ class Baseline:
         Readings in the learning window (>= 3).
     """
 
+    __slots__ = ("size", "values", "speeds", "started_at", "_stats", "_speed")
+
     def __init__(self, size: int = 20) -> None:
         if not isinstance(size, int) or size < 3:
             raise ValueError(f"size must be an integer >= 3 readings, got {size!r}.")
@@ -326,6 +328,9 @@ class TrendWindow:
     point, not growth.
     """
 
+    __slots__ = ("size", "min_readings", "refit_every", "speed_band", "ref_speed", "ts", "values",
+                 "_fit", "_fit_ts", "_since_fit")
+
     def __init__(self, size: int = 50, min_readings: int = 10, refit_every: int = 1,
                  speed_band: float | None = None) -> None:
         if not isinstance(size, int) or size < 3:
@@ -346,13 +351,17 @@ class TrendWindow:
         self._since_fit = 0
 
     def add(self, ts: float, value: float, speed_hz: float | None = None) -> None:
-        if self.speed_band is not None and speed_hz is not None:
-            if self.ref_speed is not None and abs(speed_hz - self.ref_speed) > self.speed_band * self.ref_speed:
+        band = self.speed_band
+        if band is not None and speed_hz is not None:
+            ref = self.ref_speed
+            if ref is not None and abs(speed_hz - ref) > band * ref:
                 self.clear()
-            if self.ref_speed is None:
+                ref = None
+            if ref is None:
                 self.ref_speed = float(speed_hz)
-        if math.isfinite(value) and math.isfinite(ts) and (not self.ts or ts > self.ts[-1]):
-            self.ts.append(float(ts))
+        times = self.ts
+        if math.isfinite(value) and math.isfinite(ts) and (not times or ts > times[-1]):
+            times.append(float(ts))
             self.values.append(float(value))
             self._since_fit += 1
 
