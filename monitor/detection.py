@@ -54,6 +54,7 @@ from monitor.margins import (
     approach_forecasts,
     order_label,
 )
+from monitor.modes import ModeShift
 from monitor.readings import SpeedReading, Waveform
 from monitor.registry import MACHINE_CLASSES, Machine, Registry
 from monitor.zones import ZoneLimits, zone_limits, zone_of
@@ -493,6 +494,35 @@ class MachineEvaluator:
         if not (math.isfinite(sp) and sp > 0):
             raise ValueError(f"speed_hz must be a positive finite speed, got {reading.speed_hz!r}.")
         return self._speed_value(float(reading.ts), sp, None)[2]
+
+    def observe_mode_findings(self, findings: Sequence[ModeShift], ts: float, *, point: str | None = None,
+                              evidence: Mapping[str, Any] | None = None) -> list[Transition]:
+        """Mode-shift alarms from the comparison of an impact test or a run-up/coast-down
+        with the stored modes (:func:`monitor.modes.compare_modes`), at ``ts`` (epoch s).
+
+        A mode that moved beyond the tolerance raises (or keeps) its alarm at once: one test
+        is one reading, so persistence does not apply. Severity ``advisory`` beyond the
+        tolerance, ``alert`` beyond twice the tolerance (our choice, docs/alarms.md). A test
+        that finds the mode back within the tolerance clears it; a mode the test did not
+        find leaves its alarm as it is. ``point`` is the test's measurement point (None for
+        a machine-level source); ``evidence`` is added to each transition's evidence.
+        """
+        if point is not None:
+            self.machine.point(point)
+        names = {m.name for m in self.machine.modes}
+        out: list[Transition] = []
+        for f in findings:
+            if f.mode not in names:
+                raise ValueError(f"finding names mode {f.mode!r}, which machine {self.machine.id!r} does not have.")
+            if f.status == "not_found":
+                continue
+            level = None
+            if f.status == "shifted":
+                level = "alert" if abs(f.shift_pct or 0.0) > 2.0 * f.tolerance_pct else "advisory"
+            ev = {**f.to_json(), **(evidence or {})}
+            out += self.engine.update(self._key(point, "mode_shift", f.mode), float(ts), level, level, ev,
+                                      None, persistence=1)
+        return out
 
     def margins_at(self, speed_hz: float) -> tuple[MarginRow, ...]:
         """The margin table at any running speed (Hz), e.g. for a resonance map."""

@@ -314,3 +314,35 @@ def test_waveform_without_analysis_checks_health_only():
     json.dumps(e.to_json())
     with pytest.raises(ValueError, match="neither"):
         ev.evaluate(None, None)
+
+
+def test_mode_shift_findings_raise_escalate_and_clear_at_once():
+    # Shifts from monitor.modes.mode_shift: (identified - stored) / stored x 100 against a
+    # 5 % tolerance (common practice); beyond twice the tolerance the alarm is an alert
+    # (docs/alarms.md). One test is one reading: no persistence.
+    from monitor.modes import compare_modes
+
+    m = _machine()
+    ev = MachineEvaluator(m)
+    stored = m.modes
+    first = stored[0]
+    f0 = first.frequency_hz
+
+    def test(factor: float | None, ts: float):
+        found = [] if factor is None else [f0 * factor]
+        return ev.observe_mode_findings(compare_modes(stored[:1], found), ts, point="de",
+                                        evidence={"source": "impact test"})
+
+    (t,) = test(0.93, 1.0)  # -7 %: beyond 5 %, within 10 %
+    assert (t.name, t.severity, t.kind, t.alarm["subject"]) == ("raised", "advisory", "mode_shift", first.name)
+    assert t.evidence["shift_pct"] == pytest.approx(-7.0) and t.evidence["source"] == "impact test"
+    assert test(0.93, 2.0) == []  # the same again: nothing new
+    (t,) = test(0.88, 3.0)  # -12 %: beyond twice the tolerance
+    assert (t.name, t.severity) == ("escalated", "alert")
+    assert test(None, 4.0) == []  # the mode not found: no information, the alarm stays
+    (t,) = test(1.02, 5.0)  # back within the tolerance
+    assert t.name == "cleared"
+    with pytest.raises(ValueError, match="does not have"):
+        ev.observe_mode_findings(compare_modes([Mode("other", 10.0)], [10.0]), 6.0)
+    with pytest.raises(KeyError):
+        ev.observe_mode_findings([], 6.0, point="nowhere")

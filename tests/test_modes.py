@@ -490,6 +490,72 @@ class TestBumptestCommand:
         # (42 - 46) / 46 = -8.7 %: beyond the 5 % tolerance
         assert c["status"] == "shifted" and c["shift_pct"] == pytest.approx(-8.696, abs=0.05)
 
+    def test_record_raises_then_clears_a_mode_shift_alarm(self, tmp_path: Path, database_url: str) -> None:
+        from sqlalchemy import select
+
+        from monitor.detection import MachineEvaluator
+        from monitor.store import Store, upgrade
+        from monitor.store.models import Alarm, AlarmTransitionRow, DetectorState
+
+        stream = self._stream(tmp_path, force=True)
+        upgrade(database_url)
+
+        def registry_with(frequency_hz: float) -> Path:
+            reg = tmp_path / "m.toml"
+            reg.write_text(dump_registry(Registry((Machine(
+                id="tb-1", points=(Point("top-h", "horizontal", "acceleration", "m/s^2"),),
+                modes=(Mode("frame", frequency_hz, damping_ratio=0.02, source="impact test"),)),))))
+            return reg
+
+        def bump() -> dict:
+            code, docs, _, err = _run(["bumptest", str(stream), "--record", "--database", database_url,
+                                       "--force-point", "hammer", "--json", "--band", "10", "200"])
+            assert code == 0, err
+            (doc,) = docs
+            return doc
+
+        assert _run(["machines", "import", str(registry_with(46.0)), "--database", database_url])[0] == 0
+        # The simulated 42 Hz mode against the stored 46 Hz: -8.7 % is beyond the 5 %
+        # tolerance (common practice) but within twice it, so an advisory alarm is raised.
+        doc = bump()
+        (t,) = doc["alarm_transitions"]
+        assert (t["kind"], t["subject"], t["point"], t["transition"]["name"], t["severity"]) == (
+            "mode_shift", "frame", "top-h", "raised", "advisory")
+        assert t["transition"]["evidence"]["identified_hz"] == pytest.approx(self.FN, rel=1e-3)
+        # The same test again changes nothing: the alarm is open at the same level.
+        assert bump()["alarm_transitions"] == []
+        # The registry corrected to the measured frequency: the next test clears the alarm.
+        assert _run(["machines", "import", str(registry_with(42.0)), "--database", database_url])[0] == 0
+        (t,) = bump()["alarm_transitions"]
+        assert t["transition"]["name"] == "cleared"
+        store = Store.open(database_url)
+        try:
+            with store.session() as s:
+                names = s.execute(select(AlarmTransitionRow.transition).join(Alarm).where(
+                    Alarm.kind == "mode_shift").order_by(AlarmTransitionRow.id)).scalars().all()
+                state = s.execute(select(DetectorState.state).where(DetectorState.machine_id == "tb-1")).scalar_one()
+        finally:
+            store.close()
+        assert names == ["raised", "cleared"]
+        # The stored detector state (what the service reloads) holds the alarm's history.
+        assert state["version"] == 2
+        ev = MachineEvaluator.restore(
+            Machine(id="tb-1", points=(Point("top-h", "horizontal", "acceleration", "m/s^2"),),
+                    modes=(Mode("frame", 42.0, damping_ratio=0.02),)), state["evaluator"])
+        (key,) = ev.engine.alarm_keys()
+        assert ev.engine.alarm(key).state == "cleared"
+        # The table form names each recorded transition; a new shift is a new alarm.
+        assert _run(["machines", "import", str(registry_with(46.0)), "--database", database_url])[0] == 0
+        code, _, out, err = _run(["bumptest", str(stream), "--record", "--database", database_url,
+                                  "--force-point", "hammer", "--band", "10", "200"])
+        assert code == 0, err
+        assert "recorded: mode_shift alarm tb-1/top-h/mode_shift/frame#2 raised (advisory)" in out
+
+    def test_record_needs_the_database_registry(self, tmp_path: Path) -> None:
+        stream = self._stream(tmp_path, force=False)
+        code, _, _, err = _run(["bumptest", str(stream), "--record", "--machines", str(tmp_path / "m.toml")])
+        assert code == 2 and "leave out --machines" in err
+
     def test_table_without_force_or_registry(self, tmp_path: Path) -> None:
         stream = self._stream(tmp_path, force=False)
         code, _, out, err = _run(["bumptest", str(stream)])

@@ -9,6 +9,10 @@ frequency response and its coherence; its ``unit`` may be ``N``, ``kN`` or ``lbf
 Lines are validated by ``monitor.ingest.decode_message`` like live traffic, without the
 age limits (a recording is old by nature). Without ``--machines`` every machine and point
 of the file is accepted (the point's quantity taken from the unit of its first waveform).
+
+With ``--record`` the stored modes come from the database (``--database`` or ``--config``)
+and each comparison is recorded there as ``mode_shift`` alarms (monitor/mode_alarms.py):
+raised for a mode that moved beyond the tolerance, cleared when a later test finds it back.
 """
 
 from __future__ import annotations
@@ -27,6 +31,7 @@ import numpy as np
 
 from monitor import units
 from monitor.commands.analyse import FILE_LIMITS, Outcome
+from monitor.commands.db import database_options, open_store
 from monitor.ingest import (
     UNIT_QUANTITY,
     Rejected,
@@ -69,6 +74,23 @@ def _open_registry(machines_file: Path | None) -> Registry | None:
         return load_registry(machines_file)
     except RegistryError as exc:
         raise click.ClickException(str(exc)) from exc
+
+
+def _stored_registry(store: Any) -> Registry:
+    from monitor.store import export_registry
+
+    with store.session() as s:
+        registry = export_registry(s)
+    if not registry.machines:
+        raise click.ClickException(
+            "the database holds no machines; import a registry with `whirlwatch machines import FILE`.")
+    return registry
+
+
+def print_transitions(transitions: list[Any]) -> None:
+    """One line per recorded mode-shift alarm transition."""
+    for t in transitions:
+        click.echo(f"  recorded: mode_shift alarm {t.alarm_id} {t.name} ({t.severity})")
 
 
 def _with_point(registry: Registry, machine_id: str, point: Point | None) -> Registry:
@@ -167,6 +189,7 @@ class PointResult:
     comparison: tuple[ModeShift, ...]
     hits_used: int
     hits_skipped: int
+    ts: float = math.nan  # time of the latest hit used, epoch s
 
 
 def analyse_point(
@@ -218,7 +241,8 @@ def analyse_point(
         comparison = compare_modes(
             stored.modes, [m.frequency_hz for m in test.modes], tolerance_pct=tolerance_pct
         )
-    return PointResult(machine, point, test, comparison, len(pairs), len(waves) - len(pairs))
+    return PointResult(machine, point, test, comparison, len(pairs), len(waves) - len(pairs),
+                       max(w.ts for w, _ in pairs))
 
 
 def _json_safe(value: Any) -> Any:
@@ -332,13 +356,25 @@ def _results(
               show_default=True, help="Mode shift tolerance, percent of the stored frequency.")
 @click.option("--json", "as_json", is_flag=True, help="One JSON object per measurement point.")
 @click.option("--prefix", default=DEFAULT_PREFIX, show_default=True, help="MQTT topic prefix.")
+@click.option("--record", is_flag=True,
+              help="Compare with the modes stored in the database and record mode-shift alarms there.")
+@database_options
 def bumptest(file: Path, machines_file: Path | None, machine_id: str | None,
              band: tuple[float, float] | None, force_point: str | None, tolerance_pct: float,
-             as_json: bool, prefix: str) -> None:
+             as_json: bool, prefix: str, record: bool, database_url: str | None,
+             config_file: str | None) -> None:
     """Identify natural frequencies, damping (half-power and logarithmic decrement) and
     amplification factors from the impact-test hits in stream FILE (.jsonl)."""
     total = check_file(file)
-    registry = _open_registry(machines_file)
+    store = None
+    if record:
+        if machines_file is not None:
+            raise click.UsageError(
+                "--record compares with the modes stored in the database; leave out --machines.")
+        store = open_store(database_url, config_file)
+        registry = _stored_registry(store)
+    else:
+        registry = _open_registry(machines_file)
     if band is not None and not (0 <= band[0] < band[1] and all(map(math.isfinite, band))):
         raise click.UsageError(f"--band must be two frequencies LO < HI in Hz, got {band!r}.")
     if not (math.isfinite(tolerance_pct) and 0 < tolerance_pct < 100):
@@ -360,9 +396,24 @@ def bumptest(file: Path, machines_file: Path | None, machine_id: str | None,
         outcome.report("waveforms accepted")
         who = f" of machine {machine_id!r}" if machine_id else ""
         raise click.ClickException(f"stream file {str(file)!r} holds no response waveform{who}.")
-    for r in _results(hits, forces, registry, band, tolerance_pct, outcome):
-        if as_json:
-            click.echo(json.dumps(result_json(r), separators=(",", ":"), allow_nan=False))
-        else:
-            print_table(r)
+    try:
+        for r in _results(hits, forces, registry, band, tolerance_pct, outcome):
+            transitions = []
+            if store is not None and registry is not None and r.comparison:
+                from monitor.mode_alarms import record_mode_findings  # the store: only when asked
+
+                transitions = record_mode_findings(
+                    store, registry.machine(r.machine), r.comparison, r.ts, point=r.point,
+                    evidence={"source": "impact test", "file": file.name, "hits": r.hits_used})
+            if as_json:
+                doc = result_json(r)
+                if store is not None:
+                    doc["alarm_transitions"] = [_json_safe(t.to_json()) for t in transitions]
+                click.echo(json.dumps(doc, separators=(",", ":"), allow_nan=False))
+            else:
+                print_table(r)
+                print_transitions(transitions)
+    finally:
+        if store is not None:
+            store.close()
     outcome.report("waveforms accepted")

@@ -1,0 +1,63 @@
+"""Mode-shift findings of an impact test or a run-up/coast-down, recorded as alarms.
+
+The running service keeps each machine's detector state (its alarms among it) in the
+``detector_state`` table with a version it checks at every batch. Recording a finding
+therefore goes through that state: in one transaction the machine's state row is locked,
+its evaluator restored, the findings applied
+(:meth:`monitor.detection.MachineEvaluator.observe_mode_findings`), the transitions
+appended to the alarm history and the state written back with its version moved on. The
+service sees the new version at its next batch and reloads the machine, mode-shift alarms
+included; the dashboard shows them like any other alarm.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from typing import Any
+
+from sqlalchemy import select
+
+from monitor.alarms import Transition
+from monitor.detection import MachineEvaluator
+from monitor.modes import ModeShift
+from monitor.registry import Machine
+from monitor.store import Store
+from monitor.store.models import DetectorState
+from monitor.store.writes import record_transitions, save_detector_states
+
+
+def record_mode_findings(
+    store: Store,
+    machine: Machine,
+    findings: Sequence[ModeShift],
+    ts: float,
+    *,
+    point: str | None = None,
+    evidence: Mapping[str, Any] | None = None,
+) -> list[Transition]:
+    """Apply ``findings`` of a test at ``ts`` (epoch s) to ``machine``'s stored detector
+    state and store the alarm transitions they cause; returns those transitions (often
+    none: a mode still within its tolerance with no alarm open changes nothing)."""
+    with store.writer_gate(), store.transaction() as s:
+        conn = s.connection()
+        if conn.dialect.name == "sqlite":
+            # The write lock first: a read followed by a write cannot wait for it (see
+            # Service._write_lock).
+            conn.exec_driver_sql("UPDATE detector_state SET machine_id = machine_id WHERE 0")
+        stmt = select(DetectorState.state, DetectorState.ts).where(DetectorState.machine_id == machine.id)
+        if conn.dialect.name == "postgresql":
+            stmt = stmt.with_for_update()
+        row = s.execute(stmt).one_or_none()
+        state = row.state if row is not None else None
+        if isinstance(state, dict) and "evaluator" in state:
+            evaluator = MachineEvaluator.restore(machine, state["evaluator"])
+            version = int(state.get("version") or 0)
+        else:
+            evaluator, version = MachineEvaluator(machine), 0
+        transitions = evaluator.observe_mode_findings(findings, ts, point=point, evidence=evidence)
+        if transitions:
+            record_transitions(s, transitions)
+            save_detector_states(s, {machine.id: (
+                {"version": version + 1, "evaluator": evaluator.snapshot()},
+                row.ts if row is not None else None)})
+    return transitions
