@@ -616,6 +616,39 @@ class TestPassageCommand:
         assert (lo, hi) == (pytest.approx(667.1, abs=0.05), pytest.approx(1042.9, abs=0.05))
         assert doc["bode"]["direction"] == "run-up"
 
+    def test_record_a_moved_mode_from_a_run_up(self, tmp_path: Path, database_url: str) -> None:
+        from monitor.store import upgrade
+
+        fs = 512.0
+        # Stored at 17 Hz, the simulated mode is at 15 Hz: (15 - 17) / 17 = -11.8 %, beyond
+        # twice the 5 % tolerance (common practice), so the alarm is an alert.
+        stored = Machine(
+            id="rig-1", speed_range_rpm=(300.0, 1500.0), excitation_orders=(1.0, 2.0),
+            points=(Point("de-h", "horizontal", "acceleration", "m/s^2", fs),),
+            modes=(Mode("frame lateral", 17.0, damping_ratio=0.03),),
+        )
+        reg = tmp_path / "rig.toml"
+        reg.write_text(dump_registry(Registry((stored,))))
+        upgrade(database_url)
+        assert _run(["machines", "import", str(reg), "--database", database_url])[0] == 0
+        model = MachineModel("rig-1", modes=(ModalMode(15.0, 0.03, 100.0),),
+                             rigid_mass_kg=None, unbalance_kg_m=2e-3, sensor_noise_m_s2=1e-3)
+        readings = simulate_run(model, SpeedProfile.ramp(8.0, 24.0, 160.0), points=["de-h"],
+                                fs_hz=fs, block_samples=1024, interval_s=1.6, start_ts=T0, seed=3)
+        stream = tmp_path / "run.jsonl"
+        write_stream(stream, (reading_message(r) for r in readings))
+        code, docs, _, err = _run(["passage", str(stream), "--record", "--database", database_url,
+                                   "--machine", "rig-1", "--json"])
+        assert code == 0, err
+        (doc,) = docs
+        assert doc["comparison"][0]["shift_pct"] == pytest.approx(-11.8, abs=1.0)
+        (t,) = doc["alarm_transitions"]
+        assert (t["kind"], t["subject"], t["transition"]["name"], t["severity"]) == (
+            "mode_shift", "frame lateral", "raised", "alert")
+        assert t["transition"]["evidence"]["source"] == "run-up/coast-down"
+        code, _, _, err = _run(["passage", str(stream), "--machine", "rig-1"])
+        assert code == 2 and "--machines REGISTRY is required" in err
+
     def test_unknown_machine(self, tmp_path: Path) -> None:
         reg = tmp_path / "r.toml"
         reg.write_text(dump_registry(Registry((Machine(id="x-1"),))))

@@ -11,6 +11,9 @@ stored modes.
 Stream files carry no once-per-revolution pulses, so the phase columns stay empty here;
 the API (:func:`monitor.modes.order_point` with ``reference_s``) gives phase when a
 reference exists.
+
+With ``--record`` the registry comes from the database and the comparison with the stored
+modes is recorded there as ``mode_shift`` alarms (monitor/mode_alarms.py).
 """
 
 from __future__ import annotations
@@ -28,7 +31,14 @@ import numpy as np
 
 from monitor.analysis import ReadingAnalysis
 from monitor.commands.analyse import Outcome, analyse_stream
-from monitor.commands.bumptest import _json_safe, _open_registry, check_file
+from monitor.commands.bumptest import (
+    _json_safe,
+    _open_registry,
+    _stored_registry,
+    check_file,
+    print_transitions,
+)
+from monitor.commands.db import database_options, open_store
 from monitor.modes import (
     DEFAULT_SHIFT_TOLERANCE_PCT,
     BodeData,
@@ -53,6 +63,8 @@ class PointPassages:
     passages: tuple[Passage, ...]
     comparison: tuple[ModeShift, ...]
     skip_identified: tuple[SkipBand, ...]
+    ts: float = math.nan  # time of the latest reading used, epoch s
+    readings: int = 0
 
 
 def _amplitude(a: ReadingAnalysis, kind: str) -> tuple[float, float | None, str] | None:
@@ -85,8 +97,10 @@ def point_passages(
     comparison = compare_modes(
         machine.modes, [p.frequency_hz for p in passages], tolerance_pct=tolerance_pct
     ) if machine.modes else ()
+    used = [a for a in analyses if a.speed_hz >= min_speed_hz]
     return PointPassages(machine.id, point, bode, passages, comparison,
-                         machine_skip_bands(machine, identified))
+                         machine_skip_bands(machine, identified),
+                         max(a.ts for a in used), len(rows))
 
 
 def _bands_text(bands: tuple[SkipBand, ...]) -> str:
@@ -149,9 +163,10 @@ def result_json(r: PointPassages, stored_bands: tuple[SkipBand, ...]) -> dict[st
 
 @click.command("passage")
 @click.argument("file", type=click.Path(dir_okay=False, path_type=Path))
-@click.option("--machines", "machines_file", required=True,
+@click.option("--machines", "machines_file", default=None,
               type=click.Path(dir_okay=False, path_type=Path),
-              help="Machine registry (TOML) with the machine's points, modes and orders.")
+              help="Machine registry (TOML) with the machine's points, modes and orders "
+                   "(required without --record).")
 @click.option("--machine", "machine_id", required=True, help="Machine id to analyse.")
 @click.option("--amplitude", type=click.Choice(AMPLITUDES), default="velocity",
               show_default=True,
@@ -166,20 +181,48 @@ def result_json(r: PointPassages, stored_bands: tuple[SkipBand, ...]) -> dict[st
               show_default=True, help="Mode shift tolerance, percent of the stored frequency.")
 @click.option("--json", "as_json", is_flag=True, help="One JSON object per measurement point.")
 @click.option("--prefix", default="whirlwatch", show_default=True, help="MQTT topic prefix.")
-def passage(file: Path, machines_file: Path, machine_id: str, amplitude: str,
+@click.option("--record", is_flag=True,
+              help="Compare with the modes stored in the database and record mode-shift alarms there.")
+@database_options
+def passage(file: Path, machines_file: Path | None, machine_id: str, amplitude: str,
             min_speed_rpm: float | None, prominence: float, tolerance_pct: float,
-            as_json: bool, prefix: str) -> None:
+            as_json: bool, prefix: str, record: bool, database_url: str | None,
+            config_file: str | None) -> None:
     """Find the resonance passages (critical speeds, amplification factors, phase) in the
     run-up or coast-down stream FILE (.jsonl), with drive skip bands."""
     total = check_file(file)
-    registry = _open_registry(machines_file)
+    store = None
+    if record:
+        if machines_file is not None:
+            raise click.UsageError(
+                "--record compares with the modes stored in the database; leave out --machines.")
+        store = open_store(database_url, config_file)
+        registry = _stored_registry(store)
+        where = "the database's registry"
+    else:
+        if machines_file is None:
+            raise click.UsageError("--machines REGISTRY is required (or --record to use the database's).")
+        registry = _open_registry(machines_file)
+        where = f"the registry {str(machines_file)!r}"
     assert registry is not None
     try:
         machine = registry.machine(machine_id)
     except KeyError:
-        raise click.UsageError(
-            f"machine {machine_id!r} is not in the registry {str(machines_file)!r}."
-        ) from None
+        if store is not None:
+            store.close()
+        raise click.UsageError(f"machine {machine_id!r} is not in {where}.") from None
+    try:
+        _passage(file, total, registry, machine, amplitude, min_speed_rpm, prominence,
+                 tolerance_pct, as_json, prefix, store)
+    finally:
+        if store is not None:
+            store.close()
+
+
+def _passage(file: Path, total: int, registry: Any, machine: Machine, amplitude: str,
+             min_speed_rpm: float | None, prominence: float, tolerance_pct: float,
+             as_json: bool, prefix: str, store: Any) -> None:
+    machine_id = machine.id
     if not (math.isfinite(tolerance_pct) and 0 < tolerance_pct < 100):
         raise click.UsageError(f"--tolerance must lie between 0 and 100 %, got {tolerance_pct!r}.")
     if not (math.isfinite(prominence) and 0 < prominence < 1):
@@ -217,11 +260,21 @@ def passage(file: Path, machines_file: Path, machine_id: str, amplitude: str,
                        f"{min_hz * 60:.0f} r/min; no passage analysis.", err=True)
             continue
         found += 1
+        transitions = []
+        if store is not None and r.comparison:
+            from monitor.mode_alarms import record_mode_findings  # the store: only when asked
+
+            transitions = record_mode_findings(
+                store, machine, r.comparison, r.ts, point=point,
+                evidence={"source": "run-up/coast-down", "file": file.name, "readings": r.readings})
         if as_json:
-            click.echo(json.dumps(result_json(r, stored_bands), separators=(",", ":"),
-                                  allow_nan=False))
+            doc = result_json(r, stored_bands)
+            if store is not None:
+                doc["alarm_transitions"] = [_json_safe(t.to_json()) for t in transitions]
+            click.echo(json.dumps(doc, separators=(",", ":"), allow_nan=False))
         else:
             print_table(r)
+            print_transitions(transitions)
     if not as_json:
         click.echo(f"skip bands from the stored modes: {_bands_text(stored_bands)}")
     outcome.report("waveforms analysed")
