@@ -575,12 +575,15 @@ class TestBumptestCommand:
 
 
 class TestPassageCommand:
-    def test_simulated_run_up(self, tmp_path: Path) -> None:
+    @staticmethod
+    def _run_up(tmp_path: Path, stored_hz: float) -> tuple[Path, Path]:
+        """A registry with the mode stored at ``stored_hz`` and a simulated run-up stream
+        through a 15 Hz mode (zeta 0.03)."""
         fs = 512.0
         machine = Machine(
             id="rig-1", speed_range_rpm=(300.0, 1500.0), excitation_orders=(1.0, 2.0),
             points=(Point("de-h", "horizontal", "acceleration", "m/s^2", fs),),
-            modes=(Mode("frame lateral", 15.0, damping_ratio=0.03),),
+            modes=(Mode("frame lateral", stored_hz, damping_ratio=0.03),),
         )
         reg = tmp_path / "rig.toml"
         reg.write_text(dump_registry(Registry((machine,))))
@@ -592,6 +595,10 @@ class TestPassageCommand:
         assert isinstance(readings[0], SpeedReading)
         stream = tmp_path / "run.jsonl"
         write_stream(stream, (reading_message(r) for r in readings))
+        return reg, stream
+
+    def test_simulated_run_up(self, tmp_path: Path) -> None:
+        reg, stream = self._run_up(tmp_path, 15.0)
         code, docs, _, err = _run(["passage", str(stream), "--machines", str(reg),
                                    "--machine", "rig-1", "--json"])
         assert code == 0, err
@@ -619,24 +626,11 @@ class TestPassageCommand:
     def test_record_a_moved_mode_from_a_run_up(self, tmp_path: Path, database_url: str) -> None:
         from monitor.store import upgrade
 
-        fs = 512.0
         # Stored at 17 Hz, the simulated mode is at 15 Hz: (15 - 17) / 17 = -11.8 %, beyond
         # twice the 5 % tolerance (common practice), so the alarm is an alert.
-        stored = Machine(
-            id="rig-1", speed_range_rpm=(300.0, 1500.0), excitation_orders=(1.0, 2.0),
-            points=(Point("de-h", "horizontal", "acceleration", "m/s^2", fs),),
-            modes=(Mode("frame lateral", 17.0, damping_ratio=0.03),),
-        )
-        reg = tmp_path / "rig.toml"
-        reg.write_text(dump_registry(Registry((stored,))))
+        reg, stream = self._run_up(tmp_path, 17.0)
         upgrade(database_url)
         assert _run(["machines", "import", str(reg), "--database", database_url])[0] == 0
-        model = MachineModel("rig-1", modes=(ModalMode(15.0, 0.03, 100.0),),
-                             rigid_mass_kg=None, unbalance_kg_m=2e-3, sensor_noise_m_s2=1e-3)
-        readings = simulate_run(model, SpeedProfile.ramp(8.0, 24.0, 160.0), points=["de-h"],
-                                fs_hz=fs, block_samples=1024, interval_s=1.6, start_ts=T0, seed=3)
-        stream = tmp_path / "run.jsonl"
-        write_stream(stream, (reading_message(r) for r in readings))
         code, docs, _, err = _run(["passage", str(stream), "--record", "--database", database_url,
                                    "--machine", "rig-1", "--json"])
         assert code == 0, err

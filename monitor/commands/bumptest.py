@@ -87,8 +87,45 @@ def _stored_registry(store: Any) -> Registry:
     return registry
 
 
-def print_transitions(transitions: list[Any]) -> None:
-    """One line per recorded mode-shift alarm transition."""
+def comparison_registry(record: bool, machines_file: Path | None, database_url: str | None,
+                        config_file: str | None) -> tuple[Registry | None, Any]:
+    """The registry whose modes a test is compared with, and the store to record in: the
+    database's registry and store with ``--record`` (the caller closes the store), else
+    the ``--machines`` file's registry (None without one) and no store."""
+    if not record:
+        return _open_registry(machines_file), None
+    if machines_file is not None:
+        raise click.UsageError("--record compares with the modes stored in the database; leave out --machines.")
+    store = open_store(database_url, config_file)
+    try:
+        return _stored_registry(store), store
+    except BaseException:
+        store.close()
+        raise
+
+
+def record_comparison(store: Any, machine: Machine, comparison: tuple[ModeShift, ...], ts: float,
+                      point: str, evidence: dict[str, Any]) -> list[Any]:
+    """Mode-shift alarm transitions of one point's comparison, recorded in ``store``
+    (none without a store)."""
+    if store is None or not comparison:
+        return []
+    from monitor.mode_alarms import record_mode_findings  # the store: only when asked
+
+    return record_mode_findings(store, machine, comparison, ts, point=point, evidence=evidence)
+
+
+def emit_point(doc: dict[str, Any] | None, print_table_fn: Callable[[], None], transitions: list[Any],
+               *, recording: bool) -> None:
+    """Write one point's result: ``doc`` as a JSON line (with its ``alarm_transitions``
+    when recording), or the table and one line per recorded transition when ``doc`` is
+    None."""
+    if doc is not None:
+        if recording:
+            doc["alarm_transitions"] = [_json_safe(t.to_json()) for t in transitions]
+        click.echo(json.dumps(doc, separators=(",", ":"), allow_nan=False))
+        return
+    print_table_fn()
     for t in transitions:
         click.echo(f"  recorded: mode_shift alarm {t.alarm_id} {t.name} ({t.severity})")
 
@@ -366,26 +403,28 @@ def bumptest(file: Path, machines_file: Path | None, machine_id: str | None,
     """Identify natural frequencies, damping (half-power and logarithmic decrement) and
     amplification factors from the impact-test hits in stream FILE (.jsonl)."""
     total = check_file(file)
-    store = None
-    if record:
-        if machines_file is not None:
-            raise click.UsageError(
-                "--record compares with the modes stored in the database; leave out --machines.")
-        store = open_store(database_url, config_file)
-        registry = _stored_registry(store)
-    else:
-        registry = _open_registry(machines_file)
     if band is not None and not (0 <= band[0] < band[1] and all(map(math.isfinite, band))):
         raise click.UsageError(f"--band must be two frequencies LO < HI in Hz, got {band!r}.")
     if not (math.isfinite(tolerance_pct) and 0 < tolerance_pct < 100):
         raise click.UsageError(f"--tolerance must lie between 0 and 100 %, got {tolerance_pct!r}.")
+    registry, store = comparison_registry(record, machines_file, database_url, config_file)
+    try:
+        _bumptest(file, total, registry, store, machine_id, band, force_point, tolerance_pct,
+                  as_json, prefix, machines_file)
+    finally:
+        if store is not None:
+            store.close()
+
+
+def _bumptest(file: Path, total: int, registry: Registry | None, store: Any, machine_id: str | None,
+              band: tuple[float, float] | None, force_point: str | None, tolerance_pct: float,
+              as_json: bool, prefix: str, machines_file: Path | None) -> None:
     if registry is not None and machine_id is not None:
         try:
             registry.machine(machine_id)
         except KeyError:
-            raise click.UsageError(
-                f"machine {machine_id!r} is not in the registry {str(machines_file)!r}."
-            ) from None
+            where = "the database's registry" if store is not None else f"the registry {str(machines_file)!r}"
+            raise click.UsageError(f"machine {machine_id!r} is not in {where}.") from None
     outcome = Outcome()
     with click.progressbar(length=total, label="reading hits", file=sys.stderr) as bar:
         hits, forces, _ = read_hits(
@@ -396,24 +435,12 @@ def bumptest(file: Path, machines_file: Path | None, machine_id: str | None,
         outcome.report("waveforms accepted")
         who = f" of machine {machine_id!r}" if machine_id else ""
         raise click.ClickException(f"stream file {str(file)!r} holds no response waveform{who}.")
-    try:
-        for r in _results(hits, forces, registry, band, tolerance_pct, outcome):
-            transitions = []
-            if store is not None and registry is not None and r.comparison:
-                from monitor.mode_alarms import record_mode_findings  # the store: only when asked
-
-                transitions = record_mode_findings(
-                    store, registry.machine(r.machine), r.comparison, r.ts, point=r.point,
-                    evidence={"source": "impact test", "file": file.name, "hits": r.hits_used})
-            if as_json:
-                doc = result_json(r)
-                if store is not None:
-                    doc["alarm_transitions"] = [_json_safe(t.to_json()) for t in transitions]
-                click.echo(json.dumps(doc, separators=(",", ":"), allow_nan=False))
-            else:
-                print_table(r)
-                print_transitions(transitions)
-    finally:
-        if store is not None:
-            store.close()
+    for r in _results(hits, forces, registry, band, tolerance_pct, outcome):
+        transitions = []
+        if store is not None and registry is not None:
+            transitions = record_comparison(
+                store, registry.machine(r.machine), r.comparison, r.ts, r.point,
+                {"source": "impact test", "file": file.name, "hits": r.hits_used})
+        emit_point(result_json(r) if as_json else None, lambda r=r: print_table(r), transitions,
+                   recording=store is not None)
     outcome.report("waveforms accepted")

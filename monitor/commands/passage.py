@@ -19,7 +19,6 @@ modes is recorded there as ``mode_shift`` alarms (monitor/mode_alarms.py).
 from __future__ import annotations
 
 import dataclasses
-import json
 import math
 import sys
 from collections import defaultdict
@@ -33,12 +32,12 @@ from monitor.analysis import ReadingAnalysis
 from monitor.commands.analyse import Outcome, analyse_stream
 from monitor.commands.bumptest import (
     _json_safe,
-    _open_registry,
-    _stored_registry,
     check_file,
-    print_transitions,
+    comparison_registry,
+    emit_point,
+    record_comparison,
 )
-from monitor.commands.db import database_options, open_store
+from monitor.commands.db import database_options
 from monitor.modes import (
     DEFAULT_SHIFT_TOLERANCE_PCT,
     BodeData,
@@ -191,27 +190,22 @@ def passage(file: Path, machines_file: Path | None, machine_id: str, amplitude: 
     """Find the resonance passages (critical speeds, amplification factors, phase) in the
     run-up or coast-down stream FILE (.jsonl), with drive skip bands."""
     total = check_file(file)
-    store = None
-    if record:
-        if machines_file is not None:
-            raise click.UsageError(
-                "--record compares with the modes stored in the database; leave out --machines.")
-        store = open_store(database_url, config_file)
-        registry = _stored_registry(store)
-        where = "the database's registry"
-    else:
-        if machines_file is None:
-            raise click.UsageError("--machines REGISTRY is required (or --record to use the database's).")
-        registry = _open_registry(machines_file)
-        where = f"the registry {str(machines_file)!r}"
+    if not (math.isfinite(tolerance_pct) and 0 < tolerance_pct < 100):
+        raise click.UsageError(f"--tolerance must lie between 0 and 100 %, got {tolerance_pct!r}.")
+    if not (math.isfinite(prominence) and 0 < prominence < 1):
+        raise click.UsageError(f"--prominence must lie between 0 and 1, got {prominence!r}.")
+    if min_speed_rpm is not None and not (math.isfinite(min_speed_rpm) and min_speed_rpm >= 0):
+        raise click.UsageError(f"--min-speed must be a speed >= 0 in r/min, got {min_speed_rpm!r}.")
+    if not record and machines_file is None:
+        raise click.UsageError("--machines REGISTRY is required (or --record to use the database's).")
+    registry, store = comparison_registry(record, machines_file, database_url, config_file)
     assert registry is not None
     try:
-        machine = registry.machine(machine_id)
-    except KeyError:
-        if store is not None:
-            store.close()
-        raise click.UsageError(f"machine {machine_id!r} is not in {where}.") from None
-    try:
+        try:
+            machine = registry.machine(machine_id)
+        except KeyError:
+            where = "the database's registry" if store is not None else f"the registry {str(machines_file)!r}"
+            raise click.UsageError(f"machine {machine_id!r} is not in {where}.") from None
         _passage(file, total, registry, machine, amplitude, min_speed_rpm, prominence,
                  tolerance_pct, as_json, prefix, store)
     finally:
@@ -223,12 +217,6 @@ def _passage(file: Path, total: int, registry: Any, machine: Machine, amplitude:
              min_speed_rpm: float | None, prominence: float, tolerance_pct: float,
              as_json: bool, prefix: str, store: Any) -> None:
     machine_id = machine.id
-    if not (math.isfinite(tolerance_pct) and 0 < tolerance_pct < 100):
-        raise click.UsageError(f"--tolerance must lie between 0 and 100 %, got {tolerance_pct!r}.")
-    if not (math.isfinite(prominence) and 0 < prominence < 1):
-        raise click.UsageError(f"--prominence must lie between 0 and 1, got {prominence!r}.")
-    if min_speed_rpm is not None and not (math.isfinite(min_speed_rpm) and min_speed_rpm >= 0):
-        raise click.UsageError(f"--min-speed must be a speed >= 0 in r/min, got {min_speed_rpm!r}.")
     min_hz = (machine.speed_range_rpm[0] / 2 if min_speed_rpm is None else min_speed_rpm) / 60.0
     outcome = Outcome()
     by_point: dict[str, list[ReadingAnalysis]] = defaultdict(list)
@@ -260,21 +248,11 @@ def _passage(file: Path, total: int, registry: Any, machine: Machine, amplitude:
                        f"{min_hz * 60:.0f} r/min; no passage analysis.", err=True)
             continue
         found += 1
-        transitions = []
-        if store is not None and r.comparison:
-            from monitor.mode_alarms import record_mode_findings  # the store: only when asked
-
-            transitions = record_mode_findings(
-                store, machine, r.comparison, r.ts, point=point,
-                evidence={"source": "run-up/coast-down", "file": file.name, "readings": r.readings})
-        if as_json:
-            doc = result_json(r, stored_bands)
-            if store is not None:
-                doc["alarm_transitions"] = [_json_safe(t.to_json()) for t in transitions]
-            click.echo(json.dumps(doc, separators=(",", ":"), allow_nan=False))
-        else:
-            print_table(r)
-            print_transitions(transitions)
+        transitions = record_comparison(store, machine, r.comparison, r.ts, point,
+                                        {"source": "run-up/coast-down", "file": file.name,
+                                         "readings": r.readings})
+        emit_point(result_json(r, stored_bands) if as_json else None, lambda r=r: print_table(r),
+                   transitions, recording=store is not None)
     if not as_json:
         click.echo(f"skip bands from the stored modes: {_bands_text(stored_bands)}")
     outcome.report("waveforms analysed")
