@@ -6,16 +6,14 @@ in the database, so every published waveform ends with exactly one measurement r
 
 from __future__ import annotations
 
-import contextlib
 import random
 import signal
 import threading
-import uuid
 from pathlib import Path
 
 import pytest
 from broker import PrivateBroker, publish_many
-from fixtures_db import PG_SERVER_URL, postgres_unreachable_reason
+from fixtures_db import fresh_database
 from service_helpers import (
     measurement_count,
     plant_store,
@@ -31,31 +29,9 @@ pytestmark = [pytest.mark.broker, pytest.mark.slow]
 
 @pytest.fixture(params=["sqlite", pytest.param("postgresql", marks=pytest.mark.postgres)])
 def db_url(request: pytest.FixtureRequest, tmp_path: Path):
-    if request.param == "sqlite":
-        url = f"sqlite:///{tmp_path / 'store.sqlite'}"
+    with fresh_database(request.param, tmp_path) as url:
         plant_store(url)
         yield url
-        return
-    yield from _pg_schema()
-
-
-def _pg_schema():
-    reason = postgres_unreachable_reason()
-    if reason:
-        pytest.skip(reason)
-    import psycopg
-
-    schema = f"t_{uuid.uuid4().hex[:12]}"
-    dsn = "host=127.0.0.1 port=5432 user=postgres dbname=test"
-    with psycopg.connect(dsn, autocommit=True) as conn:
-        conn.execute(f'CREATE SCHEMA "{schema}"')
-    url = f"{PG_SERVER_URL}?options=-csearch_path%3D{schema}"
-    try:
-        plant_store(url)
-        yield url
-    finally:
-        with psycopg.connect(dsn, autocommit=True) as conn:
-            conn.execute(f'DROP SCHEMA "{schema}" CASCADE')
 
 
 def test_sigkill_at_random_moments_loses_and_duplicates_nothing(
@@ -93,9 +69,8 @@ def test_sigkill_at_random_moments_loses_and_duplicates_nothing(
 
 
 def test_two_processes_share_the_stream_exactly_once(fresh_mosquitto: PrivateBroker, tmp_path: Path) -> None:
-    gen = _pg_schema()
-    url = next(gen)
-    try:
+    with fresh_database("postgresql", tmp_path) as url:
+        plant_store(url)
         procs = [service_process(fresh_mosquitto.url, url, tmp_path, client_id=f"svc-{i}", group="g")
                  for i in range(2)]
         for i in range(2):
@@ -114,6 +89,3 @@ def test_two_processes_share_the_stream_exactly_once(fresh_mosquitto: PrivateBro
         for i in range(2):
             log = (tmp_path / f"svc-{i}.log").read_text(errors="replace")
             assert '"service stopped"' in log
-    finally:
-        with contextlib.suppress(StopIteration):
-            next(gen)

@@ -13,11 +13,12 @@ import signal
 import threading
 import urllib.request
 from collections import Counter
+from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
 from broker import PrivateBroker, free_port, publish_many
-from fixtures_db import PG_SERVER_URL, postgres_unreachable_reason
+from fixtures_db import fresh_database
 from prometheus_client.parser import text_string_to_metric_families
 from service_helpers import (
     PLANT,
@@ -171,25 +172,10 @@ def test_repeated_publishes_are_stored_once_and_all_acknowledged(
 
 
 @pytest.fixture()
-def pg_url() -> str:
-    reason = postgres_unreachable_reason()
-    if reason:
-        pytest.skip(reason)
-    import uuid
-
-    import psycopg
-
-    schema = f"t_{uuid.uuid4().hex[:12]}"
-    dsn = "host=127.0.0.1 port=5432 user=postgres dbname=test"
-    with psycopg.connect(dsn, autocommit=True) as conn:
-        conn.execute(f'CREATE SCHEMA "{schema}"')
-    url = f"{PG_SERVER_URL}?options=-csearch_path%3D{schema}"
-    try:
+def pg_url(tmp_path: Path) -> Iterator[str]:
+    with fresh_database("postgresql", tmp_path) as url:
         plant_store(url)
         yield url
-    finally:
-        with psycopg.connect(dsn, autocommit=True) as conn:
-            conn.execute(f'DROP SCHEMA "{schema}" CASCADE')
 
 
 def scrape(port: int) -> dict[tuple[str, tuple[tuple[str, str], ...]], float]:
