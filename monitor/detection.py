@@ -994,6 +994,22 @@ def _fit_windows(wins: list[TrendWindow]) -> None:
             w.set_fit(Trend(slope, lo, hi, inter, t.size))
 
 
+def evaluator_from_state(machine: Machine, state: Any) -> tuple[MachineEvaluator, int]:
+    """The evaluator of ``machine`` and its version from a stored detector state
+    (:func:`stored_state`), or a fresh evaluator at version 0 when nothing usable is
+    stored."""
+    if isinstance(state, dict) and "evaluator" in state:
+        return MachineEvaluator.restore(machine, state["evaluator"]), int(state.get("version") or 0)
+    return MachineEvaluator(machine), 0
+
+
+def stored_state(evaluator: MachineEvaluator, version: int) -> dict[str, Any]:
+    """The detector state of one machine as stored (``detector_state.state``): its
+    ``version`` (moved on by one at each write, so a process holding an older copy knows
+    to reload) and the evaluator's snapshot."""
+    return {"version": version, "evaluator": evaluator.snapshot()}
+
+
 class Detector:
     """State detection for every machine of a registry (one :class:`MachineEvaluator` each)."""
 

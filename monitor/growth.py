@@ -164,7 +164,8 @@ def _tie_term(sorted_a: np.ndarray) -> float:
     return float(np.sum(k * (k - 1) * (2 * k + 5)))
 
 
-def _sorted_median(a: np.ndarray) -> float:
+def sorted_median(a: np.ndarray) -> float:
+    """Median of an ascending 1-D array (the same arithmetic as np.median)."""
     n = a.size
     m = n // 2
     return float(a[m]) if n % 2 else float(0.5 * (a[m - 1] + a[m]))
@@ -248,7 +249,7 @@ def theil_sen_many(x: np.ndarray, ys: np.ndarray, *, x_increasing: bool = False
             kth.update(e)
     slopes.partition(sorted(kth), axis=1)
     med = _sorted_median_rows(slopes)
-    inter = (_sorted_median_rows(yss) - med * _sorted_median(xs)).tolist()
+    inter = (_sorted_median_rows(yss) - med * sorted_median(xs)).tolist()
     med = med.tolist()
     if len(by_sq) == 1:
         e = by_sq[sigsq[0]]
@@ -400,11 +401,10 @@ class TrendWindow:
         ts = self.ts
         if len(ts) < self.min_readings:
             return None
-        f = self._fit
-        if f is None or self._since_fit >= self.refit_every:
+        if self.needs_fit():
             self.set_fit(theil_sen_trend(list(ts), list(self.values)))
-            f = self._fit
-            assert f is not None
+        f = self._fit
+        assert f is not None
         last = ts[-1]
         if last == self._fit_ts:
             return f.slope_per_s, f.low_per_s, f.fitted_now

@@ -26,6 +26,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from monitor.growth import sorted_median
 from monitor.readings import Waveform
 from monitor.registry import Point
 
@@ -76,19 +77,13 @@ class HealthReport:
         return {"ok": self.ok, "flags": [f.to_json() for f in self.flags]}
 
 
-def _sorted_median(a: np.ndarray) -> float:
-    """Median of an ascending array (the same arithmetic as np.median)."""
-    m = a.size // 2
-    return float(a[m]) if a.size % 2 else float(0.5 * (a[m - 1] + a[m]))
-
-
 def _median_and_mad(a: np.ndarray) -> tuple[float, float]:
     """Median and median absolute deviation of finite samples ``a``.
 
     Two sorts of a small array: cheaper here than np.median's partitions with their NaN
     and shape handling, and the same values."""
-    med = _sorted_median(np.sort(a))
-    return med, _sorted_median(np.sort(np.abs(a - med)))
+    med = sorted_median(np.sort(a))
+    return med, sorted_median(np.sort(np.abs(a - med)))
 
 
 def _longest_run(mask: np.ndarray) -> int:

@@ -18,7 +18,7 @@ from typing import Any
 from sqlalchemy import select
 
 from monitor.alarms import Transition
-from monitor.detection import MachineEvaluator
+from monitor.detection import evaluator_from_state, stored_state
 from monitor.modes import ModeShift
 from monitor.registry import Machine
 from monitor.store import Store
@@ -38,26 +38,15 @@ def record_mode_findings(
     """Apply ``findings`` of a test at ``ts`` (epoch s) to ``machine``'s stored detector
     state and store the alarm transitions they cause; returns those transitions (often
     none: a mode still within its tolerance with no alarm open changes nothing)."""
-    with store.writer_gate(), store.transaction() as s:
-        conn = s.connection()
-        if conn.dialect.name == "sqlite":
-            # The write lock first: a read followed by a write cannot wait for it (see
-            # Service._write_lock).
-            conn.exec_driver_sql("UPDATE detector_state SET machine_id = machine_id WHERE 0")
+    with store.write_transaction() as s:
         stmt = select(DetectorState.state, DetectorState.ts).where(DetectorState.machine_id == machine.id)
-        if conn.dialect.name == "postgresql":
+        if s.get_bind().dialect.name == "postgresql":
             stmt = stmt.with_for_update()
         row = s.execute(stmt).one_or_none()
-        state = row.state if row is not None else None
-        if isinstance(state, dict) and "evaluator" in state:
-            evaluator = MachineEvaluator.restore(machine, state["evaluator"])
-            version = int(state.get("version") or 0)
-        else:
-            evaluator, version = MachineEvaluator(machine), 0
+        evaluator, version = evaluator_from_state(machine, row.state if row is not None else None)
         transitions = evaluator.observe_mode_findings(findings, ts, point=point, evidence=evidence)
         if transitions:
             record_transitions(s, transitions)
-            save_detector_states(s, {machine.id: (
-                {"version": version + 1, "evaluator": evaluator.snapshot()},
-                row.ts if row is not None else None)})
+            save_detector_states(s, {machine.id: (stored_state(evaluator, version + 1),
+                                                  row.ts if row is not None else None)})
     return transitions

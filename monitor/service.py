@@ -48,7 +48,12 @@ from sqlalchemy import and_, bindparam, event, func, select
 from monitor.alarms import Transition, severity_rank
 from monitor.analysis import ReadingAnalysis, analyse_waveform
 from monitor.config import Settings
-from monitor.detection import MachineEvaluator, ReadingEvaluation
+from monitor.detection import (
+    MachineEvaluator,
+    ReadingEvaluation,
+    evaluator_from_state,
+    stored_state,
+)
 from monitor.ingest import SPEED_STREAM, IngestLimits, Rejected, RejectionCounter, decode_message
 from monitor.metrics import MetricsServer, ServiceMetrics
 from monitor.mqtt import InboundMessage, MessageSource, MqttError, MqttSettings, Publisher
@@ -342,22 +347,6 @@ class Service:
 
     # -- detector state
 
-    def _write_lock(self, s: Any) -> Any:
-        """SQLite: take the database's write lock first (waiting up to busy_timeout).
-
-        A transaction that reads and then writes cannot wait for the lock: if another
-        process committed since its first read, SQLite fails the write at once with
-        "database is locked" and the whole batch is retried after a back-off. A write that
-        matches no row takes the lock before any read, so the wait is the busy handler's.
-        (PostgreSQL serialises on the detector-state row locks instead.) Returns the
-        session's connection (its transaction begun)."""
-        c = s.connection()
-        if self._sqlite:
-            # Straight on the driver's connection: through SQLAlchemy this no-op costs
-            # several times what SQLite spends on it.
-            c.connection.driver_connection.execute("UPDATE detector_state SET machine_id = machine_id WHERE 0")
-        return c
-
     def _take_states(self, s: Any, machines: list[str], *, acks: bool = True
                      ) -> tuple[dict[str, MachineEvaluator], dict[str, list[Transition]]]:
         """Lock (PostgreSQL, in machine order so two processes cannot deadlock) and check
@@ -410,11 +399,7 @@ class Service:
         state = s.execute(
             select(DetectorState.state).where(DetectorState.machine_id == machine)
         ).scalar_one_or_none()
-        spec = self.registry.machine(machine)
-        if isinstance(state, dict) and "evaluator" in state:
-            self._evaluators[machine] = MachineEvaluator.restore(spec, state["evaluator"])
-        else:
-            self._evaluators[machine] = MachineEvaluator(spec)
+        self._evaluators[machine] = evaluator_from_state(self.registry.machine(machine), state)[0]
         self._versions[machine] = version
 
     def _sync_acks(self, s: Any, evaluators: dict[str, MachineEvaluator]) -> dict[str, list[Transition]]:
@@ -451,7 +436,7 @@ class Service:
         """The new state of every machine the batch touched (``{machine: latest ts}``),
         one row each; the version moves on by one per batch."""
         save_detector_states(s, {
-            m: ({"version": (self._versions.get(m) or 0) + 1, "evaluator": self._evaluators[m].snapshot()}, ts)
+            m: (stored_state(self._evaluators[m], (self._versions.get(m) or 0) + 1), ts)
             for m, ts in touched.items()
         })
 
@@ -604,10 +589,10 @@ class Service:
         The existence query runs when ``check_all`` or any reading needs it (``_Item.check``);
         otherwise every reading is taken as new and a short insert raises :class:`_Raced`."""
         touched: dict[str, float] = {}
-        with self._lock, self.store.writer_gate(), self.store.transaction() as s:
+        with self._lock, self.store.write_transaction() as s:
             # Core statements run on the session's connection (same transaction): the ORM
             # Session's execute adds about as much per statement as SQLite takes.
-            c = self._write_lock(s)
+            c = s.connection()
             stored_at = utcnow()
             for it in items:
                 it.outcome = None
@@ -955,8 +940,7 @@ class Service:
         outs: list[Outcome] = []
         for m in self.registry.machines:
             def work(mid: str = m.id) -> Outcome | None:
-                with self._lock, self.store.writer_gate(), self.store.transaction() as s:
-                    self._write_lock(s)
+                with self._lock, self.store.write_transaction() as s:
                     ev = self._take_states(s, [mid], acks=False)[0][mid]
                     trans = ev.check_stale(now)
                     if not trans:

@@ -155,6 +155,25 @@ class Store:
         with self.sessions() as session, session.begin():
             yield session
 
+    @contextmanager
+    def write_transaction(self) -> Iterator[Session]:
+        """:meth:`transaction` for a writer that reads before it writes (the service, a
+        recorded test): queued at :meth:`writer_gate`, and on SQLite holding the
+        database's write lock from the start.
+
+        A SQLite transaction that reads and then writes cannot wait for the lock: if
+        another process committed since its first read, SQLite fails the write at once with
+        "database is locked". A write that matches no row takes the lock before any read,
+        so the wait is the busy handler's. (PostgreSQL serialises such writers on row locks
+        taken by their own queries instead.)"""
+        with self.writer_gate(), self.transaction() as session:
+            if self.engine.dialect.name == "sqlite":
+                # Straight on the driver's connection: through SQLAlchemy this no-op costs
+                # several times what SQLite spends on it.
+                session.connection().connection.driver_connection.execute(
+                    "UPDATE detector_state SET machine_id = machine_id WHERE 0")
+            yield session
+
     def writer_gate(self) -> Any:
         """A context that queues this process's writers behind the other processes' on a
         SQLite file (an exclusive ``flock`` on ``<database>.writers``); a null context for
