@@ -116,7 +116,7 @@ def _spike_rule(x: np.ndarray) -> bool:
 @pytest.mark.parametrize("seed", range(4))
 def test_spike_flag_matches_rule_on_varied_blocks(seed):
     # Spread, bunched, quantised and sparse blocks with spikes near the limit: the flag is
-    # exactly the rule (the module may skip the median when it can prove no spike).
+    # exactly the rule (the module stops early when neither extreme passes the limit).
     rng = np.random.default_rng(seed)
     n = 4096
     t = np.arange(n)
