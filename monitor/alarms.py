@@ -243,30 +243,47 @@ class AlarmEngine:
         ``evidence`` may be a function returning the dict; it is called only when a
         transition happens (building evidence for every reading is wasted work).
         """
-        s = self._streams.get(key)
-        # Nothing holds: for a key with no live alarm and nothing counted this changes only
-        # the time seen, the common case on every reading.
-        if (raise_level is None and hold_level is None and s is not None and s.raise_count == 0
-                and (s.alarm is None or s.alarm.state == "cleared")):
-            s.last_ts = ts
-            return []
         r = _RANK.get(raise_level, -1)
         h = _RANK.get(hold_level, -1)
         if r < 0 or h < 0:
             severity_rank(raise_level)  # raises the error naming the bad value
             severity_rank(hold_level)
+        return self.update_ranked(key, ts, r, h, evidence, reading_id, persistence)
+
+    def update_ranked(
+        self,
+        key: AlarmKey,
+        ts: float,
+        r: int,
+        h: int,
+        evidence: dict[str, Any] | Callable[[], dict[str, Any]] | None = None,
+        reading_id: str | None = None,
+        persistence: int | None = None,
+    ) -> list[Transition]:
+        """:meth:`update` with the levels given by rank (:func:`severity_rank`: 0 none,
+        1 advisory, 2 alert, 3 severe), for callers that decide in ranks; ``r`` and ``h``
+        must be such ranks (not checked here)."""
+        s = self._streams.get(key)
+        # Nothing holds: for a key with no live alarm and nothing counted this changes only
+        # the time seen, the common case on every reading.
+        if (r == 0 and h == 0 and s is not None and s.raise_count == 0
+                and (s.alarm is None or s.alarm.state == "cleared")):
+            s.last_ts = ts
+            return []
         if r > h:
             h = r
         if s is not None:
             a = s.alarm
-            if a is not None and a.state != "cleared" and r <= _RANK[a.severity] == h:
-                # A live alarm whose own level still holds and nothing worse is raised:
-                # every counter restarts and no transition can follow (the steady case).
+            if a is not None and a.state != "cleared" and r <= _RANK[a.severity] <= h:
+                # A live alarm whose own level still holds (or a higher level's relaxed
+                # condition) and nothing worse is raised: every counter restarts and no
+                # transition can follow (the steady case).
                 s.up_count = s.clear_count = s.down_count = 0
                 s.last_ts = ts
                 return []
+        else:
+            s = self._streams[key] = _Stream()
         n = self.persistence if persistence is None else int(persistence)
-        s = self._streams.setdefault(key, _Stream())
         s.last_ts = ts
         a = s.alarm
         out: list[Transition] = []

@@ -479,12 +479,16 @@ class MachineEvaluator:
                     ignored = "resonance band: " + ", ".join(inside)
             feats, t = self._growth(analysis, point.id, limits, ignored)
             trans += t
-        return ReadingEvaluation(
+        # Every field set at once, past the frozen dataclass's __init__ (one
+        # object.__setattr__ per field, a measurable part of a reading's detection).
+        out = object.__new__(ReadingEvaluation)
+        out.__dict__.update(
             machine=self.machine.id, point=point.id, ts=ts, reading_id=rid, speed_hz=speed,
             overall_velocity_mm_s_rms=overall, zone=zone, zone_limits=limits, margins=margins,
             approach=approach, features=feats, health=health, growth_ignored=ignored,
             machine_alarms_suppressed=suppressed, transitions=tuple(trans),
         )
+        return out
 
     def observe_speed(self, reading: SpeedReading) -> list[Transition]:
         """A running-speed message (Hz) for this machine; advances resonance alarms."""
@@ -624,10 +628,6 @@ class MachineEvaluator:
                 s.trend_window, s.trend_min_readings, s.trend_refit_every, speed_band)
         return base, win, self._key(pid, "amplitude_growth", name)
 
-    @staticmethod
-    def _fit_trends(wins: list[TrendWindow]) -> None:
-        _fit_windows(wins)
-
     def _expected_interval(self, pid: str) -> float | None:
         if self.settings.reading_interval_s is not None:
             return self.settings.reading_interval_s
@@ -638,9 +638,13 @@ class MachineEvaluator:
 
     def _arrival(self, pid: str, ts: float, rid: str | None) -> list[Transition]:
         last = self._last_ts.get(pid)
-        if last is not None and ts > last:
-            self._intervals.setdefault(pid, deque(maxlen=10)).append(ts - last)
-        if last is None or ts > last:
+        if last is None:
+            self._last_ts[pid] = ts
+        elif ts > last:
+            d = self._intervals.get(pid)
+            if d is None:
+                d = self._intervals[pid] = deque(maxlen=10)
+            d.append(ts - last)
             self._last_ts[pid] = ts
         key = self._key(pid, "sensor_fault", "stale")
         a = self.engine.alarm(key)
@@ -690,11 +694,18 @@ class MachineEvaluator:
         h1 = 1.0 + self._h
         inside: list[str] = []
         near: dict[int, tuple[float, float, float, float]] = {}
-        for k in self._candidates(speed):
-            p = self._pair(k, speed)
-            if p[1] > 0 and p[0] < p[2] * h1:
-                near[k] = p
-                if p[0] < p[1]:
+        pairs = self._pairs
+        af = grid.approach_factor
+        for k in self._cand_sets[bisect.bisect_right(self._cand_edges, speed)]:
+            # _pair(k, speed), inlined (the same operations).
+            fm, order, fixed, rb, ra = pairs[k]
+            exc = order * speed + fixed
+            rq = rb if fm <= exc else ra
+            m = abs(exc - fm) / fm * 100.0
+            ap = rq * af
+            if rq > 0 and m < ap * h1:
+                near[k] = (m, rq, ap, exc / fm)
+                if m < rq:
                     inside.append(grid.subjects[k])
         if self._speed and ts <= self._speed[-1][0]:
             return inside, (), []  # the same instant seen from another point: count it once
@@ -716,37 +727,39 @@ class MachineEvaluator:
         self._res_seen |= todo
         out: list[Transition] = []
         state: list[MarginState] = []  # the arrays, built only for a transition's evidence
-        update = self.engine.update
+        update = self.engine.update_ranked
+        warn_s = s.approach_warning_s
         for k in sorted(todo):
             key = self._res_keys[k]
             p = near.get(k)
             m, rq, ap, ratio = p if p is not None else self._pair(k, speed)
             if rq <= 0:
-                out += update(key, ts, None, None, {"reason": "no margin required"}, rid)
+                out += update(key, ts, 0, 0, {"reason": "no margin required"}, rid)
                 continue
-            zeta = self._pair_zetas[k]
             fc = soon.get(key.subject) if soon else None
-            raise_l = hold_l = None
+            # Ranks as severity_rank: 1 advisory, 2 alert, 3 severe.
+            r = hl = 0
             if fc is not None:
-                hold_l = "advisory"
-                if fc.seconds <= s.approach_warning_s:
-                    raise_l = "advisory"
+                hl = 1
+                if fc.seconds <= warn_s:
+                    r = 1
             if m < ap:
-                raise_l = "advisory"
+                r = 1
             if m < ap * h1:
-                hold_l = "advisory"
+                hl = 1
             if m < rq:
-                raise_l = "alert"
+                r = 2
             if m < rq * h1:
-                hold_l = "alert"
+                hl = 2
                 # Inside the half-power band the excitation sits on the resonance peak.
+                zeta = self._pair_zetas[k]
                 if zeta is not None:
                     dev = abs(ratio - 1.0)
                     if m < rq and dev <= zeta:
-                        raise_l = "severe"
+                        r = 3
                     if dev <= zeta * h1:
-                        hold_l = "severe"
-            out += update(key, ts, raise_l, hold_l,
+                        hl = 3
+            out += update(key, ts, r, hl,
                           functools.partial(_resonance_evidence, speed, rid, grid, state, k, fc), rid)
         return inside, approach, out
 
@@ -783,40 +796,59 @@ class MachineEvaluator:
                 win.add(ts, value, speed)
             rows.append((name, value, unit, base, win, comparable, key))
         if ignored is None:
-            self._fit_trends([r[4] for r in rows])
+            _fit_windows([r[4] for r in rows])
         # Levels are decided here on plain floats; the FeatureEvaluation objects (and their
         # words) are built only when something reads them (FeatureRows, a transition's
         # evidence): most readings' features are never looked at.
         r_adv, r_alert = s.growth_ratios
         hold = 1.0 - h
+        r_adv_hold, r_alert_hold = r_adv * hold, r_alert * hold
         ab, bc, cd = limits.ab, limits.bc, limits.cd
+        bc_hold, cd_hold = bc * hold, cd * hold
+        sigmas = s.baseline_sigmas
+        horizon_hold = horizon_s * (1 + h)
         specs: list[tuple] = []
         alarm = self.engine.alarm
-        due: list[tuple[int, AlarmKey, str | None, str | None]] = []
+        due: list[tuple[int, AlarmKey, int, int]] = []
         ratio_limits = self._ratio_limits
         for name, value, unit, base, win, comparable, key in rows:
             st = base.stats
             if st is None:
                 status: tuple = ("learning", len(base.values), base.size)
+                ratio = None
             elif not comparable:
                 status = ("speed", speed, base.speed_hz)
+                ratio = None
             else:
-                status = ("ready",)
-            ratio = value / st.median if (st is not None and comparable and st.median > 0) else None
+                status = _READY
+                med = st.median
+                ratio = value / med if med > 0 else None
             line = win.line() if ignored is None else None
+            # (raise rank, hold rank) from each rule; the worst of each wins. Ranks as
+            # severity_rank: 1 advisory, 2 alert, 3 severe.
+            rr = hr = 0
+            causes: list[tuple] = []
             # Next limit: zone boundary for the overall level, baseline ratio limit otherwise.
             lim_name = lim_val = None
             if name == "overall":
                 if value <= ab:
-                    lim_name, lim_val = "A/B", ab
+                    lim_name, lim_val, zr = "A/B", ab, 1
                 elif value <= bc:
-                    lim_name, lim_val = "B/C", bc
+                    lim_name, lim_val, zr = "B/C", bc, 2
                 elif value <= cd:
-                    lim_name, lim_val = "C/D", cd
+                    lim_name, lim_val, zr = "C/D", cd, 3
+                else:
+                    zr = 4
+                # Raise by the zone itself (a zone includes its upper boundary); hold by
+                # levels_above(value, {alert: B/C, severe: C/D}, h).
+                rr = 2 if zr == 3 else 3 if zr == 4 else 0
+                hr = 3 if value >= cd_hold else 2 if value >= bc_hold else 0
+                if rr or hr:
+                    causes.append(("zone", "ABCD"[zr - 1], value))
             elif ratio is not None:
                 for r, r_name in ratio_limits:
-                    if value < r * st.median:
-                        lim_name, lim_val = r_name, r * st.median
+                    if value < r * med:
+                        lim_name, lim_val = r_name, r * med
                         break
             ttl = None
             if line is not None and lim_val is not None:
@@ -826,48 +858,29 @@ class MachineEvaluator:
                     ttl = 0.0
                 elif low > 0.0 and slope > 0:
                     ttl = (lim_val - fitted) / slope
-            # (raise rank, hold rank) from each rule; the worst of each wins. Ranks as
-            # severity_rank: 1 advisory, 2 alert, 3 severe.
-            rr = hr = 0
-            causes: list[tuple] = []
-            if name == "overall":
-                zr = 1 if value <= ab else 2 if value <= bc else 3 if value <= cd else 4
-                # Raise by the zone itself (a zone includes its upper boundary); hold by
-                # levels_above(value, {alert: B/C, severe: C/D}, h).
-                r = 2 if zr == 3 else 3 if zr == 4 else 0
-                hl = 3 if value >= cd * hold else 2 if value >= bc * hold else 0
-                if r or hl:
-                    causes.append(("zone", "ABCD"[zr - 1], value))
-                    rr, hr = max(rr, r), max(hr, hl)
             if ratio is not None:
                 r = 2 if ratio >= r_alert else 1 if ratio >= r_adv else 0
-                hl = 2 if ratio >= r_alert * hold else 1 if ratio >= r_adv * hold else 0
-                if value <= st.median + s.baseline_sigmas * st.sigma:
+                hl = 2 if ratio >= r_alert_hold else 1 if ratio >= r_adv_hold else 0
+                if r and value <= med + sigmas * st.sigma:
                     r = 0  # within the baseline's own scatter
                 if r or hl:
                     causes.append(("ratio", ratio))
                     rr, hr = max(rr, r), max(hr, hl)
             # Trend: only towards limits that matter (B/C and C/D, or a ratio limit).
-            if ttl is not None and lim_name != "A/B":
+            if ttl is not None and lim_name != "A/B" and ttl <= horizon_hold:
                 r = 1 if ttl <= horizon_s else 0
-                hl = 1 if ttl <= horizon_s * (1 + h) else 0
-                if r or hl:
-                    causes.append(("trend", lim_name, ttl))
-                    rr, hr = max(rr, r), max(hr, hl)
-            raise_l = _LEVELS[rr]
-            hold_l = _LEVELS[hr]
+                causes.append(("trend", lim_name, ttl))
+                rr, hr = max(rr, r), max(hr, 1)
             specs.append((name, value, unit, st, status, ratio,
                           None if line is None else line[0] * 86400.0,
-                          lim_name, lim_val, ttl, raise_l, hold_l, causes))
-            if ignored is not None:
-                continue
-            if rr or hr or alarm(key) is not None:
-                due.append((len(specs) - 1, key, raise_l, hold_l))
+                          lim_name, lim_val, ttl, _LEVELS[rr], _LEVELS[hr], causes))
+            if ignored is None and (rr or hr or alarm(key) is not None):
+                due.append((len(specs) - 1, key, rr, hr))
         feats = FeatureRows(specs)
         out: list[Transition] = []
-        for i, key, raise_l, hold_l in due:
-            out += self.engine.update(
-                key, ts, raise_l, hold_l,
+        for i, key, rr, hr in due:
+            out += self.engine.update_ranked(
+                key, ts, rr, hr,
                 functools.partial(_growth_evidence, rid, speed, limits, feats, i, counts), rid)
         if out:
             counts.clear()  # reported in these transitions' evidence
@@ -875,6 +888,7 @@ class MachineEvaluator:
 
 
 _LEVELS: tuple[str | None, ...] = (None, *SEVERITIES)
+_READY = ("ready",)
 
 
 def _feature_of(spec: tuple) -> FeatureEvaluation:
@@ -985,7 +999,7 @@ def _fit_windows(wins: list[TrendWindow]) -> None:
         else:
             groups.append((w, [w]))
     for first, ws in groups:
-        t = np.array(first.ts)
+        t = np.fromiter(first.ts, float, len(first.ts))
         ys = np.fromiter(itertools.chain.from_iterable(w.values for w in ws), float,
                          len(ws) * t.size).reshape(len(ws), t.size)
         # Window times only ever increase (TrendWindow.add).

@@ -77,13 +77,38 @@ class HealthReport:
         return {"ok": self.ok, "flags": [f.to_json() for f in self.flags]}
 
 
-def _median_and_mad(a: np.ndarray) -> tuple[float, float]:
-    """Median and median absolute deviation of finite samples ``a``.
+_DEFAULT_LIMITS = HealthLimits()
+_HEALTHY = HealthReport()
+
+
+def _median_and_mad(a: np.ndarray, *, is_sorted: bool = False) -> tuple[float, float]:
+    """Median and median absolute deviation of finite samples ``a`` (ascending when
+    ``is_sorted``).
 
     Two sorts of a small array: cheaper here than np.median's partitions with their NaN
     and shape handling, and the same values."""
-    med = sorted_median(np.sort(a))
-    return med, sorted_median(np.sort(np.abs(a - med)))
+    if is_sorted:
+        s = a
+    else:
+        s = a.copy()
+        s.sort()
+    med = sorted_median(s)
+    # |s - med| of the sorted s falls then rises: its sort is quick.
+    d = np.abs(s - med)
+    d.sort()
+    return med, sorted_median(d)
+
+
+def _mad_lower_bound(s: np.ndarray, med: float) -> float:
+    """A value the MAD of the ascending ``s`` (median ``med``) is never below.
+
+    Fewer than half of the values lie strictly between s[n//4] and s[n//4 + n//2], so at
+    least half of them are as far from the median as the nearer of those two (rounding
+    keeps the order), and so is the MAD: when no sample passes the spike limit built on
+    this bound, none passes the limit built on the MAD, and its second sort is spared."""
+    n = s.size
+    q = n // 4
+    return min(float(s[q + n // 2]) - med, med - float(s[q]))
 
 
 def _longest_run(mask: np.ndarray) -> int:
@@ -105,7 +130,7 @@ def _samples_in_runs(mask: np.ndarray, min_run: int) -> int:
 
 def check_block(samples: np.ndarray, limits: HealthLimits | None = None) -> tuple[HealthFlag, ...]:
     """Flat line, clipping, spikes and dropouts in one block of samples (any unit)."""
-    lim = limits or HealthLimits()
+    lim = limits or _DEFAULT_LIMITS
     x = np.asarray(samples, dtype=float)
     if x.ndim != 1 or x.size < 8:
         raise ValueError(f"samples must be a 1-D array of at least 8 samples, got shape {x.shape}.")
@@ -113,8 +138,8 @@ def check_block(samples: np.ndarray, limits: HealthLimits | None = None) -> tupl
     flags: list[HealthFlag] = []
     # One pass each for max and min; NaN propagates into them and an infinity becomes
     # one of them, so they also tell whether any sample is not finite.
-    xmax = float(x.max())
-    xmin = float(x.min())
+    xmax = float(np.maximum.reduce(x))
+    xmin = float(np.minimum.reduce(x))
     if not (math.isfinite(xmax) and math.isfinite(xmin)):
         finite = np.isfinite(x)
         bad = int(n - np.count_nonzero(finite))
@@ -156,8 +181,15 @@ def check_block(samples: np.ndarray, limits: HealthLimits | None = None) -> tupl
     # statistics of a stationary block barely change (the median's standard error is
     # 1.25 sigma / sqrt(512), about 6 % of sigma, against a limit of spike_z = 25 sigma),
     # and the full median is costly.
-    sub = x[:: max(1, x.size // 512)]
-    med, mad = _median_and_mad(sub)
+    sub = x[:: max(1, x.size // 512)].copy()
+    sub.sort()
+    med = sorted_median(sub)
+    bound = _mad_lower_bound(sub, med)
+    if bound > 0:
+        lim_low = lim.spike_z * (1.4826 * bound)
+        if not (xmax - med > lim_low or med - xmin > lim_low):
+            return tuple(flags)  # no sample beyond the limit on the bound (see there)
+    med, mad = _median_and_mad(sub, is_sorted=True)
     sigma = 1.4826 * mad
     if sigma == 0.0 and sub.size < x.size:
         # The stride aliased onto a periodic signal; use every sample.
@@ -177,7 +209,7 @@ def check_block(samples: np.ndarray, limits: HealthLimits | None = None) -> tupl
 
 def check_waveform(waveform: Waveform, point: Point, limits: HealthLimits | None = None) -> HealthReport:
     """All per-reading checks of ``waveform`` against its registry ``point``."""
-    lim = limits or HealthLimits()
+    lim = limits or _DEFAULT_LIMITS
     flags: list[HealthFlag] = []
     if point.fs_hz is not None and (
         not math.isfinite(waveform.fs_hz) or abs(waveform.fs_hz - point.fs_hz) > lim.fs_rel_tol * point.fs_hz
@@ -191,7 +223,7 @@ def check_waveform(waveform: Waveform, point: Point, limits: HealthLimits | None
             HealthFlag("unit", f"unit {waveform.unit!r}, registry expects {point.unit!r}", waveform.unit)
         )
     flags.extend(check_block(waveform.samples, lim))
-    return HealthReport(tuple(flags))
+    return HealthReport(tuple(flags)) if flags else _HEALTHY
 
 
 def is_stale(last_ts: float | None, now: float, expected_interval_s: float | None, intervals: float) -> bool:
