@@ -302,6 +302,19 @@ def test_detector_and_json():
         d.evaluator("fan-7").evaluate(_analysis(0.0, 12.0, machine="other"))
 
 
+def test_evaluation_has_every_field_and_equals_its_dataclass_copy():
+    # evaluate builds ReadingEvaluation past its __init__: every declared field must be
+    # set, and the object must equal one made through the dataclass's own constructor.
+    from dataclasses import fields, replace
+
+    from monitor.detection import ReadingEvaluation
+
+    ev = MachineEvaluator(_machine())
+    e = ev.evaluate(_analysis(0.0, 16.5, overall=3.0, rid="r-1"), _waveform(0.0))
+    assert set(vars(e)) == {f.name for f in fields(ReadingEvaluation)}
+    assert replace(e) == e and replace(e).to_json() == e.to_json()
+
+
 def test_waveform_without_analysis_checks_health_only():
     # The service passes analysis=None when the analysis rejected the block.
     ev = MachineEvaluator(_machine())
