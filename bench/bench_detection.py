@@ -7,11 +7,13 @@ band, so every reading runs every check: sensor health on the samples, the 6 x 6
 with the speed-trend forecast, zones, baseline ratios and a Theil-Sen trend per feature,
 and the alarm engine. After warm-up six pairs sit in their approach bands with live
 advisory alarms and the overall level is in zone C, so the engine has real work too.
-Target: detection <= 0.2 x analysis.
+Target: detection <= 0.2 x analysis, as the median over repetitions of the ratio of each
+repetition's detection time to the analysis time measured right before it.
 """
 
 from __future__ import annotations
 
+import statistics
 import time
 from dataclasses import replace
 
@@ -71,7 +73,7 @@ def _measure(label: str, speed: float | None, quick: bool) -> list[dict]:
     for i in range(60):  # warm up: baselines learned, trend windows full
         w = _waveform(100 + i, speed, rng)
         ev.evaluate(analyse_waveform(w, m, p), w)
-    reps = 3 if quick else 15
+    reps = 3 if quick else 21
     # Each pass needs later timestamps than the one before; the shifted copies are made
     # up front so that the timed loop holds detection only.
     t0 = 1.7e9 + 3600.0 * 1000
@@ -82,17 +84,25 @@ def _measure(label: str, speed: float | None, quick: bool) -> list[dict]:
         for w in wfs:
             analyse_waveform(w, m, p)
 
-    # Interleave so both see the same machine load; keep each one's best.
+    # Each repetition times the analysis of the 64 readings and, right after it, their
+    # detection, so both see the same machine load; the figure is the median of the
+    # repetitions' ratios (this host's speed swings by up to 2x within seconds, which
+    # shifts a ratio of separate minima by more than the effects measured here). The
+    # best times of each are reported beside it.
     t_an = t_det = float("inf")
+    ratios = []
     for r in range(reps):
-        t_an = min(t_an, _best(analyse, 1) / len(wfs))
-        t_det = min(t_det, _best(lambda r=r: [ev.evaluate(a, w) for a, w in passes[r]], 1) / len(wfs))
-    ratio = t_det / t_an
+        a = _best(analyse, 1) / len(wfs)
+        d = _best(lambda r=r: [ev.evaluate(x, w) for x, w in passes[r]], 1) / len(wfs)
+        ratios.append(d / a)
+        t_an, t_det = min(t_an, a), min(t_det, d)
+    ratio = statistics.median(ratios)
     return [
         {"name": f"analysis per reading ({label})", "value": t_an * 1e3, "unit": "ms"},
         {"name": f"detection per reading, 6 modes x 5 orders ({label})", "value": t_det * 1e3,
          "unit": "ms", "floor": t_an * 1e3, "ratio": ratio, "target": f"<= {TARGET}x analysis",
-         "met": ratio <= TARGET},
+         "met": ratio <= TARGET, "ratio_of_best_times": t_det / t_an,
+         "ratio_range": [min(ratios), max(ratios)]},
     ]
 
 

@@ -32,18 +32,15 @@ from __future__ import annotations
 
 import bisect
 import functools
-import itertools
 import math
 from collections import deque
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field, fields
 from typing import Any
 
-import numpy as np
-
 from monitor.alarms import SEVERITIES, AlarmEngine, AlarmKey, Transition
 from monitor.analysis import ReadingAnalysis
-from monitor.growth import Baseline, Trend, TrendWindow, theil_sen_many
+from monitor.growth import Baseline, TrendWindow, fit_due_windows
 from monitor.health import HealthReport, check_waveform, is_stale
 from monitor.margins import (
     ApproachForecast,
@@ -796,7 +793,7 @@ class MachineEvaluator:
                 win.add(ts, value, speed)
             rows.append((name, value, unit, base, win, comparable, key))
         if ignored is None:
-            _fit_windows([r[4] for r in rows])
+            fit_due_windows([r[4] for r in rows])
         # Levels are decided here on plain floats; the FeatureEvaluation objects (and their
         # words) are built only when something reads them (FeatureRows, a transition's
         # evidence): most readings' features are never looked at.
@@ -983,29 +980,6 @@ def _growth_evidence(rid: str | None, speed: float, limits: ZoneLimits, feats: F
                      counts: dict[str, int]) -> dict[str, Any]:
     return {"reading_id": rid, "speed_hz": speed, "zone_limits_mm_s": list(limits.as_tuple()),
             **feats[i].to_json(), "ignored_readings": dict(counts)}
-
-
-def _fit_windows(wins: list[TrendWindow]) -> None:
-    """Fit every window that is due, one batch per distinct time axis."""
-    groups: list[tuple[TrendWindow, list[TrendWindow]]] = []
-    for w in wins:
-        if not w.needs_fit():
-            continue
-        for first, ws in groups:
-            # Same times (deques compare element by element); the ends are checked first.
-            if first.ts[-1] == w.ts[-1] and first.ts[0] == w.ts[0] and first.ts == w.ts:
-                ws.append(w)
-                break
-        else:
-            groups.append((w, [w]))
-    for first, ws in groups:
-        t = np.fromiter(first.ts, float, len(first.ts))
-        ys = np.fromiter(itertools.chain.from_iterable(w.values for w in ws), float,
-                         len(ws) * t.size).reshape(len(ws), t.size)
-        # Window times only ever increase (TrendWindow.add).
-        fits = theil_sen_many(t - t[-1], ys, x_increasing=True)
-        for w, (slope, inter, lo, hi) in zip(ws, fits, strict=True):
-            w.set_fit(Trend(slope, lo, hi, inter, t.size))
 
 
 def evaluator_from_state(machine: Machine, state: Any) -> tuple[MachineEvaluator, int]:

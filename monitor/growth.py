@@ -19,10 +19,12 @@ tau", JASA 63 (1968); checked against ``scipy.stats.theilslopes``.
 
 from __future__ import annotations
 
+import itertools
 import math
 from collections import deque
 from collections.abc import Sequence
 from dataclasses import dataclass
+from typing import NamedTuple
 
 import numpy as np
 
@@ -125,9 +127,10 @@ class Baseline:
         return b
 
 
-@dataclass(frozen=True)
-class Trend:
-    """Theil-Sen trend of a feature.
+class Trend(NamedTuple):
+    """Theil-Sen trend of a feature (immutable; a named tuple because detection makes one
+    per feature at every refit and a tuple is made at a fraction of a frozen dataclass's
+    cost).
 
     ``slope_per_s`` (feature unit per second) with its 95 % interval ``low_per_s`` /
     ``high_per_s``; ``fitted_now`` is the fitted value at the latest reading's time;
@@ -201,6 +204,10 @@ def theil_sen_many(x: np.ndarray, ys: np.ndarray, *, x_increasing: bool = False
     n = x.size
     if ys.ndim != 2 or ys.shape[1] != n:
         raise ValueError(f"ys must have shape (F, {n}), got {ys.shape}.")
+    if x_increasing and n >= 3:
+        fits = _theil_sen_increasing(x, ys)
+        if fits is not None:
+            return fits
     pairs = _PAIRS.get(n)
     if pairs is None:
         pairs = _PAIRS[n] = np.triu_indices(n, 1)
@@ -261,6 +268,37 @@ def theil_sen_many(x: np.ndarray, ys: np.ndarray, *, x_increasing: bool = False
         else:
             out.append((med[r], inter[r], float(slopes[r, e[0]]), float(slopes[r, e[1]])))
     return out
+
+
+# Per window length n: pair indices and the interval's ranks for an increasing x and
+# values without ties (then every row has the same ranks).
+_INCREASING: dict[int, tuple[np.ndarray, np.ndarray, list[int]]] = {}
+
+
+def _theil_sen_increasing(x: np.ndarray, ys: np.ndarray) -> list[tuple[float, float, float, float]] | None:
+    """:func:`theil_sen_many` for a strictly increasing ``x`` (n >= 3), or None when a row
+    of ``ys`` holds equal values (the general path handles their ties). The same
+    operations as the general path, with its per-call set-up kept per window length."""
+    n = x.size
+    plan = _INCREASING.get(n)
+    if plan is None:
+        i, j = np.triu_indices(n, 1)
+        nt = i.size
+        zs = _Z_95 * math.sqrt((n * (n - 1) * (2 * n + 5) - 0.0) / 18.0)  # Sen 1968, eq. 2.6
+        plan = _INCREASING[n] = (i, j, [max(int(round((nt + zs) / 2.0)) - 1, 0),
+                                        min(int(round((nt - zs) / 2.0)), nt - 1)])
+    i, j, ends = plan
+    yss = ys.copy()
+    yss.sort(axis=1)
+    if not (yss[:, 1:] != yss[:, :-1]).all():
+        return None
+    slopes = ys.take(j, axis=1)
+    slopes -= ys.take(i, axis=1)
+    slopes /= x[j] - x[i]
+    slopes.sort(axis=1)
+    med = _sorted_median_rows(slopes)
+    inter = (_sorted_median_rows(yss) - med * sorted_median(x)).tolist()
+    return [(m, c, lo, hi) for m, c, (lo, hi) in zip(med.tolist(), inter, slopes[:, ends].tolist(), strict=True)]
 
 
 def _tie_terms_rows(sorted_rows: np.ndarray) -> np.ndarray:
@@ -428,3 +466,32 @@ class TrendWindow:
         w._fit_ts = float(data.get("fit_ts", 0.0))
         w._since_fit = int(data.get("since_fit", 0))
         return w
+
+
+def fit_due_windows(windows: Sequence[TrendWindow]) -> None:
+    """Refit every window of ``windows`` that is due (:meth:`TrendWindow.needs_fit`), one
+    :func:`theil_sen_many` batch per distinct time axis (the features of one point share
+    theirs); the same fits as each window's own :meth:`TrendWindow.trend`."""
+    groups: list[tuple[TrendWindow, list[TrendWindow]]] = []
+    for w in windows:
+        ts = w.ts
+        if len(ts) < w.min_readings or (w._fit is not None and w._since_fit < w.refit_every):
+            continue  # not due (needs_fit, inlined: this runs for every feature of a reading)
+        for first, ws in groups:
+            # Same times (deques compare element by element); the ends are checked first.
+            if first.ts[-1] == ts[-1] and first.ts[0] == ts[0] and first.ts == ts:
+                ws.append(w)
+                break
+        else:
+            groups.append((w, [w]))
+    for first, ws in groups:
+        t = np.fromiter(first.ts, float, len(first.ts))
+        ys = np.fromiter(itertools.chain.from_iterable(w.values for w in ws), float,
+                         len(ws) * t.size).reshape(len(ws), t.size)
+        # Window times only ever increase (TrendWindow.add).
+        fits = theil_sen_many(t - t[-1], ys, x_increasing=True)
+        last = float(t[-1])
+        for w, (slope, inter, lo, hi) in zip(ws, fits, strict=True):
+            w._fit = Trend(slope, lo, hi, inter, t.size)
+            w._fit_ts = last
+            w._since_fit = 0

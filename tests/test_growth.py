@@ -53,6 +53,14 @@ class TestTheilSen:
             ref = stats.theilslopes(row, x)
             assert got == pytest.approx((ref.slope, ref.intercept, ref.low_slope, ref.high_slope),
                                         rel=1e-12, abs=1e-12)
+        # Rows without ties take their own path (no tie terms); odd and even lengths.
+        for n in (29, 30):
+            rows = ys[[0, 2], :n]
+            for row, got in zip(rows, theil_sen_many(x[:n], rows, x_increasing=True), strict=True):
+                ref = stats.theilslopes(row, x[:n])
+                assert got == pytest.approx((ref.slope, ref.intercept, ref.low_slope, ref.high_slope),
+                                            rel=1e-12, abs=1e-12)
+                assert got == theil_sen_many(x[:n], row[None, :])[0]  # same as the general path
 
     def test_trend_intercept_is_value_now(self):
         t = np.arange(20.0) * 3600.0 + 1.7e9
