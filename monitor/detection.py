@@ -50,6 +50,7 @@ from monitor.margins import (
     MarginState,
     approach_forecasts,
     order_label,
+    speed_is_steady,
 )
 from monitor.modes import ModeShift
 from monitor.readings import SpeedReading, Waveform
@@ -456,7 +457,7 @@ class MachineEvaluator:
         limits = self._limits[point.id]
         speed = float(analysis.speed_hz) if analysis is not None else None
         approach: tuple[ApproachForecast, ...] = ()
-        margins = MarginRows()
+        margins = _NO_MARGINS
         inside: list[str] = []
         if speed is not None and math.isfinite(speed) and speed > 0:
             if not suppressed:
@@ -709,7 +710,9 @@ class MachineEvaluator:
         self._speed.append((ts, speed))
         s = self.settings
         approach: tuple[ApproachForecast, ...] = ()
-        if len(self._speed) >= 5:
+        # A steady speed has no ramp to forecast (approach_forecasts' own first test, on
+        # the speeds alone: most readings stop here).
+        if len(self._speed) >= 5 and not speed_is_steady([p[1] for p in self._speed]):
             t, v = zip(*self._speed, strict=True)
             approach = tuple(a for a in approach_forecasts(
                 self.machine, t, v, machine_default_pct=s.required_margin_pct)
@@ -777,6 +780,7 @@ class MachineEvaluator:
         if slots is None:
             slots = self._slots[pid] = {}
         rows = []
+        wins: list[TrendWindow] = []
         for name, value, unit, speed_dep in _features(analysis, self.machine, self._orders):
             if not (0.0 <= value < math.inf):  # finite and not negative (NaN fails too)
                 continue
@@ -786,14 +790,15 @@ class MachineEvaluator:
             base, win, key = slot
             comparable = True
             if ignored is None:
-                if not base.ready:
+                if base.stats is None:
                     base.add(value, speed, ts)
                 bs = base.speed_hz
                 comparable = not (speed_dep and bs and abs(speed - bs) > band * bs)
                 win.add(ts, value, speed)
+                wins.append(win)
             rows.append((name, value, unit, base, win, comparable, key))
-        if ignored is None:
-            fit_due_windows([r[4] for r in rows])
+        if wins:
+            fit_due_windows(wins)
         # Levels are decided here on plain floats; the FeatureEvaluation objects (and their
         # words) are built only when something reads them (FeatureRows, a transition's
         # evidence): most readings' features are never looked at.
@@ -886,6 +891,7 @@ class MachineEvaluator:
 
 _LEVELS: tuple[str | None, ...] = (None, *SEVERITIES)
 _READY = ("ready",)
+_NO_MARGINS = MarginRows()
 
 
 def _feature_of(spec: tuple) -> FeatureEvaluation:

@@ -55,7 +55,10 @@ class Baseline:
         Readings in the learning window (>= 3).
     """
 
-    __slots__ = ("size", "values", "speeds", "started_at", "_stats", "_speed")
+    # ``stats`` (None while learning) and ``speed_hz`` (median running speed of the
+    # learning readings, Hz, once learned) are plain attributes for reading only: detection
+    # reads them for every feature of every reading.
+    __slots__ = ("size", "values", "speeds", "started_at", "stats", "speed_hz")
 
     def __init__(self, size: int = 20) -> None:
         if not isinstance(size, int) or size < 3:
@@ -64,33 +67,24 @@ class Baseline:
         self.values: list[float] = []
         self.speeds: list[float] = []
         self.started_at: float | None = None
-        self._stats: BaselineStats | None = None
-        self._speed: float | None = None
+        self.stats: BaselineStats | None = None
+        self.speed_hz: float | None = None
 
     @property
     def ready(self) -> bool:
-        return self._stats is not None
-
-    @property
-    def stats(self) -> BaselineStats | None:
-        return self._stats
-
-    @property
-    def speed_hz(self) -> float | None:
-        """Median running speed of the learning readings (Hz), once learned."""
-        return self._speed
+        return self.stats is not None
 
     def restart(self, ts: float | None = None) -> None:
         """Forget the learned baseline and learn again from the next readings."""
         self.values.clear()
         self.speeds.clear()
-        self._stats = None
-        self._speed = None
+        self.stats = None
+        self.speed_hz = None
         self.started_at = ts
 
     def add(self, value: float, speed_hz: float | None = None, ts: float | None = None) -> bool:
         """Feed one accepted reading while learning; returns True once the baseline is ready."""
-        if self._stats is not None:
+        if self.stats is not None:
             return True
         v = float(value)
         if not math.isfinite(v):
@@ -103,15 +97,15 @@ class Baseline:
         if len(self.values) >= self.size:
             arr = np.asarray(self.values)
             med = float(np.median(arr))
-            self._stats = BaselineStats(med, float(np.median(np.abs(arr - med))), arr.size)
-            self._speed = float(np.median(self.speeds)) if self.speeds else None
-        return self._stats is not None
+            self.stats = BaselineStats(med, float(np.median(np.abs(arr - med))), arr.size)
+            self.speed_hz = float(np.median(self.speeds)) if self.speeds else None
+        return self.stats is not None
 
     def ratio(self, value: float) -> float | None:
         """Value over the baseline median, or None while learning or for a zero median."""
-        if self._stats is None or self._stats.median <= 0:
+        if self.stats is None or self.stats.median <= 0:
             return None
-        return float(value) / self._stats.median
+        return float(value) / self.stats.median
 
     def snapshot(self) -> dict:
         return {"size": self.size, "values": list(self.values), "speeds": list(self.speeds),

@@ -26,7 +26,7 @@ bandwidth (AF = Q ~= 1 / (2 zeta) for light damping).
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 from typing import Literal
 
@@ -493,6 +493,13 @@ def speed_trend(ts: Sequence[float], speed_hz: Sequence[float]) -> tuple[float, 
     return slope, lo, hi, inter
 
 
+def speed_is_steady(speed_hz: Iterable[float]) -> bool:
+    """True when the speeds (Hz) stay within 0.1 % of their largest: no ramp to forecast."""
+    v = tuple(speed_hz)
+    hi = max(v)
+    return hi - min(v) <= 1e-3 * hi
+
+
 def approach_forecasts(
     machine: Machine,
     ts: Sequence[float],
@@ -507,11 +514,8 @@ def approach_forecasts(
     ramp, not noise), projecting from the latest speed along the slope. Fixed-frequency
     excitations (2x line) never move.
     """
-    if len(ts) < 3:
-        return ()
-    lo_s, hi_s = min(speed_hz), max(speed_hz)
-    if hi_s - lo_s <= 1e-3 * hi_s:
-        return ()  # steady within 0.1 %: no ramp to project
+    if len(ts) < 3 or speed_is_steady(speed_hz):
+        return ()  # no ramp to project
     slope, lo, hi, _ = speed_trend(ts, speed_hz)
     if lo <= 0.0 <= hi or slope == 0.0:
         return ()
