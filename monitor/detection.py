@@ -780,7 +780,7 @@ class MachineEvaluator:
         if slots is None:
             slots = self._slots[pid] = {}
         rows = []
-        wins: list[TrendWindow] = []
+        due_fits: list[TrendWindow] = []
         for name, value, unit, speed_dep in _features(analysis, self.machine, self._orders):
             if not (0.0 <= value < math.inf):  # finite and not negative (NaN fails too)
                 continue
@@ -794,11 +794,11 @@ class MachineEvaluator:
                     base.add(value, speed, ts)
                 bs = base.speed_hz
                 comparable = not (speed_dep and bs and abs(speed - bs) > band * bs)
-                win.add(ts, value, speed)
-                wins.append(win)
+                if win.add(ts, value, speed):
+                    due_fits.append(win)
             rows.append((name, value, unit, base, win, comparable, key))
-        if wins:
-            fit_due_windows(wins)
+        if due_fits:
+            fit_due_windows(due_fits)
         # Levels are decided here on plain floats; the FeatureEvaluation objects (and their
         # words) are built only when something reads them (FeatureRows, a transition's
         # evidence): most readings' features are never looked at.

@@ -380,7 +380,9 @@ class TrendWindow:
         self._fit_ts = 0.0
         self._since_fit = 0
 
-    def add(self, ts: float, value: float, speed_hz: float | None = None) -> None:
+    def add(self, ts: float, value: float, speed_hz: float | None = None) -> bool:
+        """Append one reading (seconds, feature unit; Hz for the speed band); a reading not
+        later than the last one, or not finite, is left out. Returns :meth:`needs_fit`."""
         band = self.speed_band
         if band is not None and speed_hz is not None:
             ref = self.ref_speed
@@ -394,6 +396,7 @@ class TrendWindow:
             times.append(float(ts))
             self.values.append(float(value))
             self._since_fit += 1
+        return len(times) >= self.min_readings and (self._fit is None or self._since_fit >= self.refit_every)
 
     def clear(self) -> None:
         self.ts.clear()
