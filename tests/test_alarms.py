@@ -154,3 +154,22 @@ def test_bad_arguments():
         AlarmKey("m", None, "vibration", "x")
     with pytest.raises(ValueError, match="severity"):
         AlarmEngine().update(KEY, 0.0, "critical", None)
+
+
+def test_update_by_rank_matches_update_by_name():
+    # update_ranked is update with the levels as ranks: random raise/hold sequences (every
+    # pairing, including a hold below the raise) give the same transitions and states.
+    rng = np.random.default_rng(5)
+    names = [None, "advisory", "alert", "severe"]
+    by_name, by_rank = AlarmEngine(3), AlarmEngine(3)
+    key = AlarmKey("m", "p", "amplitude_growth", "overall")
+    for i in range(2000):
+        r, h = (int(v) for v in rng.integers(0, 4, 2))
+        a = [t.to_json() for t in by_name.update(key, float(i), names[r], names[h], {"i": i})]
+        b = [t.to_json() for t in by_rank.update_ranked(key, float(i), r, h, {"i": i})]
+        assert a == b
+        if i % 97 == 0 and by_name.active():
+            aid = by_name.active()[0].id
+            by_name.acknowledge(aid, "r.osei", "seen", float(i))
+            by_rank.acknowledge(aid, "r.osei", "seen", float(i))
+    assert by_name.snapshot() == by_rank.snapshot()
