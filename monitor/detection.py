@@ -392,6 +392,8 @@ class MachineEvaluator:
         self._grid = MarginGrid(machine, approach_factor=s.approach_factor,
                                 machine_default_pct=s.required_margin_pct)
         self._res_seen: set[int] = set()  # margin rows that ever fed the alarm engine
+        self._res_order: list[int] = []  # the same, ascending
+        self._growth_fed: set[AlarmKey] = set()  # growth keys that ever fed the engine
         self._fault_seen: set[str] = set()  # points whose block checks ever fed the engine
         # Excitation frequencies (Hz) between which each (mode, excitation) pair can be
         # near its band (margin inside the approach band with hysteresis), widened by a
@@ -600,6 +602,8 @@ class MachineEvaluator:
                           if k.kind == "sensor_fault" and k.subject != "stale" and k.point is not None}
         ev._res_seen = {index[k.subject] for k in ev.engine.alarm_keys()
                         if k.kind == "resonance_proximity" and k.subject in index}
+        ev._res_order = sorted(ev._res_seen)
+        ev._growth_fed = {k for k in ev.engine.alarm_keys() if k.kind == "amplitude_growth"}
         return ev
 
     # ------------------------------------------------------------------ internals
@@ -720,16 +724,16 @@ class MachineEvaluator:
         soon = {a.subject: a for a in approach}
         # Only rows near a band, forecast to enter one, or with alarm history need the
         # engine; the rest hold no condition and have nothing to count.
-        todo = set(near)
-        todo |= self._res_seen
-        if soon:
-            todo |= {k for k, subj in enumerate(grid.subjects) if subj in soon}
-        self._res_seen |= todo
+        if soon or not near.keys() <= self._res_seen:
+            self._res_seen |= near.keys()
+            if soon:
+                self._res_seen |= {k for k, subj in enumerate(grid.subjects) if subj in soon}
+            self._res_order = sorted(self._res_seen)
         out: list[Transition] = []
         state: list[MarginState] = []  # the arrays, built only for a transition's evidence
         update = self.engine.update_ranked
         warn_s = s.approach_warning_s
-        for k in sorted(todo):
+        for k in self._res_order:
             key = self._res_keys[k]
             p = near.get(k)
             m, rq, ap, ratio = p if p is not None else self._pair(k, speed)
@@ -811,6 +815,7 @@ class MachineEvaluator:
         horizon_hold = horizon_s * (1 + h)
         specs: list[tuple] = []
         alarm = self.engine.alarm
+        fed = self._growth_fed
         due: list[tuple[int, AlarmKey, int, int]] = []
         ratio_limits = self._ratio_limits
         for name, value, unit, base, win, comparable, key in rows:
@@ -876,8 +881,10 @@ class MachineEvaluator:
             specs.append((name, value, unit, st, status, ratio,
                           None if line is None else line[0] * 86400.0,
                           lim_name, lim_val, ttl, _LEVELS[rr], _LEVELS[hr], causes))
-            if ignored is None and (rr or hr or alarm(key) is not None):
+            # A key that never fed the engine has no alarm to count down.
+            if ignored is None and (rr or hr or (key in fed and alarm(key) is not None)):
                 due.append((len(specs) - 1, key, rr, hr))
+                fed.add(key)
         feats = FeatureRows(specs)
         out: list[Transition] = []
         for i, key, rr, hr in due:
