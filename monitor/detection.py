@@ -683,11 +683,6 @@ class MachineEvaluator:
         rq = rb if fm <= exc else ra
         return abs(exc - fm) / fm * 100.0, rq, rq * self._grid.approach_factor, exc / fm
 
-    def _candidates(self, speed: float) -> list[int]:
-        """Flat pairs whose excitation lies in the (widened) window where it can be near
-        its band; every other pair holds no condition at this speed."""
-        return self._cand_sets[bisect.bisect_right(self._cand_edges, speed)]
-
     def _speed_value(self, ts: float, speed: float, rid: str | None
                      ) -> tuple[list[str], tuple[ApproachForecast, ...], list[Transition]]:
         """Resonance alarms at a new speed value: (subjects with an excitation inside
@@ -698,6 +693,8 @@ class MachineEvaluator:
         near: dict[int, tuple[float, float, float, float]] = {}
         pairs = self._pairs
         af = grid.approach_factor
+        # The pairs whose excitation lies in the (widened) window where it can be near its
+        # band; every other pair holds no condition at this speed.
         for k in self._cand_sets[bisect.bisect_right(self._cand_edges, speed)]:
             # _pair(k, speed), inlined (the same operations).
             fm, order, fixed, rb, ra = pairs[k]
