@@ -53,9 +53,9 @@ def make_engine(
     """Create an engine for ``url`` with the store's connection settings."""
     parsed = normalise_url(url)
     if parsed.get_backend_name() == "sqlite":
-        database = parsed.database
-        if database and database != ":memory:" and not database.startswith("file:"):
-            Path(database).expanduser().parent.mkdir(parents=True, exist_ok=True)
+        path = _sqlite_file(parsed)
+        if path is not None:
+            path.parent.mkdir(parents=True, exist_ok=True)
         engine = create_engine(
             parsed, echo=echo, connect_args={"timeout": busy_timeout_ms / 1000.0},
             json_serializer=dumps_json,
@@ -207,11 +207,18 @@ class Store:
         self.engine.dispose()
 
 
+def _sqlite_file(url: URL) -> Path | None:
+    """The database file of a SQLite ``url``; None for an in-memory or ``file:`` URI
+    database."""
+    database = url.database
+    if not database or database == ":memory:" or database.startswith("file:"):
+        return None
+    return Path(database).expanduser()
+
+
 def _writer_gate_path(engine: Engine) -> str | None:
     """``<database>.writers`` beside a SQLite database file; None otherwise."""
     if engine.dialect.name != "sqlite":
         return None
-    database = engine.url.database
-    if not database or database == ":memory:" or database.startswith("file:"):
-        return None
-    return str(Path(database).expanduser()) + ".writers"
+    path = _sqlite_file(engine.url)
+    return None if path is None else str(path) + ".writers"
