@@ -81,22 +81,23 @@ _DEFAULT_LIMITS = HealthLimits()
 _HEALTHY = HealthReport()
 
 
-def _median_and_mad(a: np.ndarray, *, is_sorted: bool = False) -> tuple[float, float]:
-    """Median and median absolute deviation of finite samples ``a`` (ascending when
-    ``is_sorted``).
-
-    Two sorts of a small array: cheaper here than np.median's partitions with their NaN
-    and shape handling, and the same values."""
-    if is_sorted:
-        s = a
-    else:
-        s = a.copy()
-        s.sort()
-    med = sorted_median(s)
+def _sorted_mad(s: np.ndarray, med: float) -> float:
+    """Median absolute deviation of the ascending ``s`` about its median ``med``."""
     # |s - med| of the sorted s falls then rises: its sort is quick.
     d = np.abs(s - med)
     d.sort()
-    return med, sorted_median(d)
+    return sorted_median(d)
+
+
+def _median_and_mad(a: np.ndarray) -> tuple[float, float]:
+    """Median and median absolute deviation of finite samples ``a``.
+
+    Two sorts of a small array: cheaper here than np.median's partitions with their NaN
+    and shape handling, and the same values."""
+    s = a.copy()
+    s.sort()
+    med = sorted_median(s)
+    return med, _sorted_mad(s, med)
 
 
 def _mad_lower_bound(s: np.ndarray, med: float) -> float:
@@ -189,8 +190,7 @@ def check_block(samples: np.ndarray, limits: HealthLimits | None = None) -> tupl
         lim_low = lim.spike_z * (1.4826 * bound)
         if not (xmax - med > lim_low or med - xmin > lim_low):
             return tuple(flags)  # no sample beyond the limit on the bound (see there)
-    med, mad = _median_and_mad(sub, is_sorted=True)
-    sigma = 1.4826 * mad
+    sigma = 1.4826 * _sorted_mad(sub, med)
     if sigma == 0.0 and sub.size < x.size:
         # The stride aliased onto a periodic signal; use every sample.
         med, mad = _median_and_mad(x)
