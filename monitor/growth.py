@@ -236,12 +236,7 @@ def theil_sen_many(x: np.ndarray, ys: np.ndarray, *, x_increasing: bool = False
     by_sq: dict[float, tuple[int, int] | None] = {}
     for b in sigsq:
         if b not in by_sq:
-            sq = b / 18.0
-            if not sq > 0:
-                by_sq[b] = None
-            else:
-                zs = _Z_95 * math.sqrt(sq)
-                by_sq[b] = (max(int(round((nt + zs) / 2.0)) - 1, 0), min(int(round((nt - zs) / 2.0)), nt - 1))
+            by_sq[b] = _interval_ranks(nt, b)
     # Only a few order statistics are needed (the median and the interval's ends), but
     # numpy's partition at three or four ranks costs several times its vectorised sort
     # (measured: 87 us for two ranks, 33 us for the sort of 7 x 1,225 slopes).
@@ -264,6 +259,17 @@ def theil_sen_many(x: np.ndarray, ys: np.ndarray, *, x_increasing: bool = False
     return out
 
 
+def _interval_ranks(nt: int, var18: float) -> tuple[int, int] | None:
+    """Ranks (0-based, in the ascending slopes) of the 95 % interval's ends for ``nt``
+    slopes and 18 times the variance of Kendall's S, ``var18`` (Sen 1968, eq. 2.6); None
+    when that variance is not positive."""
+    sq = var18 / 18.0
+    if not sq > 0:
+        return None
+    zs = _Z_95 * math.sqrt(sq)
+    return max(int(round((nt + zs) / 2.0)) - 1, 0), min(int(round((nt - zs) / 2.0)), nt - 1)
+
+
 # Per window length n: pair indices and the interval's ranks for an increasing x and
 # values without ties (then every row has the same ranks).
 _INCREASING: dict[int, tuple[np.ndarray, np.ndarray, list[int]]] = {}
@@ -277,10 +283,9 @@ def _theil_sen_increasing(x: np.ndarray, ys: np.ndarray) -> list[tuple[float, fl
     plan = _INCREASING.get(n)
     if plan is None:
         i, j = np.triu_indices(n, 1)
-        nt = i.size
-        zs = _Z_95 * math.sqrt((n * (n - 1) * (2 * n + 5) - 0.0) / 18.0)  # Sen 1968, eq. 2.6
-        plan = _INCREASING[n] = (i, j, [max(int(round((nt + zs) / 2.0)) - 1, 0),
-                                        min(int(round((nt - zs) / 2.0)), nt - 1)])
+        ends = _interval_ranks(i.size, n * (n - 1) * (2 * n + 5) - 0.0)
+        assert ends is not None  # positive for n >= 3
+        plan = _INCREASING[n] = (i, j, list(ends))
     i, j, ends = plan
     yss = ys.copy()
     yss.sort(axis=1)
@@ -471,9 +476,9 @@ def fit_due_windows(windows: Sequence[TrendWindow]) -> None:
     theirs); the same fits as each window's own :meth:`TrendWindow.trend`."""
     groups: list[tuple[TrendWindow, list[TrendWindow]]] = []
     for w in windows:
+        if not w.needs_fit():
+            continue
         ts = w.ts
-        if len(ts) < w.min_readings or (w._fit is not None and w._since_fit < w.refit_every):
-            continue  # not due (needs_fit, inlined: this runs for every feature of a reading)
         for first, ws in groups:
             # Same times (deques compare element by element); the ends are checked first.
             if first.ts[-1] == ts[-1] and first.ts[0] == ts[0] and first.ts == ts:
@@ -487,8 +492,5 @@ def fit_due_windows(windows: Sequence[TrendWindow]) -> None:
                          len(ws) * t.size).reshape(len(ws), t.size)
         # Window times only ever increase (TrendWindow.add).
         fits = theil_sen_many(t - t[-1], ys, x_increasing=True)
-        last = float(t[-1])
         for w, (slope, inter, lo, hi) in zip(ws, fits, strict=True):
-            w._fit = Trend(slope, lo, hi, inter, t.size)
-            w._fit_ts = last
-            w._since_fit = 0
+            w.set_fit(Trend(slope, lo, hi, inter, t.size))
