@@ -82,10 +82,11 @@ def point_passages(
     machine: Machine, point: str, analyses: list[ReadingAnalysis], *, amplitude: str,
     min_speed_hz: float, tolerance_pct: float, prominence: float,
 ) -> PointPassages | None:
-    rows = [(a.speed_hz, *v) for a in analyses
+    used = [(a, v) for a in analyses
             if a.speed_hz >= min_speed_hz and (v := _amplitude(a, amplitude)) is not None]
-    if len(rows) < 5:
+    if len(used) < 5:
         return None
+    rows = [(a.speed_hz, *v) for a, v in used]
     speed = np.array([r[0] for r in rows])
     amp = np.array([r[1] for r in rows])
     phases = [r[2] for r in rows]
@@ -96,10 +97,9 @@ def point_passages(
     comparison = compare_modes(
         machine.modes, [p.frequency_hz for p in passages], tolerance_pct=tolerance_pct
     ) if machine.modes else ()
-    used = [a for a in analyses if a.speed_hz >= min_speed_hz]
     return PointPassages(machine.id, point, bode, passages, comparison,
                          machine_skip_bands(machine, identified),
-                         max(a.ts for a in used), len(rows))
+                         max(a.ts for a, _ in used), len(rows))
 
 
 def _bands_text(bands: tuple[SkipBand, ...]) -> str:
