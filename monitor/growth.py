@@ -270,23 +270,43 @@ def _interval_ranks(nt: int, var18: float) -> tuple[int, int] | None:
     return max(int(round((nt + zs) / 2.0)) - 1, 0), min(int(round((nt - zs) / 2.0)), nt - 1)
 
 
-# Per window length n: pair indices and the interval's ranks for an increasing x and
-# values without ties (then every row has the same ranks).
-_INCREASING: dict[int, tuple[np.ndarray, np.ndarray, list[int]]] = {}
+# Per window length n: pair indices, the interval's ranks for an increasing x and values
+# without ties (then every row has the same ranks), and the order statistics wanted.
+_INCREASING: dict[int, tuple[np.ndarray, np.ndarray, tuple[int, int], np.ndarray, np.ndarray]] = {}
+
+
+def _increasing_plan(n: int) -> tuple[np.ndarray, np.ndarray, tuple[int, int], np.ndarray, np.ndarray]:
+    plan = _INCREASING.get(n)
+    if plan is None:
+        i, j = np.triu_indices(n, 1)
+        nt = i.size
+        ends = _interval_ranks(nt, n * (n - 1) * (2 * n + 5) - 0.0)
+        assert ends is not None  # positive for n >= 3
+        med = np.array(sorted({(nt - 1) // 2, nt // 2}), dtype=np.int64)
+        ranks = np.array(sorted({*ends, *med.tolist()}), dtype=np.int64)
+        plan = _INCREASING[n] = (i.astype(np.int64), j.astype(np.int64), ends, ranks, med)
+    return plan
 
 
 def _theil_sen_increasing(x: np.ndarray, ys: np.ndarray) -> list[tuple[float, float, float, float]] | None:
     """:func:`theil_sen_many` for a strictly increasing ``x`` (n >= 3), or None when a row
-    of ``ys`` holds equal values (the general path handles their ties). The same
-    operations as the general path, with its per-call set-up kept per window length."""
-    n = x.size
-    plan = _INCREASING.get(n)
-    if plan is None:
-        i, j = np.triu_indices(n, 1)
-        ends = _interval_ranks(i.size, n * (n - 1) * (2 * n + 5) - 0.0)
-        assert ends is not None  # positive for n >= 3
-        plan = _INCREASING[n] = (i, j, list(ends))
-    i, j, ends = plan
+    of ``ys`` holds equal values (the general path handles their ties): the compiled
+    kernel :func:`monitor.compiled.theil_sen_rows`, the same numbers as
+    :func:`_theil_sen_increasing_numpy`."""
+    from monitor.compiled import theil_sen_rows  # numba loads in ~0.5 s: on first use
+
+    i, j, (lo, hi), ranks, med = _increasing_plan(x.size)
+    out = theil_sen_rows(np.ascontiguousarray(x, dtype=float), np.ascontiguousarray(ys, dtype=float),
+                         i, j, ranks, med, lo, hi)
+    if out.shape[0] == 0:
+        return None
+    return [(m, c, a, b) for m, c, a, b in out.tolist()]
+
+
+def _theil_sen_increasing_numpy(x: np.ndarray, ys: np.ndarray) -> list[tuple[float, float, float, float]] | None:
+    """:func:`_theil_sen_increasing` in numpy: the general path's operations without its
+    tie handling (the reference tests/test_compiled.py holds the kernel to)."""
+    i, j, ends, _, _ = _increasing_plan(x.size)
     yss = ys.copy()
     yss.sort(axis=1)
     if not (yss[:, 1:] != yss[:, :-1]).all():
@@ -297,7 +317,8 @@ def _theil_sen_increasing(x: np.ndarray, ys: np.ndarray) -> list[tuple[float, fl
     slopes.sort(axis=1)
     med = _sorted_median_rows(slopes)
     inter = (_sorted_median_rows(yss) - med * sorted_median(x)).tolist()
-    return [(m, c, lo, hi) for m, c, (lo, hi) in zip(med.tolist(), inter, slopes[:, ends].tolist(), strict=True)]
+    return [(m, c, lo, hi)
+            for m, c, (lo, hi) in zip(med.tolist(), inter, slopes[:, list(ends)].tolist(), strict=True)]
 
 
 def _tie_terms_rows(sorted_rows: np.ndarray) -> np.ndarray:

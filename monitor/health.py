@@ -26,6 +26,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from monitor.compiled import block_scan, strided_order_stats
 from monitor.growth import sorted_median
 from monitor.readings import Waveform
 from monitor.registry import Point
@@ -112,6 +113,25 @@ def _mad_lower_bound(s: np.ndarray, med: float) -> float:
     return min(float(s[q + n // 2]) - med, med - float(s[q]))
 
 
+# Per subset size: the ranks _mad_lower_bound and sorted_median read.
+_SUBSET_RANKS: dict[int, np.ndarray] = {}
+
+
+def _subset_median_and_bound(x: np.ndarray, step: int) -> tuple[float, float]:
+    """``(sorted_median(s), _mad_lower_bound(s, median))`` for s = sort(x[::step]), from
+    four order statistics selected without the sort (monitor/compiled.py)."""
+    n = -(-x.size // step)
+    ranks = _SUBSET_RANKS.get(n)
+    if ranks is None:
+        q = n // 4
+        ranks = _SUBSET_RANKS[n] = np.array(sorted({q, (n - 1) // 2, n // 2, q + n // 2}), dtype=np.int64)
+    at = dict(zip(ranks.tolist(), strided_order_stats(x, step, ranks).tolist(), strict=True))
+    m = n // 2
+    med = at[m] if n % 2 else float(0.5 * (at[m - 1] + at[m]))
+    q = n // 4
+    return med, min(at[q + m] - med, med - at[q])
+
+
 def _longest_run(mask: np.ndarray) -> int:
     if not mask.any():
         return 0
@@ -137,11 +157,10 @@ def check_block(samples: np.ndarray, limits: HealthLimits | None = None) -> tupl
         raise ValueError(f"samples must be a 1-D array of at least 8 samples, got shape {x.shape}.")
     n = x.size
     flags: list[HealthFlag] = []
-    # One pass each for max and min; NaN propagates into them and an infinity becomes
-    # one of them, so they also tell whether any sample is not finite.
-    xmax = float(np.maximum.reduce(x))
-    xmin = float(np.minimum.reduce(x))
-    if not (math.isfinite(xmax) and math.isfinite(xmin)):
+    # One compiled pass: whether every sample is finite, the maximum, the minimum and the
+    # number of equal neighbours (monitor/compiled.py; numpy took three passes).
+    all_finite, xmax, xmin, n_same = block_scan(np.ascontiguousarray(x))
+    if not all_finite:
         finite = np.isfinite(x)
         bad = int(n - np.count_nonzero(finite))
         flags.append(HealthFlag("dropouts", f"{bad} samples are not finite numbers", bad))
@@ -150,14 +169,13 @@ def check_block(samples: np.ndarray, limits: HealthLimits | None = None) -> tupl
             return tuple(flags)
         xmax = float(x.max())
         xmin = float(x.min())
+        n_same = int(np.count_nonzero(x[1:] == x[:-1]))
     ptp = xmax - xmin
     if ptp <= lim.flat_ptp:
         flags.append(HealthFlag("flat_line", "the signal does not vary at all", ptp))
         return tuple(flags)
     # Equal neighbours, counted once: a run of zeros of length L has L - 1 of them and a
     # repeated value as many, so with few of them neither check needs another pass.
-    same = x[1:] == x[:-1]
-    n_same = int(np.count_nonzero(same))
     zero_run = 0
     if n_same >= lim.dropout_run - 1:
         zeros = x == 0.0
@@ -165,7 +183,7 @@ def check_block(samples: np.ndarray, limits: HealthLimits | None = None) -> tupl
     if zero_run >= lim.dropout_run:
         flags.append(HealthFlag("dropouts", f"{zero_run} consecutive samples are exactly zero", zero_run))
     elif n_same > lim.flat_run_fraction * n:
-        longest_same = _longest_run(same) + 1
+        longest_same = _longest_run(x[1:] == x[:-1]) + 1
         if longest_same > lim.flat_run_fraction * n:
             flags.append(HealthFlag(
                 "flat_line", f"one value repeats for {longest_same} of {n} samples", longest_same))
@@ -182,14 +200,14 @@ def check_block(samples: np.ndarray, limits: HealthLimits | None = None) -> tupl
     # statistics of a stationary block barely change (the median's standard error is
     # 1.25 sigma / sqrt(512), about 6 % of sigma, against a limit of spike_z = 25 sigma),
     # and the full median is costly.
-    sub = x[:: max(1, x.size // 512)].copy()
-    sub.sort()
-    med = sorted_median(sub)
-    bound = _mad_lower_bound(sub, med)
+    step = max(1, x.size // 512)
+    med, bound = _subset_median_and_bound(x, step)
     if bound > 0:
         lim_low = lim.spike_z * (1.4826 * bound)
         if not (xmax - med > lim_low or med - xmin > lim_low):
             return tuple(flags)  # no sample beyond the limit on the bound (see there)
+    sub = x[::step].copy()
+    sub.sort()
     sigma = 1.4826 * _sorted_mad(sub, med)
     if sigma == 0.0 and sub.size < x.size:
         # The stride aliased onto a periodic signal; use every sample.

@@ -845,6 +845,9 @@ class Service:
         # becomes garbage, but every full collection walks it: 100-200 ms with the GIL
         # held, a stall of the worker every few seconds under load. Collected once here and
         # moved out of the collector's sight; later objects are collected as usual.
+        from monitor.compiled import warm_up  # numba loads in ~0.5 s: not for every command
+
+        warm_up()  # compiled now, not mid-batch; before the freeze (start-up heap too)
         gc.collect()
         gc.freeze()
         self.publisher = Publisher(self.mqtt)

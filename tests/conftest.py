@@ -7,3 +7,12 @@ Fixture plugins live in their own modules next to this file; add yours with
 pytest_plugins: list[str] = []
 pytest_plugins.append("broker")  # private Mosquitto: mosquitto, fresh_mosquitto (tests/broker.py)
 pytest_plugins.append("fixtures_db")  # databases: database_url, store, plant (tests/fixtures_db.py)
+
+
+def pytest_sessionstart(session):
+    # Compile the numba kernels once, before any test starts a service process with a
+    # deadline: on a clean clone the first compilation takes several seconds, after which
+    # every process loads them from the cache beside monitor/compiled.py.
+    from monitor.compiled import warm_up
+
+    warm_up()
