@@ -4,7 +4,8 @@ the bare analysis rate of the same readings (no I/O) and the bare paho receive r
 One service process, then two in a shared subscription (the broker's queue is filled
 first while the services are down, with persistent sessions, so the publisher does not
 compete for the CPU); publish-to-commit latency at half the one-process rate, from a paced
-publisher in its own process, measured after a warm-up at that rate has been stored.
+publisher in its own process, measured after a warm-up at that rate has been stored, in
+three runs of which the median is reported (each run's figures beside it).
 Waveforms: 16,384 float32 samples at 25.6 kHz with a measured speed.
 """
 
@@ -231,17 +232,17 @@ def _paced_publisher(host: str, port: int, rate_hz: float, n_warm: int, n_meas: 
     c.loop_stop()
 
 
-def _latency(broker, url, workdir, rate_hz: float, n_meas: int, warm_up: int) -> list[float]:
+def _latency(broker, url, workdir, rate_hz: float, n_meas: int, warm_up: int, tag: str = "lat") -> list[float]:
     """Publish-to-commit latency (stored_at - publish time, s) at ``rate_hz``.
 
     The publisher is a separate process (its own interpreter and GIL, paced by its own
     clock). ``warm_up`` messages are published at the same rate first and the measured ones
     start only once they are all stored, so the figure is for a service in its steady
     state with no backlog left from its start."""
-    p = _spawn(broker, url, workdir, "lat", "lat")
-    _wait_log(workdir / "lat.log", '"service started"')
+    p = _spawn(broker, url, workdir, tag, tag)
+    _wait_log(workdir / f"{tag}.log", '"service started"')
     base = _count(url)
-    sent_path, go_path = workdir / "lat-sent.json", workdir / "lat-go"
+    sent_path, go_path = workdir / f"{tag}-sent.json", workdir / f"{tag}-go"
     pub = subprocess.Popen([sys.executable, __file__, "--paced-publisher", broker.host, str(broker.port),
                             repr(rate_hz), str(warm_up), str(n_meas), repr(time.time()),
                             str(sent_path), str(go_path)], cwd=ROOT)
@@ -269,6 +270,7 @@ def _latency(broker, url, workdir, rate_hz: float, n_meas: int, warm_up: int) ->
             pub.kill()
         p.send_signal(signal.SIGTERM)
         p.wait(30)
+        _drop_sessions(broker, [tag])
     return lat
 
 
@@ -368,7 +370,11 @@ def run(quick: bool = False) -> list[dict]:
             timed("latmax", _fresh_db(work, "latmax.sqlite"), 1)
             lat_n = 40 if quick else 240
             warm = 10 if quick else 60
-            lat = sorted(_latency(broker, _fresh_db(work, "lat.sqlite"), work, e2e["latmax"] / 2, lat_n, warm))
+            # Three runs at the same rate, each on a fresh store: a p99 over 240 readings is
+            # the third-worst of them, and this host's tail moves by several times from one
+            # run to the next; the median run's figures are reported, the others beside them.
+            lat_runs = [sorted(_latency(broker, _fresh_db(work, f"lat{k}.sqlite"), work, e2e["latmax"] / 2,
+                                        lat_n, warm, tag=f"lat{k}")) for k in range(1 if quick else 3)]
         finally:
             broker.kill()
             for schema in schemas:
@@ -376,8 +382,9 @@ def run(quick: bool = False) -> list[dict]:
                     with contextlib.suppress(Exception):
                         _pg_drop(name)
     per_reading_s = 1.0 / bare["lat"]
-    p50 = statistics.median(lat) if lat else float("nan")
-    p99 = _pct(lat, 0.99)
+    p50s = [statistics.median(lat) if lat else float("nan") for lat in lat_runs]
+    p99s = [_pct(lat, 0.99) for lat in lat_runs]
+    p50, p99 = statistics.median(p50s), statistics.median(p99s)
     one, two = e2e["one"], e2e["two"]
     rows += [
         {"name": "bare analysis (16384 f32 samples, decode + analyse, 1 core)", "value": round(bare["one"], 1),
@@ -408,11 +415,12 @@ def run(quick: bool = False) -> list[dict]:
          "unit": "readings/s", "floor": round(bare["lat"], 1), "ratio": round(e2e["latmax"] / bare["lat"], 2)},
         {"name": f"publish-to-commit p50 at half rate ({half:.0f}/s, SQLite)",
          "value": round(p50 * 1000, 1), "unit": "ms",
-         "floor": round(per_reading_s * 1000, 2), "ratio": round(p50 / per_reading_s, 1)},
+         "floor": round(per_reading_s * 1000, 2), "ratio": round(p50 / per_reading_s, 1),
+         "runs_ms": [round(v * 1000, 1) for v in p50s]},
         {"name": f"publish-to-commit p99 at half rate ({half:.0f}/s, SQLite)",
          "value": round(p99 * 1000, 1), "unit": "ms",
          "floor": round(per_reading_s * 1000, 2), "ratio": round(p99 / per_reading_s, 1), "target": "<= 20",
-         "met": p99 / per_reading_s <= 20},
+         "met": p99 / per_reading_s <= 20, "runs_ms": [round(v * 1000, 1) for v in p99s]},
     ]
     return rows
 
