@@ -24,7 +24,7 @@ import math
 from collections import deque
 from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import NamedTuple
+from typing import Any, NamedTuple
 
 import numpy as np
 
@@ -163,9 +163,15 @@ def _tie_term(sorted_a: np.ndarray) -> float:
 
 def sorted_median(a: np.ndarray) -> float:
     """Median of an ascending 1-D array (the same arithmetic as np.median)."""
-    n = a.size
+    return median_at(a, a.size)
+
+
+def median_at(at: Any, n: int) -> float:
+    """Median of ``n`` ascending values, ``at[k]`` giving the k-th: an array, or a mapping
+    holding only the ranks (n - 1) // 2 and n // 2 (order statistics selected without a
+    sort)."""
     m = n // 2
-    return float(a[m]) if n % 2 else float(0.5 * (a[m - 1] + a[m]))
+    return float(at[m]) if n % 2 else float(0.5 * (at[m - 1] + at[m]))
 
 
 _PAIRS: dict[int, tuple[np.ndarray, np.ndarray]] = {}
@@ -271,7 +277,8 @@ def _interval_ranks(nt: int, var18: float) -> tuple[int, int] | None:
 
 
 # Per window length n: pair indices, the interval's ranks for an increasing x and values
-# without ties (then every row has the same ranks), and the order statistics wanted.
+# without ties (then every row has the same ranks), the order statistics wanted and the
+# median's among them.
 _INCREASING: dict[int, tuple[np.ndarray, np.ndarray, tuple[int, int], np.ndarray, np.ndarray]] = {}
 
 
@@ -291,8 +298,8 @@ def _increasing_plan(n: int) -> tuple[np.ndarray, np.ndarray, tuple[int, int], n
 def _theil_sen_increasing(x: np.ndarray, ys: np.ndarray) -> list[tuple[float, float, float, float]] | None:
     """:func:`theil_sen_many` for a strictly increasing ``x`` (n >= 3), or None when a row
     of ``ys`` holds equal values (the general path handles their ties): the compiled
-    kernel :func:`monitor.compiled.theil_sen_rows`, the same numbers as
-    :func:`_theil_sen_increasing_numpy`."""
+    kernel :func:`monitor.compiled.theil_sen_rows`, the same numbers as the general path
+    (tests/test_compiled.py)."""
     from monitor.compiled import theil_sen_rows  # numba loads in ~0.5 s: on first use
 
     i, j, (lo, hi), ranks, med = _increasing_plan(x.size)
@@ -301,24 +308,6 @@ def _theil_sen_increasing(x: np.ndarray, ys: np.ndarray) -> list[tuple[float, fl
     if out.shape[0] == 0:
         return None
     return [(m, c, a, b) for m, c, a, b in out.tolist()]
-
-
-def _theil_sen_increasing_numpy(x: np.ndarray, ys: np.ndarray) -> list[tuple[float, float, float, float]] | None:
-    """:func:`_theil_sen_increasing` in numpy: the general path's operations without its
-    tie handling (the reference tests/test_compiled.py holds the kernel to)."""
-    i, j, ends, _, _ = _increasing_plan(x.size)
-    yss = ys.copy()
-    yss.sort(axis=1)
-    if not (yss[:, 1:] != yss[:, :-1]).all():
-        return None
-    slopes = ys.take(j, axis=1)
-    slopes -= ys.take(i, axis=1)
-    slopes /= x[j] - x[i]
-    slopes.sort(axis=1)
-    med = _sorted_median_rows(slopes)
-    inter = (_sorted_median_rows(yss) - med * sorted_median(x)).tolist()
-    return [(m, c, lo, hi)
-            for m, c, (lo, hi) in zip(med.tolist(), inter, slopes[:, list(ends)].tolist(), strict=True)]
 
 
 def _tie_terms_rows(sorted_rows: np.ndarray) -> np.ndarray:

@@ -23,11 +23,12 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 
 from monitor.compiled import block_scan, strided_order_stats
-from monitor.growth import sorted_median
+from monitor.growth import median_at, sorted_median
 from monitor.readings import Waveform
 from monitor.registry import Point
 
@@ -101,16 +102,16 @@ def _median_and_mad(a: np.ndarray) -> tuple[float, float]:
     return med, _sorted_mad(s, med)
 
 
-def _mad_lower_bound(s: np.ndarray, med: float) -> float:
-    """A value the MAD of the ascending ``s`` (median ``med``) is never below.
+def _mad_lower_bound(at: Any, n: int, med: float) -> float:
+    """A value the MAD of ``n`` ascending values (median ``med``) is never below; ``at[k]``
+    gives the k-th value (an array, or a mapping holding ranks n//4 and n//4 + n//2).
 
     Fewer than half of the values lie strictly between s[n//4] and s[n//4 + n//2], so at
     least half of them are as far from the median as the nearer of those two (rounding
     keeps the order), and so is the MAD: when no sample passes the spike limit built on
     this bound, none passes the limit built on the MAD, and its second sort is spared."""
-    n = s.size
     q = n // 4
-    return min(float(s[q + n // 2]) - med, med - float(s[q]))
+    return min(float(at[q + n // 2]) - med, med - float(at[q]))
 
 
 # Per subset size: the ranks _mad_lower_bound and sorted_median read.
@@ -118,18 +119,17 @@ _SUBSET_RANKS: dict[int, np.ndarray] = {}
 
 
 def _subset_median_and_bound(x: np.ndarray, step: int) -> tuple[float, float]:
-    """``(sorted_median(s), _mad_lower_bound(s, median))`` for s = sort(x[::step]), from
-    four order statistics selected without the sort (monitor/compiled.py)."""
+    """``(sorted_median(s), _mad_lower_bound(s, s.size, median))`` for s = sort(x[::step]),
+    from the four order statistics they read, selected without the sort
+    (monitor/compiled.py)."""
     n = -(-x.size // step)
     ranks = _SUBSET_RANKS.get(n)
     if ranks is None:
         q = n // 4
         ranks = _SUBSET_RANKS[n] = np.array(sorted({q, (n - 1) // 2, n // 2, q + n // 2}), dtype=np.int64)
     at = dict(zip(ranks.tolist(), strided_order_stats(x, step, ranks).tolist(), strict=True))
-    m = n // 2
-    med = at[m] if n % 2 else float(0.5 * (at[m - 1] + at[m]))
-    q = n // 4
-    return med, min(at[q + m] - med, med - at[q])
+    med = median_at(at, n)
+    return med, _mad_lower_bound(at, n, med)
 
 
 def _longest_run(mask: np.ndarray) -> int:
@@ -167,9 +167,7 @@ def check_block(samples: np.ndarray, limits: HealthLimits | None = None) -> tupl
         x = x[finite]
         if x.size < 8:
             return tuple(flags)
-        xmax = float(x.max())
-        xmin = float(x.min())
-        n_same = int(np.count_nonzero(x[1:] == x[:-1]))
+        _, xmax, xmin, n_same = block_scan(x)
     ptp = xmax - xmin
     if ptp <= lim.flat_ptp:
         flags.append(HealthFlag("flat_line", "the signal does not vary at all", ptp))

@@ -1,7 +1,7 @@
 """The compiled kernels (monitor/compiled.py) against numpy and scipy.
 
 Selections must leave at each wanted rank the value a full sort puts there, so Theil-Sen
-fits are the numpy path's to the bit and scipy.stats.theilslopes' (the reference library)
+fits are the general numpy path's (monitor.growth.theil_sen_many) to the bit and scipy.stats.theilslopes' (the reference library)
 to rounding; the block scan must find what numpy's maximum, minimum and comparisons find.
 """
 
@@ -15,8 +15,8 @@ from monitor.compiled import block_scan, theil_sen_rows
 from monitor.growth import (
     _increasing_plan,
     _theil_sen_increasing,
-    _theil_sen_increasing_numpy,
     sorted_median,
+    theil_sen_many,
 )
 from monitor.health import _mad_lower_bound, _subset_median_and_bound
 
@@ -38,7 +38,7 @@ def test_same_bits_as_numpy_and_scipy_to_rounding(n):
             np.where(rng.random(n) < 0.2, 50.0, 0.0) + rng.standard_normal(n),  # outliers
         ])
         got = _theil_sen_increasing(x, ys)
-        assert got == _theil_sen_increasing_numpy(x, ys)  # the numpy path, to the bit
+        assert got == theil_sen_many(x, ys)  # the general numpy path, to the bit
         for row, fit in zip(ys, got, strict=True):
             ref = stats.theilslopes(row, x)  # reference library
             assert fit == pytest.approx((ref.slope, ref.intercept, ref.low_slope, ref.high_slope),
@@ -69,7 +69,7 @@ def test_a_row_with_equal_values_goes_back_to_the_general_path():
     x = np.arange(6, dtype=float)
     ys = np.array([[1.0, 2.0, 3.0, 4.0, 5.0, 6.0], [1.0, 2.0, 2.0, 3.0, 4.0, 5.0]])
     assert _theil_sen_increasing(x, ys) is None
-    assert _theil_sen_increasing_numpy(x, ys) is None
+    assert theil_sen_many(x, ys, x_increasing=True) == theil_sen_many(x, ys)  # which fits them
 
 
 def _numpy_scan(x: np.ndarray) -> tuple[bool, float, float, int]:
@@ -109,5 +109,5 @@ def test_subset_median_and_bound_are_those_of_the_sorted_subset(size, step):
     for x in (rng.standard_normal(size), np.round(rng.standard_normal(size)), np.arange(size, 0, -1.0)):
         s = np.sort(x[::step])
         med = sorted_median(s)
-        assert _subset_median_and_bound(x, step) == (med, _mad_lower_bound(s, med))
+        assert _subset_median_and_bound(x, step) == (med, _mad_lower_bound(s, s.size, med))
         assert med == np.median(x[::step])  # reference library

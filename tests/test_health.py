@@ -154,5 +154,5 @@ def test_mad_lower_bound_never_exceeds_the_mad(seed):
             s = np.sort(a)
             med = float(np.median(a))
             mad = float(np.median(np.abs(a - med)))
-            assert _mad_lower_bound(s, med) <= mad
+            assert _mad_lower_bound(s, s.size, med) <= mad
             assert _median_and_mad(a) == (med, mad)
