@@ -23,6 +23,7 @@ ValueError for a string that is neither a tag nor (in free-form data) an escaped
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import struct
 from collections.abc import Iterable, Mapping, Sequence
@@ -110,7 +111,9 @@ def floats_in(vs: Sequence[Any]) -> list[float]:
 
 def value_out(obj: Any) -> Any:
     """Free-form JSON data (alarm evidence) with exact floats and escaped strings:
-    mappings (keys as strings), sequences, strings, numbers, booleans and None."""
+    mappings (keys as strings), lists and tuples, strings, numbers, booleans and None;
+    numpy values by their Python equivalents, dataclasses as mappings of their fields;
+    other objects as :func:`monitor.store.writes.jsonable` writes them."""
     t = type(obj)
     if t is float:
         return obj if math.isfinite(obj) else _tag(obj)
@@ -130,10 +133,15 @@ def value_out(obj: Any) -> Any:
         return bool(obj)
     if isinstance(obj, int):
         return int(obj)
-    item = getattr(obj, "item", None)  # other numpy scalars
-    if callable(item):
-        return value_out(item())
-    raise ValueError(f"state value of type {type(obj).__name__} cannot be written as JSON.")
+    tolist = getattr(obj, "tolist", None)  # numpy arrays and scalars
+    if callable(tolist):
+        return value_out(tolist())
+    if dataclasses.is_dataclass(obj) and not isinstance(obj, type):
+        return {f.name: value_out(getattr(obj, f.name)) for f in dataclasses.fields(obj)}
+    # Anything else (a date, an enum) in the form the store gives it.
+    from monitor.store.writes import jsonable  # the store imports detection's modules
+
+    return value_out(jsonable(obj))
 
 
 def value_in(obj: Any) -> Any:

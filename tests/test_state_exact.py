@@ -11,6 +11,7 @@ import json
 import math
 import struct
 import threading
+import time
 from pathlib import Path
 
 import numpy as np
@@ -112,7 +113,7 @@ def handle_within(svc: Service, messages: list[tuple[str, bytes]], timeout_s: fl
     worker.start()
     worker.join(timeout_s)
     if worker.is_alive():
-        svc._stop.set()  # the retry loop gives up once the service is stopping
+        svc.stop()  # the retry loop gives up once the service is stopping
         worker.join(30.0)
         pytest.fail(f"handle_batch did not finish within {timeout_s:g} s: it retries a failing batch")
     if errors:
@@ -133,8 +134,6 @@ def test_restart_after_trend_windows_fit_goes_on(plant_url: str) -> None:
     # The bearing pump's envelope lines sit below the noise clamp at first, so their
     # prominence feature holds one value: a tied trend window, whose Theil-Sen interval
     # is undefined (Sen 1968, eq. 2.6: the variance of Kendall's S is zero), i.e. NaN.
-    import time
-
     t0 = float(int(time.time())) - 120.0
     first = restamped("sp-2", 0, 30, t0)
     later = restamped("sp-2", 30, 45, t0 + 30)
