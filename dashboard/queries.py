@@ -10,6 +10,7 @@ columns are fetched for the kept rows only.
 from __future__ import annotations
 
 import datetime as dt
+import math
 from collections import defaultdict
 from collections.abc import Iterable
 from typing import Any
@@ -302,6 +303,10 @@ def _limits_for(m: Machine, p: MeasurementPoint):
 
 
 def spectrum_json(sn: SpectrumSnapshot, max_bins: int = MAX_SPECTRUM_BINS) -> dict:
+    """A stored spectrum for the API, at most ``max_bins`` bins. Ingest keeps every
+    stored spectrum finite (``samples_absurd``, docs/mqtt.md); a bin that is not (stored
+    before that check, e.g. a float32 overflow) is written as null, counted in
+    ``non_finite_bins``, so the answer stays valid JSON."""
     amp = sn.amplitude_array().astype(np.float64)
     f = sn.freq_hz()
     if amp.size > max_bins:
@@ -314,7 +319,9 @@ def spectrum_json(sn: SpectrumSnapshot, max_bins: int = MAX_SPECTRUM_BINS) -> di
     return {"id": sn.id, "machine": sn.machine_id, "point": sn.point_id, "ts": iso(sn.ts),
             "kind": sn.kind, "unit": sn.unit, "scaling": sn.scaling,
             "df_hz": sn.df_hz, "evidence": sn.evidence,
-            "freq_hz": np.round(f, 4).tolist(), "amplitude": [float(f"{v:.5g}") for v in amp]}
+            "freq_hz": np.round(f, 4).tolist(),
+            "amplitude": [float(f"{v:.5g}") if math.isfinite(v) else None for v in amp.tolist()],
+            "non_finite_bins": int(amp.size - np.count_nonzero(np.isfinite(amp)))}
 
 
 def _latest_spectra(s: Session, machine_id: str) -> list[SpectrumSnapshot]:

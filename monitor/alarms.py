@@ -17,7 +17,8 @@ Lifecycle (every arrow is a :class:`Transition` carrying time, severity and evid
 N is the persistence count. Raise and clear use different levels (hysteresis), so a value
 hovering on a limit with noise raises once and does not chatter. Acknowledging never
 clears. The engine is deterministic: no clock, ids from a counter; ``snapshot()`` gives a
-JSON-able dict and ``AlarmEngine.restore`` rebuilds the same state after a restart.
+JSON-able dict (exact: non-finite floats as tagged strings, :mod:`monitor.state_json`) and
+``AlarmEngine.restore`` rebuilds the same state after a restart.
 """
 
 from __future__ import annotations
@@ -26,6 +27,8 @@ import datetime as _dt
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any, Literal
+
+from monitor.state_json import float_in, float_out, value_in, value_out
 
 #: Severities, lowest first. ``alert`` is ISO 20816's ALERT; ``advisory`` and ``severe``
 #: are our own words for the levels below and above it (docs/alarms.md).
@@ -89,6 +92,9 @@ class Alarm:
     acknowledged_at: float | None = None
     ack_comment: str | None = None
     evidence: dict[str, Any] = field(default_factory=dict)
+    # (evidence, its exact JSON data): the engine replaces an alarm's evidence and never
+    # changes it in place, so the walk over it is done once per evidence, not per snapshot.
+    _evidence_out: tuple[Any, Any] | None = field(default=None, repr=False, compare=False)
 
     def to_json(self) -> dict:
         """The alarm as in the REST API (DESIGN.md section 3)."""
@@ -109,22 +115,29 @@ class Alarm:
         }
 
     def snapshot(self) -> dict:
+        """Exact JSON data (:mod:`monitor.state_json`): times and evidence with their
+        non-finite floats tagged, evidence strings escaped."""
+        cached = self._evidence_out
+        if cached is None or cached[0] is not self.evidence:
+            cached = self._evidence_out = (self.evidence, value_out(self.evidence))
         return {
             "id": self.id, "key": [self.key.machine, self.key.point, self.key.kind, self.key.subject],
-            "severity": self.severity, "state": self.state, "raised_at": self.raised_at,
-            "cleared_at": self.cleared_at, "acknowledged_by": self.acknowledged_by,
-            "acknowledged_at": self.acknowledged_at, "ack_comment": self.ack_comment,
-            "evidence": self.evidence,
+            "severity": self.severity, "state": self.state, "raised_at": float_out(self.raised_at),
+            "cleared_at": float_out(self.cleared_at), "acknowledged_by": self.acknowledged_by,
+            "acknowledged_at": float_out(self.acknowledged_at), "ack_comment": self.ack_comment,
+            "evidence": cached[1],
         }
 
     @classmethod
     def restore(cls, d: dict) -> Alarm:
         m, p, k, s = d["key"]
+        stored = d.get("evidence") or {}
+        evidence = value_in(dict(stored))
         return cls(
             id=d["id"], key=AlarmKey(m, p, k, s), severity=d["severity"], state=d["state"],
-            raised_at=d["raised_at"], cleared_at=d.get("cleared_at"),
-            acknowledged_by=d.get("acknowledged_by"), acknowledged_at=d.get("acknowledged_at"),
-            ack_comment=d.get("ack_comment"), evidence=dict(d.get("evidence") or {}),
+            raised_at=float_in(d["raised_at"]), cleared_at=float_in(d.get("cleared_at")),
+            acknowledged_by=d.get("acknowledged_by"), acknowledged_at=float_in(d.get("acknowledged_at")),
+            ack_comment=d.get("ack_comment"), evidence=evidence, _evidence_out=(evidence, stored),
         )
 
 
@@ -373,7 +386,7 @@ class AlarmEngine:
     # ------------------------------------------------------------------ persistence
 
     def snapshot(self) -> dict:
-        """JSON-able state: counters and alarms of every key."""
+        """JSON-able state: counters and alarms of every key (exact, see :meth:`Alarm.snapshot`)."""
         return {
             "persistence": self.persistence,
             "streams": [
@@ -382,7 +395,7 @@ class AlarmEngine:
                     "alarm": s.alarm.snapshot() if s.alarm else None,
                     "raise_count": s.raise_count, "up_count": s.up_count,
                     "down_count": s.down_count, "down_level": s.down_level,
-                    "clear_count": s.clear_count, "last_ts": s.last_ts,
+                    "clear_count": s.clear_count, "last_ts": float_out(s.last_ts),
                 }
                 for k, s in self._streams.items()
             ],
@@ -396,7 +409,7 @@ class AlarmEngine:
             e._streams[AlarmKey(m, p, k, subj)] = _Stream(
                 seq=d["seq"], alarm=Alarm.restore(d["alarm"]) if d.get("alarm") else None,
                 raise_count=d["raise_count"], up_count=d["up_count"], down_count=d["down_count"],
-                down_level=d["down_level"], clear_count=d["clear_count"], last_ts=d.get("last_ts"),
+                down_level=d["down_level"], clear_count=d["clear_count"], last_ts=float_in(d.get("last_ts")),
             )
         return e
 

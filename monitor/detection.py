@@ -7,7 +7,8 @@ engine (``alarms``). It is deterministic and does no I/O: the caller passes each
 speed readings, and the current time for stale-stream checks; it gets back
 :class:`~monitor.alarms.Transition` objects to store and publish, and a
 :class:`ReadingEvaluation` for the store and the dashboard. ``snapshot()`` returns a
-JSON-able dict; ``MachineEvaluator.restore`` rebuilds the same state after a restart.
+JSON-able dict that keeps every float exactly (format in docs/store.md);
+``MachineEvaluator.restore`` rebuilds the same state after a restart.
 :class:`Detector` does the same for every machine of a registry.
 
 Rules
@@ -55,6 +56,7 @@ from monitor.margins import (
 from monitor.modes import ModeShift
 from monitor.readings import SpeedReading, Waveform
 from monitor.registry import MACHINE_CLASSES, Machine, Registry
+from monitor.state_json import STATE_FORMAT, float_in, float_out, floats_in, floats_out, value_out
 from monitor.zones import ZoneLimits, zone_limits, zone_of
 
 #: Severity of each sensor-health check (docs/alarms.md).
@@ -568,23 +570,32 @@ class MachineEvaluator:
     # ------------------------------------------------------------------ persistence
 
     def snapshot(self) -> dict:
-        """JSON-able state of this machine's detection."""
+        """JSON-able state of this machine's detection, exact to the bit: non-finite
+        floats as tagged strings (:mod:`monitor.state_json`), format
+        :data:`~monitor.state_json.STATE_FORMAT` (docs/store.md)."""
+        speed = [list(x) for x in self._speed]
+        if not math.isfinite(sum(t + v for t, v in self._speed)):  # rare: tag what is not finite
+            speed = [floats_out(x) for x in self._speed]
         return {
+            "format": STATE_FORMAT,
             "machine": self.machine.id,
             "engine": self.engine.snapshot(),
             "baselines": [[p, f, b.snapshot()] for (p, f), b in self._baselines.items()],
             "trends": [[p, f, w.snapshot()] for (p, f), w in self._trends.items()],
             "ignored": {p: dict(c) for p, c in self._ignored.items()},
-            "speed": [list(x) for x in self._speed],
-            "last_ts": dict(self._last_ts),
-            "intervals": {p: list(d) for p, d in self._intervals.items()},
+            "speed": speed,
+            "last_ts": {p: float_out(t) for p, t in self._last_ts.items()},
+            "intervals": {p: floats_out(d) for p, d in self._intervals.items()},
         }
 
     @classmethod
     def restore(cls, machine: Machine, data: Mapping[str, Any]) -> MachineEvaluator:
-        """Rebuild from :meth:`snapshot` (the machine's registry entry may have changed)."""
+        """Rebuild from :meth:`snapshot` (the machine's registry entry may have changed);
+        a snapshot of an older format is converted first (:func:`upgrade_snapshot`).
+        ValueError naming the machine and the field for a snapshot that cannot be read."""
         if data.get("machine") != machine.id:
             raise ValueError(f"snapshot is for machine {data.get('machine')!r}, not {machine.id!r}.")
+        data = upgrade_snapshot(data)
         ev = cls(machine)
         eng = dict(data["engine"])
         eng["persistence"] = ev.settings.persistence
@@ -594,9 +605,9 @@ class MachineEvaluator:
         for p, f, w in data.get("trends", []):
             ev._trends[(p, f)] = TrendWindow.restore(w)
         ev._ignored = {p: dict(c) for p, c in data.get("ignored", {}).items()}
-        ev._speed.extend((float(t), float(s)) for t, s in data.get("speed", []))
-        ev._last_ts = {p: float(t) for p, t in data.get("last_ts", {}).items()}
-        ev._intervals = {p: deque(v, maxlen=10) for p, v in data.get("intervals", {}).items()}
+        ev._speed.extend(tuple(floats_in(x)) for x in data.get("speed", []))
+        ev._last_ts = {p: float_in(t) for p, t in data.get("last_ts", {}).items()}
+        ev._intervals = {p: deque(floats_in(v), maxlen=10) for p, v in data.get("intervals", {}).items()}
         index = {subj: k for k, subj in enumerate(ev._grid.subjects)}
         ev._fault_seen = {k.point for k in ev.engine.alarm_keys()
                           if k.kind == "sensor_fault" and k.subject != "stale" and k.point is not None}
@@ -990,6 +1001,78 @@ def _growth_evidence(rid: str | None, speed: float, limits: ZoneLimits, feats: F
                      counts: dict[str, int]) -> dict[str, Any]:
     return {"reading_id": rid, "speed_hz": speed, "zone_limits_mm_s": list(limits.as_tuple()),
             **feats[i].to_json(), "ignored_readings": dict(counts)}
+
+
+def upgrade_snapshot(data: Mapping[str, Any]) -> Mapping[str, Any]:
+    """A :meth:`MachineEvaluator.snapshot` of any format in the current one
+    (:data:`~monitor.state_json.STATE_FORMAT`); a current one is returned as it is.
+
+    Format 1 (no ``format`` key) was written through the store's JSON serialiser, which
+    turns NaN and infinities into ``null``. Where a ``null`` can only have been a
+    non-finite float it is read as NaN (the only non-finite value the code puts there):
+
+    - ``trends[*].fit``: slope, interval ends and fitted value (the interval ends are NaN
+      when a window's values are all tied);
+    - ``baselines[*].speeds``: a running speed the analysis gave as NaN.
+
+    Everywhere else a ``null`` is read as None, a value those fields hold in their own
+    right: a window's ``ref_speed`` (no reference yet) and ``speed_band`` (a speed-free
+    feature), a baseline's ``started_at``, an alarm's times, a stream's ``last_ts``, and
+    any evidence value. ``fit_ts`` null is read as 0.0 (its value before any fit). Fields
+    that hold finite numbers only (window times and values, baseline values, the speed
+    history, reading times and intervals) cannot hold ``null``; a snapshot where they do
+    is refused (ValueError naming the machine and the field). Evidence strings are
+    escaped as the current format writes them.
+    """
+    fmt = data.get("format", 1)
+    if fmt == STATE_FORMAT:
+        return data
+    machine = data.get("machine")
+    if fmt != 1:
+        raise ValueError(f"snapshot of machine {machine!r} has format {fmt!r}; this version reads "
+                         f"formats 1 to {STATE_FORMAT}.")
+
+    def finite_only(values: Any, field: str) -> Any:
+        if any(v is None for v in values):
+            raise ValueError(f"snapshot of machine {machine!r} (format 1): {field!r} holds null "
+                             "where only finite numbers belong.")
+        return values
+
+    nan = float_out(math.nan)
+    out = dict(data, format=STATE_FORMAT)
+    trends = []
+    for p, f, w in data.get("trends", []):
+        w = dict(w)
+        finite_only(w.get("ts", []), f"trends {p}/{f} ts")
+        finite_only(w.get("values", []), f"trends {p}/{f} values")
+        if w.get("fit") is not None:
+            w["fit"] = [nan if v is None else v for v in w["fit"][:4]] + list(w["fit"][4:])
+        if w.get("fit_ts", 0.0) is None:
+            w["fit_ts"] = 0.0
+        trends.append([p, f, w])
+    out["trends"] = trends
+    baselines = []
+    for p, f, b in data.get("baselines", []):
+        b = dict(b)
+        finite_only(b.get("values", []), f"baselines {p}/{f} values")
+        b["speeds"] = [nan if v is None else v for v in b.get("speeds", [])]
+        baselines.append([p, f, b])
+    out["baselines"] = baselines
+    engine = dict(data["engine"])
+    streams = []
+    for st in engine.get("streams", []):
+        st = dict(st)
+        if st.get("alarm"):
+            st["alarm"] = dict(st["alarm"], evidence=value_out(st["alarm"].get("evidence") or {}))
+        streams.append(st)
+    engine["streams"] = streams
+    out["engine"] = engine
+    for x in data.get("speed", []):
+        finite_only(x, "speed")
+    finite_only(data.get("last_ts", {}).values(), "last_ts")
+    for p, v in data.get("intervals", {}).items():
+        finite_only(v, f"intervals {p}")
+    return out
 
 
 def evaluator_from_state(machine: Machine, state: Any) -> tuple[MachineEvaluator, int]:

@@ -7,7 +7,8 @@
 - Trend: Theil-Sen slope (median of pairwise slopes) over a sliding window of the latest
   readings, and the projected time until the fitted value reaches a limit.
 
-Everything here is plain data that snapshots to a JSON-able dict and restores.
+Everything here is plain data that snapshots to a JSON-able dict and restores exactly
+(non-finite floats as tagged strings, :mod:`monitor.state_json`).
 
 References
 ----------
@@ -27,6 +28,8 @@ from dataclasses import dataclass
 from typing import Any, NamedTuple
 
 import numpy as np
+
+from monitor.state_json import float_in, float_out, floats_in, floats_out
 
 #: Scale of MAD to a normal standard deviation (1 / Phi^-1(3/4)).
 MAD_TO_SIGMA = 1.482602218505602
@@ -108,15 +111,19 @@ class Baseline:
         return float(value) / self.stats.median
 
     def snapshot(self) -> dict:
-        return {"size": self.size, "values": list(self.values), "speeds": list(self.speeds),
-                "started_at": self.started_at}
+        """Exact JSON data (:mod:`monitor.state_json`); ``values`` are finite by
+        :meth:`add`, the speeds may be anything the caller gave."""
+        return {"size": self.size, "values": list(self.values), "speeds": floats_out(self.speeds),
+                "started_at": float_out(self.started_at)}
 
     @classmethod
     def restore(cls, data: dict) -> Baseline:
+        """Rebuild from :meth:`snapshot`: the learning readings are fed again, so the
+        statistics are those the same arithmetic gave before."""
         b = cls(int(data["size"]))
-        b.started_at = data.get("started_at")
-        for i, v in enumerate(data.get("values", [])):
-            sp = data.get("speeds", [])
+        b.started_at = float_in(data.get("started_at"))
+        sp = floats_in(data.get("speeds", []))
+        for i, v in enumerate(floats_in(data.get("values", []))):
             b.add(v, sp[i] if i < len(sp) else None)
         return b
 
@@ -459,23 +466,30 @@ class TrendWindow:
         return f.slope_per_s, f.low_per_s, f.fitted_now + f.slope_per_s * (last - self._fit_ts)
 
     def snapshot(self) -> dict:
+        """Exact JSON data (:mod:`monitor.state_json`). ``ts`` and ``values`` are finite
+        (:meth:`add` admits nothing else) and go as they are; the fit's interval ends are
+        NaN when the window's values are all tied (zero variance of Kendall's S)."""
         f = self._fit
         return {"size": self.size, "min_readings": self.min_readings, "refit_every": self.refit_every,
-                "speed_band": self.speed_band, "ref_speed": self.ref_speed,
+                "speed_band": float_out(self.speed_band), "ref_speed": float_out(self.ref_speed),
                 "ts": list(self.ts), "values": list(self.values),
-                "fit": None if f is None else [f.slope_per_s, f.low_per_s, f.high_per_s, f.fitted_now, f.n],
-                "fit_ts": self._fit_ts, "since_fit": self._since_fit}
+                "fit": None if f is None else [*floats_out(f[:4]), f.n],
+                "fit_ts": float_out(self._fit_ts), "since_fit": self._since_fit}
 
     @classmethod
     def restore(cls, data: dict) -> TrendWindow:
+        """Rebuild from :meth:`snapshot`, the same window and fit to the bit."""
         w = cls(int(data["size"]), int(data["min_readings"]), int(data.get("refit_every", 1)),
-                data.get("speed_band"))
-        w.ref_speed = data.get("ref_speed")
-        w.ts.extend(float(t) for t in data.get("ts", []))
-        w.values.extend(float(v) for v in data.get("values", []))
+                float_in(data.get("speed_band")))
+        w.ref_speed = float_in(data.get("ref_speed"))
+        w.ts.extend(floats_in(data.get("ts", [])))
+        w.values.extend(floats_in(data.get("values", [])))
         f = data.get("fit")
-        w._fit = None if f is None else Trend(f[0], f[1], f[2], f[3], int(f[4]))
-        w._fit_ts = float(data.get("fit_ts", 0.0))
+        if f is not None:
+            slope, low, high, fitted = floats_in(f[:4])
+            w._fit = Trend(slope, low, high, fitted, int(f[4]))
+        fit_ts = float_in(data.get("fit_ts"))
+        w._fit_ts = 0.0 if fit_ts is None else fit_ts
         w._since_fit = int(data.get("since_fit", 0))
         return w
 

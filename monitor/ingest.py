@@ -80,6 +80,7 @@ REJECTION_REASONS: tuple[str, ...] = (
     "samples_empty",
     "samples_too_few",
     "samples_too_many",
+    "samples_absurd",
     "speed_both",
     "speed_missing",
     "speed_type",
@@ -124,6 +125,11 @@ class IngestLimits:
     min_fs_hz, max_fs_hz : float
         Plausible sample rates, Hz. A rate inside this range but different from the
         point's registered ``fs_hz`` passes: that is a sensor fault for sensor health.
+    max_abs_sample : float
+        Largest sample magnitude accepted, in the payload's unit (1e9: a thousand times
+        a 10^5 g shock accelerometer's range in m/s^2, a kilometre in um). Beyond any
+        sensor of the accepted units, and low enough that every spectrum of the block
+        stays finite in the store's float32 (3.4e38, IEEE 754 binary32).
     max_speed_hz : float
         Highest plausible running speed, Hz (2000 Hz = 120,000 r/min). Zero is accepted:
         a stopped machine is a valid reading.
@@ -145,6 +151,7 @@ class IngestLimits:
     max_samples: int = 1 << 20
     min_fs_hz: float = 1.0
     max_fs_hz: float = 1_000_000.0
+    max_abs_sample: float = 1e9
     max_speed_hz: float = 2000.0
     max_future_s: float = 300.0
     max_age_s: float = 30 * 86400.0
@@ -154,7 +161,7 @@ class IngestLimits:
     def __post_init__(self) -> None:
         for name in (
             "max_payload_bytes", "min_samples", "max_samples", "min_fs_hz", "max_fs_hz",
-            "max_speed_hz", "max_future_s", "max_age_s", "replay_window_s", "max_id_length",
+            "max_abs_sample", "max_speed_hz", "max_future_s", "max_age_s", "replay_window_s", "max_id_length",
         ):
             v = getattr(self, name)
             if isinstance(v, bool) or not isinstance(v, int | float) or not v >= 0:
@@ -482,6 +489,15 @@ def decode_message(
         if has_list
         else _samples_from_f32(raw["samples_f32"], limits)
     )
+    # Finite, but beyond any sensor: its spectrum would overflow the store's float32
+    # into an infinite bin (invalid JSON in the API).
+    peak = max(float(samples.max()), -float(samples.min()))
+    if peak > limits.max_abs_sample:
+        raise Rejected(
+            "samples_absurd",
+            f"a sample of magnitude {peak:.3g} {unit} is beyond the plausible "
+            f"{limits.max_abs_sample:g} {unit}.",
+        )
     speed = _speed_hz(raw, "speed_hz", "speed_rpm", limits, required=False)
     return Waveform(
         machine=machine_id,

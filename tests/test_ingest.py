@@ -169,6 +169,11 @@ CORPUS = [
      IngestLimits(max_samples=4096), None),
     ("too many f32", WAVE, wave(samples_f32=f32_b64([0.0] * 5000)), "samples_too_many",
      IngestLimits(max_samples=4096), None),
+    # 3e38 is finite in float32 (IEEE 754 binary32 max 3.4028235e38) but beyond any sensor.
+    ("f32 at the float32 limit", WAVE, wave(samples_f32=f32_b64([0.5] * 255 + [3.0e38])), "samples_absurd",
+     None, None),
+    ("list beyond any sensor", WAVE, dumps(good_wave(samples_f32=DROP, samples=[-2e9] + LIST64)),
+     "samples_absurd", None, None),
     ("speed both units", WAVE, wave(speed_hz=25.0, speed_rpm=1500), "speed_both", None, None),
     ("speed payload both", SPEED, dumps({"ts": NOW, "hz": 25, "rpm": 1500}), "speed_both", None, None),
     ("speed payload empty", SPEED, dumps({"ts": NOW}), "speed_missing", None, None),
@@ -256,7 +261,7 @@ class TestGoodPayloads:
         assert (w.machine, w.point, w.fs_hz, w.unit) == ("fan-1", "de-h", 25600.0, "m/s^2")
 
     def test_json_list_values_round_trip_exactly(self):
-        values = [0.1, -2.5, 1e-300, 123456789.125, 0, -7, 3.0e12] * 20
+        values = [0.1, -2.5, 1e-300, 123456789.125, 0, -7, 3.0e8] * 20  # large, within the plausible magnitude
         w = _decode(WAVE, dumps(good_wave(samples_f32=DROP, samples=values)))
         # json.dumps writes repr(float), which reads back to the same double (Python float repr)
         assert w.samples.tolist() == [float(v) for v in values]

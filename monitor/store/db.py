@@ -74,8 +74,13 @@ _ORJSON_OPTIONS = orjson.OPT_SERIALIZE_NUMPY | orjson.OPT_PASSTHROUGH_DATACLASS 
 
 def dumps_json(value: Any) -> str:
     """JSON text of a JSON column's value: plain data and numpy values go straight to
-    orjson (non-finite numbers become null); anything else (dataclasses, dates, non-string
-    keys) goes through :func:`monitor.store.writes.jsonable` first.
+    orjson; anything else (dataclasses, dates, non-string keys) goes through
+    :func:`monitor.store.writes.jsonable` first.
+
+    Non-finite numbers become null: JSON has none, and PostgreSQL's json type refuses
+    the ``NaN``/``Infinity`` tokens. The text is always standard JSON, but a null cannot
+    be told from None: data that must come back exactly (the detector state) tags them
+    itself before it gets here (:mod:`monitor.state_json`, docs/store.md).
 
     Callers may hand over a reading's evaluation as it is: the serialisation itself is
     the check, not a second walk over the data. orjson, not the json module: a reading's

@@ -650,7 +650,11 @@ def acknowledge_alarm(
 def save_detector_state(
     session: Session, machine: str, state: Mapping[str, Any], ts: dt.datetime | float | None = None
 ) -> None:
-    """Upsert the detector state JSON of ``machine`` (inside the caller's transaction)."""
+    """Upsert the detector state JSON of ``machine`` (inside the caller's transaction).
+
+    ``state`` is exact JSON data (:func:`monitor.detection.stored_state`: non-finite
+    floats already tagged, :mod:`monitor.state_json`); the serialiser's null for a NaN
+    would lose it."""
     row = session.get(DetectorState, machine)
     when = to_datetime(ts) if ts is not None else None
     if row is None:
@@ -668,7 +672,8 @@ def save_detector_states(
     session: Session | Connection, states: Mapping[str, tuple[Mapping[str, Any], dt.datetime | float | None]]
 ) -> None:
     """Upsert the detector state JSON of several machines (``{machine: (state, ts)}``) with
-    one statement (one parameter set per machine), inside the caller's transaction."""
+    one statement (one parameter set per machine), inside the caller's transaction.
+    Each state is exact JSON data, as for :func:`save_detector_state`."""
     if not states:
         return
     dialect = _dialect_name(session)
@@ -684,7 +689,8 @@ def save_detector_states(
 
     now = utcnow()
     session.execute(_statement(("save_detector_states", dialect), build), [
-        # The JSON column's serialiser (store/db.py dumps_json) makes NaN null.
+        # Written as given: the snapshot holds no NaN or infinity for the serialiser
+        # (store/db.py dumps_json) to turn into null.
         {"machine_id": machine, "state": state,
          "ts": to_datetime(ts) if ts is not None else None, "updated_at": now}
         for machine, (state, ts) in sorted(states.items())
