@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import contextlib
 import datetime as dt
+import http.client
 import json
 import re
 import threading
@@ -99,6 +100,14 @@ def deploy_broker(workdir: Path) -> PrivateBroker:
 # ----------------------------------------------------------------------------- publisher
 
 
+def _acknowledged(info: Any) -> bool:
+    """The broker acknowledged this copy (paho raises for a copy it could not send)."""
+    try:
+        return bool(info.is_published())
+    except (RuntimeError, ValueError):
+        return False
+
+
 class PacedPublisher(threading.Thread):
     """Publish ``readings`` at QoS 1, in order, one at a time: the next goes out once the
     broker acknowledged the previous (PUBACK), so a reading counts as published exactly
@@ -176,7 +185,7 @@ class PacedPublisher(threading.Thread):
 
     def published(self) -> list[int]:
         """Indices of the readings the broker acknowledged (any copy)."""
-        return [i for i, infos in enumerate(self.sends) if any(x.is_published() for x in infos)]
+        return [i for i, infos in enumerate(self.sends) if any(map(_acknowledged, infos))]
 
     def attempted(self) -> list[int]:
         return [i for i, infos in enumerate(self.sends) if infos]
@@ -216,7 +225,7 @@ class PacedPublisher(threading.Thread):
             # Not connected: paho raises; the reading is sent again once it reconnected.
             with contextlib.suppress(RuntimeError, ValueError):
                 info.wait_for_publish(2.0)
-            if any(x.is_published() for x in self.sends[i]):
+            if any(map(_acknowledged, self.sends[i])):
                 return
             if time.monotonic() > deadline:
                 self.given_up.append(i)
@@ -257,7 +266,7 @@ class HealthPoller(threading.Thread):
                 status, raw = resp.status, resp.read()
         except urllib.error.HTTPError as exc:
             status, raw = exc.code, exc.read()
-        except (OSError, urllib.error.URLError):
+        except (OSError, http.client.HTTPException):  # no answer (URLError is an OSError)
             return HealthSample(t, "down", None, None)
         try:
             body = json.loads(raw)
@@ -426,9 +435,17 @@ def mode_history(url: str, machine: str, name: str) -> list[tuple[str, str]]:
 # ----------------------------------------------------------------------------- the log
 
 
+#: Longest a failing database attempt may take before its warning is logged, s: the
+#: store's busy timeout on SQLite (10 s) or a connection attempt, with room.
+ATTEMPT_SLACK_S = 15.0
+
+
 @dataclass
 class RetryLoop:
-    """Consecutive 'retrying' warnings of one process with a growing back-off."""
+    """An unbroken stretch of database retry warnings of one process: each comes within
+    its predecessor's back-off plus :data:`ATTEMPT_SLACK_S`. Threads that retry at the
+    same time (the worker and the periodic jobs) make one stretch, since the log does not
+    name the thread: the stretch is how long the process kept failing."""
 
     first: dt.datetime
     last: dt.datetime
@@ -461,16 +478,13 @@ def log_records(path: Path) -> list[dict[str, Any]]:
 
 def retry_loops(records: Sequence[dict[str, Any]],
                 lives: Sequence[tuple[float, float | None]]) -> list[RetryLoop]:
-    """Database retry loops in a service log holding every process life in order.
-
-    ``lives`` are the processes' (start, end) in epoch seconds (end None: still running).
-    A retry warning carries ``retry_in_s``, the back-off before the next attempt; a loop
-    is a run of them in one life whose back-off grows (or stays at its cap).
-    """
+    """Database retry loops (:class:`RetryLoop`) in a service log holding every process
+    life in order; a retry warning is a line with ``retry_in_s`` (the back-off before the
+    next attempt, s). ``lives`` are the processes' (start, end), epoch seconds (end None:
+    still running); a loop never spans two lives."""
     def life_of(ts: float) -> int:
         return max((k for k, (start, _) in enumerate(lives) if start <= ts), default=0)
 
-    cap = max((float(r["retry_in_s"]) for r in records if "retry_in_s" in r), default=0.0)
     loops: list[RetryLoop] = []
     cur: RetryLoop | None = None
     cur_life = -1
@@ -480,15 +494,13 @@ def retry_loops(records: Sequence[dict[str, Any]],
         ts = dt.datetime.fromisoformat(str(r["ts"]))
         life = life_of(ts.timestamp())
         wait = float(r["retry_in_s"])
-        grows = cur is not None and life == cur_life and (
-            wait > cur.last_wait_s or wait == cur.last_wait_s == cap)
-        if not grows:
+        if (cur is None or life != cur_life or (ts - cur.last).total_seconds()
+                > cur.last_wait_s + ATTEMPT_SLACK_S):
             end = lives[life][1] if life < len(lives) else None
             cur = RetryLoop(first=ts, last=ts, last_wait_s=wait, warnings=0,
                             end=None if end is None else dt.datetime.fromtimestamp(end, dt.UTC))
             cur_life = life
             loops.append(cur)
-        assert cur is not None
         cur.last, cur.last_wait_s = ts, wait
         cur.warnings += 1
         err = str(r.get("error", ""))[:160]

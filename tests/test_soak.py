@@ -1,7 +1,7 @@
 """The soak: a month of the sample plant through the whole system, with faults.
 
-A compressed month of the sample plant (tests/soak_month.py: five machines, 4,160
-readings over 29 days, the six-week sample story played four times) goes through a
+A compressed month of the sample plant (tests/soak_month.py: five machines, 5,200
+readings over 29 days, the six-week sample story played five times) goes through a
 private Mosquitto on the deploy configuration's persistence settings into the real
 service (``whirlwatch run`` as a child process, ``--machines`` as deploy/whirlwatch.toml
 has it) and into SQLite and PostgreSQL. The month fills trend windows, learns baselines,
@@ -88,7 +88,7 @@ pytestmark = [pytest.mark.soak, pytest.mark.broker, pytest.mark.slow]
 SEED = 20260411
 #: Publishing pace of the soak, readings per second (the service keeps up at several
 #: times this; the faults make the backlogs).
-SOAK_RATE_PER_S = 120.0
+SOAK_RATE_PER_S = 150.0
 #: Fractions of the month after which the engineer acknowledges every active alarm.
 ACK_AT = (0.28, 0.53, 0.78)
 #: Fraction of the month after which the engineer adds :data:`NEW_MODE`.
@@ -106,11 +106,17 @@ OUTAGE_S = 20.0
 MAX_RETRY_LOOP_S = 30.0
 #: Bound on /healthz turning unhealthy and healthy again, s (issue 11 item 3).
 HEALTH_BOUND_S = 30.0
-#: Giving up on the store catching up after this long without a new row, s.
-NO_PROGRESS_S = 30.0
+#: Giving up on the store catching up after this long without a new row, s (longer
+#: than the service's longest back-off between database attempts, 10 s).
+NO_PROGRESS_S = 20.0
+#: Seconds the broker queues readings for the stopped service before it is killed.
+BROKER_BACKLOG_S = 2.0
+#: Readings between the broker-kill episode and the next action: what the publisher
+#: sends from the stop to the kill, with room to spare.
+BROKER_KILL_CLEARANCE = int(SOAK_RATE_PER_S * (BROKER_BACKLOG_S + 0.5)) + 50
 #: The soak's faults in the order they come, each at a seeded random reading of its own
 #: stretch of the month.
-FAULTS = ("kill", "kill", "stop+broker_kill", "kill", "db_outage", "kill", "kill")
+FAULTS = ("kill", "kill", "db_outage", "kill", "stop+broker_kill", "kill", "kill")
 
 
 @dataclass(frozen=True)
@@ -120,12 +126,31 @@ class Fault:
     delay_s: float  # and this much later
 
 
+def action_points(n: int) -> dict[int, str]:
+    """Reading after which the engineer acts: 'ack' or 'mode'."""
+    return {int(f * n): "ack" for f in ACK_AT} | {int(MODE_AT * n): "mode"}
+
+
 def fault_plan(n: int, rng: random.Random) -> list[Fault]:
-    """:data:`FAULTS` spread over the month: one in each equal stretch of 3-97 % of it."""
+    """:data:`FAULTS` spread over the month: one at a random reading of each equal stretch
+    of 3-97 % of it. The broker kill keeps :data:`BROKER_KILL_CLEARANCE` readings clear of
+    the next action, so the publisher is still sending when the broker dies (a pause
+    would leave it idle, and an autosave in the idle time would hide what a crash loses)."""
     lo, hi = 0.03 * n, 0.97 * n
     width = (hi - lo) / len(FAULTS)
-    return [Fault(int(lo + (k + rng.uniform(0.15, 0.85)) * width), kind, rng.uniform(0.0, 0.5))
-            for k, kind in enumerate(FAULTS)]
+    actions = action_points(n)
+    plan = []
+    for k, kind in enumerate(FAULTS):
+        clearance = BROKER_KILL_CLEARANCE if kind == "stop+broker_kill" else 0
+        for _ in range(1000):
+            index = int(lo + (k + rng.uniform(0.1, 0.9)) * width)
+            if not any(0 <= a - index < clearance for a in actions):
+                break
+        else:
+            raise ValueError(f"no reading in stretch {k} keeps {clearance} readings clear of "
+                             f"the actions {sorted(actions)}.")
+        plan.append(Fault(index, kind, rng.uniform(0.0, 0.5)))
+    return plan
 
 
 @pytest.fixture(scope="module")
@@ -235,24 +260,26 @@ class MonthRun:
 
     # -- waiting for the store
 
-    def published_keys(self) -> set:
-        assert self.publisher is not None
-        return {self.month[i].key for i in self.publisher.published()}
-
     def wait_stored(self, what: str) -> None:
-        """Until every reading published so far is stored; gives up after
-        :data:`NO_PROGRESS_S` without a new row (5 s once it has given up before)."""
+        """Until every reading published so far is stored, or the last one is and a second
+        passed without a new row (the others are lost: waiting longer cannot help); gives
+        up after :data:`NO_PROGRESS_S` without a new row (5 s once it has given up)."""
+        assert self.publisher is not None
         patience = 5.0 if self._stalled else NO_PROGRESS_S
         last_count, last_change = -1, time.monotonic()
         while True:
-            want = self.published_keys()
+            done = self.publisher.published()
+            want = {self.month[i].key for i in done}
             count = stored_row_count(self.db_url)
-            if count >= len(want) and want <= set(stored_keys(self.db_url)):
-                return
             now = time.monotonic()
             if count != last_count:
                 last_count, last_change = count, now
-            elif now - last_change > patience:
+            if count >= len(want) or now - last_change > 1.0:
+                have = set(stored_keys(self.db_url))
+                if want <= have or (done and self.month[done[-1]].key in have
+                                    and now - last_change > 1.0):
+                    return
+            if now - last_change > patience:
                 self._stalled = True
                 self.rec.stalled.append(
                     f"{what}: {len(want)} readings published, {count} rows stored, no new row "
@@ -277,9 +304,10 @@ class MonthRun:
             self.start_service()
         elif f.kind == "stop+broker_kill":
             self.stop_service()
-            time.sleep(2.0)  # the broker queues what arrives meanwhile for the stopped service
+            time.sleep(BROKER_BACKLOG_S)  # the broker queues what arrives for the stopped service
             self.broker.kill()
             self.rec.broker_kills += 1
+            self.rec.faults_done.append(f"broker killed after {self.publisher.progress} published")
             self.broker.start()
             self.start_service()
         elif f.kind == "db_outage":
@@ -304,8 +332,7 @@ class MonthRun:
     # -- the run
 
     def run(self, faults: list[Fault], rate_per_s: float) -> RunRecord:
-        n = len(self.month)
-        actions = {int(f * n): "ack" for f in ACK_AT} | {int(MODE_AT * n): "mode"}
+        actions = action_points(len(self.month))
         timeline = sorted([(i, 0, kind) for i, kind in actions.items()]
                           + [(f.index, 1, f) for f in faults], key=lambda x: (x[0], x[1]))
         t0 = time.monotonic()
@@ -374,6 +401,17 @@ def delivery(rec: RunRecord, month: list[Reading]) -> dict[str, int]:
     }
 
 
+def spans(numbers: list[int]) -> str:
+    """'3-5, 9' for [3, 4, 5, 9]."""
+    out: list[str] = []
+    for k, n in enumerate(numbers):
+        if k and n == numbers[k - 1] + 1:
+            out[-1] = f"{out[-1].split('-')[0]}-{n}"
+        else:
+            out.append(str(n))
+    return ", ".join(out)
+
+
 def transition_diffs(ref: dict, soak: dict, month: list[Reading]) -> tuple[int, list[str]]:
     """Entries that differ between two runs' transitions (inserted, deleted or replaced,
     per machine), and the first few differences in words, each with the number of the
@@ -410,6 +448,8 @@ def summary(kind: str, ref: RunRecord, soak: RunRecord, month: list[Reading]) ->
                  "kills": soak.kills, "clean_stops": soak.clean_stops,
                  "broker_kills": soak.broker_kills, "copies_resent": soak.copies,
                  "dead_letters": soak.dead_letters},
+        "lost_readings": spans(sorted(i for i in soak.published
+                                      if month[i].key not in soak.stored)),
         "transition_diffs": diffs,
         "first_diffs": diff_words,
         "longest_retry_loop_s": round(max((x.age_s for x in soak.retry_loops), default=0.0), 1),
@@ -427,9 +467,8 @@ def broken_invariants(ref: RunRecord, soak: RunRecord, month: list[Reading], fig
     out = []
     s = fig["soak"]
     if s["lost"] or s["duplicated"] or s["unexpected"]:
-        lost = sorted({month[i].key for i in soak.published} - set(soak.stored), key=str)[:5]
-        out.append(f"1. stored exactly once: {s['lost']} lost (first {lost}), {s['duplicated']} "
-                   f"duplicated, {s['unexpected']} never sent")
+        out.append(f"1. stored exactly once: {s['lost']} lost (readings {fig['lost_readings']}), "
+                   f"{s['duplicated']} duplicated, {s['unexpected']} never sent")
     if fig["transition_diffs"]:
         out.append(f"2. alarm transitions: {fig['transition_diffs']} differ from the reference "
                    f"run: {fig['first_diffs']}")
