@@ -114,8 +114,9 @@ class PrivateBroker:
     With ``config_from`` (a Mosquitto configuration file, normally
     ``deploy/mosquitto.conf``; :meth:`with_deploy_settings`), the broker-wide directives of
     that file are used as written instead of the three keyword settings, and only its
-    site-specific directives (:data:`SITE_DIRECTIVES`) are replaced. ``settings`` holds
-    the directives in force either way.
+    site-specific directives (:data:`SITE_DIRECTIVES`) are replaced. ``overrides``
+    (directive name to value) change single directives on top, for a comparison run.
+    ``settings`` holds the broker-wide directives in force.
     """
 
     def __init__(
@@ -127,6 +128,7 @@ class PrivateBroker:
         max_inflight_messages: int = 20,
         autosave_interval_s: int = 1,
         config_from: Path | None = None,
+        overrides: dict[str, str] | None = None,
     ) -> None:
         binary = find_mosquitto()
         if binary is None:
@@ -149,6 +151,7 @@ class PrivateBroker:
             }
         else:
             self.settings = deploy_broker_settings(Path(config_from))
+        self.settings.update(overrides or {})
         self.config_from = None if config_from is None else Path(config_from)
         lines = [
             f"listener {self.port} 127.0.0.1",
@@ -168,11 +171,13 @@ class PrivateBroker:
 
     @classmethod
     def with_deploy_settings(
-        cls, workdir: Path, *, port: int | None = None, config: Path = DEPLOY_MOSQUITTO_CONF
+        cls, workdir: Path, *, port: int | None = None, config: Path = DEPLOY_MOSQUITTO_CONF,
+        overrides: dict[str, str] | None = None,
     ) -> PrivateBroker:
         """A private broker (not started) that runs the persistence, autosave, queue,
-        in-flight and session settings of ``deploy/mosquitto.conf`` as written there."""
-        return cls(workdir, port=port, config_from=config)
+        in-flight and session settings of ``deploy/mosquitto.conf`` as written there
+        (with ``overrides``, if given, changing single directives on top)."""
+        return cls(workdir, port=port, config_from=config, overrides=overrides)
 
     @property
     def url(self) -> str:
