@@ -902,6 +902,7 @@ class Service:
             self._periodic.join(5.0)
         if self.metrics_server is not None:
             self.metrics_server.stop()
+        self._registry_follower.close()
         self.store.close()
         src = self.source
         get = self.metrics.registry.get_sample_value

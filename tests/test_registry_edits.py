@@ -343,3 +343,41 @@ def test_recorded_bump_test_reads_past_an_absurd_stored_mode(tmp_path: Path, dat
                                    "--force-point", "hammer", "--json", "--band", "10", "200"])
     assert res.exit_code == 0, res.output
     assert "'sway'" in res.output and "'frequency_hz'" in res.output  # the warning names it
+
+
+@pytest.mark.broker
+def test_running_service_follows_edits_and_restarts_idle_machines(fresh_mosquitto, plant_url: str,
+                                                                  api: Api) -> None:
+    from broker import publish_many
+    from service_helpers import measurement_count, wait_for
+
+    from monitor.store.models import BaselineRestart
+
+    settings = load_settings(None, env={}, overrides={
+        "broker.url": fresh_mosquitto.url, "database.url": plant_url, "broker.client_id": "svc-live",
+        "broker.reconnect_max_s": 1.0})
+    svc = Service(settings, stale_check_s=0)
+    svc.start()
+    try:
+        publish_many(fresh_mosquitto, waveforms("rwp-1", 0, 4) + waveforms("ab-1", 0, 3))
+        assert wait_for(lambda: measurement_count(plant_url)[0] >= 7, 30)
+        mid = api.call("GET", "/machines/rwp-1/modes").get_json()["items"][0]["id"]
+        assert api.call("PUT", f"/machines/rwp-1/modes/{mid}", {"frequency_hz": 80.0}).status_code == 200
+        # ab-1 sends nothing more: its restart is the periodic pass's to apply.
+        assert api.call("POST", "/machines/ab-1/baseline", {"point": None, "comment": "overhaul"}).status_code == 202
+
+        def applied() -> bool:
+            store = Store.open(plant_url)
+            try:
+                with store.session() as s:
+                    return s.scalar(select(BaselineRestart.applied_at)) is not None
+            finally:
+                store.close()
+
+        assert wait_for(applied, 10)
+        publish_many(fresh_mosquitto, waveforms("rwp-1", 4, 1))
+        assert wait_for(lambda: measurement_count(plant_url)[0] >= 8, 30)
+        assert {r["mode_hz"] for r in newest_evaluation(plant_url, "rwp-1")["margins"]} == {80.0}
+        assert all(n == 0 for n in stored_baselines(plant_url, "ab-1").values())
+    finally:
+        svc.stop()

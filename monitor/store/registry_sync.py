@@ -86,8 +86,9 @@ def registry_version(session: Session) -> int:
     return int(session.scalar(select(func.coalesce(func.max(RegistryState.version), 0))) or 0)
 
 
-#: The one-row query a running service makes once per batch.
-VERSION_QUERY = select(func.coalesce(func.max(RegistryState.version), 0))
+#: The one-row query a running service makes once per batch (plain SQL for the driver's
+#: own connection: registry_live.RegistryFollower).
+VERSION_SQL = "SELECT version FROM registry_state WHERE id = 1"
 
 
 # ----------------------------------------------------------------------------- import
