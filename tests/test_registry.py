@@ -186,3 +186,16 @@ def test_physical_bounds_name_machine_entry_and_key(edit, key):
     with pytest.raises(RegistryError) as exc:
         parse_registry(tomllib.loads(bad))
     assert key in str(exc.value) and "'af-3'" in str(exc.value)
+
+
+def test_edit_distance_known_values():
+    from monitor.registry import edit_distance
+
+    # Levenshtein's classic pair: kitten -> sitting takes 3 edits (textbook example).
+    assert edit_distance("kitten", "sitting") == 3
+    # Optimal string alignment counts a swap of neighbours as one edit, but edits no
+    # substring twice: CA -> ABC is 3 (the unrestricted Damerau-Levenshtein distance is 2),
+    # the standard example distinguishing the two (from memory).
+    assert edit_distance("ab", "ba") == 1
+    assert edit_distance("ca", "abc") == 3
+    assert edit_distance("", "modes") == 5 and edit_distance("modes", "modes") == 0
