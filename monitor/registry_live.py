@@ -22,7 +22,7 @@ from collections.abc import Mapping, MutableMapping
 from dataclasses import dataclass
 from typing import Any
 
-from sqlalchemy import update
+from sqlalchemy import select
 
 from monitor.detection import MachineEvaluator, stored_state
 from monitor.registry import Machine, Registry, load_registry, registry_warnings
@@ -37,6 +37,7 @@ from monitor.store.registry_sync import (
     read_registry,
     registry_version,
 )
+from monitor.store.writes import save_detector_states
 
 log = logging.getLogger("whirlwatch.registry")
 
@@ -197,9 +198,12 @@ class RegistryFollower:
             if not self._pending[machine]:
                 del self._pending[machine]
             if done_here:
-                session.execute(update(DetectorState).where(DetectorState.machine_id == machine)
-                                .values(state=stored_state(ev, (versions.get(machine) or 0) + 1),
-                                        updated_at=utcnow()))
+                # Through the store's one detector-state write, keeping the row's reading time.
+                row = session.execute(select(DetectorState.ts).where(DetectorState.machine_id == machine)
+                                      ).one_or_none()
+                if row is not None:  # no row: nothing learned yet, nothing to keep
+                    save_detector_states(session, {
+                        machine: (stored_state(ev, (versions.get(machine) or 0) + 1), row.ts)})
         return applied
 
 
