@@ -58,13 +58,12 @@ from monitor.ingest import SPEED_STREAM, IngestLimits, Rejected, RejectionCounte
 from monitor.metrics import MetricsServer, ServiceMetrics
 from monitor.mqtt import InboundMessage, MessageSource, MqttError, MqttSettings, Publisher
 from monitor.readings import SpeedReading, Waveform
-from monitor.registry import Registry, load_registry
+from monitor.registry import Registry
+from monitor.registry_live import follow, start_registry
 from monitor.store import (
     Store,
     add_dead_letter,
     apply_retention,
-    export_registry,
-    import_registry,
     record_transitions,
 )
 from monitor.store.models import (
@@ -313,17 +312,11 @@ class Service:
     # -- start-up
 
     def _load_registry(self) -> Registry:
-        path = self.settings.service.machines_file
+        # The file adds and updates, never deletes (monitor/registry_live.py).
         try:
-            if path:
-                registry = load_registry(path)
-                with self.store.transaction() as s:
-                    import_registry(s, registry, user="service start")
-            with self.store.session() as s:
-                registry = export_registry(s)
+            registry, self._registry_follower = start_registry(self.store, self.settings.service.machines_file)
         except ValueError as exc:
             raise ServiceError(str(exc)) from exc
-        registry = Registry(machines=tuple(m for m in registry.machines))
         if not registry.machines:
             raise ServiceError(
                 "the database holds no machines; import a registry with `whirlwatch machines "
@@ -377,6 +370,7 @@ class Service:
             if self._versions.get(machine) != v:
                 self._reload(s, machine, v)
         evaluators = {m: self._evaluators[m] for m in machines}
+        self._registry_follower.apply_baseline_restarts(s, evaluators, self._versions, self.clock())
         active = {
             (m, a.id): ev for m, ev in evaluators.items() for a in ev.engine.active() if a.state == "active"
         }
@@ -394,6 +388,30 @@ class Service:
             when = at.timestamp() if at is not None else self.clock()
             out.setdefault(machine, []).append(ev.acknowledge(ref, user or "unknown", comment or "", when))
         return evaluators, out
+
+    def _follow_registry(self) -> None:
+        """Registry edits made since the last batch, live (monitor/registry_live.py)."""
+        with self._lock:  # the worker and the periodic thread both follow
+            change = self._registry_follower.poll()
+            if change is None:
+                return
+            self.registry, self._evaluators = follow(self.registry, self._evaluators, change)
+            for m in self.registry.machines:
+                self._views.setdefault(m.id, _MachineView())
+                if m.id not in self._evaluators:
+                    self._versions[m.id] = None  # loaded from the store on first use
+
+    def apply_registry_requests(self) -> None:
+        """Registry edits, and baseline restarts of machines no batch has touched since
+        they were asked for (the periodic loop runs this)."""
+        self._follow_registry()
+        known = self.registry.by_id()
+        machines = [m for m in self._registry_follower.pending_machines() if m in known]
+        if machines:
+            def work() -> None:
+                with self._lock, self.store.write_transaction() as s:
+                    self._take_states(s, machines, acks=False)
+            self._retry(work, machines)
 
     def _reload(self, s: Any, machine: str, version: int) -> None:
         state = s.execute(
@@ -479,6 +497,7 @@ class Service:
         message; a machine's status rides on the last of its outcomes that has one.
         """
         t0 = time.perf_counter()
+        self._follow_registry()
         now = self.clock()
         pending: dict[tuple[str, str], float] = {}
 
@@ -883,6 +902,7 @@ class Service:
             self._periodic.join(5.0)
         if self.metrics_server is not None:
             self.metrics_server.stop()
+        self._registry_follower.close()
         self.store.close()
         src = self.source
         get = self.metrics.registry.get_sample_value
@@ -918,6 +938,7 @@ class Service:
         while not self._stop.wait(0.5):
             now_m = time.monotonic()
             try:
+                self.apply_registry_requests()
                 if self._sqlite:
                     with self.store.engine.connect() as c:
                         c.exec_driver_sql("PRAGMA wal_checkpoint(PASSIVE)")
