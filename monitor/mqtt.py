@@ -313,6 +313,10 @@ class MessageSource:
         self._batch_handler: Callable[[list[InboundMessage]], None] | None = None
         self._max_batch = 1
         self.last_error: str | None = None
+        # Monotonic time since when messages have waited without one being acknowledged
+        # (None while none waits): how long the consumer has made no progress.
+        self._waiting_since: float | None = None
+        self.disconnected_at: float | None = None  # epoch s of the last connection loss
         self._client = _make_client(
             settings, settings.client_id, manual_ack=True, persistent=True
         )
@@ -331,6 +335,8 @@ class MessageSource:
         with self._lock:
             self._connection += 1
             self.stats.connects += 1
+            self.last_error = None
+            self.disconnected_at = None
         if flags.session_present:
             # The broker will resend what we had not acknowledged: the queued copies of the
             # old connection would only be handled twice.
@@ -339,7 +345,10 @@ class MessageSource:
                     self._queue.get_nowait()
                 except queue.Empty:
                     break
-                self.stats.stale_dropped += 1
+                with self._lock:
+                    self.stats.stale_dropped += 1
+                    # No longer in flight to us: the broker counts it again when it resends.
+                    self._settled()
         log.info(
             "mqtt connected to %s (session present: %s)", self.settings.url, flags.session_present
         )
@@ -361,6 +370,9 @@ class MessageSource:
     def _on_disconnect(self, _c: paho.Client, _u: Any, _f: Any, reason: Any, _p: Any) -> None:
         self._subscribed.clear()
         if not self._stopping.is_set():
+            with self._lock:
+                self.disconnected_at = time.time()
+                self.last_error = f"connection lost: {reason}"
             log.warning("mqtt connection lost (%s); reconnecting", reason)
 
     def _on_message(self, _c: paho.Client, _u: Any, msg: paho.MQTTMessage) -> None:
@@ -377,6 +389,8 @@ class MessageSource:
         )
         with self._lock:
             self.stats.received += 1
+            if self.stats.in_flight == 0:
+                self._waiting_since = time.monotonic()
             self.stats.in_flight += 1
         # The broker sends at most receive_maximum unacknowledged messages, so the queue has
         # room; if a 3.1.1 broker allows more in flight, waiting here pushes back on TCP.
@@ -459,6 +473,20 @@ class MessageSource:
     def connected(self) -> bool:
         return self._client.is_connected()
 
+    def waiting_s(self, now_m: float | None = None) -> float:
+        """Seconds messages have waited without one being acknowledged (0 while none
+        waits): received-but-unacknowledged messages that make no progress."""
+        with self._lock:
+            since = self._waiting_since
+        if since is None:
+            return 0.0
+        return max(0.0, (time.monotonic() if now_m is None else now_m) - since)
+
+    def _settled(self) -> None:
+        """One message less in flight (under ``_lock``): progress, or none left waiting."""
+        self.stats.in_flight = max(0, self.stats.in_flight - 1)
+        self._waiting_since = time.monotonic() if self.stats.in_flight else None
+
     @property
     def queue_size(self) -> int:
         """Messages handed off but not yet taken by the worker."""
@@ -471,7 +499,7 @@ class MessageSource:
         redelivers it, and the idempotent store makes the second handling a no-op.
         """
         with self._lock:
-            self.stats.in_flight = max(0, self.stats.in_flight - 1)
+            self._settled()
             stale = message.connection != self._connection
             if stale:
                 self.stats.stale_not_acked += 1
@@ -529,6 +557,10 @@ class Publisher:
 
     def _on_disconnect(self, _c: paho.Client, _u: Any, _f: Any, _r: Any, _p: Any) -> None:
         self._connected.clear()
+
+    @property
+    def connected(self) -> bool:
+        return self._connected.is_set()
 
     def _on_publish(self, _c: paho.Client, _u: Any, mid: int, _r: Any, _p: Any) -> None:
         with self._pending_lock:
