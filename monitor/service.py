@@ -116,10 +116,10 @@ STALL_S = 15.0
 #: The database is asked ``SELECT`` this often, s; a question unanswered this long makes
 #: the service unhealthy before the connection's own timeouts end it, s.
 PROBE_EVERY_S = 5.0
-PROBE_LIMIT_S = 10.0
+PROBE_LIMIT_S = 5.0
 #: A PostgreSQL statement, commit or ping without an answer this long has its connection
 #: closed (store/db.py SilenceWatchdog), s; retention's deletes may take longer.
-SILENCE_LIMIT_S = 20.0
+SILENCE_LIMIT_S = 15.0
 RETENTION_SILENCE_LIMIT_S = 900.0
 #: Acknowledgements made in the dashboard are looked for this often, s.
 ACK_SYNC_S = 1.0
@@ -188,7 +188,7 @@ def _log_thread_exception(args: threading.ExceptHookArgs) -> None:
     if args.exc_type is SystemExit:
         return
     logging.getLogger("whirlwatch").error(
-        "thread ended by an exception", extra={"thread": args.thread.name if args.thread else None},
+        "thread ended by an exception", extra={"thread_name": args.thread.name if args.thread else None},
         exc_info=(args.exc_type, args.exc_value, args.exc_traceback))  # type: ignore[arg-type]
 
 
@@ -434,6 +434,7 @@ class Service:
         self._stop = threading.Event()
         self._periodic: threading.Thread | None = None
         self._prober: threading.Thread | None = None
+        self._watcher: threading.Thread | None = None
         # Health (docs/service.md): database retries under way (by thread), the last
         # commit of readings, the database probe.
         self._health_lock = threading.Lock()
@@ -845,7 +846,10 @@ class Service:
                 if not is_transient(exc) or self._stop.is_set():
                     self._retry_ended(failed=True)
                     raise
-                self._retry_failed(exc, delay)
+                try:
+                    self._retry_failed(exc, delay)
+                except Exception:  # bookkeeping must never turn a retry into a set-aside
+                    log.exception("recording a database retry failed")
                 self._stop.wait(delay)
                 delay = min(delay * 2, DB_RETRY_MAX_S)
                 continue
@@ -874,7 +878,7 @@ class Service:
         if due:
             log.warning("database work failed; retrying", extra={
                 "error": cause, "error_class": type(exc).__name__, "attempts": attempts,
-                "failing_for_s": round(for_s, 1), "retry_in_s": delay, "thread": name})
+                "failing_for_s": round(for_s, 1), "retry_in_s": delay, "worker": name})
 
     def _retry_ended(self, *, failed: bool) -> None:
         name = threading.current_thread().name
@@ -883,7 +887,7 @@ class Service:
         if st is not None and not failed:
             log.info("database work succeeded again", extra={
                 "attempts": st.attempts + 1, "failed_for_s": round(time.monotonic() - st.since_m, 1),
-                "last_error": st.error, "thread": name})
+                "last_error": st.error, "worker": name})
 
     def _commit(self, items: list[_Item], *, check_all: bool = True) -> None:
         """One transaction for a batch (see :meth:`handle_batch`); sets each item's outcome.
@@ -1172,6 +1176,8 @@ class Service:
             self.metrics_server.start()
         self._prober = threading.Thread(target=self._probe_loop, name="db-probe", daemon=True)
         self._prober.start()
+        self._watcher = threading.Thread(target=self._watch_health, name="health-watch", daemon=True)
+        self._watcher.start()
         self.publisher = Publisher(self.mqtt)
         try:
             self.publisher.start(wait_s)
@@ -1228,7 +1234,7 @@ class Service:
         backlog = src.stats.in_flight if src else 0
         waiting_s = src.waiting_s(now_m) if src else 0.0
         with self._health_lock:
-            retries = [dict(st.to_json(now_m), thread=name) for name, st in sorted(self._retries.items())]
+            retries = [dict(st.to_json(now_m), worker=name) for name, st in sorted(self._retries.items())]
             last = self._last_commit
             probe = dict(self._probe)
         db = self._database_view(probe, now_m)
@@ -1322,6 +1328,19 @@ class Service:
         while not self._stop.is_set():
             self.probe_database()
             self._stop.wait(PROBE_EVERY_S)
+
+    def _watch_health(self) -> None:
+        """Log each change of health (with its problems), so an outage is in the log even
+        when nobody asks /healthz and nothing fails outright (a silent database only
+        makes work wait). Touches neither the database nor the broker."""
+        was: list[str] = []
+        while not self._stop.wait(1.0):
+            problems = self.health()["problems"]
+            if problems and not was:
+                log.warning("service unhealthy", extra={"problems": problems})
+            elif was and not problems:
+                log.info("service healthy again")
+            was = problems
 
     def wait(self, timeout_s: float | None = None) -> bool:
         return self._stop.wait(timeout_s)
