@@ -256,13 +256,13 @@ class SilenceWatchdog:
             dup = socket.socket(fileno=os.dup(fd))
         except Exception:  # closed meanwhile: nothing waits on it any more
             return
+        self.closed += 1
         try:
             dup.shutdown(socket.SHUT_RDWR)
         except OSError:
             pass
         finally:
             dup.close()
-        self.closed += 1
         log.warning("database connection silent; closed it", extra={
             "database": self.url, "waited_s": round(waited_s, 1), "limit_s": self.limit_s})
 
