@@ -199,10 +199,10 @@ def _log_thread_exception(args: threading.ExceptHookArgs) -> None:
 #: or serialization (40), insufficient resources such as disk full (53), object not in
 #: prerequisite state such as lock not available (55), operator intervention such as
 #: query canceled or server shutdown (57), system errors (58), configuration (F0),
-#: invalid authorization (28), invalid catalog name (3D) and syntax or access rule
-#: violations (42: a missing table or privilege, which no reading causes and a split would
-#: wrongly blame on every reading in turn).
-TRANSIENT_SQLSTATE_CLASSES = frozenset({"08", "28", "3D", "40", "42", "53", "55", "57", "58", "F0"})
+#: invalid authorization (28), invalid catalog name (3D), internal errors such as data
+#: corruption (XX) and syntax or access rule violations (42: a missing table or privilege,
+#: which no reading causes and a split would wrongly blame on every reading in turn).
+TRANSIENT_SQLSTATE_CLASSES = frozenset({"08", "28", "3D", "40", "42", "53", "55", "57", "58", "F0", "XX"})
 
 
 def is_transient(exc: BaseException) -> bool:
@@ -211,9 +211,10 @@ def is_transient(exc: BaseException) -> bool:
     a deterministic one (the same reading fails the same way again): set it aside.
 
     SQLAlchemy's OperationalError, InterfaceError, DisconnectionError and pool TimeoutError
-    (and any error it marks as a disconnect), operating-system errors, and database errors
-    whose SQLSTATE class is in :data:`TRANSIENT_SQLSTATE_CLASSES` are transient. DataError,
-    IntegrityError and everything else are deterministic."""
+    (and any error it marks as a disconnect), a bare DatabaseError (SQLite's "database disk
+    image is malformed": the file, not the reading), operating-system errors, and database
+    errors whose SQLSTATE class is in :data:`TRANSIENT_SQLSTATE_CLASSES` are transient.
+    DataError, IntegrityError and everything else are deterministic."""
     if isinstance(exc, sa_exc.DBAPIError):
         if exc.connection_invalidated:
             return True
@@ -222,6 +223,8 @@ def is_transient(exc: BaseException) -> bool:
             return state[:2] in TRANSIENT_SQLSTATE_CLASSES
     if isinstance(exc, sa_exc.OperationalError | sa_exc.InterfaceError | sa_exc.DisconnectionError
                   | sa_exc.TimeoutError | OSError | MemoryError):
+        return True
+    if type(exc) is sa_exc.DatabaseError:
         return True
     # The pool's words when every reconnect of a checkout failed (sqlalchemy.pool.base).
     return isinstance(exc, sa_exc.InvalidRequestError) and str(exc) == "This connection is closed"
