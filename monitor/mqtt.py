@@ -329,6 +329,10 @@ class MessageSource:
         self._batch_handler: Callable[[list[InboundMessage]], None] | None = None
         self._max_batch = 1
         self.last_error: str | None = None
+        # Monotonic time since when messages have waited without one being acknowledged
+        # (None while none waits): how long the consumer has made no progress.
+        self._waiting_since: float | None = None
+        self.disconnected_at: float | None = None  # epoch s of the last connection loss
         self._client = _make_client(
             settings, settings.client_id, manual_ack=True, persistent=True
         )
@@ -347,6 +351,8 @@ class MessageSource:
         with self._lock:
             self._connection += 1
             self.stats.connects += 1
+            self.last_error = None
+            self.disconnected_at = None
         if flags.session_present:
             # The broker will resend what we had not acknowledged: the queued copies of the
             # old connection would only be handled twice.
@@ -378,6 +384,9 @@ class MessageSource:
     def _on_disconnect(self, _c: paho.Client, _u: Any, _f: Any, reason: Any, _p: Any) -> None:
         self._subscribed.clear()
         if not self._stopping.is_set():
+            with self._lock:
+                self.disconnected_at = time.time()
+                self.last_error = f"connection lost: {reason}"
             log.warning("mqtt connection lost (%s); reconnecting", reason)
 
     def _on_message(self, _c: paho.Client, _u: Any, msg: paho.MQTTMessage) -> None:
@@ -403,6 +412,8 @@ class MessageSource:
                 self._room.wait(0.1)
             self._held[id(item)] = item
             self.stats.received += 1
+            if self._waiting_since is None:
+                self._waiting_since = time.monotonic()
             self.stats.in_flight = len(self._held)
             self.stats.in_flight_high_water = max(self.stats.in_flight_high_water, self.stats.in_flight)
         # The slots guarantee room; the loop only guards a stop.
@@ -488,6 +499,15 @@ class MessageSource:
     def connected(self) -> bool:
         return self._client.is_connected()
 
+    def waiting_s(self, now_m: float | None = None) -> float:
+        """Seconds messages have waited without one being acknowledged (0 while none
+        waits): received-but-unacknowledged messages that make no progress."""
+        with self._lock:
+            since = self._waiting_since
+        if since is None:
+            return 0.0
+        return max(0.0, (time.monotonic() if now_m is None else now_m) - since)
+
     @property
     def queue_size(self) -> int:
         """Messages handed off but not yet taken by the worker."""
@@ -518,6 +538,8 @@ class MessageSource:
         with self._room:
             if self._held.pop(id(message), None) is not None:
                 self.stats.in_flight = len(self._held)
+                # Progress: the wait restarts for the messages still held, or ends.
+                self._waiting_since = time.monotonic() if self._held else None
                 self._room.notify()
 
     def stop(self, timeout_s: float = 10.0) -> None:
@@ -567,6 +589,10 @@ class Publisher:
 
     def _on_disconnect(self, _c: paho.Client, _u: Any, _f: Any, _r: Any, _p: Any) -> None:
         self._connected.clear()
+
+    @property
+    def connected(self) -> bool:
+        return self._connected.is_set()
 
     def _on_publish(self, _c: paho.Client, _u: Any, mid: int, _r: Any, _p: Any) -> None:
         with self._pending_lock:
