@@ -106,6 +106,9 @@ class RegistryFollower:
             raw = self.store.engine.raw_connection()
             raw.detach()  # never handed back to the pool: its autocommit stays with it
             if self.store.engine.dialect.name == "postgresql":
+                # The checkout's liveness ping may have opened a transaction; autocommit
+                # can only be set outside one.
+                raw.dbapi_connection.rollback()
                 raw.dbapi_connection.autocommit = True
             self._conn = raw.dbapi_connection
             # Closed with this follower (or at exit), never left to the garbage collector.
