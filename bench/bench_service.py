@@ -342,8 +342,9 @@ def run(quick: bool = False) -> list[dict]:
     schemas: list[str] = []
     with tempfile.TemporaryDirectory(prefix="ww-bench-") as tmp:
         work = Path(tmp)
-        # Persistence as deploy/mosquitto.conf sets it (autosave every 5 s; the tests' 1 s
-        # would have the broker rewrite its whole backlog every second of the drain).
+        # Saves every 5 s, not after every change as deploy/mosquitto.conf does: this bench
+        # measures the service, and per-change saves would make the broker rewrite its
+        # backlog for every message (bench/bench_broker.py measures that cost).
         broker = PrivateBroker(work / "broker", autosave_interval_s=5)
         # As docs/service.md recommends for a deployment: without it Mosquitto holds the
         # tail of each delivery for the receiver's delayed ACK (~40 ms on Linux).

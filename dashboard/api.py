@@ -20,6 +20,7 @@ from dashboard.errors import BadRequest, Conflict, NotFound
 from dashboard.security import current, require
 from monitor.registry import RegistryError, parse_mode
 from monitor.store.models import Alarm, Machine, Mode, SpectrumSnapshot
+from monitor.store.registry_sync import UnknownEntry, request_baseline_restart, save_mode
 
 bp = Blueprint("api", __name__, url_prefix="/api/v1")
 
@@ -128,7 +129,9 @@ def create_mode(machine_id: str):
     m = _machine_or_404(machine_id)
     values = _parse_mode_body(m, _body(), None)
     _name_clash(m, values.name, None)
-    mode = queries.save_mode(db_session(), m, values, current().username, None)
+    s = db_session()
+    mode = save_mode(s, m, values, current().username, None)
+    s.commit()
     return jsonify(queries.mode_json(mode)), 201
 
 
@@ -141,8 +144,36 @@ def update_mode(machine_id: str, mode_id: int):
         raise NotFound(f"Machine {m.id!r} has no mode with id {mode_id}.")
     values = _parse_mode_body(m, _body(), mode)
     _name_clash(m, values.name, mode.id)
-    mode = queries.save_mode(db_session(), m, values, current().username, mode)
+    s = db_session()
+    mode = save_mode(s, m, values, current().username, mode)
+    s.commit()
     return jsonify(queries.mode_json(mode))
+
+
+@bp.post("/machines/<machine_id>/baseline")
+@require("engineer")
+def restart_baseline(machine_id: str):
+    """Ask the service to learn the baselines of a point (or every point) again."""
+    _machine_or_404(machine_id)
+    data = _body()
+    extra = sorted(set(data) - {"point", "comment"})
+    if extra:
+        raise BadRequest(f"Unknown field {extra[0]!r}; allowed: point, comment.")
+    point = data.get("point")
+    if point is not None and not isinstance(point, str):
+        raise BadRequest("Field 'point' must be a point id (string) or null for every point.")
+    comment = data.get("comment")
+    if not isinstance(comment, str) or not comment.strip():
+        raise BadRequest("Field 'comment' is required: say why the baseline is restarted.")
+    s = db_session()
+    try:
+        req = request_baseline_restart(s, machine_id, point, comment, current().username)
+    except UnknownEntry as exc:
+        raise NotFound(str(exc)) from None
+    except RegistryError as exc:
+        raise BadRequest(str(exc)) from None
+    s.commit()
+    return jsonify(queries.baseline_restart_json(req)), 202
 
 
 @bp.get("/alarms")

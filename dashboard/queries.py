@@ -26,6 +26,7 @@ from monitor.store.auth import create_api_token, verify_api_token
 from monitor.store.models import (
     Alarm,
     ApiToken,
+    BaselineRestart,
     Machine,
     Measurement,
     MeasurementPoint,
@@ -33,10 +34,14 @@ from monitor.store.models import (
     ModeHistory,
     SpectrumSnapshot,
     User,
-    utcnow,
 )
 from monitor.store.queries import alarm_as_json
-from monitor.store.registry_sync import record_mode_change
+from monitor.store.registry_sync import (
+    mode_from_row,
+    mode_problem,
+    recent_baseline_restarts,
+    usable_modes,
+)
 from monitor.zones import zone_limits
 
 OPEN_STATES = ("active", "acknowledged")
@@ -86,22 +91,22 @@ def list_tokens(s: Session) -> list[dict]:
 # ----------------------------------------------------------------------------- registry
 
 
-def _to_registry(m: Any, modes: Iterable[Any]) -> reg.Machine:
-    # ``m`` and ``modes``: ORM objects or column rows with the same attribute names.
-    return reg.Machine(
-        id=m.id, name=m.name, location=m.location, machine_class=m.machine_class,
-        speed_range_rpm=(m.speed_min_rpm, m.speed_max_rpm),
-        excitation_orders=tuple(float(o) for o in (m.excitation_orders or ())),
-        line_frequency_hz=m.line_frequency_hz,
-        modes=tuple(
-            reg.Mode(name=x.name, frequency_hz=x.frequency_hz, damping_ratio=x.damping_ratio,
-                     amplification_factor=x.amplification_factor,
-                     required_margin_pct=x.required_margin_pct, source=x.source, date=x.date)
-            for x in modes
-        ),
-        limits_mm_s=tuple(m.limits_mm_s) if m.limits_mm_s else None,
-        settings=m.settings or {},
-    )
+def _to_registry(m: Any, modes: Iterable[Any]) -> reg.Machine | None:
+    # ``m`` and ``modes``: ORM objects or column rows with the same attribute names; the
+    # modes within the registry's bounds (usable_modes). None when the machine's own
+    # stored values are outside them (an older release let them in).
+    try:
+        return reg.check_machine(reg.Machine(
+            id=m.id, name=m.name, location=m.location, machine_class=m.machine_class,
+            speed_range_rpm=(m.speed_min_rpm, m.speed_max_rpm),
+            excitation_orders=tuple(float(o) for o in (m.excitation_orders or ())),
+            line_frequency_hz=m.line_frequency_hz,
+            modes=tuple(mode_from_row(x) for x in modes),
+            limits_mm_s=tuple(m.limits_mm_s) if m.limits_mm_s else None,
+            settings=m.settings or {},
+        ))
+    except (reg.RegistryError, TypeError):
+        return None
 
 
 #: Margin tables computed here (when no stored evaluation fits), keyed by everything they
@@ -121,7 +126,9 @@ def margins_for(m: Any, modes: list[Any], speed_hz: float | None) -> list[dict]:
                  for x in modes))
     rows = _MARGIN_CACHE.get(key)
     if rows is None:
-        rows = [r.to_json() for r in margin_table(_to_registry(m, modes), speed_hz, machine_default_pct=default)]
+        machine = _to_registry(m, modes)
+        rows = [] if machine is None else [
+            r.to_json() for r in margin_table(machine, speed_hz, machine_default_pct=default)]
         if len(_MARGIN_CACHE) >= _MARGIN_CACHE_MAX:
             _MARGIN_CACHE.clear()
         _MARGIN_CACHE[key] = rows
@@ -132,7 +139,9 @@ def current_margins(m: Any, modes: list[Any], speed_hz: float | None,
                     evaluation: dict | None, evaluated_at: dt.datetime | None) -> list[dict]:
     """The margin table at the newest reading's speed: the rows the service stored in
     that reading's evaluation when they were computed with the current mode set (same
-    names and frequencies, no mode or machine edited since), else computed here."""
+    names and frequencies, no mode or machine edited since), else computed here. Stored
+    modes outside the registry's bounds take no part (the service leaves them out too)."""
+    modes = usable_modes(modes, m.id)
     stored = evaluation_view(evaluation)["margins"]
     if speed_hz is not None and stored and modes and evaluated_at is not None:
         edited = max([x.updated_at for x in modes if x.updated_at] + ([m.updated_at] if m.updated_at else []),
@@ -290,9 +299,18 @@ def get_machine(s: Session, machine_id: str) -> Machine | None:
 
 
 def mode_json(mo: Mode) -> dict:
+    """A stored mode; ``valid`` false and ``problem`` (one sentence) when its values lie
+    outside the registry's bounds, so neither the service nor the margins use it."""
     d = mo.values()
-    d.update({"id": mo.id, "updated_at": iso(mo.updated_at)})
+    problem = mode_problem(mo, mo.machine_id)
+    d.update({"id": mo.id, "updated_at": iso(mo.updated_at), "valid": problem is None, "problem": problem})
     return d
+
+
+def baseline_restart_json(r: BaselineRestart) -> dict:
+    return {"id": r.id, "machine": r.machine_id, "point": r.point_id, "comment": r.comment,
+            "requested_by": r.requested_by, "requested_at": iso(r.requested_at),
+            "applied_at": iso(r.applied_at)}
 
 
 def _limits_for(m: Machine, p: MeasurementPoint):
@@ -384,6 +402,7 @@ def machine_detail(s: Session, m: Machine) -> dict:
         "margins": current_margins(m, list(modes), speed, newest.evaluation if newest else None,
                                    newest.stored_at if newest else None),
         "latest_spectra": [spectrum_json(sn) for sn in _latest_spectra(s, m.id)],
+        "baseline_restarts": [baseline_restart_json(r) for r in recent_baseline_restarts(s, m.id)],
     }
 
 
@@ -392,28 +411,6 @@ def mode_history(s: Session, machine_id: str, limit: int = 200) -> list[dict]:
                      .order_by(ModeHistory.changed_at.desc(), ModeHistory.id.desc()).limit(limit))
     return [{"id": h.id, "mode": h.mode_name, "change": h.change, "changed_by": h.changed_by,
              "changed_at": iso(h.changed_at), "old": h.old_values, "new": h.new_values} for h in rows]
-
-
-def save_mode(s: Session, m: Machine, values: reg.Mode, user: str, mode: Mode | None) -> Mode:
-    """Create (``mode`` None) or update a mode and record the change in mode_history."""
-    old = mode.values() if mode is not None else None
-    if mode is None:
-        pos = s.scalar(select(func.coalesce(func.max(Mode.position), -1)).where(Mode.machine_id == m.id))
-        mode = Mode(machine_id=m.id, position=int(pos) + 1)
-        s.add(mode)
-    mode.name = values.name
-    mode.frequency_hz = values.frequency_hz
-    mode.damping_ratio = values.damping_ratio
-    mode.amplification_factor = values.amplification_factor
-    mode.required_margin_pct = values.required_margin_pct
-    mode.source = values.source
-    mode.date = values.date
-    mode.updated_at = utcnow()
-    s.flush()
-    record_mode_change(s, m.id, mode.name, "created" if old is None else "updated", user,
-                       old, mode.values(), at=mode.updated_at)
-    s.commit()
-    return mode
 
 
 # ----------------------------------------------------------------------------- trends

@@ -33,7 +33,8 @@ from monitor.state_json import float_in, float_out, value_in, value_out
 #: Severities, lowest first. ``alert`` is ISO 20816's ALERT; ``advisory`` and ``severe``
 #: are our own words for the levels below and above it (docs/alarms.md).
 SEVERITIES = ("advisory", "alert", "severe")
-KINDS = ("resonance_proximity", "amplitude_growth", "mode_shift", "sensor_fault")
+#: ``processing_fault`` is the service's own: a stream whose readings cannot be processed.
+KINDS = ("resonance_proximity", "amplitude_growth", "mode_shift", "sensor_fault", "processing_fault")
 TRANSITIONS = ("raised", "escalated", "de-escalated", "acknowledged", "cleared")
 State = Literal["active", "acknowledged", "cleared"]
 

@@ -38,6 +38,7 @@ _COMMANDS: list[tuple[str, str]] = [
     ("monitor.commands.analyse", "analyse"),
     ("monitor.commands.db", "db"),
     ("monitor.commands.machines", "machines"),
+    ("monitor.commands.baseline", "baseline"),
     ("monitor.commands.users", "user"),
     ("monitor.commands.users", "token"),
     ("monitor.commands.dashboard", "dashboard"),

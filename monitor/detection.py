@@ -55,7 +55,7 @@ from monitor.margins import (
 )
 from monitor.modes import ModeShift
 from monitor.readings import SpeedReading, Waveform
-from monitor.registry import MACHINE_CLASSES, Machine, Registry
+from monitor.registry import Machine, Registry, check_machine
 from monitor.state_json import STATE_FORMAT, float_in, float_out, floats_in, floats_out, value_out
 from monitor.zones import ZoneLimits, zone_limits, zone_of
 
@@ -180,39 +180,13 @@ class DetectionSettings:
 
 
 def validate_machine(machine: Machine) -> DetectionSettings:
-    """Check what detection relies on; ValueError naming the machine, entry and field.
+    """Check what detection relies on (the registry's bounds, :func:`monitor.registry.
+    check_machine`); ValueError naming the machine, entry and field.
 
     Returns the machine's :class:`DetectionSettings`.
     """
-    where = f"machine {machine.id!r}"
-    if machine.machine_class not in MACHINE_CLASSES:
-        raise ValueError(f"{where}: 'class' must be one of {MACHINE_CLASSES}, got {machine.machine_class!r}.")
-    for o in machine.excitation_orders:
-        if not (isinstance(o, int | float) and math.isfinite(o) and o > 0):
-            raise ValueError(f"{where}: 'excitation_orders' must be positive numbers, got {o!r}.")
-    if not machine.excitation_orders:
-        raise ValueError(f"{where}: 'excitation_orders' must not be empty.")
-    lf = machine.line_frequency_hz
-    if lf is not None and not (math.isfinite(lf) and lf > 0):
-        raise ValueError(f"{where}: 'line_frequency_hz' must be a positive frequency, got {lf!r}.")
-    for mode in machine.modes:
-        mw = f"{where}, mode {mode.name!r}"
-        f = mode.frequency_hz
-        if not (isinstance(f, int | float) and math.isfinite(f) and f > 0):
-            raise ValueError(f"{mw}: 'frequency_hz' must be a positive frequency in Hz, got {f!r}.")
-        z = mode.damping_ratio
-        if z is not None and not (math.isfinite(z) and 0.0 < z < 1.0):
-            raise ValueError(f"{mw}: 'damping_ratio' must lie in (0, 1), got {z!r}.")
-        af = mode.amplification_factor
-        if af is not None and not (math.isfinite(af) and af >= 1.0):
-            raise ValueError(f"{mw}: 'amplification_factor' must be >= 1, got {af!r}.")
-        rm = mode.required_margin_pct
-        if rm is not None and not (math.isfinite(rm) and 0.0 <= rm < 100.0):
-            raise ValueError(f"{mw}: 'required_margin_pct' must lie in [0, 100), got {rm!r}.")
-    zone_limits(machine.machine_class, machine.limits_mm_s)
-    for p in machine.points:
-        zone_limits(machine.machine_class, machine.limits_mm_s, p.limits_mm_s)
-    return DetectionSettings.from_mapping(machine.settings, where)
+    check_machine(machine)
+    return DetectionSettings.from_mapping(machine.settings, f"machine {machine.id!r}")
 
 
 @dataclass(frozen=True)

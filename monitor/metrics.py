@@ -2,8 +2,10 @@
 
 Each :class:`ServiceMetrics` has its own ``CollectorRegistry`` so several services in one
 process (tests, the demo) do not collide. :class:`MetricsServer` serves ``/metrics``
-(Prometheus text format) and ``/healthz`` (JSON: connected, in flight, counts) on
-``service.metrics_address``; it is off unless that setting is given.
+(Prometheus text format), ``/healthz`` (JSON: connections, backlog, last commit, retries,
+the problems found; HTTP 503 when not ok) and ``/readyz`` (JSON: ready or not and why;
+503 when not ready) on ``service.metrics_address``; it is off unless that setting is given.
+docs/service.md lists every metric and field.
 """
 
 from __future__ import annotations
@@ -22,6 +24,7 @@ from prometheus_client import (
     Histogram,
     generate_latest,
 )
+from prometheus_client.core import GaugeMetricFamily
 
 #: Processing-time buckets, s: a 16,384-sample analysis takes a few ms.
 TIME_BUCKETS = (0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 10.0)
@@ -29,8 +32,9 @@ TIME_BUCKETS = (0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.
 
 class ServiceMetrics:
     """Counters and gauges: messages in (by kind), rejected (by reason), processing time,
-    in flight, alarm transitions, alarms by state, database retries, batch reruns, publish
-    failures."""
+    in flight, alarm transitions, alarms by state, database retries and errors, batch
+    reruns, readings set aside, publish failures; and, once :meth:`watch_health` is
+    called, the health view's gauges read at each scrape."""
 
     def __init__(self) -> None:
         r = self.registry = CollectorRegistry()
@@ -65,6 +69,15 @@ class ServiceMetrics:
         self.publish_failures = Counter(
             "whirlwatch_publish_failures", "Status or alarm publications that failed.", registry=r
         )
+        self.db_errors = Counter(
+            "whirlwatch_db_errors", "Transient database errors (each retried), by error class.",
+            ["error"], registry=r,
+        )
+        self.processing_errors = Counter(
+            "whirlwatch_processing_errors",
+            "Readings set aside as dead letters because processing them failed, by error class.",
+            ["error"], registry=r,
+        )
 
     def observe(self, seconds: float) -> None:
         self.processing.observe(seconds)
@@ -76,11 +89,58 @@ class ServiceMetrics:
     def text(self) -> bytes:
         return generate_latest(self.registry)
 
+    def watch_health(self, health: Callable[[], Mapping[str, Any]]) -> None:
+        """Expose the health view (``health()``, read once per scrape) as gauges."""
+        self.registry.register(_HealthCollector(health))
+
+
+class _HealthCollector:
+    """Gauges of the health view, computed when scraped (so an idle or stuck worker
+    cannot leave them stale)."""
+
+    def __init__(self, health: Callable[[], Mapping[str, Any]]) -> None:
+        self.health = health
+
+    def describe(self) -> list[Any]:
+        return []  # computed at each scrape; nothing to check at registration
+
+    def collect(self) -> list[GaugeMetricFamily]:
+        h = self.health()
+        db = h.get("database") or {}
+        retries = h.get("retrying") or []
+        age = h.get("last_commit_age_s")
+
+        def gauge(name: str, doc: str, value: float | None) -> GaugeMetricFamily:
+            g = GaugeMetricFamily(name, doc)
+            g.add_metric([], float("nan") if value is None else float(value))
+            return g
+
+        return [
+            gauge("whirlwatch_healthy", "1 while /healthz answers ok, else 0.", 1 if h.get("ok") else 0),
+            gauge("whirlwatch_broker_connected", "1 while connected to the broker (inbound and outbound).",
+                  1 if h.get("connected") and h.get("publisher_connected") else 0),
+            gauge("whirlwatch_database_up", "1 while the last database probe answered in time, else 0.",
+                  1 if db.get("ok") else 0),
+            gauge("whirlwatch_backlog", "Messages received and not yet acknowledged.", h.get("backlog", 0)),
+            gauge("whirlwatch_waiting_seconds",
+                  "Seconds readings have waited without a commit (0 when none wait).", h.get("waiting_s", 0)),
+            gauge("whirlwatch_last_commit_age_seconds",
+                  "Seconds since readings were last committed (NaN before the first).", age),
+            gauge("whirlwatch_db_retry_attempts", "Attempts of the oldest database retry under way (0: none).",
+                  max((r["attempts"] for r in retries), default=0)),
+            gauge("whirlwatch_db_retry_seconds", "Age of the oldest database retry under way, s (0: none).",
+                  max((r["for_s"] for r in retries), default=0)),
+        ]
+
 
 class MetricsServer:
-    """``/metrics`` and ``/healthz`` on ``host:port`` in a daemon thread."""
+    """``/metrics``, ``/healthz`` and ``/readyz`` on ``host:port`` in a daemon thread.
 
-    def __init__(self, metrics: ServiceMetrics, health: Callable[[], dict[str, Any]], address: str) -> None:
+    ``health()`` must give a dict with ``ok``; ``ready()`` (optional) one with ``ready``;
+    either answers 503 when its flag is false."""
+
+    def __init__(self, metrics: ServiceMetrics, health: Callable[[], dict[str, Any]], address: str,
+                 ready: Callable[[], dict[str, Any]] | None = None) -> None:
         host, _, port = address.rpartition(":")
         outer = self
 
@@ -92,6 +152,10 @@ class MetricsServer:
                     h = health()
                     body = json.dumps(h, default=str).encode()
                     ctype, code = "application/json", 200 if h.get("ok") else 503
+                elif self.path.startswith("/readyz") and ready is not None:
+                    h = ready()
+                    body = json.dumps(h, default=str).encode()
+                    ctype, code = "application/json", 200 if h.get("ready") else 503
                 else:
                     body, ctype, code = b"not found\n", "text/plain", 404
                 self.send_response(code)

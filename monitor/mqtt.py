@@ -6,10 +6,12 @@ at-least-once delivery with bounded memory (docs/mqtt.md is the contract):
 - :class:`MessageSource` subscribes at QoS 1 with a persistent session (MQTT 5: clean start
   off and a session expiry; MQTT 3.1.1: clean session off), hands each message to one
   worker thread through a queue bounded by ``receive_maximum``, and sends the PUBACK only
-  when the consumer calls :meth:`MessageSource.ack` after committing its results. The
-  broker stops sending once ``receive_maximum`` messages are unacknowledged, so a slow
-  consumer holds back the broker, not our memory. It reconnects with back-off and
-  subscribes again on every connection.
+  when the consumer calls :meth:`MessageSource.ack` after committing its results. At most
+  ``receive_maximum`` messages are handed off and unacknowledged at once: the broker is
+  asked for that (MQTT 5 Receive Maximum) and the source enforces it itself, because a
+  broker may send more (Mosquitto 2.0.11 does while messages are queued); the network
+  thread then waits, so a slow consumer holds back the broker, not our memory. It
+  reconnects with back-off and subscribes again on every connection.
 - :class:`Publisher` publishes the retained machine status and the alarm events at QoS 1,
   either waiting for the broker's acknowledgement or handing them to paho's bounded
   outbound queue (sent and resent until acknowledged) so the caller does not wait.
@@ -42,6 +44,8 @@ from paho.mqtt.enums import CallbackAPIVersion
 from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
 from paho.mqtt.subscribeoptions import SubscribeOptions
+
+from monitor.config import broker_default
 
 log = logging.getLogger(__name__)
 
@@ -121,13 +125,18 @@ class MqttSettings:
     protocol : str
         ``"5"`` (default) or ``"3.1.1"``.
     session_expiry_s : int
-        MQTT 5: how long the broker keeps the session while we are away, s.
+        MQTT 5: how long the broker keeps the session while we are away, s (Mosquitto
+        cuts it to its ``persistent_client_expiration`` when that is shorter).
     keepalive_s : int
         Keep-alive interval, s.
     receive_maximum : int
-        Most unacknowledged messages in flight to us (MQTT 5 Receive Maximum) and the
-        bound of the hand-off queue. With MQTT 3.1.1 the broker's own in-flight limit
-        (Mosquitto ``max_inflight_messages``) applies instead: keep it at or below this.
+        Most received, unacknowledged messages held at once: announced as the MQTT 5
+        Receive Maximum and enforced by :class:`MessageSource` whatever the broker sends.
+        With MQTT 3.1.1 the broker's own in-flight limit (Mosquitto
+        ``max_inflight_messages``) decides what it sends: keep that at or below this.
+
+    Defaults that the service file also sets are those of the settings registry
+    (:func:`monitor.config.broker_default`), so the two cannot drift apart.
     prefix : str
         Topic prefix (one or more topic levels).
     share_group : str or None
@@ -136,21 +145,21 @@ class MqttSettings:
         Reconnect back-off, doubling from min to max, s.
     """
 
-    url: str = "mqtt://127.0.0.1:1883"
+    url: str = broker_default("url")
     username: str | None = None
     password: str | None = field(default=None, repr=False)
     ca_file: str | None = None
     cert_file: str | None = None
     key_file: str | None = None
     client_id: str = "whirlwatch"
-    protocol: str = "5"
-    session_expiry_s: int = 7 * 86400
-    keepalive_s: int = 30
-    receive_maximum: int = 16
-    prefix: str = "whirlwatch"
+    protocol: str = broker_default("protocol")
+    session_expiry_s: int = broker_default("session_expiry_s")
+    keepalive_s: int = broker_default("keepalive_s")
+    receive_maximum: int = broker_default("receive_maximum")
+    prefix: str = broker_default("topic_prefix")
     share_group: str | None = None
     reconnect_min_s: float = 1.0
-    reconnect_max_s: float = 30.0
+    reconnect_max_s: float = broker_default("reconnect_max_s")
 
     def __post_init__(self) -> None:
         address = parse_broker_url(self.url)
@@ -286,7 +295,10 @@ class SourceStats:
     stale_not_acked: int = 0
     connects: int = 0
     queue_high_water: int = 0
+    #: Messages handed to the worker and not yet acknowledged or given up (at most
+    #: ``receive_maximum``), and the most there ever were at once.
     in_flight: int = 0
+    in_flight_high_water: int = 0
 
 
 class MessageSource:
@@ -305,6 +317,10 @@ class MessageSource:
         self.stats = SourceStats()
         self._queue: queue.Queue[InboundMessage] = queue.Queue(maxsize=settings.receive_maximum)
         self._lock = threading.Lock()
+        # Messages handed off and not yet released (acknowledged, dropped as stale, or
+        # given up after a handler error), by id(): each holds one of receive_maximum slots.
+        self._held: dict[int, InboundMessage] = {}
+        self._room = threading.Condition(self._lock)
         self._connection = 0
         self._stopping = threading.Event()
         self._subscribed = threading.Event()
@@ -313,6 +329,10 @@ class MessageSource:
         self._batch_handler: Callable[[list[InboundMessage]], None] | None = None
         self._max_batch = 1
         self.last_error: str | None = None
+        # Monotonic time since when messages have waited without one being acknowledged
+        # (None while none waits): how long the consumer has made no progress.
+        self._waiting_since: float | None = None
+        self.disconnected_at: float | None = None  # epoch s of the last connection loss
         self._client = _make_client(
             settings, settings.client_id, manual_ack=True, persistent=True
         )
@@ -331,15 +351,18 @@ class MessageSource:
         with self._lock:
             self._connection += 1
             self.stats.connects += 1
+            self.last_error = None
+            self.disconnected_at = None
         if flags.session_present:
             # The broker will resend what we had not acknowledged: the queued copies of the
             # old connection would only be handled twice.
             while True:
                 try:
-                    self._queue.get_nowait()
+                    stale = self._queue.get_nowait()
                 except queue.Empty:
                     break
                 self.stats.stale_dropped += 1
+                self._release(stale)
         log.info(
             "mqtt connected to %s (session present: %s)", self.settings.url, flags.session_present
         )
@@ -361,6 +384,9 @@ class MessageSource:
     def _on_disconnect(self, _c: paho.Client, _u: Any, _f: Any, reason: Any, _p: Any) -> None:
         self._subscribed.clear()
         if not self._stopping.is_set():
+            with self._lock:
+                self.disconnected_at = time.time()
+                self.last_error = f"connection lost: {reason}"
             log.warning("mqtt connection lost (%s); reconnecting", reason)
 
     def _on_message(self, _c: paho.Client, _u: Any, msg: paho.MQTTMessage) -> None:
@@ -375,11 +401,22 @@ class MessageSource:
             retain=bool(msg.retain),
             connection=self._connection,
         )
-        with self._lock:
+        # A slot per unacknowledged message, whatever the broker sends: Mosquitto 2.0.11
+        # was measured to send a whole new Receive Maximum of queued messages after every
+        # PUBACK, and a 3.1.1 broker applies only its own limit. Waiting here holds this one
+        # message on the network thread and leaves the rest in TCP and at the broker.
+        with self._room:
+            while len(self._held) >= self.settings.receive_maximum:
+                if self._stopping.is_set():
+                    return  # left unacknowledged: redelivered to the next session
+                self._room.wait(0.1)
+            self._held[id(item)] = item
             self.stats.received += 1
-            self.stats.in_flight += 1
-        # The broker sends at most receive_maximum unacknowledged messages, so the queue has
-        # room; if a 3.1.1 broker allows more in flight, waiting here pushes back on TCP.
+            if self._waiting_since is None:
+                self._waiting_since = time.monotonic()
+            self.stats.in_flight = len(self._held)
+            self.stats.in_flight_high_water = max(self.stats.in_flight_high_water, self.stats.in_flight)
+        # The slots guarantee room; the loop only guards a stop.
         while not self._stopping.is_set():
             try:
                 self._queue.put(item, timeout=0.1)
@@ -407,6 +444,7 @@ class MessageSource:
                 except Exception:
                     self.stats.handler_errors += 1
                     log.exception("handler failed on %s; left unacknowledged", item.topic)
+                    self._release(item)
                 continue
             # Group commit: take what is already waiting, never wait for more, so a lone
             # message is handled at once and a backlog is handled max_batch at a time.
@@ -421,6 +459,8 @@ class MessageSource:
             except Exception:
                 self.stats.handler_errors += 1
                 log.exception("handler failed on %d messages; left unacknowledged", len(batch))
+                for failed in batch:
+                    self._release(failed)
 
     # -- public
 
@@ -459,6 +499,15 @@ class MessageSource:
     def connected(self) -> bool:
         return self._client.is_connected()
 
+    def waiting_s(self, now_m: float | None = None) -> float:
+        """Seconds messages have waited without one being acknowledged (0 while none
+        waits): received-but-unacknowledged messages that make no progress."""
+        with self._lock:
+            since = self._waiting_since
+        if since is None:
+            return 0.0
+        return max(0.0, (time.monotonic() if now_m is None else now_m) - since)
+
     @property
     def queue_size(self) -> int:
         """Messages handed off but not yet taken by the worker."""
@@ -471,16 +520,27 @@ class MessageSource:
         redelivers it, and the idempotent store makes the second handling a no-op.
         """
         with self._lock:
-            self.stats.in_flight = max(0, self.stats.in_flight - 1)
             stale = message.connection != self._connection
             if stale:
                 self.stats.stale_not_acked += 1
             else:
                 self.stats.acked += 1
-        if stale or message.qos == 0:
-            return False
-        rc = self._client.ack(message.mid, message.qos)
-        return rc == paho.MQTT_ERR_SUCCESS
+        try:
+            if stale or message.qos == 0:
+                return False
+            rc = self._client.ack(message.mid, message.qos)
+            return rc == paho.MQTT_ERR_SUCCESS
+        finally:
+            self._release(message)  # after the PUBACK is queued, so the next one follows it
+
+    def _release(self, message: InboundMessage) -> None:
+        """Free the slot ``message`` holds (once; later calls do nothing)."""
+        with self._room:
+            if self._held.pop(id(message), None) is not None:
+                self.stats.in_flight = len(self._held)
+                # Progress: the wait restarts for the messages still held, or ends.
+                self._waiting_since = time.monotonic() if self._held else None
+                self._room.notify()
 
     def stop(self, timeout_s: float = 10.0) -> None:
         """Stop taking messages, let the worker finish those handed off, then disconnect.
@@ -529,6 +589,10 @@ class Publisher:
 
     def _on_disconnect(self, _c: paho.Client, _u: Any, _f: Any, _r: Any, _p: Any) -> None:
         self._connected.clear()
+
+    @property
+    def connected(self) -> bool:
+        return self._connected.is_set()
 
     def _on_publish(self, _c: paho.Client, _u: Any, mid: int, _r: Any, _p: Any) -> None:
         with self._pending_lock:

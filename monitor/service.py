@@ -20,8 +20,16 @@ Per batch of messages (those already waiting in the hand-off queue, at most
 
 A crash at any instant leaves either nothing or everything of a batch committed, and its
 messages unacknowledged until it is: the broker redelivers, the existence check skips the
-replay. Database errors are retried with back-off while the service runs; the messages are
-left unacknowledged when it stops.
+replay.
+
+Failures (docs/service.md, "Failures"): a *transient* error (:func:`is_transient`: the
+database unreachable, timed out, locked or full) is retried with back-off while the
+service runs, nothing is acknowledged meanwhile, and health and metrics say so; the
+messages are left unacknowledged when it stops. Any other error is *deterministic* (the
+same input fails the same way again): the batch is split in halves until the reading
+that fails is alone, the others are committed, and that one is set aside as a dead letter
+(reason ``processing_error``); a stream whose readings keep failing raises a
+``processing_fault`` alarm (docs/alarms.md), cleared by its next reading processed.
 
 Exceptions::
 
@@ -35,17 +43,20 @@ import datetime as dt
 import gc
 import json
 import logging
+import math
 import socket
 import sys
 import threading
 import time
+import warnings
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any
 
 from sqlalchemy import and_, bindparam, event, func, select
+from sqlalchemy import exc as sa_exc
 
-from monitor.alarms import Transition, severity_rank
+from monitor.alarms import AlarmKey, Transition, severity_rank
 from monitor.analysis import ReadingAnalysis, analyse_waveform
 from monitor.config import Settings
 from monitor.detection import (
@@ -58,15 +69,15 @@ from monitor.ingest import SPEED_STREAM, IngestLimits, Rejected, RejectionCounte
 from monitor.metrics import MetricsServer, ServiceMetrics
 from monitor.mqtt import InboundMessage, MessageSource, MqttError, MqttSettings, Publisher
 from monitor.readings import SpeedReading, Waveform
-from monitor.registry import Registry, load_registry
+from monitor.registry import Registry
+from monitor.registry_live import follow, start_registry
 from monitor.store import (
     Store,
     add_dead_letter,
     apply_retention,
-    export_registry,
-    import_registry,
     record_transitions,
 )
+from monitor.store.db import redact
 from monitor.store.models import (
     Alarm,
     DetectorState,
@@ -98,6 +109,25 @@ DB_RETRY_MAX_S = 10.0
 #: Most messages taken from the hand-off queue into one transaction (group commit).
 MAX_BATCH = 32
 
+#: Health (docs/service.md, "Health"): readings waiting this long without a commit, or a
+#: database retry loop this old, make the service unhealthy, s.
+STALL_S = 15.0
+#: The database is asked ``SELECT`` this often, s; a question unanswered this long makes
+#: the service unhealthy before the connection's own timeouts end it, s.
+PROBE_EVERY_S = 5.0
+PROBE_LIMIT_S = 5.0
+#: A PostgreSQL statement, commit or ping without an answer this long has its connection
+#: closed (store/db.py SilenceWatchdog), s; retention's deletes may take longer.
+SILENCE_LIMIT_S = 15.0
+RETENTION_SILENCE_LIMIT_S = 900.0
+#: Acknowledgements made in the dashboard are looked for this often, s.
+ACK_SYNC_S = 1.0
+#: A failure that keeps repeating is logged again at most this often, s.
+LOG_REPEAT_S = 30.0
+
+#: Alarm kind of a stream whose readings keep failing to be processed (docs/alarms.md).
+PROCESSING_FAULT = "processing_fault"
+
 
 class ServiceError(RuntimeError):
     """The service cannot start; the message says why in one sentence."""
@@ -127,12 +157,111 @@ class JsonLineFormatter(logging.Formatter):
 
 
 def configure_logging(level: str = "INFO", stream: Any = None) -> None:
-    """Send the service's logs to ``stream`` (stderr) as JSON lines at ``level``."""
+    """Send the service's logs to ``stream`` (stderr) as JSON lines at ``level``.
+
+    Python warnings (numpy's RuntimeWarnings on overflow, invalid values, ...) and
+    exceptions that end a thread or the program go through the same logger, so the
+    stream holds nothing but JSON lines."""
     handler = logging.StreamHandler(stream or sys.stderr)
     handler.setFormatter(JsonLineFormatter())
     root = logging.getLogger()
     root.handlers[:] = [handler]
     root.setLevel(level.upper())
+    warnings.showwarning = _log_warning
+    sys.excepthook = _log_uncaught
+    threading.excepthook = _log_thread_exception
+
+
+def _log_warning(message: Warning | str, category: type[Warning], filename: str, lineno: int,
+                 file: Any = None, line: str | None = None) -> None:
+    """``warnings.showwarning`` replaced: one JSON log record per warning shown."""
+    logging.getLogger("py.warnings").warning(str(message), extra={
+        "category": category.__name__, "where": f"{filename}:{lineno}"})
+
+
+def _log_uncaught(exc_type: type[BaseException], exc: BaseException, tb: Any) -> None:
+    logging.getLogger("whirlwatch").critical("uncaught exception", exc_info=(exc_type, exc, tb))
+
+
+def _log_thread_exception(args: threading.ExceptHookArgs) -> None:
+    if args.exc_type is SystemExit:
+        return
+    logging.getLogger("whirlwatch").error(
+        "thread ended by an exception", extra={"thread_name": args.thread.name if args.thread else None},
+        exc_info=(args.exc_type, args.exc_value, args.exc_traceback))  # type: ignore[arg-type]
+
+
+# ----------------------------------------------------------------------------- failures
+
+#: SQLSTATE classes (PostgreSQL manual, Appendix A "PostgreSQL Error Codes") of errors that
+#: do not depend on the data sent: connection (08), transaction rollback such as deadlock
+#: or serialization (40), insufficient resources such as disk full (53), object not in
+#: prerequisite state such as lock not available (55), operator intervention such as
+#: query canceled or server shutdown (57), system errors (58), configuration (F0),
+#: invalid authorization (28), invalid catalog name (3D), internal errors such as data
+#: corruption (XX) and syntax or access rule violations (42: a missing table or privilege,
+#: which no reading causes and a split would wrongly blame on every reading in turn).
+TRANSIENT_SQLSTATE_CLASSES = frozenset({"08", "28", "3D", "40", "42", "53", "55", "57", "58", "F0", "XX"})
+
+
+def is_transient(exc: BaseException) -> bool:
+    """True for an error that says nothing about the data (the database unreachable,
+    timed out, locked, out of disk or misconfigured): retry the same work later. False for
+    a deterministic one (the same reading fails the same way again): set it aside.
+
+    SQLAlchemy's OperationalError, InterfaceError, DisconnectionError and pool TimeoutError
+    (and any error it marks as a disconnect), a bare DatabaseError (SQLite's "database disk
+    image is malformed": the file, not the reading), operating-system errors, and database
+    errors whose SQLSTATE class is in :data:`TRANSIENT_SQLSTATE_CLASSES` are transient.
+    DataError, IntegrityError and everything else are deterministic."""
+    if isinstance(exc, sa_exc.DBAPIError):
+        if exc.connection_invalidated:
+            return True
+        state = getattr(exc.orig, "sqlstate", None)
+        if isinstance(state, str) and len(state) == 5:
+            return state[:2] in TRANSIENT_SQLSTATE_CLASSES
+    if isinstance(exc, sa_exc.OperationalError | sa_exc.InterfaceError | sa_exc.DisconnectionError
+                  | sa_exc.TimeoutError | OSError | MemoryError):
+        return True
+    if type(exc) is sa_exc.DatabaseError:
+        return True
+    # The pool's words when every reconnect of a checkout failed (sqlalchemy.pool.base).
+    return isinstance(exc, sa_exc.InvalidRequestError) and str(exc) == "This connection is closed"
+
+
+def short_cause(exc: BaseException, limit: int = 300) -> str:
+    """One line naming an error: its class and first line (the driver's own message for
+    a database error, without the SQL and parameters SQLAlchemy appends), passwords
+    redacted, at most ``limit`` characters, printable in any log or column."""
+    inner = exc.orig if isinstance(exc, sa_exc.DBAPIError) and exc.orig is not None else exc
+    first = (str(inner).strip().splitlines() or [""])[0]
+    text = f"{type(inner).__name__}: {first}" if first else type(inner).__name__
+    return printable(redact(text))[:limit]
+
+
+def printable(text: str) -> str:
+    """``text`` safe for any database text column and log: characters UTF-8 cannot carry
+    (lone surrogates) and NUL written as backslash escapes."""
+    return text.encode("utf-8", "backslashreplace").decode("utf-8").replace("\x00", "\\x00")
+
+
+@dataclass
+class RetryState:
+    """A unit of database work being retried after transient errors."""
+
+    since: float  # epoch s of the first failure
+    since_m: float  # the same on the monotonic clock
+    attempts: int = 0
+    error_class: str = ""
+    error: str = ""
+    logged_m: float = 0.0
+
+    def to_json(self, now_m: float) -> dict[str, Any]:
+        return {
+            "attempts": self.attempts, "error_class": self.error_class, "error": self.error,
+            "since": dt.datetime.fromtimestamp(self.since, dt.UTC).isoformat().replace("+00:00", "Z"),
+            "for_s": round(now_m - self.since_m, 1),
+        }
 
 
 # ----------------------------------------------------------------------------- outcome
@@ -142,7 +271,7 @@ def configure_logging(level: str = "INFO", stream: Any = None) -> None:
 class Outcome:
     """What became of one message (returned by :meth:`Service.handle` for tests/benches)."""
 
-    kind: str  # "waveform", "speed", "rejected", "duplicate"
+    kind: str  # "waveform", "speed", "rejected", "duplicate", "processing_error"
     machine: str | None = None
     reason: str | None = None
     events: list[dict[str, Any]] = field(default_factory=list)
@@ -281,7 +410,8 @@ class Service:
         self.prefix = settings.broker.topic_prefix
         self.rejections = RejectionCounter(60.0)
         self.metrics = ServiceMetrics()
-        self.store = Store.open(settings.database.url, busy_timeout_ms=settings.database.busy_timeout_ms)
+        self.store = Store.open(settings.database.url, busy_timeout_ms=settings.database.busy_timeout_ms,
+                                silence_limit_s=SILENCE_LIMIT_S)
         self._pg = self.store.engine.dialect.name == "postgresql"
         self._sqlite = self.store.engine.dialect.name == "sqlite"
         if self._sqlite:
@@ -305,6 +435,17 @@ class Service:
         self._lock = threading.RLock()
         self._stop = threading.Event()
         self._periodic: threading.Thread | None = None
+        self._prober: threading.Thread | None = None
+        self._watcher: threading.Thread | None = None
+        # Health (docs/service.md): database retries under way (by thread), the last
+        # commit of readings, the database probe.
+        self._health_lock = threading.Lock()
+        self._retries: dict[str, RetryState] = {}
+        self._last_commit: tuple[float, float] | None = None  # (epoch s, monotonic s)
+        self._probe: dict[str, Any] = {"ok": None, "error": None, "at_m": None, "started_m": None}
+        self._started = False
+        self._set_aside_count = 0
+        self._job_errors: dict[str, float] = {}  # periodic job -> monotonic time last logged
         self.source: MessageSource | None = None
         self.publisher: Publisher | None = None
         self.metrics_server: MetricsServer | None = None
@@ -313,17 +454,11 @@ class Service:
     # -- start-up
 
     def _load_registry(self) -> Registry:
-        path = self.settings.service.machines_file
+        # The file adds and updates, never deletes (monitor/registry_live.py).
         try:
-            if path:
-                registry = load_registry(path)
-                with self.store.transaction() as s:
-                    import_registry(s, registry, user="service start")
-            with self.store.session() as s:
-                registry = export_registry(s)
+            registry, self._registry_follower = start_registry(self.store, self.settings.service.machines_file)
         except ValueError as exc:
             raise ServiceError(str(exc)) from exc
-        registry = Registry(machines=tuple(m for m in registry.machines))
         if not registry.machines:
             raise ServiceError(
                 "the database holds no machines; import a registry with `whirlwatch machines "
@@ -377,6 +512,7 @@ class Service:
             if self._versions.get(machine) != v:
                 self._reload(s, machine, v)
         evaluators = {m: self._evaluators[m] for m in machines}
+        self._registry_follower.apply_baseline_restarts(s, evaluators, self._versions, self.clock())
         active = {
             (m, a.id): ev for m, ev in evaluators.items() for a in ev.engine.active() if a.state == "active"
         }
@@ -395,6 +531,30 @@ class Service:
             out.setdefault(machine, []).append(ev.acknowledge(ref, user or "unknown", comment or "", when))
         return evaluators, out
 
+    def _follow_registry(self) -> None:
+        """Registry edits made since the last batch, live (monitor/registry_live.py)."""
+        with self._lock:  # the worker and the periodic thread both follow
+            change = self._registry_follower.poll()
+            if change is None:
+                return
+            self.registry, self._evaluators = follow(self.registry, self._evaluators, change)
+            for m in self.registry.machines:
+                self._views.setdefault(m.id, _MachineView())
+                if m.id not in self._evaluators:
+                    self._versions[m.id] = None  # loaded from the store on first use
+
+    def apply_registry_requests(self) -> None:
+        """Registry edits, and baseline restarts of machines no batch has touched since
+        they were asked for (the periodic loop runs this)."""
+        self._follow_registry()
+        known = self.registry.by_id()
+        machines = [m for m in self._registry_follower.pending_machines() if m in known]
+        if machines:
+            def work() -> None:
+                with self._lock, self.store.write_transaction() as s:
+                    self._take_states(s, machines, acks=False)
+            self._retry(work, machines)
+
     def _reload(self, s: Any, machine: str, version: int) -> None:
         state = s.execute(
             select(DetectorState.state).where(DetectorState.machine_id == machine)
@@ -410,6 +570,20 @@ class Service:
         }
         if not active:
             return {}
+        rows = s.execute(self._acks_statement(), {
+            "machines": sorted({m for m, _ in active}), "refs": sorted({r for _, r in active})}).all()
+        out: dict[str, list[Transition]] = {}
+        for machine, ref, user, at, comment in rows:
+            ev = active.pop((machine, ref), None)
+            if ev is None:
+                continue
+            when = at.timestamp() if at is not None else self.clock()
+            out.setdefault(machine, []).append(ev.acknowledge(ref, user or "unknown", comment or "", when))
+        return out
+
+    def _acks_statement(self) -> Any:
+        """Acknowledged alarms among given machines and alarm refs (``machines``,
+        ``refs``): machine, ref, user, time, comment. Built once."""
         if self._acks_stmt is None:
             t = Alarm.__table__.c
             self._acks_stmt = (
@@ -421,16 +595,7 @@ class Service:
                 )
                 .order_by(t.id)
             )
-        rows = s.execute(self._acks_stmt, {
-            "machines": sorted({m for m, _ in active}), "refs": sorted({r for _, r in active})}).all()
-        out: dict[str, list[Transition]] = {}
-        for machine, ref, user, at, comment in rows:
-            ev = active.pop((machine, ref), None)
-            if ev is None:
-                continue
-            when = at.timestamp() if at is not None else self.clock()
-            out.setdefault(machine, []).append(ev.acknowledge(ref, user or "unknown", comment or "", when))
-        return out
+        return self._acks_stmt
 
     def _save_states(self, s: Any, touched: dict[str, float]) -> None:
         """The new state of every machine the batch touched (``{machine: latest ts}``),
@@ -479,6 +644,7 @@ class Service:
         message; a machine's status rides on the last of its outcomes that has one.
         """
         t0 = time.perf_counter()
+        self._follow_registry()
         now = self.clock()
         pending: dict[tuple[str, str], float] = {}
 
@@ -519,16 +685,7 @@ class Service:
                 item.check = dup or (stored is not None and r.ts <= stored)
             items.append(item)
 
-        machines = sorted({it.reading.machine for it in items if it.reading is not None})
-        attempts = [0]
-
-        def work() -> None:
-            # A run after a failed one (a reading raced in, a database error) checks
-            # every reading of the batch against the store.
-            attempts[0] += 1
-            self._commit(items, check_all=attempts[0] > 1)
-
-        self._retry(work, machines)
+        self._commit_isolating(items)
         for it in items:
             r, out = it.reading, it.outcome
             assert out is not None
@@ -563,25 +720,196 @@ class Service:
                 "machine": w.machine, "point": w.point, "error": f"{type(exc).__name__}: {exc}"[:200]})
             return None
 
+    def _commit_isolating(self, items: list[_Item], *, check_all: bool = False) -> None:
+        """Commit ``items`` in one transaction (:meth:`_commit`, retried while the errors
+        are transient); when it fails deterministically, split it in halves and commit
+        each the same way, so the reading that fails is found alone (at most
+        2 log2(batch) extra transactions) and set aside (:meth:`_set_aside`), while every
+        other reading is committed in arrival order."""
+        machines = sorted({it.reading.machine for it in items if it.reading is not None})
+        attempts = [0]
+
+        def work() -> None:
+            # A run after a failed one (a reading raced in, a database error) checks
+            # every reading of the batch against the store.
+            attempts[0] += 1
+            views = self._copy_views(machines)
+            try:
+                self._commit(items, check_all=check_all or attempts[0] > 1)
+            except BaseException:
+                self._views.update(views)  # what a failed run saw was never committed
+                raise
+
+        try:
+            self._retry(work, machines)
+            return
+        except Exception as exc:
+            if is_transient(exc) or self._stop.is_set():
+                raise  # left unacknowledged: redelivered to the next session
+            failure = exc
+        if len(items) == 1:
+            self._set_aside(items[0], failure)
+            return
+        log.debug("batch failed; splitting it", extra={"messages": len(items), "error": short_cause(failure)})
+        half = (len(items) + 1) // 2
+        self._commit_isolating(items[:half], check_all=True)
+        self._commit_isolating(items[half:], check_all=True)
+
+    def _set_aside(self, it: _Item, failure: BaseException) -> None:
+        """Keep a message whose processing fails deterministically as a dead letter
+        (reason ``processing_error``, the short cause as detail), count it, log it once,
+        and feed its stream's ``processing_fault`` alarm (:meth:`_processing_failed`)."""
+        cause = short_cause(failure)
+        r = it.reading
+        machines = [r.machine] if r is not None else []
+
+        def letter(s: Any) -> int:
+            return add_dead_letter(s, topic=printable(it.topic), reason="processing_error",
+                                   detail=cause, payload=it.payload)
+
+        def with_alarm() -> Outcome:
+            assert r is not None
+            with self._lock, self.store.write_transaction() as s:
+                letter_id = letter(s)
+                ev = self._take_states(s, machines, acks=False)[0][r.machine]
+                trans = self._processing_failed(ev, r, cause, letter_id)
+                ids = record_transitions(s, trans) if trans else []
+                self._save_states(s, {r.machine: r.ts})
+                out = Outcome("processing_error", machine=r.machine, reason="processing_error",
+                              events=self._events(s, trans, ids, []) if trans else [],
+                              status=self._status(r.machine, ev) if trans else None)
+            self._saved(machines)
+            return out
+
+        def letter_only() -> Outcome:
+            with self._lock, self.store.write_transaction() as s:
+                letter(s)
+            return Outcome("processing_error", machine=r.machine if r else None, reason="processing_error")
+
+        steps = ([with_alarm] if r is not None else []) + [letter_only]
+        out: Outcome | None = None
+        for step in steps:
+            try:
+                out = self._retry(step, machines)
+                break
+            except Exception as exc:
+                if is_transient(exc) or self._stop.is_set():
+                    raise
+                log.error("could not record a processing error in full", extra={
+                    "topic": printable(it.topic)[:200], "cause": cause, "error": short_cause(exc)})
+        if out is None:
+            # Not even its dead letter could be stored: acknowledged without a trace in
+            # the store, so it cannot stop the stream; this log line is its record.
+            out = Outcome("processing_error", machine=r.machine if r else None, reason="processing_error")
+        it.outcome = out
+        self._set_aside_count += 1
+        self.metrics.processing_errors.labels(error=cause.split(":", 1)[0]).inc()
+        log.error("reading set aside", extra={
+            "topic": printable(it.topic)[:200], "machine": r.machine if r else None,
+            "point": getattr(r, "point", None), "reading_ts": r.ts if r else None, "cause": cause})
+
+    # -- processing_fault alarms
+
+    @staticmethod
+    def _fault_key(machine: str, reading: Waveform | SpeedReading) -> AlarmKey:
+        """The ``processing_fault`` alarm key of a reading's stream: its point's waveforms,
+        or its machine's speed messages (docs/alarms.md)."""
+        if isinstance(reading, Waveform):
+            return AlarmKey(machine, reading.point, PROCESSING_FAULT, "waveform")
+        return AlarmKey(machine, None, PROCESSING_FAULT, "speed")
+
+    def _processing_failed(self, ev: MachineEvaluator, r: Waveform | SpeedReading, cause: str,
+                           letter_id: int) -> list[Transition]:
+        """One more reading of ``r``'s stream that could not be processed: raised (alert)
+        after the machine's persistence count of such readings in a row."""
+        key = self._fault_key(r.machine, r)
+        evidence = {
+            "cause": cause, "failures": ev.engine.persistence, "dead_letter_id": letter_id,
+            "reading_ts": dt.datetime.fromtimestamp(r.ts, dt.UTC).isoformat().replace("+00:00", "Z"),
+            "message": "readings of this stream cannot be processed and are kept as dead letters; "
+                       "the machine is not watched here until they can",
+        }
+        rid = printable(r.reading_id) if isinstance(r, Waveform) and r.reading_id else None
+        return ev.engine.update(key, r.ts, "alert", "alert", evidence, rid)
+
+    def _processing_resumed(self, evaluators: dict[str, MachineEvaluator], fresh: list[_Item]) -> None:
+        """A stream with a ``processing_fault`` alarm (or failures counted towards one)
+        whose reading was processed in this batch: the alarm clears at once (or the count
+        restarts); the transition rides on that stream's last reading of the batch."""
+        for ev in evaluators.values():
+            keys = [k for k in ev.engine.alarm_keys() if k.kind == PROCESSING_FAULT]
+            for key in keys:
+                last = next((it for it in reversed(fresh) if it.reading is not None
+                             and self._fault_key(it.reading.machine, it.reading) == key), None)
+                if last is None:
+                    continue
+                r = last.reading
+                rid = r.reading_id if isinstance(r, Waveform) else None
+                last.transitions.extend(ev.engine.update(
+                    key, r.ts, None, None, {"message": "readings of this stream are processed again"},
+                    rid, persistence=1))
+
     def _retry(self, work: Callable[[], Any], machines: list[str]) -> Any:
-        """Run a database unit of work until it commits; back off between attempts."""
+        """Run a database unit of work until it commits, backing off between attempts
+        while its errors are transient (:func:`is_transient`); a deterministic error, or
+        any error once the service is stopping, is raised to the caller."""
         delay = DB_RETRY_MIN_S
         while True:
             try:
-                return work()
+                out = work()
             except _Raced:
                 # Another process stored one of these readings after our existence check:
                 # run again; the check now sees it.
                 self._forget(machines)
                 self.metrics.batch_reruns.inc()
+                continue
             except Exception as exc:
                 self._forget(machines)
-                if self._stop.is_set():
+                if not is_transient(exc) or self._stop.is_set():
+                    self._retry_ended(failed=True)
                     raise
-                log.warning("database work failed; retrying", extra={"error": str(exc)[:300], "retry_in_s": delay})
-                self.metrics.db_retries.inc()
-                time.sleep(delay)
+                try:
+                    self._retry_failed(exc, delay)
+                except Exception:  # bookkeeping must never turn a retry into a set-aside
+                    log.exception("recording a database retry failed")
+                self._stop.wait(delay)
                 delay = min(delay * 2, DB_RETRY_MAX_S)
+                continue
+            self._retry_ended(failed=False)
+            return out
+
+    def _retry_failed(self, exc: BaseException, delay: float) -> None:
+        """Record a transient failure of this thread's unit of work for health and
+        metrics; log the first, a change of error, and a reminder every LOG_REPEAT_S."""
+        name = threading.current_thread().name
+        now_m = time.monotonic()
+        cause = short_cause(exc)
+        with self._health_lock:
+            st = self._retries.get(name)
+            if st is None:
+                st = self._retries[name] = RetryState(since=time.time(), since_m=now_m)
+            st.attempts += 1
+            changed = st.error_class != type(exc).__name__
+            st.error_class, st.error = type(exc).__name__, cause
+            due = changed or now_m - st.logged_m >= LOG_REPEAT_S
+            if due:
+                st.logged_m = now_m
+            attempts, for_s = st.attempts, now_m - st.since_m
+        self.metrics.db_retries.inc()
+        self.metrics.db_errors.labels(error=type(exc).__name__).inc()
+        if due:
+            log.warning("database work failed; retrying", extra={
+                "error": cause, "error_class": type(exc).__name__, "attempts": attempts,
+                "failing_for_s": round(for_s, 1), "retry_in_s": delay, "worker": name})
+
+    def _retry_ended(self, *, failed: bool) -> None:
+        name = threading.current_thread().name
+        with self._health_lock:
+            st = self._retries.pop(name, None)
+        if st is not None and not failed:
+            log.info("database work succeeded again", extra={
+                "attempts": st.attempts + 1, "failed_for_s": round(time.monotonic() - st.since_m, 1),
+                "last_error": st.error, "worker": name})
 
     def _commit(self, items: list[_Item], *, check_all: bool = True) -> None:
         """One transaction for a batch (see :meth:`handle_batch`); sets each item's outcome.
@@ -666,6 +994,7 @@ class Service:
                     it.transitions = ev.observe_speed(r) if r.speed_hz > 0 else []
                     view = self._views[r.machine]
                     view.speed_hz, view.speed_source = r.speed_hz, "measured"
+            self._processing_resumed(evaluators, fresh)
 
             # The margin table is kept with the batch's last reading of each machine only:
             # the dashboard reads it from a machine's newest reading (and recomputes it
@@ -777,6 +1106,11 @@ class Service:
             "ref": t.alarm_id,
         }
 
+    def _copy_views(self, machines: list[str]) -> dict[str, _MachineView]:
+        """Copies of the status views of ``machines``, to put back after a failed run."""
+        return {m: _MachineView(v.ts, v.speed_hz, v.speed_source, dict(v.zones), v.nearest, list(v.unseen))
+                for m in machines if (v := self._views.get(m)) is not None}
+
     def _update_view(self, machine: str, evaluation: ReadingEvaluation) -> None:
         view = self._views[machine]
         view.ts = max(view.ts or 0.0, evaluation.ts)
@@ -827,10 +1161,16 @@ class Service:
         assert self.source is not None
         self.metrics.in_flight.set(self.source.stats.in_flight)
         outs = self.handle_batch([(m.topic, m.payload) for m in msgs], [m.dup for m in msgs])
+        with self._health_lock:
+            self._last_commit = (time.time(), time.monotonic())
         for m in msgs:
             self.source.ack(m)
         # Again after the acks, so an idle service does not show its last batch as in flight.
         self.metrics.in_flight.set(self.source.stats.in_flight)
+        self._announce(outs)
+
+    def _announce(self, outs: list[Outcome]) -> None:
+        """Publish outcomes (after their commit), count and log their alarm transitions."""
         for out in outs:
             self.publish(out)
             for e in out.events:
@@ -850,6 +1190,16 @@ class Service:
         warm_up()  # compiled now, not mid-batch; before the freeze (start-up heap too)
         gc.collect()
         gc.freeze()
+        self.metrics.watch_health(self.health)
+        if self.settings.service.metrics_address:
+            # Up before the broker, so /readyz can say why a start is slow.
+            self.metrics_server = MetricsServer(self.metrics, self.health, self.settings.service.metrics_address,
+                                                ready=self.readiness)
+            self.metrics_server.start()
+        self._prober = threading.Thread(target=self._probe_loop, name="db-probe", daemon=True)
+        self._prober.start()
+        self._watcher = threading.Thread(target=self._watch_health, name="health-watch", daemon=True)
+        self._watcher.start()
         self.publisher = Publisher(self.mqtt)
         try:
             self.publisher.start(wait_s)
@@ -862,11 +1212,9 @@ class Service:
                 f"no subscription at the broker {self.mqtt.url} within {wait_s:g} s"
                 + (f" ({self.source.last_error})." if self.source.last_error else ".")
             )
-        if self.settings.service.metrics_address:
-            self.metrics_server = MetricsServer(self.metrics, self.health, self.settings.service.metrics_address)
-            self.metrics_server.start()
         self._periodic = threading.Thread(target=self._periodic_loop, name="periodic", daemon=True)
         self._periodic.start()
+        self._started = True
         log.info("service started", extra={
             "broker": self.mqtt.url, "client_id": self.mqtt.client_id,
             "shared_group": self.mqtt.share_group, "machines": len(self.registry.machines),
@@ -881,8 +1229,11 @@ class Service:
             self.publisher.stop()
         if self._periodic is not None:
             self._periodic.join(5.0)
+        if self._prober is not None:
+            self._prober.join(1.0)  # a probe waiting on a silent database ends with its timeouts
         if self.metrics_server is not None:
             self.metrics_server.stop()
+        self._registry_follower.close()
         self.store.close()
         src = self.source
         get = self.metrics.registry.get_sample_value
@@ -894,18 +1245,125 @@ class Service:
         })
 
     def health(self) -> dict[str, Any]:
-        """The health view: connected to the broker, messages in flight and handled."""
-        src = self.source
+        """The health view (``/healthz``; docs/service.md, "Health"): ``ok`` is false, with
+        the reasons in ``problems``, while the broker connection is down, the database
+        does not answer its probe, readings have waited :data:`STALL_S` without a commit,
+        or database work has been retried that long. Also: the backlog (messages received
+        and not yet acknowledged), the age of the last commit, the retries under way."""
+        now_m = time.monotonic()
+        src, pub = self.source, self.publisher
         connected = bool(src and src.connected)
+        pub_connected = bool(pub and pub.connected)
+        backlog = src.stats.in_flight if src else 0
+        waiting_s = src.waiting_s(now_m) if src else 0.0
+        with self._health_lock:
+            retries = [dict(st.to_json(now_m), worker=name) for name, st in sorted(self._retries.items())]
+            last = self._last_commit
+            probe = dict(self._probe)
+        db = self._database_view(probe, now_m)
+        problems: list[str] = []
+        if self._stop.is_set():
+            problems.append("the service is stopping")
+        if not connected:
+            why = src.last_error if src and src.last_error else None
+            problems.append("not connected to the broker" + (f" ({why})" if why else ""))
+        if pub is not None and not pub_connected:
+            problems.append("the publisher is not connected to the broker")
+        if not db["ok"]:
+            problems.append(f"database: {db['error']}")
+        if waiting_s > STALL_S:
+            problems.append(f"{backlog} messages have waited {waiting_s:.0f} s without a commit")
+        for r in retries:
+            if r["for_s"] > STALL_S:
+                problems.append(f"database work retried for {r['for_s']:.0f} s ({r['error_class']})")
         return {
-            "ok": connected and not self._stop.is_set(),
+            "ok": not problems,
+            "problems": problems,
             "connected": connected,
-            "in_flight": src.stats.in_flight if src else 0,
+            "publisher_connected": pub_connected,
+            "backlog": backlog,
+            "in_flight": backlog,
+            "waiting_s": round(waiting_s, 1),
+            "last_commit_at": None if last is None else
+            dt.datetime.fromtimestamp(last[0], dt.UTC).isoformat(timespec="milliseconds").replace("+00:00", "Z"),
+            "last_commit_age_s": None if last is None else round(now_m - last[1], 1),
+            "retrying": retries,
+            "database": db,
             "received": src.stats.received if src else 0,
             "acked": src.stats.acked if src else 0,
             "rejected": self.rejections.counts(),
+            "processing_errors": self._set_aside_count,
             "machines": len(self.registry.machines),
         }
+
+    @staticmethod
+    def _database_view(probe: dict[str, Any], now_m: float) -> dict[str, Any]:
+        """The database part of the health view from the probe's last result: not ok
+        after a failed probe, or while one has waited more than :data:`PROBE_LIMIT_S`."""
+        pending = now_m - probe["started_m"] if probe["started_m"] is not None else 0.0
+        ok = probe["ok"] is not False and pending <= PROBE_LIMIT_S
+        error = probe["error"] if probe["ok"] is False else None
+        if pending > PROBE_LIMIT_S:
+            error = f"no answer for {pending:.0f} s"
+        return {
+            "ok": ok,
+            "error": error,
+            "checked_age_s": None if probe["at_m"] is None else round(now_m - probe["at_m"], 1),
+            "probe_waiting_s": round(pending, 1),
+        }
+
+    def readiness(self) -> dict[str, Any]:
+        """The readiness view (``/readyz``): started, subscribed, the database answered
+        its last probe, and healthy."""
+        h = self.health()
+        problems = list(h["problems"])
+        if not self._started:
+            problems.insert(0, "starting")
+        elif self.source is not None and not self.source.wait_subscribed(0):
+            problems.append("not subscribed")
+        with self._health_lock:
+            probed = self._probe["ok"]
+        if probed is None:
+            problems.append("database not probed yet")
+        return {"ready": not problems, "problems": problems}
+
+    def probe_database(self) -> bool:
+        """Ask the database a one-row question; record the answer for health. Logged
+        when the answer changes (bad after good, good again after bad)."""
+        with self._health_lock:
+            self._probe["started_m"] = time.monotonic()
+        try:
+            with self.store.engine.connect() as c:
+                c.exec_driver_sql("SELECT 1 FROM machines LIMIT 1").all()
+            ok, error = True, None
+        except Exception as exc:
+            ok, error = False, short_cause(exc)
+        with self._health_lock:
+            was = self._probe["ok"]
+            self._probe.update(ok=ok, error=error, at_m=time.monotonic(), started_m=None)
+        if not ok and was is not False:
+            log.warning("database probe failed", extra={"error": error})
+        elif ok and was is False:
+            log.info("database answers again")
+        return ok
+
+    def _probe_loop(self) -> None:
+        while not self._stop.is_set():
+            self.probe_database()
+            self._stop.wait(PROBE_EVERY_S)
+
+    def _watch_health(self) -> None:
+        """Log each change of health (with its problems), so an outage is in the log even
+        when nobody asks /healthz and nothing fails outright (a silent database only
+        makes work wait). Touches neither the database nor the broker."""
+        was: list[str] = []
+        while not self._stop.wait(1.0):
+            problems = self.health()["problems"]
+            if problems and not was:
+                log.warning("service unhealthy", extra={"problems": problems})
+            elif was and not problems:
+                log.info("service healthy again")
+            was = problems
 
     def wait(self, timeout_s: float | None = None) -> bool:
         return self._stop.wait(timeout_s)
@@ -913,29 +1371,94 @@ class Service:
     # -- periodic jobs
 
     def _periodic_loop(self) -> None:
-        last_stale = last_gauges = time.monotonic()
-        last_retention = time.monotonic()
+        start = time.monotonic()
+        last = {"stale": start, "acks": start, "retention": start, "gauges": start}
+
+        def due(job: str, every_s: float, now_m: float) -> bool:
+            if now_m - last[job] < every_s:
+                return False
+            last[job] = now_m
+            return True
+
         while not self._stop.wait(0.5):
             now_m = time.monotonic()
-            try:
-                if self._sqlite:
-                    with self.store.engine.connect() as c:
-                        c.exec_driver_sql("PRAGMA wal_checkpoint(PASSIVE)")
-                if self.stale_check_s > 0 and now_m - last_stale >= self.stale_check_s:
-                    last_stale = now_m
-                    self.check_stale()
-                r = self.settings.retention
-                if r.enabled and now_m - last_retention >= r.interval_s:
-                    last_retention = now_m
-                    with self.store.transaction() as s:
-                        res = apply_retention(s, r.policy())
-                    log.info("retention applied", extra={"result": str(res)})
-                if now_m - last_gauges >= 5.0:
-                    last_gauges = now_m
-                    with self.store.session() as s:
-                        self.metrics.set_alarm_states(alarm_counts_by_state(s))
-            except Exception as exc:  # a periodic job must not end the service
-                log.warning("periodic job failed", extra={"error": str(exc)[:300]})
+            self._job("registry edits and baseline restarts", self.apply_registry_requests)
+            if self._sqlite:
+                self._job("checkpoint", self._checkpoint)
+            if self.stale_check_s > 0 and due("stale", self.stale_check_s, now_m):
+                self._job("stale streams", self.check_stale)
+            if due("acks", ACK_SYNC_S, now_m):
+                self._job("acknowledgements", self.sync_acknowledgements)
+            r = self.settings.retention
+            if r.enabled and due("retention", r.interval_s, now_m):
+                self._job("retention", self._apply_retention)
+            if due("gauges", 5.0, now_m):
+                self._job("alarm gauges", self._refresh_alarm_gauges)
+
+    def _job(self, name: str, fn: Callable[[], Any]) -> None:
+        """Run one periodic job; a failure is logged (once per LOG_REPEAT_S per job) and
+        never ends the loop."""
+        try:
+            fn()
+        except Exception as exc:
+            now_m = time.monotonic()
+            if now_m - self._job_errors.get(name, -math.inf) >= LOG_REPEAT_S:
+                self._job_errors[name] = now_m
+                log.warning("periodic job failed", extra={"job": name, "error": short_cause(exc)})
+
+    def _checkpoint(self) -> None:
+        with self.store.engine.connect() as c:
+            c.exec_driver_sql("PRAGMA wal_checkpoint(PASSIVE)")
+
+    def _apply_retention(self) -> None:
+        with self.store.transaction() as s:
+            s.connection(execution_options={"silence_limit_s": RETENTION_SILENCE_LIMIT_S})
+            res = apply_retention(s, self.settings.retention.policy())
+        log.info("retention applied", extra={"result": str(res)})
+
+    def _refresh_alarm_gauges(self) -> None:
+        with self.store.session() as s:
+            self.metrics.set_alarm_states(alarm_counts_by_state(s))
+
+    # -- changes made outside the readings
+
+    def _machines_to_sync(self) -> list[str]:
+        """Machines with a change made outside the readings that their detector has not
+        applied yet: an alarm acknowledged in the dashboard that the detector still holds
+        as active. One query, and only while some detector holds an active alarm."""
+        with self._lock:
+            active = {(m, a.id) for m, ev in self._evaluators.items()
+                      for a in ev.engine.active() if a.state == "active"}
+        if not active:
+            return []
+        with self.store.session() as s:
+            rows = s.execute(self._acks_statement(), {
+                "machines": sorted({m for m, _ in active}), "refs": sorted({r for _, r in active})}).all()
+        return sorted({m for m, ref, *_ in rows if (m, ref) in active})
+
+    def sync_acknowledgements(self) -> list[dict[str, Any]]:
+        """Apply the acknowledgements made in the dashboard to the detectors now, not at
+        the machines' next readings, and publish them (alarm events and retained status);
+        run every :data:`ACK_SYNC_S` by the periodic loop. Returns the events."""
+        outs: list[Outcome] = []
+        for machine in self._machines_to_sync():
+            def work(mid: str = machine) -> Outcome | None:
+                with self._lock, self.store.write_transaction() as s:
+                    evaluators, acks = self._take_states(s, [mid])
+                    mine = acks.get(mid, [])
+                    if not mine:
+                        return None  # another process applied them (its copy was newer)
+                    self._save_states(s, {mid: self.clock()})
+                    out = Outcome("acknowledged", machine=mid, events=self._events(s, [], [], mine),
+                                  status=self._status(mid, evaluators[mid]))
+                self._saved([mid])
+                return out
+
+            o = self._retry(work, [machine])
+            if o is not None:
+                outs.append(o)
+        self._announce(outs)
+        return [e for o in outs for e in o.events]
 
     def check_stale(self) -> list[dict[str, Any]]:
         """Raise stale-stream alarms as of the clock; publish them; return the events."""
@@ -958,7 +1481,7 @@ class Service:
             o = self._retry(work, [m.id])
             if o is not None:
                 outs.append(o)
-                self.publish(o)
+        self._announce(outs)
         return [e for o in outs for e in o.events]
 
 

@@ -10,8 +10,28 @@ Fixtures (registered from ``tests/conftest.py`` through ``pytest_plugins``):
     Session-scoped running broker shared by tests that only publish and subscribe.
 ``fresh_mosquitto``
     Function-scoped broker of its own, for tests that stop, kill or restart it.
+``deploy_mosquitto``
+    Function-scoped broker started with the persistence, queue and in-flight settings of
+    ``deploy/mosquitto.conf`` (see :meth:`PrivateBroker.with_deploy_settings`), for tests
+    that must observe what a site broker would keep or lose.
 
-Both skip, with the reason, when the ``mosquitto`` binary is not installed.
+All skip, with the reason, when the ``mosquitto`` binary is not installed.
+
+A test that needs the deploy settings on a broker of its own (the soak test, a kill -9
+test) writes::
+
+    broker = PrivateBroker.with_deploy_settings(tmp_path / "broker")
+    broker.start()
+    ...
+    broker.kill()       # SIGKILL: only what the deploy persistence settings saved survives
+    broker.start()      # same port, same persistence directory
+
+The broker then runs every directive of ``deploy/mosquitto.conf`` as written (autosave,
+queue limits, in-flight limit, session expiration, packet size, ...) except the
+site-specific ones listed in :data:`SITE_DIRECTIVES` (listeners, TLS files, passwords,
+ACLs, paths, log destination, user), which are replaced by a private loopback listener,
+anonymous access, a private persistence directory and a log file. Nothing is copied: a
+change to the deploy file is what the tests run.
 """
 
 from __future__ import annotations
@@ -27,6 +47,44 @@ from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
+
+ROOT = Path(__file__).resolve().parent.parent
+DEPLOY_MOSQUITTO_CONF = ROOT / "deploy" / "mosquitto.conf"
+
+#: Directives of a site's broker file that name its network, files, accounts or log
+#: destination; a private test broker replaces them with its own.
+SITE_DIRECTIVES = frozenset({
+    "listener", "port", "bind_address", "bind_interface", "socket_domain", "protocol",
+    "certfile", "keyfile", "cafile", "capath", "crlfile", "require_certificate",
+    "use_identity_as_username", "use_subject_as_username", "tls_version", "ciphers",
+    "ciphers_tls1.3", "psk_file", "psk_hint", "password_file", "acl_file",
+    "allow_anonymous", "per_listener_settings", "plugin", "plugin_opt", "auth_plugin",
+    "persistence_location", "persistence_file", "pid_file", "user", "include_dir",
+    "log_dest", "log_type", "log_timestamp", "log_timestamp_format", "connection_messages",
+})
+
+
+def read_mosquitto_conf(path: Path) -> list[tuple[str, str]]:
+    """The directives of a Mosquitto configuration file, in order, as ``(name, value)``.
+
+    Comments (``#`` at the start of a line, as mosquitto.conf(5) defines them) and blank
+    lines are skipped; the value is the rest of the line, stripped.
+    """
+    out: list[tuple[str, str]] = []
+    for line in Path(path).read_text(encoding="utf-8").splitlines():
+        text = line.strip()
+        if not text or text.startswith("#"):
+            continue
+        name, _, value = text.partition(" ")
+        out.append((name, value.strip()))
+    return out
+
+
+def deploy_broker_settings(path: Path = DEPLOY_MOSQUITTO_CONF) -> dict[str, str]:
+    """The broker-wide directives of ``path`` that a private broker runs as written
+    (everything but :data:`SITE_DIRECTIVES`), by name; the last occurrence wins, as in
+    Mosquitto."""
+    return {name: value for name, value in read_mosquitto_conf(path) if name not in SITE_DIRECTIVES}
 
 
 def find_mosquitto() -> str | None:
@@ -47,10 +105,18 @@ def free_port() -> int:
 class PrivateBroker:
     """One ``mosquitto`` process on 127.0.0.1 with persistence in a private directory.
 
-    ``max_queued_messages`` is raised from Mosquitto's default of 1000 on purpose: beyond it
-    an offline session's backlog is silently dropped, which would hide lost messages in the
-    delivery tests. ``autosave_interval`` is 1 s because Mosquitto writes its persistence
-    file only on that interval and at a clean shutdown.
+    By default (the tests' own settings): ``max_queued_messages`` is raised from
+    Mosquitto's default of 1000 on purpose: beyond it an offline session's backlog is
+    silently dropped, which would hide lost messages in the delivery tests.
+    ``autosave_interval`` is 1 s because Mosquitto writes its persistence file only on that
+    interval and at a clean shutdown.
+
+    With ``config_from`` (a Mosquitto configuration file, normally
+    ``deploy/mosquitto.conf``; :meth:`with_deploy_settings`), the broker-wide directives of
+    that file are used as written instead of the three keyword settings, and only its
+    site-specific directives (:data:`SITE_DIRECTIVES`) are replaced. ``overrides``
+    (directive name to value) change single directives on top, for a comparison run.
+    ``settings`` holds the broker-wide directives in force.
     """
 
     def __init__(
@@ -61,6 +127,8 @@ class PrivateBroker:
         max_queued_messages: int = 100_000,
         max_inflight_messages: int = 20,
         autosave_interval_s: int = 1,
+        config_from: Path | None = None,
+        overrides: dict[str, str] | None = None,
     ) -> None:
         binary = find_mosquitto()
         if binary is None:
@@ -74,24 +142,42 @@ class PrivateBroker:
         self.persistence_dir.mkdir(exist_ok=True)
         self.config_path = self.workdir / "mosquitto.conf"
         self.log_path = self.workdir / "mosquitto.log"
+        if config_from is None:
+            self.settings: dict[str, str] = {
+                "persistence": "true",
+                "autosave_interval": str(autosave_interval_s),
+                "max_queued_messages": str(max_queued_messages),
+                "max_inflight_messages": str(max_inflight_messages),
+            }
+        else:
+            self.settings = deploy_broker_settings(Path(config_from))
+        self.settings.update(overrides or {})
+        self.config_from = None if config_from is None else Path(config_from)
         lines = [
             f"listener {self.port} 127.0.0.1",
             "allow_anonymous true",
-            "persistence true",
             f"persistence_location {self.persistence_dir}/",
-            f"autosave_interval {autosave_interval_s}",
-            f"max_queued_messages {max_queued_messages}",
-            f"max_inflight_messages {max_inflight_messages}",
             "log_dest stderr",
             "log_type error",
             "log_type warning",
         ]
+        lines += [f"{name} {value}" for name, value in self.settings.items()]
         if os.geteuid() == 0:
             # Started as root, Mosquitto switches to the 'mosquitto' user, which cannot write
             # the private persistence directory; stay the user that created it.
             lines.append("user root")
         self.config_path.write_text("\n".join(lines) + "\n", encoding="utf-8")
         self.proc: subprocess.Popen[bytes] | None = None
+
+    @classmethod
+    def with_deploy_settings(
+        cls, workdir: Path, *, port: int | None = None, config: Path = DEPLOY_MOSQUITTO_CONF,
+        overrides: dict[str, str] | None = None,
+    ) -> PrivateBroker:
+        """A private broker (not started) that runs the persistence, autosave, queue,
+        in-flight and session settings of ``deploy/mosquitto.conf`` as written there
+        (with ``overrides``, if given, changing single directives on top)."""
+        return cls(workdir, port=port, config_from=config, overrides=overrides)
 
     @property
     def url(self) -> str:
@@ -143,7 +229,7 @@ class PrivateBroker:
         self.proc = None
 
     def kill(self) -> None:
-        """SIGKILL: no shutdown save; only what the last autosave wrote survives."""
+        """SIGKILL: no shutdown save; only what the last save wrote survives."""
         if self.proc is None:
             return
         if self.proc.poll() is None:
@@ -195,10 +281,10 @@ def publish_many(
         client.loop_stop()
 
 
-def _make_broker(tmp: Path) -> PrivateBroker:
+def _make_broker(tmp: Path, *, deploy: bool = False) -> PrivateBroker:
     if find_mosquitto() is None:
         pytest.skip("the mosquitto binary is not installed (apt-get install mosquitto)")
-    broker = PrivateBroker(tmp)
+    broker = PrivateBroker.with_deploy_settings(tmp) if deploy else PrivateBroker(tmp)
     broker.start()
     return broker
 
@@ -218,6 +304,16 @@ def mosquitto() -> Iterator[PrivateBroker]:
 def fresh_mosquitto(tmp_path: Path) -> Iterator[PrivateBroker]:
     """A private broker for one test, free to be stopped, killed and restarted."""
     broker = _make_broker(tmp_path / "broker")
+    try:
+        yield broker
+    finally:
+        broker.kill()
+
+
+@pytest.fixture()
+def deploy_mosquitto(tmp_path: Path) -> Iterator[PrivateBroker]:
+    """A private broker for one test with deploy/mosquitto.conf's broker-wide settings."""
+    broker = _make_broker(tmp_path / "broker", deploy=True)
     try:
         yield broker
     finally:

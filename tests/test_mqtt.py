@@ -340,10 +340,11 @@ def test_backpressure_keeps_the_window_bounded(mosquitto, protocol, window):
         source.stop()
     assert sorted(m.payload.decode() for m in done) == sorted(f"m{i}" for i in range(n))
     assert source.stats.queue_high_water <= window
-    # Bounded by the window, not by the 2,000 sent. Mosquitto 2.0.11 was measured here to
-    # let up to 2 more than the Receive Maximum be in flight (the extra one waits for room
-    # in the queue on the network thread), so the bound checked is window + 2.
-    assert 1 <= peak["unacked"] <= window + 2
+    # Bounded by the window, not by the 2,000 sent: the source holds at most the window
+    # even though Mosquitto 2.0.11 sends more while messages are queued (docs/mqtt.md,
+    # "Back-pressure"; tests/test_broker_durability.py drains a backlog through the service).
+    assert 1 <= peak["unacked"] <= window
+    assert source.stats.in_flight_high_water <= window
 
 
 # ----------------------------------------------------------------------------- publishing
@@ -418,23 +419,12 @@ def test_clean_stop_finishes_handed_off_work(mosquitto):
 
 
 def test_deploy_config_is_accepted_by_mosquitto(tmp_path):
-    """deploy/mosquitto.conf starts a broker (with the listener and paths made private)."""
-    text = (ROOT / "deploy" / "mosquitto.conf").read_text(encoding="utf-8")
-    broker = PrivateBroker(tmp_path)
-    kept = []
-    for line in text.splitlines():
-        word = line.split("#", 1)[0].split()
-        if word and word[0] in {"listener", "persistence_location", "password_file",
-                                "acl_file", "log_dest", "certfile", "keyfile", "cafile",
-                                "allow_anonymous", "user", "include_dir"}:
-            continue
-        kept.append(line)
-    for keep in ("persistence true", "max_queued_messages", "autosave_interval", "max_inflight_messages"):
-        assert any(line.startswith(keep) for line in kept), keep
-    extra = broker.config_path.read_text(encoding="utf-8").splitlines()
-    extra = [x for x in extra if not x.startswith(("max_queued_messages", "max_inflight_messages",
-                                                   "autosave_interval", "persistence "))]
-    broker.config_path.write_text("\n".join(kept + extra) + "\n", encoding="utf-8")
+    """deploy/mosquitto.conf's broker-wide directives start a broker (tests/broker.py
+    replaces only the listener, files, accounts and log destination)."""
+    broker = PrivateBroker.with_deploy_settings(tmp_path)
+    for keep in ("persistence", "autosave_interval", "max_queued_messages", "max_queued_bytes",
+                 "max_inflight_messages", "persistent_client_expiration"):
+        assert keep in broker.settings, keep
     broker.start()
     try:
         publish_many(broker, [("x/y", b"1")])

@@ -73,11 +73,18 @@ def test_import_export_round_trip(store):
     assert report.machines_added == ["af-3"]
     with store.session() as s:
         assert export_registry(s) == registry
+    # A plain import adds what it names and keeps af-3 ...
     with store.transaction() as s:
-        import_registry(s, small_registry())
+        report = import_registry(s, small_registry())
+    assert report.machines_kept == ["af-3"] and report.machines_retired == []
+    with store.session() as s:
+        assert export_registry(s).machines == (*small_registry().machines, registry.machine("af-3"))
+    # ... one with replace retires it, not deletes it: its history must survive.
+    with store.transaction() as s:
+        report = import_registry(s, small_registry(), replace=True)
+    assert report.machines_retired == ["af-3"]
     with store.session() as s:
         assert export_registry(s) == small_registry()
-        # af-3 is retired, not deleted: its history must survive
         assert s.get(MachineRow, "af-3").active is False
 
 
@@ -116,3 +123,79 @@ def test_every_registry_key_is_documented():
 
     used |= _MACHINE_KEYS - {"points", "modes"}
     assert used - documented == set()
+
+
+# ----------------------------------------------------------------------------- strict file
+
+
+@pytest.mark.parametrize("edit, named", [
+    (("[[machines.modes]]", "[[machines.mode]]"), "'mode'"),
+    (("[[machines.points]]", "[[machines.point]]"), "'point'"),
+    (("excitation_orders = [1, 2, 9]", "excitation_order = [1, 2, 9]"), "'excitation_order'"),
+    (("speed_range_rpm = [300, 1500]", "speed_range = [300, 1500]"), "'speed_range'"),
+    (("[[machines]]", "[[machine]]"), "'machine'"),
+    (("damping_ratio = 0.03", "damping_ration = 0.03"), "'damping_ration'"),
+    (("damping_ratio = 0.03", "mode_shape = \"rocking\""), "'mode_shape'"),
+    (('fs_hz = 25600', 'sample_rate = 25600'), "'sample_rate'"),
+])
+def test_misspelt_tables_and_keys_are_errors_naming_them(edit, named):
+    bad = DESIGN_EXAMPLE.replace(*edit)
+    assert bad != DESIGN_EXAMPLE
+    with pytest.raises(RegistryError) as exc:
+        parse_registry(tomllib.loads(bad))
+    msg = str(exc.value)
+    assert named in msg
+    if edit[0] != "[[machines]]":
+        assert "'af-3'" in msg
+
+
+def test_unknown_machine_keys_are_kept_exported_and_warned(store):
+    from monitor.registry import registry_warnings
+
+    text = DESIGN_EXAMPLE.replace('line_frequency_hz = 50', 'line_frequency_hz = 50\nasset_tag = "P-1041"\n'
+                                  'commissioned = { by = "ana", year = 2019 }')
+    registry = parse_registry(tomllib.loads(text))
+    (m,) = registry.machines
+    assert m.settings == {"asset_tag": "P-1041", "commissioned": {"by": "ana", "year": 2019}}
+    (warning,) = registry_warnings(registry)
+    assert "'af-3'" in warning and "'asset_tag'" in warning and "'commissioned'" in warning
+    assert parse_registry(tomllib.loads(dump_registry(registry))) == registry
+    with store.transaction() as s:
+        import_registry(s, registry)
+    with store.session() as s:
+        assert export_registry(s) == registry
+
+
+@pytest.mark.parametrize("edit, key", [
+    (("frequency_hz = 18.4", "frequency_hz = 1e-80"), "'frequency_hz'"),
+    (("frequency_hz = 18.4", "frequency_hz = 0.05"), "'frequency_hz'"),
+    (("frequency_hz = 18.4", "frequency_hz = 2e5"), "'frequency_hz'"),
+    (("damping_ratio = 0.03", "damping_ratio = 0"), "'damping_ratio'"),
+    (("damping_ratio = 0.03", "amplification_factor = 0.9"), "'amplification_factor'"),
+    (("damping_ratio = 0.03", "amplification_factor = inf"), "'amplification_factor'"),
+    (("speed_range_rpm = [300, 1500]", "speed_range_rpm = [0, 1500]"), "'speed_range_rpm'"),
+    (("speed_range_rpm = [300, 1500]", "speed_range_rpm = [300, nan]"), "'speed_range_rpm'"),
+    (("speed_range_rpm = [300, 1500]", "speed_range_rpm = [300, 1e300]"), "'speed_range_rpm'"),
+    (("excitation_orders = [1, 2, 9]", "excitation_orders = [1, 2, 1e200]"), "'excitation_orders'"),
+    (("line_frequency_hz = 50", "line_frequency_hz = 1e12"), "'line_frequency_hz'"),
+    (('class = "group2/flexible"', 'class = "group2/flexible"\npersistence = 0'), "'persistence'"),
+])
+def test_physical_bounds_name_machine_entry_and_key(edit, key):
+    bad = DESIGN_EXAMPLE.replace(*edit)
+    assert bad != DESIGN_EXAMPLE
+    with pytest.raises(RegistryError) as exc:
+        parse_registry(tomllib.loads(bad))
+    assert key in str(exc.value) and "'af-3'" in str(exc.value)
+
+
+def test_edit_distance_known_values():
+    from monitor.registry import edit_distance
+
+    # Levenshtein's classic pair: kitten -> sitting takes 3 edits (textbook example).
+    assert edit_distance("kitten", "sitting") == 3
+    # Optimal string alignment counts a swap of neighbours as one edit, but edits no
+    # substring twice: CA -> ABC is 3 (the unrestricted Damerau-Levenshtein distance is 2),
+    # the standard example distinguishing the two (from memory).
+    assert edit_distance("ab", "ba") == 1
+    assert edit_distance("ca", "abc") == 3
+    assert edit_distance("", "modes") == 5 and edit_distance("modes", "modes") == 0

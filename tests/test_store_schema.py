@@ -25,7 +25,7 @@ def test_upgrade_head_matches_models(database_url):
         assert diff == []
         tables = set(inspect(engine).get_table_names()) - {"alembic_version"}
         assert tables == set(Base.metadata.tables)
-        assert current_revision(engine) == "0001"
+        assert current_revision(engine) == "0002"
     finally:
         engine.dispose()
 
@@ -35,9 +35,44 @@ def test_upgrade_twice_is_harmless(database_url):
     upgrade(database_url)
     engine = make_engine(database_url)
     try:
-        assert current_revision(engine) == "0001"
+        assert current_revision(engine) == "0002"
     finally:
         engine.dispose()
+
+
+def test_upgrade_from_0001_keeps_the_registry(database_url):
+    # A database made by the first release, with a value that release let in, upgraded.
+    upgrade(database_url, "0001")
+    engine = make_engine(database_url)
+    try:
+        with engine.begin() as conn:
+            conn.execute(text(
+                "INSERT INTO machines (id, name, location, machine_class, speed_min_rpm, speed_max_rpm, "
+                "excitation_orders, settings, active, position, created_at, updated_at) VALUES "
+                "('ef-2', 'fan', '', 'group2/rigid', 600, 1500, '[1, 2]', '{}', true, 0, "
+                ":t, :t)"), {"t": "2026-01-01 00:00:00"})
+            conn.execute(text(
+                "INSERT INTO modes (machine_id, name, frequency_hz, source, position, updated_at) "
+                "VALUES ('ef-2', 'sway', 1e-80, '', 0, :t)"), {"t": "2026-01-01 00:00:00"})
+        upgrade(database_url)
+        assert current_revision(engine) == "0002"
+        with engine.connect() as conn:
+            assert conn.execute(text("SELECT version FROM registry_state")).all() == [(0,)]
+            assert conn.execute(text("SELECT registry_version, file_digest FROM machines")).all() == [(0, None)]
+            assert conn.execute(text("SELECT count(*) FROM baseline_restarts")).scalar() == 0
+    finally:
+        engine.dispose()
+    # The old value is still there to be shown as invalid and fixed (not silently lost).
+    from monitor.store.registry_sync import read_registry
+
+    store = Store.open(database_url)
+    try:
+        with store.session() as s:
+            registry, problems = read_registry(s)
+    finally:
+        store.close()
+    assert registry.machine("ef-2").modes == ()
+    assert len(problems) == 1 and "'sway'" in problems[0] and "'frequency_hz'" in problems[0]
 
 
 def test_sqlite_connection_settings(tmp_path):

@@ -77,10 +77,14 @@ def _open_registry(machines_file: Path | None) -> Registry | None:
 
 
 def _stored_registry(store: Any) -> Registry:
-    from monitor.store import export_registry
+    """The database's registry; entries whose stored values lie outside the registry's
+    bounds (left by an older release) are left out, each named on stderr."""
+    from monitor.store.registry_sync import read_registry
 
     with store.session() as s:
-        registry = export_registry(s)
+        registry, problems = read_registry(s)
+    for p in problems:
+        click.echo(f"warning: {p}", err=True)
     if not registry.machines:
         raise click.ClickException(
             "the database holds no machines; import a registry with `whirlwatch machines import FILE`.")

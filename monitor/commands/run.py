@@ -13,7 +13,8 @@ import click
 @click.option("--broker", default=None, metavar="URL", help="Broker URL (mqtt:// or mqtts://); overrides the file.")
 @click.option("--database", default=None, metavar="URL", help="SQLAlchemy URL of the store; overrides the file.")
 @click.option("--machines", type=click.Path(dir_okay=False, path_type=Path), default=None,
-              help="Machine registry TOML imported into the database at start; overrides the file.")
+              help="Machine registry TOML whose changed entries are added/updated at start "
+                   "(nothing deleted; docs/registry.md); overrides the file.")
 @click.option("--client-id", default=None, help="MQTT client id (stable per process); overrides the file.")
 @click.option("--shared-group", default=None, help="Shared-subscription group; overrides the file.")
 @click.option("--metrics", "metrics_address", default=None, metavar="HOST:PORT",

@@ -4,7 +4,8 @@ Tables (see docs/store.md for the full schema and the retention policy):
 
 - ``machines``, ``measurement_points``, ``modes`` and ``mode_history``: the machine
   registry as the service uses it, with every mode change recorded (who, when, old and
-  new values).
+  new values); ``registry_state`` holds the registry version every registry write moves
+  on, ``baseline_restarts`` the engineers' requests to learn baselines again.
 - ``measurements``: one row per analysed reading, unique on (machine, point, ts) so a
   redelivered MQTT message inserts nothing.
 - ``spectrum_snapshots``: compressed float32 spectra, kept on a cadence and with every
@@ -118,6 +119,13 @@ class Machine(Base):
     position: Mapped[int] = mapped_column(Integer, default=0)
     created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
     updated_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
+    # The registry version (registry_state) of the last write that touched this machine,
+    # its points or modes, or asked to restart its baselines: a running service reloads
+    # the machines whose version moved past the one it holds.
+    registry_version: Mapped[int] = mapped_column(BigInteger, default=0)
+    # sha256 (hex) of the machine's entry as last imported from a registry file: a service
+    # start applies a file entry only when it changed since, so edits made elsewhere stay.
+    file_digest: Mapped[str | None] = mapped_column(String(64))
 
     points: Mapped[list[MeasurementPoint]] = relationship(
         back_populates="machine", order_by="MeasurementPoint.position"
@@ -193,6 +201,35 @@ class ModeHistory(Base):
     changed_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
     old_values: Mapped[dict[str, Any] | None] = mapped_column(JSON)
     new_values: Mapped[dict[str, Any] | None] = mapped_column(JSON)
+
+
+class RegistryState(Base):
+    """One row (id 1): the registry version, moved on by one in every transaction that
+    writes the registry (import, mode edit, baseline restart request)."""
+
+    __tablename__ = "registry_state"
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    version: Mapped[int] = mapped_column(BigInteger, default=0)
+    updated_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
+
+
+class BaselineRestart(Base):
+    """An engineer's request to learn a machine's baselines again (after maintenance):
+    for one point, or every point when ``point_id`` is None. The service applies it to
+    its detectors and sets ``applied_at``."""
+
+    __tablename__ = "baseline_restarts"
+    __table_args__ = (Index(None, "machine_id", "requested_at"),)
+
+    id: Mapped[int] = mapped_column(BigId, primary_key=True)
+    machine_id: Mapped[str] = mapped_column(String(64), ForeignKey("machines.id"))
+    # No foreign key: the record stays when the point is later retired.
+    point_id: Mapped[str | None] = mapped_column(String(64))
+    comment: Mapped[str] = mapped_column(Text)
+    requested_by: Mapped[str] = mapped_column(String(100))
+    requested_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
+    applied_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime)
 
 
 # ----------------------------------------------------------------------------- readings

@@ -175,7 +175,8 @@
     const data = await WW.api(root.dataset.modes);
     const tb = document.querySelector("#modes-table tbody");
     tb.replaceChildren(...data.items.map(mo => el("tr", { "data-mode": mo.id },
-      el("td", {}, mo.name), el("td", { class: "num" }, WW.num(mo.frequency_hz, 2)),
+      el("td", {}, mo.name, mo.valid === false ? el("small", { class: "sub notice-error" }, "not used: " + mo.problem) : null),
+      el("td", { class: "num" }, WW.num(mo.frequency_hz, 2)),
       el("td", { class: "num" }, mo.damping_ratio === null ? "–" : WW.num(mo.damping_ratio, 3)),
       el("td", { class: "num" }, mo.amplification_factor === null ? "–" : WW.num(mo.amplification_factor, 1)),
       el("td", { class: "num" }, mo.required_margin_pct === null ? "rule" : WW.num(mo.required_margin_pct, 1)),
@@ -223,6 +224,32 @@
   });
   document.getElementById("mode-cancel").addEventListener("click", () => { form.hidden = true; });
   if (canEdit) { const b = document.getElementById("mode-add"); b.hidden = false; b.addEventListener("click", () => openForm(null)); }
+
+  function renderBaselines() {
+    const tb = document.querySelector("#baseline-restarts tbody");
+    const rows = machine.baseline_restarts || [];
+    if (!rows.length) { tb.replaceChildren(el("tr", {}, el("td", { colspan: 5, class: "empty" }, "No restarts asked for."))); return; }
+    tb.replaceChildren(...rows.map(r => el("tr", {},
+      el("td", {}, WW.when(r.requested_at)), el("td", {}, r.requested_by), el("td", {}, r.point || "every point"),
+      el("td", {}, r.comment), el("td", {}, r.applied_at ? WW.when(r.applied_at) : "waiting for the service"))));
+  }
+
+  const baselineForm = document.getElementById("baseline-form");
+  if (baselineForm) baselineForm.addEventListener("submit", async ev => {
+    ev.preventDefault();
+    const err = document.getElementById("baseline-error"), done = document.getElementById("baseline-done");
+    err.hidden = done.hidden = true;
+    const point = baselineForm.elements.point.value || null;
+    try {
+      await WW.api(root.dataset.baseline, { method: "POST", body: { point: point, comment: baselineForm.elements.comment.value.trim() } });
+      baselineForm.reset();
+      done.textContent = "Asked for: the service restarts " + (point ? "point " + point : "every point") + " at its next reading.";
+      done.hidden = false;
+      await loadMachine();
+    } catch (e) {
+      err.textContent = e.message; err.hidden = false;
+    }
+  });
 
   async function renderAlarms() {
     const data = await WW.api(root.dataset.alarms + "?machine=" + encodeURIComponent(machine.id) + "&limit=50");
@@ -278,6 +305,7 @@
     renderFacts();
     fillPointSelects();
     renderMargins();
+    renderBaselines();
     drawSpectrum(latestFor(document.getElementById("spectrum-point").value));
     await Promise.all([loadTrends(), renderModes(), renderAlarms()]);
     document.body.dataset.loaded = "1";
