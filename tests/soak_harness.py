@@ -1,7 +1,5 @@
 """Machinery of the soak (tests/test_soak.py).
 
-- :func:`deploy_broker`: a :class:`PrivateBroker` with the persistence and queueing
-  settings of ``deploy/mosquitto.conf`` (read by :func:`deploy_persistence`).
 - :class:`PacedPublisher`: publishes readings at QoS 1 in order, paced, through broker
   crashes, and stops at given readings until told to go on.
 - :class:`HealthPoller`: samples the service's ``/healthz`` in the background.
@@ -9,7 +7,8 @@
   acknowledge alarms on the alarms page and add a mode through the JSON API.
 - What the store holds (:func:`stored_keys`, :func:`alarm_transitions`, ...), read
   with the project's own models.
-- :func:`retry_loops`: the database retry loops in a service's JSON log lines.
+- :func:`retry_loops`: the database retry loops in a service's JSON log lines, and
+  :func:`longest_retry_in_health` the longest /healthz reported.
 
 Every wait is bounded in time; every thread is a daemon.
 """
@@ -34,7 +33,6 @@ from typing import Any
 import paho.mqtt.client as paho
 from broker import PrivateBroker
 from paho.mqtt.enums import CallbackAPIVersion
-from service_helpers import ROOT
 from soak_month import Reading
 from sqlalchemy import func, select
 
@@ -48,54 +46,6 @@ from monitor.store.models import (
     ModeHistory,
     SpeedReadingRow,
 )
-
-DEPLOY_MOSQUITTO = ROOT / "deploy" / "mosquitto.conf"
-
-#: Keys of deploy/mosquitto.conf that decide what the broker keeps and for how long.
-PERSISTENCE_KEYS = (
-    "persistence", "autosave_interval", "autosave_on_changes", "max_queued_messages",
-    "max_queued_bytes", "queue_qos0_messages", "max_inflight_messages",
-    "persistent_client_expiration",
-)
-
-
-# ----------------------------------------------------------------------------- broker
-
-
-def deploy_persistence(path: Path = DEPLOY_MOSQUITTO) -> dict[str, str]:
-    """The persistence and queueing settings of the deploy configuration, by key (the
-    last line of a key wins). The persistence location stays the private broker's own.
-
-    One small function on purpose: it gives way to PrivateBroker's own documented way
-    of taking the deploy settings once that exists.
-    """
-    out: dict[str, str] = {}
-    for line in path.read_text(encoding="utf-8").splitlines():
-        words = line.split("#", 1)[0].split(None, 1)
-        if len(words) == 2 and words[0] in PERSISTENCE_KEYS:
-            out[words[0]] = words[1].strip()
-    if out.get("persistence") != "true":
-        raise ValueError(f"{path}: 'persistence true' is missing; the soak needs the deploy "
-                         "persistence settings.")
-    return out
-
-
-def deploy_broker(workdir: Path) -> PrivateBroker:
-    """A private broker (not started) on the deploy configuration's persistence settings."""
-    conf = deploy_persistence()
-    broker = PrivateBroker(
-        workdir,
-        max_queued_messages=int(conf.get("max_queued_messages", "1000")),
-        max_inflight_messages=int(conf.get("max_inflight_messages", "20")),
-        autosave_interval_s=int(conf.get("autosave_interval", "1800")),
-    )
-    taken = {"persistence", "max_queued_messages", "max_inflight_messages", "autosave_interval"}
-    with broker.config_path.open("a", encoding="utf-8") as fh:
-        for key, value in conf.items():
-            if key not in taken:
-                fh.write(f"{key} {value}\n")
-    return broker
-
 
 # ----------------------------------------------------------------------------- publisher
 
@@ -435,31 +385,24 @@ def mode_history(url: str, machine: str, name: str) -> list[tuple[str, str]]:
 # ----------------------------------------------------------------------------- the log
 
 
-#: Longest a failing database attempt may take before its warning is logged, s: the
-#: store's busy timeout on SQLite (10 s) or a connection attempt, with room.
-ATTEMPT_SLACK_S = 15.0
-
-
 @dataclass
 class RetryLoop:
-    """An unbroken stretch of database retry warnings of one process: each comes within
-    its predecessor's back-off plus :data:`ATTEMPT_SLACK_S`. Threads that retry at the
-    same time (the worker and the periodic jobs) make one stretch, since the log does not
-    name the thread: the stretch is how long the process kept failing."""
+    """One database retry loop of one worker thread of one process (docs/service.md,
+    "Database errors"): from its first failure to its recovery, or to the end of the
+    process when it never recovered."""
 
+    worker: str
     first: dt.datetime
     last: dt.datetime
-    last_wait_s: float
     warnings: int
     errors: list[str] = field(default_factory=list)
+    recovered: dt.datetime | None = None  # 'database work succeeded again'
     end: dt.datetime | None = None  # when the process ended, if it did
 
     @property
     def age_s(self) -> float:
-        """From the first failure logged to the next attempt (or the process's end)."""
-        stop = self.last + dt.timedelta(seconds=self.last_wait_s)
-        if self.end is not None:
-            stop = min(stop, max(self.end, self.last))
+        """Seconds the loop lasted (to the test's end for one still under way)."""
+        stop = self.recovered or self.end or dt.datetime.now(dt.UTC)
         return (stop - self.first).total_seconds()
 
 
@@ -478,32 +421,51 @@ def log_records(path: Path) -> list[dict[str, Any]]:
 
 def retry_loops(records: Sequence[dict[str, Any]],
                 lives: Sequence[tuple[float, float | None]]) -> list[RetryLoop]:
-    """Database retry loops (:class:`RetryLoop`) in a service log holding every process
-    life in order; a retry warning is a line with ``retry_in_s`` (the back-off before the
-    next attempt, s). ``lives`` are the processes' (start, end), epoch seconds (end None:
-    still running); a loop never spans two lives."""
+    """Database retry loops in a service log holding every process life in order.
+
+    The service logs a loop's first failure, each change of error and a reminder every
+    30 s ("database work failed; retrying", with ``worker`` and ``failing_for_s``), and its
+    recovery ("database work succeeded again", with ``failed_for_s``). ``lives`` are the
+    processes' (start, end), epoch seconds (end None: still running); a loop a process
+    did not recover from ends with the process.
+    """
     def life_of(ts: float) -> int:
         return max((k for k, (start, _) in enumerate(lives) if start <= ts), default=0)
 
+    def life_end(life: int) -> dt.datetime | None:
+        end = lives[life][1] if life < len(lives) else None
+        return None if end is None else dt.datetime.fromtimestamp(end, dt.UTC)
+
     loops: list[RetryLoop] = []
-    cur: RetryLoop | None = None
-    cur_life = -1
+    under_way: dict[tuple[int, str], RetryLoop] = {}
     for r in records:
-        if "retry_in_s" not in r:
+        failed = "retry_in_s" in r
+        recovered = r.get("msg") == "database work succeeded again"
+        if not (failed or recovered):
             continue
         ts = dt.datetime.fromisoformat(str(r["ts"]))
         life = life_of(ts.timestamp())
-        wait = float(r["retry_in_s"])
-        if (cur is None or life != cur_life or (ts - cur.last).total_seconds()
-                > cur.last_wait_s + ATTEMPT_SLACK_S):
-            end = lives[life][1] if life < len(lives) else None
-            cur = RetryLoop(first=ts, last=ts, last_wait_s=wait, warnings=0,
-                            end=None if end is None else dt.datetime.fromtimestamp(end, dt.UTC))
-            cur_life = life
-            loops.append(cur)
-        cur.last, cur.last_wait_s = ts, wait
-        cur.warnings += 1
+        key = (life, str(r.get("worker", "")))
+        loop = under_way.get(key)
+        if loop is None:
+            for_s = float(r.get("failing_for_s", r.get("failed_for_s", 0.0)) or 0.0)
+            loop = under_way[key] = RetryLoop(
+                worker=key[1], first=ts - dt.timedelta(seconds=for_s), last=ts, warnings=0,
+                end=life_end(life))
+            loops.append(loop)
+        if recovered:
+            loop.recovered = ts
+            del under_way[key]
+            continue
+        loop.last = ts
+        loop.warnings += 1
         err = str(r.get("error", ""))[:160]
-        if err and err not in cur.errors and len(cur.errors) < 3:
-            cur.errors.append(err)
+        if err and err not in loop.errors and len(loop.errors) < 3:
+            loop.errors.append(err)
     return loops
+
+
+def longest_retry_in_health(samples: Sequence[HealthSample]) -> float:
+    """The longest retry loop /healthz reported (``retrying[].for_s``), s; 0 without any."""
+    return max((float(x.get("for_s") or 0.0) for smp in samples if isinstance(smp.body, dict)
+                for x in smp.body.get("retrying") or () if isinstance(x, dict)), default=0.0)

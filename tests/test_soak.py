@@ -32,11 +32,14 @@ lets the publisher go on.
 
 Invariants checked on the soak:
 
-1. every reading the broker acknowledged (PUBACK) is stored exactly once;
+1. every reading the broker acknowledged (PUBACK) is stored exactly once, but for the one
+   a crash of Mosquitto may lose whatever its settings: the last reading the killed
+   broker acknowledged (docs/mqtt.md, "Broker crash"; counted apart in the figures);
 2. its alarm transitions equal the reference run's, per machine, in order (point, kind,
    subject, transition, severity, state, and the reading's instant or the
    acknowledging user);
-3. no database retry loop of the service lasted more than 30 s (its JSON log lines);
+3. no database retry loop of the service lasted more than 30 s (its JSON log lines, and
+   the loops under way that ``/healthz`` reports);
 4. ``/healthz`` answered unhealthy during the outage and healthy again after it (issue
    11 item 3: unhealthy within 30 s when readings wait and no commit succeeds or the
    database is unreachable);
@@ -71,8 +74,8 @@ from soak_harness import (
     PacedPublisher,
     alarm_transitions,
     dead_letter_reasons,
-    deploy_broker,
     log_records,
+    longest_retry_in_health,
     mode_history,
     mode_names,
     retry_loops,
@@ -111,9 +114,11 @@ HEALTH_BOUND_S = 30.0
 NO_PROGRESS_S = 20.0
 #: Seconds the broker queues readings for the stopped service before it is killed.
 BROKER_BACKLOG_S = 2.0
-#: Readings between the broker-kill episode and the next action: what the publisher
-#: sends from the stop to the kill, with room to spare.
-BROKER_KILL_CLEARANCE = int(SOAK_RATE_PER_S * (BROKER_BACKLOG_S + 0.5)) + 50
+#: Readings between a fault and the next action (the publisher stops there): for the
+#: broker kill, what the publisher sends from the stop to the kill, with room to spare;
+#: for the outage, a second of readings.
+CLEARANCE = {"stop+broker_kill": int(SOAK_RATE_PER_S * (BROKER_BACKLOG_S + 0.5)) + 50,
+             "db_outage": int(SOAK_RATE_PER_S)}
 #: The soak's faults in the order they come, each at a seeded random reading of its own
 #: stretch of the month.
 FAULTS = ("kill", "kill", "db_outage", "kill", "stop+broker_kill", "kill", "kill")
@@ -121,9 +126,9 @@ FAULTS = ("kill", "kill", "db_outage", "kill", "stop+broker_kill", "kill", "kill
 
 @dataclass(frozen=True)
 class Fault:
-    index: int  # after the publisher handled this many readings
+    index: int  # once the publisher has handled this reading (its number in the month)
     kind: str
-    delay_s: float  # and this much later
+    delay_s: float  # and this much later, s
 
 
 def action_points(n: int) -> dict[int, str]:
@@ -133,15 +138,16 @@ def action_points(n: int) -> dict[int, str]:
 
 def fault_plan(n: int, rng: random.Random) -> list[Fault]:
     """:data:`FAULTS` spread over the month: one at a random reading of each equal stretch
-    of 3-97 % of it. The broker kill keeps :data:`BROKER_KILL_CLEARANCE` readings clear of
-    the next action, so the publisher is still sending when the broker dies (a pause
-    would leave it idle, and an autosave in the idle time would hide what a crash loses)."""
+    of 3-97 % of it, kept clear of the next action by :data:`CLEARANCE` readings: the
+    publisher is still sending when the broker dies (idle, it would give the broker time
+    to save what a crash would otherwise lose), and readings arrive during the database
+    outage (on SQLite, readings waiting without a commit are what /healthz can see)."""
     lo, hi = 0.03 * n, 0.97 * n
     width = (hi - lo) / len(FAULTS)
     actions = action_points(n)
     plan = []
     for k, kind in enumerate(FAULTS):
-        clearance = BROKER_KILL_CLEARANCE if kind == "stop+broker_kill" else 0
+        clearance = CLEARANCE.get(kind, 0)
         for _ in range(1000):
             index = int(lo + (k + rng.uniform(0.1, 0.9)) * width)
             if not any(0 <= a - index < clearance for a in actions):
@@ -180,6 +186,9 @@ class RunRecord:
     kills: int = 0
     clean_stops: int = 0
     broker_kills: int = 0
+    # The reading the killed broker acknowledged last (docs/mqtt.md, "Broker crash": the
+    # one message per publishing connection a crash may lose).
+    broker_last_acked: int | None = None
     outage: tuple[float, float] | None = None  # monotonic cut, restore
     health_back_s: float | None = None
     health_samples: list = field(default_factory=list)
@@ -307,7 +316,13 @@ class MonthRun:
             time.sleep(BROKER_BACKLOG_S)  # the broker queues what arrives for the stopped service
             self.broker.kill()
             self.rec.broker_kills += 1
-            self.rec.faults_done.append(f"broker killed after {self.publisher.progress} published")
+            # Every acknowledgement seen before the new broker starts came from the killed
+            # one; the publisher's client reads any still in its socket meanwhile.
+            time.sleep(0.3)
+            self.rec.broker_last_acked = max(self.publisher.published(), default=None)
+            self.rec.faults_done.append(
+                f"broker killed after {self.publisher.progress} published, the last it "
+                f"acknowledged reading {self.rec.broker_last_acked}")
             self.broker.start()
             self.start_service()
         elif f.kind == "db_outage":
@@ -319,13 +334,11 @@ class MonthRun:
             self.rec.outage = (cut, back)
             # Healthy again within the bound before the next fault can blur the picture.
             deadline = back + HEALTH_BOUND_S
-            while time.monotonic() < deadline:
-                if any(s.state == "healthy" for s in health.between(back, time.monotonic())):
-                    self.rec.health_back_s = next(
-                        s.t for s in health.between(back, time.monotonic()) if s.state == "healthy"
-                    ) - back
-                    break
+            while self.rec.health_back_s is None and time.monotonic() < deadline:
                 time.sleep(0.25)
+                healthy = [x.t for x in health.between(back, deadline) if x.state == "healthy"]
+                if healthy:
+                    self.rec.health_back_s = healthy[0] - back
         else:
             raise ValueError(f"unknown fault {f.kind!r}")
 
@@ -387,15 +400,24 @@ class MonthRun:
 # ----------------------------------------------------------------------------- checks
 
 
+def lost_readings(rec: RunRecord, month: list[Reading]) -> list[int]:
+    """Numbers of the readings the broker acknowledged and the store does not hold."""
+    return [i for i in rec.published if month[i].key not in rec.stored]
+
+
 def delivery(rec: RunRecord, month: list[Reading]) -> dict[str, int]:
-    """Published, stored, lost, duplicated and unexpected readings of a run."""
-    published = {month[i].key for i in rec.published}
+    """Published, stored, lost, duplicated and unexpected readings of a run; of the lost,
+    how many the broker acknowledged in the pass of its loop in which it was killed (at
+    most the last reading it acknowledged: one publishing connection, one message in
+    flight)."""
     attempted = {month[i].key for i in rec.attempted}
     stored = rec.stored
+    lost = lost_readings(rec, month)
     return {
-        "published": len(published),
+        "published": len(rec.published),
         "stored": sum(stored.values()),
-        "lost": len(published - set(stored)),
+        "lost": len(lost),
+        "lost_in_broker_crash": sum(1 for i in lost if i == rec.broker_last_acked),
         "duplicated": sum(c - 1 for c in stored.values() if c > 1),
         "unexpected": len(set(stored) - attempted),
     }
@@ -447,12 +469,13 @@ def summary(kind: str, ref: RunRecord, soak: RunRecord, month: list[Reading]) ->
                  "acks": sum(len(a) for a in soak.acks), "seconds": round(soak.seconds, 1),
                  "kills": soak.kills, "clean_stops": soak.clean_stops,
                  "broker_kills": soak.broker_kills, "copies_resent": soak.copies,
+                 "never_acknowledged": len(soak.given_up),
                  "dead_letters": soak.dead_letters},
-        "lost_readings": spans(sorted(i for i in soak.published
-                                      if month[i].key not in soak.stored)),
+        "lost_readings": spans(lost_readings(soak, month)),
         "transition_diffs": diffs,
         "first_diffs": diff_words,
         "longest_retry_loop_s": round(max((x.age_s for x in soak.retry_loops), default=0.0), 1),
+        "longest_retry_in_health_s": round(longest_retry_in_health(soak.health_samples), 1),
         "health_during_outage": dict(sorted(during.items())),
         "health_back_after_s": None if soak.health_back_s is None else round(soak.health_back_s, 1),
         "final_health": soak.final_health,
@@ -466,17 +489,22 @@ def summary(kind: str, ref: RunRecord, soak: RunRecord, month: list[Reading]) ->
 def broken_invariants(ref: RunRecord, soak: RunRecord, month: list[Reading], fig: dict) -> list[str]:
     out = []
     s = fig["soak"]
-    if s["lost"] or s["duplicated"] or s["unexpected"]:
-        out.append(f"1. stored exactly once: {s['lost']} lost (readings {fig['lost_readings']}), "
-                   f"{s['duplicated']} duplicated, {s['unexpected']} never sent")
+    # The one exception: the reading the killed broker acknowledged last, which Mosquitto
+    # may lose in a crash whatever its settings (docs/mqtt.md, "Broker crash"; counted
+    # in the figures as lost_in_broker_crash).
+    if s["lost"] - s["lost_in_broker_crash"] or s["duplicated"] or s["unexpected"]:
+        out.append(f"1. stored exactly once: {s['lost']} lost (readings {fig['lost_readings']}; "
+                   f"{s['lost_in_broker_crash']} of them the last reading the killed broker "
+                   f"acknowledged), {s['duplicated']} duplicated, {s['unexpected']} never sent")
     if fig["transition_diffs"]:
         out.append(f"2. alarm transitions: {fig['transition_diffs']} differ from the reference "
                    f"run: {fig['first_diffs']}")
     long = [x for x in soak.retry_loops if x.age_s > MAX_RETRY_LOOP_S]
-    if long:
-        out.append(f"3. retry loops over {MAX_RETRY_LOOP_S:g} s: "
-                   + "; ".join(f"{x.age_s:.0f} s from {x.first.isoformat()} ({x.warnings} "
-                               f"warnings: {x.errors[:1]})" for x in long[:3]))
+    if long or fig["longest_retry_in_health_s"] > MAX_RETRY_LOOP_S:
+        out.append(f"3. retry loops over {MAX_RETRY_LOOP_S:g} s (/healthz saw "
+                   f"{fig['longest_retry_in_health_s']} s): "
+                   + "; ".join(f"{x.age_s:.0f} s from {x.first.isoformat()} ({x.worker}, "
+                               f"{x.warnings} warnings: {x.errors[:1]})" for x in long[:3]))
     if "unhealthy" not in fig["health_during_outage"]:
         out.append(f"4. /healthz during the {OUTAGE_S:g} s database outage: "
                    f"{fig['health_during_outage']} (no unhealthy answer)")
@@ -543,7 +571,7 @@ def run_once(name: str, kind: str, month: list[Reading], tmp: Path, faults: list
     work = tmp / name
     work.mkdir()
     registry_file = write_soak_registry(work / "plant-soak.toml")
-    broker = deploy_broker(work / "broker")
+    broker = PrivateBroker.with_deploy_settings(work / "broker")
     broker.start()
     try:
         with database_for(kind, work / "db", name) as (url, service_url, cut):
