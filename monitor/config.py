@@ -295,7 +295,7 @@ SETTINGS: tuple[Setting, ...] = (
         "service.machines_file",
         "path",
         "",
-        "Machine registry TOML imported into the database at start; empty uses the registry already in the database.",
+        "Machine registry TOML applied at start: machines whose entry changed since their last import are added or updated; nothing is deleted (`whirlwatch machines import --replace` does that). Empty uses the registry already in the database.",
     ),
     Setting(
         "service.metrics_address",
