@@ -67,14 +67,17 @@ class PacedPublisher(threading.Thread):
     wait (a pause, a broker outage) the pace starts afresh instead of catching up. A
     message the broker has not acknowledged within 2 s is sent again once the client is
     connected (paho reconnects on its own), for at most ``give_up_s``. After each index
-    in ``pause_after`` the publisher stops until :meth:`resume`.
+    in ``pause_after`` the publisher stops until :meth:`resume`; the indices in ``skip``
+    are not sent.
     """
 
     def __init__(self, broker: PrivateBroker, readings: Sequence[Reading], *,
                  rate_per_s: float = 0.0, pause_after: Iterable[int] = (),
-                 give_up_s: float = 60.0, pause_limit_s: float = 300.0) -> None:
+                 skip: Iterable[int] = (), give_up_s: float = 60.0,
+                 pause_limit_s: float = 300.0) -> None:
         super().__init__(daemon=True, name="soak-publisher")
         self.readings = readings
+        self.skip = frozenset(skip)
         self.rate_per_s = rate_per_s
         self.pause_after = frozenset(pause_after)
         self.give_up_s = give_up_s
@@ -158,7 +161,8 @@ class PacedPublisher(threading.Thread):
                     base, first = now, i
                 elif due > now and self._halt.wait(due - now):
                     return
-            self._send(i, r)
+            if i not in self.skip:
+                self._send(i, r)
             self.progress = i + 1
             if i in self.pause_after:
                 self.paused_at = i

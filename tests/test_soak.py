@@ -11,20 +11,22 @@ through ``POST /api/v1/machines/{id}/modes`` once.
 
 Each backend runs the month twice, each time on a fresh database and broker:
 
-reference
-    No faults. The same messages through the same production path (broker, service
-    process, store): only the faults differ between the two runs, so a difference in
-    what they store is the faults' doing. (``Service.handle_batch`` alone would skip the
-    MQTT hand-off, acknowledgements and batch sizes the soak goes through, so a
-    difference could then also come from the harness.)
 soak
-    The same, while the service is killed with SIGKILL at 5 seeded random moments and
-    restarted, stopped cleanly once (SIGTERM), the broker killed with SIGKILL once
-    (during that stop, while it holds readings it acknowledged for the absent service),
-    and the database cut off for 20 s: PostgreSQL through a TCP relay that refuses
-    connections (tests/tcp_relay.py); SQLite by an exclusive lock the test holds on the
-    file, the outage a local file can have (nothing else can cut off a file the service
-    opens itself), during which no commit can succeed.
+    The service is killed with SIGKILL at 5 seeded random moments and restarted, stopped
+    cleanly once (SIGTERM), the broker killed with SIGKILL once (during that stop, while
+    it holds readings it acknowledged for the absent service), and the database cut off
+    for 20 s: PostgreSQL through a TCP relay that refuses connections
+    (tests/tcp_relay.py); SQLite by an exclusive lock the test holds on the file, the
+    outage a local file can have (nothing else can cut off a file the service opens
+    itself), during which no commit can succeed.
+reference
+    Then the same messages through the same production path (broker, service process,
+    store) with no faults: only the faults differ between the two runs, so a difference
+    in what they store is the faults' doing. (``Service.handle_batch`` alone would skip
+    the MQTT hand-off, acknowledgements and batch sizes the soak goes through, so a
+    difference could then also come from the harness.) Left out: the one reading a
+    broker crash may lose whatever its settings (invariant 1), if the soak lost it, so
+    that both services receive the same messages.
 
 The engineer's actions happen at the same reading in both runs: the publisher stops after
 that reading, the test waits until every reading published so far is stored, acts, and
@@ -344,7 +346,7 @@ class MonthRun:
 
     # -- the run
 
-    def run(self, faults: list[Fault], rate_per_s: float) -> RunRecord:
+    def run(self, faults: list[Fault], rate_per_s: float, skip: frozenset[int]) -> RunRecord:
         actions = action_points(len(self.month))
         timeline = sorted([(i, 0, kind) for i, kind in actions.items()]
                           + [(f.index, 1, f) for f in faults], key=lambda x: (x[0], x[1]))
@@ -355,7 +357,7 @@ class MonthRun:
             self.start_service()
             health.start()
             self.publisher = pub = PacedPublisher(self.broker, self.month, rate_per_s=rate_per_s,
-                                                  pause_after=actions)
+                                                  pause_after=actions, skip=skip)
             pub.start()
             for index, _, what in timeline:
                 if isinstance(what, Fault):
@@ -567,7 +569,7 @@ def database_for(kind: str, directory: Path, name: str):
 
 
 def run_once(name: str, kind: str, month: list[Reading], tmp: Path, faults: list[Fault],
-             rate_per_s: float) -> RunRecord:
+             rate_per_s: float, skip: frozenset[int] = frozenset()) -> RunRecord:
     work = tmp / name
     work.mkdir()
     registry_file = write_soak_registry(work / "plant-soak.toml")
@@ -576,7 +578,7 @@ def run_once(name: str, kind: str, month: list[Reading], tmp: Path, faults: list
     try:
         with database_for(kind, work / "db", name) as (url, service_url, cut):
             return MonthRun(name, month, url, service_url, broker, work, registry_file,
-                            cut).run(faults, rate_per_s)
+                            cut).run(faults, rate_per_s, skip)
     finally:
         broker.kill()
 
@@ -590,9 +592,13 @@ def test_a_plant_month_with_faults_matches_an_uninterrupted_run(
         pytest.skip("the mosquitto binary is not installed (apt-get install mosquitto)")
     t0 = time.monotonic()
     plan = fault_plan(len(month), random.Random(SEED))
-    ref = run_once("reference", kind, month, tmp_path, [], 0.0)
     soak = run_once("soak", kind, month, tmp_path, plan, SOAK_RATE_PER_S)
+    # The reading a broker crash may lose whatever its settings (invariant 1), if the soak
+    # lost it, is left out of the reference run too: the same messages reach both services.
+    exempt = frozenset({soak.broker_last_acked} & set(lost_readings(soak, month)))
+    ref = run_once("reference", kind, month, tmp_path, [], 0.0, exempt)
     fig = summary(kind, ref, soak, month)
+    fig["left_out_of_the_reference"] = sorted(exempt)
     fig["seconds"] = round(time.monotonic() - t0, 1)
     print("soak figures:", json.dumps(fig, indent=1, default=str))
 
@@ -600,7 +606,7 @@ def test_a_plant_month_with_faults_matches_an_uninterrupted_run(
     # comparison below proves nothing.
     r = fig["reference"]
     assert fig["readings"] >= 3000 and fig["machines"] >= 5, fig
-    assert r["published"] == fig["readings"] and not r["lost"] and not r["duplicated"], (
+    assert r["published"] == fig["readings"] - len(exempt) and not r["lost"] and not r["duplicated"], (
         f"the uninterrupted reference run did not store the month exactly once: {fig}",
         ref.log_tail)
     kinds = {(t[1], t[3]) for ts in ref.transitions.values() for t in ts}
@@ -608,6 +614,9 @@ def test_a_plant_month_with_faults_matches_an_uninterrupted_run(
         assert {(alarm_kind, "raised"), (alarm_kind, "cleared")} <= kinds, (alarm_kind, fig)
     assert r["acks"] >= 3 and len(ref.acks) == len(ACK_AT), fig
     assert ref.mode_answer is not None and ref.mode_answer[0] == 201, ref.mode_answer
+    # The edit reached the detectors: its mode's resonance alarm, which nothing else raises.
+    assert any(t[2].startswith(NEW_MODE["name"] + "@") and t[3] == "raised"
+               for t in ref.transitions.get(NEW_MODE_MACHINE, [])), ref.transitions.get(NEW_MODE_MACHINE)
     assert soak.mode_answer is not None and soak.mode_answer[0] == 201, soak.mode_answer
     assert (soak.kills, soak.clean_stops, soak.broker_kills) == (5, 2, 1), fig
     assert soak.outage is not None, fig
