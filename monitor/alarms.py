@@ -337,12 +337,7 @@ class AlarmEngine:
             self._reset(s)
             out.append(self._transition(a, "escalated", ts, prev, a.evidence, reading_id))
         elif s.clear_count >= n:
-            prev = a.severity
-            a.state = "cleared"
-            a.cleared_at = ts
-            self._reset(s)
-            s.raise_count = 0
-            out.append(self._transition(a, "cleared", ts, prev, ev(), reading_id))
+            out.append(self._clear(s, a, ts, ev, reading_id))
         elif s.down_count >= n:
             prev = a.severity
             a.severity = SEVERITIES[s.down_level - 1]
@@ -350,6 +345,32 @@ class AlarmEngine:
             self._reset(s)
             out.append(self._transition(a, "de-escalated", ts, prev, a.evidence, reading_id))
         return out
+
+    def end(self, key: AlarmKey, ts: float, evidence: dict[str, Any]) -> list[Transition]:
+        """End ``key`` for good (what it watches left the registry): its live alarm is
+        cleared at once at ``ts`` (epoch s) with ``evidence`` saying why, and whatever was
+        counted towards a raise, escalation or clear is dropped, so a key that comes back
+        (a mode of the same name added again) starts afresh. Returns the ``cleared``
+        transition, or nothing when no alarm of ``key`` was live."""
+        s = self._streams.get(key)
+        if s is None:
+            return []
+        a = s.alarm
+        if a is None or a.state == "cleared":
+            self._reset(s)
+            s.raise_count = 0
+            return []
+        return [self._clear(s, a, ts, lambda: dict(evidence), None)]
+
+    def _clear(self, s: _Stream, a: Alarm, ts: float, evidence: Callable[[], dict[str, Any]],
+               reading_id: str | None) -> Transition:
+        """Clear the live alarm ``a`` of stream ``s`` at ``ts``; counters restart."""
+        prev = a.severity
+        a.state = "cleared"
+        a.cleared_at = ts
+        self._reset(s)
+        s.raise_count = 0
+        return self._transition(a, "cleared", ts, prev, evidence(), reading_id)
 
     def acknowledge(self, alarm_id: str, user: str, comment: str, ts: float) -> Transition:
         """Acknowledge an active alarm by a named ``user`` with a ``comment``; does not clear."""

@@ -59,6 +59,13 @@ from monitor.registry import Machine, Registry, check_machine
 from monitor.state_json import STATE_FORMAT, float_in, float_out, floats_in, floats_out, value_out
 from monitor.zones import ZoneLimits, zone_limits, zone_of
 
+#: Why an alarm closes when what it watches leaves the registry: the ``reason`` of its
+#: ``cleared`` transition's evidence (docs/alarms.md, "Alarms of what leaves the registry").
+MODE_REMOVED = "mode removed from the registry"
+EXCITATION_REMOVED = "excitation removed from the registry"
+POINT_RETIRED = "point retired from the registry"
+MACHINE_RETIRED = "machine retired from the registry"
+
 #: Severity of each sensor-health check (docs/alarms.md).
 SENSOR_FAULT_SEVERITY = {
     "flat_line": "alert", "clipping": "alert", "dropouts": "alert", "stale": "alert",
@@ -371,6 +378,9 @@ class MachineEvaluator:
         self._res_order: list[int] = []  # the same, ascending
         self._growth_fed: set[AlarmKey] = set()  # growth keys that ever fed the engine
         self._fault_seen: set[str] = set()  # points whose block checks ever fed the engine
+        # Whether every open alarm is known to fit this registry entry (a fresh evaluator
+        # has none; a restored one is checked by close_orphaned_alarms).
+        self._orphans_checked = True
         # Excitation frequencies (Hz) between which each (mode, excitation) pair can be
         # near its band (margin inside the approach band with hysteresis), widened by a
         # part in 10^9 so rounding never hides a pair (a stray candidate only costs the
@@ -399,6 +409,7 @@ class MachineEvaluator:
             a, b = (lo - fixed) / order, (hi - fixed) / order
             spans.append((a - 1e-9 * abs(a) - 1e-12, b + 1e-9 * abs(b) + 1e-12, k))
         self._res_keys = [self._key(None, "resonance_proximity", subj) for subj in g.subjects]
+        self._res_index = {subj: k for k, subj in enumerate(g.subjects)}
         self._pair_zetas = [g.zetas[k // g.n_exc] for k in range(len(self._pairs))]
         self._cand_edges = sorted({e for a, b, _ in spans for e in (a, b)})
         edges = [-math.inf, *self._cand_edges, math.inf]
@@ -541,6 +552,52 @@ class MachineEvaluator:
         """JSON of every alarm not cleared."""
         return [a.to_json() for a in self.engine.active()]
 
+    # ------------------------------------------------------------------ registry changes
+
+    def retired_reason(self, key: AlarmKey) -> str | None:
+        """Why an alarm of ``key`` can no longer be evaluated on this machine's registry
+        entry (its point, mode or excitation was taken out: :data:`POINT_RETIRED`,
+        :data:`MODE_REMOVED`, :data:`EXCITATION_REMOVED`), or None while it can."""
+        if key.point is not None and key.point not in self._limits:
+            return POINT_RETIRED
+        if key.kind == "resonance_proximity":
+            if key.subject in self._res_index:
+                return None
+            mode = key.subject.rpartition("@")[0]
+            return EXCITATION_REMOVED if any(m.name == mode for m in self.machine.modes) else MODE_REMOVED
+        if key.kind == "mode_shift":
+            return None if any(m.name == key.subject for m in self.machine.modes) else MODE_REMOVED
+        if key.kind == "amplitude_growth":
+            # An order feature of an order no longer excited; the fixed features and the
+            # bearing lines (present as the analysis finds them) stay.
+            name = key.subject
+            if name.endswith("x") and name not in ("1x", *(n for _, n in self._orders)):
+                return EXCITATION_REMOVED
+        return None
+
+    def close_orphaned_alarms(self, ts: float) -> list[Transition]:
+        """Close, at ``ts`` (epoch s), every live alarm that no longer fits this registry
+        entry (:meth:`retired_reason`; a mode deleted or renamed, a point retired, an
+        excitation order removed): a ``cleared`` transition each, evidence
+        ``{"reason": ..., "message": ...}``, in key order. Nothing else would ever clear
+        them. Only a restored evaluator (:meth:`restore`: the state may come from an
+        older entry) can hold such alarms, and it is checked once; later calls return
+        nothing at once."""
+        if self._orphans_checked:
+            return []
+        self._orphans_checked = True
+        out: list[Transition] = []
+        for key in sorted(self.engine.alarm_keys(), key=AlarmKey.text):
+            reason = self.retired_reason(key)
+            if reason is None:
+                continue
+            what = f"point {key.point!r}" if reason == POINT_RETIRED else f"{key.kind} subject {key.subject!r}"
+            out += self.engine.end(key, float(ts), {
+                "reason": reason,
+                "message": f"{what} is no longer in the registry entry of machine {self.machine.id!r}; "
+                           "nothing evaluates this alarm any more"})
+        return out
+
     # ------------------------------------------------------------------ persistence
 
     def snapshot(self) -> dict:
@@ -566,7 +623,13 @@ class MachineEvaluator:
     def restore(cls, machine: Machine, data: Mapping[str, Any]) -> MachineEvaluator:
         """Rebuild from :meth:`snapshot` (the machine's registry entry may have changed);
         a snapshot of an older format is converted first (:func:`upgrade_snapshot`).
-        ValueError naming the machine and the field for a snapshot that cannot be read."""
+        ValueError naming the machine and the field for a snapshot that cannot be read.
+
+        The entry may have changed since the snapshot was taken: the reading times of
+        points no longer in it are dropped (a retired point is not a silent one), and
+        alarms of what it no longer holds stay open until :meth:`close_orphaned_alarms`
+        closes them at the caller's time (the service does so in the transaction that
+        takes the state, recording and publishing the transitions)."""
         if data.get("machine") != machine.id:
             raise ValueError(f"snapshot is for machine {data.get('machine')!r}, not {machine.id!r}.")
         data = upgrade_snapshot(data)
@@ -580,15 +643,18 @@ class MachineEvaluator:
             ev._trends[(p, f)] = TrendWindow.restore(w)
         ev._ignored = {p: dict(c) for p, c in data.get("ignored", {}).items()}
         ev._speed.extend(tuple(floats_in(x)) for x in data.get("speed", []))
-        ev._last_ts = {p: float_in(t) for p, t in data.get("last_ts", {}).items()}
-        ev._intervals = {p: deque(floats_in(v), maxlen=10) for p, v in data.get("intervals", {}).items()}
-        index = {subj: k for k, subj in enumerate(ev._grid.subjects)}
+        points = ev._limits
+        ev._last_ts = {p: float_in(t) for p, t in data.get("last_ts", {}).items() if p in points}
+        ev._intervals = {p: deque(floats_in(v), maxlen=10) for p, v in data.get("intervals", {}).items()
+                         if p in points}
+        index = ev._res_index
         ev._fault_seen = {k.point for k in ev.engine.alarm_keys()
                           if k.kind == "sensor_fault" and k.subject != "stale" and k.point is not None}
         ev._res_seen = {index[k.subject] for k in ev.engine.alarm_keys()
                         if k.kind == "resonance_proximity" and k.subject in index}
         ev._res_order = sorted(ev._res_seen)
         ev._growth_fed = {k for k in ev.engine.alarm_keys() if k.kind == "amplitude_growth"}
+        ev._orphans_checked = not ev.engine.active()
         return ev
 
     # ------------------------------------------------------------------ internals
@@ -1056,6 +1122,27 @@ def evaluator_from_state(machine: Machine, state: Any) -> tuple[MachineEvaluator
     if isinstance(state, dict) and "evaluator" in state:
         return MachineEvaluator.restore(machine, state["evaluator"]), int(state.get("version") or 0)
     return MachineEvaluator(machine), 0
+
+
+def retire_state(state: Any, ts: float) -> tuple[dict[str, Any], list[Transition]]:
+    """The stored detector state (:func:`stored_state`) of a machine retired from the
+    registry, and the transitions that closed its alarms: every live alarm is cleared at
+    ``ts`` (epoch s), evidence reason :data:`MACHINE_RETIRED`, in key order. The rest of
+    the state is kept as it was (should the machine come back, its baselines and trends
+    are there); the version moves on by one and ``retired`` marks the retirement as done,
+    so it is done once."""
+    if not (isinstance(state, Mapping) and isinstance(state.get("evaluator"), Mapping)):
+        return {"version": 1, "retired": True}, []
+    snap = upgrade_snapshot(state["evaluator"])
+    engine = AlarmEngine.restore(dict(snap["engine"]))
+    machine = snap.get("machine")
+    out: list[Transition] = []
+    for key in sorted(engine.alarm_keys(), key=AlarmKey.text):
+        out += engine.end(key, float(ts), {
+            "reason": MACHINE_RETIRED,
+            "message": f"machine {machine!r} is no longer in the registry; nothing evaluates this alarm any more"})
+    return {"version": int(state.get("version") or 0) + 1, "retired": True,
+            "evaluator": dict(snap, engine=engine.snapshot())}, out
 
 
 def stored_state(evaluator: MachineEvaluator, version: int) -> dict[str, Any]:

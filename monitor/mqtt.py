@@ -655,9 +655,9 @@ class Publisher:
         """Replace the retained status of ``machine`` on ``{prefix}/{machine}/status``."""
         self.publish(self.settings.status_topic(machine), _json(status), retain=True, wait=wait)
 
-    def clear_status(self, machine: str) -> None:
+    def clear_status(self, machine: str, *, wait: bool = True) -> None:
         """Remove the retained status (an empty retained message deletes it)."""
-        self.publish(self.settings.status_topic(machine), b"", retain=True)
+        self.publish(self.settings.status_topic(machine), b"", retain=True, wait=wait)
 
     def publish_alarm(self, machine: str, event: Mapping[str, Any], *, wait: bool = True) -> None:
         """Publish one alarm transition on ``{prefix}/{machine}/alarms`` (not retained)."""

@@ -66,7 +66,14 @@ def follow(registry: Registry, evaluators: Mapping[str, MachineEvaluator], chang
     """The registry and evaluators after ``change``: a changed machine's evaluator is
     rebuilt on its new entry from its own state (baselines, trends, alarms kept); a new
     machine has no evaluator yet (the service loads it from the store on first use); a
-    retired one is dropped."""
+    retired one is dropped.
+
+    An alarm of a mode, point or excitation the new entry no longer holds stays open in
+    the rebuilt evaluator until the service takes its state in a transaction, where
+    :meth:`MachineEvaluator.close_orphaned_alarms` closes it and the transition is
+    recorded and published; a retired machine's stored alarms are closed by the service
+    (:func:`monitor.detection.retire_state`). docs/alarms.md, "Alarms of what leaves the
+    registry"."""
     machines = dict(registry.by_id())
     out = dict(evaluators)
     for mid, machine in change.machines.items():

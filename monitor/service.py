@@ -63,6 +63,7 @@ from monitor.detection import (
     MachineEvaluator,
     ReadingEvaluation,
     evaluator_from_state,
+    retire_state,
     stored_state,
 )
 from monitor.ingest import SPEED_STREAM, IngestLimits, Rejected, RejectionCounter, decode_message
@@ -86,8 +87,10 @@ from monitor.store.models import (
     SpeedReadingRow,
     utcnow,
 )
+from monitor.store.models import Machine as MachineRow
 from monitor.store.queries import alarm_as_json, alarm_counts_by_state
 from monitor.store.writes import (
+    CLOSED_STATES,
     existing_measurements,
     existing_speed_readings,
     insert_ignore,
@@ -271,7 +274,10 @@ class RetryState:
 class Outcome:
     """What became of one message (returned by :meth:`Service.handle` for tests/benches)."""
 
-    kind: str  # "waveform", "speed", "rejected", "duplicate", "processing_error"
+    #: "waveform", "speed", "rejected", "duplicate", "processing_error"; for changes made
+    #: outside the readings "acknowledged", "stale", "registry" (alarms closed by a
+    #: registry edit) and "retired" (a retired machine: its retained status is removed).
+    kind: str
     machine: str | None = None
     reason: str | None = None
     events: list[dict[str, Any]] = field(default_factory=list)
@@ -425,6 +431,10 @@ class Service:
         self._evaluators: dict[str, MachineEvaluator] = {}
         self._versions: dict[str, int | None] = {}
         self._views: dict[str, _MachineView] = {m.id: _MachineView() for m in self.registry.machines}
+        # Registry changes still to settle (monitor/registry_live.py): machines whose entry
+        # changed (alarms of what it no longer holds to close), retired machines.
+        self._unsettled: set[str] = set()
+        self._unretired: set[str] = set()
         self._last_ts: dict[tuple[str, str], float] = {}
         # Hot-path statements, built once (building costs about what running them does).
         self._versions_stmt: Any = None
@@ -473,12 +483,25 @@ class Service:
                     Measurement.machine_id, Measurement.point_id
                 )
             ).all()
+            # Registry changes made while the service was stopped: machines with open
+            # alarms (some may be of a mode or point since taken out; their states are
+            # checked at the first registry pass), and retired machines whose alarms and
+            # status nobody has closed yet.
+            with_open = s.scalars(select(Alarm.machine_id).where(Alarm.state.not_in(CLOSED_STATES))
+                                  .distinct()).all()
+            retired = s.execute(
+                select(DetectorState.machine_id, DetectorState.state["retired"].as_boolean())
+                .join(MachineRow, MachineRow.id == DetectorState.machine_id)
+                .where(MachineRow.active.is_(False))).all()
         for m, p, ts in rows:
             if ts is not None:
                 self._last_ts[(m, p)] = ts.timestamp()
         for m in self.registry.machines:
             self._evaluators[m.id] = MachineEvaluator(m)
             self._versions[m.id] = None  # loaded from the database on first use
+        known = self.registry.by_id()
+        self._unsettled = {m for m in with_open if m in known}
+        self._unretired = {m for m, done in retired if not done and m not in known}
 
     # -- detector state
 
@@ -486,9 +509,11 @@ class Service:
                      ) -> tuple[dict[str, MachineEvaluator], dict[str, list[Transition]]]:
         """Lock (PostgreSQL, in machine order so two processes cannot deadlock) and check
         the stored state versions of ``machines``, reloading an evaluator only when another
-        process moved its state on, and apply the acknowledgements made in the dashboard
-        (returned per machine for publishing; the dashboard has stored them already),
-        unless ``acks`` is false.
+        process moved its state on; close and record the alarms of what the registry no
+        longer holds (:meth:`_close_orphans`); and apply the acknowledgements made in the
+        dashboard (stored there already), unless ``acks`` is false. Returns the evaluators
+        and, per machine, those transitions made outside the readings, closings first,
+        for publishing; the caller writes the states of machines that have some.
 
         One query: the state rows joined to the machines' acknowledged alarms (the alarms
         still open and acknowledged: a few at most; only the detector-state rows are locked)."""
@@ -512,17 +537,19 @@ class Service:
             if self._versions.get(machine) != v:
                 self._reload(s, machine, v)
         evaluators = {m: self._evaluators[m] for m in machines}
+        out = self._close_orphans(s, evaluators)
         self._registry_follower.apply_baseline_restarts(s, evaluators, self._versions, self.clock())
         active = {
             (m, a.id): ev for m, ev in evaluators.items() for a in ev.engine.active() if a.state == "active"
         }
         if not (acks and active):
-            return evaluators, {}
+            return evaluators, out
         if any(m not in stored for m, _ in active):
             # Open alarms but no stored state row (removed by hand): the join cannot see
             # their acknowledgements, so ask the alarms alone.
-            return evaluators, self._sync_acks(s, evaluators)
-        out: dict[str, list[Transition]] = {}
+            for m, trans in self._sync_acks(s, evaluators).items():
+                out.setdefault(m, []).extend(trans)
+            return evaluators, out
         for machine, _v, ref, user, at, comment in rows:
             ev = active.pop((machine, ref), None) if ref is not None else None
             if ev is None:
@@ -531,29 +558,127 @@ class Service:
             out.setdefault(machine, []).append(ev.acknowledge(ref, user or "unknown", comment or "", when))
         return evaluators, out
 
+    def _close_orphans(self, s: Any, evaluators: dict[str, MachineEvaluator]) -> dict[str, list[Transition]]:
+        """Alarms of modes, points and excitations taken out of the registry since the
+        evaluators' state was written, closed now
+        (:meth:`MachineEvaluator.close_orphaned_alarms`) and recorded in this transaction,
+        per machine. Only an evaluator restored since its last check has any to close."""
+        out: dict[str, list[Transition]] = {}
+        now: float | None = None
+        for machine, ev in evaluators.items():
+            if now is None:
+                now = self.clock()
+            trans = ev.close_orphaned_alarms(now)
+            if trans:
+                record_transitions(s, trans)
+                out[machine] = trans
+                log.info("alarms closed: no longer in the registry", extra={
+                    "machine": machine, "alarms": [t.alarm_id for t in trans]})
+        return out
+
     def _follow_registry(self) -> None:
-        """Registry edits made since the last batch, live (monitor/registry_live.py)."""
+        """Registry edits made since the last batch, live (monitor/registry_live.py). A
+        machine whose entry changed is queued for :meth:`apply_registry_requests` to close
+        the alarms of what the entry no longer holds (the next batch touching it closes
+        them first, if it comes sooner); a retired one is queued to be retired."""
         with self._lock:  # the worker and the periodic thread both follow
             change = self._registry_follower.poll()
             if change is None:
                 return
+            before = self.registry.by_id()
             self.registry, self._evaluators = follow(self.registry, self._evaluators, change)
+            after = self.registry.by_id()
+            for mid in change.machines:
+                machine = after.get(mid)
+                if machine is None:
+                    if mid in before:
+                        self._unretired.add(mid)
+                        self._views.pop(mid, None)
+                        self._versions.pop(mid, None)
+                    continue
+                if before.get(mid) != machine:
+                    self._unsettled.add(mid)
+                    view = self._views.get(mid)
+                    if view is not None:  # a retired point's zone leaves the status
+                        kept = {p.id for p in machine.points}
+                        view.zones = {p: z for p, z in view.zones.items() if p in kept}
             for m in self.registry.machines:
                 self._views.setdefault(m.id, _MachineView())
                 if m.id not in self._evaluators:
                     self._versions[m.id] = None  # loaded from the store on first use
 
-    def apply_registry_requests(self) -> None:
-        """Registry edits, and baseline restarts of machines no batch has touched since
-        they were asked for (the periodic loop runs this)."""
+    def apply_registry_requests(self) -> list[dict[str, Any]]:
+        """Registry edits, live (the periodic loop runs this every 0.5 s): alarms of modes,
+        points and excitations taken out of a machine's entry are closed, recorded and
+        published; a retired machine's alarms likewise, and its retained status removed
+        (:meth:`_retire_machine`); baseline restarts of machines no batch has touched
+        since they were asked for are applied. Also what changed while the service was
+        stopped, at its first run. Returns the alarm events published."""
         self._follow_registry()
         known = self.registry.by_id()
-        machines = [m for m in self._registry_follower.pending_machines() if m in known]
+        with self._lock:
+            self._unsettled.intersection_update(known)
+            settle = sorted(self._unsettled)
+            retire = sorted(self._unretired - set(known))
+        machines = sorted({*settle, *(m for m in self._registry_follower.pending_machines() if m in known)})
+        outs: list[Outcome] = []
         if machines:
-            def work() -> None:
+            def work() -> list[Outcome]:
                 with self._lock, self.store.write_transaction() as s:
-                    self._take_states(s, machines, acks=False)
-            self._retry(work, machines)
+                    evaluators, closed = self._take_states(s, machines, acks=False)
+                    if not closed:
+                        return []
+                    # Written with the closings, keeping each row's reading time.
+                    kept = dict(s.execute(select(DetectorState.machine_id, DetectorState.ts)
+                                          .where(DetectorState.machine_id.in_(sorted(closed)))).all())
+                    self._save_states(s, {m: kept.get(m) for m in closed})
+                    done = [Outcome("registry", machine=m, events=self._events(s, [], [], trans),
+                                    status=self._status(m, evaluators[m])) for m, trans in closed.items()]
+                self._saved(closed)
+                return done
+
+            outs += self._retry(work, machines)
+            with self._lock:
+                self._unsettled.difference_update(settle)
+        for mid in retire:
+            try:
+                out = self._retry(lambda m=mid: self._retire_machine(m), [mid])
+            except Exception as exc:
+                if is_transient(exc) or self._stop.is_set():
+                    raise
+                out = None  # the state cannot be read: said once, not retried for ever
+                log.error("could not close the alarms of a retired machine", extra={
+                    "machine": mid, "error": short_cause(exc)})
+            with self._lock:
+                self._unretired.discard(mid)
+            if out is not None:
+                outs.append(out)
+        self._announce(outs)
+        return [e for o in outs for e in o.events]
+
+    def _retire_machine(self, machine: str) -> Outcome | None:
+        """Close the alarms of a machine retired from the registry
+        (:func:`monitor.detection.retire_state`), record them and write its state marked
+        retired, in one transaction; the outcome carries their events and removes the
+        machine's retained status when published. None when there is nothing to do: the
+        machine is active again, was never monitored (no state), or another process (or an
+        earlier run) retired it already."""
+        with self._lock, self.store.write_transaction() as s:
+            stmt = (select(DetectorState.state, DetectorState.ts)
+                    .join(MachineRow, MachineRow.id == DetectorState.machine_id)
+                    .where(DetectorState.machine_id == machine, MachineRow.active.is_(False)))
+            if self._pg:
+                stmt = stmt.with_for_update(of=DetectorState)
+            row = s.execute(stmt).one_or_none()
+            if row is None or (isinstance(row.state, dict) and row.state.get("retired")):
+                return None
+            state, trans = retire_state(row.state, self.clock())
+            ids = record_transitions(s, trans) if trans else []
+            save_detector_states(s, {machine: (state, row.ts)})
+            out = Outcome("retired", machine=machine, events=self._events(s, trans, ids, []))
+        log.info("machine retired: alarms closed, status removed", extra={
+            "machine": machine, "alarms": [t.alarm_id for t in trans]})
+        return out
 
     def _reload(self, s: Any, machine: str, version: int) -> None:
         state = s.execute(
@@ -771,13 +896,14 @@ class Service:
             assert r is not None
             with self._lock, self.store.write_transaction() as s:
                 letter_id = letter(s)
-                ev = self._take_states(s, machines, acks=False)[0][r.machine]
+                evs, outside = self._take_states(s, machines, acks=False)
+                ev, closed = evs[r.machine], outside.get(r.machine, [])
                 trans = self._processing_failed(ev, r, cause, letter_id)
                 ids = record_transitions(s, trans) if trans else []
                 self._save_states(s, {r.machine: r.ts})
                 out = Outcome("processing_error", machine=r.machine, reason="processing_error",
-                              events=self._events(s, trans, ids, []) if trans else [],
-                              status=self._status(r.machine, ev) if trans else None)
+                              events=self._events(s, trans, ids, closed) if trans or closed else [],
+                              status=self._status(r.machine, ev) if trans or closed else None)
             self._saved(machines)
             return out
 
@@ -1080,17 +1206,20 @@ class Service:
 
     # -- outbound payloads
 
-    def _events(self, s: Any, trans: Any, ids: list[int], acks: list[Transition]) -> list[dict[str, Any]]:
-        """Alarm events (REST alarm JSON with its current state, plus the transition)."""
+    def _events(self, s: Any, trans: Any, ids: list[int], outside: list[Transition]) -> list[dict[str, Any]]:
+        """Alarm events (REST alarm JSON with its current state, plus the transition):
+        first those made outside the readings and recorded already (``outside``: alarms
+        closed by a registry change, acknowledgements), which came before the readings'
+        own (``trans``, recorded as alarms ``ids``)."""
         out: list[dict[str, Any]] = []
-        rows = {a.id: a for a in s.execute(select(Alarm).where(Alarm.id.in_(ids))).scalars()} if ids else {}
-        for t, aid in zip(trans, ids, strict=False):
-            row = rows.get(aid)
+        for t in outside:
+            row = s.execute(select(Alarm).where(Alarm.ref == t.alarm_id).order_by(Alarm.id.desc()).limit(1)).scalar_one_or_none()
             body = alarm_as_json(row) if row is not None else dict(t.alarm)
             body.update(self._transition_fields(t))
             out.append(body)
-        for t in acks:
-            row = s.execute(select(Alarm).where(Alarm.ref == t.alarm_id).order_by(Alarm.id.desc()).limit(1)).scalar_one_or_none()
+        rows = {a.id: a for a in s.execute(select(Alarm).where(Alarm.id.in_(ids))).scalars()} if ids else {}
+        for t, aid in zip(trans, ids, strict=False):
+            row = rows.get(aid)
             body = alarm_as_json(row) if row is not None else dict(t.alarm)
             body.update(self._transition_fields(t))
             out.append(body)
@@ -1151,6 +1280,9 @@ class Service:
                     self.publisher.publish_alarm(out.machine, e, wait=False)
             if self.settings.alarms.publish_status and out.status is not None:
                 self.publisher.publish_status(out.machine, out.status, wait=False)
+            if self.settings.alarms.publish_status and out.kind == "retired":
+                # An empty retained message removes the status (docs/mqtt.md).
+                self.publisher.clear_status(out.machine, wait=False)
         except MqttError as exc:
             self.metrics.publish_failures.inc()
             log.warning("publishing failed", extra={"machine": out.machine, "error": str(exc)})
@@ -1467,13 +1599,14 @@ class Service:
         for m in self.registry.machines:
             def work(mid: str = m.id) -> Outcome | None:
                 with self._lock, self.store.write_transaction() as s:
-                    ev = self._take_states(s, [mid], acks=False)[0][mid]
+                    evs, outside = self._take_states(s, [mid], acks=False)
+                    ev, closed = evs[mid], outside.get(mid, [])
                     trans = ev.check_stale(now)
-                    if not trans:
+                    if not (trans or closed):
                         return None
-                    ids = record_transitions(s, trans)
+                    ids = record_transitions(s, trans) if trans else []
                     self._save_states(s, {mid: now})
-                    out = Outcome("stale", machine=mid, events=self._events(s, trans, ids, []),
+                    out = Outcome("stale", machine=mid, events=self._events(s, trans, ids, closed),
                                   status=self._status(mid, ev))
                 self._saved([mid])
                 return out
