@@ -9,7 +9,7 @@ import subprocess
 import sys
 import threading
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from pathlib import Path
 
 import paho.mqtt.client as paho
@@ -111,12 +111,14 @@ class Recorder:
 
 
 def service_process(broker_url: str, db_url: str, workdir: Path, *, client_id: str = "svc",
-                    group: str | None = None) -> subprocess.Popen:
-    """``whirlwatch run`` as a child process (its log in ``workdir/{client_id}.log``)."""
+                    group: str | None = None, extra: Sequence[str] = ()) -> subprocess.Popen:
+    """``whirlwatch run`` as a child process (its log in ``workdir/{client_id}.log``);
+    ``extra`` are further options of ``run`` (``--machines``, ``--metrics``, ...)."""
     cmd = [sys.executable, "-c", "from monitor.cli import main; main()", "run",
            "--broker", broker_url, "--database", db_url, "--client-id", client_id]
     if group:
         cmd += ["--shared-group", group]
+    cmd += list(extra)
     env = dict(os.environ, WHIRLWATCH_SERVICE_DATA_DIR=str(workdir))
     log = open(workdir / f"{client_id}.log", "ab")  # noqa: SIM115 (the child keeps it)
     try:
