@@ -106,3 +106,27 @@ def test_printable_keeps_any_text_storable() -> None:
     out = printable("id x\ud83d and a\x00b")
     assert out.encode("utf-8") and "\x00" not in out
     assert out == "id x\\ud83d and a\\x00b"
+
+
+def test_a_locked_sqlite_file_makes_the_write_transaction_fail_transiently(tmp_path: Path) -> None:
+    # SQLITE_BUSY (sqlite.org/rescode.html): another connection holds the write lock. The
+    # lock the service's write transaction takes first must fail as a retryable error, not
+    # as one that sets the batch's readings aside.
+    import sqlite3
+
+    from monitor.store import Store, upgrade
+
+    url = f"sqlite:///{tmp_path / 'locked.sqlite'}"
+    upgrade(url)
+    holder = sqlite3.connect(tmp_path / "locked.sqlite", isolation_level=None)
+    holder.execute("BEGIN EXCLUSIVE")
+    store = Store.open(url, busy_timeout_ms=100)
+    try:
+        with pytest.raises(Exception) as info, store.write_transaction():
+            pass
+    finally:
+        holder.execute("ROLLBACK")
+        holder.close()
+        store.close()
+    assert "locked" in str(info.value)
+    assert is_transient(info.value), type(info.value)

@@ -388,9 +388,10 @@ class Store:
         taken by their own queries instead.)"""
         with self.writer_gate(), self.transaction() as session:
             if self.engine.dialect.name == "sqlite":
-                # Straight on the driver's connection: through SQLAlchemy this no-op costs
-                # several times what SQLite spends on it.
-                session.connection().connection.driver_connection.execute(
+                # Through SQLAlchemy, so a lock or disk error arrives wrapped as its
+                # OperationalError, which the service retries (a raw driver error was taken
+                # for a bad reading and set aside).
+                session.connection().exec_driver_sql(
                     "UPDATE detector_state SET machine_id = machine_id WHERE 0")
             yield session
 
