@@ -14,9 +14,9 @@ import time
 import numpy as np
 import scipy.fft
 
-from monitor.analysis import analyse_waveform
-from monitor.readings import Waveform
-from monitor.registry import Machine, Point
+from monitor.analysis.waveform import analyse_waveform
+from monitor.model.readings import Waveform
+from monitor.model.registry import Machine, Point
 
 TARGET_RATIO = 6.0
 

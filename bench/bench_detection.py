@@ -20,10 +20,10 @@ from dataclasses import replace
 
 import numpy as np
 
-from monitor.analysis import analyse_waveform
-from monitor.detection import MachineEvaluator
-from monitor.readings import Waveform
-from monitor.registry import Machine, Mode, Point
+from monitor.analysis.waveform import analyse_waveform
+from monitor.detection.evaluator import MachineEvaluator
+from monitor.model.readings import Waveform
+from monitor.model.registry import Machine, Mode, Point
 
 FS = 25600.0
 N = 16384
@@ -75,7 +75,7 @@ def _measure(label: str, speed: float | None, quick: bool) -> list[dict]:
         w = _waveform(100 + i, speed, rng)
         ev.evaluate(analyse_waveform(w, m, p), w)
     reps = 3 if quick else 21
-    # As the service does at its start (monitor/service.py): the start-up heap (numpy,
+    # As the service does at its start (monitor/service/service.py): the start-up heap (numpy,
     # scipy, numba) is collected once and frozen, so a full collection does not walk it
     # again in the middle of a timed pass (seen: one 90 ms pause in 21 passes).
     gc.collect()

@@ -31,13 +31,13 @@ sys.path.insert(0, str(ROOT / "tests"))
 from broker import PrivateBroker, publish_many  # noqa: E402
 from sqlalchemy import func, select  # noqa: E402
 
-from monitor.analysis import analyse_waveform  # noqa: E402
-from monitor.ingest import decode_message  # noqa: E402
-from monitor.mqtt import _no_delay  # noqa: E402
-from monitor.registry import parse_registry  # noqa: E402
+from monitor.analysis.waveform import analyse_waveform  # noqa: E402
+from monitor.io.ingest import decode_message  # noqa: E402
+from monitor.io.mqtt import _no_delay  # noqa: E402
+from monitor.io.streams import encode_f32, iso_utc  # noqa: E402
+from monitor.model.registry import parse_registry  # noqa: E402
 from monitor.store import Store, import_registry, upgrade  # noqa: E402
 from monitor.store.models import Measurement  # noqa: E402
-from monitor.streams import encode_f32, iso_utc  # noqa: E402
 
 N, FS = 16_384, 25_600.0
 REG = {"machines": [{

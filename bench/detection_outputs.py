@@ -24,13 +24,13 @@ from typing import Any
 
 import numpy as np
 
-from monitor.analysis import analyse_waveform
-from monitor.detection import Detector, MachineEvaluator
-from monitor.ingest import decode_message
-from monitor.readings import Waveform
-from monitor.registry import load_registry
-from monitor.replay import load_streams
-from monitor.streams import parse_ts
+from monitor.analysis.waveform import analyse_waveform
+from monitor.detection.evaluator import Detector, MachineEvaluator
+from monitor.io.ingest import decode_message
+from monitor.io.replay import load_streams
+from monitor.io.streams import parse_ts
+from monitor.model.readings import Waveform
+from monitor.model.registry import load_registry
 
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT / "bench"))

@@ -14,7 +14,7 @@ from dashboard import queries
 from dashboard.db import db_session
 from dashboard.errors import BadRequest, Conflict, NotFound
 from dashboard.security import current, require
-from monitor.alarms import KINDS, SEVERITIES
+from monitor.detection.alarms import KINDS, SEVERITIES
 from monitor.store.models import Alarm
 
 bp = Blueprint("alarms", __name__, url_prefix="/alarms")

@@ -19,9 +19,10 @@ import numpy as np
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session, aliased
 
-from monitor import registry as reg
-from monitor.alarms import severity_rank
-from monitor.margins import margin_table
+from monitor.detection.alarms import severity_rank
+from monitor.detection.margins import margin_table
+from monitor.detection.zones import zone_limits
+from monitor.model import registry as reg
 from monitor.store.auth import create_api_token, verify_api_token
 from monitor.store.models import (
     Alarm,
@@ -42,7 +43,6 @@ from monitor.store.registry_sync import (
     recent_baseline_restarts,
     usable_modes,
 )
-from monitor.zones import zone_limits
 
 OPEN_STATES = ("active", "acknowledged")
 ZONE_ORDER = {"A": 1, "B": 2, "C": 3, "D": 4}
@@ -117,7 +117,7 @@ _MARGIN_CACHE_MAX = 4096
 
 def margins_for(m: Any, modes: list[Any], speed_hz: float | None) -> list[dict]:
     """Margin table (``MarginRow.to_json`` rows) at ``speed_hz``, computed by
-    monitor.margins; cached per machine set-up, mode set and speed."""
+    monitor.detection.margins; cached per machine set-up, mode set and speed."""
     if speed_hz is None or not modes:
         return []
     default = (m.settings or {}).get("required_margin_pct")

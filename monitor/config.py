@@ -184,7 +184,7 @@ SETTINGS: tuple[Setting, ...] = (
     Setting(
         "broker.receive_maximum",
         "int",
-        # A batch of the service (monitor.service.MAX_BATCH, 32) fills it; 16 drained a
+        # A batch of the service (monitor.service.service.MAX_BATCH, 32) fills it; 16 drained a
         # backlog about 10 % slower, 64 no faster (docs/mqtt.md, "Back-pressure").
         32,
         "Most received, unacknowledged messages the service holds at once (the back-pressure window; MQTT 5 Receive Maximum).",
@@ -316,7 +316,7 @@ SECTIONS: tuple[str, ...] = tuple(dict.fromkeys(s.section for s in SETTINGS))
 
 def broker_default(key: str) -> Any:
     """The registry's default of setting ``broker.{key}``: the one place broker defaults
-    are written (BrokerSettings and monitor.mqtt.MqttSettings take theirs from here)."""
+    are written (BrokerSettings and monitor.io.mqtt.MqttSettings take theirs from here)."""
     return BY_NAME[f"broker.{key}"].default
 
 

@@ -24,8 +24,8 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from monitor.ingest import IngestLimits
-from monitor.replay import Message, StreamPublisher, load_streams, replay
+from monitor.io.ingest import IngestLimits
+from monitor.io.replay import Message, StreamPublisher, load_streams, replay
 
 #: Where the sample streams live in a source checkout.
 SAMPLES = Path(__file__).resolve().parent.parent / "sample_streams"
@@ -150,7 +150,7 @@ def sample_messages() -> tuple[Path, list[Message], str]:
     if (SAMPLES / "plant.toml").is_file():
         return SAMPLES / "plant.toml", load_streams(sorted(SAMPLES.glob("*.jsonl"))), str(SAMPLES)
     from monitor.commands.simulate import plant_messages, plant_registry
-    from monitor.registry import dump_registry
+    from monitor.model.registry import dump_registry
 
     tmp = Path(tempfile.mkdtemp(prefix="whirlwatch-plant-"))
     reg = tmp / "plant.toml"
@@ -191,8 +191,8 @@ def run_demo(
     from sqlalchemy import func, select
 
     from monitor.config import load_settings
-    from monitor.registry import load_registry
-    from monitor.service import Service
+    from monitor.model.registry import load_registry
+    from monitor.service.service import Service
     from monitor.store import Store, create_user, import_registry, upgrade
     from monitor.store.models import Alarm, Measurement
 
@@ -245,7 +245,7 @@ def run_demo(
 
         def feed() -> None:
             # About 60 s of wall time for the whole plant history.
-            from monitor.streams import parse_ts
+            from monitor.io.streams import parse_ts
 
             span = parse_ts(messages[-1][1]["ts"]) - parse_ts(messages[0][1]["ts"])
             counter["n"] = replay(messages, pub, speedup=max(1.0, span / 60.0), max_gap_s=1.0,

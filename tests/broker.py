@@ -258,7 +258,7 @@ def publish_many(
 ) -> None:
     """Publish ``(topic, payload)`` pairs at QoS 1 as a sensor would, and wait for every PUBACK.
 
-    Uses paho directly (not ``monitor.mqtt``) so the tests' sender is independent of the
+    Uses paho directly (not ``monitor.io.mqtt``) so the tests' sender is independent of the
     code under test.
     """
     import paho.mqtt.client as paho

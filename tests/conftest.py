@@ -12,7 +12,7 @@ pytest_plugins.append("fixtures_db")  # databases: database_url, store, plant (t
 def pytest_sessionstart(session):
     # Compile the numba kernels once, before any test starts a service process with a
     # deadline: on a clean clone the first compilation takes several seconds, after which
-    # every process loads them from the cache beside monitor/compiled.py.
-    from monitor.compiled import warm_up
+    # every process loads them from the cache beside monitor/detection/kernels.py.
+    from monitor.detection.kernels import warm_up
 
     warm_up()

@@ -3,14 +3,14 @@
 The plant is invented ("Harbour Mill"); its numbers are demo data, never expected values.
 
 The first ``detected`` machines get their readings the way the service makes them:
-waveforms from monitor.simulate, analysed by monitor.analysis.analyse_waveform, evaluated
-by monitor.detection.Detector (baselines, zones, margins, trends), written by
+waveforms from monitor.sim.simulate, analysed by monitor.analysis.waveform.analyse_waveform, evaluated
+by monitor.detection.evaluator.Detector (baselines, zones, margins, trends), written by
 monitor.store.write_reading with the evaluation object, so the dashboard is tested on the
 shapes the service really writes. Alarms stay invented (fixed counts for the tests); the
 detector's own transitions are not written. The other machines (bulk rows for the
 statement-count test and the benchmark) are synthetic rows in the same shapes: an
 evaluation copied from a real one with this row's values; the newest reading of each
-point carries every feature and its margin rows (from monitor.margins), older ones only
+point carries every feature and its margin rows (from monitor.detection.margins), older ones only
 the overall feature and no margin rows, to keep a million rows small (the service's rows
 are about 4 kB of evaluation JSON each).
 """
@@ -25,14 +25,14 @@ import functools
 import numpy as np
 from sqlalchemy import insert, select
 
-from monitor.analysis import analyse_waveform
-from monitor.detection import Detector
-from monitor.margins import margin_table
-from monitor.registry import Machine as RegMachine
-from monitor.registry import Mode as RegMode
-from monitor.registry import Point as RegPoint
-from monitor.registry import Registry
-from monitor.simulate import MachineModel, ModalMode, simulate_reading
+from monitor.analysis.waveform import analyse_waveform
+from monitor.detection.evaluator import Detector
+from monitor.detection.margins import margin_table
+from monitor.model.registry import Machine as RegMachine
+from monitor.model.registry import Mode as RegMode
+from monitor.model.registry import Point as RegPoint
+from monitor.model.registry import Registry
+from monitor.sim.simulate import MachineModel, ModalMode, simulate_reading
 from monitor.store.auth import create_user
 from monitor.store.db import make_engine, session_factory
 from monitor.store.migrate import upgrade_engine

@@ -83,7 +83,7 @@ def store(database_url: str):
 
 def small_registry():
     """Two invented machines: a fan with two points and two modes, a pump with one point."""
-    from monitor.registry import Machine, Mode, Point, Registry
+    from monitor.model.registry import Machine, Mode, Point, Registry
 
     return Registry(
         machines=(
@@ -128,7 +128,7 @@ def plant(store):
 
 def make_analysis(machine: str = "fan-7", point: str = "de-h", ts: float = 1_780_000_000.0, *, overall: float = 2.5, n_bins: int = 1025, seed: int = 0):
     """A ReadingAnalysis with random spectra (inputs only; never an expected value)."""
-    from monitor.analysis import OrderAmplitude, Peak, ReadingAnalysis, Spectrum
+    from monitor.analysis.waveform import OrderAmplitude, Peak, ReadingAnalysis, Spectrum
 
     rng = np.random.default_rng(seed)
     freq = np.arange(n_bins) * 12.5

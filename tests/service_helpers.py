@@ -16,8 +16,8 @@ import paho.mqtt.client as paho
 from paho.mqtt.enums import CallbackAPIVersion
 from sqlalchemy import func, select
 
-from monitor.registry import load_registry
-from monitor.replay import load_streams, retimed
+from monitor.io.replay import load_streams, retimed
+from monitor.model.registry import load_registry
 from monitor.store import Store, import_registry, upgrade
 from monitor.store.models import Measurement
 

@@ -28,9 +28,9 @@ from pathlib import Path
 
 from service_helpers import PLANT, SAMPLES
 
-from monitor.registry import Registry, dump_registry, load_registry
-from monitor.replay import load_streams
-from monitor.streams import iso_utc, parse_ts
+from monitor.io.replay import load_streams
+from monitor.io.streams import iso_utc, parse_ts
+from monitor.model.registry import Registry, dump_registry, load_registry
 
 #: Passes of the six-week sample story in the month.
 PASSES = 5

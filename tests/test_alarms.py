@@ -7,7 +7,7 @@ import json
 import numpy as np
 import pytest
 
-from monitor.alarms import AlarmEngine, AlarmKey, levels_above
+from monitor.detection.alarms import AlarmEngine, AlarmKey, levels_above
 
 KEY = AlarmKey("fan-1", "de-h", "amplitude_growth", "overall")
 

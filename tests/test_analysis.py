@@ -7,9 +7,9 @@ import numpy as np
 import pytest
 from scipy import constants
 
-from monitor.analysis import analyse_waveform, analysis_to_json, severity_band_hz
-from monitor.readings import Waveform
-from monitor.registry import Machine, Point
+from monitor.analysis.waveform import analyse_waveform, analysis_to_json, severity_band_hz
+from monitor.model.readings import Waveform
+from monitor.model.registry import Machine, Point
 
 FS = 5120.0
 N = 16384

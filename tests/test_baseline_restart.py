@@ -16,7 +16,7 @@ from sqlalchemy import select
 from test_registry_edits import Api, newest_evaluation, run_bounded, settings_for, waveforms
 
 from monitor.cli import main as cli
-from monitor.service import Service
+from monitor.service.service import Service
 from monitor.store import Store
 from monitor.store.models import BaselineRestart, DetectorState
 

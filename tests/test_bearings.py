@@ -8,15 +8,15 @@ import numpy as np
 import pytest
 from scipy import constants, signal
 
-from monitor import simulate
-from monitor.bearings import (
+from monitor.analysis.bearings import (
     BearingGeometry,
     analyse_bearing,
     choose_band,
     envelope_spectrum,
     spectral_kurtosis,
 )
-from monitor.spectrum import amplitude_at
+from monitor.analysis.spectrum import amplitude_at
+from monitor.sim import simulate
 
 # CWRU bearing data set, drive-end bearing (open data set): 9 balls, d = 0.3126 in,
 # D = 1.537 in, alpha = 0 (REFERENCES.md, "Rolling-element bearing defect frequencies")

@@ -15,7 +15,7 @@ import pytest
 from broker import read_mosquitto_conf
 
 from monitor.config import BY_NAME, BrokerSettings, broker_default
-from monitor.mqtt import MqttSettings
+from monitor.io.mqtt import MqttSettings
 
 ROOT = Path(__file__).resolve().parent.parent
 MQTT_DOC = (ROOT / "docs" / "mqtt.md").read_text(encoding="utf-8")

@@ -36,8 +36,8 @@ from service_helpers import (
 from sqlalchemy import func, select
 
 from monitor.config import load_settings
-from monitor.mqtt import InboundMessage, MessageSource, MqttSettings
-from monitor.service import Service
+from monitor.io.mqtt import InboundMessage, MessageSource, MqttSettings
+from monitor.service.service import Service
 from monitor.store import Store
 from monitor.store.models import Measurement
 
@@ -192,9 +192,14 @@ def test_in_flight_count_returns_to_zero_after_a_broker_restart(fresh_mosquitto:
                             reconnect_min_s=0.1, reconnect_max_s=0.5)
     source = MessageSource(settings)
     seen: set[bytes] = set()
+    published = threading.Event()
 
     def slow(message: InboundMessage) -> None:
-        time.sleep(0.02)  # slower than the sender: the hand-off queue stays full
+        # Nothing is handled until every message is at the broker, then slower than the
+        # broker sends: the hand-off queue is full when the broker restarts, however slow
+        # the sender was on a loaded machine.
+        published.wait(60)
+        time.sleep(0.02)
         seen.add(message.payload)
         source.ack(message)
 
@@ -203,6 +208,7 @@ def test_in_flight_count_returns_to_zero_after_a_broker_restart(fresh_mosquitto:
     try:
         n = 150
         publish_many(broker, [("restart/fan-1/de-h/waveform", b"m%d" % i) for i in range(n)])
+        published.set()
         assert wait_for(lambda: len(seen) >= 20, 10, 0.01)
         broker.restart()  # clean stop: the session and its unacknowledged messages are kept
         assert wait_for(lambda: len(seen) >= n, 30, 0.05)

@@ -11,10 +11,10 @@ import pytest
 from click.testing import CliRunner
 
 from monitor.cli import main
-from monitor.readings import SpeedReading, Waveform
-from monitor.registry import Machine, Point, Registry, dump_registry
-from monitor.simulate import MachineModel, simulate_reading
-from monitor.streams import reading_message, write_stream
+from monitor.io.streams import reading_message, write_stream
+from monitor.model.readings import SpeedReading, Waveform
+from monitor.model.registry import Machine, Point, Registry, dump_registry
+from monitor.sim.simulate import MachineModel, simulate_reading
 
 FS = 2560.0
 N = 8192

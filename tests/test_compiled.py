@@ -1,7 +1,7 @@
-"""The compiled kernels (monitor/compiled.py) against numpy and scipy.
+"""The compiled kernels (monitor/detection/kernels.py) against numpy and scipy.
 
 Selections must leave at each wanted rank the value a full sort puts there, so Theil-Sen
-fits are the general numpy path's (monitor.growth.theil_sen_many) to the bit and scipy.stats.theilslopes' (the reference library)
+fits are the general numpy path's (monitor.detection.growth.theil_sen_many) to the bit and scipy.stats.theilslopes' (the reference library)
 to rounding; the block scan must find what numpy's maximum, minimum and comparisons find.
 """
 
@@ -11,14 +11,14 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from monitor.compiled import block_scan, theil_sen_rows
-from monitor.growth import (
+from monitor.detection.growth import (
     _increasing_plan,
     _theil_sen_increasing,
     sorted_median,
     theil_sen_many,
 )
-from monitor.health import _mad_lower_bound, _subset_median_and_bound
+from monitor.detection.health import _mad_lower_bound, _subset_median_and_bound
+from monitor.detection.kernels import block_scan, theil_sen_rows
 
 
 def _time_axis(rng: np.random.Generator, n: int) -> np.ndarray:

@@ -9,10 +9,10 @@ import math
 import numpy as np
 import pytest
 
-from monitor.analysis import OrderAmplitude, ReadingAnalysis, Spectrum
-from monitor.detection import Detector, MachineEvaluator, validate_machine
-from monitor.readings import SpeedReading, Waveform
-from monitor.registry import Machine, Mode, Point, Registry
+from monitor.analysis.waveform import OrderAmplitude, ReadingAnalysis, Spectrum
+from monitor.detection.evaluator import Detector, MachineEvaluator, validate_machine
+from monitor.model.readings import SpeedReading, Waveform
+from monitor.model.registry import Machine, Mode, Point, Registry
 
 FS = 25600.0
 DAY = 86400.0
@@ -307,7 +307,7 @@ def test_evaluation_has_every_field_and_equals_its_dataclass_copy():
     # set, and the object must equal one made through the dataclass's own constructor.
     from dataclasses import fields, replace
 
-    from monitor.detection import ReadingEvaluation
+    from monitor.detection.evaluator import ReadingEvaluation
 
     ev = MachineEvaluator(_machine())
     e = ev.evaluate(_analysis(0.0, 16.5, overall=3.0, rid="r-1"), _waveform(0.0))
@@ -330,10 +330,10 @@ def test_waveform_without_analysis_checks_health_only():
 
 
 def test_mode_shift_findings_raise_escalate_and_clear_at_once():
-    # Shifts from monitor.modes.mode_shift: (identified - stored) / stored x 100 against a
+    # Shifts from monitor.modes.identify.mode_shift: (identified - stored) / stored x 100 against a
     # 5 % tolerance (common practice); beyond twice the tolerance the alarm is an alert
     # (docs/alarms.md). One test is one reading: no persistence.
-    from monitor.modes import compare_modes
+    from monitor.modes.identify import compare_modes
 
     m = _machine()
     ev = MachineEvaluator(m)

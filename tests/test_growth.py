@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from monitor.growth import (
+from monitor.detection.growth import (
     MAD_TO_SIGMA,
     Baseline,
     TrendWindow,

@@ -5,9 +5,15 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from monitor.health import _mad_lower_bound, _median_and_mad, check_block, check_waveform, is_stale
-from monitor.readings import Waveform
-from monitor.registry import Point
+from monitor.detection.health import (
+    _mad_lower_bound,
+    _median_and_mad,
+    check_block,
+    check_waveform,
+    is_stale,
+)
+from monitor.model.readings import Waveform
+from monitor.model.registry import Point
 
 FS = 25600.0
 N = 16384

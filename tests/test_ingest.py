@@ -19,7 +19,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from monitor.ingest import (
+from monitor.io.ingest import (
     DEAD_LETTER_BYTES,
     REJECTION_REASONS,
     SPEED_STREAM,
@@ -31,8 +31,8 @@ from monitor.ingest import (
     encode_waveform,
     parse_topic,
 )
-from monitor.readings import SpeedReading, Waveform
-from monitor.registry import parse_registry
+from monitor.model.readings import SpeedReading, Waveform
+from monitor.model.registry import parse_registry
 
 NOW = 1_780_000_000.0  # a fixed "now" (2026-05-28) so the age checks do not depend on the clock
 DOCS = Path(__file__).resolve().parent.parent / "docs" / "mqtt.md"

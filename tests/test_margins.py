@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from scipy import signal
 
-from monitor.margins import (
+from monitor.detection.margins import (
     COMMON_PRACTICE_MARGIN_PCT,
     MarginGrid,
     MarginRows,
@@ -21,7 +21,7 @@ from monitor.margins import (
     sdof_amplification,
     separation_margin,
 )
-from monitor.registry import Machine, Mode
+from monitor.model.registry import Machine, Mode
 
 
 class TestApi684RequiredMargin:

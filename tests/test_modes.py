@@ -1,4 +1,4 @@
-"""Mode identification (monitor.modes) and the ``bumptest`` / ``passage`` commands.
+"""Mode identification (monitor.modes.identify) and the ``bumptest`` / ``passage`` commands.
 
 Every expected value comes from a textbook formula, a worked example, API 684's rule or
 scipy as an independent reference; the signals are closed-form responses, scipy's own
@@ -19,12 +19,18 @@ from scipy import integrate, optimize, signal
 from scipy.constants import g as G_SI
 from scipy.constants import inch
 
-from monitor import modes
 from monitor.cli import main
-from monitor.readings import SpeedReading, Waveform
-from monitor.registry import Machine, Mode, Point, Registry, dump_registry
-from monitor.simulate import MachineModel, ModalMode, SpeedProfile, simulate_run, simulate_signal
-from monitor.streams import reading_message, write_stream
+from monitor.io.streams import reading_message, write_stream
+from monitor.model.readings import SpeedReading, Waveform
+from monitor.model.registry import Machine, Mode, Point, Registry, dump_registry
+from monitor.modes import identify as modes
+from monitor.sim.simulate import (
+    MachineModel,
+    ModalMode,
+    SpeedProfile,
+    simulate_run,
+    simulate_signal,
+)
 
 T0 = 1772431200.0  # 2026-03-02T06:00:00Z
 
@@ -493,7 +499,7 @@ class TestBumptestCommand:
     def test_record_raises_then_clears_a_mode_shift_alarm(self, tmp_path: Path, database_url: str) -> None:
         from sqlalchemy import select
 
-        from monitor.detection import MachineEvaluator
+        from monitor.detection.evaluator import MachineEvaluator
         from monitor.store import Store, upgrade
         from monitor.store.models import Alarm, AlarmTransitionRow, DetectorState
 

@@ -24,7 +24,7 @@ import pytest
 from broker import PrivateBroker, publish_many
 from paho.mqtt.enums import CallbackAPIVersion
 
-from monitor.mqtt import (
+from monitor.io.mqtt import (
     InboundMessage,
     MessageSource,
     MqttConfigError,
@@ -138,7 +138,7 @@ class TestSettings:
 
 CONSUMER = r"""
 import json, signal, sys, threading
-from monitor.mqtt import MessageSource, MqttSettings
+from monitor.io.mqtt import MessageSource, MqttSettings
 url, client_id, protocol, mode, prefix = sys.argv[1:6]
 source = MessageSource(MqttSettings(url=url, client_id=client_id, protocol=protocol,
                                     prefix=prefix, reconnect_min_s=0.1, reconnect_max_s=0.5))

@@ -14,7 +14,7 @@ import uuid
 import pytest
 from broker import PrivateBroker, publish_many
 
-from monitor.mqtt import InboundMessage, MessageSource, MqttSettings, wait_until
+from monitor.io.mqtt import InboundMessage, MessageSource, MqttSettings, wait_until
 
 pytestmark = pytest.mark.broker
 

@@ -17,18 +17,18 @@ from service_helpers import PLANT, plant_store
 from sqlalchemy import func, select
 
 from dashboard import create_app
-from monitor.analysis import analyse_waveform
+from monitor.analysis.waveform import analyse_waveform
 from monitor.config import load_settings
-from monitor.ingest import IngestLimits
-from monitor.readings import Waveform
-from monitor.registry import UNITS_BY_QUANTITY, Machine, Point
-from monitor.replay import load_streams
-from monitor.service import Service
+from monitor.io.ingest import IngestLimits
+from monitor.io.replay import load_streams
+from monitor.io.streams import iso_utc
+from monitor.model.readings import Waveform
+from monitor.model.registry import UNITS_BY_QUANTITY, Machine, Point
+from monitor.service.service import Service
 from monitor.store import Store
 from monitor.store.auth import create_api_token, create_user
 from monitor.store.models import DeadLetter, SpectrumSnapshot, pack_amplitudes
 from monitor.store.writes import insert_many_ignore, snapshot_rows
-from monitor.streams import iso_utc
 
 BACKENDS = ["sqlite", pytest.param("postgresql", marks=pytest.mark.postgres)]
 #: Largest finite IEEE 754 binary32 value (3.4028235e38), the store's amplitude type.

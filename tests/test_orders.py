@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from scipy import constants
 
-from monitor.orders import normalise_orders, order_amplitudes
+from monitor.analysis.orders import normalise_orders, order_amplitudes
 
 FS = 4096.0
 N = 16384

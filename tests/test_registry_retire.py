@@ -19,13 +19,13 @@ from service_helpers import PLANT, plant_store, traffic
 from sqlalchemy import select
 from test_registry_edits import Api, run_bounded, settings_for
 
-from monitor.alarms import TRANSITIONS
 from monitor.cli import main as cli
 from monitor.config import load_settings
-from monitor.service import Service
+from monitor.detection.alarms import TRANSITIONS
+from monitor.io.streams import parse_ts
+from monitor.service.service import Service
 from monitor.store import Store
 from monitor.store.models import Alarm, AlarmTransitionRow
-from monitor.streams import parse_ts
 
 MODE_REMOVED = "mode removed from the registry"
 POINT_RETIRED = "point retired from the registry"
@@ -326,8 +326,8 @@ def test_alarm_of_a_removed_excitation_closes_once() -> None:
 
     from fixtures_db import small_registry
 
-    from monitor.detection import MachineEvaluator
-    from monitor.readings import SpeedReading
+    from monitor.detection.evaluator import MachineEvaluator
+    from monitor.model.readings import SpeedReading
 
     fan = small_registry().machine("fan-7")  # invented machine: inputs only
     ev = MachineEvaluator(fan)

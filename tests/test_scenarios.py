@@ -1,4 +1,4 @@
-"""Whole scenarios from the physics simulator (monitor/simulate.py) through the analysis
+"""Whole scenarios from the physics simulator (monitor/sim/simulate.py) through the analysis
 (analyse_waveform) and detection: resonance passage, unbalance growth, a failing sensor.
 
 Expected values come from published rules and physical laws, never from the simulator's
@@ -12,11 +12,11 @@ from dataclasses import replace
 
 import pytest
 
-from monitor.analysis import analyse_waveform
-from monitor.detection import MachineEvaluator
-from monitor.readings import SpeedReading
-from monitor.registry import Machine, Mode, Point
-from monitor.simulate import (
+from monitor.analysis.waveform import analyse_waveform
+from monitor.detection.evaluator import MachineEvaluator
+from monitor.model.readings import SpeedReading
+from monitor.model.registry import Machine, Mode, Point
+from monitor.sim.simulate import (
     MachineModel,
     ModalMode,
     SensorFault,
@@ -160,7 +160,7 @@ def test_growing_bearing_defect_raises_a_growth_alarm_on_its_defect_frequency():
     # Outer-race defect: impacts at BPFO = n fr / 2 (1 - d/D cos a) (Randall and Antoni 2011)
     # ringing a housing resonance; the envelope line at BPFO grows out of the floor while the
     # overall velocity hardly moves. Geometry: the CWRU drive-end bearing (REFERENCES.md).
-    from monitor.simulate import BearingDefect, BearingGeometry
+    from monitor.sim.simulate import BearingDefect, BearingGeometry
 
     geometry = BearingGeometry(9, 0.3126 * 25.4, 1.537 * 25.4)
     fs, n, speed = 5120.0, 8192, 24.6

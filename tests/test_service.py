@@ -20,7 +20,7 @@ from service_helpers import (
 from sqlalchemy import select
 
 from monitor.config import load_settings
-from monitor.service import Service
+from monitor.service.service import Service
 from monitor.store import Store
 from monitor.store.models import Alarm, DeadLetter
 

@@ -32,12 +32,12 @@ from service_helpers import (
 )
 from sqlalchemy import select
 
-from monitor.analysis import analyse_waveform
+from monitor.analysis.waveform import analyse_waveform
 from monitor.config import load_settings
-from monitor.detection import MachineEvaluator
-from monitor.ingest import decode_message
-from monitor.registry import load_registry
-from monitor.service import Service
+from monitor.detection.evaluator import MachineEvaluator
+from monitor.io.ingest import decode_message
+from monitor.model.registry import load_registry
+from monitor.service.service import Service
 from monitor.store import Store
 from monitor.store.models import Alarm, AlarmTransitionRow, DetectorState
 

@@ -42,7 +42,7 @@ from service_helpers import (
 from sqlalchemy import select, text
 from test_service_batches import settings_for, single_feed, stored_state
 
-from monitor.service import Service
+from monitor.service.service import Service
 from monitor.store import Store
 from monitor.store.models import Alarm, AlarmTransitionRow, DeadLetter
 

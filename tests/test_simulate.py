@@ -8,8 +8,8 @@ import numpy as np
 import pytest
 from scipy import signal
 
-from monitor.readings import SpeedReading, Waveform
-from monitor.simulate import (
+from monitor.model.readings import SpeedReading, Waveform
+from monitor.sim.simulate import (
     BearingDefect,
     BearingGeometry,
     MachineModel,

@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from scipy import constants, signal
 
-from monitor import spectrum as sp
+from monitor.analysis import spectrum as sp
 
 FS = 2048.0
 

@@ -5,8 +5,8 @@ import math
 import numpy as np
 import pytest
 
-from monitor import spectrum as sp
-from monitor.speed import crlb_frequency_var, estimate_speed, speed_from_tach
+from monitor.analysis import spectrum as sp
+from monitor.analysis.speed import crlb_frequency_var, estimate_speed, speed_from_tach
 
 FS = 2048.0
 N = 8192
@@ -90,7 +90,7 @@ def test_spectrum_only_path_is_close_and_honest():
     assert rms < 0.01 * FS / N  # a hundredth of a bin (issue 2 frequency target)
     # expected 1: the stated uncertainty should describe the observed spread. tolerance:
     # wider than the +-25 % above because this path states 2.2 x the Cramer-Rao deviation,
-    # a loss factor measured on our own estimator (monitor/speed.py _SPECTRAL_PATH_LOSS),
+    # a loss factor measured on our own estimator (monitor/analysis/speed.py _SPECTRAL_PATH_LOSS),
     # not a published value; engineering choice
     assert 0.6 < rms / math.sqrt(np.mean(np.square(uncs))) < 1.6
 

@@ -20,17 +20,17 @@ from fixtures_db import fresh_database
 from service_helpers import PLANT, measurement_count, plant_store
 from sqlalchemy import select
 
-from monitor.alarms import AlarmEngine, AlarmKey
 from monitor.config import load_settings
-from monitor.detection import MachineEvaluator, evaluator_from_state, stored_state
-from monitor.growth import Baseline, TrendWindow
-from monitor.registry import load_registry
-from monitor.replay import load_streams
-from monitor.service import Service
+from monitor.detection.alarms import AlarmEngine, AlarmKey
+from monitor.detection.evaluator import MachineEvaluator, evaluator_from_state, stored_state
+from monitor.detection.growth import Baseline, TrendWindow
+from monitor.io.replay import load_streams
+from monitor.io.streams import iso_utc
+from monitor.model.registry import load_registry
+from monitor.service.service import Service
 from monitor.store import Store
 from monitor.store.models import DetectorState
 from monitor.store.writes import save_detector_states
-from monitor.streams import iso_utc
 
 SAMPLES = PLANT.parent
 BACKENDS = ["sqlite", pytest.param("postgresql", marks=pytest.mark.postgres)]
@@ -220,7 +220,7 @@ def test_empty_evaluator_round_trips(plant_url: str) -> None:
 
 
 def test_every_nan_keeps_its_bits_and_strings_keep_their_text() -> None:
-    from monitor.state_json import float_in, float_out, value_in, value_out
+    from monitor.detection.state_json import float_in, float_out, value_in, value_out
 
     # IEEE 754: NaNs differ by sign and payload; inf - inf gives the processor's default
     # NaN (on x86 with the sign bit set), not the 0x7ff8... that float("nan") has.
@@ -246,9 +246,9 @@ FORMAT_1 = Path(__file__).parent / "data" / "detector_state_format1_sp-2.json"
 def sample_readings(machine_id: str, start: int, stop: int) -> list:
     """(analysis, waveform) of waveforms ``start:stop`` of one sample stream, through the
     real decoding and analysis, at their recorded times."""
-    from monitor.analysis import analyse_waveform
-    from monitor.ingest import decode_message
-    from monitor.streams import parse_ts
+    from monitor.analysis.waveform import analyse_waveform
+    from monitor.io.ingest import decode_message
+    from monitor.io.streams import parse_ts
 
     registry = load_registry(PLANT)
     machine = registry.machine(machine_id)
@@ -306,10 +306,10 @@ def test_unknown_format_is_refused() -> None:
 from hypothesis import HealthCheck, given, settings  # noqa: E402
 from hypothesis import strategies as st  # noqa: E402
 
-from monitor.analysis import OrderAmplitude, ReadingAnalysis, Spectrum  # noqa: E402
-from monitor.readings import SpeedReading, Waveform  # noqa: E402
-from monitor.registry import Machine, Mode, Point, Registry  # noqa: E402
-from monitor.state_json import value_out  # noqa: E402
+from monitor.analysis.waveform import OrderAmplitude, ReadingAnalysis, Spectrum  # noqa: E402
+from monitor.detection.state_json import value_out  # noqa: E402
+from monitor.model.readings import SpeedReading, Waveform  # noqa: E402
+from monitor.model.registry import Machine, Mode, Point, Registry  # noqa: E402
 from monitor.store import import_registry  # noqa: E402
 
 FS = 2560.0

@@ -10,8 +10,8 @@ import pytest
 from fixtures_db import make_analysis
 from sqlalchemy import event, func, select
 
-from monitor.alarms import Transition
-from monitor.readings import SpeedReading
+from monitor.detection.alarms import Transition
+from monitor.model.readings import SpeedReading
 from monitor.store import (
     AlarmTransitionInput,
     acknowledge_alarm,

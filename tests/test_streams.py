@@ -10,10 +10,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from monitor.ingest import IngestLimits, decode_message
-from monitor.readings import SpeedReading, Waveform
-from monitor.registry import load_registry
-from monitor.streams import (
+from monitor.io.ingest import IngestLimits, decode_message
+from monitor.io.streams import (
     StreamError,
     read_stream,
     reading_message,
@@ -23,6 +21,8 @@ from monitor.streams import (
     waveform_topic,
     write_stream,
 )
+from monitor.model.readings import SpeedReading, Waveform
+from monitor.model.registry import load_registry
 
 SAMPLES = Path(__file__).resolve().parent.parent / "sample_streams"
 # 2026-03-02T06:00:00Z as epoch seconds (Python datetime, independent of our code)

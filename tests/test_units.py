@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from scipy import constants
 
-from monitor import units
+from monitor.model import units
 
 
 class TestConvert:

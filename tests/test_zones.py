@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import pytest
 
-from monitor.zones import CLASS_LIMITS_MM_S, next_boundary, zone_limits, zone_of
+from monitor.detection.zones import CLASS_LIMITS_MM_S, next_boundary, zone_limits, zone_of
 
 # ISO 10816-3:2009 Table A.1/A.2, from memory (REFERENCES.md): A/B, B/C, C/D in mm/s RMS.
 ISO_TABLE = {
@@ -82,7 +82,7 @@ def test_unknown_class_rejected():
 
 
 def test_table_covers_registry_classes():
-    from monitor.registry import MACHINE_CLASSES
+    from monitor.model.registry import MACHINE_CLASSES
 
     assert set(CLASS_LIMITS_MM_S) == set(MACHINE_CLASSES)
 

@@ -1,6 +1,6 @@
 """``whirlwatch analyse FILE``: analyse every waveform of a stream file.
 
-Each line goes through ``monitor.ingest.decode_message``, so a file is validated exactly
+Each line goes through ``monitor.io.ingest.decode_message``, so a file is validated exactly
 like live MQTT traffic (the freshness check excepted: a recording is old by nature).
 A waveform without its own speed takes the latest speed reading of its machine when that
 reading is at most :data:`SPEED_MATCH_S` seconds away; otherwise the analysis estimates
@@ -20,11 +20,11 @@ from typing import Any
 
 import click
 
-from monitor.analysis import ReadingAnalysis, analyse_waveform, analysis_to_json
-from monitor.ingest import SPEED_STREAM, IngestLimits, Rejected, decode_message
-from monitor.readings import SpeedReading, Waveform
-from monitor.registry import Registry, RegistryError, load_registry
-from monitor.streams import DEFAULT_PREFIX, StreamError, iso_utc, read_stream
+from monitor.analysis.waveform import ReadingAnalysis, analyse_waveform, analysis_to_json
+from monitor.io.ingest import SPEED_STREAM, IngestLimits, Rejected, decode_message
+from monitor.io.streams import DEFAULT_PREFIX, StreamError, iso_utc, read_stream
+from monitor.model.readings import SpeedReading, Waveform
+from monitor.model.registry import Registry, RegistryError, load_registry
 
 #: Largest gap (s) between a speed reading and a waveform for the speed to count as
 #: measured for that waveform.

@@ -35,7 +35,7 @@ def _default_user() -> str:
 def restart_cmd(machine: str, point: str | None, comment: str, user: str | None,
                 database_url: str | None, config_file: str | None) -> None:
     """Ask the service to learn the baselines of MACHINE (or of one --point) again."""
-    from monitor.registry import RegistryError
+    from monitor.model.registry import RegistryError
     from monitor.store.registry_sync import UnknownEntry, request_baseline_restart
 
     store = open_store(database_url, config_file)

@@ -6,12 +6,12 @@ is one hit (the whole decay in one block). Hits of the same point are averaged. 
 paired with the response waveforms of the same machine and timestamp and gives the H1
 frequency response and its coherence; its ``unit`` may be ``N``, ``kN`` or ``lbf``.
 
-Lines are validated by ``monitor.ingest.decode_message`` like live traffic, without the
+Lines are validated by ``monitor.io.ingest.decode_message`` like live traffic, without the
 age limits (a recording is old by nature). Without ``--machines`` every machine and point
 of the file is accepted (the point's quantity taken from the unit of its first waveform).
 
 With ``--record`` the stored modes come from the database (``--database`` or ``--config``)
-and each comparison is recorded there as ``mode_shift`` alarms (monitor/mode_alarms.py):
+and each comparison is recorded there as ``mode_shift`` alarms (monitor/service/mode_findings.py):
 raised for a mode that moved beyond the tolerance, cleared when a later test finds it back.
 """
 
@@ -29,25 +29,25 @@ from typing import Any
 import click
 import numpy as np
 
-from monitor import units
 from monitor.commands.analyse import FILE_LIMITS, Outcome
 from monitor.commands.db import database_options, open_store
-from monitor.ingest import (
+from monitor.io.ingest import (
     UNIT_QUANTITY,
     Rejected,
     decode_message,
     parse_topic,
 )
-from monitor.modes import (
+from monitor.io.streams import DEFAULT_PREFIX, StreamError, read_stream
+from monitor.model import units
+from monitor.model.readings import SpeedReading, Waveform
+from monitor.model.registry import Machine, Point, Registry, RegistryError, load_registry
+from monitor.modes.identify import (
     DEFAULT_SHIFT_TOLERANCE_PCT,
     BumpTest,
     ModeShift,
     bump_test,
     compare_modes,
 )
-from monitor.readings import SpeedReading, Waveform
-from monitor.registry import Machine, Point, Registry, RegistryError, load_registry
-from monitor.streams import DEFAULT_PREFIX, StreamError, read_stream
 
 #: Units a hammer (force) channel may carry.
 FORCE_UNITS = ("N", "kN", "lbf")
@@ -114,7 +114,7 @@ def record_comparison(store: Any, machine: Machine, comparison: tuple[ModeShift,
     (none without a store)."""
     if store is None or not comparison:
         return []
-    from monitor.mode_alarms import record_mode_findings  # the store: only when asked
+    from monitor.service.mode_findings import record_mode_findings  # the store: only when asked
 
     return record_mode_findings(store, machine, comparison, ts, point=point, evidence=evidence)
 

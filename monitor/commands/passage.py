@@ -2,18 +2,18 @@
 
 Every waveform of the machine goes through the same analysis as ``whirlwatch analyse``
 (speed from the speed stream, or estimated from the spectrum); the 1x amplitude of each
-point against speed is the Bode plot's data, in which :func:`monitor.modes.find_passages`
+point against speed is the Bode plot's data, in which :func:`monitor.modes.identify.find_passages`
 finds the critical speeds, their amplification factors (API 684) and, when the
 waveforms carry a once-per-revolution reference, the phase. The passages are compared
 with the stored modes and turned into drive skip bands, next to the skip bands of the
 stored modes.
 
 Stream files carry no once-per-revolution pulses, so the phase columns stay empty here;
-the API (:func:`monitor.modes.order_point` with ``reference_s``) gives phase when a
+the API (:func:`monitor.modes.identify.order_point` with ``reference_s``) gives phase when a
 reference exists.
 
 With ``--record`` the registry comes from the database and the comparison with the stored
-modes is recorded there as ``mode_shift`` alarms (monitor/mode_alarms.py).
+modes is recorded there as ``mode_shift`` alarms (monitor/service/mode_findings.py).
 """
 
 from __future__ import annotations
@@ -28,7 +28,7 @@ from typing import Any
 import click
 import numpy as np
 
-from monitor.analysis import ReadingAnalysis
+from monitor.analysis.waveform import ReadingAnalysis
 from monitor.commands.analyse import Outcome, analyse_stream
 from monitor.commands.bumptest import (
     _json_safe,
@@ -38,7 +38,8 @@ from monitor.commands.bumptest import (
     record_comparison,
 )
 from monitor.commands.db import database_options
-from monitor.modes import (
+from monitor.model.registry import Machine
+from monitor.modes.identify import (
     DEFAULT_SHIFT_TOLERANCE_PCT,
     BodeData,
     ModeShift,
@@ -49,7 +50,6 @@ from monitor.modes import (
     find_passages,
     machine_skip_bands,
 )
-from monitor.registry import Machine
 
 AMPLITUDES = ("velocity", "displacement", "native")
 

@@ -28,9 +28,10 @@ from typing import Any
 import click
 import numpy as np
 
-from monitor.readings import SpeedReading, Waveform
-from monitor.registry import Machine, Mode, Point, Registry, dump_registry
-from monitor.simulate import (
+from monitor.io.streams import DEFAULT_PREFIX, reading_message, write_stream
+from monitor.model.readings import SpeedReading, Waveform
+from monitor.model.registry import Machine, Mode, Point, Registry, dump_registry
+from monitor.sim.simulate import (
     BearingDefect,
     BearingGeometry,
     MachineModel,
@@ -42,7 +43,6 @@ from monitor.simulate import (
     simulate_reading,
     simulate_run,
 )
-from monitor.streams import DEFAULT_PREFIX, reading_message, write_stream
 
 #: Start of the plant scenario (a Monday), epoch seconds UTC.
 PLANT_START = _dt.datetime(2026, 3, 2, tzinfo=_dt.UTC).timestamp()
@@ -487,8 +487,8 @@ def simulate(
 def _publish(plans: list[_Plan], seed: int, machine_ids: tuple[str, ...], prefix: str,
              broker: str, speedup: float, max_gap_s: float | None) -> None:
     """Simulate the selected machines, merge in time order and publish at QoS 1."""
-    from monitor.mqtt import MqttConfigError
-    from monitor.replay import StreamPublisher, replay
+    from monitor.io.mqtt import MqttConfigError
+    from monitor.io.replay import StreamPublisher, replay
 
     seeds = np.random.SeedSequence(seed).spawn(len(plans))
     streams = [_machine_messages(p, s, prefix) for p, s in zip(plans, seeds, strict=True)

@@ -280,7 +280,7 @@ def dumps_json(value: Any) -> str:
     Non-finite numbers become null: JSON has none, and PostgreSQL's json type refuses
     the ``NaN``/``Infinity`` tokens. The text is always standard JSON, but a null cannot
     be told from None: data that must come back exactly (the detector state) tags them
-    itself before it gets here (:mod:`monitor.state_json`, docs/store.md).
+    itself before it gets here (:mod:`monitor.detection.state_json`, docs/store.md).
 
     Callers may hand over a reading's evaluation as it is: the serialisation itself is
     the check, not a second walk over the data. orjson, not the json module: a reading's

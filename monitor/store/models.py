@@ -336,7 +336,7 @@ class Alarm(Base):
     )
 
     id: Mapped[int] = mapped_column(BigId, primary_key=True)
-    # The alarm engine's own id of this alarm (monitor.alarms), to relate MQTT events.
+    # The alarm engine's own id of this alarm (monitor.detection.alarms), to relate MQTT events.
     ref: Mapped[str | None] = mapped_column(String(64))
     machine_id: Mapped[str] = mapped_column(String(64), ForeignKey("machines.id"))
     point_id: Mapped[str | None] = mapped_column(String(64))

@@ -349,7 +349,7 @@ def alarm_transitions(session: Session, alarm_id: int) -> list[AlarmTransitionRo
 
 def alarm_as_json(alarm: Alarm) -> dict[str, Any]:
     """The alarm in the JSON shape of the REST API; an MQTT alarm event is this object
-    with the event's own ``transition`` and ``transition_at`` added (monitor.service)."""
+    with the event's own ``transition`` and ``transition_at`` added (monitor.service.service)."""
 
     def iso(t: dt.datetime | None) -> str | None:
         return t.isoformat().replace("+00:00", "Z") if t else None

@@ -10,11 +10,11 @@ old and new values).
 Every transaction that writes the registry moves the registry version on by one
 (:func:`touch_registry`, table ``registry_state``) and stamps it on the machines it
 touched, so a running service sees an edit at its next batch and reloads just those
-machines (monitor/registry_live.py).
+machines (monitor/service/registry_follow.py).
 
 Readers never fail on a stored value an older release let in: :func:`read_machine`
 checks every machine, point and mode against the registry's bounds
-(:func:`monitor.registry.check_machine`) and leaves out what fails, saying why.
+(:func:`monitor.model.registry.check_machine`) and leaves out what fails, saying why.
 """
 
 from __future__ import annotations
@@ -28,7 +28,7 @@ from typing import Any
 from sqlalchemy import func, select, update
 from sqlalchemy.orm import Session, selectinload
 
-from monitor.registry import (
+from monitor.model.registry import (
     Machine,
     Mode,
     Point,
@@ -389,7 +389,7 @@ def save_mode(session: Session, machine: MachineRow, values: Mode, user: str,
               mode: ModeRow | None) -> ModeRow:
     """Create (``mode`` None) or update a mode of ``machine``, record the change in
     mode_history and move the registry version on (inside the caller's transaction).
-    ``values`` passes :func:`monitor.registry.check_mode` first (RegistryError)."""
+    ``values`` passes :func:`monitor.model.registry.check_mode` first (RegistryError)."""
     check_mode(values, machine.id)
     touch_registry(session, [machine])
     old = mode.values() if mode is not None else None
@@ -581,6 +581,6 @@ def changed_machines(session: Session, since: int) -> tuple[dict[str, Machine | 
 
 def export_registry(session: Session) -> Registry:
     """The active machines of the database as a :class:`Registry` (write it with
-    ``monitor.registry.dump_registry``); entries outside the bounds are left out
+    ``monitor.model.registry.dump_registry``); entries outside the bounds are left out
     (:func:`read_registry` says which)."""
     return read_registry(session)[0]

@@ -28,8 +28,8 @@ from sqlalchemy import Connection, Table, and_, bindparam, func, select
 from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.orm import Session
 
-from monitor.analysis import ReadingAnalysis, Spectrum
-from monitor.readings import SpeedReading
+from monitor.analysis.waveform import ReadingAnalysis, Spectrum
+from monitor.model.readings import SpeedReading
 from monitor.store.models import (
     Alarm,
     AlarmTransitionRow,
@@ -47,7 +47,7 @@ DEAD_LETTER_HEAD_BYTES = 256
 
 
 class TransitionLike(Protocol):
-    """What the store needs of an alarm transition (``monitor.alarms`` provides one)."""
+    """What the store needs of an alarm transition (``monitor.detection.alarms`` provides one)."""
 
     machine: str
     point: str | None
@@ -62,7 +62,7 @@ class TransitionLike(Protocol):
 
 @dataclass(frozen=True)
 class AlarmTransitionInput:
-    """A plain alarm transition for callers without ``monitor.alarms`` objects.
+    """A plain alarm transition for callers without ``monitor.detection.alarms`` objects.
 
     ``time`` is epoch seconds UTC or an aware datetime; ``user`` names who caused it
     (acknowledgements), None for the service.
@@ -479,7 +479,7 @@ class _Step:
 
 
 def _step(t: Any) -> _Step:
-    """Normalise a ``monitor.alarms.Transition`` (alarm dict + name/ts) or a
+    """Normalise a ``monitor.detection.alarms.Transition`` (alarm dict + name/ts) or a
     :class:`TransitionLike` into one shape."""
     alarm = getattr(t, "alarm", None)
     if isinstance(alarm, Mapping) and hasattr(t, "name") and hasattr(t, "ts"):
@@ -530,7 +530,7 @@ def record_transitions(
     """Apply alarm transitions to the ``alarms`` rows and append them to
     ``alarm_transitions``, inside the caller's transaction.
 
-    Accepts ``monitor.alarms.Transition`` objects or any :class:`TransitionLike` (e.g.
+    Accepts ``monitor.detection.alarms.Transition`` objects or any :class:`TransitionLike` (e.g.
     :class:`AlarmTransitionInput`). An alarm is identified by (machine, point, kind,
     subject); a transition opens a new alarm row when none of that identity is open
     (state not ``cleared``). A transition already stored (same alarm identity, name and
@@ -652,8 +652,8 @@ def save_detector_state(
 ) -> None:
     """Upsert the detector state JSON of ``machine`` (inside the caller's transaction).
 
-    ``state`` is exact JSON data (:func:`monitor.detection.stored_state`: non-finite
-    floats already tagged, :mod:`monitor.state_json`); the serialiser's null for a NaN
+    ``state`` is exact JSON data (:func:`monitor.detection.evaluator.stored_state`: non-finite
+    floats already tagged, :mod:`monitor.detection.state_json`); the serialiser's null for a NaN
     would lose it."""
     row = session.get(DetectorState, machine)
     when = to_datetime(ts) if ts is not None else None

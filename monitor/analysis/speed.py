@@ -38,8 +38,8 @@ import numpy as np
 from numpy.typing import ArrayLike
 from scipy import stats
 
-from monitor import spectrum as sp
-from monitor.spectrum import Spectrum
+from monitor.analysis import spectrum as sp
+from monitor.analysis.spectrum import Spectrum
 
 #: harmonics must stand this far above the mean noise power per bin to be used (10 dB).
 _MIN_HARMONIC_SNR = 10.0

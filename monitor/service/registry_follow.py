@@ -24,8 +24,8 @@ from typing import Any
 
 from sqlalchemy import select
 
-from monitor.detection import MachineEvaluator, stored_state
-from monitor.registry import Machine, Registry, load_registry, registry_warnings
+from monitor.detection.evaluator import MachineEvaluator, stored_state
+from monitor.model.registry import Machine, Registry, load_registry, registry_warnings
 from monitor.store import Store
 from monitor.store.models import DetectorState, utcnow
 from monitor.store.registry_sync import (
@@ -72,7 +72,7 @@ def follow(registry: Registry, evaluators: Mapping[str, MachineEvaluator], chang
     the rebuilt evaluator until the service takes its state in a transaction, where
     :meth:`MachineEvaluator.close_orphaned_alarms` closes it and the transition is
     recorded and published; a retired machine's stored alarms are closed by the service
-    (:func:`monitor.detection.retire_state`). docs/alarms.md, "Alarms of what leaves the
+    (:func:`monitor.detection.evaluator.retire_state`). docs/alarms.md, "Alarms of what leaves the
     registry"."""
     machines = dict(registry.by_id())
     out = dict(evaluators)

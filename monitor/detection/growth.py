@@ -8,7 +8,7 @@
   readings, and the projected time until the fitted value reaches a limit.
 
 Everything here is plain data that snapshots to a JSON-able dict and restores exactly
-(non-finite floats as tagged strings, :mod:`monitor.state_json`).
+(non-finite floats as tagged strings, :mod:`monitor.detection.state_json`).
 
 References
 ----------
@@ -29,7 +29,7 @@ from typing import Any, NamedTuple
 
 import numpy as np
 
-from monitor.state_json import float_in, float_out, floats_in, floats_out
+from monitor.detection.state_json import float_in, float_out, floats_in, floats_out
 
 #: Scale of MAD to a normal standard deviation (1 / Phi^-1(3/4)).
 MAD_TO_SIGMA = 1.482602218505602
@@ -111,7 +111,7 @@ class Baseline:
         return float(value) / self.stats.median
 
     def snapshot(self) -> dict:
-        """Exact JSON data (:mod:`monitor.state_json`); ``values`` are finite by
+        """Exact JSON data (:mod:`monitor.detection.state_json`); ``values`` are finite by
         :meth:`add`, the speeds may be anything the caller gave."""
         return {"size": self.size, "values": list(self.values), "speeds": floats_out(self.speeds),
                 "started_at": float_out(self.started_at)}
@@ -305,9 +305,9 @@ def _increasing_plan(n: int) -> tuple[np.ndarray, np.ndarray, tuple[int, int], n
 def _theil_sen_increasing(x: np.ndarray, ys: np.ndarray) -> list[tuple[float, float, float, float]] | None:
     """:func:`theil_sen_many` for a strictly increasing ``x`` (n >= 3), or None when a row
     of ``ys`` holds equal values (the general path handles their ties): the compiled
-    kernel :func:`monitor.compiled.theil_sen_rows`, the same numbers as the general path
+    kernel :func:`monitor.detection.kernels.theil_sen_rows`, the same numbers as the general path
     (tests/test_compiled.py)."""
-    from monitor.compiled import theil_sen_rows  # numba loads in ~0.5 s: on first use
+    from monitor.detection.kernels import theil_sen_rows  # numba loads in ~0.5 s: on first use
 
     i, j, (lo, hi), ranks, med = _increasing_plan(x.size)
     out = theil_sen_rows(np.ascontiguousarray(x, dtype=float), np.ascontiguousarray(ys, dtype=float),
@@ -466,7 +466,7 @@ class TrendWindow:
         return f.slope_per_s, f.low_per_s, f.fitted_now + f.slope_per_s * (last - self._fit_ts)
 
     def snapshot(self) -> dict:
-        """Exact JSON data (:mod:`monitor.state_json`). ``ts`` and ``values`` are finite
+        """Exact JSON data (:mod:`monitor.detection.state_json`). ``ts`` and ``values`` are finite
         (:meth:`add` admits nothing else) and go as they are; the fit's interval ends are
         NaN when the window's values are all tied (zero variance of Kendall's S)."""
         f = self._fit

@@ -17,7 +17,7 @@ Lifecycle (every arrow is a :class:`Transition` carrying time, severity and evid
 N is the persistence count. Raise and clear use different levels (hysteresis), so a value
 hovering on a limit with noise raises once and does not chatter. Acknowledging never
 clears. The engine is deterministic: no clock, ids from a counter; ``snapshot()`` gives a
-JSON-able dict (exact: non-finite floats as tagged strings, :mod:`monitor.state_json`) and
+JSON-able dict (exact: non-finite floats as tagged strings, :mod:`monitor.detection.state_json`) and
 ``AlarmEngine.restore`` rebuilds the same state after a restart.
 """
 
@@ -28,7 +28,7 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any, Literal
 
-from monitor.state_json import float_in, float_out, value_in, value_out
+from monitor.detection.state_json import float_in, float_out, value_in, value_out
 
 #: Severities, lowest first. ``alert`` is ISO 20816's ALERT; ``advisory`` and ``severe``
 #: are our own words for the levels below and above it (docs/alarms.md).
@@ -116,7 +116,7 @@ class Alarm:
         }
 
     def snapshot(self) -> dict:
-        """Exact JSON data (:mod:`monitor.state_json`): times and evidence with their
+        """Exact JSON data (:mod:`monitor.detection.state_json`): times and evidence with their
         non-finite floats tagged, evidence strings escaped."""
         cached = self._evidence_out
         if cached is None or cached[0] is not self.evidence:

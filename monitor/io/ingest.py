@@ -1,7 +1,7 @@
 """Decode and validate incoming MQTT messages into readings.
 
 ``decode_message`` turns one raw message (topic and payload bytes) into a
-:class:`~monitor.readings.Waveform` or :class:`~monitor.readings.SpeedReading`, or raises
+:class:`~monitor.model.readings.Waveform` or :class:`~monitor.model.readings.SpeedReading`, or raises
 :class:`Rejected` with one of the stable reason ids in :data:`REJECTION_REASONS`. It never
 raises anything else for any payload, never touches MQTT, the database or the clock beyond
 ``now`` (``time.time()`` when not given); the caller counts rejections with
@@ -36,8 +36,8 @@ try:  # SIMD base64 (~100x faster on an 87 kB block); the standard library other
 except ImportError:  # pragma: no cover - pybase64 is a dependency, this is a fallback
     _b64decode = base64.b64decode
 
-from monitor.readings import SpeedReading, Waveform
-from monitor.registry import QUANTITIES, UNITS_BY_QUANTITY, Registry
+from monitor.model.readings import SpeedReading, Waveform
+from monitor.model.registry import QUANTITIES, UNITS_BY_QUANTITY, Registry
 
 #: Every unit a waveform may carry, and the quantity it measures.
 UNIT_QUANTITY: dict[str, str] = {u: q for q in QUANTITIES for u in UNITS_BY_QUANTITY[q]}

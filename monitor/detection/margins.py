@@ -32,8 +32,8 @@ from typing import Literal
 
 import numpy as np
 
-from monitor.growth import theil_sen
-from monitor.registry import Machine, Mode
+from monitor.detection.growth import theil_sen
+from monitor.model.registry import Machine, Mode
 
 #: Required margin used when a mode has no amplification factor, no damping ratio and no
 #: configured margin, and the machine sets no default: 10 % (common practice, no source).

@@ -19,7 +19,7 @@ from dataclasses import dataclass, field, fields
 from pathlib import Path
 from typing import Any
 
-from monitor.zones import check_limits
+from monitor.detection.zones import check_limits
 
 QUANTITIES = ("acceleration", "velocity", "displacement")
 UNITS_BY_QUANTITY = {
@@ -307,8 +307,8 @@ def check_machine(machine: Machine) -> Machine:
 
 def _check_settings(settings: Mapping[str, Any], where: str) -> None:
     # Imported here: both modules build on this one.
-    from monitor.bearings import BearingGeometry
-    from monitor.detection import DetectionSettings
+    from monitor.analysis.bearings import BearingGeometry
+    from monitor.detection.evaluator import DetectionSettings
 
     if not isinstance(settings, Mapping):
         raise RegistryError(f"{where}: settings must be a table, got {settings!r}.")
@@ -340,8 +340,8 @@ _UNIT_SUFFIX = re.compile(r"_(hz|rpm|mm_s|pct|mm|deg|s)$")
 def machine_setting_keys() -> frozenset[str]:
     """The further keys of a machine table whirlwatch reads: detection settings
     (docs/alarms.md) and the bearing geometry (docs/registry.md)."""
-    from monitor.bearings import SETTINGS_KEYS
-    from monitor.detection import DetectionSettings
+    from monitor.analysis.bearings import SETTINGS_KEYS
+    from monitor.detection.evaluator import DetectionSettings
 
     return frozenset({f.name for f in fields(DetectionSettings)} | set(SETTINGS_KEYS))
 

@@ -42,8 +42,9 @@ import scipy.fft
 from numpy.typing import ArrayLike
 from scipy import signal
 
-from monitor import simulate, units
-from monitor import spectrum as sp
+from monitor.analysis import spectrum as sp
+from monitor.model import units
+from monitor.sim import simulate
 
 __all__ = [
     "DEFECTS",

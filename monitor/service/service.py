@@ -3,7 +3,7 @@
 Per batch of messages (those already waiting in the hand-off queue, at most
 :data:`MAX_BATCH`; never waiting for more), in this order (docs/service.md):
 
-1. decode and validate each (:func:`monitor.ingest.decode_message`); a rejection is
+1. decode and validate each (:func:`monitor.io.ingest.decode_message`); a rejection is
    counted and its dead letter written with the batch;
 2. waveforms: analyse (pure, outside any transaction);
 3. one transaction: one query finds the readings already stored (a redelivery is never
@@ -56,22 +56,22 @@ from typing import Any
 from sqlalchemy import and_, bindparam, event, func, select
 from sqlalchemy import exc as sa_exc
 
-from monitor.alarms import AlarmKey, Transition, severity_rank
-from monitor.analysis import ReadingAnalysis, analyse_waveform
+from monitor.analysis.waveform import ReadingAnalysis, analyse_waveform
 from monitor.config import Settings
-from monitor.detection import (
+from monitor.detection.alarms import AlarmKey, Transition, severity_rank
+from monitor.detection.evaluator import (
     MachineEvaluator,
     ReadingEvaluation,
     evaluator_from_state,
     retire_state,
     stored_state,
 )
-from monitor.ingest import SPEED_STREAM, IngestLimits, Rejected, RejectionCounter, decode_message
+from monitor.io.ingest import SPEED_STREAM, IngestLimits, Rejected, RejectionCounter, decode_message
+from monitor.io.mqtt import InboundMessage, MessageSource, MqttError, MqttSettings, Publisher
 from monitor.metrics import MetricsServer, ServiceMetrics
-from monitor.mqtt import InboundMessage, MessageSource, MqttError, MqttSettings, Publisher
-from monitor.readings import SpeedReading, Waveform
-from monitor.registry import Registry
-from monitor.registry_live import follow, start_registry
+from monitor.model.readings import SpeedReading, Waveform
+from monitor.model.registry import Registry
+from monitor.service.registry_follow import follow, start_registry
 from monitor.store import (
     Store,
     add_dead_letter,
@@ -431,7 +431,7 @@ class Service:
         self._evaluators: dict[str, MachineEvaluator] = {}
         self._versions: dict[str, int | None] = {}
         self._views: dict[str, _MachineView] = {m.id: _MachineView() for m in self.registry.machines}
-        # Registry changes still to settle (monitor/registry_live.py): machines whose entry
+        # Registry changes still to settle (monitor/service/registry_follow.py): machines whose entry
         # changed (alarms of what it no longer holds to close), retired machines.
         self._unsettled: set[str] = set()
         self._unretired: set[str] = set()
@@ -464,7 +464,7 @@ class Service:
     # -- start-up
 
     def _load_registry(self) -> Registry:
-        # The file adds and updates, never deletes (monitor/registry_live.py).
+        # The file adds and updates, never deletes (monitor/service/registry_follow.py).
         try:
             registry, self._registry_follower = start_registry(self.store, self.settings.service.machines_file)
         except ValueError as exc:
@@ -577,7 +577,7 @@ class Service:
         return out
 
     def _follow_registry(self) -> None:
-        """Registry edits made since the last batch, live (monitor/registry_live.py). A
+        """Registry edits made since the last batch, live (monitor/service/registry_follow.py). A
         machine whose entry changed is queued for :meth:`apply_registry_requests` to close
         the alarms of what the entry no longer holds (the next batch touching it closes
         them first, if it comes sooner); a retired one is queued to be retired."""
@@ -658,7 +658,7 @@ class Service:
 
     def _retire_machine(self, machine: str) -> Outcome | None:
         """Close the alarms of a machine retired from the registry
-        (:func:`monitor.detection.retire_state`), record them and write its state marked
+        (:func:`monitor.detection.evaluator.retire_state`), record them and write its state marked
         retired, in one transaction; the outcome carries their events and removes the
         machine's retained status when published. None when there is nothing to do: the
         machine is active again, was never monitored (no state), or another process (or an
@@ -1317,7 +1317,9 @@ class Service:
         # becomes garbage, but every full collection walks it: 100-200 ms with the GIL
         # held, a stall of the worker every few seconds under load. Collected once here and
         # moved out of the collector's sight; later objects are collected as usual.
-        from monitor.compiled import warm_up  # numba loads in ~0.5 s: not for every command
+        from monitor.detection.kernels import (
+            warm_up,  # numba loads in ~0.5 s: not for every command
+        )
 
         warm_up()  # compiled now, not mid-batch; before the freeze (start-up heap too)
         gc.collect()

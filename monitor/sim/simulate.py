@@ -21,16 +21,16 @@ discretisation of its state equations run as a recursive filter
 the right transient behaviour (amplitude peak, lag growing through 90 degrees).
 
 Everything here is pure and deterministic for a given seed: numbers in, arrays and
-:mod:`monitor.readings` objects out; no clock, no files.
+:mod:`monitor.model.readings` objects out; no clock, no files.
 
 Main entry points
 -----------------
 ``sdof_response``       one mode driven by a force per unit mass (the physics check).
 ``simulate_signal``     a continuous record at one point for a given speed history.
-``simulate_reading``    one steady-speed :class:`~monitor.readings.Waveform` (warm-up
+``simulate_reading``    one steady-speed :class:`~monitor.model.readings.Waveform` (warm-up
                         discarded), e.g. for trend scenarios spread over weeks.
 ``simulate_run``        a continuous run along a :class:`SpeedProfile`, cut into
-                        waveform blocks plus :class:`~monitor.readings.SpeedReading` s.
+                        waveform blocks plus :class:`~monitor.model.readings.SpeedReading` s.
 ``apply_sensor_fault``  flat line, clipping, spikes or dropouts on a finished block.
 ``grown_unbalance``     unbalance ``m*e`` after linear or exponential growth over days.
 ``point_inertance``     closed-form steady-state acceleration per newton at a point.
@@ -56,7 +56,7 @@ from scipy import signal
 from scipy.constants import g as STANDARD_GRAVITY
 from scipy.integrate import cumulative_trapezoid
 
-from monitor.readings import SpeedReading, Waveform
+from monitor.model.readings import SpeedReading, Waveform
 
 Output = Literal["displacement", "velocity", "acceleration"]
 _OUTPUTS = ("displacement", "velocity", "acceleration")

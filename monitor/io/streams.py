@@ -3,7 +3,7 @@
 One JSON object per line, ``{"topic": ..., "payload": {...}}``, in time order. The
 payload is exactly the JSON an MQTT message would carry, so replaying a file publishes
 what a live sensor would, and reading one back (:func:`read_stream`) yields the payload
-bytes to hand to ``monitor.ingest.decode_message`` like live traffic.
+bytes to hand to ``monitor.io.ingest.decode_message`` like live traffic.
 
 Payloads written here:
 
@@ -25,7 +25,7 @@ from typing import Any
 
 import numpy as np
 
-from monitor.readings import SpeedReading, Waveform
+from monitor.model.readings import SpeedReading, Waveform
 
 DEFAULT_PREFIX = "whirlwatch"
 

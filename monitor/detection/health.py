@@ -27,10 +27,10 @@ from typing import Any
 
 import numpy as np
 
-from monitor.compiled import block_scan, strided_order_stats
-from monitor.growth import median_at, sorted_median
-from monitor.readings import Waveform
-from monitor.registry import Point
+from monitor.detection.growth import median_at, sorted_median
+from monitor.detection.kernels import block_scan, strided_order_stats
+from monitor.model.readings import Waveform
+from monitor.model.registry import Point
 
 CHECKS = ("flat_line", "clipping", "spikes", "dropouts", "sample_rate", "unit", "stale")
 
@@ -121,7 +121,7 @@ _SUBSET_RANKS: dict[int, np.ndarray] = {}
 def _subset_median_and_bound(x: np.ndarray, step: int) -> tuple[float, float]:
     """``(sorted_median(s), _mad_lower_bound(s, s.size, median))`` for s = sort(x[::step]),
     from the four order statistics they read, selected without the sort
-    (monitor/compiled.py)."""
+    (monitor/detection/kernels.py)."""
     n = -(-x.size // step)
     ranks = _SUBSET_RANKS.get(n)
     if ranks is None:
@@ -158,7 +158,7 @@ def check_block(samples: np.ndarray, limits: HealthLimits | None = None) -> tupl
     n = x.size
     flags: list[HealthFlag] = []
     # One compiled pass: whether every sample is finite, the maximum, the minimum and the
-    # number of equal neighbours (monitor/compiled.py; numpy took three passes).
+    # number of equal neighbours (monitor/detection/kernels.py; numpy took three passes).
     all_finite, xmax, xmin, n_same = block_scan(np.ascontiguousarray(x))
     if not all_finite:
         finite = np.isfinite(x)

@@ -3,7 +3,7 @@
 Units (DESIGN.md section 3): acceleration ``m/s^2`` and ``g``, velocity ``mm/s`` and
 ``in/s``, displacement ``um`` and ``mil``. Conversions stay within one quantity; moving
 between quantities (integration, differentiation) is a frequency-domain operation that
-lives in :mod:`monitor.spectrum`.
+lives in :mod:`monitor.analysis.spectrum`.
 
 Amplitude measures of a sinusoid: ``peak``, ``rms`` (peak / sqrt 2) and ``peak-to-peak``
 (2 x peak).

@@ -4,7 +4,7 @@ The running service keeps each machine's detector state (its alarms among it) in
 ``detector_state`` table with a version it checks at every batch. Recording a finding
 therefore goes through that state: in one transaction the machine's state row is locked,
 its evaluator restored, the findings applied
-(:meth:`monitor.detection.MachineEvaluator.observe_mode_findings`), the transitions
+(:meth:`monitor.detection.evaluator.MachineEvaluator.observe_mode_findings`), the transitions
 appended to the alarm history and the state written back with its version moved on. The
 service sees the new version at its next batch and reloads the machine, mode-shift alarms
 included; the dashboard shows them like any other alarm.
@@ -17,10 +17,10 @@ from typing import Any
 
 from sqlalchemy import select
 
-from monitor.alarms import Transition
-from monitor.detection import evaluator_from_state, stored_state
-from monitor.modes import ModeShift
-from monitor.registry import Machine
+from monitor.detection.alarms import Transition
+from monitor.detection.evaluator import evaluator_from_state, stored_state
+from monitor.model.registry import Machine
+from monitor.modes.identify import ModeShift
 from monitor.store import Store
 from monitor.store.models import DetectorState
 from monitor.store.writes import record_transitions, save_detector_states

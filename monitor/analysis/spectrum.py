@@ -27,7 +27,7 @@ from numpy.lib.stride_tricks import sliding_window_view
 from numpy.typing import ArrayLike
 from scipy.signal import get_window
 
-from monitor import units
+from monitor.model import units
 
 MIN_SAMPLES = 16
 SCALINGS = ("peak", "rms")

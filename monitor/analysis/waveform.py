@@ -14,13 +14,14 @@ from typing import Any, Literal
 
 import numpy as np
 
-from monitor import bearings, units
-from monitor import spectrum as sp
-from monitor.orders import OrderAmplitude, normalise_orders, order_amplitudes
-from monitor.readings import Waveform
-from monitor.registry import Machine, Point
-from monitor.spectrum import Peak, Spectrum
-from monitor.speed import estimate_speed, speed_from_tach
+from monitor.analysis import bearings
+from monitor.analysis import spectrum as sp
+from monitor.analysis.orders import OrderAmplitude, normalise_orders, order_amplitudes
+from monitor.analysis.spectrum import Peak, Spectrum
+from monitor.analysis.speed import estimate_speed, speed_from_tach
+from monitor.model import units
+from monitor.model.readings import Waveform
+from monitor.model.registry import Machine, Point
 
 __all__ = [
     "OrderAmplitude",
@@ -134,7 +135,7 @@ def analyse_waveform(
         Harmonics of running speed used to estimate the speed.
     bearing_band_hz : (float, float), optional
         Demodulation band (Hz) of the bearing envelope analysis; default the band of
-        highest spectral kurtosis (:func:`monitor.bearings.choose_band`).
+        highest spectral kurtosis (:func:`monitor.analysis.bearings.choose_band`).
 
     Returns
     -------
@@ -142,7 +143,7 @@ def analyse_waveform(
         Speed in Hz, overall velocity in mm/s RMS, orders in the point's unit (peak) and
         mm/s (peak), peaks in the point's unit (peak). When the machine's settings carry
         a bearing geometry and the point measures acceleration, ``extra["bearing"]``
-        holds :meth:`monitor.bearings.BearingAnalysis.to_json` (envelope amplitudes in
+        holds :meth:`monitor.analysis.bearings.BearingAnalysis.to_json` (envelope amplitudes in
         m/s^2 peak, indicators in dB); when the geometry or the envelope analysis is
         unusable, ``extra["bearing_error"]`` holds the reason instead and the rest of
         the analysis stands.

@@ -3,9 +3,9 @@
 :class:`MachineEvaluator` ties together sensor health (``health``), separation margins
 (``margins``), severity zones (``zones``), baselines and trends (``growth``) and the alarm
 engine (``alarms``). It is deterministic and does no I/O: the caller passes each
-:class:`~monitor.analysis.ReadingAnalysis` with its :class:`~monitor.readings.Waveform`,
+:class:`~monitor.analysis.waveform.ReadingAnalysis` with its :class:`~monitor.model.readings.Waveform`,
 speed readings, and the current time for stale-stream checks; it gets back
-:class:`~monitor.alarms.Transition` objects to store and publish, and a
+:class:`~monitor.detection.alarms.Transition` objects to store and publish, and a
 :class:`ReadingEvaluation` for the store and the dashboard. ``snapshot()`` returns a
 JSON-able dict that keeps every float exactly (format in docs/store.md);
 ``MachineEvaluator.restore`` rebuilds the same state after a restart.
@@ -39,11 +39,11 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field, fields
 from typing import Any
 
-from monitor.alarms import SEVERITIES, AlarmEngine, AlarmKey, Transition
-from monitor.analysis import ReadingAnalysis
-from monitor.growth import Baseline, TrendWindow, fit_due_windows
-from monitor.health import HealthReport, check_waveform, is_stale
-from monitor.margins import (
+from monitor.analysis.waveform import ReadingAnalysis
+from monitor.detection.alarms import SEVERITIES, AlarmEngine, AlarmKey, Transition
+from monitor.detection.growth import Baseline, TrendWindow, fit_due_windows
+from monitor.detection.health import HealthReport, check_waveform, is_stale
+from monitor.detection.margins import (
     ApproachForecast,
     MarginGrid,
     MarginRow,
@@ -53,11 +53,18 @@ from monitor.margins import (
     order_label,
     speed_is_steady,
 )
-from monitor.modes import ModeShift
-from monitor.readings import SpeedReading, Waveform
-from monitor.registry import Machine, Registry, check_machine
-from monitor.state_json import STATE_FORMAT, float_in, float_out, floats_in, floats_out, value_out
-from monitor.zones import ZoneLimits, zone_limits, zone_of
+from monitor.detection.state_json import (
+    STATE_FORMAT,
+    float_in,
+    float_out,
+    floats_in,
+    floats_out,
+    value_out,
+)
+from monitor.detection.zones import ZoneLimits, zone_limits, zone_of
+from monitor.model.readings import SpeedReading, Waveform
+from monitor.model.registry import Machine, Registry, check_machine
+from monitor.modes.identify import ModeShift
 
 #: Why an alarm closes when what it watches leaves the registry: the ``reason`` of its
 #: ``cleared`` transition's evidence (docs/alarms.md, "Alarms of what leaves the registry").
@@ -187,7 +194,7 @@ class DetectionSettings:
 
 
 def validate_machine(machine: Machine) -> DetectionSettings:
-    """Check what detection relies on (the registry's bounds, :func:`monitor.registry.
+    """Check what detection relies on (the registry's bounds, :func:`monitor.model.registry.
     check_machine`); ValueError naming the machine, entry and field.
 
     Returns the machine's :class:`DetectionSettings`.
@@ -334,7 +341,7 @@ def _features(analysis: ReadingAnalysis, machine: Machine,
     if bearing:
         # The envelope line over the envelope spectrum's floor (linear), not the line's
         # amplitude: the demodulation band may move between readings, the prominence
-        # hardly does (monitor/bearings.py). A defect shows as this ratio growing against
+        # hardly does (monitor/analysis/bearings.py). A defect shows as this ratio growing against
         # its own baseline.
         # Lines less prominent than BEARING_NOISE_DB are envelope noise: clamping them there
         # keeps a healthy bearing's baseline flat, so only a line that stands out grows.
@@ -489,7 +496,7 @@ class MachineEvaluator:
     def observe_mode_findings(self, findings: Sequence[ModeShift], ts: float, *, point: str | None = None,
                               evidence: Mapping[str, Any] | None = None) -> list[Transition]:
         """Mode-shift alarms from the comparison of an impact test or a run-up/coast-down
-        with the stored modes (:func:`monitor.modes.compare_modes`), at ``ts`` (epoch s).
+        with the stored modes (:func:`monitor.modes.identify.compare_modes`), at ``ts`` (epoch s).
 
         A mode that moved beyond the tolerance raises (or keeps) its alarm at once: one test
         is one reading, so persistence does not apply. Severity ``advisory`` beyond the
@@ -602,8 +609,8 @@ class MachineEvaluator:
 
     def snapshot(self) -> dict:
         """JSON-able state of this machine's detection, exact to the bit: non-finite
-        floats as tagged strings (:mod:`monitor.state_json`), format
-        :data:`~monitor.state_json.STATE_FORMAT` (docs/store.md)."""
+        floats as tagged strings (:mod:`monitor.detection.state_json`), format
+        :data:`~monitor.detection.state_json.STATE_FORMAT` (docs/store.md)."""
         speed = [list(x) for x in self._speed]
         if not math.isfinite(sum(t + v for t, v in self._speed)):  # rare: tag what is not finite
             speed = [floats_out(x) for x in self._speed]
@@ -1045,7 +1052,7 @@ def _growth_evidence(rid: str | None, speed: float, limits: ZoneLimits, feats: F
 
 def upgrade_snapshot(data: Mapping[str, Any]) -> Mapping[str, Any]:
     """A :meth:`MachineEvaluator.snapshot` of any format in the current one
-    (:data:`~monitor.state_json.STATE_FORMAT`); a current one is returned as it is.
+    (:data:`~monitor.detection.state_json.STATE_FORMAT`); a current one is returned as it is.
 
     Format 1 (no ``format`` key) was written through the store's JSON serialiser, which
     turns NaN and infinities into ``null``. Where a ``null`` can only have been a

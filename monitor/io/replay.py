@@ -21,8 +21,8 @@ from typing import Any
 import paho.mqtt.client as paho
 from paho.mqtt.enums import CallbackAPIVersion
 
-from monitor.mqtt import parse_broker_url
-from monitor.streams import iso_utc, parse_ts
+from monitor.io.mqtt import parse_broker_url
+from monitor.io.streams import iso_utc, parse_ts
 
 Message = tuple[str, dict[str, Any]]
 

@@ -176,7 +176,7 @@ def warm_up() -> None:
     """Compile (or load from the cache) every kernel now, with a tiny input: the first
     compilation takes several seconds, which a service should spend at its start rather
     than in the middle of a batch."""
-    from monitor.growth import _theil_sen_increasing
+    from monitor.detection.growth import _theil_sen_increasing
 
     x = np.arange(4, dtype=float)
     _theil_sen_increasing(x, np.array([[0.0, 1.0, 3.0, 2.0]]))

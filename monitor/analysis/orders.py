@@ -19,8 +19,8 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import ArrayLike
 
-from monitor import spectrum as sp
-from monitor import units
+from monitor.analysis import spectrum as sp
+from monitor.model import units
 
 
 @dataclass(frozen=True)

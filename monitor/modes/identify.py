@@ -19,7 +19,7 @@ Four jobs, all pure (arrays and dataclasses in, frozen dataclasses out):
    common practice) is a :class:`ModeShift` finding with ``exceeded=True`` that the
    detection layer can raise as a ``mode_shift`` alarm.
 4. Drive skip bands. :func:`skip_bands` turns modes, excitation orders and the required
-   separation margins (:mod:`monitor.margins`, API 684) into speed bands (r/min) a
+   separation margins (:mod:`monitor.detection.margins`, API 684) into speed bands (r/min) a
    variable-speed drive should not dwell in, merged and clipped to the speed range.
 
 Conventions
@@ -30,7 +30,7 @@ Conventions
   magnitude; for light damping it lies within ``zeta^2`` (relative) of the undamped
   natural frequency. The curve fit gives the undamped natural frequency itself.
 - Phase: degrees of lag behind the once-per-revolution reference (the convention of
-  :mod:`monitor.orders`), unwrapped along the speed axis.
+  :mod:`monitor.analysis.orders`), unwrapped along the speed axis.
 
 References
 ----------
@@ -56,9 +56,9 @@ from numpy.typing import ArrayLike
 from scipy import fft as sp_fft
 from scipy import optimize, signal
 
-from monitor import margins
-from monitor.orders import order_amplitudes
-from monitor.registry import Machine, Mode
+from monitor.analysis.orders import order_amplitudes
+from monitor.detection import margins
+from monitor.model.registry import Machine, Mode
 
 __all__ = [
     "DEFAULT_SHIFT_TOLERANCE_PCT",
@@ -668,7 +668,7 @@ class IdentifiedMode:
         return self.fit.damping_ratio if self.fit is not None else None
 
     def as_mode(self, name: str, *, source: str = "impact test", date: Any = None) -> Mode:
-        """A registry :class:`~monitor.registry.Mode` (frequency, damping, AF)."""
+        """A registry :class:`~monitor.model.registry.Mode` (frequency, damping, AF)."""
         z = self.damping_ratio
         return Mode(
             name=name, frequency_hz=self.frequency_hz,
@@ -954,7 +954,7 @@ def order_point(
     order: float = 1.0,
 ) -> tuple[float, float | None]:
     """Amplitude (peak, ``unit``) and phase (degrees, or None without ``reference_s``) of
-    one order in one waveform, by :func:`monitor.orders.order_amplitudes`."""
+    one order in one waveform, by :func:`monitor.analysis.orders.order_amplitudes`."""
     oa = order_amplitudes(samples, fs_hz, unit, speed_hz, (order,), reference_s=reference_s)
     if not oa:
         raise ValueError(
@@ -1230,7 +1230,7 @@ def skip_bands(
 
     References
     ----------
-    API 684 separation margins via :func:`monitor.margins.required_margin`.
+    API 684 separation margins via :func:`monitor.detection.margins.required_margin`.
     """
     try:
         lo_r, hi_r = (float(v) for v in speed_range_rpm)

@@ -1,0 +1,1 @@
+"""Analysis (pure): spectra, running speed, orders, bearing frequencies, one reading's analysis."""

@@ -1,0 +1,1 @@
+"""The plant's model: machines, points and modes (registry), decoded readings, units."""

@@ -1,0 +1,1 @@
+"""The machine simulator behind the demo plant and the test scenarios."""
