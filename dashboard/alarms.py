@@ -15,6 +15,7 @@ from dashboard.db import db_session
 from dashboard.errors import BadRequest, Conflict, NotFound
 from dashboard.security import current, require
 from monitor.detection.alarms import KINDS, SEVERITIES
+from monitor.model.timefmt import parse_iso_utc
 from monitor.store.models import Alarm
 
 bp = Blueprint("alarms", __name__, url_prefix="/alarms")
@@ -32,12 +33,12 @@ def parse_time(value: str | None, name: str) -> dt.datetime | None:
         t = dt.datetime.fromtimestamp(float(value), dt.UTC)
     except ValueError:
         try:
-            t = dt.datetime.fromisoformat(value.replace("Z", "+00:00"))
+            t = parse_iso_utc(value)
         except ValueError:
             raise BadRequest(f"Parameter '{name}' must be ISO 8601 or epoch seconds, got {value!r}.") from None
     except (OverflowError, OSError):
         raise BadRequest(f"Parameter '{name}' is out of range: {value!r}.") from None
-    return t if t.tzinfo else t.replace(tzinfo=dt.UTC)
+    return t
 
 
 def parse_filters(args: Mapping[str, str]) -> dict:

@@ -19,6 +19,7 @@ from dashboard.db import db_session
 from dashboard.errors import BadRequest, Conflict, NotFound
 from dashboard.security import current, require
 from monitor.model.registry import RegistryError, parse_mode
+from monitor.model.timefmt import iso_utc
 from monitor.store.models import Alarm, Machine, Mode, SpectrumSnapshot
 from monitor.store.registry_sync import UnknownEntry, request_baseline_restart, save_mode
 
@@ -83,7 +84,7 @@ def machine_trends(machine_id: str):
     if unknown:
         raise NotFound(f"Machine {m.id!r} has no measurement point {unknown[0]!r}.")
     return jsonify({
-        "machine": m.id, "from": queries.iso(t0), "to": queries.iso(t1), "max_points": n,
+        "machine": m.id, "from": iso_utc(t0), "to": iso_utc(t1), "max_points": n,
         "points": queries.trends(db_session(), m, wanted, t0, t1, n),
     })
 

@@ -23,6 +23,7 @@ from monitor.detection.alarms import severity_rank
 from monitor.detection.margins import margin_table
 from monitor.detection.zones import zone_limits
 from monitor.model import registry as reg
+from monitor.model.timefmt import iso_utc
 from monitor.store.auth import create_api_token, verify_api_token
 from monitor.store.models import (
     Alarm,
@@ -48,10 +49,6 @@ OPEN_STATES = ("active", "acknowledged")
 ZONE_ORDER = {"A": 1, "B": 2, "C": 3, "D": 4}
 #: Spectra longer than this are thinned (peak per bucket) before they go to the browser.
 MAX_SPECTRUM_BINS = 8192
-
-
-def iso(t: dt.datetime | None) -> str | None:
-    return None if t is None else t.astimezone(dt.UTC).isoformat().replace("+00:00", "Z")
 
 
 # ----------------------------------------------------------------------------- people
@@ -283,7 +280,7 @@ def machine_summaries(s: Session) -> list[dict]:
             "class": m.machine_class,
             "state": _machine_state(n_open, newest.ts if newest else None),
             "speed_hz": speed, "speed_rpm": None if speed is None else speed * 60.0,
-            "last_reading_at": iso(newest.ts) if newest else None,
+            "last_reading_at": iso_utc(newest.ts) if newest else None,
             "nearest_margin": _nearest(margins),
             "worst_zone": None if worst is None else {
                 "point": worst.point_id, "zone": worst.zone,
@@ -303,14 +300,14 @@ def mode_json(mo: Mode) -> dict:
     outside the registry's bounds, so neither the service nor the margins use it."""
     d = mo.values()
     problem = mode_problem(mo, mo.machine_id)
-    d.update({"id": mo.id, "updated_at": iso(mo.updated_at), "valid": problem is None, "problem": problem})
+    d.update({"id": mo.id, "updated_at": iso_utc(mo.updated_at), "valid": problem is None, "problem": problem})
     return d
 
 
 def baseline_restart_json(r: BaselineRestart) -> dict:
     return {"id": r.id, "machine": r.machine_id, "point": r.point_id, "comment": r.comment,
-            "requested_by": r.requested_by, "requested_at": iso(r.requested_at),
-            "applied_at": iso(r.applied_at)}
+            "requested_by": r.requested_by, "requested_at": iso_utc(r.requested_at),
+            "applied_at": iso_utc(r.applied_at)}
 
 
 def _limits_for(m: Machine, p: MeasurementPoint):
@@ -334,7 +331,7 @@ def spectrum_json(sn: SpectrumSnapshot, max_bins: int = MAX_SPECTRUM_BINS) -> di
         a2 = amp[:n].reshape(-1, k)
         idx = a2.argmax(axis=1) + np.arange(a2.shape[0]) * k
         f, amp = f[idx], amp[idx]
-    return {"id": sn.id, "machine": sn.machine_id, "point": sn.point_id, "ts": iso(sn.ts),
+    return {"id": sn.id, "machine": sn.machine_id, "point": sn.point_id, "ts": iso_utc(sn.ts),
             "kind": sn.kind, "unit": sn.unit, "scaling": sn.scaling,
             "df_hz": sn.df_hz, "evidence": sn.evidence,
             "freq_hz": np.round(f, 4).tolist(),
@@ -381,7 +378,7 @@ def machine_detail(s: Session, m: Machine) -> dict:
             "zone_limits_mm_s": limits,
             "zone_limits_source": lim.source if lim else view["zone_limits_source"],
             "latest": None if me is None else {
-                "ts": iso(me.ts), "zone": me.zone, "overall_mm_s_rms": me.overall_velocity_mm_s_rms,
+                "ts": iso_utc(me.ts), "zone": me.zone, "overall_mm_s_rms": me.overall_velocity_mm_s_rms,
                 "speed_hz": me.speed_hz, "speed_source": me.speed_source,
                 "orders": me.orders, "peaks": me.peaks},
             # The learned baseline of the overall level (mm/s RMS; None while learning).
@@ -396,7 +393,7 @@ def machine_detail(s: Session, m: Machine) -> dict:
         "state": _machine_state(n_open, newest.ts if newest else None),
         "active_alarms": n_open,
         "speed_hz": speed, "speed_rpm": None if speed is None else speed * 60.0,
-        "last_reading_at": iso(newest.ts) if newest else None,
+        "last_reading_at": iso_utc(newest.ts) if newest else None,
         "points": pts,
         "modes": [mode_json(x) for x in modes],
         "margins": current_margins(m, list(modes), speed, newest.evaluation if newest else None,
@@ -410,7 +407,7 @@ def mode_history(s: Session, machine_id: str, limit: int = 200) -> list[dict]:
     rows = s.scalars(select(ModeHistory).where(ModeHistory.machine_id == machine_id)
                      .order_by(ModeHistory.changed_at.desc(), ModeHistory.id.desc()).limit(limit))
     return [{"id": h.id, "mode": h.mode_name, "change": h.change, "changed_by": h.changed_by,
-             "changed_at": iso(h.changed_at), "old": h.old_values, "new": h.new_values} for h in rows]
+             "changed_at": iso_utc(h.changed_at), "old": h.old_values, "new": h.new_values} for h in rows]
 
 
 # ----------------------------------------------------------------------------- trends
@@ -513,7 +510,7 @@ def alarm_json(a: Alarm, with_transitions: bool = False) -> dict:
     if with_transitions:
         d["transitions"] = [
             {"id": t.id, "transition": t.transition, "severity": t.severity, "state": t.state,
-             "at": iso(t.at), "user": t.user, "evidence": t.evidence,
+             "at": iso_utc(t.at), "user": t.user, "evidence": t.evidence,
              "spectrum_id": t.spectrum_snapshot_id}
             for t in a.transitions
         ]

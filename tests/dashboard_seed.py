@@ -28,6 +28,7 @@ from sqlalchemy import insert, select
 from monitor.analysis.waveform import analyse_waveform
 from monitor.detection.evaluator import Detector
 from monitor.detection.margins import margin_table
+from monitor.model.jsonsafe import jsonable
 from monitor.model.registry import Machine as RegMachine
 from monitor.model.registry import Mode as RegMode
 from monitor.model.registry import Point as RegPoint
@@ -44,7 +45,7 @@ from monitor.store.models import (
     pack_amplitudes,
 )
 from monitor.store.registry_sync import import_registry
-from monitor.store.writes import jsonable, write_reading
+from monitor.store.writes import write_reading
 
 T_END = dt.datetime(2026, 3, 10, 12, 0, tzinfo=dt.UTC)
 PASSWORDS = {"ada": "admin-pass-1", "eng": "engineer-pass-1", "vic": "viewer-pass-1"}

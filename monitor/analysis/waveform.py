@@ -7,7 +7,6 @@ dashboard all read this dataclass; extend it, don't break it.
 
 from __future__ import annotations
 
-import datetime as _dt
 import math
 from dataclasses import dataclass, field
 from typing import Any, Literal
@@ -20,8 +19,10 @@ from monitor.analysis.orders import OrderAmplitude, normalise_orders, order_ampl
 from monitor.analysis.spectrum import Peak, Spectrum
 from monitor.analysis.speed import estimate_speed, speed_from_tach
 from monitor.model import units
+from monitor.model.jsonsafe import jsonable
 from monitor.model.readings import Waveform
 from monitor.model.registry import Machine, Point
+from monitor.model.timefmt import iso_utc
 
 __all__ = [
     "OrderAmplitude",
@@ -244,17 +245,8 @@ def analyse_waveform(
     )
 
 
-def _iso_utc(ts: float) -> str:
-    t = _dt.datetime.fromtimestamp(ts, tz=_dt.UTC)
-    return t.isoformat(timespec="milliseconds").replace("+00:00", "Z")
-
-
 def _order_key(order: float) -> str:
     return f"{order:g}"
-
-
-def _finite_or_none(v: float) -> float | None:
-    return v if math.isfinite(v) else None
 
 
 def analysis_to_json(a: ReadingAnalysis) -> dict[str, Any]:
@@ -271,7 +263,7 @@ def analysis_to_json(a: ReadingAnalysis) -> dict[str, Any]:
     out: dict[str, Any] = {
         "machine": a.machine,
         "point": a.point,
-        "ts": _iso_utc(a.ts),
+        "ts": iso_utc(a.ts, timespec="milliseconds"),
         "speed_hz": a.speed_hz,
         "speed_source": a.speed_source,
         "speed_uncertainty_hz": a.speed_uncertainty_hz,
@@ -280,7 +272,7 @@ def analysis_to_json(a: ReadingAnalysis) -> dict[str, Any]:
         "peaks": [{"hz": p.hz, "amplitude": p.amplitude} for p in a.peaks],
         "reading_id": a.reading_id,
         "unit": a.spectrum.unit,
-        "one_x_normalised": _finite_or_none(a.one_x_normalised),
+        "one_x_normalised": jsonable(a.one_x_normalised),
         "order_velocity_mm_s": {_order_key(o.order): o.velocity_mm_s for o in a.orders},
     }
     if any(o.phase_deg is not None for o in a.orders):

@@ -16,15 +16,16 @@ import sys
 from collections import Counter
 from collections.abc import Iterator
 from pathlib import Path
-from typing import Any
 
 import click
 
 from monitor.analysis.waveform import ReadingAnalysis, analyse_waveform, analysis_to_json
 from monitor.io.ingest import SPEED_STREAM, IngestLimits, Rejected, decode_message
-from monitor.io.streams import DEFAULT_PREFIX, StreamError, iso_utc, read_stream
+from monitor.io.streams import DEFAULT_PREFIX, StreamError, read_stream
+from monitor.model.jsonsafe import jsonable
 from monitor.model.readings import SpeedReading, Waveform
 from monitor.model.registry import Registry, RegistryError, load_registry
+from monitor.model.timefmt import iso_utc
 
 #: Largest gap (s) between a speed reading and a waveform for the speed to count as
 #: measured for that waveform.
@@ -111,7 +112,7 @@ def _table_row(a: ReadingAnalysis) -> str:
     peaks = "  ".join(f"{p.hz:.1f}Hz:{p.amplitude:.3g}" for p in a.peaks[:3])
     src = "m" if a.speed_source == "measured" else "e"
     return (
-        f"{iso_utc(a.ts):24}  {a.machine + '/' + a.point:16}  {a.speed_hz:8.2f} {src}  "
+        f"{iso_utc(a.ts, timespec='milliseconds'):24}  {a.machine + '/' + a.point:16}  {a.speed_hz:8.2f} {src}  "
         f"{a.overall_velocity_mm_s_rms:8.2f}  {_fmt(one.amplitude if one else None):>8}  "
         f"{_fmt(two.amplitude if two else None):>8}  {peaks}"
     )
@@ -121,17 +122,6 @@ _HEADER = (
     f"{'ts (UTC)':24}  {'machine/point':16}  {'speed Hz':>8} s  {'mm/s rms':>8}  "
     f"{'1x pk':>8}  {'2x pk':>8}  top peaks (Hz:amplitude pk, sensor unit)"
 )
-
-
-def _json_safe(value: Any) -> Any:
-    """NaN and infinity -> null, so every line is strict JSON."""
-    if isinstance(value, float):
-        return value if math.isfinite(value) else None
-    if isinstance(value, dict):
-        return {k: _json_safe(v) for k, v in value.items()}
-    if isinstance(value, list | tuple):
-        return [_json_safe(v) for v in value]
-    return value
 
 
 def _count_lines(path: Path) -> int:
@@ -173,7 +163,7 @@ def analyse(file: Path, machines_file: Path, as_json: bool, prefix: str) -> None
     with click.progressbar(length=total, label="analysing", file=err) as bar:
         for a in analyse_stream(file, registry, prefix=prefix, outcome=outcome):
             if as_json:
-                record = _json_safe(analysis_to_json(a))
+                record = jsonable(analysis_to_json(a))
                 click.echo(json.dumps(record, separators=(",", ":"), allow_nan=False))
             else:
                 click.echo(_table_row(a))

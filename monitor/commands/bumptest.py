@@ -39,6 +39,7 @@ from monitor.io.ingest import (
 )
 from monitor.io.streams import DEFAULT_PREFIX, StreamError, read_stream
 from monitor.model import units
+from monitor.model.jsonsafe import jsonable
 from monitor.model.readings import SpeedReading, Waveform
 from monitor.model.registry import Machine, Point, Registry, RegistryError, load_registry
 from monitor.modes.identify import (
@@ -126,7 +127,7 @@ def emit_point(doc: dict[str, Any] | None, print_table_fn: Callable[[], None], t
     None."""
     if doc is not None:
         if recording:
-            doc["alarm_transitions"] = [_json_safe(t.to_json()) for t in transitions]
+            doc["alarm_transitions"] = [jsonable(t.to_json()) for t in transitions]
         click.echo(json.dumps(doc, separators=(",", ":"), allow_nan=False))
         return
     print_table_fn()
@@ -286,20 +287,10 @@ def analyse_point(
                        max(w.ts for w, _ in pairs))
 
 
-def _json_safe(value: Any) -> Any:
-    if isinstance(value, float):
-        return value if math.isfinite(value) else None
-    if isinstance(value, dict):
-        return {k: _json_safe(v) for k, v in value.items()}
-    if isinstance(value, list | tuple):
-        return [_json_safe(v) for v in value]
-    return value
-
-
 def result_json(r: PointResult) -> dict[str, Any]:
     """The ``bumptest --json`` object of one measurement point (docs/modes.md)."""
     t = r.test
-    return _json_safe({
+    return jsonable({
         "machine": r.machine,
         "point": r.point,
         "hits": r.hits_used,

@@ -31,13 +31,13 @@ import numpy as np
 from monitor.analysis.waveform import ReadingAnalysis
 from monitor.commands.analyse import Outcome, analyse_stream
 from monitor.commands.bumptest import (
-    _json_safe,
     check_file,
     comparison_registry,
     emit_point,
     record_comparison,
 )
 from monitor.commands.db import database_options
+from monitor.model.jsonsafe import jsonable
 from monitor.model.registry import Machine
 from monitor.modes.identify import (
     DEFAULT_SHIFT_TOLERANCE_PCT,
@@ -146,7 +146,7 @@ def print_table(r: PointPassages) -> None:
 
 def result_json(r: PointPassages, stored_bands: tuple[SkipBand, ...]) -> dict[str, Any]:
     """The ``passage --json`` object of one measurement point (docs/modes.md)."""
-    return _json_safe({
+    return jsonable({
         "machine": r.machine,
         "point": r.point,
         "direction": r.bode.direction,

@@ -23,12 +23,12 @@ JSON-able dict (exact: non-finite floats as tagged strings, :mod:`monitor.detect
 
 from __future__ import annotations
 
-import datetime as _dt
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any, Literal
 
 from monitor.detection.state_json import float_in, float_out, value_in, value_out
+from monitor.model.timefmt import iso_utc
 
 #: Severities, lowest first. ``alert`` is ISO 20816's ALERT; ``advisory`` and ``severe``
 #: are our own words for the levels below and above it (docs/alarms.md).
@@ -48,13 +48,6 @@ def severity_rank(severity: str | None) -> int:
 
 
 _RANK: dict[str | None, int] = {None: 0, **{s: i + 1 for i, s in enumerate(SEVERITIES)}}
-
-
-def iso_utc(ts: float | None) -> str | None:
-    """Epoch seconds to ISO 8601 UTC ('...Z'), None stays None."""
-    if ts is None:
-        return None
-    return _dt.datetime.fromtimestamp(ts, _dt.UTC).isoformat().replace("+00:00", "Z")
 
 
 @dataclass(frozen=True)

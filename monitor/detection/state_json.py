@@ -29,6 +29,8 @@ import struct
 from collections.abc import Iterable, Mapping, Sequence
 from typing import Any
 
+from monitor.model.jsonsafe import jsonable
+
 #: Format of a detector-state snapshot written by this code (docs/store.md). Format 1
 #: (snapshots without a ``format`` key) wrote NaN and infinities as ``null``.
 STATE_FORMAT = 2
@@ -113,7 +115,7 @@ def value_out(obj: Any) -> Any:
     """Free-form JSON data (alarm evidence) with exact floats and escaped strings:
     mappings (keys as strings), lists and tuples, strings, numbers, booleans and None;
     numpy values by their Python equivalents, dataclasses as mappings of their fields;
-    other objects as :func:`monitor.store.writes.jsonable` writes them."""
+    other objects as :func:`monitor.model.jsonsafe.jsonable` writes them."""
     t = type(obj)
     if t is float:
         return obj if math.isfinite(obj) else _tag(obj)
@@ -139,7 +141,6 @@ def value_out(obj: Any) -> Any:
     if dataclasses.is_dataclass(obj) and not isinstance(obj, type):
         return {f.name: value_out(getattr(obj, f.name)) for f in dataclasses.fields(obj)}
     # Anything else (a date, an enum) in the form the store gives it.
-    from monitor.store.writes import jsonable  # the store imports detection's modules
 
     return value_out(jsonable(obj))
 

@@ -22,7 +22,8 @@ import paho.mqtt.client as paho
 from paho.mqtt.enums import CallbackAPIVersion
 
 from monitor.io.mqtt import parse_broker_url
-from monitor.io.streams import iso_utc, parse_ts
+from monitor.io.streams import parse_ts
+from monitor.model.timefmt import iso_utc
 
 Message = tuple[str, dict[str, Any]]
 
@@ -55,7 +56,7 @@ def retimed(messages: Sequence[Message], end_ts: float) -> tuple[list[tuple[floa
     out = []
     for (topic, payload), t in zip(messages, times, strict=True):
         body = dict(payload)
-        body["ts"] = iso_utc(t + shift)
+        body["ts"] = iso_utc(t + shift, timespec="milliseconds")
         out.append((t - t0, (topic, body)))
     return out, shift
 

@@ -16,7 +16,6 @@ Payloads written here:
 from __future__ import annotations
 
 import base64
-import datetime as _dt
 import json
 import os
 from collections.abc import Callable, Iterable, Iterator
@@ -26,6 +25,7 @@ from typing import Any
 import numpy as np
 
 from monitor.model.readings import SpeedReading, Waveform
+from monitor.model.timefmt import iso_utc, parse_iso_utc
 
 DEFAULT_PREFIX = "whirlwatch"
 
@@ -40,12 +40,6 @@ class StreamError(ValueError):
         super().__init__(f"{self.path}, line {line}: {problem}")
 
 
-def iso_utc(ts: float) -> str:
-    """Epoch seconds -> ISO 8601 UTC with milliseconds, e.g. ``2026-03-02T06:00:00.000Z``."""
-    dt = _dt.datetime.fromtimestamp(ts, tz=_dt.UTC)
-    return dt.isoformat(timespec="milliseconds").replace("+00:00", "Z")
-
-
 def parse_ts(value: Any) -> float:
     """ISO 8601 string (``Z`` or offset; naive read as UTC) or epoch seconds -> epoch seconds."""
     if isinstance(value, bool):
@@ -53,10 +47,7 @@ def parse_ts(value: Any) -> float:
     if isinstance(value, int | float):
         return float(value)
     if isinstance(value, str):
-        dt = _dt.datetime.fromisoformat(value.replace("Z", "+00:00"))
-        if dt.tzinfo is None:
-            dt = dt.replace(tzinfo=_dt.UTC)
-        return dt.timestamp()
+        return parse_iso_utc(value).timestamp()
     raise ValueError(f"ts must be an ISO 8601 time or epoch seconds, got {value!r}.")
 
 
@@ -81,7 +72,7 @@ def speed_topic(prefix: str, machine: str) -> str:
 def waveform_payload(w: Waveform) -> dict[str, Any]:
     """The MQTT payload (a JSON-ready dict) of waveform ``w``; samples as float32 base64."""
     out: dict[str, Any] = {
-        "ts": iso_utc(w.ts),
+        "ts": iso_utc(w.ts, timespec="milliseconds"),
         "fs": float(w.fs_hz),
         "unit": w.unit,
         "samples_f32": encode_f32(w.samples),
@@ -95,7 +86,7 @@ def waveform_payload(w: Waveform) -> dict[str, Any]:
 
 def speed_payload(r: SpeedReading) -> dict[str, Any]:
     """The MQTT payload of speed reading ``r``: ``ts`` (ISO 8601 UTC) and ``hz``."""
-    return {"ts": iso_utc(r.ts), "hz": round(float(r.speed_hz), 6)}
+    return {"ts": iso_utc(r.ts, timespec="milliseconds"), "hz": round(float(r.speed_hz), 6)}
 
 
 def reading_message(

@@ -69,8 +69,10 @@ from monitor.detection.evaluator import (
 from monitor.io.ingest import SPEED_STREAM, IngestLimits, Rejected, RejectionCounter, decode_message
 from monitor.io.mqtt import InboundMessage, MessageSource, MqttError, MqttSettings, Publisher
 from monitor.metrics import MetricsServer, ServiceMetrics
+from monitor.model.jsonsafe import jsonable
 from monitor.model.readings import SpeedReading, Waveform
 from monitor.model.registry import Registry
+from monitor.model.timefmt import iso_utc
 from monitor.service.registry_follow import follow, start_registry
 from monitor.store import (
     Store,
@@ -95,7 +97,6 @@ from monitor.store.writes import (
     existing_speed_readings,
     insert_ignore,
     insert_many_ignore,
-    jsonable,
     measurement_values,
     save_detector_states,
     snapshot_rows,
@@ -146,7 +147,7 @@ class JsonLineFormatter(logging.Formatter):
 
     def format(self, record: logging.LogRecord) -> str:
         out: dict[str, Any] = {
-            "ts": dt.datetime.fromtimestamp(record.created, dt.UTC).isoformat(timespec="milliseconds"),
+            "ts": iso_utc(record.created, timespec="milliseconds"),
             "level": record.levelname.lower(),
             "logger": record.name,
             "msg": record.getMessage(),
@@ -262,7 +263,7 @@ class RetryState:
     def to_json(self, now_m: float) -> dict[str, Any]:
         return {
             "attempts": self.attempts, "error_class": self.error_class, "error": self.error,
-            "since": dt.datetime.fromtimestamp(self.since, dt.UTC).isoformat().replace("+00:00", "Z"),
+            "since": iso_utc(self.since),
             "for_s": round(now_m - self.since_m, 1),
         }
 
@@ -951,7 +952,7 @@ class Service:
         key = self._fault_key(r.machine, r)
         evidence = {
             "cause": cause, "failures": ev.engine.persistence, "dead_letter_id": letter_id,
-            "reading_ts": dt.datetime.fromtimestamp(r.ts, dt.UTC).isoformat().replace("+00:00", "Z"),
+            "reading_ts": iso_utc(r.ts),
             "message": "readings of this stream cannot be processed and are kept as dead letters; "
                        "the machine is not watched here until they can",
         }
@@ -1229,7 +1230,7 @@ class Service:
     def _transition_fields(t: Transition) -> dict[str, Any]:
         return {
             "transition": t.name,
-            "transition_at": dt.datetime.fromtimestamp(t.ts, dt.UTC).isoformat().replace("+00:00", "Z"),
+            "transition_at": iso_utc(t.ts),
             "previous_severity": t.previous_severity,
             "reading_id": t.reading_id,
             "ref": t.alarm_id,
@@ -1255,7 +1256,7 @@ class Service:
         zones = [z for z in view.zones.values() if z]
         return {
             "machine": machine,
-            "ts": None if view.ts is None else dt.datetime.fromtimestamp(view.ts, dt.UTC).isoformat().replace("+00:00", "Z"),
+            "ts": iso_utc(view.ts),
             "state": worst or "normal",
             "speed_hz": view.speed_hz,
             "nearest_margin": view.nearest_margin(),
@@ -1419,7 +1420,7 @@ class Service:
             "in_flight": backlog,
             "waiting_s": round(waiting_s, 1),
             "last_commit_at": None if last is None else
-            dt.datetime.fromtimestamp(last[0], dt.UTC).isoformat(timespec="milliseconds").replace("+00:00", "Z"),
+            iso_utc(last[0], timespec="milliseconds"),
             "last_commit_age_s": None if last is None else round(now_m - last[1], 1),
             "retrying": retries,
             "database": db,

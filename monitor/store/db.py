@@ -35,6 +35,8 @@ from sqlalchemy.engine.url import URL
 from sqlalchemy.exc import ArgumentError, DisconnectionError
 from sqlalchemy.orm import Session, sessionmaker
 
+from monitor.model.jsonsafe import jsonable
+
 log = logging.getLogger("whirlwatch.store")
 
 DEFAULT_BUSY_TIMEOUT_MS = 10_000
@@ -275,7 +277,7 @@ _ORJSON_OPTIONS = orjson.OPT_SERIALIZE_NUMPY | orjson.OPT_PASSTHROUGH_DATACLASS 
 def dumps_json(value: Any) -> str:
     """JSON text of a JSON column's value: plain data and numpy values go straight to
     orjson; anything else (dataclasses, dates, non-string keys) goes through
-    :func:`monitor.store.writes.jsonable` first.
+    :func:`monitor.model.jsonsafe.jsonable` first.
 
     Non-finite numbers become null: JSON has none, and PostgreSQL's json type refuses
     the ``NaN``/``Infinity`` tokens. The text is always standard JSON, but a null cannot
@@ -289,7 +291,6 @@ def dumps_json(value: Any) -> str:
     try:
         return orjson.dumps(value, option=_ORJSON_OPTIONS).decode()
     except TypeError:
-        from monitor.store.writes import jsonable  # writes imports this module
 
         data = jsonable(value)
     try:

@@ -18,6 +18,7 @@ from typing import Any
 from sqlalchemy import and_, func, or_, select
 from sqlalchemy.orm import Session, selectinload
 
+from monitor.model.timefmt import iso_utc
 from monitor.store.models import (
     Alarm,
     AlarmTransitionRow,
@@ -351,9 +352,6 @@ def alarm_as_json(alarm: Alarm) -> dict[str, Any]:
     """The alarm in the JSON shape of the REST API; an MQTT alarm event is this object
     with the event's own ``transition`` and ``transition_at`` added (monitor.service.service)."""
 
-    def iso(t: dt.datetime | None) -> str | None:
-        return t.isoformat().replace("+00:00", "Z") if t else None
-
     return {
         "id": alarm.id,
         "machine": alarm.machine_id,
@@ -362,14 +360,14 @@ def alarm_as_json(alarm: Alarm) -> dict[str, Any]:
         "subject": alarm.subject,
         "severity": alarm.severity,
         "state": alarm.state,
-        "raised_at": iso(alarm.raised_at),
-        "cleared_at": iso(alarm.cleared_at),
+        "raised_at": iso_utc(alarm.raised_at),
+        "cleared_at": iso_utc(alarm.cleared_at),
         "acknowledged_by": alarm.acknowledged_by,
-        "acknowledged_at": iso(alarm.acknowledged_at),
+        "acknowledged_at": iso_utc(alarm.acknowledged_at),
         "ack_comment": alarm.ack_comment,
         "evidence": alarm.evidence,
         "last_transition": alarm.last_transition,
-        "last_transition_at": iso(alarm.last_transition_at),
+        "last_transition_at": iso_utc(alarm.last_transition_at),
     }
 
 

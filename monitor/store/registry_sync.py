@@ -28,6 +28,7 @@ from typing import Any
 from sqlalchemy import func, select, update
 from sqlalchemy.orm import Session, selectinload
 
+from monitor.model.jsonsafe import jsonable
 from monitor.model.registry import (
     Machine,
     Mode,
@@ -48,7 +49,6 @@ from monitor.store.models import (
 )
 from monitor.store.models import Machine as MachineRow
 from monitor.store.models import Mode as ModeRow
-from monitor.store.writes import jsonable
 
 
 class UnknownEntry(LookupError):
