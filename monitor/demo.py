@@ -24,7 +24,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from monitor.io.ingest import IngestLimits
+from monitor.io.ingest_limits import IngestLimits
 from monitor.io.replay import Message, StreamPublisher, load_streams, replay
 
 #: Where the sample streams live in a source checkout.

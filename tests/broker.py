@@ -43,7 +43,7 @@ import socket
 import subprocess
 import tempfile
 import time
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from pathlib import Path
 
 import pytest
@@ -258,7 +258,7 @@ def publish_many(
 ) -> None:
     """Publish ``(topic, payload)`` pairs at QoS 1 as a sensor would, and wait for every PUBACK.
 
-    Uses paho directly (not ``monitor.io.mqtt``) so the tests' sender is independent of the
+    Uses paho directly (not ``monitor.io``'s MQTT modules) so the tests' sender is independent of the
     code under test.
     """
     import paho.mqtt.client as paho
@@ -279,6 +279,16 @@ def publish_many(
     finally:
         client.disconnect()
         client.loop_stop()
+
+
+def wait_until(predicate: Callable[[], bool], timeout_s: float, poll_s: float = 0.01) -> bool:
+    """Poll ``predicate`` until it is true or ``timeout_s`` seconds pass; return its last value."""
+    deadline = time.monotonic() + timeout_s
+    while time.monotonic() < deadline:
+        if predicate():
+            return True
+        time.sleep(poll_s)
+    return bool(predicate())
 
 
 def _make_broker(tmp: Path, *, deploy: bool = False) -> PrivateBroker:

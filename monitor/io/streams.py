@@ -1,4 +1,4 @@
-"""Stream files: recorded MQTT traffic as ``.jsonl`` (DESIGN.md section 3).
+"""Stream files: recorded MQTT traffic as ``.jsonl`` (the payloads of docs/mqtt.md).
 
 One JSON object per line, ``{"topic": ..., "payload": {...}}``, in time order. The
 payload is exactly the JSON an MQTT message would carry, so replaying a file publishes
@@ -54,11 +54,6 @@ def parse_ts(value: Any) -> float:
 def encode_f32(samples: np.ndarray) -> str:
     """Samples -> base64 of little-endian float32."""
     return base64.b64encode(np.asarray(samples, dtype="<f4").tobytes()).decode("ascii")
-
-
-def decode_f32(text: str) -> np.ndarray:
-    """base64 of little-endian float32 -> float64 array."""
-    return np.frombuffer(base64.b64decode(text, validate=True), dtype="<f4").astype(float)
 
 
 def waveform_topic(prefix: str, machine: str, point: str) -> str:
