@@ -37,7 +37,6 @@ change to the deploy file is what the tests run.
 from __future__ import annotations
 
 import os
-import shutil
 import signal
 import socket
 import subprocess
@@ -47,6 +46,8 @@ from collections.abc import Callable, Iterator
 from pathlib import Path
 
 import pytest
+
+from monitor.demo import find_mosquitto, free_port
 
 ROOT = Path(__file__).resolve().parent.parent
 DEPLOY_MOSQUITTO_CONF = ROOT / "deploy" / "mosquitto.conf"
@@ -85,21 +86,6 @@ def deploy_broker_settings(path: Path = DEPLOY_MOSQUITTO_CONF) -> dict[str, str]
     (everything but :data:`SITE_DIRECTIVES`), by name; the last occurrence wins, as in
     Mosquitto."""
     return {name: value for name, value in read_mosquitto_conf(path) if name not in SITE_DIRECTIVES}
-
-
-def find_mosquitto() -> str | None:
-    """Path of the ``mosquitto`` binary, or None (Debian installs it in /usr/sbin)."""
-    found = shutil.which("mosquitto")
-    if found:
-        return found
-    return "/usr/sbin/mosquitto" if os.access("/usr/sbin/mosquitto", os.X_OK) else None
-
-
-def free_port() -> int:
-    """A TCP port on 127.0.0.1 that nothing listens on right now."""
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
-        s.bind(("127.0.0.1", 0))
-        return int(s.getsockname()[1])
 
 
 class PrivateBroker:

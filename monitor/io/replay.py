@@ -19,25 +19,20 @@ from pathlib import Path
 from typing import Any
 
 from monitor.io.mqtt_settings import MqttSettings, make_client
-from monitor.io.streams import parse_ts
+from monitor.io.streams import parse_ts, read_messages
 from monitor.model.timefmt import iso_utc
 
 Message = tuple[str, dict[str, Any]]
 
 
 def load_streams(paths: Iterable[str | Path]) -> list[Message]:
-    """Every ``(topic, payload dict)`` of the stream files, merged in time order (stable)."""
+    """Every ``(topic, payload dict)`` of the stream files, merged in time order (stable).
+
+    Raises :class:`~monitor.io.streams.StreamError` for a malformed line."""
     out: list[tuple[float, int, Message]] = []
-    k = 0
     for p in paths:
-        with Path(p).open(encoding="utf-8") as fh:
-            for line in fh:
-                if not line.strip():
-                    continue
-                obj = json.loads(line)
-                payload = obj["payload"]
-                out.append((parse_ts(payload["ts"]), k, (obj["topic"], payload)))
-                k += 1
+        for topic, payload in read_messages(p):
+            out.append((parse_ts(payload["ts"]), len(out), (topic, payload)))
     out.sort(key=lambda x: (x[0], x[1]))
     return [m for _, _, m in out]
 
