@@ -33,7 +33,7 @@ from sqlalchemy import func, select  # noqa: E402
 
 from monitor.analysis.waveform import analyse_waveform  # noqa: E402
 from monitor.io.ingest import decode_message  # noqa: E402
-from monitor.io.mqtt import _no_delay  # noqa: E402
+from monitor.io.mqtt_settings import no_delay  # noqa: E402
 from monitor.io.streams import encode_f32  # noqa: E402
 from monitor.model.registry import parse_registry  # noqa: E402
 from monitor.model.timefmt import iso_utc  # noqa: E402
@@ -91,7 +91,7 @@ def _bare_receive(broker: PrivateBroker, msgs) -> float:
 
     def client() -> paho.Client:
         c = paho.Client(CallbackAPIVersion.VERSION2, client_id="bare", protocol=paho.MQTTv5)
-        c.on_socket_open = _no_delay
+        c.on_socket_open = no_delay
         c.on_message = on_msg
         props = Properties(PacketTypes.CONNECT)
         props.SessionExpiryInterval = 600
@@ -204,7 +204,7 @@ def _paced_publisher(host: str, port: int, rate_hz: float, n_warm: int, n_meas: 
 
     msgs = _messages(n_warm + n_meas, t_end)
     c = paho.Client(CallbackAPIVersion.VERSION2, protocol=paho.MQTTv5)
-    c.on_socket_open = _no_delay  # a sensor's own stack would not wait 40 ms on Nagle
+    c.on_socket_open = no_delay  # a sensor's own stack would not wait 40 ms on Nagle
     c.max_inflight_messages_set(1000)
     c.connect(host, port)
     c.loop_start()

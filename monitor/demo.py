@@ -24,7 +24,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from monitor.io.ingest import IngestLimits
+from monitor.io.ingest_limits import IngestLimits
 from monitor.io.replay import Message, StreamPublisher, load_streams, replay
 
 #: Where the sample streams live in a source checkout.
@@ -33,12 +33,14 @@ DEMO_USER = "demo"
 
 
 def free_port() -> int:
+    """A TCP port on 127.0.0.1 that nothing listens on right now."""
     with socket.socket() as s:
         s.bind(("127.0.0.1", 0))
         return int(s.getsockname()[1])
 
 
 def find_mosquitto() -> str | None:
+    """Path of the ``mosquitto`` binary, or None (Debian installs it in /usr/sbin)."""
     found = shutil.which("mosquitto")
     if found:
         return found

@@ -142,7 +142,6 @@ class MetricsServer:
     def __init__(self, metrics: ServiceMetrics, health: Callable[[], dict[str, Any]], address: str,
                  ready: Callable[[], dict[str, Any]] | None = None) -> None:
         host, _, port = address.rpartition(":")
-        outer = self
 
         class Handler(BaseHTTPRequestHandler):
             def do_GET(self) -> None:  # noqa: N802 (http.server's name)
@@ -170,7 +169,6 @@ class MetricsServer:
         self.server = ThreadingHTTPServer((host or "127.0.0.1", int(port)), Handler)
         self.port = self.server.server_address[1]
         self._thread = threading.Thread(target=self.server.serve_forever, name="metrics", daemon=True)
-        _ = outer
 
     def start(self) -> None:
         self._thread.start()

@@ -37,16 +37,17 @@ change to the deploy file is what the tests run.
 from __future__ import annotations
 
 import os
-import shutil
 import signal
 import socket
 import subprocess
 import tempfile
 import time
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from pathlib import Path
 
 import pytest
+
+from monitor.demo import find_mosquitto, free_port
 
 ROOT = Path(__file__).resolve().parent.parent
 DEPLOY_MOSQUITTO_CONF = ROOT / "deploy" / "mosquitto.conf"
@@ -85,21 +86,6 @@ def deploy_broker_settings(path: Path = DEPLOY_MOSQUITTO_CONF) -> dict[str, str]
     (everything but :data:`SITE_DIRECTIVES`), by name; the last occurrence wins, as in
     Mosquitto."""
     return {name: value for name, value in read_mosquitto_conf(path) if name not in SITE_DIRECTIVES}
-
-
-def find_mosquitto() -> str | None:
-    """Path of the ``mosquitto`` binary, or None (Debian installs it in /usr/sbin)."""
-    found = shutil.which("mosquitto")
-    if found:
-        return found
-    return "/usr/sbin/mosquitto" if os.access("/usr/sbin/mosquitto", os.X_OK) else None
-
-
-def free_port() -> int:
-    """A TCP port on 127.0.0.1 that nothing listens on right now."""
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
-        s.bind(("127.0.0.1", 0))
-        return int(s.getsockname()[1])
 
 
 class PrivateBroker:
@@ -258,7 +244,7 @@ def publish_many(
 ) -> None:
     """Publish ``(topic, payload)`` pairs at QoS 1 as a sensor would, and wait for every PUBACK.
 
-    Uses paho directly (not ``monitor.io.mqtt``) so the tests' sender is independent of the
+    Uses paho directly (not ``monitor.io``'s MQTT modules) so the tests' sender is independent of the
     code under test.
     """
     import paho.mqtt.client as paho
@@ -279,6 +265,16 @@ def publish_many(
     finally:
         client.disconnect()
         client.loop_stop()
+
+
+def wait_until(predicate: Callable[[], bool], timeout_s: float, poll_s: float = 0.01) -> bool:
+    """Poll ``predicate`` until it is true or ``timeout_s`` seconds pass; return its last value."""
+    deadline = time.monotonic() + timeout_s
+    while time.monotonic() < deadline:
+        if predicate():
+            return True
+        time.sleep(poll_s)
+    return bool(predicate())
 
 
 def _make_broker(tmp: Path, *, deploy: bool = False) -> PrivateBroker:

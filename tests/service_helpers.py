@@ -13,6 +13,7 @@ from collections.abc import Callable, Sequence
 from pathlib import Path
 
 import paho.mqtt.client as paho
+from broker import wait_until
 from paho.mqtt.enums import CallbackAPIVersion
 from sqlalchemy import func, select
 
@@ -73,12 +74,8 @@ def measurement_count(url: str) -> tuple[int, int]:
 
 
 def wait_for(predicate: Callable[[], bool], timeout_s: float, poll_s: float = 0.2) -> bool:
-    deadline = time.monotonic() + timeout_s
-    while time.monotonic() < deadline:
-        if predicate():
-            return True
-        time.sleep(poll_s)
-    return predicate()
+    """:func:`broker.wait_until` polling less often (a service test's predicate reads a database)."""
+    return wait_until(predicate, timeout_s, poll_s)
 
 
 class Recorder:

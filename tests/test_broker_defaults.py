@@ -1,4 +1,4 @@
-"""Broker settings are written once: the settings registry (monitor/config.py) holds the
+"""Broker settings are written once: the settings registry (monitor/settings.py) holds the
 defaults, MqttSettings and BrokerSettings take theirs from it, and every document that states
 one (docs/mqtt.md, docs/configuration.md, deploy/whirlwatch.toml, deploy/mosquitto.conf)
 states the same value. A drift here once left the docs promising a 7-day session while the
@@ -14,8 +14,8 @@ from pathlib import Path
 import pytest
 from broker import read_mosquitto_conf
 
-from monitor.config import BY_NAME, BrokerSettings, broker_default
-from monitor.io.mqtt import MqttSettings
+from monitor.io.mqtt_settings import MqttSettings
+from monitor.settings import BY_NAME, BrokerSettings, broker_default
 
 ROOT = Path(__file__).resolve().parent.parent
 MQTT_DOC = (ROOT / "docs" / "mqtt.md").read_text(encoding="utf-8")

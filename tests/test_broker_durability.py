@@ -36,7 +36,8 @@ from service_helpers import (
 from sqlalchemy import func, select
 
 from monitor.config import load_settings
-from monitor.io.mqtt import InboundMessage, MessageSource, MqttSettings
+from monitor.io.mqtt_settings import MqttSettings
+from monitor.io.mqtt_source import InboundMessage, MessageSource
 from monitor.service.service import Service
 from monitor.store import Store
 from monitor.store.models import Measurement

@@ -19,18 +19,10 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from monitor.io.ingest import (
-    DEAD_LETTER_BYTES,
-    REJECTION_REASONS,
-    SPEED_STREAM,
-    DeadLetter,
-    IngestLimits,
-    Rejected,
-    RejectionCounter,
-    decode_message,
-    encode_waveform,
-    parse_topic,
-)
+from monitor.io.ingest import SPEED_STREAM, decode_message, parse_topic
+from monitor.io.ingest_limits import REJECTION_REASONS, IngestLimits, Rejected
+from monitor.io.rejection_count import RejectionCounter
+from monitor.io.streams import waveform_payload
 from monitor.model.readings import SpeedReading, Waveform
 from monitor.model.registry import parse_registry
 
@@ -310,10 +302,14 @@ class TestGoodPayloads:
     def test_extra_keys_are_ignored(self):
         assert _decode(WAVE, wave(gateway="g-7")).point == "de-h"
 
-    def test_encode_waveform_round_trip(self):
+    def test_stream_payload_round_trip(self):
+        # What the stream files write (monitor.io.streams) decodes to the same reading, with
+        # the samples as float32 base64 or as a list of numbers.
         w = _decode(WAVE, wave(speed_hz=20.0, id="a"))
-        for f32 in (True, False):
-            again = _decode(WAVE, encode_waveform(w, f32=f32))
+        f32 = waveform_payload(w)
+        plain = {k: v for k, v in f32.items() if k != "samples_f32"} | {"samples": w.samples.tolist()}
+        for body in (f32, plain):
+            again = _decode(WAVE, dumps(body))
             assert again.samples.tolist() == w.samples.tolist()
             assert (again.ts, again.fs_hz, again.speed_hz, again.reading_id) == (
                 w.ts, w.fs_hz, 20.0, "a"
@@ -351,14 +347,3 @@ class TestCounting:
         assert c.record("not_json", 60.0) is True
         assert c.counts() == {"not_json": 4, "fs_absurd": 1}
         assert c.total == 5
-
-    def test_dead_letter_keeps_first_bytes(self):
-        payload = bytes(range(256)) * 4
-        try:
-            _decode(WAVE, payload)
-        except Rejected as exc:
-            dl = DeadLetter.from_rejection(WAVE, payload, exc, at=NOW)
-        assert dl.reason == "not_utf8"
-        assert dl.first_bytes == payload[:DEAD_LETTER_BYTES]
-        assert len(dl.first_bytes) == 256
-        assert (dl.at, dl.topic) == (NOW, WAVE)

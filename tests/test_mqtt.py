@@ -21,18 +21,13 @@ from pathlib import Path
 
 import paho.mqtt.client as paho
 import pytest
-from broker import PrivateBroker, publish_many
+from broker import PrivateBroker, publish_many, wait_until
 from paho.mqtt.enums import CallbackAPIVersion
 
-from monitor.io.mqtt import (
-    InboundMessage,
-    MessageSource,
-    MqttConfigError,
-    MqttSettings,
-    Publisher,
-    parse_broker_url,
-    wait_until,
-)
+from monitor.io.mqtt_names import MqttConfigError, parse_broker_url
+from monitor.io.mqtt_publisher import Publisher
+from monitor.io.mqtt_settings import MqttSettings
+from monitor.io.mqtt_source import InboundMessage, MessageSource
 
 pytestmark = pytest.mark.broker
 ROOT = Path(__file__).resolve().parent.parent
@@ -138,7 +133,8 @@ class TestSettings:
 
 CONSUMER = r"""
 import json, signal, sys, threading
-from monitor.io.mqtt import MessageSource, MqttSettings
+from monitor.io.mqtt_settings import MqttSettings
+from monitor.io.mqtt_source import MessageSource
 url, client_id, protocol, mode, prefix = sys.argv[1:6]
 source = MessageSource(MqttSettings(url=url, client_id=client_id, protocol=protocol,
                                     prefix=prefix, reconnect_min_s=0.1, reconnect_max_s=0.5))

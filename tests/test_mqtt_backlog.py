@@ -12,9 +12,10 @@ import threading
 import uuid
 
 import pytest
-from broker import PrivateBroker, publish_many
+from broker import PrivateBroker, publish_many, wait_until
 
-from monitor.io.mqtt import InboundMessage, MessageSource, MqttSettings, wait_until
+from monitor.io.mqtt_settings import MqttSettings
+from monitor.io.mqtt_source import InboundMessage, MessageSource
 
 pytestmark = pytest.mark.broker
 

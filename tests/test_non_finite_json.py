@@ -19,7 +19,7 @@ from sqlalchemy import func, select
 from dashboard import create_app
 from monitor.analysis.waveform import analyse_waveform
 from monitor.config import load_settings
-from monitor.io.ingest import IngestLimits
+from monitor.io.ingest_limits import IngestLimits
 from monitor.io.replay import load_streams
 from monitor.model.readings import Waveform
 from monitor.model.registry import UNITS_BY_QUANTITY, Machine, Point

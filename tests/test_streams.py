@@ -10,7 +10,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from monitor.io.ingest import IngestLimits, decode_message
+from monitor.io.ingest import decode_message
+from monitor.io.ingest_limits import IngestLimits
 from monitor.io.streams import (
     StreamError,
     read_stream,

@@ -20,7 +20,8 @@ from pathlib import Path
 import click
 
 from monitor.analysis.waveform import ReadingAnalysis, analyse_waveform, analysis_to_json
-from monitor.io.ingest import SPEED_STREAM, IngestLimits, Rejected, decode_message
+from monitor.io.ingest import SPEED_STREAM, decode_message
+from monitor.io.ingest_limits import IngestLimits, Rejected
 from monitor.io.streams import DEFAULT_PREFIX, StreamError, read_stream
 from monitor.model.jsonsafe import jsonable
 from monitor.model.readings import SpeedReading, Waveform

@@ -31,12 +31,8 @@ import numpy as np
 
 from monitor.commands.analyse import FILE_LIMITS, Outcome
 from monitor.commands.db import database_options, open_store
-from monitor.io.ingest import (
-    UNIT_QUANTITY,
-    Rejected,
-    decode_message,
-    parse_topic,
-)
+from monitor.io.ingest import UNIT_QUANTITY, decode_message, parse_topic
+from monitor.io.ingest_limits import Rejected
 from monitor.io.streams import DEFAULT_PREFIX, StreamError, read_stream
 from monitor.model import units
 from monitor.model.jsonsafe import jsonable

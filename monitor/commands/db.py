@@ -2,12 +2,21 @@
 
 from __future__ import annotations
 
+from collections.abc import Callable
+from typing import TYPE_CHECKING, Any, TypeVar
+
 import click
 
 from monitor.config import ConfigError, load_settings
+from monitor.settings import Settings
+
+if TYPE_CHECKING:
+    from monitor.store.db import Store
+
+F = TypeVar("F", bound=Callable[..., Any])
 
 
-def database_options(f):  # type: ignore[no-untyped-def]
+def database_options(f: F) -> F:
     """``--database URL`` and ``--config FILE`` (the URL wins; else the service file,
     the environment and the default SQLite file, in that order)."""
     f = click.option(
@@ -27,20 +36,28 @@ def database_options(f):  # type: ignore[no-untyped-def]
     return f
 
 
-def resolve_database_url(database_url: str | None, config_file: str | None) -> str:
-    """The database URL from the flag, else from the settings; UsageError on a bad file."""
+def command_settings(database_url: str | None, config_file: str | None) -> Settings:
+    """The settings of a command: the service file (if any), the environment, and
+    ``--database`` over both; UsageError on a bad file."""
     try:
-        settings = load_settings(config_file, overrides={"database.url": database_url})
+        return load_settings(config_file, overrides={"database.url": database_url})
     except ConfigError as exc:
         raise click.UsageError(str(exc)) from exc
-    return settings.database.url
 
 
-def open_store(database_url: str | None, config_file: str | None):  # type: ignore[no-untyped-def]
+def resolve_database_url(database_url: str | None, config_file: str | None) -> str:
+    """The database URL from the flag, else from the settings; UsageError on a bad file."""
+    return command_settings(database_url, config_file).database.url
+
+
+def open_store(database_url: str | None, config_file: str | None) -> Store:
     """Open the store for a command; ClickException with the fix when the schema is missing."""
+    return _open(resolve_database_url(database_url, config_file))
+
+
+def _open(url: str) -> Store:
     from monitor.store.db import Store, StoreError
 
-    url = resolve_database_url(database_url, config_file)
     try:
         return Store.open(url)
     except StoreError as exc:
@@ -83,11 +100,8 @@ def thin_cmd(database_url: str | None, config_file: str | None) -> None:
     """Apply the retention policy once (alarm history is never deleted)."""
     from monitor.store.retention import apply_retention
 
-    try:
-        settings = load_settings(config_file, overrides={"database.url": database_url})
-    except ConfigError as exc:
-        raise click.UsageError(str(exc)) from exc
-    store = open_store(settings.database.url, None)
+    settings = command_settings(database_url, config_file)
+    store = _open(settings.database.url)
     try:
         with store.transaction() as session:
             result = apply_retention(session, settings.retention.policy())

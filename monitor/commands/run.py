@@ -23,7 +23,7 @@ def run(config: Path | None, broker: str | None, database: str | None, machines:
         client_id: str | None, shared_group: str | None, metrics_address: str | None) -> None:
     """Run the service until SIGTERM or Ctrl-C (finishes in-flight work, then stops)."""
     from monitor.config import ConfigError, load_settings
-    from monitor.io.mqtt import MqttConfigError
+    from monitor.io.mqtt_names import MqttConfigError
     from monitor.service.service import Service, ServiceError, configure_logging, run_service
     from monitor.store.db import StoreError
 

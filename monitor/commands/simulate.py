@@ -487,7 +487,7 @@ def simulate(
 def _publish(plans: list[_Plan], seed: int, machine_ids: tuple[str, ...], prefix: str,
              broker: str, speedup: float, max_gap_s: float | None) -> None:
     """Simulate the selected machines, merge in time order and publish at QoS 1."""
-    from monitor.io.mqtt import MqttConfigError
+    from monitor.io.mqtt_names import MqttConfigError
     from monitor.io.replay import StreamPublisher, replay
 
     seeds = np.random.SeedSequence(seed).spawn(len(plans))

@@ -1,19 +1,15 @@
 """Decode and validate incoming MQTT messages into readings.
 
 ``decode_message`` turns one raw message (topic and payload bytes) into a
-:class:`~monitor.model.readings.Waveform` or :class:`~monitor.model.readings.SpeedReading`, or raises
-:class:`Rejected` with one of the stable reason ids in :data:`REJECTION_REASONS`. It never
-raises anything else for any payload, never touches MQTT, the database or the clock beyond
-``now`` (``time.time()`` when not given); the caller counts rejections with
-:class:`RejectionCounter` and stores a :class:`DeadLetter`.
+:class:`~monitor.model.readings.Waveform` or :class:`~monitor.model.readings.SpeedReading`,
+or raises :class:`~monitor.io.ingest_limits.Rejected` with one of the stable reason ids in
+:data:`~monitor.io.ingest_limits.REJECTION_REASONS`. It never raises anything else for any
+payload, never touches MQTT, the database or the clock beyond ``now`` (``time.time()`` when
+not given); the caller counts rejections with
+:class:`~monitor.io.rejection_count.RejectionCounter` and stores a dead letter
+(:class:`monitor.store.models.DeadLetter`).
 
-Exceptions::
-
-    ValueError
-     +-- Rejected(reason, detail)     a message that will never be a reading
-
-Payloads and reasons are documented in ``docs/mqtt.md``; a test checks that every reason
-listed here is documented there.
+Payloads are documented in ``docs/mqtt.md``; :mod:`monitor.io.streams` writes them.
 """
 
 from __future__ import annotations
@@ -23,158 +19,29 @@ import binascii
 import datetime as _dt
 import json
 import math
-import threading
 import time
 from collections.abc import Callable
-from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
-try:  # SIMD base64 (~100x faster on an 87 kB block); the standard library otherwise
-    from pybase64 import b64decode as _b64decode
-except ImportError:  # pragma: no cover - pybase64 is a dependency, this is a fallback
-    _b64decode = base64.b64decode
-
+from monitor.io.ingest_limits import IngestLimits, Rejected
 from monitor.model.readings import SpeedReading, Waveform
 from monitor.model.registry import QUANTITIES, UNITS_BY_QUANTITY, Registry
+
+_b64decode: Callable[..., bytes]
+try:  # SIMD base64 (~100x faster on an 87 kB block); the standard library otherwise
+    import pybase64
+
+    _b64decode = pybase64.b64decode
+except ImportError:  # pragma: no cover - pybase64 is a dependency, this is a fallback
+    _b64decode = base64.b64decode
 
 #: Every unit a waveform may carry, and the quantity it measures.
 UNIT_QUANTITY: dict[str, str] = {u: q for q in QUANTITIES for u in UNITS_BY_QUANTITY[q]}
 
-#: Stable ids of every rejection, in the order the checks run. Documented in docs/mqtt.md.
-REJECTION_REASONS: tuple[str, ...] = (
-    "payload_too_large",
-    "topic_prefix",
-    "topic_malformed",
-    "unknown_machine",
-    "unknown_point",
-    "not_utf8",
-    "not_json",
-    "not_object",
-    "ts_missing",
-    "ts_type",
-    "ts_format",
-    "ts_no_timezone",
-    "ts_invalid",
-    "ts_future",
-    "ts_too_old",
-    "ts_replayed",
-    "fs_missing",
-    "fs_type",
-    "fs_not_finite",
-    "fs_not_positive",
-    "fs_absurd",
-    "unit_missing",
-    "unit_unknown",
-    "unit_wrong_quantity",
-    "samples_both",
-    "samples_missing",
-    "samples_type",
-    "samples_not_numeric",
-    "samples_not_finite",
-    "samples_f32_type",
-    "samples_f32_base64",
-    "samples_f32_length",
-    "samples_f32_not_finite",
-    "samples_empty",
-    "samples_too_few",
-    "samples_too_many",
-    "samples_absurd",
-    "speed_both",
-    "speed_missing",
-    "speed_type",
-    "speed_not_finite",
-    "speed_negative",
-    "speed_absurd",
-    "id_invalid",
-)
-
-#: How much of a rejected payload a dead letter keeps, bytes.
-DEAD_LETTER_BYTES = 256
-
 #: The ``point`` argument passed to ``last_ts`` for speed readings (no point id is empty).
 SPEED_STREAM = ""
-
-
-class Rejected(ValueError):
-    """A message that cannot become a reading.
-
-    ``reason`` is one of :data:`REJECTION_REASONS`; ``detail`` is one sentence for the log
-    and the dead-letter record, naming the field and the offending value (shortened).
-    """
-
-    def __init__(self, reason: str, detail: str) -> None:
-        if reason not in REJECTION_REASONS:
-            raise ValueError(f"reason must be one of REJECTION_REASONS, got {reason!r}.")
-        super().__init__(f"{reason}: {detail}")
-        self.reason = reason
-        self.detail = detail
-
-
-@dataclass(frozen=True)
-class IngestLimits:
-    """Bounds that separate a plausible message from an absurd one.
-
-    Attributes
-    ----------
-    max_payload_bytes : int
-        Largest payload accepted, bytes (8 MiB holds 2**20 float32 samples in base64).
-    min_samples, max_samples : int
-        Smallest and largest waveform block, samples.
-    min_fs_hz, max_fs_hz : float
-        Plausible sample rates, Hz. A rate inside this range but different from the
-        point's registered ``fs_hz`` passes: that is a sensor fault for sensor health.
-    max_abs_sample : float
-        Largest sample magnitude accepted, in the payload's unit (1e9: a thousand times
-        a 10^5 g shock accelerometer's range in m/s^2, a kilometre in um). Beyond any
-        sensor of the accepted units, and low enough that every spectrum of the block
-        stays finite in the store's float32 (3.4e38, IEEE 754 binary32).
-    max_speed_hz : float
-        Highest plausible running speed, Hz (2000 Hz = 120,000 r/min). Zero is accepted:
-        a stopped machine is a valid reading.
-    max_future_s : float
-        How far ahead of ``now`` a timestamp may be, s (clock skew between sensor and host).
-    max_age_s : float
-        How far behind ``now`` a timestamp may be, s (a gateway's offline buffer).
-    replay_window_s : float
-        A reading older than the last accepted one for the same machine and point by more
-        than this, s, is a replay. Small reorderings (redelivery after a crash, several
-        consumers in a shared subscription) stay inside the window; exact duplicates are
-        left to the idempotent insert.
-    max_id_length : int
-        Longest ``id`` string, characters.
-    """
-
-    max_payload_bytes: int = 8 * 1024 * 1024
-    min_samples: int = 64
-    max_samples: int = 1 << 20
-    min_fs_hz: float = 1.0
-    max_fs_hz: float = 1_000_000.0
-    max_abs_sample: float = 1e9
-    max_speed_hz: float = 2000.0
-    max_future_s: float = 300.0
-    max_age_s: float = 30 * 86400.0
-    replay_window_s: float = 600.0
-    max_id_length: int = 128
-
-    def __post_init__(self) -> None:
-        for name in (
-            "max_payload_bytes", "min_samples", "max_samples", "min_fs_hz", "max_fs_hz",
-            "max_abs_sample", "max_speed_hz", "max_future_s", "max_age_s", "replay_window_s", "max_id_length",
-        ):
-            v = getattr(self, name)
-            if isinstance(v, bool) or not isinstance(v, int | float) or not v >= 0:
-                raise ValueError(f"{name} must be a non-negative number, got {v!r}.")
-        if not 1 <= self.min_samples <= self.max_samples:
-            raise ValueError(
-                f"min_samples must lie in [1, max_samples={self.max_samples}], got {self.min_samples!r}."
-            )
-        if not 0 < self.min_fs_hz < self.max_fs_hz:
-            raise ValueError(
-                f"min_fs_hz must be positive and below max_fs_hz={self.max_fs_hz}, got {self.min_fs_hz!r}."
-            )
-
 
 _DEFAULT_LIMITS = IngestLimits()
 
@@ -509,100 +376,3 @@ def decode_message(
         speed_hz=speed,
         reading_id=_reading_id(raw, limits),
     )
-
-
-def encode_waveform(waveform: Waveform, *, f32: bool = True) -> bytes:
-    """The payload a sensor sends for ``waveform`` (``samples_f32`` unless ``f32`` is False).
-
-    With ``f32`` the samples are rounded to float32, which is what the fast path carries.
-    """
-    body: dict[str, Any] = {"ts": waveform.ts, "fs": waveform.fs_hz, "unit": waveform.unit}
-    data = np.asarray(waveform.samples)
-    if f32:
-        body["samples_f32"] = base64.b64encode(data.astype("<f4").tobytes()).decode("ascii")
-    else:
-        body["samples"] = data.astype(float).tolist()
-    if waveform.speed_hz is not None:
-        body["speed_hz"] = waveform.speed_hz
-    if waveform.reading_id is not None:
-        body["id"] = waveform.reading_id
-    return json.dumps(body, separators=(",", ":"), allow_nan=False).encode("utf-8")
-
-
-def encode_speed(reading: SpeedReading) -> bytes:
-    """The payload of a speed reading (``hz``)."""
-    return json.dumps({"ts": reading.ts, "hz": reading.speed_hz}, allow_nan=False).encode("utf-8")
-
-
-# ----------------------------------------------------------------------------- counting
-
-
-@dataclass(frozen=True)
-class DeadLetter:
-    """A rejected message as kept by the store.
-
-    ``at`` is when it was rejected (epoch s, UTC); ``first_bytes`` the first 256 bytes of the
-    payload, enough to recognise the sender's mistake without storing a huge body.
-    """
-
-    at: float
-    topic: str
-    reason: str
-    detail: str
-    first_bytes: bytes
-
-    @classmethod
-    def from_rejection(
-        cls, topic: str, payload: bytes, rejected: Rejected, at: float
-    ) -> DeadLetter:
-        return cls(
-            at=at,
-            topic=topic,
-            reason=rejected.reason,
-            detail=rejected.detail,
-            first_bytes=bytes(payload[:DEAD_LETTER_BYTES]),
-        )
-
-
-class RejectionCounter:
-    """Counts rejections by reason and says when one is worth a log line.
-
-    ``record`` returns True for the first rejection of a reason in each ``interval_s``
-    window, so a sensor that sends garbage ten times a second logs once a minute, with the
-    number suppressed since. Thread-safe (metrics read it from another thread).
-    """
-
-    def __init__(self, interval_s: float = 60.0) -> None:
-        if not interval_s >= 0:
-            raise ValueError(f"interval_s must be non-negative seconds, got {interval_s!r}.")
-        self.interval_s = float(interval_s)
-        self._counts: dict[str, int] = {}
-        self._last_logged: dict[str, float] = {}
-        self._suppressed: dict[str, int] = {}
-        self._lock = threading.Lock()
-
-    def record(self, reason: str, now: float) -> bool:
-        """Count one rejection at ``now`` (s, any monotonic or epoch clock); True = log it."""
-        with self._lock:
-            self._counts[reason] = self._counts.get(reason, 0) + 1
-            last = self._last_logged.get(reason)
-            if last is None or now - last >= self.interval_s:
-                self._last_logged[reason] = now
-                return True
-            self._suppressed[reason] = self._suppressed.get(reason, 0) + 1
-            return False
-
-    def take_suppressed(self, reason: str) -> int:
-        """How many rejections of ``reason`` went unlogged since the last call; resets it."""
-        with self._lock:
-            return self._suppressed.pop(reason, 0)
-
-    def counts(self) -> dict[str, int]:
-        """Rejections so far, by reason."""
-        with self._lock:
-            return dict(self._counts)
-
-    @property
-    def total(self) -> int:
-        with self._lock:
-            return sum(self._counts.values())

@@ -18,29 +18,21 @@ from collections.abc import Callable, Iterable, Sequence
 from pathlib import Path
 from typing import Any
 
-import paho.mqtt.client as paho
-from paho.mqtt.enums import CallbackAPIVersion
-
-from monitor.io.mqtt import parse_broker_url
-from monitor.io.streams import parse_ts
+from monitor.io.mqtt_settings import MqttSettings, make_client
+from monitor.io.streams import parse_ts, read_messages
 from monitor.model.timefmt import iso_utc
 
 Message = tuple[str, dict[str, Any]]
 
 
 def load_streams(paths: Iterable[str | Path]) -> list[Message]:
-    """Every ``(topic, payload dict)`` of the stream files, merged in time order (stable)."""
+    """Every ``(topic, payload dict)`` of the stream files, merged in time order (stable).
+
+    Raises :class:`~monitor.io.streams.StreamError` for a malformed line."""
     out: list[tuple[float, int, Message]] = []
-    k = 0
     for p in paths:
-        with Path(p).open(encoding="utf-8") as fh:
-            for line in fh:
-                if not line.strip():
-                    continue
-                obj = json.loads(line)
-                payload = obj["payload"]
-                out.append((parse_ts(payload["ts"]), k, (obj["topic"], payload)))
-                k += 1
+        for topic, payload in read_messages(p):
+            out.append((parse_ts(payload["ts"]), len(out), (topic, payload)))
     out.sort(key=lambda x: (x[0], x[1]))
     return [m for _, _, m in out]
 
@@ -62,26 +54,20 @@ def retimed(messages: Sequence[Message], end_ts: float) -> tuple[list[tuple[floa
 
 
 class StreamPublisher:
-    """A QoS 1 publisher (paho, MQTT 5 or 3.1.1) that waits for every PUBACK at the end."""
+    """A QoS 1 publisher (MQTT 5 or 3.1.1, clean session) that waits for every PUBACK at
+    the end. Connects at once: OSError if the broker refuses, ConnectionError if it does
+    not answer within 10 s; MqttConfigError for a bad URL."""
 
     def __init__(self, url: str, *, username: str | None = None, password: str | None = None,
                  protocol: str = "5", client_id: str = "") -> None:
-        addr = parse_broker_url(url)
-        v5 = protocol == "5"
-        self.client = paho.Client(
-            CallbackAPIVersion.VERSION2, client_id=client_id,
-            protocol=paho.MQTTv5 if v5 else paho.MQTTv311,
-            clean_session=None if v5 else True,
-        )
-        user = username if username is not None else addr.username
-        if user is not None:
-            self.client.username_pw_set(user, password if password is not None else addr.password)
-        if addr.tls:
-            self.client.tls_set()
+        settings = MqttSettings(url=url, username=username, password=password, protocol=protocol)
+        address = settings.address
+        # An empty client id lets the broker (MQTT 5) or paho (3.1.1) choose one.
+        self.client = make_client(settings, client_id, manual_ack=False, persistent=False)
         self.client.max_inflight_messages_set(200)
         self._connected = threading.Event()
         self.client.on_connect = lambda *a: self._connected.set()
-        self.client.connect(addr.host, addr.port)
+        self.client.connect(address.host, address.port)
         self.client.loop_start()
         if not self._connected.wait(10.0):
             self.close()
@@ -143,8 +129,11 @@ def replay(
         if stop is not None and stop.is_set():
             break
         wait = start + w - time.monotonic()
-        if wait > 0 and (stop.wait(wait) if stop is not None else time.sleep(wait)):
-            break
+        if wait > 0:
+            if stop is None:
+                time.sleep(wait)
+            elif stop.wait(wait):
+                break
         publisher.publish(topic, json.dumps(payload, separators=(",", ":")).encode())
         n += 1
         if progress is not None:

@@ -1,4 +1,4 @@
-"""Stream files: recorded MQTT traffic as ``.jsonl`` (DESIGN.md section 3).
+"""Stream files: recorded MQTT traffic as ``.jsonl`` (the payloads of docs/mqtt.md).
 
 One JSON object per line, ``{"topic": ..., "payload": {...}}``, in time order. The
 payload is exactly the JSON an MQTT message would carry, so replaying a file publishes
@@ -54,11 +54,6 @@ def parse_ts(value: Any) -> float:
 def encode_f32(samples: np.ndarray) -> str:
     """Samples -> base64 of little-endian float32."""
     return base64.b64encode(np.asarray(samples, dtype="<f4").tobytes()).decode("ascii")
-
-
-def decode_f32(text: str) -> np.ndarray:
-    """base64 of little-endian float32 -> float64 array."""
-    return np.frombuffer(base64.b64decode(text, validate=True), dtype="<f4").astype(float)
 
 
 def waveform_topic(prefix: str, machine: str, point: str) -> str:
@@ -119,15 +114,14 @@ def write_stream(path: str | Path, messages: Iterable[tuple[str, Any]]) -> int:
     return n
 
 
-def read_stream(
+def read_messages(
     path: str | Path, *, on_error: Callable[[StreamError], None] | None = None
-) -> Iterator[tuple[str, bytes]]:
-    """Yield ``(topic, payload_bytes)`` for each line of a stream file.
+) -> Iterator[tuple[str, Any]]:
+    """Yield ``(topic, payload)`` for each line of a stream file, the payload as parsed JSON.
 
-    ``payload_bytes`` is the payload serialised as compact UTF-8 JSON, as MQTT would
-    carry it. Blank lines are skipped. A malformed line raises :class:`StreamError`
-    naming the file and line, or, when ``on_error`` is given, is passed to it and skipped.
-    Raises OSError if the file cannot be opened.
+    Blank lines are skipped. A malformed line raises :class:`StreamError` naming the file
+    and line, or, when ``on_error`` is given, is passed to it and skipped. Raises OSError
+    if the file cannot be opened.
     """
     p = Path(path)
     with p.open("r", encoding="utf-8", errors="replace") as fh:
@@ -142,7 +136,19 @@ def read_stream(
                 on_error(exc)
 
 
-def _parse_line(path: Path, lineno: int, line: str) -> tuple[str, bytes]:
+def read_stream(
+    path: str | Path, *, on_error: Callable[[StreamError], None] | None = None
+) -> Iterator[tuple[str, bytes]]:
+    """Yield ``(topic, payload_bytes)`` for each line of a stream file (as :func:`read_messages`).
+
+    ``payload_bytes`` is the payload serialised as compact UTF-8 JSON, as MQTT would
+    carry it, to hand to ``monitor.io.ingest.decode_message`` like live traffic.
+    """
+    for topic, payload in read_messages(path, on_error=on_error):
+        yield topic, json.dumps(payload, separators=(",", ":")).encode("utf-8")
+
+
+def _parse_line(path: Path, lineno: int, line: str) -> tuple[str, Any]:
     try:
         obj = json.loads(line)
     except json.JSONDecodeError as exc:
@@ -154,5 +160,4 @@ def _parse_line(path: Path, lineno: int, line: str) -> tuple[str, bytes]:
         raise StreamError(path, lineno, "'topic' must be a non-empty string.")
     if "payload" not in obj:
         raise StreamError(path, lineno, "'payload' is missing.")
-    payload = json.dumps(obj["payload"], separators=(",", ":")).encode("utf-8")
-    return topic, payload
+    return topic, obj["payload"]

@@ -44,7 +44,6 @@ import gc
 import json
 import logging
 import math
-import socket
 import sys
 import threading
 import time
@@ -57,7 +56,6 @@ from sqlalchemy import and_, bindparam, event, func, select
 from sqlalchemy import exc as sa_exc
 
 from monitor.analysis.waveform import ReadingAnalysis, analyse_waveform
-from monitor.config import Settings
 from monitor.detection.alarms import AlarmKey, Transition, severity_rank
 from monitor.detection.evaluator import (
     MachineEvaluator,
@@ -66,14 +64,19 @@ from monitor.detection.evaluator import (
     retire_state,
     stored_state,
 )
-from monitor.io.ingest import SPEED_STREAM, IngestLimits, Rejected, RejectionCounter, decode_message
-from monitor.io.mqtt import InboundMessage, MessageSource, MqttError, MqttSettings, Publisher
+from monitor.io.ingest import SPEED_STREAM, decode_message
+from monitor.io.ingest_limits import IngestLimits, Rejected
+from monitor.io.mqtt_publisher import Publisher
+from monitor.io.mqtt_settings import MqttError, MqttSettings
+from monitor.io.mqtt_source import InboundMessage, MessageSource
+from monitor.io.rejection_count import RejectionCounter
 from monitor.metrics import MetricsServer, ServiceMetrics
 from monitor.model.jsonsafe import jsonable
 from monitor.model.readings import SpeedReading, Waveform
 from monitor.model.registry import Registry
 from monitor.model.timefmt import iso_utc
 from monitor.service.registry_follow import follow, start_registry
+from monitor.settings import Settings
 from monitor.store import (
     Store,
     add_dead_letter,
@@ -352,32 +355,6 @@ class _MachineView:
 # ----------------------------------------------------------------------------- service
 
 
-def default_client_id(group: str) -> str:
-    """A client id stable across restarts of this process on this host."""
-    return f"whirlwatch-{socket.gethostname()}-{group or 'solo'}"[:128]
-
-
-def mqtt_settings(settings: Settings, client_id: str | None = None) -> MqttSettings:
-    """The transport settings of the service file's ``[broker]`` table."""
-    b = settings.broker
-    return MqttSettings(
-        url=b.url,
-        username=b.username or None,
-        password=b.password or None,
-        ca_file=b.ca_file or None,
-        cert_file=b.cert_file or None,
-        key_file=b.key_file or None,
-        client_id=client_id or b.client_id or default_client_id(b.shared_group),
-        protocol=b.protocol,
-        session_expiry_s=b.session_expiry_s,
-        keepalive_s=b.keepalive_s,
-        receive_maximum=b.receive_maximum,
-        prefix=b.topic_prefix,
-        share_group=b.shared_group or None,
-        reconnect_max_s=max(1.0, b.reconnect_max_s),
-    )
-
-
 class Service:
     """The whirlwatch service: one :class:`MessageSource`, one :class:`Publisher`, one store.
 
@@ -413,7 +390,7 @@ class Service:
         if isinstance(max_batch, bool) or not isinstance(max_batch, int) or max_batch < 1:
             raise ValueError(f"max_batch must be a whole number of messages >= 1, got {max_batch!r}.")
         self.max_batch = max_batch
-        self.mqtt = mqtt_settings(settings, client_id)
+        self.mqtt = MqttSettings.from_settings(settings.broker, client_id=client_id)
         self.prefix = settings.broker.topic_prefix
         self.rejections = RejectionCounter(60.0)
         self.metrics = ServiceMetrics()
