@@ -22,15 +22,11 @@ from scipy.constants import inch
 from monitor.cli import main
 from monitor.io.streams import reading_message, write_stream
 from monitor.model.readings import SpeedReading, Waveform
-from monitor.model.registry import Machine, Mode, Point, Registry, dump_registry
+from monitor.model.registry import Machine, Mode, Point, Registry
+from monitor.model.registry_file import dump_registry
 from monitor.modes import identify as modes
-from monitor.sim.simulate import (
-    MachineModel,
-    ModalMode,
-    SpeedProfile,
-    simulate_run,
-    simulate_signal,
-)
+from monitor.sim.simulate import MachineModel, ModalMode, simulate_run, simulate_signal
+from monitor.sim.speed_profile import SpeedProfile
 
 T0 = 1772431200.0  # 2026-03-02T06:00:00Z
 

@@ -24,7 +24,8 @@ from monitor.io.ingest import SPEED_STREAM, IngestLimits, Rejected, decode_messa
 from monitor.io.streams import DEFAULT_PREFIX, StreamError, read_stream
 from monitor.model.jsonsafe import jsonable
 from monitor.model.readings import SpeedReading, Waveform
-from monitor.model.registry import Registry, RegistryError, load_registry
+from monitor.model.registry import Registry, RegistryError
+from monitor.model.registry_file import load_registry
 from monitor.model.timefmt import iso_utc
 
 #: Largest gap (s) between a speed reading and a waveform for the speed to count as

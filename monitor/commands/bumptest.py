@@ -31,17 +31,13 @@ import numpy as np
 
 from monitor.commands.analyse import FILE_LIMITS, Outcome
 from monitor.commands.db import database_options, open_store
-from monitor.io.ingest import (
-    UNIT_QUANTITY,
-    Rejected,
-    decode_message,
-    parse_topic,
-)
+from monitor.io.ingest import Rejected, decode_message, parse_topic
 from monitor.io.streams import DEFAULT_PREFIX, StreamError, read_stream
 from monitor.model import units
 from monitor.model.jsonsafe import jsonable
 from monitor.model.readings import SpeedReading, Waveform
-from monitor.model.registry import Machine, Point, Registry, RegistryError, load_registry
+from monitor.model.registry import Machine, Point, Registry, RegistryError
+from monitor.model.registry_file import load_registry
 from monitor.modes.identify import (
     DEFAULT_SHIFT_TOLERANCE_PCT,
     BumpTest,
@@ -50,8 +46,6 @@ from monitor.modes.identify import (
     compare_modes,
 )
 
-#: Units a hammer (force) channel may carry.
-FORCE_UNITS = ("N", "kN", "lbf")
 #: Force and response blocks pair when their timestamps differ by at most this, s.
 PAIR_TOLERANCE_S = 1e-3
 # Placeholder the force channel is decoded under (ingest knows vibration units only).
@@ -187,7 +181,7 @@ def read_hits(
                 force_unit = raw.get("unit") if isinstance(raw, dict) else None
             except ValueError:
                 raw = None
-            if isinstance(raw, dict) and force_unit in FORCE_UNITS:
+            if isinstance(raw, dict) and force_unit in units.FORCE_UNITS:
                 raw["unit"] = _FORCE_PLACEHOLDER
                 payload = json.dumps(raw, separators=(",", ":")).encode("utf-8")
             reg = _with_point(reg, m_id, Point(p_id, quantity="acceleration",
@@ -197,7 +191,7 @@ def read_hits(
                 unit = json.loads(payload).get("unit")
             except (ValueError, AttributeError):
                 unit = None
-            quantity = UNIT_QUANTITY.get(unit, "acceleration") if isinstance(unit, str) else (
+            quantity = units.UNIT_QUANTITY.get(unit, "acceleration") if isinstance(unit, str) else (
                 "acceleration")
             reg = _with_point(reg, m_id, Point(p_id, quantity=quantity,
                                                unit=units.BASE_UNIT[quantity]))

@@ -29,20 +29,20 @@ import click
 import numpy as np
 
 from monitor.io.streams import DEFAULT_PREFIX, reading_message, write_stream
+from monitor.model.bearing_geometry import BearingGeometry
 from monitor.model.readings import SpeedReading, Waveform
-from monitor.model.registry import Machine, Mode, Point, Registry, dump_registry
+from monitor.model.registry import Machine, Mode, Point, Registry
+from monitor.model.registry_file import dump_registry
+from monitor.sim.faults import SensorFault, grown_unbalance
 from monitor.sim.simulate import (
     BearingDefect,
-    BearingGeometry,
     MachineModel,
     ModalMode,
-    SensorFault,
-    SpeedProfile,
-    grown_unbalance,
     point_inertance,
     simulate_reading,
     simulate_run,
 )
+from monitor.sim.speed_profile import SpeedProfile
 
 #: Start of the plant scenario (a Monday), epoch seconds UTC.
 PLANT_START = _dt.datetime(2026, 3, 2, tzinfo=_dt.UTC).timestamp()

@@ -62,8 +62,9 @@ from monitor.detection.state_json import (
     value_out,
 )
 from monitor.detection.zones import ZoneLimits, zone_limits, zone_of
+from monitor.model.bounds import check_machine
 from monitor.model.readings import SpeedReading, Waveform
-from monitor.model.registry import Machine, Registry, check_machine
+from monitor.model.registry import Machine, Registry
 from monitor.modes.identify import ModeShift
 
 #: Why an alarm closes when what it watches leaves the registry: the ``reason`` of its

@@ -37,10 +37,8 @@ except ImportError:  # pragma: no cover - pybase64 is a dependency, this is a fa
     _b64decode = base64.b64decode
 
 from monitor.model.readings import SpeedReading, Waveform
-from monitor.model.registry import QUANTITIES, UNITS_BY_QUANTITY, Registry
-
-#: Every unit a waveform may carry, and the quantity it measures.
-UNIT_QUANTITY: dict[str, str] = {u: q for q in QUANTITIES for u in UNITS_BY_QUANTITY[q]}
+from monitor.model.registry import Registry
+from monitor.model.units import UNIT_QUANTITY
 
 #: Stable ids of every rejection, in the order the checks run. Documented in docs/mqtt.md.
 REJECTION_REASONS: tuple[str, ...] = (
