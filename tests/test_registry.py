@@ -120,9 +120,9 @@ def test_every_registry_key_is_documented():
             used |= set(p)
         for mode in m.get("modes", []):
             used |= set(mode)
-    from monitor.model.registry_file import _MACHINE_KEYS
+    from monitor.model.registry_file import MACHINE_KEYS
 
-    used |= _MACHINE_KEYS - {"points", "modes"}
+    used |= MACHINE_KEYS - {"points", "modes"}
     assert used - documented == set()
 
 

@@ -104,7 +104,7 @@ def order_amplitudes(
     s1, _ = hann_sums(record.samples.size)
     z = record.dtft(freqs, window=True, half_width=32)
     amp = 2.0 * np.abs(z) / s1
-    vel = units.velocity_mm_s_from(amp, unit, freqs)
+    vel = np.asarray(units.velocity_mm_s_from(amp, unit, freqs))
     out = []
     for i, o in enumerate(ords):
         phase = None

@@ -365,8 +365,8 @@ def estimate_speed(
     else:
         inv_var = sum(float(h * h) / b for h, b in zip(hs_used, bounds, strict=True))
         unc = loss * math.sqrt(1.0 / inv_var) if inv_var > 0 else df / math.sqrt(12.0)
-    hs_used = tuple(int(h) for h in hs_used)
-    return SpeedEstimate(speed_hz=float(speed), uncertainty_hz=unc, harmonics=hs_used)
+    return SpeedEstimate(speed_hz=float(speed), uncertainty_hz=unc,
+                         harmonics=tuple(int(h) for h in hs_used))
 
 
 # ----------------------------------------------------------------------------- tach

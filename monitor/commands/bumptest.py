@@ -18,6 +18,7 @@ raised for a mode that moved beyond the tolerance, cleared when a later test fin
 from __future__ import annotations
 
 import dataclasses
+import functools
 import json
 import math
 import sys
@@ -31,18 +32,19 @@ import numpy as np
 
 from monitor.commands.analyse import FILE_LIMITS, Outcome
 from monitor.commands.db import database_options, open_store
+from monitor.commands.usage import usage_errors
 from monitor.io.ingest import Rejected, decode_message, parse_topic
 from monitor.io.streams import DEFAULT_PREFIX, StreamError, read_stream
-from monitor.model import units
+from monitor.model import units, validate
 from monitor.model.jsonsafe import jsonable
 from monitor.model.readings import SpeedReading, Waveform
 from monitor.model.registry import Machine, Point, Registry, RegistryError
 from monitor.model.registry_file import load_registry
-from monitor.modes.identify import (
+from monitor.modes.impact import BumpTest, bump_test
+from monitor.modes.shift import (
     DEFAULT_SHIFT_TOLERANCE_PCT,
-    BumpTest,
     ModeShift,
-    bump_test,
+    check_tolerance_pct,
     compare_modes,
 )
 
@@ -392,10 +394,10 @@ def bumptest(file: Path, machines_file: Path | None, machine_id: str | None,
     """Identify natural frequencies, damping (half-power and logarithmic decrement) and
     amplification factors from the impact-test hits in stream FILE (.jsonl)."""
     total = check_file(file)
-    if band is not None and not (0 <= band[0] < band[1] and all(map(math.isfinite, band))):
-        raise click.UsageError(f"--band must be two frequencies LO < HI in Hz, got {band!r}.")
-    if not (math.isfinite(tolerance_pct) and 0 < tolerance_pct < 100):
-        raise click.UsageError(f"--tolerance must lie between 0 and 100 %, got {tolerance_pct!r}.")
+    with usage_errors():
+        if band is not None:
+            validate.ordered_pair(band, "--band")
+        check_tolerance_pct(tolerance_pct, "--tolerance")
     registry, store = comparison_registry(record, machines_file, database_url, config_file)
     try:
         _bumptest(file, total, registry, store, machine_id, band, force_point, tolerance_pct,
@@ -430,6 +432,6 @@ def _bumptest(file: Path, total: int, registry: Registry | None, store: Any, mac
             transitions = record_comparison(
                 store, registry.machine(r.machine), r.comparison, r.ts, r.point,
                 {"source": "impact test", "file": file.name, "hits": r.hits_used})
-        emit_point(result_json(r) if as_json else None, lambda r=r: print_table(r), transitions,
+        emit_point(result_json(r) if as_json else None, functools.partial(print_table, r), transitions,
                    recording=store is not None)
     outcome.report("waveforms accepted")

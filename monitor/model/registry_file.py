@@ -37,7 +37,8 @@ from monitor.model.units import BASE_UNIT, QUANTITIES
 MODE_KEYS = ("name", "frequency_hz", "damping_ratio", "amplification_factor",
              "required_margin_pct", "source", "date")
 POINT_KEYS = ("id", "direction", "quantity", "unit", "fs_hz", "limits_mm_s")
-_MACHINE_KEYS = {
+#: Keys of a machine table read as its fields; any other key is kept as a setting.
+MACHINE_KEYS = {
     "id", "name", "location", "class", "speed_range_rpm", "excitation_orders",
     "line_frequency_hz", "points", "modes", "limits_mm_s",
 }
@@ -106,7 +107,7 @@ def _refuse_unknown(raw: Mapping[str, Any], known: Iterable[str], where: str, wh
 def _refuse_misspellings(raw: Mapping[str, Any], where: str) -> None:
     """RegistryError for a machine-table key that looks like a misspelt known key or
     table; other unknown keys are kept (see :func:`registry_warnings`)."""
-    known = _MACHINE_KEYS | machine_setting_keys()
+    known = MACHINE_KEYS | machine_setting_keys()
     for key, value in raw.items():
         if key in known:
             continue
@@ -220,7 +221,7 @@ def parse_machine(raw: Mapping[str, Any]) -> Machine:
         points=tuple(parse_point(p, mid) for p in points_raw),
         modes=tuple(parse_mode(m, mid) for m in modes_raw),
         limits_mm_s=limits_mm_s(raw.get("limits_mm_s"), where, "limits_mm_s"),
-        settings={k: v for k, v in raw.items() if k not in _MACHINE_KEYS},
+        settings={k: v for k, v in raw.items() if k not in MACHINE_KEYS},
     ))
 
 
