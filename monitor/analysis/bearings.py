@@ -384,9 +384,7 @@ def analyse_bearing(
         raise ValueError(f"unit must be an acceleration unit (m/s^2 or g), got {unit!r}.")
     if not isinstance(geometry, BearingGeometry):
         raise ValueError(f"geometry must be a BearingGeometry, got {type(geometry).__name__}.")
-    slip_ok = isinstance(slip_pct, int | float) and not isinstance(slip_pct, bool)
-    if not slip_ok or not 0.0 <= float(slip_pct) <= 10.0:
-        raise ValueError(f"slip_pct must be a number from 0 to 10 percent, got {slip_pct!r}.")
+    validate.in_range(slip_pct, "slip_pct", 0.0, 10.0, low_open=False, high_open=False, unit=" %")
     record = Record.of(samples, fs_hz)
     fs = record.fs_hz
     fr = validate.frequency_hz(shaft_hz, "shaft_hz", positive=True)

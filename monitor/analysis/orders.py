@@ -93,10 +93,8 @@ def order_amplitudes(
     units.check_unit(unit)
     speed = validate.frequency_hz(speed_hz, "speed_hz", positive=True)
     ords = normalise_orders(orders)
-    if reference_s is not None and not (
-        isinstance(reference_s, int | float | np.floating) and math.isfinite(reference_s)
-    ):
-        raise ValueError(f"reference_s must be a finite time in seconds, got {reference_s!r}.")
+    if reference_s is not None:
+        validate.finite(reference_s, "reference_s")
     ords = tuple(o for o in ords if o * speed < 0.5 * fs)
     if not ords:
         return ()

@@ -177,15 +177,9 @@ def amplitude_spectrum(
     units.check_unit(unit)
     if scaling not in SCALINGS:
         raise ValueError(f"scaling {scaling!r} is not allowed; use 'peak' or 'rms'.")
-    n = x.size if segment_length is None else segment_length
-    if isinstance(n, bool) or not isinstance(n, int | np.integer) or not MIN_SAMPLES <= n <= x.size:
-        raise ValueError(
-            f"segment_length must be an integer from {MIN_SAMPLES} to the record length "
-            f"{x.size}, got {segment_length!r}."
-        )
-    n = int(n)
-    if not (isinstance(overlap, int | float) and 0.0 <= overlap < 1.0):
-        raise ValueError(f"overlap must be a fraction in [0, 1), got {overlap!r}.")
+    n = x.size if segment_length is None else validate.whole_number(
+        segment_length, "segment_length", minimum=MIN_SAMPLES, maximum=x.size)
+    validate.in_range(overlap, "overlap", 0.0, 1.0, low_open=False)
     step = max(1, int(round(n * (1.0 - overlap))))
     w = hann(n)
     s1, s2 = hann_sums(n)
@@ -405,8 +399,7 @@ def find_peaks(spectrum: Spectrum, count: int = 10, min_hz: float = 0.0) -> tupl
     true frequency and amplitude (no scalloping loss).
     """
     spectrum = check_spectrum(spectrum)
-    if isinstance(count, bool) or not isinstance(count, int) or count < 0:
-        raise ValueError(f"count must be a non-negative integer, got {count!r}.")
+    validate.whole_number(count, "count", minimum=0)
     min_hz = validate.frequency_hz(min_hz, "min_hz")
     a = spectrum.amplitude
     start = max(1, int(math.ceil(min_hz / spectrum.resolution_hz)))

@@ -50,10 +50,7 @@ def apply_sensor_fault(
     n = x.size
     rng = np.random.default_rng(seed)
     if fault.kind == "flat_line":
-        if not 0.0 <= fault.start_fraction < 1.0:
-            raise ValueError(
-                f"fault.start_fraction must lie in [0, 1), got {fault.start_fraction!r}."
-            )
+        validate.in_range(fault.start_fraction, "fault.start_fraction", 0.0, 1.0, low_open=False)
         x[int(fault.start_fraction * n) :] = fault.level
     elif fault.kind == "clipping":
         rail = validate.positive(fault.level, "fault.level")

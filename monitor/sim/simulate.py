@@ -408,8 +408,7 @@ def simulate_reading(
     ``ts`` is the epoch time (s, UTC) of the first sample; ``include_speed`` puts the
     speed into the waveform (as a sensor with a tach input would).
     """
-    if int(n_samples) < 1:
-        raise ValueError(f"n_samples must be >= 1, got {n_samples!r}.")
+    validate.whole_number(n_samples, "n_samples")
     ss = np.random.SeedSequence(seed) if not isinstance(seed, np.random.SeedSequence) else seed
     sig_seed, fault_seed = ss.spawn(2)
     x = simulate_signal(
@@ -453,8 +452,7 @@ def simulate_run(
     ts with the mean speed over the block (Hz). Returned in time order.
     """
     validate.positive(interval_s, "interval_s")
-    if int(block_samples) < 1:
-        raise ValueError(f"block_samples must be >= 1, got {block_samples!r}.")
+    validate.whole_number(block_samples, "block_samples")
     n_total = int(math.floor(profile.duration_s * fs_hz)) + 1
     speed = profile.speed_at(np.arange(n_total) / fs_hz)
     step = int(round(interval_s * fs_hz))

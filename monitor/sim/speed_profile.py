@@ -101,8 +101,7 @@ class SpeedProfile:
         """
         validate.positive(start_hz, "start_hz")
         validate.positive(duration_s, "duration_s")
-        if not 0.0 < friction_share < 1.0:
-            raise ValueError(f"friction_share must lie in (0, 1), got {friction_share!r}.")
+        validate.in_range(friction_share, "friction_share", 0.0, 1.0)
         rho = friction_share / (1.0 - friction_share)
         phi0 = math.atan(1.0 / math.sqrt(rho))
         t = np.linspace(0.0, duration_s, points)
