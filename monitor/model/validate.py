@@ -129,5 +129,5 @@ def real_samples(samples: ArrayLike, name: str = "samples", *, minimum: int = 1)
     x = x.astype(np.float64, copy=False)
     if not np.isfinite(x).all():
         bad = int(np.flatnonzero(~np.isfinite(x))[0])
-        raise ValueError(f"{name} must be finite; sample {bad} is {x[bad]!r}.")
+        raise ValueError(f"{name} must be finite; sample {bad} is {float(x[bad])!r}.")
     return x

@@ -18,11 +18,14 @@ import numpy as np
 from numpy.typing import ArrayLike
 from scipy import optimize, signal
 
-from monitor.model import validate
-from monitor.modes.frequency_response import RESPONSE_POWER, FrequencyResponse
+from monitor.model import units, validate
+from monitor.modes.frequency_response import FrequencyResponse
 
 #: Default band-pass for the decrement: mode frequency / 1.5 to x 1.5.
 DECAY_BAND_RATIO = 1.5
+#: Power ``p`` of ``j f / f_n`` in the SDOF response of each measured quantity:
+#: displacement 0, velocity 1 (one differentiation), acceleration 2.
+_RESPONSE_POWER: dict[units.Quantity, int] = {"displacement": 0, "velocity": 1, "acceleration": 2}
 
 
 # ----------------------------------------------------------------------------- decrement
@@ -257,7 +260,7 @@ def fit_sdof(
         return None
     scale = float(np.max(np.abs(data))) or 1.0
     d = data / scale
-    power = RESPONSE_POWER[frf.quantity]
+    power = _RESPONSE_POWER[frf.quantity]
     # at resonance the denominator is 2 j zeta: A ~ H(f_n) 2 j zeta / j^p
     k = int(np.argmin(np.abs(f - f0)))
     if complex_:

@@ -19,10 +19,6 @@ from scipy import signal
 
 from monitor.model import units, validate
 
-#: Power ``p`` of ``j f / f_n`` in the SDOF response of each measured quantity:
-#: displacement 0, velocity 1 (one differentiation), acceleration 2.
-RESPONSE_POWER: dict[units.Quantity, int] = {"displacement": 0, "velocity": 1, "acceleration": 2}
-
 
 def hit_records(records: Any, name: str) -> np.ndarray:
     """One record (1-D) or several equal-length hits (2-D or a list) as a float array of
