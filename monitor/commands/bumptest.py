@@ -30,7 +30,7 @@ from typing import Any
 import click
 import numpy as np
 
-from monitor.commands.analyse import FILE_LIMITS, Outcome
+from monitor.commands.analyse import FILE_LIMITS, Outcome, count_lines, format_or_dash
 from monitor.commands.db import database_options, open_store
 from monitor.commands.usage import usage_errors
 from monitor.io.ingest import Rejected, decode_message, parse_topic
@@ -52,14 +52,6 @@ from monitor.modes.shift import (
 PAIR_TOLERANCE_S = 1e-3
 # Placeholder the force channel is decoded under (ingest knows vibration units only).
 _FORCE_PLACEHOLDER = "m/s^2"
-
-
-def count_lines(path: Path) -> int:
-    n = 0
-    with path.open("rb") as fh:
-        for chunk in iter(lambda: fh.read(1 << 20), b""):
-            n += chunk.count(b"\n")
-    return n
 
 
 def _open_registry(machines_file: Path | None) -> Registry | None:
@@ -300,10 +292,6 @@ def result_json(r: PointResult) -> dict[str, Any]:
     })
 
 
-def _f(v: float | None, spec: str) -> str:
-    return "-" if v is None or not math.isfinite(v) else format(v, spec)
-
-
 def print_table(r: PointResult) -> None:
     t = r.test
     click.echo(
@@ -322,15 +310,20 @@ def print_table(r: PointResult) -> None:
         req = m.required_margin_pct()
         reqs = "-" if req is None else f"{req[0]:.1f} / {req[1]:.1f}"
         click.echo(
-            f"  {i:>2} {m.frequency_hz:9.3f} {_f(m.damping_ratio_half_power, '.4f'):>9} "
-            f"{_f(m.damping_ratio_decrement, '.4f'):>9} {fit:>15} "
-            f"{_f(m.amplification_factor, '.1f'):>9} "
-            f"{_f(m.amplification_factor_from_damping, '.1f'):>9} {reqs:>20} "
-            f"{_f(m.coherence, '.3f'):>5}"
+            f"  {i:>2} {m.frequency_hz:9.3f} {format_or_dash(m.damping_ratio_half_power, '.4f'):>9} "
+            f"{format_or_dash(m.damping_ratio_decrement, '.4f'):>9} {fit:>15} "
+            f"{format_or_dash(m.amplification_factor, '.1f'):>9} "
+            f"{format_or_dash(m.amplification_factor_from_damping, '.1f'):>9} {reqs:>20} "
+            f"{format_or_dash(m.coherence, '.3f'):>5}"
         )
-    for c in r.comparison:
+    print_comparison(r.comparison, "not found in this test")
+
+
+def print_comparison(comparison: tuple[ModeShift, ...], not_found: str) -> None:
+    """One line per stored mode: its shift, or ``not_found`` when nothing matched it."""
+    for c in comparison:
         if c.status == "not_found":
-            click.echo(f"  stored mode {c.mode!r} at {c.stored_hz:.3f} Hz: not found in this test.")
+            click.echo(f"  stored mode {c.mode!r} at {c.stored_hz:.3f} Hz: {not_found}.")
         else:
             click.echo(
                 f"  stored mode {c.mode!r} at {c.stored_hz:.3f} Hz -> {c.identified_hz:.3f} Hz: "

@@ -30,11 +30,12 @@ import click
 import numpy as np
 
 from monitor.analysis.waveform import ReadingAnalysis
-from monitor.commands.analyse import Outcome, analyse_stream
+from monitor.commands.analyse import Outcome, analyse_stream, format_or_dash
 from monitor.commands.bumptest import (
     check_file,
     comparison_registry,
     emit_point,
+    print_comparison,
     record_comparison,
 )
 from monitor.commands.db import database_options
@@ -109,10 +110,6 @@ def _bands_text(bands: tuple[SkipBand, ...]) -> str:
                      for b in bands)
 
 
-def _f(v: float | None, spec: str) -> str:
-    return "-" if v is None or not math.isfinite(v) else format(v, spec)
-
-
 def print_table(r: PointPassages) -> None:
     b = r.bode
     click.echo(
@@ -129,18 +126,11 @@ def print_table(r: PointPassages) -> None:
               f"{p.half_power_speeds_hz[0] * 60:.0f}-{p.half_power_speeds_hz[1] * 60:.0f}")
         click.echo(
             f"  {i:>2} {p.critical_speed_rpm:9.1f} {p.critical_speed_hz:8.3f} "
-            f"{p.peak_amplitude:10.4g} {hp:>15} {_f(p.amplification_factor, '.1f'):>6} "
-            f"{_f(p.damping_ratio, '.4f'):>7} {_f(p.phase_at_peak_deg, '.1f'):>9} "
-            f"{_f(p.phase_change_deg, '.1f'):>7}"
+            f"{p.peak_amplitude:10.4g} {hp:>15} {format_or_dash(p.amplification_factor, '.1f'):>6} "
+            f"{format_or_dash(p.damping_ratio, '.4f'):>7} {format_or_dash(p.phase_at_peak_deg, '.1f'):>9} "
+            f"{format_or_dash(p.phase_change_deg, '.1f'):>7}"
         )
-    for c in r.comparison:
-        if c.status == "not_found":
-            click.echo(f"  stored mode {c.mode!r} at {c.stored_hz:.3f} Hz: no passage near it.")
-        else:
-            click.echo(
-                f"  stored mode {c.mode!r} at {c.stored_hz:.3f} Hz -> {c.identified_hz:.3f} Hz: "
-                f"{c.shift_pct:+.1f} % ({c.status}, tolerance {c.tolerance_pct:g} %)"
-            )
+    print_comparison(r.comparison, "no passage near it")
     click.echo(f"  skip bands from these passages: {_bands_text(r.skip_identified)}")
 
 
