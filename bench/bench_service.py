@@ -35,7 +35,7 @@ from monitor.analysis.waveform import analyse_waveform  # noqa: E402
 from monitor.io.ingest import decode_message  # noqa: E402
 from monitor.io.mqtt_settings import no_delay  # noqa: E402
 from monitor.io.streams import encode_f32  # noqa: E402
-from monitor.model.registry import parse_registry  # noqa: E402
+from monitor.model.registry_file import parse_registry  # noqa: E402
 from monitor.model.timefmt import iso_utc  # noqa: E402
 from monitor.store import Store, import_registry, upgrade  # noqa: E402
 from monitor.store.models import Measurement  # noqa: E402

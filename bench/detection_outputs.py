@@ -30,7 +30,7 @@ from monitor.io.ingest import decode_message
 from monitor.io.replay import load_streams
 from monitor.io.streams import parse_ts
 from monitor.model.readings import Waveform
-from monitor.model.registry import load_registry
+from monitor.model.registry_file import load_registry
 
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT / "bench"))

@@ -18,7 +18,8 @@ from dashboard.alarms import do_acknowledge, parse_filters, parse_page, parse_ti
 from dashboard.db import db_session
 from dashboard.errors import BadRequest, Conflict, NotFound
 from dashboard.security import current, require
-from monitor.model.registry import RegistryError, parse_mode
+from monitor.model.registry import RegistryError
+from monitor.model.registry_file import parse_mode
 from monitor.model.timefmt import iso_utc
 from monitor.store.models import Alarm, Machine, Mode, SpectrumSnapshot
 from monitor.store.registry_sync import UnknownEntry, request_baseline_restart, save_mode

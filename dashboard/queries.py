@@ -23,6 +23,7 @@ from monitor.detection.alarms import severity_rank
 from monitor.detection.margins import margin_table
 from monitor.detection.zones import zone_limits
 from monitor.model import registry as reg
+from monitor.model.bounds import check_machine
 from monitor.model.timefmt import iso_utc
 from monitor.store.auth import create_api_token, verify_api_token
 from monitor.store.models import (
@@ -93,7 +94,7 @@ def _to_registry(m: Any, modes: Iterable[Any]) -> reg.Machine | None:
     # modes within the registry's bounds (usable_modes). None when the machine's own
     # stored values are outside them (an older release let them in).
     try:
-        return reg.check_machine(reg.Machine(
+        return check_machine(reg.Machine(
             id=m.id, name=m.name, location=m.location, machine_class=m.machine_class,
             speed_range_rpm=(m.speed_min_rpm, m.speed_max_rpm),
             excitation_orders=tuple(float(o) for o in (m.excitation_orders or ())),

@@ -152,7 +152,7 @@ def sample_messages() -> tuple[Path, list[Message], str]:
     if (SAMPLES / "plant.toml").is_file():
         return SAMPLES / "plant.toml", load_streams(sorted(SAMPLES.glob("*.jsonl"))), str(SAMPLES)
     from monitor.commands.simulate import plant_messages, plant_registry
-    from monitor.model.registry import dump_registry
+    from monitor.model.registry_file import dump_registry
 
     tmp = Path(tempfile.mkdtemp(prefix="whirlwatch-plant-"))
     reg = tmp / "plant.toml"
@@ -193,7 +193,7 @@ def run_demo(
     from sqlalchemy import func, select
 
     from monitor.config import load_settings
-    from monitor.model.registry import load_registry
+    from monitor.model.registry_file import load_registry
     from monitor.service.service import Service
     from monitor.store import Store, create_user, import_registry, upgrade
     from monitor.store.models import Alarm, Measurement

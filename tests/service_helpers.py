@@ -18,7 +18,7 @@ from paho.mqtt.enums import CallbackAPIVersion
 from sqlalchemy import func, select
 
 from monitor.io.replay import load_streams, retimed
-from monitor.model.registry import load_registry
+from monitor.model.registry_file import load_registry
 from monitor.store import Store, import_registry, upgrade
 from monitor.store.models import Measurement
 

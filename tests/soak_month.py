@@ -30,7 +30,8 @@ from service_helpers import PLANT, SAMPLES
 
 from monitor.io.replay import load_streams
 from monitor.io.streams import parse_ts
-from monitor.model.registry import Registry, dump_registry, load_registry
+from monitor.model.registry import Registry
+from monitor.model.registry_file import dump_registry, load_registry
 from monitor.model.timefmt import iso_utc
 
 #: Passes of the six-week sample story in the month.

@@ -3,20 +3,21 @@ closed-form signals."""
 
 import json
 import math
+import subprocess
+import sys
 
 import numpy as np
 import pytest
 from scipy import constants, signal
 
 from monitor.analysis.bearings import (
-    BearingGeometry,
     analyse_bearing,
     choose_band,
     envelope_spectrum,
     spectral_kurtosis,
 )
 from monitor.analysis.spectrum import amplitude_at
-from monitor.sim import simulate
+from monitor.model.bearing_geometry import BearingGeometry
 
 # CWRU bearing data set, drive-end bearing (open data set): 9 balls, d = 0.3126 in,
 # D = 1.537 in, alpha = 0 (REFERENCES.md, "Rolling-element bearing defect frequencies")
@@ -71,9 +72,14 @@ class TestGeometry:
         # kinematics: BPFO + BPFI = n x shaft speed (Randall and Antoni 2011)
         assert g.bpfo_order + g.bpfi_order == pytest.approx(12.0, rel=1e-12)
 
-    def test_extends_the_simulator_geometry(self):
-        # one set of formulas: the simulator's class is the base
-        assert isinstance(CWRU, simulate.BearingGeometry)
+    def test_analysis_does_not_load_the_simulator(self):
+        # one set of formulas, in the plant model: the analysis reads them without the
+        # simulator (a later stage may build on an earlier one, never the other way)
+        code = ("import sys, monitor.analysis.bearings, monitor.analysis.waveform; "
+                "print(any(m.startswith('monitor.sim') for m in sys.modules))")
+        out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                             check=True, timeout=60)
+        assert out.stdout.strip() == "False"
 
     def test_from_settings(self):
         assert BearingGeometry.from_settings({"other": 1}) is None

@@ -13,7 +13,8 @@ from click.testing import CliRunner
 from monitor.cli import main
 from monitor.io.streams import reading_message, write_stream
 from monitor.model.readings import SpeedReading, Waveform
-from monitor.model.registry import Machine, Point, Registry, dump_registry
+from monitor.model.registry import Machine, Point, Registry
+from monitor.model.registry_file import dump_registry
 from monitor.sim.simulate import MachineModel, simulate_reading
 
 FS = 2560.0

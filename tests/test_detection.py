@@ -330,10 +330,10 @@ def test_waveform_without_analysis_checks_health_only():
 
 
 def test_mode_shift_findings_raise_escalate_and_clear_at_once():
-    # Shifts from monitor.modes.identify.mode_shift: (identified - stored) / stored x 100 against a
+    # Shifts from monitor.modes.shift.mode_shift: (identified - stored) / stored x 100 against a
     # 5 % tolerance (common practice); beyond twice the tolerance the alarm is an alert
     # (docs/alarms.md). One test is one reading: no persistence.
-    from monitor.modes.identify import compare_modes
+    from monitor.modes.shift import compare_modes
 
     m = _machine()
     ev = MachineEvaluator(m)

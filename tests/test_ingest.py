@@ -24,7 +24,7 @@ from monitor.io.ingest_limits import REJECTION_REASONS, IngestLimits, Rejected
 from monitor.io.rejection_count import RejectionCounter
 from monitor.io.streams import waveform_payload
 from monitor.model.readings import SpeedReading, Waveform
-from monitor.model.registry import parse_registry
+from monitor.model.registry_file import parse_registry
 
 NOW = 1_780_000_000.0  # a fixed "now" (2026-05-28) so the age checks do not depend on the clock
 DOCS = Path(__file__).resolve().parent.parent / "docs" / "mqtt.md"

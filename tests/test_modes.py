@@ -1,4 +1,4 @@
-"""Mode identification (monitor.modes.identify) and the ``bumptest`` / ``passage`` commands.
+"""Mode identification (monitor.modes) and the ``bumptest`` / ``passage`` commands.
 
 Every expected value comes from a textbook formula, a worked example, API 684's rule or
 scipy as an independent reference; the signals are closed-form responses, scipy's own
@@ -22,15 +22,17 @@ from scipy.constants import inch
 from monitor.cli import main
 from monitor.io.streams import reading_message, write_stream
 from monitor.model.readings import SpeedReading, Waveform
-from monitor.model.registry import Machine, Mode, Point, Registry, dump_registry
-from monitor.modes import identify as modes
-from monitor.sim.simulate import (
-    MachineModel,
-    ModalMode,
-    SpeedProfile,
-    simulate_run,
-    simulate_signal,
-)
+from monitor.model.registry import Machine, Mode, Point, Registry
+from monitor.model.registry_file import dump_registry
+from monitor.modes.damping import damping_from_decrement, decay_decrement, decrement_from_amplitudes
+from monitor.modes.frequency_response import frequency_response
+from monitor.modes.impact import bump_test
+from monitor.modes.peaks import half_power_points
+from monitor.modes.runup import BodeData, bode_data, find_passages, order_point
+from monitor.modes.shift import compare_modes, mode_shift
+from monitor.modes.skip_bands import skip_bands
+from monitor.sim.simulate import MachineModel, ModalMode, simulate_run, simulate_signal
+from monitor.sim.speed_profile import SpeedProfile
 
 T0 = 1772431200.0  # 2026-03-02T06:00:00Z
 
@@ -83,7 +85,7 @@ class TestLogDecrement:
         assert zeta == pytest.approx(0.0681, abs=5e-5)
         assert delta == pytest.approx(0.429, abs=5e-4)
         # the inverse relation used by the module: zeta = delta / sqrt(4 pi^2 + delta^2)
-        assert modes.damping_from_decrement(delta) == pytest.approx(zeta, rel=1e-12)
+        assert damping_from_decrement(delta) == pytest.approx(zeta, rel=1e-12)
 
     def test_decay_of_thomson_system(self) -> None:
         fs = 1000.0
@@ -92,7 +94,7 @@ class TestLogDecrement:
         # raw record: 0.2 %; band-passed: 1.5 % (the filter trims the skirts of a mode
         # this heavily damped, 7 cycles down to 5 %)
         for filt, rel in ((False, 2e-3), (True, 1.5e-2)):
-            fit = modes.decay_decrement(x, fs, 34.029 / (2 * math.pi), filter_band=filt)
+            fit = decay_decrement(x, fs, 34.029 / (2 * math.pi), filter_band=filt)
             assert fit is not None
             assert fit.log_decrement == pytest.approx(0.42862, rel=rel)
             assert fit.damping_ratio == pytest.approx(0.068059, rel=rel)
@@ -106,12 +108,12 @@ class TestLogDecrement:
         x = self._free_decay(fs, 2.0)
         pk, _ = signal.find_peaks(x)
         amps = x[pk]
-        d1 = modes.decrement_from_amplitudes(amps[0], amps[1], 1)
-        d5 = modes.decrement_from_amplitudes(amps[0], amps[5], 5)
+        d1 = decrement_from_amplitudes(amps[0], amps[1], 1)
+        d5 = decrement_from_amplitudes(amps[0], amps[5], 5)
         assert d1 == pytest.approx(0.42862, rel=1e-3)
         assert d5 == pytest.approx(0.42862, rel=1e-3)
         # and by construction of the definition: x_n = x_0 exp(-n delta)
-        assert modes.decrement_from_amplitudes(2.0, 2.0 * math.exp(-3 * 0.4), 3) == (
+        assert decrement_from_amplitudes(2.0, 2.0 * math.exp(-3 * 0.4), 3) == (
             pytest.approx(0.4, rel=1e-12))
 
     @pytest.mark.parametrize("bad", [
@@ -120,7 +122,7 @@ class TestLogDecrement:
     ])
     def test_bad_amplitudes(self, bad: dict) -> None:
         with pytest.raises(ValueError, match="x0|xn|cycles"):
-            modes.decrement_from_amplitudes(**bad)
+            decrement_from_amplitudes(**bad)
 
 
 # ----------------------------------------------------------------------------- half power
@@ -131,7 +133,7 @@ class TestHalfPower:
     def test_closed_form_impulse_response(self, zeta: float) -> None:
         fs, fn = 1000.0, 20.0
         h = sdof_impulse(fn, zeta, fs)
-        test = modes.bump_test(h, fs, quantity="displacement", unit="m", band_hz=(5, 50))
+        test = bump_test(h, fs, quantity="displacement", unit="m", band_hz=(5, 50))
         assert len(test.modes) == 1
         m = test.modes[0]
         # receptance peak at r = sqrt(1 - 2 zeta^2) (Thomson; REFERENCES.md)
@@ -166,13 +168,13 @@ class TestHalfPower:
         r = np.linspace(0.8, 1.2, 40001)
         _, h = signal.freqs([1], [1, 2 * 0.05, 1], worN=r)
         k = int(np.argmax(np.abs(h)))
-        hp = modes.half_power_points(r, np.abs(h), k)
+        hp = half_power_points(r, np.abs(h), k)
         assert hp == (pytest.approx(0.946111, abs=2e-5), pytest.approx(1.046363, abs=2e-5))
 
     def test_unresolved_side_gives_none(self) -> None:
         f = np.linspace(0, 10, 101)
         m = np.exp(-((f - 1.0) ** 2))  # never falls to 0.707 of the peak left of f = 0.4
-        assert modes.half_power_points(f, m, 10, lo_index=5) is None
+        assert half_power_points(f, m, 10, lo_index=5) is None
 
 
 # ----------------------------------------------------------------------------- FRF
@@ -198,7 +200,7 @@ class TestFrequencyResponse:
 
     def test_h1_matches_scipy_freqs(self) -> None:
         f, y = self._hit()
-        frf = modes.frequency_response(y, self.FS, force=f, quantity="displacement", unit="m")
+        frf = frequency_response(y, self.FS, force=f, quantity="displacement", unit="m")
         wn = 2 * math.pi * self.FN
         _, ref = signal.freqs([1 / self.MASS], [1, 2 * self.ZETA * wn, wn * wn],
                               worN=2 * math.pi * frf.freq_hz)
@@ -214,7 +216,7 @@ class TestFrequencyResponse:
         hits = [self._hit(rng, noise=0.5) for _ in range(5)]
         F = np.array([h[0] for h in hits])
         Y = np.array([h[1] for h in hits])
-        test = modes.bump_test(Y, self.FS, force=F, quantity="displacement", unit="m",
+        test = bump_test(Y, self.FS, force=F, quantity="displacement", unit="m",
                                band_hz=(5, 200))
         frf = test.frf
         n = F.shape[1]
@@ -235,7 +237,7 @@ class TestFrequencyResponse:
 
     def test_single_hit_response_spectrum_is_proportional_to_receptance(self) -> None:
         h = sdof_impulse(self.FN, self.ZETA, self.FS)
-        frf = modes.frequency_response(h, self.FS, quantity="displacement", unit="m")
+        frf = frequency_response(h, self.FS, quantity="displacement", unit="m")
         wn = 2 * math.pi * self.FN
         _, ref = signal.freqs([1], [1, 2 * self.ZETA * wn, wn * wn],
                               worN=2 * math.pi * frf.freq_hz)
@@ -249,7 +251,7 @@ class TestFrequencyResponse:
         h = sdof_impulse(30.0, 0.01, fs, decays=12)
         h2 = sdof_impulse(34.0, 0.01, fs, decays=12)
         n = min(h.size, h2.size)
-        test = modes.bump_test(h[:n] + 0.8 * h2[:n], fs, quantity="displacement", unit="m",
+        test = bump_test(h[:n] + 0.8 * h2[:n], fs, quantity="displacement", unit="m",
                                band_hz=(10, 60))
         assert len(test.modes) == 2
         for m, fn in zip(test.modes, (30.0, 34.0), strict=True):
@@ -271,11 +273,11 @@ class TestFrequencyResponse:
     ])
     def test_bad_input(self, kwargs: dict, word: str) -> None:
         with pytest.raises(ValueError, match=word):
-            modes.frequency_response(**kwargs)
+            frequency_response(**kwargs)
 
     def test_bad_band(self) -> None:
         with pytest.raises(ValueError, match="band_hz"):
-            modes.bump_test(np.ones(256), 100.0, band_hz=(30, 10))
+            bump_test(np.ones(256), 100.0, band_hz=(30, 10))
 
 
 # ----------------------------------------------------------------------------- run-up
@@ -298,7 +300,7 @@ class TestRunUp:
     FS, FN, ZETA = 512.0, 20.0, 0.02
     S0, S1, T = 14.0, 26.0, 240.0  # slow sweep: 0.05 Hz/s, 1.25 half-power bands / 10 s
 
-    def _bode(self) -> modes.BodeData:
+    def _bode(self) -> BodeData:
         model = MachineModel("rig", modes=(ModalMode(self.FN, self.ZETA, 100.0),),
                              rigid_mass_kg=None, unbalance_kg_m=1e-3)
         t = np.arange(int(self.T * self.FS) + 1) / self.FS
@@ -313,17 +315,17 @@ class TestRunUp:
         for i0 in range(0, t.size - blk, int(self.FS)):
             mid = t[i0] + 1.0
             ref = pulses[np.argmin(np.abs(pulses - mid))] - t[i0]
-            v, p = modes.order_point(x[i0:i0 + blk], self.FS, "um", self.S0 + a * mid,
+            v, p = order_point(x[i0:i0 + blk], self.FS, "um", self.S0 + a * mid,
                                      reference_s=ref)
             s.append(self.S0 + a * mid)
             amp.append(v)
             ph.append(p)
-        return modes.bode_data(s, amp, ph, unit="um")
+        return bode_data(s, amp, ph, unit="um")
 
     def test_passage_through_simulated_mode(self) -> None:
         bode = self._bode()
         assert bode.direction == "run-up"
-        (p,) = modes.find_passages(bode)
+        (p,) = find_passages(bode)
         step = float(np.median(np.diff(bode.speed_hz)))  # 0.05 Hz between Bode points
         # rotating unbalance peaks at r = 1 / sqrt(1 - 2 zeta^2) (Thomson)
         assert p.critical_speed_hz == pytest.approx(self.FN / math.sqrt(1 - 2 * self.ZETA**2),
@@ -340,11 +342,11 @@ class TestRunUp:
 
     def test_coast_down_order_and_json(self) -> None:
         bode = self._bode()
-        rev = modes.bode_data(bode.speed_hz[::-1], bode.amplitude[::-1],
+        rev = bode_data(bode.speed_hz[::-1], bode.amplitude[::-1],
                               bode.phase_deg[::-1], unit="um")
         assert rev.direction == "coast-down"
-        (p,) = modes.find_passages(rev)
-        (q,) = modes.find_passages(bode)
+        (p,) = find_passages(rev)
+        (q,) = find_passages(bode)
         # definition: the same points in reverse order give the same passage
         assert p.critical_speed_hz == pytest.approx(q.critical_speed_hz, rel=1e-12)
         doc = json.loads(json.dumps(rev.to_json()))
@@ -354,13 +356,13 @@ class TestRunUp:
 
     def test_bad_bode_input(self) -> None:
         with pytest.raises(ValueError, match="speed_hz and amplitude"):
-            modes.bode_data([1, 2, 3, 4, 5], [1, 2, 3])
+            bode_data([1, 2, 3, 4, 5], [1, 2, 3])
         with pytest.raises(ValueError, match="amplitude"):
-            modes.bode_data([1, 2, 3, 4, 5], [1, 2, -3, 4, 5])
+            bode_data([1, 2, 3, 4, 5], [1, 2, -3, 4, 5])
         with pytest.raises(ValueError, match="phase_deg"):
-            modes.bode_data([1, 2, 3, 4, 5], [1, 2, 3, 4, 5], [0, 1])
+            bode_data([1, 2, 3, 4, 5], [1, 2, 3, 4, 5], [0, 1])
         with pytest.raises(ValueError, match="prominence"):
-            modes.find_passages(modes.bode_data([1, 2, 3, 4, 5], [1, 2, 3, 2, 1]), prominence=2)
+            find_passages(bode_data([1, 2, 3, 4, 5], [1, 2, 3, 2, 1]), prominence=2)
 
 
 # ----------------------------------------------------------------------------- mode shift
@@ -370,16 +372,16 @@ class TestModeShift:
     MODE = Mode("structure lateral", 18.4, damping_ratio=0.03)
 
     def test_shift_beyond_tolerance(self) -> None:
-        s = modes.mode_shift(self.MODE, 17.3)
+        s = mode_shift(self.MODE, 17.3)
         # (17.3 - 18.4) / 18.4 = -5.978 % (hand computed) > 5 % (common practice)
         assert s.shift_pct == pytest.approx(-5.978261, rel=1e-6)
         assert s.exceeded and s.status == "shifted" and s.kind == "mode_shift"
-        assert not modes.mode_shift(self.MODE, 18.0).exceeded  # -2.17 %
-        assert modes.mode_shift(self.MODE, 18.0, tolerance_pct=2.0).exceeded
+        assert not mode_shift(self.MODE, 18.0).exceeded  # -2.17 %
+        assert mode_shift(self.MODE, 18.0, tolerance_pct=2.0).exceeded
 
     def test_compare_assigns_each_peak_once(self) -> None:
         stored = (Mode("a", 10.0), Mode("b", 11.0), Mode("c", 40.0))
-        out = modes.compare_modes(stored, [10.9, 10.2])
+        out = compare_modes(stored, [10.9, 10.2])
         # definition: each stored mode takes the nearest unused peak; (10.2 - 10) / 10 = 2 %
         assert [o.identified_hz for o in out] == [10.2, 10.9, None]
         assert [o.status for o in out] == ["unchanged", "unchanged", "not_found"]
@@ -388,7 +390,7 @@ class TestModeShift:
     @pytest.mark.parametrize("tol", [0.0, -1.0, 100.0, math.nan])
     def test_bad_tolerance(self, tol: float) -> None:
         with pytest.raises(ValueError, match="tolerance_pct"):
-            modes.mode_shift(self.MODE, 18.0, tolerance_pct=tol)
+            mode_shift(self.MODE, 18.0, tolerance_pct=tol)
 
 
 # ----------------------------------------------------------------------------- skip bands
@@ -400,7 +402,7 @@ class TestSkipBands:
         # 20 Hz mode: excitation band [20 x 0.75, 20 x 1.15] = [15, 23] Hz
         # -> 1x: 900-1380 r/min, 2x: 450-690 r/min; clipped to 600-1500 r/min.
         a = Mode("a", 20.0, amplification_factor=10.0)
-        bands = modes.skip_bands([a], [1, 2], (600.0, 1500.0))
+        bands = skip_bands([a], [1, 2], (600.0, 1500.0))
         assert [(b.low_rpm, b.high_rpm) for b in bands] == [
             (pytest.approx(600.0), pytest.approx(690.0)),
             (pytest.approx(900.0), pytest.approx(1380.0)),
@@ -414,7 +416,7 @@ class TestSkipBands:
         # 2x: 583.9-841.1 r/min merges with 600-690.
         a = Mode("a", 20.0, amplification_factor=10.0)
         b = Mode("b", 25.0, amplification_factor=5.0)
-        bands = modes.skip_bands([a, b], [1, 2], (600.0, 1500.0))
+        bands = skip_bands([a, b], [1, 2], (600.0, 1500.0))
         hi_2x = 60 * 25 * (1 + 17 * (1 - 1 / 3.5) / 100) / 2
         assert [(x.low_rpm, x.high_rpm) for x in bands] == [
             (pytest.approx(600.0), pytest.approx(hi_2x)),
@@ -425,17 +427,17 @@ class TestSkipBands:
     def test_damped_mode_and_configured_margin(self) -> None:
         # API 684: AF < 2.5 needs no margin; a configured 10 % is used on both sides
         damped = Mode("d", 20.0, amplification_factor=2.0)
-        assert modes.skip_bands([damped], [1], (0, 3000)) == ()
+        assert skip_bands([damped], [1], (0, 3000)) == ()
         conf = Mode("c", 20.0, required_margin_pct=10.0)
-        (band,) = modes.skip_bands([conf], [1], (0, 3000))
+        (band,) = skip_bands([conf], [1], (0, 3000))
         # 20 Hz +- 10 % = 18-22 Hz = 1080-1320 r/min (1 Hz = 60 r/min)
         assert (band.low_rpm, band.high_rpm) == (pytest.approx(1080.0), pytest.approx(1320.0))
 
     def test_bad_range(self) -> None:
         with pytest.raises(ValueError, match="speed_range_rpm"):
-            modes.skip_bands([Mode("a", 20.0)], [1], (1500.0, 600.0))
+            skip_bands([Mode("a", 20.0)], [1], (1500.0, 600.0))
         with pytest.raises(ValueError, match="excitation_orders"):
-            modes.skip_bands([Mode("a", 20.0)], [0], (600.0, 1500.0))
+            skip_bands([Mode("a", 20.0)], [0], (600.0, 1500.0))
 
 
 # ----------------------------------------------------------------------------- CLI

@@ -22,8 +22,9 @@ from monitor.config import load_settings
 from monitor.io.ingest_limits import IngestLimits
 from monitor.io.replay import load_streams
 from monitor.model.readings import Waveform
-from monitor.model.registry import UNITS_BY_QUANTITY, Machine, Point
+from monitor.model.registry import Machine, Point
 from monitor.model.timefmt import iso_utc
+from monitor.model.units import UNITS_BY_QUANTITY
 from monitor.service.service import Service
 from monitor.store import Store
 from monitor.store.auth import create_api_token, create_user

@@ -8,7 +8,8 @@ import pytest
 from fixtures_db import small_registry
 from sqlalchemy import select
 
-from monitor.model.registry import RegistryError, dump_registry, parse_registry
+from monitor.model.registry import RegistryError
+from monitor.model.registry_file import dump_registry, parse_registry
 from monitor.store import export_registry, import_registry
 from monitor.store.models import Machine as MachineRow
 from monitor.store.models import ModeHistory
@@ -119,9 +120,9 @@ def test_every_registry_key_is_documented():
             used |= set(p)
         for mode in m.get("modes", []):
             used |= set(mode)
-    from monitor.model.registry import _MACHINE_KEYS
+    from monitor.model.registry_file import MACHINE_KEYS
 
-    used |= _MACHINE_KEYS - {"points", "modes"}
+    used |= MACHINE_KEYS - {"points", "modes"}
     assert used - documented == set()
 
 
@@ -150,7 +151,7 @@ def test_misspelt_tables_and_keys_are_errors_naming_them(edit, named):
 
 
 def test_unknown_machine_keys_are_kept_exported_and_warned(store):
-    from monitor.model.registry import registry_warnings
+    from monitor.model.registry_file import registry_warnings
 
     text = DESIGN_EXAMPLE.replace('line_frequency_hz = 50', 'line_frequency_hz = 50\nasset_tag = "P-1041"\n'
                                   'commissioned = { by = "ana", year = 2019 }')
@@ -189,7 +190,7 @@ def test_physical_bounds_name_machine_entry_and_key(edit, key):
 
 
 def test_edit_distance_known_values():
-    from monitor.model.registry import edit_distance
+    from monitor.model.registry_file import edit_distance
 
     # Levenshtein's classic pair: kitten -> sitting takes 3 edits (textbook example).
     assert edit_distance("kitten", "sitting") == 3

@@ -19,7 +19,7 @@ from sqlalchemy import select, update
 from dashboard import create_app
 from monitor.cli import main as cli
 from monitor.config import load_settings
-from monitor.model.registry import load_registry
+from monitor.model.registry_file import load_registry
 from monitor.service.service import Service
 from monitor.store import Store, create_api_token, create_user
 from monitor.store.models import DetectorState, Measurement, Mode, ModeHistory
@@ -321,8 +321,9 @@ def test_import_dry_run_changes_nothing(tmp_path: Path, plant_url: str) -> None:
 def test_recorded_bump_test_reads_past_an_absurd_stored_mode(tmp_path: Path, database_url: str) -> None:
     from test_modes import TestBumptestCommand
 
-    from monitor.model.registry import Machine, Point, Registry, dump_registry
+    from monitor.model.registry import Machine, Point, Registry
     from monitor.model.registry import Mode as RegMode
+    from monitor.model.registry_file import dump_registry
     from monitor.store import upgrade
 
     stream = TestBumptestCommand()._stream(tmp_path, force=True)

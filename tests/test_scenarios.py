@@ -16,16 +16,15 @@ from monitor.analysis.waveform import analyse_waveform
 from monitor.detection.evaluator import MachineEvaluator
 from monitor.model.readings import SpeedReading
 from monitor.model.registry import Machine, Mode, Point
+from monitor.sim.faults import SensorFault, grown_unbalance
 from monitor.sim.simulate import (
     MachineModel,
     ModalMode,
-    SensorFault,
-    SpeedProfile,
-    grown_unbalance,
     simulate_reading,
     simulate_run,
     with_unbalance,
 )
+from monitor.sim.speed_profile import SpeedProfile
 
 FS = 5120.0
 N = 4096
@@ -160,7 +159,8 @@ def test_growing_bearing_defect_raises_a_growth_alarm_on_its_defect_frequency():
     # Outer-race defect: impacts at BPFO = n fr / 2 (1 - d/D cos a) (Randall and Antoni 2011)
     # ringing a housing resonance; the envelope line at BPFO grows out of the floor while the
     # overall velocity hardly moves. Geometry: the CWRU drive-end bearing (REFERENCES.md).
-    from monitor.sim.simulate import BearingDefect, BearingGeometry
+    from monitor.model.bearing_geometry import BearingGeometry
+    from monitor.sim.simulate import BearingDefect
 
     geometry = BearingGeometry(9, 0.3126 * 25.4, 1.537 * 25.4)
     fs, n, speed = 5120.0, 8192, 24.6

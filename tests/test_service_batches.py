@@ -36,7 +36,7 @@ from monitor.analysis.waveform import analyse_waveform
 from monitor.config import load_settings
 from monitor.detection.evaluator import MachineEvaluator
 from monitor.io.ingest import decode_message
-from monitor.model.registry import load_registry
+from monitor.model.registry_file import load_registry
 from monitor.service.service import Service
 from monitor.store import Store
 from monitor.store.models import Alarm, AlarmTransitionRow, DetectorState

@@ -8,22 +8,20 @@ import numpy as np
 import pytest
 from scipy import signal
 
+from monitor.model.bearing_geometry import BearingGeometry
 from monitor.model.readings import SpeedReading, Waveform
+from monitor.sim.faults import SensorFault, apply_sensor_fault, grown_unbalance
+from monitor.sim.sdof import sdof_response
 from monitor.sim.simulate import (
     BearingDefect,
-    BearingGeometry,
     MachineModel,
     ModalMode,
-    SensorFault,
-    SpeedProfile,
-    apply_sensor_fault,
-    grown_unbalance,
     point_inertance,
-    sdof_response,
     simulate_reading,
     simulate_run,
     simulate_signal,
 )
+from monitor.sim.speed_profile import SpeedProfile
 
 
 def _fit(x: np.ndarray, f_hz: float, fs_hz: float, t0_s: float = 0.0) -> tuple[float, float]:

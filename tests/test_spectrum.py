@@ -7,6 +7,7 @@ import pytest
 from scipy import constants, signal
 
 from monitor.analysis import spectrum as sp
+from monitor.analysis.record import Record, record_spectrum
 
 FS = 2048.0
 
@@ -84,9 +85,9 @@ class TestAmplitudeSpectrum:
 
     def test_record_spectrum_equals_amplitude_spectrum(self):
         x = np.random.default_rng(4).standard_normal(3001) + 0.7
-        r = sp.Record.of(x, FS)
+        r = Record.of(x, FS)
         np.testing.assert_allclose(
-            sp.record_spectrum(r, "g").amplitude,
+            record_spectrum(r, "g").amplitude,
             sp.amplitude_spectrum(x, FS, "g").amplitude,
             rtol=1e-9,
             atol=1e-14,
@@ -197,7 +198,7 @@ class TestRecordDtft:
         xm = x - x.mean()
         f = np.array([3.21, 100.0, 777.7])
         m = np.arange(x.size)
-        rec = sp.Record.of(x, FS)
+        rec = Record.of(x, FS)
         for window, w in ((False, np.ones(x.size)), (True, sp.hann(x.size))):
             ref = np.array([np.sum(w * xm * np.exp(-2j * np.pi * ff * m / FS)) for ff in f])
             np.testing.assert_allclose(

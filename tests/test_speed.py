@@ -6,6 +6,7 @@ import numpy as np
 import pytest
 
 from monitor.analysis import spectrum as sp
+from monitor.analysis.record import Record, record_spectrum
 from monitor.analysis.speed import crlb_frequency_var, estimate_speed, speed_from_tach
 
 FS = 2048.0
@@ -51,8 +52,8 @@ def test_rms_error_within_twice_crlb(eta_db, harmonics):
     for _ in range(200):
         f0 = rng.uniform(12.0, 24.0)
         x = machine_signal(rng, f0, eta, harmonics)
-        rec = sp.Record.of(x, FS)
-        est = estimate_speed(sp.record_spectrum(rec, "m/s^2"), RANGE, samples=rec)
+        rec = Record.of(x, FS)
+        est = estimate_speed(record_spectrum(rec, "m/s^2"), RANGE, samples=rec)
         errs.append(est.speed_hz - f0)
     mse = float(np.mean(np.square(errs)))
     assert mse <= 2.0 * crlb_frequency_var(eta, N, FS)

@@ -25,7 +25,7 @@ from monitor.detection.alarms import AlarmEngine, AlarmKey
 from monitor.detection.evaluator import MachineEvaluator, evaluator_from_state, stored_state
 from monitor.detection.growth import Baseline, TrendWindow
 from monitor.io.replay import load_streams
-from monitor.model.registry import load_registry
+from monitor.model.registry_file import load_registry
 from monitor.model.timefmt import iso_utc
 from monitor.service.service import Service
 from monitor.store import Store

@@ -11,7 +11,7 @@ from fixtures_db import small_registry
 from sqlalchemy import select
 
 from monitor.cli import main
-from monitor.model.registry import dump_registry, parse_registry
+from monitor.model.registry_file import dump_registry, parse_registry
 from monitor.store import Store, verify_api_token, verify_password
 from monitor.store.models import ApiToken, User
 

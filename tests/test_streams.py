@@ -23,7 +23,7 @@ from monitor.io.streams import (
     write_stream,
 )
 from monitor.model.readings import SpeedReading, Waveform
-from monitor.model.registry import load_registry
+from monitor.model.registry_file import load_registry
 
 SAMPLES = Path(__file__).resolve().parent.parent / "sample_streams"
 # 2026-03-02T06:00:00Z as epoch seconds (Python datetime, independent of our code)

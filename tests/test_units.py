@@ -75,3 +75,26 @@ class TestVelocityFrom:
         assert units.velocity_mm_s_from(100.0, "um", 50.0) == pytest.approx(
             2 * math.pi * 50 * 100e-3, rel=1e-12
         )
+
+
+class TestOneTable:
+    def test_from_si_factor(self):
+        # SI definitions (scipy.constants): 1 m/s = 1000 mm/s = 1 / 0.0254 in/s; 1 m = 1e6 um
+        # = 1 / 25.4e-6 mil; 1 m/s^2 = 1 / 9.80665 g
+        assert units.from_si_factor("m/s^2") == 1.0
+        assert units.from_si_factor("g") == pytest.approx(1 / constants.g, rel=1e-15)
+        assert units.from_si_factor("mm/s") == 1e3
+        assert units.from_si_factor("in/s") == pytest.approx(1 / constants.inch, rel=1e-15)
+        assert units.from_si_factor("um") == 1e6
+        assert units.from_si_factor("mil") == pytest.approx(1 / (constants.inch * 1e-3), rel=1e-15)
+
+    def test_quantities_and_base_units(self):
+        # the vocabulary of docs/mqtt.md and docs/registry.md: two units per quantity, the
+        # SI-derived one (m/s^2, mm/s, um) first and the base of every conversion
+        assert units.UNITS_BY_QUANTITY == {
+            "acceleration": ("m/s^2", "g"), "velocity": ("mm/s", "in/s"),
+            "displacement": ("um", "mil")}
+        assert {u: units.to_base_factor(units.BASE_UNIT[units.UNIT_QUANTITY[u]])
+                for u in units.UNITS} == dict.fromkeys(units.UNITS, 1.0)
+        with pytest.raises(ValueError, match="quantity must be one of .* got 'jerk'"):
+            units.check_quantity("jerk")

@@ -1,1 +1,2 @@
-"""Analysis (pure): spectra, running speed, orders, bearing frequencies, one reading's analysis."""
+"""Analysis (pure): spectra, a block's single transform (record), running speed, orders,
+bearing envelopes, and one reading's whole analysis (waveform)."""

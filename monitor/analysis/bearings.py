@@ -17,7 +17,8 @@ the signal is band-passed around the resonance, is modulated at it. So:
    sidebands of BPFI (an inner-race defect turns with the shaft through the load zone);
 4. compare each line with the envelope spectrum's median (its noise floor) in dB.
 
-Everything here is pure: arrays and dataclasses in, dataclasses out.
+Everything here is pure: arrays and dataclasses in, dataclasses out. The geometry and
+its defect frequencies are :mod:`monitor.model.bearing_geometry`.
 
 References
 ----------
@@ -43,33 +44,19 @@ from numpy.typing import ArrayLike
 from scipy import signal
 
 from monitor.analysis import spectrum as sp
-from monitor.model import units
-from monitor.sim import simulate
+from monitor.analysis.record import Record
+from monitor.model import units, validate
+from monitor.model.bearing_geometry import DEFECTS, BearingGeometry, DefectFrequencies
 
 __all__ = [
-    "DEFECTS",
     "INDICATOR_HARMONIC",
-    "SETTINGS_KEYS",
     "BandChoice",
     "BearingAnalysis",
-    "BearingGeometry",
-    "DefectFrequencies",
     "analyse_bearing",
     "choose_band",
     "envelope_spectrum",
     "spectral_kurtosis",
 ]
-
-#: Defect names, in the order they are reported.
-DEFECTS = ("bpfo", "bpfi", "bsf", "ftf")
-
-#: Machine ``settings`` keys that carry the bearing geometry (docs/registry.md).
-SETTINGS_KEYS = (
-    "bearing_elements",
-    "bearing_ball_diameter_mm",
-    "bearing_pitch_diameter_mm",
-    "bearing_contact_angle_deg",
-)
 
 #: Numbers of equal bands [0, fs/2] is cut into for the candidate demodulation bands:
 #: the levels of the 1/3-binary tree of the fast kurtogram (Antoni 2007): 2 bands are
@@ -87,141 +74,6 @@ HARMONICS = 3
 #: the rolling element, which strikes both races once per spin revolution (Randall and
 #: Antoni 2011, section 2).
 INDICATOR_HARMONIC = {"bpfo": 1, "bpfi": 1, "bsf": 2, "ftf": 1}
-
-
-# ----------------------------------------------------------------------------- geometry
-
-
-@dataclass(frozen=True)
-class DefectFrequencies:
-    """The four defect frequencies, as orders of shaft speed or in Hz (``unit``).
-
-    ``ftf`` cage (fundamental train), ``bpfo`` ball pass outer race, ``bpfi`` ball pass
-    inner race, ``bsf`` ball (roller) spin frequency.
-    """
-
-    ftf: float
-    bpfo: float
-    bpfi: float
-    bsf: float
-    unit: Literal["order", "Hz"]
-
-    def as_dict(self) -> dict[str, float]:
-        """``{"bpfo": ..., "bpfi": ..., "bsf": ..., "ftf": ...}``."""
-        return {name: float(getattr(self, name)) for name in DEFECTS}
-
-
-def _is_integral(v: object) -> bool:
-    if isinstance(v, bool):
-        return False
-    if isinstance(v, int | np.integer):
-        return True
-    return isinstance(v, float | np.floating) and math.isfinite(v) and float(v).is_integer()
-
-
-@dataclass(frozen=True)
-class BearingGeometry(simulate.BearingGeometry):
-    """Geometry of the monitored rolling-element bearing.
-
-    Extends the simulator's geometry (which holds the defect-frequency formulas, so both
-    use the same ones) with stricter checks, construction from a machine's registry
-    settings and frequencies in Hz.
-
-    Attributes
-    ----------
-    n_elements : int
-        Number of rolling elements n, at least 3.
-    ball_diameter : float
-        Rolling-element diameter d, mm.
-    pitch_diameter : float
-        Pitch diameter D, mm; 0 < d < D.
-    contact_angle_deg : float
-        Contact angle alpha, degrees, 0 <= alpha < 90 (0 for deep groove ball bearings).
-
-    References
-    ----------
-    Randall and Antoni (2011), section 2: FTF = fr/2 (1 - d/D cos a),
-    BPFO = n fr/2 (1 - d/D cos a), BPFI = n fr/2 (1 + d/D cos a),
-    BSF = D fr/(2d) (1 - (d/D)^2 cos^2 a); outer race stationary.
-    """
-
-    def __post_init__(self) -> None:
-        if not _is_integral(self.n_elements) or int(self.n_elements) < 3:
-            raise ValueError(
-                f"n_elements must be an integer of at least 3, got {self.n_elements!r}."
-            )
-        a = self.contact_angle_deg
-        ok = isinstance(a, int | float | np.integer | np.floating) and not isinstance(a, bool)
-        if not ok or not 0.0 <= float(a) < 90.0:
-            raise ValueError(
-                f"contact_angle_deg must be a number from 0 up to (not including) 90, got {a!r}."
-            )
-        super().__post_init__()
-
-    @classmethod
-    def from_settings(cls, settings: Mapping[str, Any]) -> BearingGeometry | None:
-        """Geometry from a machine's registry ``settings``, or None when it has none.
-
-        Keys (docs/registry.md): ``bearing_elements`` (integer >= 3),
-        ``bearing_ball_diameter_mm`` (d > 0), ``bearing_pitch_diameter_mm`` (D > d),
-        ``bearing_contact_angle_deg`` (0 <= alpha < 90, default 0). None when none of
-        the keys is present; ValueError naming the key when one is missing or wrong.
-        """
-        if not isinstance(settings, Mapping):
-            raise ValueError(f"settings must be a mapping, got {type(settings).__name__}.")
-        if not any(k in settings for k in SETTINGS_KEYS):
-            return None
-        for key in SETTINGS_KEYS[:3]:
-            if key not in settings:
-                raise ValueError(
-                    f"{key} is missing; a bearing needs bearing_elements, "
-                    "bearing_ball_diameter_mm and bearing_pitch_diameter_mm together."
-                )
-        n = settings["bearing_elements"]
-        if not _is_integral(n) or int(n) < 3:
-            raise ValueError(f"bearing_elements must be an integer of at least 3, got {n!r}.")
-        d = _number(settings, "bearing_ball_diameter_mm")
-        big_d = _number(settings, "bearing_pitch_diameter_mm")
-        alpha = _number(settings, "bearing_contact_angle_deg", default=0.0)
-        if not d > 0:
-            raise ValueError(f"bearing_ball_diameter_mm must be above 0 mm, got {d!r}.")
-        if not big_d > d:
-            raise ValueError(
-                f"bearing_pitch_diameter_mm must exceed bearing_ball_diameter_mm ({d!r} mm), "
-                f"got {big_d!r}."
-            )
-        if not 0.0 <= alpha < 90.0:
-            raise ValueError(
-                f"bearing_contact_angle_deg must be from 0 up to (not including) 90, "
-                f"got {alpha!r}."
-            )
-        return cls(int(n), d, big_d, alpha)
-
-    def orders(self) -> DefectFrequencies:
-        """Defect frequencies as multiples of shaft speed (orders)."""
-        return DefectFrequencies(
-            ftf=self.ftf_order,
-            bpfo=self.bpfo_order,
-            bpfi=self.bpfi_order,
-            bsf=self.bsf_order,
-            unit="order",
-        )
-
-    def frequencies_hz(self, shaft_hz: float) -> DefectFrequencies:
-        """Defect frequencies in Hz at shaft speed ``shaft_hz`` (Hz, rev/s)."""
-        fr = sp._freq_arg(shaft_hz, "shaft_hz", positive=True)
-        o = self.orders()
-        return DefectFrequencies(
-            ftf=o.ftf * fr, bpfo=o.bpfo * fr, bpfi=o.bpfi * fr, bsf=o.bsf * fr, unit="Hz"
-        )
-
-
-def _number(settings: Mapping[str, Any], key: str, default: float | None = None) -> float:
-    v = settings.get(key, default)
-    ok = isinstance(v, int | float | np.integer | np.floating) and not isinstance(v, bool)
-    if not ok or not math.isfinite(float(v)):
-        raise ValueError(f"{key} must be a finite number, got {v!r}.")
-    return float(v)
 
 
 # ----------------------------------------------------------------------------- bands
@@ -266,7 +118,7 @@ def _kurtosis_of_bins(dft: np.ndarray) -> float:
 
 
 def spectral_kurtosis(
-    samples: ArrayLike | sp.Record, fs_hz: float | None, band_hz: tuple[float, float]
+    samples: ArrayLike | Record, fs_hz: float | None, band_hz: tuple[float, float]
 ) -> float:
     """Spectral kurtosis of ``samples`` (any unit) in ``band_hz`` (Hz), dimensionless.
 
@@ -277,7 +129,7 @@ def spectral_kurtosis(
     ----------
     Antoni (2006), the spectral kurtosis of a complex band signal, <|c|^4>/<|c|^2>^2 - 2.
     """
-    record = sp.Record.of(samples, fs_hz)
+    record = Record.of(samples, fs_hz)
     lo, hi = _check_band(band_hz, record.fs_hz, "band_hz")
     k0, k1 = _band_bins(record.samples.size, record.fs_hz, lo, hi)
     if k1 - k0 + 1 < 2:
@@ -286,15 +138,9 @@ def spectral_kurtosis(
 
 
 def _check_band(band_hz: object, fs_hz: float, name: str) -> tuple[float, float]:
-    lo_raw: object
-    hi_raw: object
-    try:
-        lo_raw, hi_raw = band_hz  # type: ignore[misc]
-    except (TypeError, ValueError):
-        raise ValueError(f"{name} must be a pair (low, high) in Hz, got {band_hz!r}.") from None
-    lo = sp._freq_arg(lo_raw, f"{name} low edge")
-    hi = sp._freq_arg(hi_raw, f"{name} high edge", positive=True)
-    if not lo < hi <= fs_hz / 2.0:
+    """A demodulation band (Hz) inside [0, fs/2]."""
+    lo, hi = validate.ordered_pair(band_hz, name)
+    if not hi <= fs_hz / 2.0:
         raise ValueError(
             f"{name} must satisfy low < high <= fs/2 = {fs_hz / 2.0:g} Hz, got {band_hz!r}."
         )
@@ -302,7 +148,7 @@ def _check_band(band_hz: object, fs_hz: float, name: str) -> tuple[float, float]
 
 
 def choose_band(
-    samples: ArrayLike | sp.Record,
+    samples: ArrayLike | Record,
     fs_hz: float | None,
     *,
     min_low_hz: float,
@@ -325,11 +171,11 @@ def choose_band(
     ----------
     Antoni (2006, 2007); Randall and Antoni (2011), section 3.
     """
-    record = sp.Record.of(samples, fs_hz)
+    record = Record.of(samples, fs_hz)
     fs = record.fs_hz
     n = record.samples.size
-    min_low = sp._freq_arg(min_low_hz, "min_low_hz")
-    min_width = sp._freq_arg(min_width_hz, "min_width_hz")
+    min_low = validate.frequency_hz(min_low_hz, "min_low_hz")
+    min_width = validate.frequency_hz(min_width_hz, "min_width_hz")
     dft = record.dft
     best: BandChoice | None = None
     nyq = fs / 2.0
@@ -359,7 +205,7 @@ def choose_band(
 
 
 def envelope_spectrum(
-    samples: ArrayLike | sp.Record, fs_hz: float | None, band_hz: tuple[float, float], unit: str
+    samples: ArrayLike | Record, fs_hz: float | None, band_hz: tuple[float, float], unit: str
 ) -> sp.Spectrum:
     """Amplitude spectrum of the Hilbert envelope of ``samples`` band-passed to ``band_hz``.
 
@@ -389,8 +235,8 @@ def envelope_spectrum(
     ----------
     Randall and Antoni (2011), section 3 (envelope analysis); Harris (1978), Hann window.
     """
-    units._check_unit(unit, "unit")
-    record = sp.Record.of(samples, fs_hz)
+    units.check_unit(unit)
+    record = Record.of(samples, fs_hz)
     fs = record.fs_hz
     n = record.samples.size
     lo, hi = _check_band(band_hz, fs, "band_hz")
@@ -410,7 +256,7 @@ def envelope_spectrum(
         amp[-1] *= 0.5
     df = fs / n
     return sp.Spectrum(
-        freq_hz=sp._freqs(n, fs),
+        freq_hz=sp.bin_frequencies(n, fs),
         amplitude=amp,
         unit=unit,
         scaling="peak",
@@ -493,7 +339,7 @@ def _line(env: sp.Spectrum, f_hz: float, slip: float) -> float:
 
 
 def analyse_bearing(
-    samples: ArrayLike | sp.Record,
+    samples: ArrayLike | Record,
     fs_hz: float | None,
     shaft_hz: float,
     geometry: BearingGeometry,
@@ -534,17 +380,14 @@ def analyse_bearing(
     ----------
     Randall and Antoni (2011); Antoni (2006, 2007).
     """
-    units._check_unit(unit, "unit")
-    if units.quantity_of(unit) != "acceleration":
+    if units.quantity_of(units.check_unit(unit)) != "acceleration":
         raise ValueError(f"unit must be an acceleration unit (m/s^2 or g), got {unit!r}.")
-    if not isinstance(geometry, simulate.BearingGeometry):
+    if not isinstance(geometry, BearingGeometry):
         raise ValueError(f"geometry must be a BearingGeometry, got {type(geometry).__name__}.")
-    slip_ok = isinstance(slip_pct, int | float) and not isinstance(slip_pct, bool)
-    if not slip_ok or not 0.0 <= float(slip_pct) <= 10.0:
-        raise ValueError(f"slip_pct must be a number from 0 to 10 percent, got {slip_pct!r}.")
-    record = sp.Record.of(samples, fs_hz)
+    validate.in_range(slip_pct, "slip_pct", 0.0, 10.0, low_open=False, high_open=False, unit=" %")
+    record = Record.of(samples, fs_hz)
     fs = record.fs_hz
-    fr = sp._freq_arg(shaft_hz, "shaft_hz", positive=True)
+    fr = validate.frequency_hz(shaft_hz, "shaft_hz", positive=True)
     freqs = DefectFrequencies(
         ftf=geometry.ftf_order * fr,
         bpfo=geometry.bpfo_order * fr,

@@ -19,8 +19,9 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import ArrayLike
 
-from monitor.analysis import spectrum as sp
-from monitor.model import units
+from monitor.analysis.record import Record
+from monitor.analysis.spectrum import hann_sums
+from monitor.model import units, validate
 
 
 @dataclass(frozen=True)
@@ -51,7 +52,7 @@ def normalise_orders(orders: Iterable[float]) -> tuple[float, ...]:
 
 
 def order_amplitudes(
-    samples: ArrayLike | sp.Record,
+    samples: ArrayLike | Record,
     fs_hz: float,
     unit: str,
     speed_hz: float,
@@ -87,23 +88,21 @@ def order_amplitudes(
     Hann window coherent gain 0.5 (Harris 1978): amplitude = 2 |sum w x e^{-j w n}| /
     sum w for a sinusoid at exactly that frequency.
     """
-    record = sp.Record.of(samples, fs_hz)
+    record = Record.of(samples, fs_hz)
     fs = record.fs_hz
-    units._check_unit(unit, "unit")
-    speed = sp._freq_arg(speed_hz, "speed_hz", positive=True)
+    units.check_unit(unit)
+    speed = validate.frequency_hz(speed_hz, "speed_hz", positive=True)
     ords = normalise_orders(orders)
-    if reference_s is not None and not (
-        isinstance(reference_s, int | float | np.floating) and math.isfinite(reference_s)
-    ):
-        raise ValueError(f"reference_s must be a finite time in seconds, got {reference_s!r}.")
+    if reference_s is not None:
+        validate.finite(reference_s, "reference_s")
     ords = tuple(o for o in ords if o * speed < 0.5 * fs)
     if not ords:
         return ()
     freqs = np.array(ords) * speed
-    s1, _ = sp._window_sums(record.samples.size)
+    s1, _ = hann_sums(record.samples.size)
     z = record.dtft(freqs, window=True, half_width=32)
     amp = 2.0 * np.abs(z) / s1
-    vel = units.velocity_mm_s_from(amp, unit, freqs)
+    vel = np.asarray(units.velocity_mm_s_from(amp, unit, freqs))
     out = []
     for i, o in enumerate(ords):
         phase = None

@@ -12,6 +12,8 @@ F. J. Harris, "On the use of windows for harmonic analysis with the discrete Fou
 transform", Proc. IEEE 66(1), 1978 (Hann coherent gain 0.5, ENBW 1.5 bins).
 P. D. Welch, "The use of fast Fourier transform for the estimation of power spectra",
 IEEE Trans. Audio Electroacoust. 15(2), 1967 (averaged overlapping segments).
+
+One block transformed once (its rfft, DTFT and spectrum) is :mod:`monitor.analysis.record`.
 """
 
 from __future__ import annotations
@@ -27,7 +29,7 @@ from numpy.lib.stride_tricks import sliding_window_view
 from numpy.typing import ArrayLike
 from scipy.signal import get_window
 
-from monitor.model import units
+from monitor.model import units, validate
 
 MIN_SAMPLES = 16
 SCALINGS = ("peak", "rms")
@@ -68,9 +70,15 @@ class Spectrum:
     segment_length: int | None = None
 
     @property
-    def quantity(self) -> str:
+    def quantity(self) -> units.Quantity:
         """``acceleration``, ``velocity`` or ``displacement``."""
         return units.quantity_of(self.unit)
+
+    @property
+    def fft_length(self) -> int:
+        """Samples per transformed segment (``segment_length``, or the length implied by
+        the number of bins when that is not recorded)."""
+        return self.segment_length or 2 * (self.amplitude.size - 1)
 
 
 @dataclass(frozen=True)
@@ -97,13 +105,15 @@ def hann(n: int) -> np.ndarray:
 
 
 @functools.lru_cache(maxsize=32)
-def _window_sums(n: int) -> tuple[float, float]:
+def hann_sums(n: int) -> tuple[float, float]:
+    """Sum and sum of squares of the periodic Hann window of ``n`` samples (cached)."""
     w = hann(n)
     return float(w.sum()), float(np.dot(w, w))
 
 
 @functools.lru_cache(maxsize=32)
-def _freqs(n: int, fs_hz: float) -> np.ndarray:
+def bin_frequencies(n: int, fs_hz: float) -> np.ndarray:
+    """Frequencies (Hz) of the rfft bins of ``n`` samples at ``fs_hz`` (read-only, cached)."""
     f = scipy.fft.rfftfreq(n, 1.0 / fs_hz)
     f.setflags(write=False)
     return f
@@ -112,44 +122,8 @@ def _freqs(n: int, fs_hz: float) -> np.ndarray:
 # ----------------------------------------------------------------------------- validation
 
 
-def _check_samples(samples: ArrayLike, name: str = "samples") -> np.ndarray:
-    x = np.asarray(samples)
-    if x.ndim != 1:
-        raise ValueError(f"{name} must be a 1-D array, got shape {x.shape}.")
-    if x.size < MIN_SAMPLES:
-        raise ValueError(
-            f"{name} has {x.size} values; a spectrum needs at least {MIN_SAMPLES} samples."
-        )
-    if not np.issubdtype(x.dtype, np.number) or np.iscomplexobj(x):
-        raise ValueError(f"{name} must be real numbers, got dtype {x.dtype}.")
-    x = x.astype(np.float64, copy=False)
-    if not np.isfinite(x).all():
-        bad = int(np.flatnonzero(~np.isfinite(x))[0])
-        raise ValueError(f"{name} must be finite; sample {bad} is {x[bad]!r}.")
-    return x
-
-
-def _check_fs(fs_hz: object) -> float:
-    try:
-        fs = float(fs_hz)  # type: ignore[arg-type]
-    except (TypeError, ValueError):
-        raise ValueError(f"fs_hz must be a positive number of Hz, got {fs_hz!r}.") from None
-    if not math.isfinite(fs) or fs <= 0:
-        raise ValueError(f"fs_hz must be a positive finite sample rate in Hz, got {fs_hz!r}.")
-    return fs
-
-
-def _freq_arg(value: object, name: str, *, positive: bool = False) -> float:
-    """A finite, non-negative (or positive) frequency in Hz, else ValueError naming it."""
-    ok = isinstance(value, int | float | np.integer | np.floating) and not isinstance(value, bool)
-    v = float(value) if ok else math.nan  # type: ignore[arg-type]
-    if not math.isfinite(v) or v < 0 or (positive and v == 0):
-        kind = "positive" if positive else "non-negative"
-        raise ValueError(f"{name} must be a {kind} finite frequency in Hz, got {value!r}.")
-    return v
-
-
-def _check_spectrum(spectrum: object) -> Spectrum:
+def check_spectrum(spectrum: object) -> Spectrum:
+    """``spectrum`` when it is a :class:`Spectrum`; ValueError otherwise."""
     if not isinstance(spectrum, Spectrum):
         raise ValueError(f"spectrum must be a Spectrum, got {type(spectrum).__name__}.")
     return spectrum
@@ -198,23 +172,17 @@ def amplitude_spectrum(
     Harris 1978 (Hann window); Welch 1967 (averaging power over overlapping segments,
     then the square root, so noise averages and a stable sinusoid keeps its amplitude).
     """
-    x = _check_samples(samples)
-    fs = _check_fs(fs_hz)
-    units._check_unit(unit, "unit")
+    x = validate.real_samples(samples, minimum=MIN_SAMPLES)
+    fs = validate.sample_rate_hz(fs_hz)
+    units.check_unit(unit)
     if scaling not in SCALINGS:
         raise ValueError(f"scaling {scaling!r} is not allowed; use 'peak' or 'rms'.")
-    n = x.size if segment_length is None else segment_length
-    if isinstance(n, bool) or not isinstance(n, int | np.integer) or not MIN_SAMPLES <= n <= x.size:
-        raise ValueError(
-            f"segment_length must be an integer from {MIN_SAMPLES} to the record length "
-            f"{x.size}, got {segment_length!r}."
-        )
-    n = int(n)
-    if not (isinstance(overlap, int | float) and 0.0 <= overlap < 1.0):
-        raise ValueError(f"overlap must be a fraction in [0, 1), got {overlap!r}.")
+    n = x.size if segment_length is None else validate.whole_number(
+        segment_length, "segment_length", minimum=MIN_SAMPLES, maximum=x.size)
+    validate.in_range(overlap, "overlap", 0.0, 1.0, low_open=False)
     step = max(1, int(round(n * (1.0 - overlap))))
     w = hann(n)
-    s1, s2 = _window_sums(n)
+    s1, s2 = hann_sums(n)
     if n == x.size:
         spec = scipy.fft.rfft(x * w)
         if detrend:
@@ -243,7 +211,7 @@ def amplitude_spectrum(
     amp = np.sqrt(power)
     resolution = fs / n
     return Spectrum(
-        freq_hz=_freqs(n, fs),
+        freq_hz=bin_frequencies(n, fs),
         amplitude=amp,
         unit=unit,
         scaling=scaling,
@@ -266,16 +234,12 @@ def _peak_factor2(n: int, m: int) -> np.ndarray:
     return f
 
 
-def _seg_len(spectrum: Spectrum) -> int:
-    return spectrum.segment_length or 2 * (spectrum.amplitude.size - 1)
-
-
 def _power(spectrum: Spectrum) -> np.ndarray:
     """One-sided power per bin (units^2, RMS^2) of a spectrum of either scaling."""
     a2 = spectrum.amplitude * spectrum.amplitude
     if spectrum.scaling == "rms":
         return a2
-    return a2 / _peak_factor2(_seg_len(spectrum), a2.size)
+    return a2 / _peak_factor2(spectrum.fft_length, a2.size)
 
 
 # ----------------------------------------------------------------------------- integration
@@ -307,7 +271,7 @@ def integrate(
     ----------
     V(f) = A(f) / (j 2 pi f), D(f) = V(f) / (j 2 pi f): amplitudes divide by 2 pi f.
     """
-    spectrum = _check_spectrum(spectrum)
+    spectrum = check_spectrum(spectrum)
     steps = {"acceleration": {"velocity": 1, "displacement": 2}, "velocity": {"displacement": 1}}
     q = spectrum.quantity
     if to not in ("velocity", "displacement") or to not in steps.get(q, {}):
@@ -315,8 +279,8 @@ def integrate(
             f"to {to!r} is not reachable by integrating a {q} spectrum; allowed: "
             f"{', '.join(steps.get(q, {})) or 'none'}."
         )
-    f_low_hz = _freq_arg(f_low_hz, "f_low_hz")
-    n = _seg_len(spectrum)
+    f_low_hz = validate.frequency_hz(f_low_hz, "f_low_hz")
+    n = spectrum.fft_length
     factor = _integration_factor(n, spectrum.resolution_hz * n, spectrum.unit, to, f_low_hz)
     return _rescale(spectrum, factor, units.BASE_UNIT[to])
 
@@ -324,7 +288,7 @@ def integrate(
 @functools.lru_cache(maxsize=32)
 def _integration_factor(n: int, fs_hz: float, unit: str, to: str, f_low_hz: float) -> np.ndarray:
     """Per-bin factor 1/(2 pi f) (or its square) with unit scaling, zero below f_low_hz."""
-    f = _freqs(n, fs_hz)
+    f = bin_frequencies(n, fs_hz)
     omega = 2.0 * np.pi * np.where(f > 0, f, 1.0)
     keep = (f >= f_low_hz) & (f > 0)
     base = units.to_base_factor(unit)
@@ -350,7 +314,7 @@ def differentiate(
     ----------
     V(f) = j 2 pi f D(f), A(f) = j 2 pi f V(f).
     """
-    spectrum = _check_spectrum(spectrum)
+    spectrum = check_spectrum(spectrum)
     steps = {"displacement": {"velocity": 1, "acceleration": 2}, "velocity": {"acceleration": 1}}
     q = spectrum.quantity
     if to not in steps.get(q, {}):
@@ -371,7 +335,7 @@ def differentiate(
 def to_velocity(spectrum: Spectrum, *, f_low_hz: float = 2.0) -> Spectrum:
     """The velocity spectrum (mm/s) of any spectrum: integrated, differentiated or
     converted as the quantity needs; ``f_low_hz`` applies to integration only."""
-    q = _check_spectrum(spectrum).quantity
+    q = check_spectrum(spectrum).quantity
     if q == "acceleration":
         return integrate(spectrum, "velocity", f_low_hz=f_low_hz)
     if q == "displacement":
@@ -395,9 +359,9 @@ def band_rms(spectrum: Spectrum, f_lo_hz: float, f_hi_hz: float) -> float:
     ----------
     Parseval's theorem; Harris 1978 (ENBW); scipy.signal.welch density vs spectrum scaling.
     """
-    spectrum = _check_spectrum(spectrum)
-    f_lo_hz = _freq_arg(f_lo_hz, "f_lo_hz")
-    f_hi_hz = _freq_arg(f_hi_hz, "f_hi_hz")
+    spectrum = check_spectrum(spectrum)
+    f_lo_hz = validate.frequency_hz(f_lo_hz, "f_lo_hz")
+    f_hi_hz = validate.frequency_hz(f_hi_hz, "f_hi_hz")
     if f_hi_hz < f_lo_hz:
         raise ValueError(f"f_hi_hz {f_hi_hz!r} must not be below f_lo_hz {f_lo_hz!r}.")
     df = spectrum.resolution_hz
@@ -412,7 +376,7 @@ def band_rms(spectrum: Spectrum, f_lo_hz: float, f_hi_hz: float) -> float:
 # ----------------------------------------------------------------------------- peaks
 
 
-def _hann_interpolate(a: np.ndarray, k: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def hann_interpolate(a: np.ndarray, k: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Offset (bins) and amplitude correction of Hann-window peaks at bins ``k``.
 
     The three-bin ratio delta = 2 (a[k+1] - a[k-1]) / (a[k-1] + 2 a[k] + a[k+1]) is exact
@@ -434,10 +398,9 @@ def find_peaks(spectrum: Spectrum, count: int = 10, min_hz: float = 0.0) -> tupl
     between bins with the exact three-bin Hann formula, so an off-bin sinusoid reads its
     true frequency and amplitude (no scalloping loss).
     """
-    spectrum = _check_spectrum(spectrum)
-    if isinstance(count, bool) or not isinstance(count, int) or count < 0:
-        raise ValueError(f"count must be a non-negative integer, got {count!r}.")
-    min_hz = _freq_arg(min_hz, "min_hz")
+    spectrum = check_spectrum(spectrum)
+    validate.whole_number(count, "count", minimum=0)
+    min_hz = validate.frequency_hz(min_hz, "min_hz")
     a = spectrum.amplitude
     start = max(1, int(math.ceil(min_hz / spectrum.resolution_hz)))
     if count == 0 or start >= a.size - 1:
@@ -447,7 +410,7 @@ def find_peaks(spectrum: Spectrum, count: int = 10, min_hz: float = 0.0) -> tupl
     idx = np.flatnonzero(is_peak) + start
     if idx.size > count:
         idx = idx[np.argpartition(a[idx], -count)[-count:]]
-    pos, amp = _hann_interpolate(a, idx)
+    pos, amp = hann_interpolate(a, idx)
     order = np.argsort(-amp, kind="stable")
     df = spectrum.resolution_hz
     return tuple(Peak(hz=float(pos[i] * df), amplitude=float(amp[i])) for i in order)
@@ -456,157 +419,19 @@ def find_peaks(spectrum: Spectrum, count: int = 10, min_hz: float = 0.0) -> tupl
 def amplitude_at(spectrum: Spectrum, freq_hz: float, tolerance_hz: float) -> Peak:
     """The interpolated peak nearest ``freq_hz``: the largest bin within ``tolerance_hz``
     (at least one bin either side), interpolated as in :func:`find_peaks`."""
-    spectrum = _check_spectrum(spectrum)
+    spectrum = check_spectrum(spectrum)
     df = spectrum.resolution_hz
     a = spectrum.amplitude
-    freq_hz = _freq_arg(freq_hz, "freq_hz", positive=True)
+    freq_hz = validate.frequency_hz(freq_hz, "freq_hz", positive=True)
     if freq_hz > spectrum.freq_hz[-1]:
         raise ValueError(
             f"freq_hz {freq_hz!r} lies above the spectrum's last bin {spectrum.freq_hz[-1]:g} Hz."
         )
-    tolerance_hz = _freq_arg(tolerance_hz, "tolerance_hz")
+    tolerance_hz = validate.frequency_hz(tolerance_hz, "tolerance_hz")
     tol = max(tolerance_hz, df)
     i0 = max(1, int(math.floor((freq_hz - tol) / df)))
     i1 = min(a.size - 2, int(math.ceil((freq_hz + tol) / df)))
     i1 = max(i1, i0)
     k = i0 + int(np.argmax(a[i0 : i1 + 1]))
-    pos, amp = _hann_interpolate(a, np.array([k]))
+    pos, amp = hann_interpolate(a, np.array([k]))
     return Peak(hz=float(pos[0] * df), amplitude=float(amp[0]))
-
-
-# ----------------------------------------------------------------------------- DTFT
-
-
-def _dft_kernel(u: np.ndarray, n: int) -> np.ndarray:
-    """(1/n) sum_{m=0}^{n-1} exp(j u m): the weight of DFT bin k in the DTFT at omega,
-    u = 2 pi k / n - omega (rad/sample)."""
-    half = 0.5 * u
-    den = np.sin(half)
-    small = np.abs(den) < 1e-12
-    ratio = np.where(small, float(n), np.sin(n * half) / np.where(small, 1.0, den))
-    return np.exp(1j * half * (n - 1)) * ratio / n
-
-
-def hann_from_dft(dft: np.ndarray, n: int) -> np.ndarray:
-    """rfft of x times the periodic Hann window, from the rfft of x (length n).
-
-    The window 0.5 - 0.5 cos(2 pi m / n) mixes each bin with its neighbours:
-    Xw[k] = 0.5 X[k] - 0.25 (X[k-1] + X[k+1]), with X[-1] = conj X[1] and past the last
-    bin the conjugate mirror.
-    """
-    out = 0.5 * dft
-    out[1:-1] -= 0.25 * (dft[:-2] + dft[2:])
-    out[0] -= 0.5 * dft[1].real
-    last_next = np.conj(dft[-2]) if n % 2 == 0 else np.conj(dft[-1])
-    out[-1] -= 0.25 * (dft[-2] + last_next)
-    return out
-
-
-@dataclass(frozen=True, eq=False)
-class Record:
-    """A validated waveform (float64) with its sample rate (Hz) and, computed once, the
-    rfft of its mean-removed samples; speed estimation, order tracking and the spectrum
-    of one block all read that single transform.
-    """
-
-    samples: np.ndarray
-    fs_hz: float
-
-    @classmethod
-    def of(cls, samples: ArrayLike | Record, fs_hz: float | None = None) -> Record:
-        """Validate ``samples`` (or pass a Record through) and bind the sample rate."""
-        if isinstance(samples, Record):
-            return samples
-        if fs_hz is None:
-            raise ValueError("fs_hz is required with samples: give the sample rate in Hz.")
-        return cls(_check_samples(samples), _check_fs(fs_hz))
-
-    @functools.cached_property
-    def mean(self) -> float:
-        return float(self.samples.mean())
-
-    @functools.cached_property
-    def dft(self) -> np.ndarray:
-        """rfft of the mean-removed samples (read-only)."""
-        x = self.samples
-        out = scipy.fft.rfft(x)
-        out[0] -= self.mean * x.size
-        out.setflags(write=False)
-        return out
-
-    def dtft(
-        self,
-        freqs_hz: ArrayLike,
-        *,
-        window: bool = False,
-        half_width: int = 64,
-        anchor_hz: ArrayLike | None = None,
-    ) -> np.ndarray:
-        """DTFT of the mean-removed record, sum_m w[m] x[m] exp(-j 2 pi f m / fs), at each
-        frequency (Hz); w the periodic Hann window when ``window`` else 1; time zero at
-        the first sample.
-
-        Interpolated from the DFT bins within ``half_width`` bins of each frequency with
-        the exact bin weight (1/N) sum_m exp(j u m). With the Hann window the weights fall
-        as 1/d^3 and the result is exact to rounding; without it they fall as 1/d, so the
-        far bins left out add white noise of about 2 / (pi^2 half_width) of the noise
-        already in X(f) (0.3 % at 64) and a negligible, symmetric error on sinusoids.
-        ``anchor_hz`` (same shape as ``freqs_hz``) centres each bin range on a fixed
-        frequency instead, so that repeated evaluations near it form a smooth function
-        (the range would otherwise jump by a bin at half-bin points).
-        """
-        f = np.atleast_1d(np.asarray(freqs_hz, dtype=float))
-        n = self.samples.size
-        dft = self.dft
-        half = n // 2
-        pos = f * n / self.fs_hz  # fractional bin
-        width = min(half_width, (n - 1) // 2)
-        centre = pos if anchor_hz is None else np.asarray(anchor_hz, dtype=float).ravel() * n / self.fs_hz
-        k = np.rint(centre)[:, None] + np.arange(-width, width + 1)[None, :]
-        m = np.mod(k, n).astype(np.intp)
-        mirror = m > half
-        vals = np.where(mirror, np.conj(dft[np.where(mirror, n - m, 0)]), dft[np.minimum(m, half)])
-        u = 2.0 * np.pi * (k - pos[:, None]) / n
-        if window:
-            step = 2.0 * np.pi / n
-            ker = 0.5 * _dft_kernel(u, n) - 0.25 * (
-                _dft_kernel(u + step, n) + _dft_kernel(u - step, n)
-            )
-        else:
-            ker = _dft_kernel(u, n)
-        return np.sum(vals * ker, axis=1)
-
-
-def record_spectrum(
-    record: Record, unit: str, *, scaling: Literal["peak", "rms"] = "peak"
-) -> Spectrum:
-    """:func:`amplitude_spectrum` of the whole record (one segment, mean removed), derived
-    from the record's own rfft so the block is transformed only once."""
-    units._check_unit(unit, "unit")
-    if scaling not in SCALINGS:
-        raise ValueError(f"scaling {scaling!r} is not allowed; use 'peak' or 'rms'.")
-    n = record.samples.size
-    xw = hann_from_dft(record.dft, n)
-    s1, s2 = _window_sums(n)
-    power = xw.real * xw.real + xw.imag * xw.imag
-    # same one-sided scaling as amplitude_spectrum
-    power *= (2.0 if scaling == "rms" else 4.0) / (s1 * s1)
-    if scaling == "rms":
-        power[0] *= 0.5
-        if n % 2 == 0:
-            power[-1] *= 0.5
-    else:
-        power[0] *= 0.25
-        if n % 2 == 0:
-            power[-1] *= 0.25
-    resolution = record.fs_hz / n
-    return Spectrum(
-        freq_hz=_freqs(n, record.fs_hz),
-        amplitude=np.sqrt(power),
-        unit=unit,
-        scaling=scaling,
-        resolution_hz=resolution,
-        enbw_hz=resolution * n * s2 / (s1 * s1),
-        averages=1,
-        segment_length=n,
-    )

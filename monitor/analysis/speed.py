@@ -39,7 +39,9 @@ from numpy.typing import ArrayLike
 from scipy import stats
 
 from monitor.analysis import spectrum as sp
+from monitor.analysis.record import Record
 from monitor.analysis.spectrum import Spectrum
+from monitor.model import validate
 
 #: harmonics must stand this far above the mean noise power per bin to be used (10 dB).
 _MIN_HARMONIC_SNR = 10.0
@@ -83,20 +85,6 @@ class TachSpeed:
 
 
 # ----------------------------------------------------------------------------- helpers
-
-
-def _check_range(speed_range_hz: object) -> tuple[float, float]:
-    try:
-        lo, hi = (float(v) for v in speed_range_hz)  # type: ignore[union-attr]
-    except (TypeError, ValueError):
-        raise ValueError(
-            f"speed_range_hz must be two frequencies (low, high) in Hz, got {speed_range_hz!r}."
-        ) from None
-    if not (math.isfinite(lo) and math.isfinite(hi) and 0 <= lo <= hi):
-        raise ValueError(
-            f"speed_range_hz must satisfy 0 <= low <= high (finite, Hz), got {speed_range_hz!r}."
-        )
-    return lo, hi
 
 
 @functools.lru_cache(maxsize=16)
@@ -180,7 +168,7 @@ def _spectral_refine(
     i0 = np.maximum(1, np.floor(centres - 1.0).astype(np.intp))
     idx = np.minimum(i0[:, None] + np.arange(4)[None, :], a.size - 2)
     k = idx[np.arange(hs.size), np.argmax(a[idx], axis=1)]
-    pos, amp = sp._hann_interpolate(a, k)
+    pos, amp = sp.hann_interpolate(a, k)
     sine_p = amp * amp / (2.0 if spectrum.scaling == "peak" else 1.0)
     noise_p = local_noise_power(spectrum, k)
     strong = sine_p >= _MIN_HARMONIC_SNR * noise_p
@@ -189,7 +177,7 @@ def _spectral_refine(
     # E[P_noise] = 2 sigma^2 ENBW_bins / N per bin and P_sine = A^2 / 2 (one-sided), so
     # eta = A^2 / (2 sigma^2) = 2 P_sine ENBW_bins / (N P_noise)
     enbw_bins = spectrum.enbw_hz / spectrum.resolution_hz
-    n_seg = sp._seg_len(spectrum)
+    n_seg = spectrum.fft_length
     with np.errstate(divide="ignore"):
         eta = np.where(noise_p > 0, 2.0 * sine_p * enbw_bins / (n_seg * noise_p), np.inf)
     hs, pos, amp, eta = hs[strong], pos[strong], amp[strong], eta[strong]
@@ -226,7 +214,7 @@ def _kept_bins(n: int, centre_bin: float, hs: np.ndarray) -> np.ndarray:
 
 
 def _harmonic_fit(
-    record: sp.Record, omegas: np.ndarray, hs: np.ndarray, bins: np.ndarray
+    record: Record, omegas: np.ndarray, hs: np.ndarray, bins: np.ndarray
 ) -> tuple[np.ndarray, np.ndarray]:
     """Least-squares fit of sum_h a_h cos(h w m) + b_h sin(h w m) at each w in ``omegas``,
     made on the record's DFT bins ``bins`` (each stands for itself and its conjugate
@@ -255,7 +243,7 @@ def _harmonic_fit(
 
 
 def _ml_refine(
-    record: sp.Record, omega0: float, hs: np.ndarray, iterations: int = 8
+    record: Record, omega0: float, hs: np.ndarray, iterations: int = 8
 ) -> tuple[float, np.ndarray]:
     """Maximise the harmonic least-squares energy near ``omega0`` (rad/sample).
 
@@ -293,7 +281,7 @@ def estimate_speed(
     speed_range_hz: tuple[float, float],
     *,
     harmonics: int = 8,
-    samples: ArrayLike | sp.Record | None = None,
+    samples: ArrayLike | Record | None = None,
     fs_hz: float | None = None,
 ) -> SpeedEstimate:
     """Estimate running speed (Hz) within ``speed_range_hz`` from vibration.
@@ -327,14 +315,13 @@ def estimate_speed(
     Harmonic summation (Noll 1969, from memory); Kay 1993 sections 3.7 and 7 (CRLB,
     periodogram maximiser; from memory).
     """
-    spectrum = sp._check_spectrum(spectrum)
-    lo, hi = _check_range(speed_range_hz)
-    if isinstance(harmonics, bool) or not isinstance(harmonics, int) or not 1 <= harmonics <= 32:
-        raise ValueError(f"harmonics must be an integer from 1 to 32, got {harmonics!r}.")
+    spectrum = sp.check_spectrum(spectrum)
+    lo, hi = validate.ordered_pair(speed_range_hz, "speed_range_hz", allow_equal=True)
+    validate.whole_number(harmonics, "harmonics", minimum=1, maximum=32)
     record = None
     if samples is not None:
-        record = sp.Record.of(samples, fs_hz)
-        if sp._seg_len(spectrum) != record.samples.size or spectrum.averages != 1:
+        record = Record.of(samples, fs_hz)
+        if spectrum.fft_length != record.samples.size or spectrum.averages != 1:
             # the fine step needs a start within a fraction of the record's own bin
             spectrum = sp.amplitude_spectrum(record.samples, record.fs_hz, spectrum.unit)
     df = spectrum.resolution_hz
@@ -353,7 +340,7 @@ def estimate_speed(
             "cannot be estimated from them."
         )
     c_bin = _coarse(spectrum.amplitude, lo_bin, hi_bin, harmonics)
-    n_seg = sp._seg_len(spectrum)
+    n_seg = spectrum.fft_length
     fs_seg = df * n_seg
     f_bin, hs_used, etas = _spectral_refine(spectrum, c_bin, harmonics)
     if hs_used.size == 0:
@@ -378,8 +365,8 @@ def estimate_speed(
     else:
         inv_var = sum(float(h * h) / b for h, b in zip(hs_used, bounds, strict=True))
         unc = loss * math.sqrt(1.0 / inv_var) if inv_var > 0 else df / math.sqrt(12.0)
-    hs_used = tuple(int(h) for h in hs_used)
-    return SpeedEstimate(speed_hz=float(speed), uncertainty_hz=unc, harmonics=hs_used)
+    return SpeedEstimate(speed_hz=float(speed), uncertainty_hz=unc,
+                         harmonics=tuple(int(h) for h in hs_used))
 
 
 # ----------------------------------------------------------------------------- tach

@@ -16,9 +16,11 @@ import numpy as np
 from monitor.analysis import bearings
 from monitor.analysis import spectrum as sp
 from monitor.analysis.orders import OrderAmplitude, normalise_orders, order_amplitudes
+from monitor.analysis.record import Record, record_spectrum
 from monitor.analysis.spectrum import Peak, Spectrum
 from monitor.analysis.speed import estimate_speed, speed_from_tach
-from monitor.model import units
+from monitor.model import units, validate
+from monitor.model.bearing_geometry import SETTINGS_KEYS, BearingGeometry
 from monitor.model.jsonsafe import jsonable
 from monitor.model.readings import Waveform
 from monitor.model.registry import Machine, Point
@@ -162,34 +164,31 @@ def analyse_waveform(
     analysis (Randall and Antoni 2011; spectral kurtosis, Antoni 2006).
     """
     unit = waveform.unit
-    if unit not in units.UNITS:
-        raise ValueError(
-            f"waveform unit {unit!r} is not a known unit; allowed: {', '.join(units.UNITS)}."
-        )
+    units.check_unit(unit, "waveform unit")
     if units.quantity_of(unit) != point.quantity:
         raise ValueError(
             f"waveform unit {unit!r} measures {units.quantity_of(unit)} but point "
             f"{point.id!r} measures {point.quantity}."
         )
-    fs = sp._check_fs(waveform.fs_hz)
-    x = sp._check_samples(waveform.samples, "waveform samples")
+    fs = validate.sample_rate_hz(waveform.fs_hz)
+    x = validate.real_samples(waveform.samples, "waveform samples", minimum=sp.MIN_SAMPLES)
     if unit != point.unit:
         x = x * (units.to_base_factor(unit) / units.to_base_factor(point.unit))
         unit = point.unit
     lo, hi = band_hz if band_hz is not None else severity_band_hz(machine)
-    lo = sp._freq_arg(lo, "band_hz low edge")
-    hi = sp._freq_arg(hi, "band_hz high edge")
+    lo = validate.frequency_hz(lo, "band_hz low edge")
+    hi = validate.frequency_hz(hi, "band_hz high edge")
     if hi < lo:
         raise ValueError(f"band_hz must run from low to high, got {band_hz!r}.")
 
-    record = sp.Record(x, fs)
-    spec = sp.record_spectrum(record, unit)
+    record = Record(x, fs)
+    spec = record_spectrum(record, unit)
     vel = sp.to_velocity(spec, f_low_hz=lo)
     overall = sp.band_rms(vel, lo, min(hi, float(vel.freq_hz[-1])))
 
     tach = speed_from_tach(once_per_rev_s) if once_per_rev_s is not None else None
     if waveform.speed_hz is not None:
-        speed = sp._freq_arg(waveform.speed_hz, "waveform speed_hz", positive=True)
+        speed = validate.frequency_hz(waveform.speed_hz, "waveform speed_hz", positive=True)
         source: Literal["measured", "estimated"] = "measured"
         uncertainty = 0.0
     elif tach is not None:
@@ -215,12 +214,12 @@ def analyse_waveform(
     peaks = sp.find_peaks(spec, count=peak_count, min_hz=2.0 * spec.resolution_hz)
     extra: dict[str, Any] = {"unit": unit, "band_hz": (lo, hi)}
     if point.quantity == "acceleration" and any(
-        k in machine.settings for k in bearings.SETTINGS_KEYS
+        k in machine.settings for k in SETTINGS_KEYS
     ):
         # a bad geometry or a block too short for the envelope must not cost the reading
         # its spectrum, orders and overall level: report why and carry on
         try:
-            geometry = bearings.BearingGeometry.from_settings(machine.settings)
+            geometry = BearingGeometry.from_settings(machine.settings)
             if geometry is not None:
                 extra["bearing"] = bearings.analyse_bearing(
                     record, None, speed, geometry, unit=unit, band_hz=bearing_band_hz
@@ -250,7 +249,7 @@ def _order_key(order: float) -> str:
 
 
 def analysis_to_json(a: ReadingAnalysis) -> dict[str, Any]:
-    """JSON-ready dict of an analysis (the ``analyse --json`` record of DESIGN.md section 3).
+    """JSON-ready dict of an analysis (the ``analyse --json`` record; README.md, docs/bearings.md).
 
     Keys: machine, point, ts (ISO 8601 UTC), speed_hz, speed_source,
     speed_uncertainty_hz, overall_velocity_mm_s_rms, orders (order as a string such as

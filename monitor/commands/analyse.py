@@ -25,7 +25,8 @@ from monitor.io.ingest_limits import IngestLimits, Rejected
 from monitor.io.streams import DEFAULT_PREFIX, StreamError, read_stream
 from monitor.model.jsonsafe import jsonable
 from monitor.model.readings import SpeedReading, Waveform
-from monitor.model.registry import Registry, RegistryError, load_registry
+from monitor.model.registry import Registry, RegistryError
+from monitor.model.registry_file import load_registry
 from monitor.model.timefmt import iso_utc
 
 #: Largest gap (s) between a speed reading and a waveform for the speed to count as
@@ -104,7 +105,9 @@ def analyse_stream(
         yield analysis
 
 
-def _fmt(v: float | None, spec: str = ".3g") -> str:
+def format_or_dash(v: float | None, spec: str = ".3g") -> str:
+    """``v`` formatted with ``spec``, or ``-`` when there is none (None, NaN, inf): the
+    empty cell of every table the stream-file commands print."""
     return "-" if v is None or not math.isfinite(v) else format(v, spec)
 
 
@@ -114,8 +117,8 @@ def _table_row(a: ReadingAnalysis) -> str:
     src = "m" if a.speed_source == "measured" else "e"
     return (
         f"{iso_utc(a.ts, timespec='milliseconds'):24}  {a.machine + '/' + a.point:16}  {a.speed_hz:8.2f} {src}  "
-        f"{a.overall_velocity_mm_s_rms:8.2f}  {_fmt(one.amplitude if one else None):>8}  "
-        f"{_fmt(two.amplitude if two else None):>8}  {peaks}"
+        f"{a.overall_velocity_mm_s_rms:8.2f}  {format_or_dash(one.amplitude if one else None):>8}  "
+        f"{format_or_dash(two.amplitude if two else None):>8}  {peaks}"
     )
 
 
@@ -125,7 +128,8 @@ _HEADER = (
 )
 
 
-def _count_lines(path: Path) -> int:
+def count_lines(path: Path) -> int:
+    """Lines of ``path`` (the progress bar's length), read in 1 MiB chunks."""
     n = 0
     with path.open("rb") as fh:
         for chunk in iter(lambda: fh.read(1 << 20), b""):
@@ -153,7 +157,7 @@ def analyse(file: Path, machines_file: Path, as_json: bool, prefix: str) -> None
     except RegistryError as exc:
         raise click.ClickException(str(exc)) from exc
     try:
-        total = _count_lines(file)
+        total = count_lines(file)
     except OSError as exc:
         raise click.ClickException(f"cannot read stream file {str(file)!r}: {exc.strerror}.") from exc
     outcome = Outcome()

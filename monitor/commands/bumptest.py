@@ -18,6 +18,7 @@ raised for a mode that moved beyond the tolerance, cleared when a later test fin
 from __future__ import annotations
 
 import dataclasses
+import functools
 import json
 import math
 import sys
@@ -29,37 +30,29 @@ from typing import Any
 import click
 import numpy as np
 
-from monitor.commands.analyse import FILE_LIMITS, Outcome
+from monitor.commands.analyse import FILE_LIMITS, Outcome, count_lines, format_or_dash
 from monitor.commands.db import database_options, open_store
-from monitor.io.ingest import UNIT_QUANTITY, decode_message, parse_topic
+from monitor.commands.usage import usage_errors
+from monitor.io.ingest import decode_message, parse_topic
 from monitor.io.ingest_limits import Rejected
 from monitor.io.streams import DEFAULT_PREFIX, StreamError, read_stream
-from monitor.model import units
+from monitor.model import units, validate
 from monitor.model.jsonsafe import jsonable
 from monitor.model.readings import SpeedReading, Waveform
-from monitor.model.registry import Machine, Point, Registry, RegistryError, load_registry
-from monitor.modes.identify import (
+from monitor.model.registry import Machine, Point, Registry, RegistryError
+from monitor.model.registry_file import load_registry
+from monitor.modes.impact import BumpTest, bump_test
+from monitor.modes.shift import (
     DEFAULT_SHIFT_TOLERANCE_PCT,
-    BumpTest,
     ModeShift,
-    bump_test,
+    check_tolerance_pct,
     compare_modes,
 )
 
-#: Units a hammer (force) channel may carry.
-FORCE_UNITS = ("N", "kN", "lbf")
 #: Force and response blocks pair when their timestamps differ by at most this, s.
 PAIR_TOLERANCE_S = 1e-3
 # Placeholder the force channel is decoded under (ingest knows vibration units only).
 _FORCE_PLACEHOLDER = "m/s^2"
-
-
-def count_lines(path: Path) -> int:
-    n = 0
-    with path.open("rb") as fh:
-        for chunk in iter(lambda: fh.read(1 << 20), b""):
-            n += chunk.count(b"\n")
-    return n
 
 
 def _open_registry(machines_file: Path | None) -> Registry | None:
@@ -183,7 +176,7 @@ def read_hits(
                 force_unit = raw.get("unit") if isinstance(raw, dict) else None
             except ValueError:
                 raw = None
-            if isinstance(raw, dict) and force_unit in FORCE_UNITS:
+            if isinstance(raw, dict) and force_unit in units.FORCE_UNITS:
                 raw["unit"] = _FORCE_PLACEHOLDER
                 payload = json.dumps(raw, separators=(",", ":")).encode("utf-8")
             reg = _with_point(reg, m_id, Point(p_id, quantity="acceleration",
@@ -193,7 +186,7 @@ def read_hits(
                 unit = json.loads(payload).get("unit")
             except (ValueError, AttributeError):
                 unit = None
-            quantity = UNIT_QUANTITY.get(unit, "acceleration") if isinstance(unit, str) else (
+            quantity = units.UNIT_QUANTITY.get(unit, "acceleration") if isinstance(unit, str) else (
                 "acceleration")
             reg = _with_point(reg, m_id, Point(p_id, quantity=quantity,
                                                unit=units.BASE_UNIT[quantity]))
@@ -300,10 +293,6 @@ def result_json(r: PointResult) -> dict[str, Any]:
     })
 
 
-def _f(v: float | None, spec: str) -> str:
-    return "-" if v is None or not math.isfinite(v) else format(v, spec)
-
-
 def print_table(r: PointResult) -> None:
     t = r.test
     click.echo(
@@ -322,15 +311,20 @@ def print_table(r: PointResult) -> None:
         req = m.required_margin_pct()
         reqs = "-" if req is None else f"{req[0]:.1f} / {req[1]:.1f}"
         click.echo(
-            f"  {i:>2} {m.frequency_hz:9.3f} {_f(m.damping_ratio_half_power, '.4f'):>9} "
-            f"{_f(m.damping_ratio_decrement, '.4f'):>9} {fit:>15} "
-            f"{_f(m.amplification_factor, '.1f'):>9} "
-            f"{_f(m.amplification_factor_from_damping, '.1f'):>9} {reqs:>20} "
-            f"{_f(m.coherence, '.3f'):>5}"
+            f"  {i:>2} {m.frequency_hz:9.3f} {format_or_dash(m.damping_ratio_half_power, '.4f'):>9} "
+            f"{format_or_dash(m.damping_ratio_decrement, '.4f'):>9} {fit:>15} "
+            f"{format_or_dash(m.amplification_factor, '.1f'):>9} "
+            f"{format_or_dash(m.amplification_factor_from_damping, '.1f'):>9} {reqs:>20} "
+            f"{format_or_dash(m.coherence, '.3f'):>5}"
         )
-    for c in r.comparison:
+    print_comparison(r.comparison, "not found in this test")
+
+
+def print_comparison(comparison: tuple[ModeShift, ...], not_found: str) -> None:
+    """One line per stored mode: its shift, or ``not_found`` when nothing matched it."""
+    for c in comparison:
         if c.status == "not_found":
-            click.echo(f"  stored mode {c.mode!r} at {c.stored_hz:.3f} Hz: not found in this test.")
+            click.echo(f"  stored mode {c.mode!r} at {c.stored_hz:.3f} Hz: {not_found}.")
         else:
             click.echo(
                 f"  stored mode {c.mode!r} at {c.stored_hz:.3f} Hz -> {c.identified_hz:.3f} Hz: "
@@ -394,10 +388,10 @@ def bumptest(file: Path, machines_file: Path | None, machine_id: str | None,
     """Identify natural frequencies, damping (half-power and logarithmic decrement) and
     amplification factors from the impact-test hits in stream FILE (.jsonl)."""
     total = check_file(file)
-    if band is not None and not (0 <= band[0] < band[1] and all(map(math.isfinite, band))):
-        raise click.UsageError(f"--band must be two frequencies LO < HI in Hz, got {band!r}.")
-    if not (math.isfinite(tolerance_pct) and 0 < tolerance_pct < 100):
-        raise click.UsageError(f"--tolerance must lie between 0 and 100 %, got {tolerance_pct!r}.")
+    with usage_errors():
+        if band is not None:
+            validate.ordered_pair(band, "--band")
+        check_tolerance_pct(tolerance_pct, "--tolerance")
     registry, store = comparison_registry(record, machines_file, database_url, config_file)
     try:
         _bumptest(file, total, registry, store, machine_id, band, force_point, tolerance_pct,
@@ -432,6 +426,6 @@ def _bumptest(file: Path, total: int, registry: Registry | None, store: Any, mac
             transitions = record_comparison(
                 store, registry.machine(r.machine), r.comparison, r.ts, r.point,
                 {"source": "impact test", "file": file.name, "hits": r.hits_used})
-        emit_point(result_json(r) if as_json else None, lambda r=r: print_table(r), transitions,
+        emit_point(result_json(r) if as_json else None, functools.partial(print_table, r), transitions,
                    recording=store is not None)
     outcome.report("waveforms accepted")

@@ -35,7 +35,8 @@ def import_cmd(file: str, database_url: str | None, config_file: str | None, use
                replace: bool, dry_run: bool) -> None:
     """Add and update the machines, points and modes FILE names. What FILE leaves out is
     kept (e.g. modes added in the dashboard) unless --replace is given."""
-    from monitor.model.registry import RegistryError, load_registry, registry_warnings
+    from monitor.model.registry import RegistryError
+    from monitor.model.registry_file import load_registry, registry_warnings
     from monitor.store.registry_sync import import_registry
 
     try:
@@ -66,7 +67,7 @@ def import_cmd(file: str, database_url: str | None, config_file: str | None, use
 def export_cmd(file: str | None, database_url: str | None, config_file: str | None) -> None:
     """Write the registry as TOML to FILE (or standard output). Stored values outside the
     registry's bounds (left by an older release) are left out, each named on stderr."""
-    from monitor.model.registry import dump_registry
+    from monitor.model.registry_file import dump_registry
     from monitor.store.registry_sync import read_registry
 
     store = open_store(database_url, config_file)

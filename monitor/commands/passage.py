@@ -2,14 +2,14 @@
 
 Every waveform of the machine goes through the same analysis as ``whirlwatch analyse``
 (speed from the speed stream, or estimated from the spectrum); the 1x amplitude of each
-point against speed is the Bode plot's data, in which :func:`monitor.modes.identify.find_passages`
+point against speed is the Bode plot's data, in which :func:`monitor.modes.runup.find_passages`
 finds the critical speeds, their amplification factors (API 684) and, when the
 waveforms carry a once-per-revolution reference, the phase. The passages are compared
 with the stored modes and turned into drive skip bands, next to the skip bands of the
 stored modes.
 
 Stream files carry no once-per-revolution pulses, so the phase columns stay empty here;
-the API (:func:`monitor.modes.identify.order_point` with ``reference_s``) gives phase when a
+the API (:func:`monitor.modes.runup.order_point` with ``reference_s``) gives phase when a
 reference exists.
 
 With ``--record`` the registry comes from the database and the comparison with the stored
@@ -19,6 +19,7 @@ modes is recorded there as ``mode_shift`` alarms (monitor/service/mode_findings.
 from __future__ import annotations
 
 import dataclasses
+import functools
 import math
 import sys
 from collections import defaultdict
@@ -29,27 +30,27 @@ import click
 import numpy as np
 
 from monitor.analysis.waveform import ReadingAnalysis
-from monitor.commands.analyse import Outcome, analyse_stream
+from monitor.commands.analyse import Outcome, analyse_stream, format_or_dash
 from monitor.commands.bumptest import (
     check_file,
     comparison_registry,
     emit_point,
+    print_comparison,
     record_comparison,
 )
 from monitor.commands.db import database_options
+from monitor.commands.usage import usage_errors
+from monitor.model import validate
 from monitor.model.jsonsafe import jsonable
 from monitor.model.registry import Machine
-from monitor.modes.identify import (
+from monitor.modes.runup import BodeData, Passage, bode_data, find_passages
+from monitor.modes.shift import (
     DEFAULT_SHIFT_TOLERANCE_PCT,
-    BodeData,
     ModeShift,
-    Passage,
-    SkipBand,
-    bode_data,
+    check_tolerance_pct,
     compare_modes,
-    find_passages,
-    machine_skip_bands,
 )
+from monitor.modes.skip_bands import SkipBand, machine_skip_bands
 
 AMPLITUDES = ("velocity", "displacement", "native")
 
@@ -109,10 +110,6 @@ def _bands_text(bands: tuple[SkipBand, ...]) -> str:
                      for b in bands)
 
 
-def _f(v: float | None, spec: str) -> str:
-    return "-" if v is None or not math.isfinite(v) else format(v, spec)
-
-
 def print_table(r: PointPassages) -> None:
     b = r.bode
     click.echo(
@@ -129,18 +126,11 @@ def print_table(r: PointPassages) -> None:
               f"{p.half_power_speeds_hz[0] * 60:.0f}-{p.half_power_speeds_hz[1] * 60:.0f}")
         click.echo(
             f"  {i:>2} {p.critical_speed_rpm:9.1f} {p.critical_speed_hz:8.3f} "
-            f"{p.peak_amplitude:10.4g} {hp:>15} {_f(p.amplification_factor, '.1f'):>6} "
-            f"{_f(p.damping_ratio, '.4f'):>7} {_f(p.phase_at_peak_deg, '.1f'):>9} "
-            f"{_f(p.phase_change_deg, '.1f'):>7}"
+            f"{p.peak_amplitude:10.4g} {hp:>15} {format_or_dash(p.amplification_factor, '.1f'):>6} "
+            f"{format_or_dash(p.damping_ratio, '.4f'):>7} {format_or_dash(p.phase_at_peak_deg, '.1f'):>9} "
+            f"{format_or_dash(p.phase_change_deg, '.1f'):>7}"
         )
-    for c in r.comparison:
-        if c.status == "not_found":
-            click.echo(f"  stored mode {c.mode!r} at {c.stored_hz:.3f} Hz: no passage near it.")
-        else:
-            click.echo(
-                f"  stored mode {c.mode!r} at {c.stored_hz:.3f} Hz -> {c.identified_hz:.3f} Hz: "
-                f"{c.shift_pct:+.1f} % ({c.status}, tolerance {c.tolerance_pct:g} %)"
-            )
+    print_comparison(r.comparison, "no passage near it")
     click.echo(f"  skip bands from these passages: {_bands_text(r.skip_identified)}")
 
 
@@ -190,12 +180,11 @@ def passage(file: Path, machines_file: Path | None, machine_id: str, amplitude: 
     """Find the resonance passages (critical speeds, amplification factors, phase) in the
     run-up or coast-down stream FILE (.jsonl), with drive skip bands."""
     total = check_file(file)
-    if not (math.isfinite(tolerance_pct) and 0 < tolerance_pct < 100):
-        raise click.UsageError(f"--tolerance must lie between 0 and 100 %, got {tolerance_pct!r}.")
-    if not (math.isfinite(prominence) and 0 < prominence < 1):
-        raise click.UsageError(f"--prominence must lie between 0 and 1, got {prominence!r}.")
-    if min_speed_rpm is not None and not (math.isfinite(min_speed_rpm) and min_speed_rpm >= 0):
-        raise click.UsageError(f"--min-speed must be a speed >= 0 in r/min, got {min_speed_rpm!r}.")
+    with usage_errors():
+        check_tolerance_pct(tolerance_pct, "--tolerance")
+        validate.in_range(prominence, "--prominence", 0.0, 1.0)
+        if min_speed_rpm is not None:
+            validate.non_negative(min_speed_rpm, "--min-speed")
     if not record and machines_file is None:
         raise click.UsageError("--machines REGISTRY is required (or --record to use the database's).")
     registry, store = comparison_registry(record, machines_file, database_url, config_file)
@@ -251,7 +240,7 @@ def _passage(file: Path, total: int, registry: Any, machine: Machine, amplitude:
         transitions = record_comparison(store, machine, r.comparison, r.ts, point,
                                         {"source": "run-up/coast-down", "file": file.name,
                                          "readings": r.readings})
-        emit_point(result_json(r, stored_bands) if as_json else None, lambda r=r: print_table(r),
+        emit_point(result_json(r, stored_bands) if as_json else None, functools.partial(print_table, r),
                    transitions, recording=store is not None)
     if not as_json:
         click.echo(f"skip bands from the stored modes: {_bands_text(stored_bands)}")

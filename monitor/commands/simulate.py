@@ -28,21 +28,23 @@ from typing import Any
 import click
 import numpy as np
 
+from monitor.commands.usage import usage_errors
 from monitor.io.streams import DEFAULT_PREFIX, reading_message, write_stream
+from monitor.model import validate
+from monitor.model.bearing_geometry import BearingGeometry
 from monitor.model.readings import SpeedReading, Waveform
-from monitor.model.registry import Machine, Mode, Point, Registry, dump_registry
+from monitor.model.registry import Machine, Mode, Point, Registry
+from monitor.model.registry_file import dump_registry
+from monitor.sim.faults import SensorFault, grown_unbalance
 from monitor.sim.simulate import (
     BearingDefect,
-    BearingGeometry,
     MachineModel,
     ModalMode,
-    SensorFault,
-    SpeedProfile,
-    grown_unbalance,
     point_inertance,
     simulate_reading,
     simulate_run,
 )
+from monitor.sim.speed_profile import SpeedProfile
 
 #: Start of the plant scenario (a Monday), epoch seconds UTC.
 PLANT_START = _dt.datetime(2026, 3, 2, tzinfo=_dt.UTC).timestamp()
@@ -442,10 +444,10 @@ def simulate(
             )
         registry_name = "plant.toml"
     else:
-        if not (0 < speed_hz <= 500):
-            raise click.UsageError(f"--speed-hz must lie in (0, 500] Hz, got {speed_hz}.")
-        if not (5.0 <= duration_s <= 3600.0):
-            raise click.UsageError(f"--duration must lie in [5, 3600] s, got {duration_s}.")
+        with usage_errors():
+            validate.in_range(speed_hz, "--speed-hz", 0.0, 500.0, high_open=False, unit=" Hz")
+            validate.in_range(duration_s, "--duration", 5.0, 3600.0, low_open=False,
+                              high_open=False, unit=" s")
         plans = [_rig(scenario, speed_hz, duration_s)]
         registry_name = "rig.toml"
     if broker is not None:

@@ -62,9 +62,10 @@ from monitor.detection.state_json import (
     value_out,
 )
 from monitor.detection.zones import ZoneLimits, zone_limits, zone_of
+from monitor.model.bounds import check_machine
 from monitor.model.readings import SpeedReading, Waveform
-from monitor.model.registry import Machine, Registry, check_machine
-from monitor.modes.identify import ModeShift
+from monitor.model.registry import Machine, Registry
+from monitor.modes.shift import ModeShift
 
 #: Why an alarm closes when what it watches leaves the registry: the ``reason`` of its
 #: ``cleared`` transition's evidence (docs/alarms.md, "Alarms of what leaves the registry").
@@ -496,7 +497,7 @@ class MachineEvaluator:
     def observe_mode_findings(self, findings: Sequence[ModeShift], ts: float, *, point: str | None = None,
                               evidence: Mapping[str, Any] | None = None) -> list[Transition]:
         """Mode-shift alarms from the comparison of an impact test or a run-up/coast-down
-        with the stored modes (:func:`monitor.modes.identify.compare_modes`), at ``ts`` (epoch s).
+        with the stored modes (:func:`monitor.modes.shift.compare_modes`), at ``ts`` (epoch s).
 
         A mode that moved beyond the tolerance raises (or keeps) its alarm at once: one test
         is one reading, so persistence does not apply. Severity ``advisory`` beyond the

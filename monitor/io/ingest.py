@@ -27,7 +27,8 @@ import numpy as np
 
 from monitor.io.ingest_limits import IngestLimits, Rejected
 from monitor.model.readings import SpeedReading, Waveform
-from monitor.model.registry import QUANTITIES, UNITS_BY_QUANTITY, Registry
+from monitor.model.registry import Registry
+from monitor.model.units import UNIT_QUANTITY
 
 _b64decode: Callable[..., bytes]
 try:  # SIMD base64 (~100x faster on an 87 kB block); the standard library otherwise
@@ -36,9 +37,6 @@ try:  # SIMD base64 (~100x faster on an 87 kB block); the standard library other
     _b64decode = pybase64.b64decode
 except ImportError:  # pragma: no cover - pybase64 is a dependency, this is a fallback
     _b64decode = base64.b64decode
-
-#: Every unit a waveform may carry, and the quantity it measures.
-UNIT_QUANTITY: dict[str, str] = {u: q for q in QUANTITIES for u in UNITS_BY_QUANTITY[q]}
 
 #: The ``point`` argument passed to ``last_ts`` for speed readings (no point id is empty).
 SPEED_STREAM = ""

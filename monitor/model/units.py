@@ -1,9 +1,12 @@
-"""Vibration units: acceleration, velocity and displacement, and sinusoid amplitude measures.
+"""Vibration units: the one unit table, conversions, and sinusoid amplitude measures.
 
-Units (DESIGN.md section 3): acceleration ``m/s^2`` and ``g``, velocity ``mm/s`` and
-``in/s``, displacement ``um`` and ``mil``. Conversions stay within one quantity; moving
-between quantities (integration, differentiation) is a frequency-domain operation that
-lives in :mod:`monitor.analysis.spectrum`.
+Units (docs/mqtt.md, docs/registry.md): acceleration ``m/s^2`` and ``g``, velocity
+``mm/s`` and ``in/s``, displacement ``um`` and ``mil``. Every unit check of the code reads
+this table: the registry's point units, the ingest of readings, the analysis, the
+simulator's output units. Conversions stay within one quantity; moving between
+quantities (integration, differentiation) is a frequency-domain operation that lives in
+:mod:`monitor.analysis.spectrum`. A hammer's force channel carries one of
+:data:`FORCE_UNITS` (a label only: the impact test never converts force).
 
 Amplitude measures of a sinusoid: ``peak``, ``rms`` (peak / sqrt 2) and ``peak-to-peak``
 (2 x peak).
@@ -18,15 +21,18 @@ Standard acceleration of gravity g = 9.80665 m/s^2 exactly (3rd CGPM, 1901; SI B
 from __future__ import annotations
 
 import math
+from typing import Literal
 
 import numpy as np
 from numpy.typing import ArrayLike
 from scipy import constants
 
-QUANTITIES = ("acceleration", "velocity", "displacement")
+Quantity = Literal["acceleration", "velocity", "displacement"]
+QUANTITIES: tuple[Quantity, ...] = ("acceleration", "velocity", "displacement")
 
-#: unit -> (quantity, factor to the quantity's base unit). Bases: m/s^2, mm/s, um.
-_UNITS: dict[str, tuple[str, float]] = {
+#: unit -> (quantity, factor to the quantity's base unit). Bases: m/s^2, mm/s, um. The
+#: first unit of each quantity is its base unit.
+_UNITS: dict[str, tuple[Quantity, float]] = {
     "m/s^2": ("acceleration", 1.0),
     "g": ("acceleration", constants.g),
     "mm/s": ("velocity", 1.0),
@@ -35,25 +41,51 @@ _UNITS: dict[str, tuple[str, float]] = {
     "mil": ("displacement", constants.inch * 1e6 * 1e-3),  # 1 mil = 0.001 in = 25.4 um
 }
 UNITS = tuple(_UNITS)
-BASE_UNIT = {"acceleration": "m/s^2", "velocity": "mm/s", "displacement": "um"}
+#: Every unit a waveform may carry, and the quantity it measures.
+UNIT_QUANTITY: dict[str, Quantity] = {u: q for u, (q, _) in _UNITS.items()}
+#: The units of each quantity, its base unit first.
+UNITS_BY_QUANTITY: dict[Quantity, tuple[str, ...]] = {
+    q: tuple(u for u, (uq, _) in _UNITS.items() if uq == q) for q in QUANTITIES
+}
+BASE_UNIT: dict[Quantity, str] = {q: UNITS_BY_QUANTITY[q][0] for q in QUANTITIES}
+#: quantity -> factor from its SI unit (m/s^2, m/s, m) to its base unit (m/s^2, mm/s, um).
+_SI_TO_BASE: dict[Quantity, float] = {"acceleration": 1.0, "velocity": 1e3, "displacement": 1e6}
+#: Units a hammer (force) channel may carry.
+FORCE_UNITS = ("N", "kN", "lbf")
 AMPLITUDE_KINDS = ("peak", "rms", "peak-to-peak")
 _TO_PEAK = {"peak": 1.0, "rms": math.sqrt(2.0), "peak-to-peak": 0.5}
 
 
-def _check_unit(unit: object, name: str) -> str:
+def check_unit(unit: object, name: str = "unit") -> str:
+    """``unit`` when it is a vibration unit of the table; ValueError naming ``name``, the
+    value and the allowed units otherwise."""
     if unit not in _UNITS:
         raise ValueError(f"{name} {unit!r} is not a known unit; allowed: {', '.join(UNITS)}.")
-    return unit  # type: ignore[return-value]
+    return unit  # type: ignore[return-value]  # a key of _UNITS is a str
 
 
-def quantity_of(unit: str) -> str:
+def check_quantity(quantity: object, name: str = "quantity") -> Quantity:
+    """``quantity`` when it is ``acceleration``, ``velocity`` or ``displacement``;
+    ValueError naming ``name`` and the value otherwise."""
+    if quantity not in QUANTITIES:
+        raise ValueError(f"{name} must be one of {QUANTITIES}, got {quantity!r}.")
+    return quantity  # type: ignore[return-value]  # a member of QUANTITIES
+
+
+def quantity_of(unit: str) -> Quantity:
     """Return the quantity (``acceleration``, ``velocity``, ``displacement``) of ``unit``."""
-    return _UNITS[_check_unit(unit, "unit")][0]
+    return _UNITS[check_unit(unit)][0]
 
 
 def to_base_factor(unit: str) -> float:
     """Factor that turns a value in ``unit`` into the quantity's base unit (m/s^2, mm/s, um)."""
-    return _UNITS[_check_unit(unit, "unit")][1]
+    return _UNITS[check_unit(unit)][1]
+
+
+def from_si_factor(unit: str) -> float:
+    """Factor that turns a value of ``unit``'s quantity in SI (m/s^2, m/s, m) into ``unit``."""
+    quantity, factor = _UNITS[check_unit(unit)]
+    return _SI_TO_BASE[quantity] / factor
 
 
 def convert(values: ArrayLike, from_unit: str, to_unit: str) -> np.ndarray | float:
@@ -76,8 +108,8 @@ def convert(values: ArrayLike, from_unit: str, to_unit: str) -> np.ndarray | flo
     ValueError
         Unknown unit, or units of different quantities.
     """
-    q_from, f_from = _UNITS[_check_unit(from_unit, "from_unit")]
-    q_to, f_to = _UNITS[_check_unit(to_unit, "to_unit")]
+    q_from, f_from = _UNITS[check_unit(from_unit, "from_unit")]
+    q_to, f_to = _UNITS[check_unit(to_unit, "to_unit")]
     if q_from != q_to:
         raise ValueError(
             f"to_unit {to_unit!r} measures {q_to} but from_unit {from_unit!r} measures "
@@ -136,7 +168,7 @@ def velocity_mm_s_from(amplitude: ArrayLike, unit: str, freq_hz: ArrayLike) -> n
     ----------
     V = A / (j 2 pi f), V = j 2 pi f D for a sinusoid (any vibration handbook).
     """
-    quantity, factor = _UNITS[_check_unit(unit, "unit")]
+    quantity, factor = _UNITS[check_unit(unit)]
     a = np.asarray(amplitude, dtype=float) * factor
     omega = 2.0 * np.pi * np.asarray(freq_hz, dtype=float)
     if quantity == "velocity":

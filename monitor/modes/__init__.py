@@ -1,1 +1,15 @@
-"""Natural frequencies (pure): impact tests, run-up and coast-down passages, mode shift, skip bands."""
+"""Natural frequencies (pure): arrays and dataclasses in, frozen dataclasses out.
+
+Four jobs, one module each:
+
+- :mod:`monitor.modes.impact`: impact (bump) tests, built on the frequency response
+  (:mod:`monitor.modes.frequency_response`) and the damping estimates
+  (:mod:`monitor.modes.damping`: logarithmic decrement, SDOF curve fit);
+- :mod:`monitor.modes.runup`: run-up and coast-down passages (Bode data, critical speeds);
+- :mod:`monitor.modes.shift`: identified frequencies against the stored modes;
+- :mod:`monitor.modes.skip_bands`: drive speed bands to skip.
+
+:mod:`monitor.modes.peaks` (half-power points, parabolic vertex) serves the first two.
+Frequencies in Hz, speeds in Hz (rev/s) unless the name says ``rpm`` (r/min); damping
+ratio ``zeta`` as a fraction of critical damping. docs/modes.md describes the methods.
+"""

@@ -20,7 +20,7 @@ from sqlalchemy import select
 from monitor.detection.alarms import Transition
 from monitor.detection.evaluator import evaluator_from_state, stored_state
 from monitor.model.registry import Machine
-from monitor.modes.identify import ModeShift
+from monitor.modes.shift import ModeShift
 from monitor.store import Store
 from monitor.store.models import DetectorState
 from monitor.store.writes import record_transitions, save_detector_states

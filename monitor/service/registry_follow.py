@@ -25,7 +25,8 @@ from typing import Any
 from sqlalchemy import select
 
 from monitor.detection.evaluator import MachineEvaluator, stored_state
-from monitor.model.registry import Machine, Registry, load_registry, registry_warnings
+from monitor.model.registry import Machine, Registry
+from monitor.model.registry_file import load_registry, registry_warnings
 from monitor.store import Store
 from monitor.store.models import DetectorState, utcnow
 from monitor.store.registry_sync import (

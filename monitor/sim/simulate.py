@@ -25,15 +25,17 @@ Everything here is pure and deterministic for a given seed: numbers in, arrays a
 
 Main entry points
 -----------------
-``sdof_response``       one mode driven by a force per unit mass (the physics check).
 ``simulate_signal``     a continuous record at one point for a given speed history.
 ``simulate_reading``    one steady-speed :class:`~monitor.model.readings.Waveform` (warm-up
                         discarded), e.g. for trend scenarios spread over weeks.
-``simulate_run``        a continuous run along a :class:`SpeedProfile`, cut into
+``simulate_run``        a continuous run along a
+                        :class:`~monitor.sim.speed_profile.SpeedProfile`, cut into
                         waveform blocks plus :class:`~monitor.model.readings.SpeedReading` s.
-``apply_sensor_fault``  flat line, clipping, spikes or dropouts on a finished block.
-``grown_unbalance``     unbalance ``m*e`` after linear or exponential growth over days.
 ``point_inertance``     closed-form steady-state acceleration per newton at a point.
+
+Beside it: :mod:`monitor.sim.sdof` (one mode, the physics check), :mod:`monitor.sim.speed_profile`
+(speed against time), :mod:`monitor.sim.faults` (sensor faults, unbalance growth). Bearing
+defect frequencies come from :class:`monitor.model.bearing_geometry.BearingGeometry`.
 
 References
 ----------
@@ -49,49 +51,15 @@ from __future__ import annotations
 import math
 from collections.abc import Iterator, Mapping, Sequence
 from dataclasses import dataclass, field, replace
-from typing import Literal
 
 import numpy as np
-from scipy import signal
-from scipy.constants import g as STANDARD_GRAVITY
 from scipy.integrate import cumulative_trapezoid
 
+from monitor.model import units, validate
 from monitor.model.readings import SpeedReading, Waveform
-
-Output = Literal["displacement", "velocity", "acceleration"]
-_OUTPUTS = ("displacement", "velocity", "acceleration")
-_UNIT_SCALE = {  # SI quantity -> unit
-    "m/s^2": 1.0,
-    "g": 1.0 / STANDARD_GRAVITY,
-    "mm/s": 1e3,
-    "in/s": 1.0 / 0.0254,
-    "um": 1e6,
-    "mil": 1.0 / 25.4e-6,
-}
-_UNIT_QUANTITY = {
-    "m/s^2": "acceleration",
-    "g": "acceleration",
-    "mm/s": "velocity",
-    "in/s": "velocity",
-    "um": "displacement",
-    "mil": "displacement",
-}
-
-
-def _check_positive(name: str, value: float, *, allow_zero: bool = False) -> float:
-    v = float(value)
-    if not math.isfinite(v) or v < 0 or (v == 0 and not allow_zero):
-        allowed = "a finite number >= 0" if allow_zero else "a finite number > 0"
-        raise ValueError(f"{name} must be {allowed}, got {value!r}.")
-    return v
-
-
-def _check_damping(name: str, value: float) -> float:
-    v = float(value)
-    if not 0.0 < v < 1.0:
-        raise ValueError(f"{name} must lie in (0, 1), got {value!r}.")
-    return v
-
+from monitor.sim.faults import SensorFault, apply_sensor_fault
+from monitor.sim.sdof import sdof_response
+from monitor.sim.speed_profile import SpeedProfile
 
 # ----------------------------------------------------------------------------- model
 
@@ -129,67 +97,14 @@ class ModalMode:
 
 
 @dataclass(frozen=True)
-class BearingGeometry:
-    """Rolling-element bearing geometry; defect frequencies as multiples of shaft speed.
-
-    ``n_elements`` rolling elements of diameter ``ball_diameter`` on pitch diameter
-    ``pitch_diameter`` (any one length unit), contact angle ``contact_angle_deg``.
-    Outer race stationary, inner race turning with the shaft.
-
-    References: Randall and Antoni (2011), section 2.
-    """
-
-    n_elements: int
-    ball_diameter: float
-    pitch_diameter: float
-    contact_angle_deg: float = 0.0
-
-    def __post_init__(self) -> None:
-        if int(self.n_elements) < 1:
-            raise ValueError(f"n_elements must be >= 1, got {self.n_elements!r}.")
-        _check_positive("ball_diameter", self.ball_diameter)
-        _check_positive("pitch_diameter", self.pitch_diameter)
-        if not self.ball_diameter < self.pitch_diameter:
-            raise ValueError(
-                f"ball_diameter must be below pitch_diameter, got {self.ball_diameter!r} "
-                f">= {self.pitch_diameter!r}."
-            )
-
-    @property
-    def _ratio(self) -> float:
-        return self.ball_diameter / self.pitch_diameter * math.cos(
-            math.radians(self.contact_angle_deg)
-        )
-
-    @property
-    def ftf_order(self) -> float:
-        """Cage (fundamental train) frequency / shaft speed."""
-        return 0.5 * (1.0 - self._ratio)
-
-    @property
-    def bpfo_order(self) -> float:
-        """Ball pass frequency, outer race / shaft speed."""
-        return 0.5 * self.n_elements * (1.0 - self._ratio)
-
-    @property
-    def bpfi_order(self) -> float:
-        """Ball pass frequency, inner race / shaft speed."""
-        return 0.5 * self.n_elements * (1.0 + self._ratio)
-
-    @property
-    def bsf_order(self) -> float:
-        """Ball (roller) spin frequency / shaft speed."""
-        return self.pitch_diameter / (2.0 * self.ball_diameter) * (1.0 - self._ratio**2)
-
-
-@dataclass(frozen=True)
 class BearingDefect:
     """A localised bearing defect: periodic impacts ringing a high-frequency resonance.
 
     Attributes
     ----------
     order : float
-        Impact rate as a multiple of shaft speed, e.g. ``BearingGeometry.bpfo_order``.
+        Impact rate as a multiple of shaft speed, e.g.
+        :attr:`monitor.model.bearing_geometry.BearingGeometry.bpfo_order`.
     impact_peak_m_s2 : float
         Peak acceleration of one impact's ringing at ``reference_hz`` shaft speed, m/s^2;
         scales with speed squared (impact velocity squared, common practice).
@@ -286,90 +201,19 @@ class MachineModel:
 
 def _validate_model(model: MachineModel) -> None:
     for i, m in enumerate(model.all_modes()):
-        _check_positive(f"modes[{i}].frequency_hz", m.frequency_hz)
-        _check_damping(f"modes[{i}].damping_ratio", m.damping_ratio)
-        _check_positive(f"modes[{i}].modal_mass_kg", m.modal_mass_kg)
-    _check_positive("unbalance_kg_m", model.unbalance_kg_m, allow_zero=True)
-    _check_positive("force_noise_n", model.force_noise_n, allow_zero=True)
-    _check_positive("sensor_noise_m_s2", model.sensor_noise_m_s2, allow_zero=True)
+        validate.positive(m.frequency_hz, f"modes[{i}].frequency_hz")
+        validate.in_range(m.damping_ratio, f"modes[{i}].damping_ratio", 0.0, 1.0)
+        validate.positive(m.modal_mass_kg, f"modes[{i}].modal_mass_kg")
+    validate.non_negative(model.unbalance_kg_m, "unbalance_kg_m")
+    validate.non_negative(model.force_noise_n, "force_noise_n")
+    validate.non_negative(model.sensor_noise_m_s2, "sensor_noise_m_s2")
     if model.bearing is not None:
-        _check_positive("bearing.order", model.bearing.order)
-        _check_positive("bearing.resonance_hz", model.bearing.resonance_hz)
-        _check_damping("bearing.resonance_damping", model.bearing.resonance_damping)
+        validate.positive(model.bearing.order, "bearing.order")
+        validate.positive(model.bearing.resonance_hz, "bearing.resonance_hz")
+        validate.in_range(model.bearing.resonance_damping, "bearing.resonance_damping", 0.0, 1.0)
 
 
-# ----------------------------------------------------------------------------- SDOF
-
-
-def _sdof_filter(
-    fs_hz: float, frequency_hz: float, damping_ratio: float, output: Output
-) -> tuple[np.ndarray, np.ndarray]:
-    w = 2.0 * math.pi * frequency_hz
-    a_c = np.array([[0.0, 1.0], [-w * w, -2.0 * damping_ratio * w]])
-    b_c = np.array([[0.0], [1.0]])
-    c_c = {
-        "displacement": np.array([[1.0, 0.0]]),
-        "velocity": np.array([[0.0, 1.0]]),
-        "acceleration": np.array([[-w * w, -2.0 * damping_ratio * w]]),
-    }[output]
-    d_c = np.array([[1.0 if output == "acceleration" else 0.0]])
-    # First-order hold is exact for a piecewise-linear input, so a sampled smooth force
-    # keeps its phase (zero-order hold would lag by half a sample).
-    ad, bd, cd, dd, _ = signal.cont2discrete((a_c, b_c, c_c, d_c), 1.0 / fs_hz, method="foh")
-    b, a = signal.ss2tf(ad, bd, cd, dd)
-    return np.asarray(b[0], dtype=float), np.asarray(a, dtype=float)
-
-
-def sdof_response(
-    force_per_mass: np.ndarray,
-    fs_hz: float,
-    frequency_hz: float,
-    damping_ratio: float,
-    output: Output = "displacement",
-) -> np.ndarray:
-    """Response of a damped SDOF oscillator started at rest, integrated in the time domain.
-
-    Solves ``x'' + 2 zeta omega_n x' + omega_n^2 x = u(t)`` with ``u`` = force / mass
-    (m/s^2) sampled at ``fs_hz``, using the exact first-order-hold discretisation of the
-    state equations run as a recursive filter.
-
-    Parameters
-    ----------
-    force_per_mass : array
-        Force divided by (modal) mass, m/s^2, one value per sample.
-    fs_hz : float
-        Sample rate, Hz.
-    frequency_hz : float
-        Undamped natural frequency, Hz.
-    damping_ratio : float
-        0 < zeta < 1.
-    output : {'displacement', 'velocity', 'acceleration'}
-        Returned quantity: m, m/s or m/s^2 (absolute acceleration x'').
-
-    Returns
-    -------
-    numpy.ndarray of the same length.
-
-    References
-    ----------
-    W. T. Thomson, Theory of Vibration with Applications: forced harmonic vibration; the
-    steady state is x = (u0/omega_n^2) H(r) cos(Omega t - phi) with
-    H = 1/sqrt((1-r^2)^2 + (2 zeta r)^2), phi = atan2(2 zeta r, 1 - r^2).
-    """
-    u = np.asarray(force_per_mass, dtype=float)
-    if u.ndim != 1:
-        raise ValueError(f"force_per_mass must be a 1-D array, got shape {u.shape}.")
-    fs_hz = _check_positive("fs_hz", fs_hz)
-    frequency_hz = _check_positive("frequency_hz", frequency_hz)
-    if frequency_hz >= fs_hz / 2:
-        raise ValueError(
-            f"frequency_hz must be below the Nyquist frequency {fs_hz / 2} Hz, got {frequency_hz!r}."
-        )
-    damping_ratio = _check_damping("damping_ratio", damping_ratio)
-    if output not in _OUTPUTS:
-        raise ValueError(f"output must be one of {_OUTPUTS}, got {output!r}.")
-    b, a = _sdof_filter(fs_hz, frequency_hz, damping_ratio, output)
-    return signal.lfilter(b, a, u)
+# ----------------------------------------------------------------------------- response
 
 
 def point_inertance(model: MachineModel, point: str, freq_hz: np.ndarray | float) -> np.ndarray:
@@ -387,109 +231,6 @@ def point_inertance(model: MachineModel, point: str, freq_hz: np.ndarray | float
             wn * wn - w * w + 2j * m.damping_ratio * wn * w
         )
     return out
-
-
-# ----------------------------------------------------------------------------- speed
-
-
-@dataclass(frozen=True)
-class SpeedProfile:
-    """Running speed against time, piecewise linear between breakpoints.
-
-    ``times_s`` (s from the start, increasing, first 0) and ``speeds_hz`` (Hz, >= 0).
-    Build with :meth:`steady`, :meth:`ramp`, :meth:`steps`, :meth:`run_up`,
-    :meth:`coast_down`; join with :meth:`then`.
-    """
-
-    times_s: tuple[float, ...]
-    speeds_hz: tuple[float, ...]
-
-    def __post_init__(self) -> None:
-        t = np.asarray(self.times_s, dtype=float)
-        s = np.asarray(self.speeds_hz, dtype=float)
-        if t.size < 2 or t.size != s.size:
-            raise ValueError(
-                f"times_s and speeds_hz must have the same length >= 2, got {t.size} and {s.size}."
-            )
-        if t[0] != 0.0 or np.any(np.diff(t) <= 0):
-            raise ValueError("times_s must start at 0 and increase strictly.")
-        if not np.all(np.isfinite(s)) or np.any(s < 0):
-            raise ValueError("speeds_hz must be finite and >= 0.")
-
-    @property
-    def duration_s(self) -> float:
-        return float(self.times_s[-1])
-
-    def speed_at(self, t_s: np.ndarray | float) -> np.ndarray:
-        """Speed (Hz) at times ``t_s`` (s from the start); held constant past the end."""
-        return np.asarray(np.interp(t_s, self.times_s, self.speeds_hz))
-
-    @classmethod
-    def steady(cls, speed_hz: float, duration_s: float) -> SpeedProfile:
-        """Constant speed, Hz, for ``duration_s`` s."""
-        return cls((0.0, float(duration_s)), (float(speed_hz), float(speed_hz)))
-
-    @classmethod
-    def ramp(cls, start_hz: float, end_hz: float, duration_s: float) -> SpeedProfile:
-        """Linear change from ``start_hz`` to ``end_hz`` over ``duration_s`` s."""
-        return cls((0.0, float(duration_s)), (float(start_hz), float(end_hz)))
-
-    @classmethod
-    def steps(
-        cls, setpoints_hz: Sequence[float], dwell_s: float, ramp_hz_per_s: float
-    ) -> SpeedProfile:
-        """Drive set-point steps: dwell ``dwell_s`` s at each set-point, moving between
-        them at the drive's ramp rate ``ramp_hz_per_s`` (Hz/s)."""
-        _check_positive("dwell_s", dwell_s)
-        _check_positive("ramp_hz_per_s", ramp_hz_per_s)
-        if not setpoints_hz:
-            raise ValueError("setpoints_hz must list at least one speed.")
-        times, speeds = [0.0], [float(setpoints_hz[0])]
-        for nxt in setpoints_hz[1:]:
-            times.append(times[-1] + dwell_s)
-            speeds.append(speeds[-1])
-            dt = abs(float(nxt) - speeds[-1]) / ramp_hz_per_s
-            if dt > 0:
-                times.append(times[-1] + dt)
-                speeds.append(float(nxt))
-        times.append(times[-1] + dwell_s)
-        speeds.append(speeds[-1])
-        return cls(tuple(times), tuple(speeds))
-
-    @classmethod
-    def run_up(cls, top_hz: float, duration_s: float, start_hz: float = 0.0) -> SpeedProfile:
-        """Run-up at constant acceleration from ``start_hz`` to ``top_hz`` in ``duration_s`` s."""
-        return cls.ramp(start_hz, top_hz, duration_s)
-
-    @classmethod
-    def coast_down(
-        cls, start_hz: float, duration_s: float, friction_share: float = 0.2, points: int = 200
-    ) -> SpeedProfile:
-        """Coast-down to rest in ``duration_s`` s under constant friction plus a load
-        torque growing with speed squared (fans, pumps).
-
-        ``friction_share`` is the friction part of the decelerating torque at the start
-        (0-1). With d(Omega)/dt = -a - b Omega^2 the speed is
-        ``Omega(t) = sqrt(a/b) tan(atan(Omega0 sqrt(b/a)) - sqrt(ab) t)``.
-        """
-        _check_positive("start_hz", start_hz)
-        _check_positive("duration_s", duration_s)
-        if not 0.0 < friction_share < 1.0:
-            raise ValueError(f"friction_share must lie in (0, 1), got {friction_share!r}.")
-        rho = friction_share / (1.0 - friction_share)
-        phi0 = math.atan(1.0 / math.sqrt(rho))
-        t = np.linspace(0.0, duration_s, points)
-        f = start_hz * math.sqrt(rho) * np.tan(phi0 - phi0 * t / duration_s)
-        f[-1] = 0.0
-        return cls(tuple(t.tolist()), tuple(np.maximum(f, 0.0).tolist()))
-
-    def then(self, other: SpeedProfile) -> SpeedProfile:
-        """This profile followed by ``other`` (shifted to start where this one ends)."""
-        t0 = self.duration_s
-        return SpeedProfile(
-            self.times_s + tuple(t0 + t for t in other.times_s[1:]),
-            self.speeds_hz + tuple(other.speeds_hz[1:]),
-        )
 
 
 # ----------------------------------------------------------------------------- forces
@@ -556,7 +297,7 @@ def _bearing_impacts(
 
 
 def _to_unit(si: np.ndarray, unit: str) -> np.ndarray:
-    return si * _UNIT_SCALE[unit]
+    return si * units.from_si_factor(unit)
 
 
 def simulate_signal(
@@ -598,14 +339,13 @@ def simulate_signal(
     numpy.ndarray, float64, same length as ``speed_hz``, in ``unit``.
     """
     _validate_model(model)
-    fs_hz = _check_positive("fs_hz", fs_hz)
+    fs_hz = validate.sample_rate_hz(fs_hz)
     speed = np.asarray(speed_hz, dtype=float)
     if speed.ndim != 1 or speed.size == 0:
         raise ValueError(f"speed_hz must be a non-empty 1-D array, got shape {speed.shape}.")
     if not np.all(np.isfinite(speed)) or np.any(speed < 0):
         raise ValueError("speed_hz must be finite and >= 0 everywhere.")
-    if unit not in _UNIT_SCALE:
-        raise ValueError(f"unit must be one of {tuple(_UNIT_SCALE)}, got {unit!r}.")
+    quantity = units.quantity_of(unit)
     for m in model.all_modes():
         if m.frequency_hz >= fs_hz / 2:
             raise ValueError(
@@ -613,12 +353,11 @@ def simulate_signal(
             )
     if warmup_s is None:
         warmup_s = min(8.0 * model.slowest_decay_s(), 30.0)
-    n_warm = int(round(_check_positive("warmup_s", warmup_s, allow_zero=True) * fs_hz))
+    n_warm = int(round(validate.non_negative(warmup_s, "warmup_s") * fs_hz))
     if n_warm:
         speed = np.concatenate([np.full(n_warm, speed[0]), speed])
     rng = np.random.default_rng(seed)
     force = _force(model, speed, fs_hz, t0_s - n_warm / fs_hz, rng)
-    quantity: Output = _UNIT_QUANTITY[unit]  # type: ignore[assignment]
     out = np.zeros(speed.size)
     for m in model.all_modes():
         phi = m.factor(point)
@@ -647,90 +386,6 @@ def _integrate(a: np.ndarray, fs_hz: float, quantity: str, f_low_hz: float = 2.0
     return np.fft.irfft(spec, a.size)
 
 
-# ----------------------------------------------------------------------------- faults
-
-
-FaultKind = Literal["flat_line", "clipping", "spikes", "dropout"]
-_FAULT_KINDS = ("flat_line", "clipping", "spikes", "dropout")
-
-
-@dataclass(frozen=True)
-class SensorFault:
-    """A sensor or cabling fault applied to a finished block.
-
-    Attributes
-    ----------
-    kind : {'flat_line', 'clipping', 'spikes', 'dropout'}
-        ``flat_line``: output stuck at ``level`` (sample's unit) from ``start_fraction``
-        of the block on; ``clipping``: samples limited to +-``level`` (an amplifier rail);
-        ``spikes``: ``count`` isolated samples of +-``level`` added; ``dropout``:
-        ``count`` gaps of zeros, each ``gap_fraction`` of the block long.
-    level : float
-    start_fraction : float
-        Where in the block the fault starts, 0-1 (flat line only).
-    count : int
-    gap_fraction : float
-    """
-
-    kind: FaultKind
-    level: float = 0.0
-    start_fraction: float = 0.0
-    count: int = 5
-    gap_fraction: float = 0.05
-
-
-def apply_sensor_fault(
-    samples: np.ndarray, fault: SensorFault, seed: int | np.random.SeedSequence | None = 0
-) -> np.ndarray:
-    """Return a copy of ``samples`` with ``fault`` applied (see :class:`SensorFault`)."""
-    if fault.kind not in _FAULT_KINDS:
-        raise ValueError(f"fault.kind must be one of {_FAULT_KINDS}, got {fault.kind!r}.")
-    x = np.array(samples, dtype=float)
-    n = x.size
-    rng = np.random.default_rng(seed)
-    if fault.kind == "flat_line":
-        if not 0.0 <= fault.start_fraction < 1.0:
-            raise ValueError(
-                f"fault.start_fraction must lie in [0, 1), got {fault.start_fraction!r}."
-            )
-        x[int(fault.start_fraction * n) :] = fault.level
-    elif fault.kind == "clipping":
-        rail = _check_positive("fault.level", fault.level)
-        np.clip(x, -rail, rail, out=x)
-    elif fault.kind == "spikes":
-        pos = rng.choice(n, size=min(int(fault.count), n), replace=False)
-        x[pos] += fault.level * rng.choice((-1.0, 1.0), size=pos.size)
-    else:
-        width = max(1, int(fault.gap_fraction * n))
-        for start in rng.integers(0, max(1, n - width), size=int(fault.count)):
-            x[start : start + width] = 0.0
-    return x
-
-
-# ----------------------------------------------------------------------------- slow faults
-
-
-def grown_unbalance(
-    initial_kg_m: float,
-    elapsed_days: float,
-    *,
-    doubling_days: float | None = None,
-    rate_kg_m_per_day: float | None = None,
-) -> float:
-    """Unbalance m*e (kg m) after ``elapsed_days`` of growth from ``initial_kg_m``.
-
-    Give ``doubling_days`` for exponential growth (erosion, build-up feeding on itself)
-    or ``rate_kg_m_per_day`` for linear growth; not both.
-    """
-    _check_positive("initial_kg_m", initial_kg_m, allow_zero=True)
-    if (doubling_days is None) == (rate_kg_m_per_day is None):
-        raise ValueError("give exactly one of doubling_days or rate_kg_m_per_day.")
-    if doubling_days is not None:
-        _check_positive("doubling_days", doubling_days)
-        return initial_kg_m * 2.0 ** (elapsed_days / doubling_days)
-    return initial_kg_m + float(rate_kg_m_per_day) * elapsed_days  # type: ignore[arg-type]
-
-
 # ----------------------------------------------------------------------------- readings
 
 
@@ -753,8 +408,7 @@ def simulate_reading(
     ``ts`` is the epoch time (s, UTC) of the first sample; ``include_speed`` puts the
     speed into the waveform (as a sensor with a tach input would).
     """
-    if int(n_samples) < 1:
-        raise ValueError(f"n_samples must be >= 1, got {n_samples!r}.")
+    validate.whole_number(n_samples, "n_samples")
     ss = np.random.SeedSequence(seed) if not isinstance(seed, np.random.SeedSequence) else seed
     sig_seed, fault_seed = ss.spawn(2)
     x = simulate_signal(
@@ -797,9 +451,8 @@ def simulate_run(
     with ``speed_readings`` each block is preceded by a :class:`SpeedReading` at the same
     ts with the mean speed over the block (Hz). Returned in time order.
     """
-    _check_positive("interval_s", interval_s)
-    if int(block_samples) < 1:
-        raise ValueError(f"block_samples must be >= 1, got {block_samples!r}.")
+    validate.positive(interval_s, "interval_s")
+    validate.whole_number(block_samples, "block_samples")
     n_total = int(math.floor(profile.duration_s * fs_hz)) + 1
     speed = profile.speed_at(np.arange(n_total) / fs_hz)
     step = int(round(interval_s * fs_hz))

@@ -14,7 +14,7 @@ machines (monitor/service/registry_follow.py).
 
 Readers never fail on a stored value an older release let in: :func:`read_machine`
 checks every machine, point and mode against the registry's bounds
-(:func:`monitor.model.registry.check_machine`) and leaves out what fails, saying why.
+(:func:`monitor.model.bounds.check_machine`) and leaves out what fails, saying why.
 """
 
 from __future__ import annotations
@@ -28,18 +28,10 @@ from typing import Any
 from sqlalchemy import func, select, update
 from sqlalchemy.orm import Session, selectinload
 
+from monitor.model.bounds import check_machine, check_mode, check_point
 from monitor.model.jsonsafe import jsonable
-from monitor.model.registry import (
-    Machine,
-    Mode,
-    Point,
-    Registry,
-    RegistryError,
-    check_machine,
-    check_mode,
-    check_point,
-    dump_registry,
-)
+from monitor.model.registry import Machine, Mode, Point, Registry, RegistryError
+from monitor.model.registry_file import dump_registry
 from monitor.store.models import (
     BaselineRestart,
     MeasurementPoint,
@@ -389,7 +381,7 @@ def save_mode(session: Session, machine: MachineRow, values: Mode, user: str,
               mode: ModeRow | None) -> ModeRow:
     """Create (``mode`` None) or update a mode of ``machine``, record the change in
     mode_history and move the registry version on (inside the caller's transaction).
-    ``values`` passes :func:`monitor.model.registry.check_mode` first (RegistryError)."""
+    ``values`` passes :func:`monitor.model.bounds.check_mode` first (RegistryError)."""
     check_mode(values, machine.id)
     touch_registry(session, [machine])
     old = mode.values() if mode is not None else None
@@ -581,6 +573,6 @@ def changed_machines(session: Session, since: int) -> tuple[dict[str, Machine | 
 
 def export_registry(session: Session) -> Registry:
     """The active machines of the database as a :class:`Registry` (write it with
-    ``monitor.model.registry.dump_registry``); entries outside the bounds are left out
+    ``monitor.model.registry_file.dump_registry``); entries outside the bounds are left out
     (:func:`read_registry` says which)."""
     return read_registry(session)[0]
