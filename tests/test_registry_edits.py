@@ -114,7 +114,7 @@ def run_bounded(svc: Service, messages: list[tuple[str, bytes]], timeout_s: floa
     t.start()
     t.join(timeout_s)
     if t.is_alive():
-        svc._stop.set()
+        svc.request_stop()
         t.join(30.0)
         pytest.fail(f"the batch did not commit within {timeout_s:g} s (retrying for ever)")
     if "error" in out:

@@ -27,7 +27,8 @@ from sqlalchemy import select
 
 from dashboard import create_app
 from monitor.config import load_settings
-from monitor.service.service import ACK_SYNC_S, Service
+from monitor.service.periodic import ACK_SYNC_S
+from monitor.service.service import Service
 from monitor.store import Store
 from monitor.store.auth import create_api_token, create_user
 from monitor.store.models import Alarm, SpeedReadingRow

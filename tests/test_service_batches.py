@@ -104,7 +104,7 @@ def test_repeats_within_one_batch_feed_the_detector_once(tmp_path: Path) -> None
         # The last one redelivered in a later batch (its PUBACK lost, say). An older one
         # would be rejected as a replay (more than the replay window behind the stream).
         again = svc.handle_batch([m3])
-        memory = svc._evaluators["ab-1"].snapshot()
+        memory = svc.detector("ab-1").snapshot()
     finally:
         svc.store.close()
     assert [o.kind for o in outs] == ["waveform", "duplicate", "duplicate", "waveform", "duplicate",
@@ -474,6 +474,6 @@ def test_acknowledgement_from_the_dashboard_reaches_the_service_and_is_published
         assert not [e for o in later for e in o.events if e.get("transition") == "acknowledged"]
         ref = events[0]["ref"]
         assert any(a["id"] == ref and a["state"] == "acknowledged"
-                   for a in svc._evaluators["bwm-1"].active_alarms())
+                   for a in svc.detector("bwm-1").active_alarms())
     finally:
         svc.store.close()

@@ -14,7 +14,7 @@ from broker import free_port
 from fixtures_db import fresh_database
 from sqlalchemy import create_engine, text
 
-from monitor.service.service import is_transient, printable, short_cause
+from monitor.service.failures import is_transient, printable, short_cause
 from monitor.store.db import make_engine
 
 

@@ -29,7 +29,7 @@ from service_helpers import (
     wait_started,
 )
 
-from monitor.service.service import configure_logging
+from monitor.service.logs import configure_logging
 
 
 def test_warnings_are_json_log_records() -> None:

@@ -74,7 +74,7 @@ def bounded(fn: Callable[[], Any], svc: Service, timeout_s: float = 60.0) -> Any
     t.start()
     t.join(timeout_s)
     if t.is_alive():
-        svc._stop.set()  # the retry loop gives up at its next failure
+        svc.request_stop()  # the retry loop gives up at its next failure
         t.join(30)
         pytest.fail(f"the batch was still being retried after {timeout_s:g} s")
     if "error" in box:

@@ -12,7 +12,7 @@ T0 = dt.datetime(2026, 3, 2, 6, 0, tzinfo=dt.UTC)
 
 
 def line(at_s: float, msg: str, **extra) -> dict:
-    """One record as monitor.service.service.JsonLineFormatter writes it, ``at_s`` after T0."""
+    """One record as monitor.service.logs.JsonLineFormatter writes it, ``at_s`` after T0."""
     ts = (T0 + dt.timedelta(seconds=at_s)).isoformat(timespec="milliseconds")
     return json.loads(json.dumps({"ts": ts, "level": "warning", "msg": msg, **extra}))
 

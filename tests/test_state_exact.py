@@ -140,7 +140,7 @@ def test_restart_after_trend_windows_fit_goes_on(plant_url: str) -> None:
     svc = Service(settings_for(plant_url), stale_check_s=0)
     try:
         handle_within(svc, first)
-        fits = [w["fit"] for _, _, w in svc._evaluators["sp-2"].snapshot()["trends"] if w["fit"]]
+        fits = [w["fit"] for _, _, w in svc.detector("sp-2").snapshot()["trends"] if w["fit"]]
         assert fits, "no trend window was fitted: the test does not reach the case"
     finally:
         svc.stop()

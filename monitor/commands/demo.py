@@ -29,7 +29,7 @@ def demo(broker: str | None, database: str | None, machines: Path | None, durati
          data_dir: Path, host: str, port: int, embedded_broker: bool) -> None:
     """Run everything on embedded defaults and replay the sample plant, accelerated."""
     from monitor.demo import install_stop_signals, run_demo
-    from monitor.service.service import configure_logging
+    from monitor.service.logs import configure_logging
 
     if embedded_broker and broker is not None:
         raise click.UsageError("--embedded-broker and --broker exclude each other; give one of them.")

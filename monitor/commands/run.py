@@ -24,7 +24,9 @@ def run(config: Path | None, broker: str | None, database: str | None, machines:
     """Run the service until SIGTERM or Ctrl-C (finishes in-flight work, then stops)."""
     from monitor.config import ConfigError, load_settings
     from monitor.io.mqtt_names import MqttConfigError
-    from monitor.service.service import Service, ServiceError, configure_logging, run_service
+    from monitor.service.logs import configure_logging
+    from monitor.service.runner import run_service
+    from monitor.service.service import Service, ServiceError
     from monitor.store.db import StoreError
 
     if config is not None and not config.is_file():

@@ -113,12 +113,13 @@ class RegistryFollower:
         if self._conn is None:
             raw = self.store.engine.raw_connection()
             raw.detach()  # never handed back to the pool: its autocommit stays with it
+            conn: Any = raw.dbapi_connection  # set while checked out
             if self.store.engine.dialect.name == "postgresql":
                 # The checkout's liveness ping may have opened a transaction; autocommit
                 # can only be set outside one.
-                raw.dbapi_connection.rollback()
-                raw.dbapi_connection.autocommit = True
-            self._conn = raw.dbapi_connection
+                conn.rollback()
+                conn.autocommit = True
+            self._conn = conn
             # Closed with this follower (or at exit), never left to the garbage collector.
             self._closer = weakref.finalize(self, raw.close)
         try:

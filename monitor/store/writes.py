@@ -28,7 +28,7 @@ from sqlalchemy.orm import Session
 
 from monitor.analysis.waveform import ReadingAnalysis, Spectrum
 from monitor.model.jsonsafe import jsonable
-from monitor.model.readings import SpeedReading
+from monitor.model.readings import SpeedReading, Waveform
 from monitor.store.models import (
     Alarm,
     AlarmTransitionRow,
@@ -207,14 +207,35 @@ def snapshot_due(
 
 
 def measurement_values(
-    analysis: ReadingAnalysis,
+    analysis: ReadingAnalysis | Waveform,
     *,
     zone: str | None = None,
     health: Any = None,
     evaluation: Any = None,
     stored_at: dt.datetime | None = None,
 ) -> dict[str, Any]:
-    """The ``measurements`` row of one analysed reading (see :func:`write_reading`)."""
+    """The ``measurements`` row of one analysed reading (see :func:`write_reading`), or
+    of a waveform the analysis could not use (no features, orders or peaks; its speed as
+    measured, if it carried one)."""
+    if isinstance(analysis, Waveform):
+        w = analysis
+        return {
+            "machine_id": w.machine,
+            "point_id": w.point,
+            "ts": to_datetime(w.ts),
+            "reading_id": w.reading_id,
+            "speed_hz": _num(w.speed_hz),
+            "speed_source": "measured" if w.speed_hz is not None else None,
+            "speed_uncertainty_hz": None,
+            "overall_velocity_mm_s_rms": None,
+            "one_x_normalised": None,
+            "orders": [],
+            "peaks": [],
+            "zone": zone,
+            "health": jsonable(health),
+            "evaluation": jsonable(evaluation),
+            "stored_at": stored_at or utcnow(),
+        }
     return {
         "machine_id": analysis.machine,
         "point_id": analysis.point,
@@ -401,16 +422,17 @@ def write_reading(
     )
 
 
+def speed_reading_values(reading: SpeedReading) -> dict[str, Any]:
+    """The ``speed_readings`` row of one speed reading."""
+    return {"machine_id": reading.machine, "ts": to_datetime(reading.ts), "speed_hz": float(reading.speed_hz)}
+
+
 def write_speed_reading(session: Session, reading: SpeedReading) -> bool:
     """Store a speed reading; False when one for (machine, ts) is already stored."""
     rid = insert_ignore(
         session,
         SpeedReadingRow.__table__,
-        {
-            "machine_id": reading.machine,
-            "ts": to_datetime(reading.ts),
-            "speed_hz": float(reading.speed_hz),
-        },
+        speed_reading_values(reading),
         ("machine_id", "ts"),
     )
     return rid is not None

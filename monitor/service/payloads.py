@@ -1,0 +1,150 @@
+"""The bodies the service publishes: each machine's retained status and the alarm events
+(docs/mqtt.md).
+
+The status is built from a :class:`MachineView` (the latest facts of the machine seen in
+its readings) and the machine's detector (its active alarms); the views of all machines
+are kept on a :class:`StatusBoard`. An alarm event is the alarm as the REST API shows it,
+in its state after the transition, with the transition's own fields added.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+from sqlalchemy import select
+from sqlalchemy.orm import Session
+
+from monitor.detection.alarms import Transition, severity_rank
+from monitor.detection.evaluator import MachineEvaluator, ReadingEvaluation
+from monitor.model.timefmt import iso_utc
+from monitor.store.models import Alarm
+from monitor.store.queries import alarm_as_json
+
+
+@dataclass
+class MachineView:
+    """Latest facts of one machine for its retained status."""
+
+    ts: float | None = None
+    speed_hz: float | None = None
+    speed_source: str | None = None
+    zones: dict[str, str | None] = field(default_factory=dict)
+    nearest: dict[str, Any] | None = None
+    #: Evaluations since the status was last built, oldest first: the nearest margin is
+    #: taken from the newest that has one when the status is built (once per batch),
+    #: not computed for every reading.
+    unseen: list[ReadingEvaluation] = field(default_factory=list)
+
+    def copy(self) -> MachineView:
+        return MachineView(self.ts, self.speed_hz, self.speed_source, dict(self.zones), self.nearest,
+                           list(self.unseen))
+
+    def nearest_margin(self) -> dict[str, Any] | None:
+        for evaluation in reversed(self.unseen):
+            m = evaluation.nearest_margin()
+            if m is not None:
+                self.nearest = {"subject": m.subject, "margin_pct": m.margin_pct,
+                                "required_pct": m.required_pct, "status": m.status}
+                break
+        self.unseen.clear()
+        return self.nearest
+
+
+class StatusBoard:
+    """The status views of the machines this process monitors."""
+
+    def __init__(self, machines: Iterable[str]) -> None:
+        self._views: dict[str, MachineView] = {m: MachineView() for m in machines}
+
+    def saw_waveform(self, machine: str, evaluation: ReadingEvaluation) -> None:
+        """A waveform of ``machine`` was evaluated: its time, zone and speed."""
+        view = self._views[machine]
+        view.ts = max(view.ts or 0.0, evaluation.ts)
+        view.zones[evaluation.point] = evaluation.zone
+        if evaluation.speed_hz is not None:
+            view.speed_hz = evaluation.speed_hz
+        view.unseen.append(evaluation)
+
+    def saw_speed(self, machine: str, speed_hz: float) -> None:
+        """A speed reading of ``machine`` was observed."""
+        view = self._views[machine]
+        view.speed_hz, view.speed_source = speed_hz, "measured"
+
+    def status(self, machine: str, ev: MachineEvaluator) -> dict[str, Any]:
+        """The retained status body of ``machine`` (docs/mqtt.md)."""
+        view = self._views[machine]
+        active = ev.engine.active()
+        worst = max((a.severity for a in active), key=severity_rank, default=None)
+        zones = [z for z in view.zones.values() if z]
+        return {
+            "machine": machine,
+            "ts": iso_utc(view.ts),
+            "state": worst or "normal",
+            "speed_hz": view.speed_hz,
+            "nearest_margin": view.nearest_margin(),
+            "zone": max(zones) if zones else None,
+            "zones": dict(view.zones),
+            "active_alarms": [
+                {"ref": a.id, "point": a.key.point, "kind": a.key.kind, "subject": a.key.subject,
+                 "severity": a.severity, "state": a.state}
+                for a in active
+            ],
+        }
+
+    def copies(self, machines: Iterable[str]) -> dict[str, MachineView]:
+        """Copies of the views of ``machines``, to put back after a failed run."""
+        return {m: v.copy() for m in machines if (v := self._views.get(m)) is not None}
+
+    def restore(self, copies: dict[str, MachineView]) -> None:
+        """Put back views copied before a run that was never committed."""
+        self._views.update(copies)
+
+    def ensure(self, machine: str) -> None:
+        """A view for a machine new to the registry."""
+        self._views.setdefault(machine, MachineView())
+
+    def drop(self, machine: str) -> None:
+        """A retired machine has no status."""
+        self._views.pop(machine, None)
+
+    def keep_points(self, machine: str, points: Iterable[str]) -> None:
+        """Only ``points`` remain of ``machine``: a retired point's zone leaves the status."""
+        view = self._views.get(machine)
+        if view is not None:
+            kept = set(points)
+            view.zones = {p: z for p, z in view.zones.items() if p in kept}
+
+
+def alarm_events(session: Session, trans: Sequence[Transition], ids: Sequence[int],
+                 outside: Sequence[Transition]) -> list[dict[str, Any]]:
+    """Alarm events (REST alarm JSON with its current state, plus the transition): first
+    those made outside the readings and recorded already (``outside``: alarms closed by a
+    registry change, acknowledgements), which came before the readings' own (``trans``,
+    recorded as alarms ``ids``)."""
+    out: list[dict[str, Any]] = []
+    for t in outside:
+        row = session.execute(select(Alarm).where(Alarm.ref == t.alarm_id).order_by(Alarm.id.desc())
+                              .limit(1)).scalar_one_or_none()
+        body = alarm_as_json(row) if row is not None else dict(t.alarm)
+        body.update(transition_fields(t))
+        out.append(body)
+    rows = {a.id: a for a in session.execute(select(Alarm).where(Alarm.id.in_(ids))).scalars()} if ids else {}
+    for t, aid in zip(trans, ids, strict=False):
+        row = rows.get(aid)
+        body = alarm_as_json(row) if row is not None else dict(t.alarm)
+        body.update(transition_fields(t))
+        out.append(body)
+    return out
+
+
+def transition_fields(t: Transition) -> dict[str, Any]:
+    """The fields an alarm event adds to the alarm: what happened, when, and to which."""
+    return {
+        "transition": t.name,
+        "transition_at": iso_utc(t.ts),
+        "previous_severity": t.previous_severity,
+        "reading_id": t.reading_id,
+        "ref": t.alarm_id,
+    }
