@@ -21,7 +21,7 @@ from monitor.detection.evaluator import MachineEvaluator
 from monitor.io.ingest import decode_message
 from monitor.io.source import StreamFileSource
 from monitor.io.streams import write_stream
-from monitor.model.registry import load_registry
+from monitor.model.registry_file import load_registry
 from monitor.service.service import Service, ServiceError
 from monitor.store import Store
 from monitor.store.models import DeadLetter, DetectorState
