@@ -26,7 +26,7 @@ def waveform(x, unit="m/s^2", speed_hz=None, ts=1_780_000_000.25):
 
 
 def test_overall_velocity_of_one_g_at_100_hz():
-    # 1 g peak at 100 Hz = 11.036 mm/s RMS (REFERENCES.md, computed: g/(2 pi 100)/sqrt 2)
+    # 1 g peak at 100 Hz = 11.036 mm/s RMS (physical law, computed: g/(2 pi 100)/sqrt 2; g = 9.80665 m/s^2, SI Brochure)
     m, p = machine(rpm=(900.0, 1800.0))
     x = np.cos(2 * np.pi * 100.3 * T).astype(np.float32)
     a = analyse_waveform(waveform(x, unit="g", speed_hz=25.0), m, p)
@@ -156,7 +156,7 @@ def test_bad_input():
 
 # --------------------------------------------------------------------- bearing envelope
 
-BEARING = {  # CWRU drive-end geometry in mm (REFERENCES.md): 9 balls, 0.3126 in, 1.537 in
+BEARING = {  # CWRU drive-end geometry in mm (Case Western Reserve University bearing data set): 9 balls, 0.3126 in, 1.537 in
     "bearing_elements": 9,
     "bearing_ball_diameter_mm": 0.3126 * 25.4,
     "bearing_pitch_diameter_mm": 1.537 * 25.4,
@@ -184,7 +184,7 @@ def ringing(rate_hz, resonance_hz=1800.0, zeta=0.05):
 def test_bearing_envelope_in_extra_and_json():
     shaft = 25.0
     m, p = bearing_machine(BEARING)
-    # CWRU published BPFO multiple 3.5848 (REFERENCES.md)
+    # CWRU published BPFO multiple 3.5848 (Case Western Reserve University bearing data set)
     x = ringing(3.5848 * shaft)
     a = analyse_waveform(waveform(x, speed_hz=shaft), m, p)
     b = a.extra["bearing"]

@@ -20,7 +20,7 @@ from monitor.analysis.spectrum import amplitude_at
 from monitor.model.bearing_geometry import BearingGeometry
 
 # CWRU bearing data set, drive-end bearing (open data set): 9 balls, d = 0.3126 in,
-# D = 1.537 in, alpha = 0 (REFERENCES.md, "Rolling-element bearing defect frequencies")
+# D = 1.537 in, alpha = 0 (Case Western Reserve University bearing data set, drive-end bearing)
 CWRU = BearingGeometry(9, 0.3126 * 25.4, 1.537 * 25.4)
 
 FS = 12000.0
@@ -44,7 +44,7 @@ def ringing_impacts(rate_hz, resonance_hz=3000.0, zeta=0.05, amplitude=1.0, n=N,
 
 class TestGeometry:
     def test_cwru_defect_orders(self):
-        # Randall and Antoni 2011 formulas; published CWRU multiples (REFERENCES.md, read):
+        # Randall and Antoni 2011 formulas; multiples published with the CWRU bearing data set:
         # BPFI 5.4152, BPFO 3.5848, FTF 0.39828, 2 x BSF 4.7135, within 1e-4
         o = CWRU.orders()
         assert o.unit == "order"
@@ -55,7 +55,7 @@ class TestGeometry:
 
     def test_hz_scale_with_shaft_speed(self):
         # definition: a defect frequency is its order times shaft speed; published CWRU
-        # BPFO multiple 3.5848 (REFERENCES.md) at 29.95 Hz
+        # BPFO multiple 3.5848 (published with the CWRU bearing data set) at 29.95 Hz
         f = CWRU.frequencies_hz(SHAFT_HZ)
         assert f.unit == "Hz"
         assert f.bpfo == pytest.approx(3.5848 * SHAFT_HZ, abs=1e-4 * SHAFT_HZ)
@@ -173,7 +173,7 @@ class TestEnvelopeSpectrum:
 
 
 class TestAnalyseBearing:
-    bpfo = 3.5848 * SHAFT_HZ  # CWRU multiple (REFERENCES.md)
+    bpfo = 3.5848 * SHAFT_HZ  # CWRU published multiple
 
     def defect(self, seed=5):
         noise = np.random.default_rng(seed).normal(0, 0.3, N)

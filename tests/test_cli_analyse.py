@@ -21,7 +21,7 @@ FS = 2560.0
 N = 8192
 T0 = 1772431200.0  # 2026-03-02T06:00:00Z
 KEYS = {"machine", "point", "ts", "speed_hz", "speed_source", "overall_velocity_mm_s_rms",
-        "orders", "peaks"}  # DESIGN.md section 3, `analyse --json`
+        "orders", "peaks"}  # README.md, "Analysing a stream file", `analyse --json`
 
 
 def _registry(tmp_path: Path) -> Path:

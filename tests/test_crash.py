@@ -1,6 +1,6 @@
 """SIGKILL the service mid-stream and restart it; two services in a shared subscription.
 
-Delivery contract (DESIGN.md section 3): at least once from the broker, effectively once
+Delivery contract (docs/mqtt.md): at least once from the broker, effectively once
 in the database, so every published waveform ends with exactly one measurement row.
 """
 

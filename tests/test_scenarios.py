@@ -33,7 +33,7 @@ T0 = 1.7e9
 
 
 def _api684(af: float) -> tuple[float, float]:
-    # API 684 separation margin rule (REFERENCES.md): (mode below, mode above), percent.
+    # API 684 separation margin rule (from memory): (mode below, mode above), percent.
     core = 17.0 * (1.0 - 1.0 / (af - 1.5))
     return min(16.0, core), min(26.0, 10.0 + core)
 
@@ -158,7 +158,7 @@ def test_failing_sensor_raises_sensor_fault_and_no_machine_alarm(fault):
 def test_growing_bearing_defect_raises_a_growth_alarm_on_its_defect_frequency():
     # Outer-race defect: impacts at BPFO = n fr / 2 (1 - d/D cos a) (Randall and Antoni 2011)
     # ringing a housing resonance; the envelope line at BPFO grows out of the floor while the
-    # overall velocity hardly moves. Geometry: the CWRU drive-end bearing (REFERENCES.md).
+    # overall velocity hardly moves. Geometry: the CWRU drive-end bearing (Case Western Reserve University bearing data set).
     from monitor.model.bearing_geometry import BearingGeometry
     from monitor.sim.simulate import BearingDefect
 

@@ -64,7 +64,7 @@ class TestSdofResponse:
         assert (lag - phase + 180) % 360 - 180 == pytest.approx(0.0, abs=2.0)
 
     def test_reference_values(self) -> None:
-        # REFERENCES.md (computed from Thomson's formula): zeta=0.05 -> H(1)=10;
+        # W. T. Thomson, Theory of Vibration with Applications, SDOF frequency response (computed): zeta=0.05 -> H(1)=10;
         # zeta=0.1, r=2 -> phase 172.405 deg
         assert _textbook(1.0, 0.05)[0] == pytest.approx(10.0)
         assert _textbook(2.0, 0.1)[1] == pytest.approx(172.405, abs=1e-3)
@@ -143,7 +143,8 @@ class TestUnbalance:
 
 class TestBearingDefect:
     # CWRU drive-end bearing geometry (open data set); BPFO = 3.5848 x shaft speed
-    # (Randall and Antoni 2011 formula; published multiples in REFERENCES.md)
+    # (Randall and Antoni 2011 formula; multiples published with the Case Western Reserve
+    # University bearing data set)
     geometry = BearingGeometry(n_elements=9, ball_diameter=0.3126, pitch_diameter=1.537)
 
     def test_defect_orders_from_geometry(self) -> None:
@@ -174,7 +175,7 @@ class TestBearingDefect:
         full = np.abs(np.fft.rfft(x * np.hanning(x.size)))
         # analytic: 2500 Hz is the resonance set in the model; the strongest line is the BPFO
         # harmonic nearest it, so within half the BPFO spacing (3.5848 x shaft / 2, CWRU
-        # multiple in REFERENCES.md) plus 0.5 Hz (two 0.25 Hz bins)
+        # multiple published with the CWRU bearing data set) plus 0.5 Hz (two 0.25 Hz bins)
         assert freq[np.argmax(full)] == pytest.approx(2500.0, abs=3.5848 * shaft / 2 + 0.5)
 
 

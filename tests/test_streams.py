@@ -1,4 +1,4 @@
-"""Stream file format (DESIGN.md section 3) and the sample streams."""
+"""Stream file format (monitor/io/streams.py) and the sample streams."""
 
 from __future__ import annotations
 
@@ -93,7 +93,7 @@ class TestSampleStreams:
         files = sorted(SAMPLES.glob("*.jsonl"))
         recorded = IngestLimits(max_age_s=math.inf, max_future_s=math.inf)
         assert {f.stem for f in files} == {m.id for m in registry.machines}
-        # DESIGN.md / issue: at most 20 MB of streams in all
+        # project budget for the repository: at most 20 MB of streams in all
         assert sum(f.stat().st_size for f in files) <= 20 * 1024 * 1024
         for f in files:
             m = registry.machine(f.stem)
@@ -106,7 +106,7 @@ class TestSampleStreams:
                     break
 
     def test_fan_crosses_its_mode_inside_the_api684_margin(self) -> None:
-        # API 684 (REFERENCES.md): AF ~= 1/(2 zeta); required margin
+        # API 684 (from memory): AF ~= 1/(2 zeta); required margin
         # min(16, 17 (1 - 1/(AF - 1.5))) % for a mode below the excitation.
         registry = load_registry(SAMPLES / "plant.toml")
         fan = registry.machine("ef-2")
