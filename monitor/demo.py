@@ -151,8 +151,8 @@ def sample_messages() -> tuple[Path, list[Message], str]:
     """
     if (SAMPLES / "plant.toml").is_file():
         return SAMPLES / "plant.toml", load_streams(sorted(SAMPLES.glob("*.jsonl"))), str(SAMPLES)
-    from monitor.commands.simulate import plant_messages, plant_registry
     from monitor.model.registry_file import dump_registry
+    from monitor.sim.scenarios import plant_messages, plant_registry
 
     tmp = Path(tempfile.mkdtemp(prefix="whirlwatch-plant-"))
     reg = tmp / "plant.toml"
