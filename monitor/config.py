@@ -20,6 +20,7 @@ from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
+from monitor.redact import redact
 from monitor.settings import BY_NAME, GROUPS, SECTIONS, SETTINGS, Setting, Settings
 
 
@@ -34,7 +35,7 @@ def _convert(setting: Setting, value: Any, where: str) -> Any:
     """Convert and check ``value`` (from TOML or a string); ConfigError names ``where``."""
 
     def bad() -> ConfigError:
-        shown = "***" if setting.secret else repr(value)
+        shown = _shown(setting, value)
         return ConfigError(
             f"{where}: key '{setting.name}' must be {setting.expected()}, got {shown}."
         )
@@ -91,9 +92,16 @@ def _convert(setting: Setting, value: Any, where: str) -> Any:
     if setting.check is not None:
         problem = setting.check(out)
         if problem:
-            shown = "***" if setting.secret else repr(value)
+            shown = _shown(setting, value)
             raise ConfigError(f"{where}: key '{setting.name}' must be {problem}, got {shown}.")
     return out
+
+
+def _shown(setting: Setting, value: Any) -> str:
+    """A bad value as an error shows it: a secret not at all, a URL without its password."""
+    if setting.secret:
+        return "***"
+    return repr(redact(value)) if isinstance(value, str) else repr(value)
 
 
 def _read_file(path: Path) -> dict[str, Any]:
