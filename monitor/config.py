@@ -233,6 +233,10 @@ def render_docs() -> str:
         "Unknown tables and keys are errors too, so a typing mistake is never silently ignored.",
         "Relative paths in the file are relative to the file's folder.",
         "",
+        "The dashboard (`whirlwatch dashboard`) takes its own options and environment variables:",
+        "the session key, running behind an HTTPS proxy and where failed sign-ins are counted",
+        "(docs/security.md, \"Dashboard settings\").",
+        "",
     ]
     for section in SECTIONS:
         out += [

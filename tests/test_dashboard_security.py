@@ -289,3 +289,31 @@ def test_every_form_needs_the_csrf_token(app):
         forms = re.findall(r'<form[^>]*method="post".*?</form>', html, flags=re.S)
         assert forms, path
         assert all('name="csrf_token"' in f for f in forms), path  # OWASP ASVS 4.0.3 V4.2.2
+
+
+# ----------------------------------------------------------------------------- docs = code
+
+
+def test_documented_dashboard_settings_are_the_commands():
+    from pathlib import Path
+
+    from dashboard import DEFAULTS
+    from monitor.commands.dashboard import SECRET_KEY_ENV, dashboard
+
+    doc = (Path(__file__).resolve().parent.parent / "docs" / "security.md").read_text(encoding="utf-8")
+    section = doc.split("## Dashboard settings", 1)[1].split("\n## ", 1)[0]
+    rows = [[c.strip().strip("`") for c in line.strip("|").split("|")]
+            for line in section.splitlines() if line.startswith("| ") and not line.startswith("| option")]
+    documented = {(opt, env, default) for opt, env, default, _ in rows if opt}
+    actual = set()
+    for p in dashboard.params:
+        env = p.envvar or ""
+        default = "off" if getattr(p, "is_flag", False) else str(p.default)
+        actual.add((p.opts[0], env, default))
+    assert documented == actual
+    assert [r[1] for r in rows if not r[0]] == [SECRET_KEY_ENV]
+    # The limits as the table under "Sign-in and the login limiter" words them.
+    for key, words in (("LOGIN_LIMIT_PER_ADDRESS", "10 a minute, 50 an hour, 200 a day"),
+                       ("LOGIN_LIMIT_PER_ACCOUNT", "5 a minute, 20 an hour, 100 a day")):
+        assert DEFAULTS[key].replace(" per ", " a ").replace("a hour", "an hour").replace(";", ",") == words
+        assert words in doc
