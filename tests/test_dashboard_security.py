@@ -85,6 +85,13 @@ def test_signed_in_user_is_never_sent_to_another_host(app):
     assert (r.status_code, r.headers["Location"]) == (302, "/")  # OWASP ASVS 4.0.3 V5.1.5
 
 
+def test_back_after_acknowledging_stays_on_the_alarms_page(app):
+    b = Browser(app).signed_in("eng")
+    r = b.post("/alarms/1/acknowledge", {"comment": "seen", "back": "/alarms/\n/evil.example"}, token_from="/alarms/")
+    # OWASP ASVS 4.0.3 V5.1.5: a control character gives the alarms page, not HTTP 500.
+    assert (r.status_code, r.headers["Location"]) == (302, "/alarms/")
+
+
 def test_real_server_redirect_and_server_header(db_url):
     with dashboard_server(db_url) as port:
         cookie = raw_sign_in(port, "eng")
