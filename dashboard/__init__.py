@@ -1,14 +1,19 @@
 """whirlwatch web dashboard and JSON API (Flask application factory).
 
 ``create_app(config=None)`` builds the app; ``config`` is a mapping of Flask settings
-plus these of our own:
+plus these of our own (docs/security.md describes each and how to set it):
 
 - ``DATABASE_URL``: SQLAlchemy URL of the store (default ``sqlite:///whirlwatch.sqlite``).
-- ``LOGIN_MAX_FAILURES`` / ``LOGIN_WINDOW_S``: failed sign-ins allowed per user and
-  client address within the window (default 5 in 300 s).
+- ``LOGIN_LIMIT_PER_ADDRESS`` / ``LOGIN_LIMIT_PER_ACCOUNT``: failed sign-ins allowed per
+  client address and per account, as windows (dashboard/login_limits.py).
+- ``LOGIN_LIMIT_STORAGE_URL``: where those counts live: ``memory://`` (per process) or a
+  ``redis://`` URL shared by several dashboard processes.
+- ``BEHIND_TLS_PROXY``: the dashboard is reached through one HTTPS reverse proxy that sets
+  X-Forwarded-For, -Proto and -Host: trust them, mark the session cookie ``Secure`` and
+  send HSTS.
 - ``OVERVIEW_REFRESH_S``: how often the overview page refetches the API (default 15 s).
 - ``SECRET_KEY``: signs the session cookie; a random key per process when not given
-  (sessions then end when the process restarts).
+  (sessions then end when the process restarts, and several processes need one key).
 """
 
 from __future__ import annotations
@@ -20,11 +25,16 @@ from typing import Any
 
 from flask import Flask
 from flask_wtf.csrf import CSRFProtect
+from werkzeug.middleware.proxy_fix import ProxyFix
 
 DEFAULTS: dict[str, Any] = {
     "DATABASE_URL": "sqlite:///whirlwatch.sqlite",
-    "LOGIN_MAX_FAILURES": 5,
-    "LOGIN_WINDOW_S": 300.0,
+    # A guesser waits a minute, then an hour, then a day; OWASP ASVS 4.0.3 V2.2.1 allows
+    # at most 100 failures per account and hour.
+    "LOGIN_LIMIT_PER_ADDRESS": "10 per minute; 50 per hour; 200 per day",
+    "LOGIN_LIMIT_PER_ACCOUNT": "5 per minute; 20 per hour; 100 per day",
+    "LOGIN_LIMIT_STORAGE_URL": "memory://",
+    "BEHIND_TLS_PROXY": False,
     "OVERVIEW_REFRESH_S": 15,
     "SESSION_COOKIE_HTTPONLY": True,
     "SESSION_COOKIE_SAMESITE": "Lax",
@@ -49,25 +59,33 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     if config:
         app.config.update(config)
 
+    if app.config["BEHIND_TLS_PROXY"]:
+        # One proxy in front: take the client's address, scheme and host from it.
+        app.config["SESSION_COOKIE_SECURE"] = True
+        app.wsgi_app = ProxyFix(app.wsgi_app, x_for=1, x_proto=1, x_host=1)  # type: ignore[method-assign]
+
     CSRFProtect(app)
     from dashboard import db, errors, security
 
-    app.extensions["whirlwatch_login_limiter"] = security.LoginLimiter(
-        int(app.config["LOGIN_MAX_FAILURES"]), float(app.config["LOGIN_WINDOW_S"])
-    )
     db.init_app(app)
     errors.register(app)
     security.register(app)
 
-    from dashboard import alarms, api, auth, machines, overview
+    from dashboard import alarms, api, audit, auth, login_limits, machines, overview, tokens, users
 
     app.register_blueprint(auth.bp)
+    app.register_blueprint(users.bp)
+    app.register_blueprint(tokens.bp)
+    app.register_blueprint(audit.bp)
     app.register_blueprint(overview.bp)
     app.register_blueprint(machines.bp)
     app.register_blueprint(alarms.bp)
     app.register_blueprint(api.bp)
+    app.register_blueprint(audit.api_bp)
     # The API authenticates tokens itself and checks CSRF only for session writes.
     app.extensions["csrf"].exempt(api.bp)
+    app.extensions["csrf"].exempt(audit.api_bp)
+    login_limits.install(app)
 
     @app.template_filter("ts")
     def _ts(t):

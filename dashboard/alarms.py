@@ -13,6 +13,7 @@ from flask import Blueprint, Response, flash, redirect, render_template, request
 from dashboard import queries
 from dashboard.db import db_session
 from dashboard.errors import BadRequest, Conflict, NotFound
+from dashboard.redirects import same_origin_path
 from dashboard.security import current, require
 from monitor.detection.alarms import KINDS, SEVERITIES
 from monitor.model.timefmt import parse_iso_utc
@@ -105,7 +106,7 @@ def index():
 def acknowledge(alarm_id: int):
     a = do_acknowledge(alarm_id, request.form.get("comment", "").strip())
     flash(f"Alarm {a.id} acknowledged.", "ok")
-    back = request.form.get("back", "")
+    back = same_origin_path(request.form.get("back")) or ""
     return redirect(back if back.startswith("/alarms") else url_for("alarms.index"))
 
 

@@ -8,7 +8,7 @@ Exception tree::
      +-- Forbidden           403  signed in, but the role does not allow it
      +-- NotFound            404  no such machine, alarm, mode, user or token
      +-- Conflict            409  the change clashes with the stored state
-     +-- TooManyAttempts     429  login attempts rate-limited
+     +-- TooManyAttempts     429  too many failed sign-ins (dashboard/login_limits.py)
 
 Requests under ``/api/`` get JSON in one fixed shape::
 
@@ -93,12 +93,17 @@ def _render(status: int, code: str, message: str):
     return render_template("error.html", status=status, message=message), status
 
 
+def render(exc: DashboardError):
+    """The response for ``exc``: JSON under ``/api/``, else the HTML error page."""
+    return _render(exc.status, exc.code, exc.message)
+
+
 def register(app: Flask) -> None:
     """Attach the single error handler to ``app``."""
 
     @app.errorhandler(DashboardError)
     def _dashboard_error(exc: DashboardError):
-        return _render(exc.status, exc.code, exc.message)
+        return render(exc)
 
     @app.errorhandler(CSRFError)
     def _csrf_error(exc: CSRFError):

@@ -20,6 +20,7 @@ from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
+from monitor.redact import redact
 from monitor.settings import BY_NAME, GROUPS, SECTIONS, SETTINGS, Setting, Settings
 
 
@@ -34,7 +35,7 @@ def _convert(setting: Setting, value: Any, where: str) -> Any:
     """Convert and check ``value`` (from TOML or a string); ConfigError names ``where``."""
 
     def bad() -> ConfigError:
-        shown = "***" if setting.secret else repr(value)
+        shown = _shown(setting, value)
         return ConfigError(
             f"{where}: key '{setting.name}' must be {setting.expected()}, got {shown}."
         )
@@ -91,9 +92,16 @@ def _convert(setting: Setting, value: Any, where: str) -> Any:
     if setting.check is not None:
         problem = setting.check(out)
         if problem:
-            shown = "***" if setting.secret else repr(value)
+            shown = _shown(setting, value)
             raise ConfigError(f"{where}: key '{setting.name}' must be {problem}, got {shown}.")
     return out
+
+
+def _shown(setting: Setting, value: Any) -> str:
+    """A bad value as an error shows it: a secret not at all, a URL without its password."""
+    if setting.secret:
+        return "***"
+    return repr(redact(value)) if isinstance(value, str) else repr(value)
 
 
 def _read_file(path: Path) -> dict[str, Any]:
@@ -224,6 +232,10 @@ def render_docs() -> str:
         "`service.toml: key 'broker.url' must be an mqtt://host[:port] or mqtts://host[:port] URL, got 'http://x'.`",
         "Unknown tables and keys are errors too, so a typing mistake is never silently ignored.",
         "Relative paths in the file are relative to the file's folder.",
+        "",
+        "The dashboard (`whirlwatch dashboard`) takes its own options and environment variables:",
+        "the session key, running behind an HTTPS proxy and where failed sign-ins are counted",
+        "(docs/security.md, \"Dashboard settings\").",
         "",
     ]
     for section in SECTIONS:

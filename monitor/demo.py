@@ -26,6 +26,7 @@ from typing import Any
 
 from monitor.io.ingest_limits import IngestLimits
 from monitor.io.replay import Message, StreamPublisher, load_streams, replay
+from monitor.redact import redact
 
 #: Where the sample streams live in a source checkout.
 SAMPLES = Path(__file__).resolve().parent.parent / "sample_streams"
@@ -239,7 +240,7 @@ def run_demo(
         say(f"database: {db}")
         if dashboard_url:
             say(f"dashboard: {dashboard_url}  login: {user} / {password} (engineer)")
-        say(f"MQTT: subscribe to whirlwatch/+/alarms and whirlwatch/+/status at {broker_url}")
+        say(f"MQTT: subscribe to whirlwatch/+/alarms and whirlwatch/+/status at {redact(broker_url)}")
         say(f"replaying {len(messages)} messages from {origin}, accelerated")
         pub = StreamPublisher(broker_url, username=username, protocol=protocol)
         counter = {"n": 0}

@@ -26,6 +26,8 @@ from prometheus_client import (
 )
 from prometheus_client.core import GaugeMetricFamily
 
+from monitor.redact import redact
+
 #: Processing-time buckets, s: a 16,384-sample analysis takes a few ms.
 TIME_BUCKETS = (0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 10.0)
 
@@ -145,15 +147,16 @@ class MetricsServer:
 
         class Handler(BaseHTTPRequestHandler):
             def do_GET(self) -> None:  # noqa: N802 (http.server's name)
+                # Problems and labels quote error texts: never with a URL's password.
                 if self.path.startswith("/metrics"):
-                    body, ctype, code = metrics.text(), CONTENT_TYPE_LATEST, 200
+                    body, ctype, code = redact(metrics.text().decode()).encode(), CONTENT_TYPE_LATEST, 200
                 elif self.path.startswith("/healthz"):
                     h = health()
-                    body = json.dumps(h, default=str).encode()
+                    body = redact(json.dumps(h, default=str)).encode()
                     ctype, code = "application/json", 200 if h.get("ok") else 503
                 elif self.path.startswith("/readyz") and ready is not None:
                     h = ready()
-                    body = json.dumps(h, default=str).encode()
+                    body = redact(json.dumps(h, default=str)).encode()
                     ctype, code = "application/json", 200 if h.get("ready") else 503
                 else:
                     body, ctype, code = b"not found\n", "text/plain", 404

@@ -135,6 +135,7 @@ def _publish(plans: list[Plan], seed: int, machine_ids: tuple[str, ...], prefix:
     """Simulate the selected machines, merge in time order and publish at QoS 1."""
     from monitor.io.mqtt_names import MqttConfigError
     from monitor.io.replay import StreamPublisher, replay
+    from monitor.redact import redact
 
     seeds = np.random.SeedSequence(seed).spawn(len(plans))
     streams = [machine_messages(p, s, prefix) for p, s in zip(plans, seeds, strict=True)
@@ -143,11 +144,11 @@ def _publish(plans: list[Plan], seed: int, machine_ids: tuple[str, ...], prefix:
     try:
         pub = StreamPublisher(broker)
     except (MqttConfigError, OSError) as exc:
-        raise click.ClickException(f"cannot publish to {broker!r}: {exc}") from None
+        raise click.ClickException(f"cannot publish to {redact(broker)!r}: {exc}") from None
     try:
         with click.progressbar(length=len(messages), label="publishing", file=sys.stderr) as bar:
             n = replay(messages, pub, speedup=speedup, max_gap_s=max_gap_s,
                        progress=lambda _i, _n: bar.update(1))
     finally:
         pub.close()
-    click.echo(f"{broker}: {n} messages published", err=True)
+    click.echo(f"{redact(broker)}: {n} messages published", err=True)

@@ -1,4 +1,5 @@
-"""``whirlwatch user add`` and ``whirlwatch token create|revoke``: logins and API tokens."""
+"""``whirlwatch user add|password`` and ``whirlwatch token create|revoke``: logins and API
+tokens. Each change is recorded in the audit trail as made by ``local:<login name>``."""
 
 from __future__ import annotations
 
@@ -43,6 +44,36 @@ def add_cmd(
     finally:
         store.close()
     click.echo(f"added user {name} ({role})", err=True)
+
+
+@user.command("password")
+@click.argument("name")
+@click.option(
+    "--password-stdin",
+    is_flag=True,
+    help="Read the new password from the first line of standard input instead of a prompt.",
+)
+@database_options
+def password_cmd(name: str, password_stdin: bool, database_url: str | None, config_file: str | None) -> None:
+    """Set a new password for user NAME (an admin who forgot theirs); signs them out everywhere."""
+    from monitor.store.auth import AuthError, get_user, set_password
+
+    if password_stdin:
+        password = sys.stdin.readline().rstrip("\r\n")
+    else:
+        password = click.prompt("New password", hide_input=True, confirmation_prompt=True)
+    store = open_store(database_url, config_file)
+    try:
+        with store.transaction() as session:
+            found = get_user(session, name)
+            if found is None:
+                raise AuthError(f"no user named {name!r}; add one with `whirlwatch user add`.")
+            set_password(session, found, password)
+    except AuthError as exc:
+        raise click.UsageError(str(exc)) from exc
+    finally:
+        store.close()
+    click.echo(f"password of {name} set; their sessions are signed out", err=True)
 
 
 @click.group("token")

@@ -23,6 +23,8 @@ import re
 from dataclasses import dataclass
 from urllib.parse import unquote, urlsplit
 
+from monitor.redact import redact
+
 DEFAULT_PORTS = {"mqtt": 1883, "mqtts": 8883}
 _LEVEL = re.compile(r"[^/#+\x00]+")
 
@@ -47,22 +49,24 @@ def parse_broker_url(url: str) -> BrokerAddress:
 
     Default ports: 1883 (mqtt), 8883 (mqtts). Raises :class:`MqttConfigError`.
     """
+    # Errors show the URL without its password (monitor.redact).
+    shown = repr(redact(url)) if isinstance(url, str) else repr(url)
     if not isinstance(url, str) or not url.strip():
-        raise MqttConfigError(f"broker URL must be a non-empty mqtt:// or mqtts:// URL, got {url!r}.")
+        raise MqttConfigError(f"broker URL must be a non-empty mqtt:// or mqtts:// URL, got {shown}.")
     parts = urlsplit(url.strip())
     scheme = parts.scheme.lower()
     if scheme not in DEFAULT_PORTS:
-        raise MqttConfigError(f"broker URL {url!r} must start with mqtt:// or mqtts://.")
+        raise MqttConfigError(f"broker URL {shown} must start with mqtt:// or mqtts://.")
     try:
         port = parts.port
     except ValueError:
-        raise MqttConfigError(f"broker URL {url!r} has a port that is not a number in 1-65535.") from None
+        raise MqttConfigError(f"broker URL {shown} has a port that is not a number in 1-65535.") from None
     if not parts.hostname:
-        raise MqttConfigError(f"broker URL {url!r} names no host (write mqtt://HOST:PORT).")
+        raise MqttConfigError(f"broker URL {shown} names no host (write mqtt://HOST:PORT).")
     if parts.path not in ("", "/") or parts.query or parts.fragment:
-        raise MqttConfigError(f"broker URL {url!r} must not have a path, query or fragment.")
+        raise MqttConfigError(f"broker URL {shown} must not have a path, query or fragment.")
     if port == 0:
-        raise MqttConfigError(f"broker URL {url!r} has a port that is not a number in 1-65535.")
+        raise MqttConfigError(f"broker URL {shown} has a port that is not a number in 1-65535.")
     return BrokerAddress(
         tls=scheme == "mqtts",
         host=parts.hostname,

@@ -67,7 +67,7 @@ class Publisher:
         connect_async(self._client, self.settings, persistent=False)
         self._client.loop_start()
         if not self._connected.wait(timeout_s):
-            raise MqttError(f"no connection to the broker at {self.settings.url} within {timeout_s:g} s.")
+            raise MqttError(f"no connection to the broker at {self.settings.shown_url} within {timeout_s:g} s.")
 
     def publish(
         self, topic: str, payload: bytes, *, retain: bool = False, timeout_s: float = 10.0,

@@ -32,6 +32,7 @@ from monitor.io.mqtt_names import (
     is_topic_prefix,
     parse_broker_url,
 )
+from monitor.redact import redact
 from monitor.settings import BY_NAME, BrokerSettings, broker_default
 
 #: The MQTT versions spoken: the choices of setting ``broker.protocol``.
@@ -161,10 +162,15 @@ class MqttSettings:
             )
         if not address.tls and (self.ca_file or self.cert_file or self.key_file):
             raise MqttConfigError(
-                f"TLS files are set but the broker URL {self.url!r} is not mqtts://."
+                f"TLS files are set but the broker URL {self.shown_url!r} is not mqtts://."
             )
         if bool(self.cert_file) != bool(self.key_file):
             raise MqttConfigError("MQTT TLS client certificate needs both cert_file and key_file.")
+
+    @property
+    def shown_url(self) -> str:
+        """The broker URL as logs and messages show it: without its password."""
+        return redact(self.url)
 
     @property
     def address(self) -> BrokerAddress:

@@ -128,7 +128,7 @@ class MessageSource:
                 self.stats.stale_dropped += 1
                 self._release(stale)
         log.info(
-            "mqtt connected to %s (session present: %s)", self.settings.url, flags.session_present
+            "mqtt connected to %s (session present: %s)", self.settings.shown_url, flags.session_present
         )
         # A persistent session keeps the subscription, but a session that expired (or a
         # broker that lost its state) does not: subscribe on every connection.

@@ -71,7 +71,7 @@ class StreamPublisher:
         self.client.loop_start()
         if not self._connected.wait(10.0):
             self.close()
-            raise ConnectionError(f"no connection to the broker at {url} within 10 s.")
+            raise ConnectionError(f"no connection to the broker at {settings.shown_url} within 10 s.")
         self._infos: list[Any] = []
 
     def publish(self, topic: str, payload: bytes) -> None:

@@ -19,13 +19,17 @@ import warnings
 from typing import Any
 
 from monitor.model.timefmt import iso_utc
+from monitor.redact import redact
 
 #: A failure that keeps repeating is logged again at most this often, s.
 LOG_REPEAT_S = 30.0
 
 
 class JsonLineFormatter(logging.Formatter):
-    """One JSON object per log line: ts, level, logger, msg and any ``extra`` fields."""
+    """One JSON object per log line: ts, level, logger, msg and any ``extra`` fields.
+
+    The message, text fields and the traceback pass through :func:`monitor.redact.redact`,
+    so a URL's password never reaches the log, whoever wrote the line (a library too)."""
 
     _skip = frozenset(logging.LogRecord("", 0, "", 0, "", (), None).__dict__) | {"message"}
 
@@ -34,13 +38,13 @@ class JsonLineFormatter(logging.Formatter):
             "ts": iso_utc(record.created, timespec="milliseconds"),
             "level": record.levelname.lower(),
             "logger": record.name,
-            "msg": record.getMessage(),
+            "msg": redact(record.getMessage()),
         }
         for k, v in record.__dict__.items():
             if k not in self._skip and not k.startswith("_"):
-                out[k] = v
+                out[k] = redact(v) if isinstance(v, str) else v
         if record.exc_info:
-            out["error"] = self.formatException(record.exc_info)
+            out["error"] = redact(self.formatException(record.exc_info))
         return json.dumps(out, default=str)
 
 

@@ -432,7 +432,7 @@ class Service:
         self.source = source
         source.start_batches(self._on_batch, self.max_batch)
         if not source.wait_subscribed(wait_s):
-            what = (f"no subscription at the broker {self.mqtt.url}" if self._given_source is None
+            what = (f"no subscription at the broker {self.mqtt.shown_url}" if self._given_source is None
                     else "the source was not ready")
             raise ServiceError(
                 f"{what} within {wait_s:g} s" + (f" ({source.last_error})." if source.last_error else ".")
@@ -440,7 +440,7 @@ class Service:
         self._periodic = self._thread(lambda: run_jobs(self._jobs(), self._stop), "periodic")
         self._started = True
         log.info("service started", extra={
-            "broker": self.mqtt.url, "client_id": self.mqtt.client_id,
+            "broker": self.mqtt.shown_url, "client_id": self.mqtt.client_id,
             "shared_group": self.mqtt.share_group, "machines": len(self.registry.machines),
             "database": self.store.engine.url.render_as_string(hide_password=True)})
 

@@ -12,7 +12,8 @@ Tables (see docs/store.md for the full schema and the retention policy):
   alarm transition as evidence.
 - ``speed_readings``: the speed stream, unique on (machine, ts).
 - ``alarms`` and ``alarm_transitions``: the alarm history, never thinned.
-- ``users`` and ``api_tokens``: dashboard logins and hashed API tokens.
+- ``users`` and ``api_tokens``: dashboard logins and hashed API tokens;
+  ``audit_events`` every change to them, with who, when and from where.
 - ``dead_letters``: rejected messages with their reason and first bytes.
 - ``detector_state``: one JSON snapshot per machine so a restarted service can rebuild
   its detectors.
@@ -393,6 +394,10 @@ class User(Base):
     role: Mapped[str] = mapped_column(String(16))
     created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
     disabled: Mapped[bool] = mapped_column(Boolean, default=False)
+    # Stored in each dashboard session; moving it on ends every session of the user.
+    session_version: Mapped[int] = mapped_column(Integer, default=0, server_default="0")
+    # Client addresses of the last successful sign-ins, newest last (login limiter).
+    known_addresses: Mapped[list[Any]] = mapped_column(JSON, default=list, server_default="[]")
 
     tokens: Mapped[list[ApiToken]] = relationship(back_populates="user")
 
@@ -411,6 +416,23 @@ class ApiToken(Base):
     last_used_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime)
 
     user: Mapped[User] = relationship(back_populates="tokens")
+
+
+class AuditEvent(Base):
+    """A change to users, passwords, roles or tokens, and each sign-in and sign-out:
+    who did it (``actor``), what (``action``, ``detail``), to whom (``target``), when
+    and from which client address. Never thinned; users' deletion keeps their events."""
+
+    __tablename__ = "audit_events"
+    __table_args__ = (Index(None, "at"), Index(None, "target", "at"))
+
+    id: Mapped[int] = mapped_column(BigId, primary_key=True)
+    at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
+    actor: Mapped[str] = mapped_column(String(100))
+    action: Mapped[str] = mapped_column(String(32))
+    target: Mapped[str] = mapped_column(String(100), default="")
+    detail: Mapped[dict[str, Any]] = mapped_column(JSON, default=dict)
+    address: Mapped[str] = mapped_column(String(64), default="")
 
 
 # ----------------------------------------------------------------------------- service
