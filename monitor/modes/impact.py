@@ -33,6 +33,7 @@ close to 1 at the resonances of a good measurement (from memory).
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from dataclasses import dataclass
 from typing import Any, Literal
@@ -121,7 +122,8 @@ class IdentifiedMode:
     coherence : float or None
         Mean coherence over the half-power band (with a force channel and several hits).
     noise_margin_db : float or None
-        How far the peak stands above the noise floor, dB; None for a noise-free record.
+        How far the peak rises above the higher of its two valleys (its prominence),
+        relative to the noise floor at the peak, dB; None for a noise-free record.
     """
 
     frequency_hz: float
@@ -303,13 +305,18 @@ def bump_test(
     top = float(seg.max())
     if not top > 0:
         return BumpTest(frf, (lo, hi), (), checks)
-    found, _ = signal.find_peaks(seg, prominence=prom * top)
+    found, props = signal.find_peaks(seg, prominence=prom * top)
     found = found + i0
-    by_size = found[np.argsort(mag[found])[::-1]]
-    clear = mag[by_size] >= margin * floor[by_size]
-    rejected = [_below_floor(f[k], mag[k], floor[k], noise_margin_db)
-                for k in by_size[~clear][: int(max_modes)]]
-    pk = np.sort(by_size[clear][: int(max_modes)])
+    # how far each peak rises above the higher of its two valleys, in noise floors
+    rise = props["prominences"] / np.maximum(floor[found], np.finfo(float).tiny)
+    order = np.argsort(mag[found])[::-1]
+    clear = rise[order] >= margin
+    rejected = [_below_floor(f[k], mag[k], r, noise_margin_db)
+                for k, r in zip(found[order][~clear][: int(max_modes)],
+                                rise[order][~clear], strict=False)]
+    keep = order[clear][: int(max_modes)]
+    keep = keep[np.argsort(found[keep])]
+    pk, pk_rise = found[keep], rise[keep]
     # valleys between neighbouring peaks bound each peak's half-power search
     bounds = [i0] + [
         int(a + np.argmin(mag[a : b + 1])) for a, b in zip(pk[:-1], pk[1:], strict=True)
@@ -317,6 +324,8 @@ def bump_test(
     modes: list[IdentifiedMode] = []
     for j in range(pk.size):
         m = _identify(frf, y, fs, pk, j, (bounds[j], bounds[j + 1]), decrement, curve_fit)
+        if floor[pk[j]] > 0:
+            m = dataclasses.replace(m, noise_margin_db=20.0 * math.log10(pk_rise[j]))
         if frf.hits >= 2 and m.coherence is not None and m.coherence < min_coh:
             rejected.append(RejectedPeak(
                 m.frequency_hz, m.magnitude, "coherence",
@@ -341,12 +350,12 @@ def _search_band(band_hz: tuple[float, float] | None, frf: FrequencyResponse,
     return lo, min(hi, fs / 2)
 
 
-def _below_floor(freq_hz: float, magnitude: float, floor: float, margin_db: float) -> RejectedPeak:
-    stands = 20.0 * math.log10(magnitude / floor) if magnitude > 0 else -math.inf
+def _below_floor(freq_hz: float, magnitude: float, rise: float, margin_db: float) -> RejectedPeak:
+    """A peak rising ``rise`` noise floors above its valleys, fewer than required."""
     return RejectedPeak(
         float(freq_hz), float(magnitude), "noise_floor",
-        f"the peak at {freq_hz:.3f} Hz stands {stands:.1f} dB above the noise floor, less "
-        f"than the {margin_db:g} dB required")
+        f"the peak at {freq_hz:.3f} Hz rises {20.0 * math.log10(rise):.1f} dB above the noise "
+        f"floor, less than the {margin_db:g} dB required")
 
 
 def _identify(frf: FrequencyResponse, y: np.ndarray, fs: float, pk: np.ndarray, j: int,
@@ -400,12 +409,10 @@ def _identify(frf: FrequencyResponse, y: np.ndarray, fs: float, pk: np.ndarray, 
             if fit_band[1] - fit_band[0] < 4 * frf.resolution_hz:
                 fit_band = (fpk - 2 * frf.resolution_hz, fpk + 2 * frf.resolution_hz)
         modal = fit_sdof(frf, fpk, band_hz=fit_band, damping_guess=guess)
-    floor = float(frf.noise_floor[k])
     return IdentifiedMode(
         frequency_hz=fpk, magnitude=peak, half_power_hz=hp,
         damping_ratio_half_power=z_hp, amplification_factor=af,
         amplification_factor_from_damping=1.0 / (2.0 * z_for_af) if z_for_af else None,
         log_decrement=delta, damping_ratio_decrement=z_dec,
         decrement_hits=n_dec, decrement_cycles=cycles, fit=modal, coherence=coh,
-        noise_margin_db=20.0 * math.log10(peak / floor) if floor > 0 else None,
     )
