@@ -81,9 +81,8 @@ class HitCheck:
     ``noise`` and ``threshold`` (HIT_THRESHOLD x noise) in the force unit; ``peak`` the
     largest excursion from the median (signed); ``pulses`` in time order (the hit's own
     pulse is the one holding ``peak``); ``flat_samples`` the longest run of samples at
-    the hit's extreme value; ``onset_index`` the first sample above ``threshold`` (the
-    trigger), None without a hit; ``problems`` ``(kind, sentence)`` pairs, empty for a
-    clean hit.
+    the hit's extreme value; ``problems`` ``(kind, sentence)`` pairs, empty for a clean
+    hit.
     """
 
     noise: float
@@ -91,7 +90,6 @@ class HitCheck:
     peak: float
     pulses: tuple[Pulse, ...]
     flat_samples: int
-    onset_index: int | None
     problems: tuple[tuple[Problem, str], ...] = field(default=())
 
     @property
@@ -137,14 +135,13 @@ def _pulses(a: np.ndarray, level: float, fs: float, sign: float) -> list[Pulse]:
     """Runs of ``a`` above ``level`` with release below ``PULSE_RELEASE x level``; their
     peaks multiplied by ``sign`` (the hit's direction in the record)."""
     out: list[Pulse] = []
-    release = PULSE_RELEASE * level
-    i, n = 0, a.size
+    n = a.size
     above = np.flatnonzero(a > level)
+    released = np.flatnonzero(a < PULSE_RELEASE * level)
     while above.size:
         s = int(above[0])
-        e = s
-        while e + 1 < n and a[e + 1] >= release:
-            e += 1
+        after = released[released > s]
+        e = int(after[0]) - 1 if after.size else n - 1
         seg = a[s : e + 1]
         k = s + int(np.argmax(seg))
         over = np.flatnonzero(seg > level)
@@ -153,8 +150,7 @@ def _pulses(a: np.ndarray, level: float, fs: float, sign: float) -> list[Pulse]:
         t1 = _crossing(a, last, last + 1, level) if last + 1 < n else float(last)
         out.append(Pulse(start_s=first / fs, peak_s=k / fs, peak=sign * float(a[k]),
                          width_s=max(t1 - t0, 0.0) / fs))
-        i = e + 1
-        above = above[above >= i]
+        above = above[above > e]
     return out
 
 
@@ -206,13 +202,12 @@ def check_hit(
         problems.insert(0, ("no_hit", (
             f"no hit: the largest force, {abs(peak):.3g} {unit} from the median, stays below "
             f"{HIT_THRESHOLD:g} x the noise level of {sigma:.3g} {unit}")))
-        return HitCheck(sigma, threshold, peak, (), 0, None, tuple(problems))
+        return HitCheck(sigma, threshold, peak, (), 0, tuple(problems))
     sign = math.copysign(1.0, peak)
     a = d * sign  # the hit's direction is positive
     level = max(threshold, PULSE_FRACTION * abs(peak))
     pulses = _pulses(a, level, fs, sign)
     main = max(pulses, key=lambda p: abs(p.peak))
-    onset = int(np.flatnonzero(a > threshold)[0])
     flat = _flat_run(x, k)
     if flat >= FLAT_TOP_SAMPLES and flat / fs >= FLAT_TOP_FRACTION * main.width_s:
         problems.append(("clipped", (
@@ -229,7 +224,7 @@ def check_hit(
         problems.append(("double_hit", (
             f"a second pulse of {abs(second.peak):.3g} {unit} comes {dt_ms:+.1f} ms from the "
             f"hit of {abs(peak):.3g} {unit} (double hit)")))
-    return HitCheck(sigma, threshold, peak, tuple(pulses), flat, onset, tuple(problems))
+    return HitCheck(sigma, threshold, peak, tuple(pulses), flat, tuple(problems))
 
 
 def check_hits(
