@@ -1,4 +1,6 @@
 """Mode identification (monitor.modes) and the ``bumptest`` / ``passage`` commands.
+The impact test's frequency response, its checks of each hit and its refusals are in
+tests/test_modes_impact.py.
 
 Every expected value comes from a textbook formula, a worked example, API 684's rule or
 scipy as an independent reference; the signals are closed-form responses, scipy's own
@@ -25,9 +27,6 @@ from monitor.model.readings import SpeedReading, Waveform
 from monitor.model.registry import Machine, Mode, Point, Registry
 from monitor.model.registry_file import dump_registry
 from monitor.modes.damping import damping_from_decrement, decay_decrement, decrement_from_amplitudes
-from monitor.modes.frequency_response import frequency_response
-from monitor.modes.impact import bump_test
-from monitor.modes.peaks import half_power_points
 from monitor.modes.runup import BodeData, bode_data, find_passages, order_point
 from monitor.modes.shift import compare_modes, mode_shift
 from monitor.modes.skip_bands import skip_bands
@@ -37,30 +36,14 @@ from monitor.sim.speed_profile import SpeedProfile
 T0 = 1772431200.0  # 2026-03-02T06:00:00Z
 
 
-def sdof_impulse(fn_hz: float, zeta: float, fs_hz: float, decays: float = 10.0,
-                 mass: float = 1.0) -> np.ndarray:
-    """h(t) = exp(-zeta wn t) sin(wd t) / (m wd): displacement per unit impulse (Thomson,
-    impulse response of the damped SDOF system), over ``decays`` time constants."""
-    wn = 2 * math.pi * fn_hz
-    wd = wn * math.sqrt(1 - zeta * zeta)
-    t = np.arange(int(decays / (zeta * wn) * fs_hz)) / fs_hz
-    return np.exp(-zeta * wn * t) * np.sin(wd * t) / (mass * wd)
-
-
-def half_power_ratios(zeta: float) -> tuple[float, float]:
-    """r1, r2 with r^2 = 1 - 2 zeta^2 -+ 2 zeta sqrt(1 - zeta^2) (REFERENCES.md, SDOF)."""
-    c = 1 - 2 * zeta**2
-    d = 2 * zeta * math.sqrt(1 - zeta**2)
-    return math.sqrt(c - d), math.sqrt(c + d)
-
-
 # ----------------------------------------------------------------------------- decrement
 
 
 class TestLogDecrement:
     # Thomson, Theory of Vibration with Applications, Example 2.7-1: W = 10 lb,
     # k = 30 lb/in, c = 0.12 lb s/in. Published: omega_n = 34.0 rad/s, zeta = 0.0681,
-    # delta = 0.429; recomputed (REFERENCES.md): 34.029, 0.068059, 0.42862, x1/x2 = 1.5351.
+    # delta = 0.429; recomputed from the example's data: 34.029, 0.068059, 0.42862,
+    # x1/x2 = 1.5351.
     W, K, C = 10.0, 30.0, 0.12
     GRAV = G_SI / inch  # in/s^2
 
@@ -90,7 +73,7 @@ class TestLogDecrement:
     def test_decay_of_thomson_system(self) -> None:
         fs = 1000.0
         x = self._free_decay(fs)
-        # REFERENCES.md recomputed values (g = 386 in/s^2 there; 386.09 moves them < 2e-4)
+        # values recomputed from Example 2.7-1's data (g = 386 in/s^2; 386.09 moves them < 2e-4)
         # raw record: 0.2 %; band-passed: 1.5 % (the filter trims the skirts of a mode
         # this heavily damped, 7 cycles down to 5 %)
         for filt, rel in ((False, 2e-3), (True, 1.5e-2)):
@@ -123,161 +106,6 @@ class TestLogDecrement:
     def test_bad_amplitudes(self, bad: dict) -> None:
         with pytest.raises(ValueError, match="x0|xn|cycles"):
             decrement_from_amplitudes(**bad)
-
-
-# ----------------------------------------------------------------------------- half power
-
-
-class TestHalfPower:
-    @pytest.mark.parametrize("zeta", [0.01, 0.02, 0.05])
-    def test_closed_form_impulse_response(self, zeta: float) -> None:
-        fs, fn = 1000.0, 20.0
-        h = sdof_impulse(fn, zeta, fs)
-        test = bump_test(h, fs, quantity="displacement", unit="m", band_hz=(5, 50))
-        assert len(test.modes) == 1
-        m = test.modes[0]
-        # receptance peak at r = sqrt(1 - 2 zeta^2) (Thomson; REFERENCES.md)
-        assert m.frequency_hz == pytest.approx(fn * math.sqrt(1 - 2 * zeta**2), rel=1e-4)
-        r1, r2 = half_power_ratios(zeta)
-        assert m.half_power_hz is not None
-        # textbook half-power points (REFERENCES.md); tolerance: 5e-4, engineering choice
-        # for a noise-free sampled response
-        assert m.half_power_hz[0] == pytest.approx(fn * r1, rel=5e-4)
-        assert m.half_power_hz[1] == pytest.approx(fn * r2, rel=5e-4)
-        # zeta = (f2 - f1) / (2 f_n): the half-power estimate is biased by O(zeta^2);
-        # tolerance 1 % of zeta covers it up to zeta = 0.05 (0.5 % there, computed from
-        # the r1, r2 formula)
-        assert m.damping_ratio_half_power == pytest.approx(zeta, rel=1e-2)
-        # tolerance: 0.5 %, engineering choice: the decrement of a noise-free decay is exact
-        # up to sampling of the peaks
-        assert m.damping_ratio_decrement == pytest.approx(zeta, rel=5e-3)
-        # API 684 AF = f_n / (f2 - f1) ~ 1 / (2 zeta) for light damping
-        assert m.amplification_factor == pytest.approx(1 / (2 * zeta), rel=1e-2)
-        assert m.fit is not None
-        # analytic: the fn and zeta of the closed-form impulse response; tolerances
-        # 1e-4 / 1e-3, engineering choice for a noise-free curve fit
-        assert m.fit.frequency_hz == pytest.approx(fn, rel=1e-4)
-        assert m.fit.damping_ratio == pytest.approx(zeta, rel=1e-3)
-        assert m.fit.damping_ratio_std < 0.01 * zeta
-
-    def test_reference_values_zeta_005(self) -> None:
-        # REFERENCES.md (computed): zeta = 0.05 -> half-power at r = 0.946111, 1.046363
-        r1, r2 = half_power_ratios(0.05)
-        assert (r1, r2) == (pytest.approx(0.946111, abs=1e-6), pytest.approx(1.046363, abs=1e-6))
-        # the same points found numerically on |H(r)| sampled by scipy.signal.freqs
-        r = np.linspace(0.8, 1.2, 40001)
-        _, h = signal.freqs([1], [1, 2 * 0.05, 1], worN=r)
-        k = int(np.argmax(np.abs(h)))
-        hp = half_power_points(r, np.abs(h), k)
-        assert hp == (pytest.approx(0.946111, abs=2e-5), pytest.approx(1.046363, abs=2e-5))
-
-    def test_unresolved_side_gives_none(self) -> None:
-        f = np.linspace(0, 10, 101)
-        m = np.exp(-((f - 1.0) ** 2))  # never falls to 0.707 of the peak left of f = 0.4
-        assert half_power_points(f, m, 10, lo_index=5) is None
-
-
-# ----------------------------------------------------------------------------- FRF
-
-
-class TestFrequencyResponse:
-    FS, FN, ZETA, MASS = 4096.0, 30.0, 0.02, 2.0
-
-    def _hit(self, rng: np.random.Generator | None = None, noise: float = 0.0):
-        wn = 2 * math.pi * self.FN
-        n = int(12 / (self.ZETA * wn) * self.FS)
-        t = np.arange(n) / self.FS
-        f = np.zeros(n)
-        width = 0.002  # half-sine hammer pulse, s
-        on = (t >= 0.01) & (t < 0.01 + width)
-        f[on] = 100.0 * np.sin(np.pi * (t[on] - 0.01) / width)
-        sys = signal.lti([1 / self.MASS], [1, 2 * self.ZETA * wn, wn * wn])
-        _, y, _ = signal.lsim(sys, f, t)
-        if rng is not None:
-            f = f + rng.normal(0, noise, n)
-            y = y + rng.normal(0, noise * 1e-4, n)
-        return f, y
-
-    def test_h1_matches_scipy_freqs(self) -> None:
-        f, y = self._hit()
-        frf = frequency_response(y, self.FS, force=f, quantity="displacement", unit="m")
-        wn = 2 * math.pi * self.FN
-        _, ref = signal.freqs([1 / self.MASS], [1, 2 * self.ZETA * wn, wn * wn],
-                              worN=2 * math.pi * frf.freq_hz)
-        band = (frf.freq_hz > 0.5 * self.FN) & (frf.freq_hz < 2 * self.FN)
-        ratio = frf.response[band] / ref[band]
-        # sampled (lsim) vs continuous system: 0.5 % and 0.5 deg over 0.5-2 f_n
-        assert np.max(np.abs(np.abs(ratio) - 1)) < 5e-3
-        assert np.max(np.abs(np.degrees(np.angle(ratio)))) < 0.5
-        assert frf.kind == "H1" and frf.unit == "m/N"
-
-    def test_coherence_against_scipy(self) -> None:
-        rng = np.random.default_rng(7)
-        hits = [self._hit(rng, noise=0.5) for _ in range(5)]
-        F = np.array([h[0] for h in hits])
-        Y = np.array([h[1] for h in hits])
-        test = bump_test(Y, self.FS, force=F, quantity="displacement", unit="m",
-                               band_hz=(5, 200))
-        frf = test.frf
-        n = F.shape[1]
-        # scipy.signal.coherence over the concatenated hits, one boxcar segment per hit
-        fr, coh = signal.coherence(F.ravel(), Y.ravel(), fs=self.FS, window="boxcar",
-                                   nperseg=n, noverlap=0, nfft=frf.freq_hz.size * 2 - 2,
-                                   detrend=False)
-        assert np.allclose(fr, frf.freq_hz)
-        assert np.allclose(frf.coherence, coh, atol=1e-9)
-        (m,) = test.modes
-        assert m.coherence is not None and m.coherence > 0.95
-        assert m.fit is not None
-        # analytic: FN and ZETA of the simulated system; tolerances 0.2 % / 5 %, engineering
-        # choice for five hits with added force and response noise
-        assert m.fit.frequency_hz == pytest.approx(self.FN, rel=2e-3)
-        assert m.fit.damping_ratio == pytest.approx(self.ZETA, rel=0.05)
-        assert m.decrement_hits == 5
-
-    def test_single_hit_response_spectrum_is_proportional_to_receptance(self) -> None:
-        h = sdof_impulse(self.FN, self.ZETA, self.FS)
-        frf = frequency_response(h, self.FS, quantity="displacement", unit="m")
-        wn = 2 * math.pi * self.FN
-        _, ref = signal.freqs([1], [1, 2 * self.ZETA * wn, wn * wn],
-                              worN=2 * math.pi * frf.freq_hz)
-        band = (frf.freq_hz > 0.5 * self.FN) & (frf.freq_hz < 2 * self.FN)
-        # Fourier transform of the impulse response = receptance (unit impulse, m = 1);
-        # the sampled sum approximates the integral to 0.2 % over 0.5-2 f_n at fs = 4096 Hz
-        assert np.allclose(frf.response[band], np.abs(ref[band]), rtol=2e-3)
-
-    def test_two_close_modes_separated(self) -> None:
-        fs = 1024.0
-        h = sdof_impulse(30.0, 0.01, fs, decays=12)
-        h2 = sdof_impulse(34.0, 0.01, fs, decays=12)
-        n = min(h.size, h2.size)
-        test = bump_test(h[:n] + 0.8 * h2[:n], fs, quantity="displacement", unit="m",
-                               band_hz=(10, 60))
-        assert len(test.modes) == 2
-        for m, fn in zip(test.modes, (30.0, 34.0), strict=True):
-            # peak of each receptance at fn sqrt(1 - 2 zeta^2), shifted a little by the
-            # other mode: 0.2 %
-            assert m.frequency_hz == pytest.approx(fn, rel=2e-3)
-            # analytic: zeta 0.01 of both simulated modes; tolerance: 5 %, engineering choice
-            # for the other mode's skirt overlapping the half-power band
-            assert m.damping_ratio_half_power == pytest.approx(0.01, rel=0.05)
-            assert m.damping_ratio_decrement == pytest.approx(0.01, rel=0.05)
-
-    @pytest.mark.parametrize("kwargs, word", [
-        (dict(response=np.zeros(100), fs_hz=0.0), "fs_hz"),
-        (dict(response=np.r_[np.zeros(99), np.nan], fs_hz=100.0), "response"),
-        (dict(response=np.zeros(8), fs_hz=100.0), "response"),
-        (dict(response=np.zeros(100), fs_hz=100.0, force=np.zeros(99)), "force"),
-        (dict(response=np.zeros(100), fs_hz=100.0, quantity="jerk"), "quantity"),
-        (dict(response=np.zeros(100), fs_hz=100.0, pad_factor=0), "pad_factor"),
-    ])
-    def test_bad_input(self, kwargs: dict, word: str) -> None:
-        with pytest.raises(ValueError, match=word):
-            frequency_response(**kwargs)
-
-    def test_bad_band(self) -> None:
-        with pytest.raises(ValueError, match="band_hz"):
-            bump_test(np.ones(256), 100.0, band_hz=(30, 10))
 
 
 # ----------------------------------------------------------------------------- run-up
@@ -398,7 +226,7 @@ class TestModeShift:
 
 class TestSkipBands:
     def test_hand_computed_api684(self) -> None:
-        # API 684 (REFERENCES.md): AF 10 -> 15 % (mode below) / 25 % (mode above).
+        # API 684 separation margin rule: AF 10 -> 15 % (mode below) / 25 % (mode above).
         # 20 Hz mode: excitation band [20 x 0.75, 20 x 1.15] = [15, 23] Hz
         # -> 1x: 900-1380 r/min, 2x: 450-690 r/min; clipped to 600-1500 r/min.
         a = Mode("a", 20.0, amplification_factor=10.0)
@@ -411,7 +239,7 @@ class TestSkipBands:
 
     def test_overlaps_merge(self) -> None:
         # second mode 25 Hz, AF 5: 17 (1 - 1/3.5) = 12.143 % below, 22.143 % above
-        # (API 684; REFERENCES.md table) -> [19.464, 28.036] Hz
+        # (API 684 separation margin rule) -> [19.464, 28.036] Hz
         # 1x: 1167.9-1682.1 r/min merges with 900-1380 and is clipped at 1500;
         # 2x: 583.9-841.1 r/min merges with 600-690.
         a = Mode("a", 20.0, amplification_factor=10.0)
@@ -615,7 +443,7 @@ class TestPassageCommand:
         # the simulated mode is at 15 Hz; velocity of the unbalance response peaks within
         # O(zeta^2) of it; 1.5 % allows for the 0.16 Hz spacing of the readings
         assert p["critical_speed_rpm"] == pytest.approx(900.0, rel=0.015)
-        # API 684 AF ~ 1 / (2 zeta) (REFERENCES.md); tolerance: 15 %, engineering choice:
+        # API 684 AF ~ 1 / (2 zeta) (Thomson: quality factor); tolerance: 15 %, engineering choice:
         # the half-power width 2 zeta fn = 0.9 Hz spans only about 6 readings 0.16 Hz apart
         assert p["amplification_factor"] == pytest.approx(1 / (2 * 0.03), rel=0.15)
         assert doc["comparison"][0]["status"] == "unchanged"

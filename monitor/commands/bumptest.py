@@ -4,7 +4,10 @@ FILE is a stream file (.jsonl): each waveform on ``{prefix}/{machine}/{point}/wa
 is one hit (the whole decay in one block). Hits of the same point are averaged. With
 ``--force-point ID`` the waveforms of that point are the hammer (force) channel: each is
 paired with the response waveforms of the same machine and timestamp and gives the H1
-frequency response and its coherence; its ``unit`` may be ``N``, ``kN`` or ``lbf``.
+frequency response and its coherence; its ``unit`` may be ``N``, ``kN`` or ``lbf``. Each
+hit is checked on the force channel (``monitor.modes.hits``): refused hits are left out
+with a warning, and a point none of whose hits is usable is refused: one sentence naming
+the file, the channels and what is wrong, exit status 1, no modes and no comparison.
 
 Lines are validated by ``monitor.io.ingest.decode_message`` like live traffic, without the
 age limits (a recording is old by nature). Without ``--machines`` every machine and point
@@ -41,7 +44,8 @@ from monitor.model.jsonsafe import jsonable
 from monitor.model.readings import SpeedReading, Waveform
 from monitor.model.registry import Machine, Point, Registry, RegistryError
 from monitor.model.registry_file import load_registry
-from monitor.modes.impact import BumpTest, bump_test
+from monitor.model.timefmt import iso_utc
+from monitor.modes.impact import BumpTest, ImpactRefused, bump_test
 from monitor.modes.shift import (
     DEFAULT_SHIFT_TOLERANCE_PCT,
     ModeShift,
@@ -221,6 +225,24 @@ class PointResult:
     hits_used: int
     hits_skipped: int
     ts: float = math.nan  # time of the latest hit used, epoch s
+    hit_ts: tuple[float, ...] = ()  # time of each hit paired with a force block, epoch s
+    force_channel: str | None = None  # machine/point of the force channel
+
+    def refused_hits(self) -> list[str]:
+        """One sentence per hit the force check refused."""
+        return [f"force channel {self.force_channel}, hit at {iso_utc(ts)}: {c.message()}."
+                for ts, c in zip(self.hit_ts, self.test.hits, strict=True) if not c.accepted]
+
+
+def _refusal(machine: str, point: str, force_channel: str, hit_ts: list[float],
+             exc: ImpactRefused) -> str:
+    """The sentence naming a point whose every hit was refused, and why."""
+    if len(hit_ts) == 1:
+        return (f"force channel {force_channel}, hit at {iso_utc(hit_ts[0])} for "
+                f"{machine}/{point}: {exc.checks[0].message()}.")
+    return (f"force channel {force_channel} for {machine}/{point}: all {len(hit_ts)} hits "
+            "were refused: " + "; ".join(f"{iso_utc(ts)}: {c.message()}"
+                                         for ts, c in zip(hit_ts, exc.checks, strict=True)) + ".")
 
 
 def analyse_point(
@@ -232,8 +254,10 @@ def analyse_point(
     band_hz: tuple[float, float] | None,
     stored: Machine | None,
     tolerance_pct: float,
+    force_range: float | None = None,
 ) -> PointResult:
-    """Average the hits of one point (paired with force blocks when there are any)."""
+    """Average the hits of one point (paired with force blocks when there are any);
+    ValueError with one sentence when the point's record is refused."""
     first = waves[0]
     fs, unit = first.fs_hz, first.unit
     pairs: list[tuple[Waveform, Waveform | None]] = []
@@ -263,17 +287,22 @@ def analyse_point(
     resp = np.stack([units.convert(w.samples[:n], w.unit, unit) for w, _ in pairs])
     partners = [f for _, f in pairs if f is not None]
     force = np.stack([f.samples[:n] for f in partners]) if partners else None
-    test = bump_test(
-        resp, fs, force=force, quantity=units.quantity_of(unit), unit=unit,
-        force_unit=force_unit or "N", band_hz=band_hz,
-    )
+    channel = f"{partners[0].machine}/{partners[0].point}" if partners else None
+    hit_ts = [w.ts for w, _ in pairs] if partners else []
+    try:
+        test = bump_test(
+            resp, fs, force=force, quantity=units.quantity_of(unit), unit=unit,
+            force_unit=force_unit or "N", force_range=force_range, band_hz=band_hz,
+        )
+    except ImpactRefused as exc:
+        raise ValueError(_refusal(machine, point, channel or "?", hit_ts, exc)) from None
     comparison: tuple[ModeShift, ...] = ()
     if stored is not None and stored.modes:
         comparison = compare_modes(
             stored.modes, [m.frequency_hz for m in test.modes], tolerance_pct=tolerance_pct
         )
-    return PointResult(machine, point, test, comparison, len(pairs), len(waves) - len(pairs),
-                       max(w.ts for w, _ in pairs))
+    return PointResult(machine, point, test, comparison, test.frf.hits, len(waves) - len(pairs),
+                       max(w.ts for w, _ in pairs), tuple(hit_ts), channel)
 
 
 def result_json(r: PointResult) -> dict[str, Any]:
@@ -284,11 +313,14 @@ def result_json(r: PointResult) -> dict[str, Any]:
         "point": r.point,
         "hits": r.hits_used,
         "hits_skipped": r.hits_skipped,
+        "hit_checks": [{"ts": iso_utc(ts), **c.to_json()}
+                       for ts, c in zip(r.hit_ts, t.hits, strict=True)],
         "kind": t.frf.kind,
         "unit": t.frf.unit,
         "resolution_hz": t.frf.resolution_hz,
         "band_hz": list(t.band_hz),
         "modes": [m.to_json() for m in t.modes],
+        "rejected_peaks": [p.to_json() for p in t.rejected],
         "comparison": [c.to_json() for c in r.comparison],
     })
 
@@ -299,12 +331,15 @@ def print_table(r: PointResult) -> None:
         f"{r.machine}/{r.point}: {r.hits_used} hit(s), {t.frf.kind} ({t.frf.unit}), "
         f"resolution {t.frf.resolution_hz:.3g} Hz, band {t.band_hz[0]:.4g}-{t.band_hz[1]:.4g} Hz"
     )
+    for text in r.refused_hits():
+        click.echo(f"  refused: {text}")
     if not t.modes:
         click.echo("  no mode found in the band.")
     else:
         click.echo(
             f"  {'#':>2} {'f Hz':>9} {'zeta -3dB':>9} {'zeta decr':>9} {'zeta fit':>15} "
-            f"{'AF API684':>9} {'1/(2zeta)':>9} {'margin below/above %':>20} {'coh':>5}"
+            f"{'AF API684':>9} {'1/(2zeta)':>9} {'margin below/above %':>20} {'coh':>5} "
+            f"{'S/N dB':>6}"
         )
     for i, m in enumerate(t.modes, 1):
         fit = "-" if m.fit is None else f"{m.fit.damping_ratio:.4f}+-{m.fit.damping_ratio_std:.1g}"
@@ -315,8 +350,10 @@ def print_table(r: PointResult) -> None:
             f"{format_or_dash(m.damping_ratio_decrement, '.4f'):>9} {fit:>15} "
             f"{format_or_dash(m.amplification_factor, '.1f'):>9} "
             f"{format_or_dash(m.amplification_factor_from_damping, '.1f'):>9} {reqs:>20} "
-            f"{format_or_dash(m.coherence, '.3f'):>5}"
+            f"{format_or_dash(m.coherence, '.3f'):>5} {format_or_dash(m.noise_margin_db, '.0f'):>6}"
         )
+    for p in t.rejected:
+        click.echo(f"  not a mode: {p.message}.")
     print_comparison(r.comparison, "not found in this test")
 
 
@@ -349,17 +386,19 @@ def _results(
     registry: Registry | None,
     band: tuple[float, float] | None,
     tolerance: float,
-    outcome: Outcome,
+    force_range: float | None,
+    refused: list[str],
 ) -> Iterator[PointResult]:
+    """Each point's result; the sentence of each refused point is appended to ``refused``."""
     known = registry.by_id() if registry is not None else {}
     for (m_id, p_id), waves in sorted(hits.items()):
         try:
             yield analyse_point(
                 m_id, p_id, waves, forces.get(m_id, []), band_hz=band,
-                stored=known.get(m_id), tolerance_pct=tolerance,
+                stored=known.get(m_id), tolerance_pct=tolerance, force_range=force_range,
             )
         except ValueError as exc:
-            outcome.reject("analysis_refused", str(exc))
+            refused.append(str(exc))
 
 
 @click.command("bumptest")
@@ -374,6 +413,9 @@ def _results(
               help="Search band for modes, Hz.")
 @click.option("--force-point", default=None, metavar="POINT",
               help="Point id whose waveforms are the hammer force (unit N, kN or lbf).")
+@click.option("--force-range", type=float, default=None, metavar="F",
+              help="Stated range (full scale) of the force channel, in its unit: a hit "
+                   "reaching it is refused as an overload.")
 @click.option("--tolerance", "tolerance_pct", type=float, default=DEFAULT_SHIFT_TOLERANCE_PCT,
               show_default=True, help="Mode shift tolerance, percent of the stored frequency.")
 @click.option("--json", "as_json", is_flag=True, help="One JSON object per measurement point.")
@@ -382,9 +424,9 @@ def _results(
               help="Compare with the modes stored in the database and record mode-shift alarms there.")
 @database_options
 def bumptest(file: Path, machines_file: Path | None, machine_id: str | None,
-             band: tuple[float, float] | None, force_point: str | None, tolerance_pct: float,
-             as_json: bool, prefix: str, record: bool, database_url: str | None,
-             config_file: str | None) -> None:
+             band: tuple[float, float] | None, force_point: str | None,
+             force_range: float | None, tolerance_pct: float, as_json: bool, prefix: str,
+             record: bool, database_url: str | None, config_file: str | None) -> None:
     """Identify natural frequencies, damping (half-power and logarithmic decrement) and
     amplification factors from the impact-test hits in stream FILE (.jsonl)."""
     total = check_file(file)
@@ -392,18 +434,21 @@ def bumptest(file: Path, machines_file: Path | None, machine_id: str | None,
         if band is not None:
             validate.ordered_pair(band, "--band")
         check_tolerance_pct(tolerance_pct, "--tolerance")
+        if force_range is not None:
+            validate.positive(force_range, "--force-range")
     registry, store = comparison_registry(record, machines_file, database_url, config_file)
     try:
-        _bumptest(file, total, registry, store, machine_id, band, force_point, tolerance_pct,
-                  as_json, prefix, machines_file)
+        _bumptest(file, total, registry, store, machine_id, band, force_point, force_range,
+                  tolerance_pct, as_json, prefix, machines_file)
     finally:
         if store is not None:
             store.close()
 
 
 def _bumptest(file: Path, total: int, registry: Registry | None, store: Any, machine_id: str | None,
-              band: tuple[float, float] | None, force_point: str | None, tolerance_pct: float,
-              as_json: bool, prefix: str, machines_file: Path | None) -> None:
+              band: tuple[float, float] | None, force_point: str | None,
+              force_range: float | None, tolerance_pct: float, as_json: bool, prefix: str,
+              machines_file: Path | None) -> None:
     if registry is not None and machine_id is not None:
         try:
             registry.machine(machine_id)
@@ -420,7 +465,10 @@ def _bumptest(file: Path, total: int, registry: Registry | None, store: Any, mac
         outcome.report("waveforms accepted")
         who = f" of machine {machine_id!r}" if machine_id else ""
         raise click.ClickException(f"stream file {str(file)!r} holds no response waveform{who}.")
-    for r in _results(hits, forces, registry, band, tolerance_pct, outcome):
+    refused: list[str] = []
+    for r in _results(hits, forces, registry, band, tolerance_pct, force_range, refused):
+        for text in r.refused_hits():
+            click.echo(f"warning: {file.name}: {text}", err=True)
         transitions = []
         if store is not None and registry is not None:
             transitions = record_comparison(
@@ -429,3 +477,5 @@ def _bumptest(file: Path, total: int, registry: Registry | None, store: Any, mac
         emit_point(result_json(r) if as_json else None, functools.partial(print_table, r), transitions,
                    recording=store is not None)
     outcome.report("waveforms accepted")
+    if refused:
+        raise click.ClickException(" ".join(f"{file.name}: {text}" for text in refused))

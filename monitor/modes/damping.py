@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from typing import Literal
 
 import numpy as np
 from numpy.typing import ArrayLike
@@ -137,7 +138,7 @@ def decay_decrement(
         # mirror image when it starts near a peak (released from a displacement), a
         # point reflection when it starts near zero (at rest, then hit).
         v0_over_w = (x[1] - x[0]) * fs / (2 * math.pi * fn)
-        pad = "even" if abs(x[0]) >= abs(v0_over_w) else "odd"
+        pad: Literal["even", "odd"] = "even" if abs(x[0]) >= abs(v0_over_w) else "odd"
         x = signal.sosfiltfilt(sos, x, padtype=pad, padlen=min(x.size - 1, int(4 * fs / fn)))
     idx, _ = signal.find_peaks(x, distance=max(1, int(0.6 * fs / fn)))
     if idx.size < 3:
@@ -287,7 +288,8 @@ def fit_sdof(
     m = res.fun.size
     dof = max(m - n_par, 1)
     s2 = 2.0 * res.cost / dof
-    jtj = res.jac.T @ res.jac
+    jac = np.asarray(res.jac, dtype=float)  # dense: least_squares was given no sparsity
+    jtj = jac.T @ jac
     try:
         cov = np.linalg.pinv(jtj) * s2
     except np.linalg.LinAlgError:

@@ -1,5 +1,16 @@
 """Frequency response of an impact test: the H1 estimate with its coherence when a force
-(hammer) channel exists, otherwise the amplitude spectrum of the decaying ring.
+(hammer) channel exists, otherwise the amplitude spectrum of the decaying ring; and the
+noise floor of either.
+
+The noise floor is what the response channel's noise alone puts into the estimate, as an
+RMS value at each frequency. The noise is taken as white with the standard deviation
+``sigma_i`` of :func:`monitor.modes.noise.noise_level` of hit i's response record; the
+DFT of n samples of it has ``E|N(f)|^2 = n sigma_i^2`` (Parseval). Over the hits,
+
+    H1:                 floor(f) = sqrt(sum_i n sigma_i^2 |F_i(f)|^2) / sum_i |F_i(f)|^2
+    response spectrum:  floor(f) = sqrt(mean_i n sigma_i^2) / fs
+
+with ``F_i`` the DFT of hit i's force: where the hammer puts little force the floor rises.
 
 References
 ----------
@@ -9,6 +20,7 @@ ordinary coherence function (from memory).
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from typing import Any, Literal
 
@@ -18,6 +30,7 @@ from scipy import fft as sp_fft
 from scipy import signal
 
 from monitor.model import units, validate
+from monitor.modes.noise import noise_level
 
 
 def hit_records(records: Any, name: str) -> np.ndarray:
@@ -66,6 +79,9 @@ class FrequencyResponse:
         Number of averaged hits.
     resolution_hz : float
         Frequency resolution of one hit, 1 / record length, Hz.
+    noise_floor : numpy.ndarray
+        RMS contribution of the response channel's noise to ``response`` at each
+        frequency, same unit (module docstring); zeros for noise-free records.
     """
 
     freq_hz: np.ndarray
@@ -76,6 +92,7 @@ class FrequencyResponse:
     unit: str
     hits: int
     resolution_hz: float
+    noise_floor: np.ndarray
 
     @property
     def magnitude(self) -> np.ndarray:
@@ -132,6 +149,7 @@ def frequency_response(
     validate.whole_number(pad_factor, "pad_factor", minimum=1, maximum=64)
     n = y.shape[1]
     nfft = sp_fft.next_fast_len(int(pad_factor) * n)
+    noise_power = n * np.array([noise_level(hit) for hit in y]) ** 2  # E|N(f)|^2 per hit
     opts: dict[str, Any] = dict(
         fs=fs, window="boxcar", nperseg=n, noverlap=0, nfft=nfft, detrend=False, axis=-1
     )
@@ -139,8 +157,9 @@ def frequency_response(
         f, pyy = signal.welch(y, scaling="spectrum", **opts)
         # back from power to |DFT| / fs (a density of the transient's Fourier transform)
         mag = np.sqrt(np.mean(pyy, axis=0) * n * n / 2.0) / fs
+        floor = np.full(f.shape, math.sqrt(float(np.mean(noise_power))) / fs)
         return FrequencyResponse(
-            f, mag, None, "response spectrum", q, unit, y.shape[0], fs / n
+            f, mag, None, "response spectrum", q, unit, y.shape[0], fs / n, floor
         )
     x = hit_records(force, "force")
     if x.shape != y.shape:
@@ -154,6 +173,9 @@ def frequency_response(
     tiny = np.finfo(float).tiny
     h1 = gxy / np.maximum(gxx, tiny)
     coh = np.abs(gxy) ** 2 / np.maximum(gxx * gyy, tiny)
+    ff = np.abs(sp_fft.rfft(x, nfft, axis=-1)) ** 2  # |F_i(f)|^2, same grid as f
+    floor = np.sqrt(noise_power @ ff) / np.maximum(ff.sum(axis=0), tiny)
     return FrequencyResponse(
-        f, h1, np.clip(coh, 0.0, 1.0), "H1", q, f"{unit}/{force_unit}", y.shape[0], fs / n
+        f, h1, np.clip(coh, 0.0, 1.0), "H1", q, f"{unit}/{force_unit}", y.shape[0], fs / n,
+        floor,
     )
