@@ -1,11 +1,13 @@
 """Natural frequencies (pure): arrays and dataclasses in, frozen dataclasses out.
 
-Four jobs, one module each:
+Four jobs:
 
 - :mod:`monitor.modes.impact`: impact (bump) tests, built on the frequency response
   (:mod:`monitor.modes.frequency_response`) and the damping estimates
   (:mod:`monitor.modes.damping`: logarithmic decrement, SDOF curve fit);
-- :mod:`monitor.modes.runup`: run-up and coast-down passages (Bode data, critical speeds);
+- :mod:`monitor.modes.runup`: run-up and coast-down passages (Bode data, critical speeds),
+  found live by :mod:`monitor.modes.passage_tracker` in the sweeps that
+  :mod:`monitor.modes.sweeps` splits a speed history into;
 - :mod:`monitor.modes.shift`: identified frequencies against the stored modes;
 - :mod:`monitor.modes.skip_bands`: drive speed bands to skip.
 
