@@ -105,6 +105,46 @@ def test_tach_gives_speed_and_phase():
     assert a.order(1).phase_deg == pytest.approx(135.0, abs=0.05)
 
 
+def test_pulses_carried_by_the_waveform_give_phase_and_win_over_its_speed():
+    # Speed priority (docs/mqtt.md): the block's pulse train, then the payload's speed,
+    # then the estimate. The payload says 17.0 Hz, the pulses 17.5 Hz.
+    m, p = machine()
+    f0, t1 = 17.5, 0.013
+    pulses = t1 + np.arange(60) / f0
+    pulses = pulses[pulses < N / FS]
+    x = 0.3 * np.cos(2 * np.pi * f0 * (T - t1) - math.radians(250.0))
+    x += 0.1 * np.cos(2 * 2 * np.pi * f0 * (T - t1) - math.radians(20.0))
+    w = Waveform("m1", "p1", 1_780_000_000.25, FS, "m/s^2", x, speed_hz=17.0,
+                 once_per_rev_s=pulses)
+    a = analyse_waveform(w, m, p)
+    # definition: pulses 1/f0 apart are f0 rev/s; the lags built into the cosines, as lag
+    # of the positive peak after the first pulse (common practice for balancing);
+    # tolerance: 0.05 deg, engineering choice for a noise-free record
+    assert (a.speed_hz, a.speed_source) == (pytest.approx(f0, rel=1e-9), "measured")
+    assert a.order(1).phase_deg == pytest.approx(250.0, abs=0.05)
+    assert a.order(2).phase_deg == pytest.approx(20.0, abs=0.05)
+    assert a.order(1).amplitude == pytest.approx(0.3, rel=1e-4)
+    d = analysis_to_json(a)
+    assert d["order_phase_deg"]["1"] == pytest.approx(250.0, abs=0.05)
+    assert "once_per_rev_error" not in d
+
+
+def test_unusable_pulses_do_not_cost_the_reading():
+    m, p = machine()
+    x = 0.5 * np.cos(2 * np.pi * 20.0 * T)
+    # a double trigger 1 ms after a pulse: too irregular to number the revolutions
+    pulses = np.array([0.01, 0.011, 0.06, 0.11, 0.16])
+    a = analyse_waveform(Waveform("m1", "p1", 1.0, FS, "m/s^2", x, speed_hz=20.0,
+                                  once_per_rev_s=pulses), m, p)
+    assert a.speed_hz == 20.0 and a.order(1).phase_deg is None
+    assert "too irregular" in analysis_to_json(a)["once_per_rev_error"]
+    # one pulse in the block: the payload's speed, phase against that pulse
+    one = analyse_waveform(Waveform("m1", "p1", 1.0, FS, "m/s^2", x, speed_hz=20.0,
+                                    once_per_rev_s=np.array([0.0125])), m, p)
+    # analytic: cos(2 pi 20 t) = cos(2 pi 20 (t - 0.0125) + 90 deg), a lag of -90 = 270 deg
+    assert one.order(1).phase_deg == pytest.approx(270.0, abs=0.05)
+
+
 def test_displacement_point():
     # V = 2 pi f D: 100 um peak at 50 Hz -> 31.416 mm/s peak, 22.214 mm/s RMS
     pd = Point(id="p1", quantity="displacement", unit="um")

@@ -176,6 +176,21 @@ CORPUS = [
     ("speed_hz negative", WAVE, wave(speed_hz=-1.0), "speed_negative", None, None),
     ("speed absurd", SPEED, dumps({"ts": NOW, "rpm": 1e7}), "speed_absurd", None, None),
     ("speed_rpm absurd", WAVE, wave(speed_rpm=500_000), "speed_absurd", None, None),
+    # once-per-revolution pulses: 256 samples at 25.6 kHz last 0.01 s (docs/mqtt.md)
+    ("pulses string", WAVE, wave(once_per_rev_s="0.001,0.002"), "once_per_rev_invalid", None, None),
+    ("pulses object", WAVE, wave(once_per_rev_s={"0": 0.001}), "once_per_rev_invalid", None, None),
+    ("pulses boolean", WAVE, wave(once_per_rev_s=[0.001, True]), "once_per_rev_invalid", None, None),
+    ("pulses numeric strings", WAVE, wave(once_per_rev_s=["0.001"]), "once_per_rev_invalid", None, None),
+    ("pulses null inside", WAVE, wave(once_per_rev_s=[0.001, None]), "once_per_rev_invalid", None, None),
+    ("pulses nested", WAVE, wave(once_per_rev_s=[[0.001]]), "once_per_rev_invalid", None, None),
+    ("pulses NaN", WAVE, raw_wave('"samples_f32": "' + f32_b64([0.5] * 256) + '", "once_per_rev_s": [NaN]'),
+     "once_per_rev_invalid", None, None),
+    ("pulses huge integer", WAVE, wave(once_per_rev_s=[10**400]), "once_per_rev_invalid", None, None),
+    ("pulses decreasing", WAVE, wave(once_per_rev_s=[0.005, 0.002]), "once_per_rev_invalid", None, None),
+    ("pulse before the block", WAVE, wave(once_per_rev_s=[-0.001, 0.002]), "once_per_rev_invalid", None, None),
+    ("pulse after the block", WAVE, wave(once_per_rev_s=[0.002, 0.0101]), "once_per_rev_invalid", None, None),
+    ("too many pulses", WAVE, wave(once_per_rev_s=[0.001, 0.002, 0.003, 0.004]), "once_per_rev_invalid",
+     IngestLimits(max_once_per_rev_pulses=3), None),
     ("id number", WAVE, wave(id=42), "id_invalid", None, None),
     ("id empty", WAVE, wave(id=""), "id_invalid", None, None),
     ("id too long", WAVE, wave(id="x" * 500), "id_invalid", None, None),
@@ -283,6 +298,29 @@ class TestGoodPayloads:
         assert _decode(WAVE, wave(speed_hz=12.5)).speed_hz == 12.5
         assert _decode(WAVE, wave()).speed_hz is None
 
+    def test_once_per_rev_pulses(self):
+        # repr(float) in json.dumps reads back to the same double (Python float repr)
+        times = [0.0, 0.0012345678901234, 0.0051, 0.0051, 0.01]  # 256 / 25600 Hz = 0.01 s
+        w = _decode(WAVE, wave(once_per_rev_s=times))
+        assert w.once_per_rev_s.dtype == np.float64
+        assert w.once_per_rev_s.tolist() == times  # a repeated time is kept, the end included
+        assert _decode(WAVE, wave(once_per_rev_s=[])).once_per_rev_s.size == 0
+        # old payloads, and null, carry no pulse input
+        assert _decode(WAVE, wave()).once_per_rev_s is None
+        assert _decode(WAVE, wave(once_per_rev_s=None)).once_per_rev_s is None
+
+    def test_pulse_rejections_are_one_sentence_naming_the_value(self):
+        for body, words in (
+            (wave(once_per_rev_s=[0.005, 0.002]), ("pulse 1", "0.002 s")),
+            (wave(once_per_rev_s=[0.002, 0.5]), ("0 to 0.01 s", "0.5 s")),
+            (wave(once_per_rev_s=[0.001, "x"]), ("once_per_rev_s[1]", "'x'")),
+        ):
+            with pytest.raises(Rejected) as info:
+                _decode(WAVE, body)
+            detail = info.value.detail
+            assert detail.count(". ") == 0 and detail.endswith(".")
+            assert all(w in detail for w in words), detail
+
     def test_other_unit_of_same_quantity_passes(self):
         assert _decode(WAVE, wave(unit="g")).unit == "g"
         assert _decode("whirlwatch/fan-1/shaft-x/waveform", wave(unit="mil")).unit == "mil"
@@ -305,7 +343,7 @@ class TestGoodPayloads:
     def test_stream_payload_round_trip(self):
         # What the stream files write (monitor.io.streams) decodes to the same reading, with
         # the samples as float32 base64 or as a list of numbers.
-        w = _decode(WAVE, wave(speed_hz=20.0, id="a"))
+        w = _decode(WAVE, wave(speed_hz=20.0, id="a", once_per_rev_s=[0.001, 0.006]))
         f32 = waveform_payload(w)
         plain = {k: v for k, v in f32.items() if k != "samples_f32"} | {"samples": w.samples.tolist()}
         for body in (f32, plain):
@@ -314,6 +352,7 @@ class TestGoodPayloads:
             assert (again.ts, again.fs_hz, again.speed_hz, again.reading_id) == (
                 w.ts, w.fs_hz, 20.0, "a"
             )
+            assert again.once_per_rev_s.tolist() == [0.001, 0.006]
 
     def test_custom_prefix(self):
         assert parse_topic("plant/a/whirlwatch/fan-1/speed", "plant/a/whirlwatch") == (

@@ -170,6 +170,19 @@ class TestTach:
         # the reference is a pulse instant
         assert ((tach.reference_s - 0.013) * 30.0) % 1.0 == pytest.approx(0.0, abs=1e-9)
 
+    def test_speed_drifting_within_the_train(self):
+        # uniform angular acceleration from 15 to 22.5 Hz over 1 s: pulse k where
+        # 15 t + 3.75 t^2 = k (kinematics); the mean speed over the pulse span is the
+        # speed at its mid-time, to first order; one pulse lost still counts
+        a, s0 = 7.5, 15.0
+        k = np.arange(19)
+        t = (-s0 + np.sqrt(s0**2 + 2 * a * k)) / a
+        tach = speed_from_tach(np.delete(t, 9))
+        assert tach.missing == 1
+        assert tach.speed_hz == pytest.approx(s0 + a * (t[0] + t[-1]) / 2, rel=0.01)
+        # revolutions since the first pulse at the pulse times: the parabola is exact
+        assert tach.revolutions_at(t) == pytest.approx(k, abs=1e-6)
+
     @pytest.mark.parametrize(
         "times,match",
         [

@@ -23,6 +23,7 @@ from monitor.io.streams import (
     write_stream,
 )
 from monitor.model.readings import SpeedReading, Waveform
+from monitor.model.registry import Machine, Point, Registry
 from monitor.model.registry_file import load_registry
 
 SAMPLES = Path(__file__).resolve().parent.parent / "sample_streams"
@@ -43,6 +44,14 @@ class TestPayloads:
         assert raw[:4] == bytes([0x00, 0x00, 0x80, 0x3F])
         assert np.array_equal(np.frombuffer(raw, "<f4"), x.astype(np.float32))
 
+    def test_once_per_rev_pulses_written_only_when_present(self) -> None:
+        x = np.zeros(128)
+        old = waveform_payload(Waveform("af-3", "de-h", TS, 2560.0, "m/s^2", x))
+        assert set(old) == {"ts", "fs", "unit", "samples_f32"}  # old payloads unchanged
+        pulses = np.array([0.0, 1 / 3, 0.04])  # 1/3 is not exact in binary: must round-trip
+        p = waveform_payload(Waveform("af-3", "de-h", TS, 2560.0, "m/s^2", x, once_per_rev_s=pulses))
+        assert p["once_per_rev_s"] == pulses.tolist()
+
     def test_speed_payload_and_topics(self) -> None:
         assert speed_payload(SpeedReading("af-3", TS, 24.5)) == {
             "ts": "2026-03-02T06:00:00.000Z", "hz": 24.5
@@ -61,6 +70,18 @@ class TestFiles:
         assert [t for t, _ in got] == ["whirlwatch/af-3/speed", "whirlwatch/af-3/de-h/waveform"]
         assert [json.loads(b) for _, b in got] == [p for _, p in msgs]
         assert len(path.read_text().splitlines()) == 2
+
+    def test_pulses_round_trip_through_a_file_and_ingest(self, tmp_path: Path) -> None:
+        reg = Registry((Machine(id="af-3", points=(Point("de-h", "horizontal", "acceleration",
+                                                          "m/s^2", 2560.0),)),))
+        pulses = 0.0123 + np.arange(3) / 24.7  # inside the 0.2 s of 512 samples at 2560 Hz
+        w = Waveform("af-3", "de-h", TS, 2560.0, "m/s^2", np.zeros(512), once_per_rev_s=pulses)
+        path = tmp_path / "p.jsonl"
+        write_stream(path, [reading_message(w)])
+        ((topic, payload),) = list(read_stream(path))
+        got = decode_message(topic, payload, reg, now=TS, limits=IngestLimits())
+        # repr of a double reads back to the same double (Python float repr)
+        assert got.once_per_rev_s.tolist() == pulses.tolist()
 
     @pytest.mark.parametrize(
         "line, problem",

@@ -74,7 +74,9 @@ class TachSpeed:
     ``uncertainty_hz`` its standard error (0 when the pulses lie exactly on the line);
     ``reference_s`` the fitted time (s, same clock as the pulses) of the pulse nearest the
     middle of the pulse train: the once-per-revolution phase reference; ``pulses`` count;
-    ``missing`` revolutions with no pulse.
+    ``missing`` revolutions with no pulse; ``revolution_poly`` the revolutions since the
+    first pulse as a polynomial of time (``numpy.polyval`` coefficients, highest power
+    first): a parabola (constant angular acceleration) from 4 pulses on, else a line.
     """
 
     speed_hz: float
@@ -82,6 +84,12 @@ class TachSpeed:
     reference_s: float
     pulses: int
     missing: int = 0
+    revolution_poly: tuple[float, ...] = ()
+
+    def revolutions_at(self, times_s: ArrayLike) -> np.ndarray:
+        """Revolutions turned since the first pulse at ``times_s`` (s, the pulses' clock):
+        the shaft angle / 2 pi, from :attr:`revolution_poly`."""
+        return np.polyval(np.asarray(self.revolution_poly), np.asarray(times_s, dtype=float))
 
 
 # ----------------------------------------------------------------------------- helpers
@@ -375,9 +383,10 @@ def estimate_speed(
 def speed_from_tach(pulse_times_s: ArrayLike) -> TachSpeed:
     """Running speed (Hz) and phase reference from once-per-revolution pulse times (s).
 
-    Each pulse is assigned its revolution number from the median interval (so a missed
-    pulse does not halve the speed), then a least-squares line t = t0 + k T gives
-    speed = 1/T with its standard error.
+    Each interval is counted in revolutions against the median interval (so a missed
+    pulse does not halve the speed, and a speed that drifts within the train keeps its
+    count), then a least-squares line t = t0 + k T gives speed = 1/T (the mean speed)
+    with its standard error.
 
     Raises
     ------
@@ -395,9 +404,11 @@ def speed_from_tach(pulse_times_s: ArrayLike) -> TachSpeed:
     if (dt <= 0).any():
         raise ValueError("pulse_times_s must be strictly increasing times in seconds.")
     period0 = float(np.median(dt))
-    k = np.rint((t - t[0]) / period0)
-    if np.any(np.diff(k) <= 0):
+    # interval by interval, so a speed that drifts within the train keeps its count
+    steps = np.rint(dt / period0)
+    if np.any(steps < 1):
         raise ValueError("pulse_times_s are too irregular to number the revolutions.")
+    k = np.concatenate(([0.0], np.cumsum(steps)))
     kc = k - k.mean()
     sxx = float(np.dot(kc, kc))
     period = float(np.dot(kc, t - t.mean()) / sxx)
@@ -412,4 +423,29 @@ def speed_from_tach(pulse_times_s: ArrayLike) -> TachSpeed:
         reference_s=t0 + period * k_mid,
         pulses=int(t.size),
         missing=int(k[-1] + 1 - t.size),
+        revolution_poly=tuple(float(c) for c in np.polyfit(t, k, 2 if t.size >= 4 else 1)),
     )
+
+
+def speed_from_pulse_train(once_per_rev_s: ArrayLike) -> TachSpeed | None:
+    """Speed and phase reference from a waveform's once-per-revolution pulse times (s), or
+    None when they hold fewer than two distinct pulses (no interval, so no speed).
+
+    The times follow the waveform payload's rule (docs/mqtt.md): finite and
+    non-decreasing; a repeated time is one pulse (a trigger counted twice).
+
+    Raises
+    ------
+    ValueError
+        Not 1-D, not finite, decreasing, or too irregular to number the revolutions
+        (:func:`speed_from_tach`).
+    """
+    t = np.asarray(once_per_rev_s, dtype=float)
+    if t.ndim != 1:
+        raise ValueError(f"once_per_rev_s must be a 1-D array of times in seconds, got shape {t.shape}.")
+    if not np.isfinite(t).all():
+        raise ValueError("once_per_rev_s must be finite times in seconds; found NaN or inf.")
+    if (np.diff(t) < 0).any():
+        raise ValueError("once_per_rev_s must be non-decreasing times in seconds.")
+    distinct = np.unique(t)
+    return speed_from_tach(distinct) if distinct.size >= 2 else None

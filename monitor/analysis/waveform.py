@@ -18,7 +18,7 @@ from monitor.analysis import spectrum as sp
 from monitor.analysis.orders import OrderAmplitude, normalise_orders, order_amplitudes
 from monitor.analysis.record import Record, record_spectrum
 from monitor.analysis.spectrum import Peak, Spectrum
-from monitor.analysis.speed import estimate_speed, speed_from_tach
+from monitor.analysis.speed import estimate_speed, speed_from_pulse_train
 from monitor.model import units, validate
 from monitor.model.bearing_geometry import SETTINGS_KEYS, BearingGeometry
 from monitor.model.jsonsafe import jsonable
@@ -60,7 +60,9 @@ class ReadingAnalysis:
     overall_velocity_mm_s_rms : float
         Band-limited overall velocity, mm/s RMS (ISO 20816 band, default 10-1000 Hz).
     orders : tuple of OrderAmplitude
-        1x, 2x and every excitation order of the machine, no duplicates, ascending.
+        1x, 2x and every excitation order of the machine, no duplicates, ascending;
+        each with ``phase_deg`` (lag after the first once-per-revolution pulse, degrees)
+        when the waveform had pulses, else None.
     one_x_normalised : float
         1x peak velocity (mm/s) divided by the square of running speed (Hz^2); an
         unbalance force grows with speed squared, so this stays flat with speed and rises
@@ -128,8 +130,9 @@ def analyse_waveform(
     machine, point : Machine, Point
         Registry entries: speed range, excitation orders, sensor quantity and unit.
     once_per_rev_s : array_like, optional
-        Once-per-revolution pulse times, seconds from the waveform's first sample. Give
-        the speed (when the waveform carries none) and the phase reference of the orders.
+        Once-per-revolution pulse times, seconds from the waveform's first sample;
+        default the waveform's own ``once_per_rev_s``. They give the speed (two distinct
+        pulses or more) and the phase reference of the orders (the first pulse).
     band_hz : (float, float), optional
         Overall velocity band, Hz; default :func:`severity_band_hz` (ISO 20816).
     peak_count : int
@@ -144,7 +147,12 @@ def analyse_waveform(
     -------
     ReadingAnalysis
         Speed in Hz, overall velocity in mm/s RMS, orders in the point's unit (peak) and
-        mm/s (peak), peaks in the point's unit (peak). When the machine's settings carry
+        mm/s (peak) with their phase (degrees, lag after the first pulse) when there are
+        pulses, peaks in the point's unit (peak). The speed is, by priority: the pulse
+        train's (measured over the block itself, and the clock the phases are read
+        against), the waveform's ``speed_hz`` (measured), the estimate from the spectrum.
+        A pulse train too irregular to number the revolutions is left out and
+        ``extra["once_per_rev_error"]`` says why. When the machine's settings carry
         a bearing geometry and the point measures acceleration, ``extra["bearing"]``
         holds :meth:`monitor.analysis.bearings.BearingAnalysis.to_json` (envelope amplitudes in
         m/s^2 peak, indicators in dB); when the geometry or the envelope analysis is
@@ -186,13 +194,22 @@ def analyse_waveform(
     vel = sp.to_velocity(spec, f_low_hz=lo)
     overall = sp.band_rms(vel, lo, min(hi, float(vel.freq_hz[-1])))
 
-    tach = speed_from_tach(once_per_rev_s) if once_per_rev_s is not None else None
-    if waveform.speed_hz is not None:
+    extra: dict[str, Any] = {"unit": unit, "band_hz": (lo, hi)}
+    pulses = once_per_rev_s if once_per_rev_s is not None else waveform.once_per_rev_s
+    tach = None
+    if pulses is not None:
+        try:
+            tach = speed_from_pulse_train(pulses)
+        except ValueError as exc:
+            # a miscounting key phasor must not cost the reading its spectrum and levels
+            extra["once_per_rev_error"] = str(exc)
+            pulses = None
+    source: Literal["measured", "estimated"] = "measured"
+    if tach is not None:
+        speed, uncertainty = tach.speed_hz, tach.uncertainty_hz
+    elif waveform.speed_hz is not None:
         speed = validate.frequency_hz(waveform.speed_hz, "waveform speed_hz", positive=True)
-        source: Literal["measured", "estimated"] = "measured"
         uncertainty = 0.0
-    elif tach is not None:
-        speed, source, uncertainty = tach.speed_hz, "measured", tach.uncertainty_hz
     else:
         # velocity shows 1x above the high-frequency content that dominates acceleration
         est = estimate_speed(
@@ -206,13 +223,12 @@ def analyse_waveform(
         unit,
         speed,
         _excitation_orders(machine),
-        reference_s=tach.reference_s if tach is not None else None,
+        once_per_rev_s=pulses,
     )
     one_x = next((o for o in orders if abs(o.order - 1.0) < 1e-9), None)
     one_x_norm = one_x.velocity_mm_s / speed**2 if one_x is not None else math.nan
     # skip the DC bin and the one next to it, where the removed mean and drift leak
     peaks = sp.find_peaks(spec, count=peak_count, min_hz=2.0 * spec.resolution_hz)
-    extra: dict[str, Any] = {"unit": unit, "band_hz": (lo, hi)}
     if point.quantity == "acceleration" and any(
         k in machine.settings for k in SETTINGS_KEYS
     ):
@@ -257,7 +273,7 @@ def analysis_to_json(a: ReadingAnalysis) -> dict[str, Any]:
     "amplitude"}), reading_id; plus unit, one_x_normalised and order_velocity_mm_s
     (order -> mm/s peak) and order_phase_deg (when a reference existed); bearing (the
     envelope analysis, docs/bearings.md) or bearing_error when the machine has a bearing
-    geometry.
+    geometry; once_per_rev_error when the pulse train was unusable.
     """
     out: dict[str, Any] = {
         "machine": a.machine,
@@ -280,4 +296,6 @@ def analysis_to_json(a: ReadingAnalysis) -> dict[str, Any]:
         out["bearing"] = a.extra["bearing"]
     if "bearing_error" in a.extra:
         out["bearing_error"] = a.extra["bearing_error"]
+    if "once_per_rev_error" in a.extra:
+        out["once_per_rev_error"] = a.extra["once_per_rev_error"]
     return out

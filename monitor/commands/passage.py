@@ -1,16 +1,15 @@
-"""``whirlwatch passage FILE``: resonance passages in a run-up or coast-down stream.
+"""``whirlwatch passage FILE``: resonance passages in the run-ups and coast-downs of a stream.
 
 Every waveform of the machine goes through the same analysis as ``whirlwatch analyse``
-(speed from the speed stream, or estimated from the spectrum); the 1x amplitude of each
-point against speed is the Bode plot's data, in which :func:`monitor.modes.runup.find_passages`
-finds the critical speeds, their amplification factors (API 684) and, when the
-waveforms carry a once-per-revolution reference, the phase. The passages are compared
-with the stored modes and turned into drive skip bands, next to the skip bands of the
-stored modes.
-
-Stream files carry no once-per-revolution pulses, so the phase columns stay empty here;
-the API (:func:`monitor.modes.runup.order_point` with ``reference_s``) gives phase when a
-reference exists.
+(speed from the waveform's once-per-revolution pulses, else from the speed stream, else
+estimated from the spectrum); each point's readings, in time order, are split into
+sweeps (run-ups and coast-downs, apart from steady running and stops) by the same
+tracker a live service uses (:class:`monitor.modes.passage_tracker.PassageTracker`, rules
+in :mod:`monitor.modes.sweeps`), and each sweep's 1x amplitude (and phase, when the
+waveforms carry once-per-revolution pulses) against speed is searched for passages:
+critical speeds, amplification factors (API 684), damping ratios. The passages of all
+sweeps are compared with the stored modes and turned into drive skip bands, next to the
+skip bands of the stored modes.
 
 With ``--record`` the registry comes from the database and the comparison with the stored
 modes is recorded there as ``mode_shift`` alarms (monitor/service/mode_findings.py).
@@ -43,7 +42,9 @@ from monitor.commands.usage import usage_errors
 from monitor.model import validate
 from monitor.model.jsonsafe import jsonable
 from monitor.model.registry import Machine
-from monitor.modes.runup import BodeData, Passage, bode_data, find_passages
+from monitor.model.timefmt import iso_utc
+from monitor.modes.passage_tracker import PassageTracker, SweepPassages
+from monitor.modes.runup import BodeData, Passage, bode_data
 from monitor.modes.shift import (
     DEFAULT_SHIFT_TOLERANCE_PCT,
     ModeShift,
@@ -51,12 +52,17 @@ from monitor.modes.shift import (
     compare_modes,
 )
 from monitor.modes.skip_bands import SkipBand, machine_skip_bands
+from monitor.modes.sweeps import MIN_READINGS, SweepRules
 
 AMPLITUDES = ("velocity", "displacement", "native")
 
 
 @dataclasses.dataclass(frozen=True)
 class PointPassages:
+    """One measurement point of the file: ``bode`` all its readings at or above the minimum
+    speed (as recorded), ``sweeps`` its run-ups and coast-downs with their passages,
+    ``passages`` and ``comparison`` those of every sweep together."""
+
     machine: str
     point: str
     bode: BodeData
@@ -65,6 +71,8 @@ class PointPassages:
     skip_identified: tuple[SkipBand, ...]
     ts: float = math.nan  # time of the latest reading used, epoch s
     readings: int = 0
+    sweeps: tuple[SweepPassages, ...] = ()
+    sweep_comparisons: tuple[tuple[ModeShift, ...], ...] = ()  # one per sweep
 
 
 def _amplitude(a: ReadingAnalysis, kind: str) -> tuple[float, float | None, str] | None:
@@ -79,28 +87,42 @@ def _amplitude(a: ReadingAnalysis, kind: str) -> tuple[float, float | None, str]
     return one.amplitude, one.phase_deg, a.spectrum.unit
 
 
+def _compare(machine: Machine, passages: tuple[Passage, ...], tolerance_pct: float) -> tuple[ModeShift, ...]:
+    if not machine.modes:
+        return ()
+    return compare_modes(machine.modes, [p.frequency_hz for p in passages], tolerance_pct=tolerance_pct)
+
+
 def point_passages(
     machine: Machine, point: str, analyses: list[ReadingAnalysis], *, amplitude: str,
     min_speed_hz: float, tolerance_pct: float, prominence: float,
 ) -> PointPassages | None:
-    used = [(a, v) for a in analyses
-            if a.speed_hz >= min_speed_hz and (v := _amplitude(a, amplitude)) is not None]
-    if len(used) < 5:
+    """The sweeps and passages of one point's analyses (file order = time order); None
+    with fewer than 5 readings at or above ``min_speed_hz`` (Hz), which also counts as
+    the stop speed of the sweep rules."""
+    values = [(a, _amplitude(a, amplitude)) for a in analyses]
+    used = [(a, v) for a, v in values if a.speed_hz >= min_speed_hz and v is not None]
+    if len(used) < MIN_READINGS:
         return None
-    rows = [(a.speed_hz, *v) for a, v in used]
-    speed = np.array([r[0] for r in rows])
-    amp = np.array([r[1] for r in rows])
-    phases = [r[2] for r in rows]
-    phase = None if any(p is None for p in phases) else np.array(phases, dtype=float)
-    bode = bode_data(speed, amp, phase, unit=rows[0][3])
-    passages = find_passages(bode, prominence=prominence)
+    unit = used[0][1][2]
+    phases = [v[1] for _, v in used]
+    bode = bode_data(
+        np.array([a.speed_hz for a, _ in used]), np.array([v[0] for _, v in used]),
+        None if any(p is None for p in phases) else np.array(phases, dtype=float), unit=unit,
+    )
+    tracker = PassageTracker(SweepRules(stop_hz=min_speed_hz), prominence=prominence, unit=unit)
+    sweeps: list[SweepPassages] = []
+    for a, v in values:
+        sweeps += tracker.update(a.ts, a.speed_hz, None if v is None else v[0],
+                                 None if v is None else v[1])
+    sweeps += tracker.flush()
+    passages = tuple(p for s in sweeps for p in s.passages)
     identified = [p.as_mode(f"{point} passage {i}") for i, p in enumerate(passages, 1)]
-    comparison = compare_modes(
-        machine.modes, [p.frequency_hz for p in passages], tolerance_pct=tolerance_pct
-    ) if machine.modes else ()
-    return PointPassages(machine.id, point, bode, passages, comparison,
+    return PointPassages(machine.id, point, bode, passages,
+                         _compare(machine, passages, tolerance_pct),
                          machine_skip_bands(machine, identified),
-                         max(a.ts for a, _ in used), len(rows))
+                         max(a.ts for a, _ in used), len(used), tuple(sweeps),
+                         tuple(_compare(machine, sp.passages, tolerance_pct) for sp in sweeps))
 
 
 def _bands_text(bands: tuple[SkipBand, ...]) -> str:
@@ -110,32 +132,51 @@ def _bands_text(bands: tuple[SkipBand, ...]) -> str:
                      for b in bands)
 
 
-def print_table(r: PointPassages) -> None:
-    b = r.bode
-    click.echo(
-        f"{r.machine}/{r.point}: {b.direction}, {b.speed_hz.size} points, "
-        f"{b.speed_rpm.min():.0f}-{b.speed_rpm.max():.0f} r/min, 1x amplitude in {b.unit} peak"
-    )
-    if not r.passages:
-        click.echo("  no resonance passage found.")
-    else:
-        click.echo(f"  {'#':>2} {'Nc r/min':>9} {'Nc Hz':>8} {'peak':>10} {'N1-N2 r/min':>15} "
-                   f"{'AF':>6} {'zeta':>7} {'phase@Nc':>9} {'dphase':>7}")
-    for i, p in enumerate(r.passages, 1):
+def _passages_table(passages: tuple[Passage, ...], indent: str) -> None:
+    click.echo(f"{indent}{'#':>2} {'Nc r/min':>9} {'Nc Hz':>8} {'peak':>10} {'N1-N2 r/min':>15} "
+               f"{'AF':>6} {'zeta':>7} {'phase@Nc':>9} {'dphase':>7}")
+    for i, p in enumerate(passages, 1):
         hp = ("-" if p.half_power_speeds_hz is None else
               f"{p.half_power_speeds_hz[0] * 60:.0f}-{p.half_power_speeds_hz[1] * 60:.0f}")
         click.echo(
-            f"  {i:>2} {p.critical_speed_rpm:9.1f} {p.critical_speed_hz:8.3f} "
+            f"{indent}{i:>2} {p.critical_speed_rpm:9.1f} {p.critical_speed_hz:8.3f} "
             f"{p.peak_amplitude:10.4g} {hp:>15} {format_or_dash(p.amplification_factor, '.1f'):>6} "
             f"{format_or_dash(p.damping_ratio, '.4f'):>7} {format_or_dash(p.phase_at_peak_deg, '.1f'):>9} "
             f"{format_or_dash(p.phase_change_deg, '.1f'):>7}"
         )
+
+
+def print_table(r: PointPassages) -> None:
+    b = r.bode
+    click.echo(
+        f"{r.machine}/{r.point}: {b.speed_hz.size} readings, "
+        f"{b.speed_rpm.min():.0f}-{b.speed_rpm.max():.0f} r/min, 1x amplitude in {b.unit} peak, "
+        f"{len(r.sweeps)} sweep(s)"
+    )
+    if not r.sweeps:
+        click.echo("  no run-up or coast-down found (steady running only).")
+    for i, sp in enumerate(r.sweeps, 1):
+        sw = sp.sweep
+        click.echo(
+            f"  sweep {i}: {sw.kind} {iso_utc(sw.started_at, timespec='seconds')} to "
+            f"{iso_utc(sw.ended_at, timespec='seconds')}, {sw.start_speed_hz * 60:.0f} -> "
+            f"{sw.end_speed_hz * 60:.0f} r/min at {abs(sw.rate_hz_s) * 60:.1f} r/min/s, "
+            f"{len(sw.points)} readings, by {sp.method}"
+        )
+        if sp.passages:
+            _passages_table(sp.passages, "    ")
+        else:
+            click.echo("    no resonance passage found.")
+        for peak, why in sp.rejected:
+            click.echo(f"    peak at {peak.critical_speed_rpm:.0f} r/min is no passage: {why}")
     print_comparison(r.comparison, "no passage near it")
     click.echo(f"  skip bands from these passages: {_bands_text(r.skip_identified)}")
 
 
 def result_json(r: PointPassages, stored_bands: tuple[SkipBand, ...]) -> dict[str, Any]:
     """The ``passage --json`` object of one measurement point (docs/modes.md)."""
+    sweeps = [sp.to_json() | {"comparison": [c.to_json() for c in shifts]}
+              for sp, shifts in zip(r.sweeps, r.sweep_comparisons, strict=True)]
     return jsonable({
         "machine": r.machine,
         "point": r.point,
@@ -147,6 +188,7 @@ def result_json(r: PointPassages, stored_bands: tuple[SkipBand, ...]) -> dict[st
             "identified": [b.to_json() for b in r.skip_identified],
         },
         "bode": r.bode.to_json(),
+        "sweeps": sweeps,
     })
 
 
@@ -239,7 +281,7 @@ def _passage(file: Path, total: int, registry: Any, machine: Machine, amplitude:
         found += 1
         transitions = record_comparison(store, machine, r.comparison, r.ts, point,
                                         {"source": "run-up/coast-down", "file": file.name,
-                                         "readings": r.readings})
+                                         "readings": r.readings, "sweeps": len(r.sweeps)})
         emit_point(result_json(r, stored_bands) if as_json else None, functools.partial(print_table, r),
                    transitions, recording=store is not None)
     if not as_json:

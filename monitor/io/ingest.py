@@ -210,6 +210,50 @@ def _check_count(n: int, limits: IngestLimits) -> None:
         )
 
 
+def _once_per_rev(
+    raw: dict[str, Any], n_samples: int, fs_hz: float, limits: IngestLimits
+) -> np.ndarray | None:
+    """Pulse times (s from the first sample) of ``once_per_rev_s``, or None when absent.
+
+    Non-decreasing finite numbers from 0 to the block's duration ``n_samples / fs_hz``;
+    a repeated time is kept (the analysis counts it once).
+    """
+    value = raw.get("once_per_rev_s")
+    if value is None:
+        return None
+    key = "once_per_rev_s"
+    if not isinstance(value, list):
+        raise Rejected(
+            "once_per_rev_invalid",
+            f"'{key}' must be a JSON array of pulse times in seconds, got {type(value).__name__}.",
+        )
+    if len(value) > limits.max_once_per_rev_pulses:
+        raise Rejected(
+            "once_per_rev_invalid",
+            f"'{key}' holds {len(value)} pulse times; at most "
+            f"{limits.max_once_per_rev_pulses} are allowed.",
+        )
+    times = np.empty(len(value))
+    for i, v in enumerate(value):
+        times[i] = _finite_number(v, f"{key}[{i}]", "once_per_rev_invalid", "once_per_rev_invalid")
+    duration = n_samples / fs_hz
+    if times.size and not (times[0] >= 0.0 and times[-1] <= duration):
+        bad = times[0] if times[0] < 0 else times[-1]
+        raise Rejected(
+            "once_per_rev_invalid",
+            f"'{key}' must lie within the block, 0 to {duration:g} s, got {bad:g} s.",
+        )
+    back = np.flatnonzero(np.diff(times) < 0)
+    if back.size:
+        i = int(back[0]) + 1
+        raise Rejected(
+            "once_per_rev_invalid",
+            f"'{key}' must not decrease, but pulse {i} ({times[i]:g} s) comes before "
+            f"pulse {i - 1} ({times[i - 1]:g} s).",
+        )
+    return times
+
+
 def _reading_id(raw: dict[str, Any], limits: IngestLimits) -> str | None:
     if "id" not in raw or raw["id"] is None:
         return None
@@ -278,7 +322,8 @@ def decode_message(
     Returns
     -------
     Waveform or SpeedReading
-        Samples as float64 in the payload's unit; speed in Hz (rev/s); ``ts`` in epoch s.
+        Samples as float64 in the payload's unit; speed in Hz (rev/s); ``ts`` in epoch s;
+        once-per-revolution pulse times in s from the first sample (None when not sent).
 
     Raises
     ------
@@ -364,6 +409,7 @@ def decode_message(
             f"{limits.max_abs_sample:g} {unit}.",
         )
     speed = _speed_hz(raw, "speed_hz", "speed_rpm", limits, required=False)
+    pulses = _once_per_rev(raw, samples.size, fs, limits)
     return Waveform(
         machine=machine_id,
         point=point.id,
@@ -373,4 +419,5 @@ def decode_message(
         samples=samples,
         speed_hz=speed,
         reading_id=_reading_id(raw, limits),
+        once_per_rev_s=pulses,
     )

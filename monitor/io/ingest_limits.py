@@ -59,8 +59,10 @@ REJECTION_REASONS: tuple[str, ...] = (
     "speed_not_finite",
     "speed_negative",
     "speed_absurd",
+    "once_per_rev_invalid",
     "id_invalid",
 )
+
 
 class Rejected(ValueError):
     """A message that cannot become a reading.
@@ -109,6 +111,9 @@ class IngestLimits:
         left to the idempotent insert.
     max_id_length : int
         Longest ``id`` string, characters.
+    max_once_per_rev_pulses : int
+        Most once-per-revolution pulse times in one waveform (100,000: a 41 s block of
+        2**20 samples at 25.6 kHz on a shaft at the 2000 Hz speed limit has 82,000).
     """
 
     max_payload_bytes: int = 8 * 1024 * 1024
@@ -122,11 +127,13 @@ class IngestLimits:
     max_age_s: float = 30 * 86400.0
     replay_window_s: float = 600.0
     max_id_length: int = 128
+    max_once_per_rev_pulses: int = 100_000
 
     def __post_init__(self) -> None:
         for name in (
             "max_payload_bytes", "min_samples", "max_samples", "min_fs_hz", "max_fs_hz",
             "max_abs_sample", "max_speed_hz", "max_future_s", "max_age_s", "replay_window_s", "max_id_length",
+            "max_once_per_rev_pulses",
         ):
             v = getattr(self, name)
             if isinstance(v, bool) or not isinstance(v, int | float) or not v >= 0:

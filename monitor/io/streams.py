@@ -9,7 +9,7 @@ Payloads written here:
 
 - waveform, on ``{prefix}/{machine}/{point}/waveform``: ``ts`` (ISO 8601 UTC, ms),
   ``fs`` (Hz), ``unit``, ``samples_f32`` (base64 of little-endian float32), optional
-  ``speed_hz`` and ``id``;
+  ``speed_hz``, ``once_per_rev_s`` (pulse times, s from the first sample) and ``id``;
 - speed, on ``{prefix}/{machine}/speed``: ``ts`` and ``hz``.
 """
 
@@ -65,7 +65,8 @@ def speed_topic(prefix: str, machine: str) -> str:
 
 
 def waveform_payload(w: Waveform) -> dict[str, Any]:
-    """The MQTT payload (a JSON-ready dict) of waveform ``w``; samples as float32 base64."""
+    """The MQTT payload (a JSON-ready dict) of waveform ``w``; samples as float32 base64,
+    pulse times as a list of seconds."""
     out: dict[str, Any] = {
         "ts": iso_utc(w.ts, timespec="milliseconds"),
         "fs": float(w.fs_hz),
@@ -74,6 +75,9 @@ def waveform_payload(w: Waveform) -> dict[str, Any]:
     }
     if w.speed_hz is not None:
         out["speed_hz"] = round(float(w.speed_hz), 6)
+    if w.once_per_rev_s is not None:
+        # repr of a double reads back to the same double: pulse times round-trip exactly
+        out["once_per_rev_s"] = [float(t) for t in w.once_per_rev_s]
     if w.reading_id is not None:
         out["id"] = w.reading_id
     return out

@@ -32,6 +32,9 @@ class Waveform:
         Running speed measured at the same time, Hz (rev/s), when the sensor sent one.
     reading_id : str or None
         The sender's id for the reading, if any.
+    once_per_rev_s : numpy.ndarray or None
+        Once-per-revolution pulse times, seconds from the first sample (1-D float64,
+        non-decreasing, within the block), when the sensor sent them; may be empty.
     """
 
     machine: str
@@ -42,6 +45,7 @@ class Waveform:
     samples: np.ndarray
     speed_hz: float | None = None
     reading_id: str | None = None
+    once_per_rev_s: np.ndarray | None = None
 
 
 @dataclass(frozen=True)

@@ -105,18 +105,19 @@ def order_point(
     samples: ArrayLike,
     fs_hz: float,
     unit: str,
-    speed_hz: float,
+    speed_hz: float | None,
     *,
     reference_s: float | None = None,
+    once_per_rev_s: ArrayLike | None = None,
     order: float = 1.0,
 ) -> tuple[float, float | None]:
-    """Amplitude (peak, ``unit``) and phase (degrees, or None without ``reference_s``) of
-    one order in one waveform, by :func:`monitor.analysis.orders.order_amplitudes`."""
-    oa = order_amplitudes(samples, fs_hz, unit, speed_hz, (order,), reference_s=reference_s)
+    """Amplitude (peak, ``unit``) and phase (degrees, or None without a reference pulse)
+    of one order in one waveform, by :func:`monitor.analysis.orders.order_amplitudes`
+    (a pulse train ``once_per_rev_s`` gives the speed and the phase reference)."""
+    oa = order_amplitudes(samples, fs_hz, unit, speed_hz, (order,), reference_s=reference_s,
+                          once_per_rev_s=once_per_rev_s)
     if not oa:
-        raise ValueError(
-            f"order {order:g} x speed_hz {speed_hz:g} Hz is at or above the Nyquist frequency."
-        )
+        raise ValueError(f"order {order:g} x the running speed is at or above the Nyquist frequency.")
     return oa[0].amplitude, oa[0].phase_deg
 
 
