@@ -341,7 +341,7 @@ class Store:
 
     >>> store = Store.open("sqlite:///data/whirlwatch.sqlite")   # doctest: +SKIP
     >>> with store.transaction() as session:                    # doctest: +SKIP
-    ...     write_reading(session, analysis)                     # committed on exit
+    ...     add_dead_letter(session, topic=topic, reason="not_json")  # committed on exit
     """
 
     def __init__(self, engine: Engine) -> None:
