@@ -6,12 +6,13 @@ from flask import Blueprint, flash, redirect, render_template, request, url_for
 from sqlalchemy import select
 from werkzeug.security import check_password_hash, generate_password_hash
 
-from dashboard import queries
 from dashboard.db import db_session
 from dashboard.errors import BadRequest, NotFound
 from dashboard.security import ROLES, current, limiter, require, start_session
+from monitor.store import reads
 from monitor.store.auth import (
     AuthError,
+    create_api_token,
     create_user,
     get_user,
     revoke_api_token_by_id,
@@ -114,8 +115,9 @@ def tokens():
         if u is None:
             raise NotFound(f"No user with id {uid}.")
         label = request.form.get("label", "").strip()[:100]
-        new_token, new_user = queries.create_token(s, u, label), u.name
-    resp = render_template("auth/tokens.html", tokens=queries.list_tokens(s),
+        new_token, new_user = create_api_token(s, u.name, label), u.name
+        s.commit()
+    resp = render_template("auth/tokens.html", tokens=reads.list_tokens(s),
                            users=s.scalars(select(User).order_by(User.name)).all(),
                            new_token=new_token, new_token_user=new_user)
     return resp

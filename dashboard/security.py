@@ -108,8 +108,9 @@ CSP = (
 
 def register(app: Flask) -> None:
     """Load the caller before each request and set security headers after it."""
-    from dashboard import queries
     from dashboard.db import db_session
+    from monitor.store import reads
+    from monitor.store.auth import verify_api_token
 
     csrf = app.extensions["csrf"]
 
@@ -121,14 +122,16 @@ def register(app: Flask) -> None:
             scheme, _, token = auth.partition(" ")
             if scheme.lower() != "bearer" or not token.strip():
                 raise Unauthorised("The Authorization header must be 'Bearer <token>'.")
-            user = queries.user_for_token(db_session(), token.strip())
+            s = db_session()
+            user = verify_api_token(s, token.strip())
+            s.commit()  # the check stamps the token's time of use
             if user is None:
                 raise Unauthorised("The API token is not valid or has been revoked.")
             g.principal = Principal(user.id, user.name, user.role, "token")
             return
         uid = session.get("uid")
         if uid is not None:
-            user = queries.user_by_id(db_session(), uid)
+            user = reads.user_by_id(db_session(), uid)
             # A session for a deleted or re-keyed user ends here.
             if user is None or session.get("gen") != _session_generation(user):
                 session.clear()

@@ -332,7 +332,7 @@ def test_every_transition_is_published_and_a_clean_stop_flushes(
 ) -> None:
     from service_helpers import Recorder
 
-    from monitor.store.queries import alarm_as_json
+    from monitor.store.reads import alarm_json
 
     url = sqlite(tmp_path, "store.sqlite")
     # The fan's run-up crosses its pedestal mode (resonance alarm, API 684 margin) and the
@@ -365,7 +365,7 @@ def test_every_transition_is_published_and_a_clean_stop_flushes(
         with store.session() as s:
             stored = s.execute(select(Alarm, AlarmTransitionRow.transition)
                                .join(AlarmTransitionRow, Alarm.id == AlarmTransitionRow.alarm_id)).all()
-            rest = {a.id: alarm_as_json(a) for a, _ in stored}
+            rest = {a.id: alarm_json(a) for a, _ in stored}
             want = Counter((a.id, name) for a, name in stored)
     finally:
         store.close()

@@ -449,13 +449,6 @@ def mark_baseline_restart_applied(session: Session, request_id: int, at: dt.date
     return res.rowcount == 1
 
 
-def recent_baseline_restarts(session: Session, machine_id: str, limit: int = 20) -> list[BaselineRestart]:
-    """The newest requests of a machine, newest first."""
-    return list(session.scalars(
-        select(BaselineRestart).where(BaselineRestart.machine_id == machine_id)
-        .order_by(BaselineRestart.requested_at.desc(), BaselineRestart.id.desc()).limit(limit)))
-
-
 # ----------------------------------------------------------------------------- reads
 
 
