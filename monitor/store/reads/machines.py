@@ -12,7 +12,7 @@ import datetime as dt
 from collections import defaultdict
 from typing import Any
 
-from sqlalchemy import Row, select
+from sqlalchemy import select
 from sqlalchemy.orm import Session, aliased
 
 from monitor.detection.alarms import severity_rank
@@ -73,7 +73,7 @@ def _latest_per_point(s: Session, machine_id: str) -> list[Measurement]:
     ))
 
 
-def _latest_per_point_rows(s: Session) -> list[Row[Any]]:
+def _latest_per_point_rows(s: Session) -> list[Any]:
     """The cheap columns of the newest measurement of every active point, one statement."""
     return list(s.execute(
         select(Measurement.id, Measurement.machine_id, Measurement.point_id, Measurement.ts,
@@ -101,13 +101,13 @@ def machine_summaries(s: Session) -> list[dict[str, Any]]:
         Machine.speed_max_rpm, Machine.excitation_orders, Machine.line_frequency_hz, Machine.limits_mm_s,
         Machine.settings, Machine.updated_at,
     ).where(Machine.active.is_(True)).order_by(Machine.position, Machine.id)).all()
-    modes_by: dict[str, list[Row[Any]]] = defaultdict(list)
+    modes_by: dict[str, list[Any]] = defaultdict(list)
     for mo in s.execute(select(
             Mode.machine_id, Mode.name, Mode.frequency_hz, Mode.damping_ratio, Mode.amplification_factor,
             Mode.required_margin_pct, Mode.source, Mode.date, Mode.updated_at,
     ).join(Machine).where(Machine.active.is_(True)).order_by(Mode.position, Mode.id)):
         modes_by[mo.machine_id].append(mo)
-    latest_by: dict[str, list[Row[Any]]] = defaultdict(list)
+    latest_by: dict[str, list[Any]] = defaultdict(list)
     for me in _latest_per_point_rows(s):
         latest_by[me.machine_id].append(me)
     newest_by = {mid: max(rows, key=lambda r: r.ts) for mid, rows in latest_by.items()}
