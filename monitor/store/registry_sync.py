@@ -520,15 +520,6 @@ def read_machine(row: MachineRow) -> tuple[Machine | None, list[str]]:
     return machine, problems
 
 
-def machine_from_row(row: MachineRow) -> Machine:
-    """The registry dataclass of a machine row (see :func:`read_machine`); RegistryError
-    when the machine itself is outside the bounds."""
-    machine, problems = read_machine(row)
-    if machine is None:
-        raise RegistryError(problems[-1])
-    return machine
-
-
 def _machine_rows(session: Session, *, since: int | None = None) -> Sequence[MachineRow]:
     q = select(MachineRow).options(selectinload(MachineRow.points), selectinload(MachineRow.modes))
     if since is None:
