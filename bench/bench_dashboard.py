@@ -34,7 +34,7 @@ def run(quick: bool) -> list[dict]:
     machines, per_point = (500, 1000) if not quick else (500, 40)
     with tempfile.TemporaryDirectory() as d:
         url = f"sqlite:///{d}/bench.sqlite"
-        seed(url, machines=machines, readings_per_point=per_point, alarms_per_machine=2)
+        seed(url, machines=machines, readings_per_point=per_point)
         app = create_app({"DATABASE_URL": url, "SECRET_KEY": "bench"})
         app.add_url_rule("/trivial", "trivial", lambda: "ok")
         c = app.test_client()

@@ -10,14 +10,15 @@ from collections.abc import Mapping
 
 from flask import Blueprint, Response, flash, redirect, render_template, request, url_for
 
-from dashboard import queries
 from dashboard.db import db_session
-from dashboard.errors import BadRequest, Conflict, NotFound
+from dashboard.errors import BadRequest, Conflict, NotFound, Unauthorised
 from dashboard.redirects import same_origin_path
 from dashboard.security import current, require
 from monitor.detection.alarms import KINDS, SEVERITIES
 from monitor.model.timefmt import parse_iso_utc
+from monitor.store import reads
 from monitor.store.models import Alarm
+from monitor.store.writes import acknowledge_alarm
 
 bp = Blueprint("alarms", __name__, url_prefix="/alarms")
 
@@ -73,6 +74,15 @@ def parse_page(args: Mapping[str, str], default: int = 50) -> tuple[int, int | N
         raise BadRequest(f"Parameter 'cursor' must be the 'next' value of a previous page, got {cursor!r}.") from None
 
 
+def acting_user() -> str:
+    """The name of the signed-in user a write view acts for (every write view requires a
+    role, so there is one)."""
+    p = current()
+    if p is None:
+        raise Unauthorised("Sign in to change anything.")
+    return p.username
+
+
 def do_acknowledge(alarm_id: int, comment: str) -> Alarm:
     s = db_session()
     a = s.get(Alarm, alarm_id)
@@ -82,7 +92,10 @@ def do_acknowledge(alarm_id: int, comment: str) -> Alarm:
         raise Conflict(f"Alarm {alarm_id} is {a.state}; only an active alarm can be acknowledged.")
     if len(comment) > 2000:
         raise BadRequest("The comment must be at most 2000 characters.")
-    return queries.acknowledge(s, a, current().username, comment)
+    # The store records the transition; the request commits it.
+    a = acknowledge_alarm(s, a.id, acting_user(), comment or None)
+    s.commit()
+    return a
 
 
 @bp.get("/")
@@ -90,11 +103,11 @@ def do_acknowledge(alarm_id: int, comment: str) -> Alarm:
 def index():
     f = parse_filters(request.args)
     limit, cursor = parse_page(request.args)
-    rows, nxt = queries.find_alarms(db_session(), **f, before_id=cursor, limit=limit)
+    rows, nxt = reads.find_alarms(db_session(), **f, before_id=cursor, limit=limit)
     args = {k: v for k, v in request.args.items() if k != "cursor" and v}
-    machines = [(m["id"], m["name"]) for m in queries.machine_list(db_session())]
+    machines = [(m["id"], m["name"]) for m in reads.machine_list(db_session())]
     return render_template(
-        "alarms/index.html", alarms=[queries.alarm_json(a) for a in rows], next_cursor=nxt,
+        "alarms/index.html", alarms=[reads.alarm_json(a) for a in rows], next_cursor=nxt,
         args=args, states=STATES, kinds=KINDS, severities=SEVERITIES, machines=machines,
         csv_url=url_for("alarms.export_csv", **args),
         next_url=url_for("alarms.index", **args, cursor=nxt) if nxt else None,
@@ -134,9 +147,9 @@ def export_csv():
         cursor, sent = None, 0
         s = db_session()
         while sent < CSV_MAX_ROWS:
-            page, cursor = queries.find_alarms(s, **f, before_id=cursor, limit=MAX_LIMIT)
+            page, cursor = reads.find_alarms(s, **f, before_id=cursor, limit=MAX_LIMIT)
             for a in page:
-                d = queries.alarm_json(a)
+                d = reads.alarm_json(a)
                 w.writerow([_csv_cell(d[c]) for c in CSV_COLUMNS])
             sent += len(page)
             yield buf.getvalue()

@@ -11,17 +11,16 @@ import json
 from pathlib import Path
 
 from flask import Blueprint, Response, jsonify, request
-from sqlalchemy import select
 
-from dashboard import queries
-from dashboard.alarms import do_acknowledge, parse_filters, parse_page, parse_time
+from dashboard.alarms import acting_user, do_acknowledge, parse_filters, parse_page, parse_time
 from dashboard.db import db_session
 from dashboard.errors import BadRequest, Conflict, NotFound
-from dashboard.security import current, require
+from dashboard.security import require
 from monitor.model.registry import RegistryError
 from monitor.model.registry_file import parse_mode
 from monitor.model.timefmt import iso_utc
-from monitor.store.models import Alarm, Machine, Mode, SpectrumSnapshot
+from monitor.store import reads
+from monitor.store.models import Machine, Mode
 from monitor.store.registry_sync import UnknownEntry, request_baseline_restart, save_mode
 
 bp = Blueprint("api", __name__, url_prefix="/api/v1")
@@ -33,7 +32,7 @@ DEFAULT_TREND_SPAN = dt.timedelta(days=7)
 
 
 def _machine_or_404(machine_id: str) -> Machine:
-    m = queries.get_machine(db_session(), machine_id)
+    m = reads.get_machine(db_session(), machine_id)
     if m is None:
         raise NotFound(f"No machine with id {machine_id!r}.")
     return m
@@ -55,13 +54,13 @@ def openapi():
 @bp.get("/machines")
 @require("viewer")
 def machines():
-    return jsonify({"items": queries.machine_summaries(db_session()), "next": None})
+    return jsonify({"items": reads.machine_summaries(db_session()), "next": None})
 
 
 @bp.get("/machines/<machine_id>")
 @require("viewer")
 def machine(machine_id: str):
-    return jsonify(queries.machine_detail(db_session(), _machine_or_404(machine_id)))
+    return jsonify(reads.machine_detail(db_session(), _machine_or_404(machine_id)))
 
 
 @bp.get("/machines/<machine_id>/trends")
@@ -86,7 +85,7 @@ def machine_trends(machine_id: str):
         raise NotFound(f"Machine {m.id!r} has no measurement point {unknown[0]!r}.")
     return jsonify({
         "machine": m.id, "from": iso_utc(t0), "to": iso_utc(t1), "max_points": n,
-        "points": queries.trends(db_session(), m, wanted, t0, t1, n),
+        "points": reads.trends(db_session(), m, wanted, t0, t1, n),
     })
 
 
@@ -95,9 +94,8 @@ def machine_trends(machine_id: str):
 def machine_modes(machine_id: str):
     m = _machine_or_404(machine_id)
     s = db_session()
-    modes = s.scalars(select(Mode).where(Mode.machine_id == m.id).order_by(Mode.position, Mode.id)).all()
-    return jsonify({"items": [queries.mode_json(x) for x in modes], "next": None,
-                    "history": queries.mode_history(s, m.id)})
+    return jsonify({"items": [reads.mode_json(x) for x in reads.machine_modes(s, m.id)], "next": None,
+                    "history": reads.mode_history(s, m.id)})
 
 
 def _parse_mode_body(m: Machine, data: dict, base: Mode | None):
@@ -120,7 +118,7 @@ def _parse_mode_body(m: Machine, data: dict, base: Mode | None):
 
 
 def _name_clash(m: Machine, name: str, except_id: int | None) -> None:
-    other = db_session().scalar(select(Mode).where(Mode.machine_id == m.id, Mode.name == name))
+    other = reads.mode_named(db_session(), m.id, name)
     if other is not None and other.id != except_id:
         raise Conflict(f"Machine {m.id!r} already has a mode named {name!r}.")
 
@@ -132,9 +130,9 @@ def create_mode(machine_id: str):
     values = _parse_mode_body(m, _body(), None)
     _name_clash(m, values.name, None)
     s = db_session()
-    mode = save_mode(s, m, values, current().username, None)
+    mode = save_mode(s, m, values, acting_user(), None)
     s.commit()
-    return jsonify(queries.mode_json(mode)), 201
+    return jsonify(reads.mode_json(mode)), 201
 
 
 @bp.put("/machines/<machine_id>/modes/<int:mode_id>")
@@ -147,9 +145,9 @@ def update_mode(machine_id: str, mode_id: int):
     values = _parse_mode_body(m, _body(), mode)
     _name_clash(m, values.name, mode.id)
     s = db_session()
-    mode = save_mode(s, m, values, current().username, mode)
+    mode = save_mode(s, m, values, acting_user(), mode)
     s.commit()
-    return jsonify(queries.mode_json(mode))
+    return jsonify(reads.mode_json(mode))
 
 
 @bp.post("/machines/<machine_id>/baseline")
@@ -169,13 +167,13 @@ def restart_baseline(machine_id: str):
         raise BadRequest("Field 'comment' is required: say why the baseline is restarted.")
     s = db_session()
     try:
-        req = request_baseline_restart(s, machine_id, point, comment, current().username)
+        req = request_baseline_restart(s, machine_id, point, comment, acting_user())
     except UnknownEntry as exc:
         raise NotFound(str(exc)) from None
     except RegistryError as exc:
         raise BadRequest(str(exc)) from None
     s.commit()
-    return jsonify(queries.baseline_restart_json(req)), 202
+    return jsonify(reads.baseline_restart_json(req)), 202
 
 
 @bp.get("/alarms")
@@ -183,18 +181,18 @@ def restart_baseline(machine_id: str):
 def alarms():
     f = parse_filters(request.args)
     limit, cursor = parse_page(request.args)
-    rows, nxt = queries.find_alarms(db_session(), **f, before_id=cursor, limit=limit)
-    return jsonify({"items": [queries.alarm_json(a) for a in rows],
+    rows, nxt = reads.find_alarms(db_session(), **f, before_id=cursor, limit=limit)
+    return jsonify({"items": [reads.alarm_json(a) for a in rows],
                     "next": None if nxt is None else str(nxt)})
 
 
 @bp.get("/alarms/<int:alarm_id>")
 @require("viewer")
 def alarm(alarm_id: int):
-    a = db_session().get(Alarm, alarm_id)
+    a = reads.get_alarm(db_session(), alarm_id)
     if a is None:
         raise NotFound(f"No alarm with id {alarm_id}.")
-    return jsonify(queries.alarm_json(a, with_transitions=True))
+    return jsonify(reads.alarm_json(a, with_transitions=True))
 
 
 @bp.post("/alarms/<int:alarm_id>/acknowledge")
@@ -207,16 +205,16 @@ def acknowledge(alarm_id: int):
     if not isinstance(comment, str):
         raise BadRequest("Field 'comment' must be a string.")
     a = do_acknowledge(alarm_id, comment.strip())
-    return jsonify(queries.alarm_json(a))
+    return jsonify(reads.alarm_json(a))
 
 
 @bp.get("/spectra/<int:spectrum_id>")
 @require("viewer")
 def spectrum(spectrum_id: int):
-    sn = db_session().get(SpectrumSnapshot, spectrum_id)
+    sn = reads.get_spectrum(db_session(), spectrum_id)
     if sn is None:
         raise NotFound(f"No stored spectrum with id {spectrum_id}.")
-    return jsonify(queries.spectrum_json(sn))
+    return jsonify(reads.spectrum_json(sn))
 
 
 def openapi_document() -> dict:

@@ -14,7 +14,8 @@ from flask import Blueprint, jsonify, render_template, request, url_for
 from dashboard.db import db_session
 from dashboard.errors import BadRequest
 from dashboard.security import require
-from monitor.store.audit import ACTIONS, MAX_PAGE, event_json, find_events
+from monitor.store.audit import ACTIONS
+from monitor.store.reads import MAX_AUDIT_PAGE, audit_event_json, find_audit_events
 
 bp = Blueprint("audit", __name__, url_prefix="/audit")
 api_bp = Blueprint("audit_api", __name__, url_prefix="/api/v1")
@@ -29,9 +30,9 @@ def _query(args: Mapping[str, str]) -> dict:
     try:
         limit = int(args.get("limit", 50))
     except ValueError:
-        raise BadRequest(f"Parameter 'limit' must be an integer 1-{MAX_PAGE}, got {args.get('limit')!r}.") from None
-    if not 1 <= limit <= MAX_PAGE:
-        raise BadRequest(f"Parameter 'limit' must be an integer 1-{MAX_PAGE}, got {limit}.")
+        raise BadRequest(f"Parameter 'limit' must be an integer 1-{MAX_AUDIT_PAGE}, got {args.get('limit')!r}.") from None
+    if not 1 <= limit <= MAX_AUDIT_PAGE:
+        raise BadRequest(f"Parameter 'limit' must be an integer 1-{MAX_AUDIT_PAGE}, got {limit}.")
     cursor = args.get("cursor") or None
     before = None
     if cursor is not None:
@@ -46,14 +47,14 @@ def _query(args: Mapping[str, str]) -> dict:
 @require("admin")
 def index():
     q = _query(request.args)
-    rows, nxt = find_events(db_session(), **q)
+    rows, nxt = find_audit_events(db_session(), **q)
     args = {k: v for k, v in request.args.items() if k != "cursor" and v}
-    return render_template("auth/audit.html", events=[event_json(e) for e in rows], actions=ACTIONS,
+    return render_template("auth/audit.html", events=[audit_event_json(e) for e in rows], actions=ACTIONS,
                            args=args, next_url=url_for("audit.index", **args, cursor=nxt) if nxt else None)
 
 
 @api_bp.get("/audit")
 @require("admin")
 def api_index():
-    rows, nxt = find_events(db_session(), **_query(request.args))
-    return jsonify({"items": [event_json(e) for e in rows], "next": None if nxt is None else str(nxt)})
+    rows, nxt = find_audit_events(db_session(), **_query(request.args))
+    return jsonify({"items": [audit_event_json(e) for e in rows], "next": None if nxt is None else str(nxt)})

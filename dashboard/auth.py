@@ -16,13 +16,13 @@ from dashboard.redirects import next_or_home, same_origin_path
 from dashboard.security import actor, current, require, start_session
 from monitor.store.auth import (
     AuthError,
-    active_user,
     password_matches,
     set_password,
     sign_in,
     sign_out,
     verify_password,
 )
+from monitor.store.reads import active_user
 
 bp = Blueprint("auth", __name__)
 log = logging.getLogger(__name__)

@@ -119,7 +119,8 @@ def start_session(user) -> None:
 def register(app: Flask) -> None:
     """Load the caller before each request and set security headers after it."""
     from dashboard.db import db_session
-    from monitor.store.auth import active_user, verify_api_token
+    from monitor.store.auth import verify_api_token
+    from monitor.store.reads import active_user
 
     csrf = app.extensions["csrf"]
     app.session_interface = SessionInterface()

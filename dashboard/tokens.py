@@ -8,8 +8,9 @@ from sqlalchemy import select
 from dashboard.db import db_session
 from dashboard.errors import BadRequest, NotFound
 from dashboard.security import actor, require
-from monitor.store.auth import create_api_token, list_api_tokens, revoke_api_token_by_id
+from monitor.store.auth import create_api_token, revoke_api_token_by_id
 from monitor.store.models import ApiToken, User
+from monitor.store.reads import list_api_tokens
 
 bp = Blueprint("tokens", __name__, url_prefix="/tokens")
 

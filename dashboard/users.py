@@ -17,12 +17,12 @@ from monitor.store.auth import (
     LastAdminError,
     create_user,
     delete_user,
-    get_user,
     set_disabled,
     set_password,
     set_role,
 )
 from monitor.store.models import User
+from monitor.store.reads import get_user
 
 bp = Blueprint("users", __name__, url_prefix="/users")
 

@@ -47,7 +47,7 @@ def make_app(db_url: str, **config):
 def user_id(app, name: str) -> int:
     """The database id of user ``name`` in ``app``'s store."""
     from dashboard.db import db_session
-    from monitor.store.auth import get_user
+    from monitor.store.reads import get_user
 
     with app.app_context():
         user = get_user(db_session(), name)

@@ -1,5 +1,6 @@
 """Helpers for the service tests: a store with the sample plant, retimed sample traffic,
-a subscriber that records what the service publishes, and the service as a subprocess."""
+a service without a broker, a subscriber that records what the service publishes, and the
+service as a subprocess."""
 
 from __future__ import annotations
 
@@ -17,8 +18,12 @@ from broker import wait_until
 from paho.mqtt.enums import CallbackAPIVersion
 from sqlalchemy import func, select
 
+from monitor.config import load_settings
 from monitor.io.replay import load_streams, retimed
+from monitor.io.streams import reading_message
+from monitor.model.readings import SpeedReading, Waveform
 from monitor.model.registry_file import load_registry
+from monitor.service.service import Service
 from monitor.store import Store, import_registry, upgrade
 from monitor.store.models import Measurement
 
@@ -45,6 +50,22 @@ def traffic(name: str, start: int = 0, stop: int | None = None, *, end_ts: float
     msgs = load_streams([SAMPLES / f"{name}.jsonl"])[start:stop]
     plan, _ = retimed(msgs, time.time() if end_ts is None else end_ts)
     return [(t, json.dumps(p, separators=(",", ":")).encode()) for _, (t, p) in plan]
+
+
+def offline_service(url: str, clock: Callable[[], float] | None = None, **settings: object) -> Service:
+    """A service on the store at ``url`` that is never started: no broker, nothing
+    published; readings go in through ``handle_batch``. ``settings`` are dotted settings
+    names with ``_`` for ``.`` (``spectra_snapshot_interval_s=300``); retention is off."""
+    overrides: dict[str, object] = {"broker.url": "mqtt://127.0.0.1:1", "database.url": url,
+                                    "retention.enabled": False}
+    overrides.update({k.replace("_", ".", 1): v for k, v in settings.items()})
+    return Service(load_settings(None, env={}, overrides=overrides), clock=clock, stale_check_s=0)
+
+
+def message(reading: Waveform | SpeedReading) -> tuple[str, bytes]:
+    """The MQTT message (topic, payload bytes) of a reading, as a sensor would send it."""
+    topic, payload = reading_message(reading)
+    return topic, json.dumps(payload, separators=(",", ":")).encode()
 
 
 def waveform_keys(messages: list[tuple[str, bytes]]) -> set[tuple[str, str, str]]:

@@ -1,7 +1,7 @@
 """Group commit: repeats inside one batch, and readings raced in by another process.
 
-Delivery contract (docs/mqtt.md): at least once from the broker, effectively once in
-the database and in the detector. A message published several times is stored once, feeds
+Delivery contract (docs/mqtt.md, "Delivery semantics"): at least once from the broker,
+effectively once in the database and in the detector. A message published several times is stored once, feeds
 the detector once, and every copy is acknowledged; two processes in a shared subscription
 that receive copies of the same reading store it once and record its alarm transitions once.
 """
@@ -332,7 +332,7 @@ def test_every_transition_is_published_and_a_clean_stop_flushes(
 ) -> None:
     from service_helpers import Recorder
 
-    from monitor.store.queries import alarm_as_json
+    from monitor.store.reads import alarm_json
 
     url = sqlite(tmp_path, "store.sqlite")
     # The fan's run-up crosses its pedestal mode (resonance alarm, API 684 margin) and the
@@ -365,7 +365,7 @@ def test_every_transition_is_published_and_a_clean_stop_flushes(
         with store.session() as s:
             stored = s.execute(select(Alarm, AlarmTransitionRow.transition)
                                .join(AlarmTransitionRow, Alarm.id == AlarmTransitionRow.alarm_id)).all()
-            rest = {a.id: alarm_as_json(a) for a, _ in stored}
+            rest = {a.id: alarm_json(a) for a, _ in stored}
             want = Counter((a.id, name) for a, name in stored)
     finally:
         store.close()
@@ -391,7 +391,7 @@ def test_every_transition_is_published_and_a_clean_stop_flushes(
 def test_broker_redelivery_far_behind_its_stream_is_stored_not_dropped(tmp_path: Path) -> None:
     # MQTT 5.0 section 3.3.1.1 / 3.1.1 section 3.3.1.1: DUP marks a redelivery. A message
     # whose commit never happened (its process died) may come back after later readings
-    # of the stream were stored elsewhere; at-least-once delivery (docs/mqtt.md)
+    # of the stream were stored elsewhere; at-least-once delivery (docs/mqtt.md, "Delivery semantics")
     # means it must still be stored, while a fresh publish that old is a replay.
     msgs = waveforms("ab-1", 6)
     old, newer = msgs[0], msgs[1:]
@@ -439,7 +439,7 @@ def test_margin_table_is_kept_with_each_machines_newest_reading_of_a_batch(tmp_p
 
 
 def test_acknowledgement_from_the_dashboard_reaches_the_service_and_is_published(tmp_path: Path) -> None:
-    # docs/alarms.md: an alarm is acknowledged by a named user (here through the
+    # docs/alarms.md (lifecycle): an alarm is acknowledged by a named user (here through the
     # store function the dashboard calls); the service applies it to its detector and
     # publishes the transition once, and acknowledging does not clear the alarm.
     from monitor.store.models import Alarm

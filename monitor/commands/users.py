@@ -56,7 +56,8 @@ def add_cmd(
 @database_options
 def password_cmd(name: str, password_stdin: bool, database_url: str | None, config_file: str | None) -> None:
     """Set a new password for user NAME (an admin who forgot theirs); signs them out everywhere."""
-    from monitor.store.auth import AuthError, get_user, set_password
+    from monitor.store.auth import AuthError, set_password
+    from monitor.store.reads import get_user
 
     if password_stdin:
         password = sys.stdin.readline().rstrip("\r\n")

@@ -211,13 +211,10 @@ def build_rows(evaluated: Sequence[Evaluated], kept: Kept, cadence: SnapshotCade
             continue
         assert evaluation is not None  # every waveform is evaluated
         a = it.analysis
-        row = measurement_values(it.reading if a is None else a, zone=None if a is None else evaluation.zone,
-                                 health=evaluation.health)
-        # The detector's own JSON form, stored as it is: passed to the row builder it would
-        # be converted again (about 40 us per reading, measured; 3 % of its cost). The
-        # store's JSON serialiser turns NaN into null (store/db.py).
-        row["evaluation"] = evaluation.to_json(margins=a is None or with_margins[it.machine] == i)
-        rows.measurements.append(row)
+        rows.measurements.append(measurement_values(
+            it.reading if a is None else a, zone=None if a is None else evaluation.zone,
+            health=evaluation.health,
+            evaluation=evaluation.to_json(margins=a is None or with_margins[it.machine] == i)))
         if a is None:
             continue
         if evaluation.transitions:

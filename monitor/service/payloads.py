@@ -13,14 +13,12 @@ from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
-from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from monitor.detection.alarms import Transition, severity_rank
 from monitor.detection.evaluator import MachineEvaluator, ReadingEvaluation
 from monitor.model.timefmt import iso_utc
-from monitor.store.models import Alarm
-from monitor.store.queries import alarm_as_json
+from monitor.store import reads
 
 
 @dataclass
@@ -125,15 +123,14 @@ def alarm_events(session: Session, trans: Sequence[Transition], ids: Sequence[in
     recorded as alarms ``ids``)."""
     out: list[dict[str, Any]] = []
     for t in outside:
-        row = session.execute(select(Alarm).where(Alarm.ref == t.alarm_id).order_by(Alarm.id.desc())
-                              .limit(1)).scalar_one_or_none()
-        body = alarm_as_json(row) if row is not None else dict(t.alarm)
+        row = reads.newest_alarm_with_ref(session, t.alarm_id)
+        body = reads.alarm_json(row) if row is not None else dict(t.alarm)
         body.update(transition_fields(t))
         out.append(body)
-    rows = {a.id: a for a in session.execute(select(Alarm).where(Alarm.id.in_(ids))).scalars()} if ids else {}
+    rows = reads.alarms_by_id(session, ids)
     for t, aid in zip(trans, ids, strict=False):
         row = rows.get(aid)
-        body = alarm_as_json(row) if row is not None else dict(t.alarm)
+        body = reads.alarm_json(row) if row is not None else dict(t.alarm)
         body.update(transition_fields(t))
         out.append(body)
     return out

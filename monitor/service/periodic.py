@@ -23,8 +23,7 @@ from monitor.service.failures import short_cause
 from monitor.service.items import Outcome, OutcomeKind
 from monitor.service.logs import RepeatGate
 from monitor.service.payloads import alarm_events
-from monitor.store import Store, apply_retention, record_transitions
-from monitor.store.queries import alarm_counts_by_state
+from monitor.store import Store, apply_retention, reads, record_transitions
 from monitor.store.retention import RetentionPolicy
 
 log = logging.getLogger("whirlwatch.service")
@@ -147,4 +146,4 @@ def apply_retention_now(store: Store, policy: RetentionPolicy) -> None:
 def refresh_alarm_gauges(store: Store, metrics: ServiceMetrics) -> None:
     """The alarms in the store by state, for the metrics."""
     with store.session() as s:
-        metrics.set_alarm_states(alarm_counts_by_state(s))
+        metrics.set_alarm_states(reads.alarm_counts_by_state(s))

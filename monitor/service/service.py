@@ -38,9 +38,9 @@ import logging
 import threading
 import time
 from collections.abc import Callable, Sequence
-from typing import Any, NamedTuple
+from typing import Any
 
-from sqlalchemy import event, func, select
+from sqlalchemy import event
 
 from monitor.detection.evaluator import MachineEvaluator
 from monitor.io.ingest_limits import IngestLimits, Rejected
@@ -80,9 +80,7 @@ from monitor.service.registry_follow import RegistryFollower, start_registry
 from monitor.service.states import DetectorStates
 from monitor.settings import Settings
 from monitor.store import Store
-from monitor.store.models import Alarm, DetectorState, Measurement
-from monitor.store.models import Machine as MachineRow
-from monitor.store.writes import CLOSED_STATES
+from monitor.store.reads import StartState, start_state
 
 log = logging.getLogger("whirlwatch.service")
 
@@ -96,17 +94,6 @@ SILENCE_LIMIT_S = 15.0
 
 class ServiceError(RuntimeError):
     """The service cannot start; the message says why in one sentence."""
-
-
-class StartState(NamedTuple):
-    """What a starting service reads from the store besides the detector states."""
-
-    #: The latest stored waveform time per (machine, point), epoch s.
-    last_ts: dict[StreamKey, float]
-    #: Machines with alarms open (some may be of a mode or point since taken out).
-    with_open_alarms: list[str]
-    #: Retired machines whose alarms and status nobody has closed yet.
-    unretired: list[str]
 
 
 def load_registry_for(store: Store, machines_file: str | None) -> tuple[Registry, RegistryFollower]:
@@ -130,22 +117,7 @@ def read_start_state(store: Store) -> StartState:
     retired machines not yet settled: registry changes made while the service was
     stopped are settled at its first periodic pass."""
     with store.session() as s:
-        rows = s.execute(
-            select(Measurement.machine_id, Measurement.point_id, func.max(Measurement.ts)).group_by(
-                Measurement.machine_id, Measurement.point_id
-            )
-        ).all()
-        with_open = s.scalars(select(Alarm.machine_id).where(Alarm.state.not_in(CLOSED_STATES))
-                              .distinct()).all()
-        retired = s.execute(
-            select(DetectorState.machine_id, DetectorState.state["retired"].as_boolean())
-            .join(MachineRow, MachineRow.id == DetectorState.machine_id)
-            .where(MachineRow.active.is_(False))).all()
-    return StartState(
-        last_ts={(m, p): ts.timestamp() for m, p, ts in rows if ts is not None},
-        with_open_alarms=list(with_open),
-        unretired=[m for m, done in retired if not done],
-    )
+        return start_state(s)
 
 
 def _no_autocheckpoint(dbapi_connection: Any, _record: Any) -> None:

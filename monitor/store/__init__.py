@@ -1,5 +1,6 @@
-"""The SQL store: models, engine/session factory, the service's writes, shared queries,
-registry import/export, retention and migrations. See docs/store.md."""
+"""The SQL store: models, engine/session factory, the service's writes (``writes``), the
+reads of the service and the dashboard (``reads``), registry import/export, retention and
+migrations. See docs/store.md."""
 
 from monitor.store.auth import (
     AuthError,
@@ -15,20 +16,14 @@ from monitor.store.migrate import upgrade
 from monitor.store.registry_sync import export_registry, import_registry
 from monitor.store.retention import RetentionPolicy, apply_retention
 from monitor.store.writes import (
-    AlarmTransitionInput,
-    ReadingWrite,
     acknowledge_alarm,
     add_dead_letter,
     record_transitions,
-    save_detector_state,
-    write_reading,
-    write_speed_reading,
+    save_detector_states,
 )
 
 __all__ = [
-    "AlarmTransitionInput",
     "AuthError",
-    "ReadingWrite",
     "RetentionPolicy",
     "Store",
     "StoreError",
@@ -44,11 +39,9 @@ __all__ = [
     "normalise_url",
     "record_transitions",
     "revoke_api_token",
-    "save_detector_state",
+    "save_detector_states",
     "session_factory",
     "upgrade",
     "verify_api_token",
     "verify_password",
-    "write_reading",
-    "write_speed_reading",
 ]

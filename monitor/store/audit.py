@@ -12,10 +12,8 @@ import getpass
 from dataclasses import dataclass
 from typing import Any
 
-from sqlalchemy import select
 from sqlalchemy.orm import Session
 
-from monitor.model.timefmt import iso_utc
 from monitor.store.models import AuditEvent
 
 #: Every action recorded, in the order a user's life goes.
@@ -23,7 +21,6 @@ ACTIONS = (
     "user_create", "sign_in", "sign_out", "password_change", "password_reset", "role_change",
     "user_disable", "user_enable", "user_delete", "token_create", "token_revoke",
 )
-MAX_PAGE = 500
 
 
 @dataclass(frozen=True)
@@ -52,28 +49,3 @@ def record(session: Session, by: Actor, action: str, target: str,
                      detail=detail or {}, address=by.address[:64])
     session.add(row)
     return row
-
-
-def find_events(session: Session, *, user: str | None = None, action: str | None = None,
-                before_id: int | None = None, limit: int = 50) -> tuple[list[AuditEvent], int | None]:
-    """Audit rows, newest first, optionally about (or by) ``user`` and of one ``action``;
-    returns the page and the cursor of the next (None on the last page)."""
-    if not 1 <= limit <= MAX_PAGE:
-        raise ValueError(f"limit must be 1-{MAX_PAGE}, got {limit}.")
-    q = select(AuditEvent).order_by(AuditEvent.id.desc()).limit(limit + 1)
-    if user:
-        q = q.where((AuditEvent.target == user) | (AuditEvent.actor == user))
-    if action:
-        q = q.where(AuditEvent.action == action)
-    if before_id is not None:
-        q = q.where(AuditEvent.id < before_id)
-    rows = list(session.scalars(q))
-    more = len(rows) > limit
-    rows = rows[:limit]
-    return rows, (rows[-1].id if more and rows else None)
-
-
-def event_json(e: AuditEvent) -> dict[str, Any]:
-    """The API's shape of one audit row (docs/api.md, "Audit")."""
-    return {"id": e.id, "at": iso_utc(e.at), "actor": e.actor, "action": e.action,
-            "target": e.target, "detail": e.detail, "address": e.address}

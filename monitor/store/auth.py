@@ -18,7 +18,6 @@ import hashlib
 import hmac
 import re
 import secrets
-from typing import Any
 
 from sqlalchemy import delete, func, select
 from sqlalchemy.orm import Session
@@ -27,6 +26,7 @@ from werkzeug.security import check_password_hash, generate_password_hash
 from monitor.store import audit
 from monitor.store.audit import Actor, local_actor
 from monitor.store.models import ROLES, ApiToken, User, utcnow
+from monitor.store.reads.people import get_user
 
 _NAME = re.compile(r"^[A-Za-z0-9_.@-]{1,100}$")
 # OWASP ASVS 4.0.3 V2.1.1 (at least 12 characters) and V2.1.2 (64 allowed, over 128 refused).
@@ -53,16 +53,6 @@ class LastAdminError(AuthError):
 def hash_token(token: str) -> str:
     """sha256 hex digest of the token text."""
     return hashlib.sha256(token.encode("utf-8")).hexdigest()
-
-
-def get_user(session: Session, name: str) -> User | None:
-    return session.execute(select(User).where(User.name == name)).scalar_one_or_none()
-
-
-def active_user(session: Session, user_id: int) -> User | None:
-    """The user with id ``user_id`` unless unknown or disabled."""
-    user = session.get(User, user_id)
-    return None if user is None or user.disabled else user
 
 
 def check_new_password(password: str) -> None:
@@ -246,12 +236,3 @@ def revoke_api_token_by_id(session: Session, token_id: int, by: Actor | None = N
     False when it is unknown or already revoked."""
     return _revoke(session, session.get(ApiToken, token_id), by)
 
-
-def list_api_tokens(session: Session) -> list[dict[str, Any]]:
-    """Every token, newest first, with its user's name (never the token text)."""
-    rows = session.execute(select(ApiToken, User.name).join(User).order_by(ApiToken.id.desc())).all()
-    return [
-        {"id": t.id, "username": n, "label": t.label, "created_at": t.created_at,
-         "last_used_at": t.last_used_at, "revoked_at": t.revoked_at}
-        for t, n in rows
-    ]

@@ -341,7 +341,7 @@ class Store:
 
     >>> store = Store.open("sqlite:///data/whirlwatch.sqlite")   # doctest: +SKIP
     >>> with store.transaction() as session:                    # doctest: +SKIP
-    ...     write_reading(session, analysis)                     # committed on exit
+    ...     add_dead_letter(session, topic=topic, reason="not_json")  # committed on exit
     """
 
     def __init__(self, engine: Engine) -> None:
@@ -410,12 +410,12 @@ class Store:
         """
         if self._gate_path is None:
             return nullcontext()
-        return self._gate()
+        return self._gate(self._gate_path)
 
     @contextmanager
-    def _gate(self) -> Iterator[None]:
+    def _gate(self, path: str) -> Iterator[None]:
         if self._gate_fd is None:
-            self._gate_fd = os.open(self._gate_path, os.O_RDWR | os.O_CREAT, 0o644)
+            self._gate_fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
         fcntl.flock(self._gate_fd, fcntl.LOCK_EX)
         try:
             yield

@@ -23,9 +23,9 @@ import datetime as dt
 import hashlib
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, cast
 
-from sqlalchemy import func, select, update
+from sqlalchemy import CursorResult, func, select, update
 from sqlalchemy.orm import Session, selectinload
 
 from monitor.model.bounds import check_machine, check_mode, check_point
@@ -273,8 +273,8 @@ def _sync_modes(
         report.emptied.append(f"machine {row.id!r} is left with no modes.")
     for pos, mode in enumerate(modes):
         values = _mode_values(mode)
-        mrow = existing.get(mode.name)
-        if mrow is None:
+        stored = existing.get(mode.name)
+        if stored is None:
             row.modes.append(ModeRow(
                 name=mode.name, frequency_hz=mode.frequency_hz, damping_ratio=mode.damping_ratio,
                 amplification_factor=mode.amplification_factor,
@@ -284,10 +284,10 @@ def _sync_modes(
             report.modes_changed.append(f"{row.id}/{mode.name}")
             changed = True
             continue
-        old = mrow.values()
-        mrow.position = pos
+        old = stored.values()
+        stored.position = pos
         if old != values:
-            _assign(mrow, {
+            _assign(stored, {
                 "frequency_hz": mode.frequency_hz,
                 "damping_ratio": mode.damping_ratio,
                 "amplification_factor": mode.amplification_factor,
@@ -386,8 +386,8 @@ def save_mode(session: Session, machine: MachineRow, values: Mode, user: str,
     touch_registry(session, [machine])
     old = mode.values() if mode is not None else None
     if mode is None:
-        pos = session.scalar(select(func.coalesce(func.max(ModeRow.position), -1))
-                             .where(ModeRow.machine_id == machine.id))
+        pos = session.execute(select(func.coalesce(func.max(ModeRow.position), -1))
+                              .where(ModeRow.machine_id == machine.id)).scalar_one()
         mode = ModeRow(machine_id=machine.id, position=int(pos) + 1)
         session.add(mode)
     mode.name = values.name
@@ -443,17 +443,11 @@ def pending_baseline_restarts(session: Session) -> list[BaselineRestart]:
 
 def mark_baseline_restart_applied(session: Session, request_id: int, at: dt.datetime) -> bool:
     """Set ``applied_at`` unless another transaction did; True when this one did."""
-    res = session.execute(update(BaselineRestart)
-                          .where(BaselineRestart.id == request_id, BaselineRestart.applied_at.is_(None))
-                          .values(applied_at=at))
+    res = cast(CursorResult[Any], session.execute(  # an UPDATE's result has the row count
+        update(BaselineRestart)
+        .where(BaselineRestart.id == request_id, BaselineRestart.applied_at.is_(None))
+        .values(applied_at=at)))
     return res.rowcount == 1
-
-
-def recent_baseline_restarts(session: Session, machine_id: str, limit: int = 20) -> list[BaselineRestart]:
-    """The newest requests of a machine, newest first."""
-    return list(session.scalars(
-        select(BaselineRestart).where(BaselineRestart.machine_id == machine_id)
-        .order_by(BaselineRestart.requested_at.desc(), BaselineRestart.id.desc()).limit(limit)))
 
 
 # ----------------------------------------------------------------------------- reads
@@ -524,15 +518,6 @@ def read_machine(row: MachineRow) -> tuple[Machine | None, list[str]]:
     except (RegistryError, TypeError) as exc:
         return None, [*problems, f"machine left out: {exc}"]
     return machine, problems
-
-
-def machine_from_row(row: MachineRow) -> Machine:
-    """The registry dataclass of a machine row (see :func:`read_machine`); RegistryError
-    when the machine itself is outside the bounds."""
-    machine, problems = read_machine(row)
-    if machine is None:
-        raise RegistryError(problems[-1])
-    return machine
 
 
 def _machine_rows(session: Session, *, since: int | None = None) -> Sequence[MachineRow]:

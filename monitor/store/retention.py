@@ -20,9 +20,9 @@ from __future__ import annotations
 
 import datetime as dt
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, cast
 
-from sqlalchemy import BigInteger, ColumnElement, and_, delete, exists, func, select
+from sqlalchemy import BigInteger, ColumnElement, CursorResult, and_, delete, exists, func, select
 from sqlalchemy.ext.compiler import compiles
 from sqlalchemy.orm import Session
 from sqlalchemy.sql.expression import FunctionElement
@@ -117,9 +117,9 @@ def _thin(
         .subquery()
     )
     doomed = select(ranked.c.id).where(ranked.c.rn > 1)
-    result = session.execute(
+    result = cast(CursorResult[Any], session.execute(
         delete(model).where(model.id.in_(doomed)).execution_options(synchronize_session=False)
-    )
+    ))  # a DELETE's result is a CursorResult: it has the row count
     return int(result.rowcount or 0)
 
 
@@ -156,7 +156,7 @@ def apply_retention(
         not_evidence,
     )
     dead_edge = now - dt.timedelta(days=policy.dead_letter_days)
-    n_dead = session.execute(delete(DeadLetter).where(DeadLetter.at < dead_edge)).rowcount or 0
+    n_dead = cast(CursorResult[Any], session.execute(delete(DeadLetter).where(DeadLetter.at < dead_edge))).rowcount or 0
     return RetentionResult(
         measurements=n_meas,
         speed_readings=n_speed,

@@ -1,16 +1,14 @@
-"""Writes of the service: one reading's results and its alarm transitions in one
-transaction, idempotent on (machine, point, ts).
+"""The service's writes: the rows of a batch of readings, alarm transitions, detector
+states and dead letters, each inside the caller's transaction (the caller commits).
 
-The service calls, for each waveform message::
-
-    with store.transaction() as session:
-        result = write_reading(session, analysis, zone=..., transitions=..., ...)
-    client.ack(mid, qos)          # only after the commit
-
-A redelivered message finds its measurement row already there (``INSERT ... ON CONFLICT
-DO NOTHING`` returns no id) and writes nothing else: no second snapshot, no second alarm
-transition, no detector state overwritten with an older one. Two service processes racing
-on the same reading are serialised by the unique key the same way.
+The service's batch writer (monitor/service/batch.py) is the one writer of readings: it
+builds each reading's rows with :func:`measurement_values`, :func:`snapshot_rows` and
+:func:`speed_reading_values` and inserts a whole batch with :func:`insert_many_ignore`
+(``INSERT ... ON CONFLICT DO NOTHING``), so a redelivered message inserts nothing; alarm
+transitions go through :func:`record_transitions`, each machine's detector state through
+:func:`save_detector_states`. Two service processes racing on the same reading are
+serialised by the unique key the same way. The dashboard's one write here is
+:func:`acknowledge_alarm`.
 """
 
 from __future__ import annotations
@@ -19,14 +17,15 @@ import datetime as dt
 import math
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any, Protocol
+from typing import Any
 
 import numpy as np
-from sqlalchemy import Connection, Table, and_, bindparam, func, select
+from sqlalchemy import Connection, Table, and_, bindparam, select
 from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.orm import Session
 
 from monitor.analysis.waveform import ReadingAnalysis, Spectrum
+from monitor.detection.alarms import Transition
 from monitor.model.jsonsafe import jsonable
 from monitor.model.readings import SpeedReading, Waveform
 from monitor.store.models import (
@@ -43,55 +42,6 @@ from monitor.store.models import (
 
 CLOSED_STATES = frozenset({"cleared"})
 DEAD_LETTER_HEAD_BYTES = 256
-
-
-class TransitionLike(Protocol):
-    """What the store needs of an alarm transition (``monitor.detection.alarms`` provides one)."""
-
-    machine: str
-    point: str | None
-    kind: str
-    subject: str
-    severity: str
-    state: str
-    transition: str
-    time: Any  # epoch seconds UTC (float) or aware datetime
-    evidence: Mapping[str, Any] | None
-
-
-@dataclass(frozen=True)
-class AlarmTransitionInput:
-    """A plain alarm transition for callers without ``monitor.detection.alarms`` objects.
-
-    ``time`` is epoch seconds UTC or an aware datetime; ``user`` names who caused it
-    (acknowledgements), None for the service.
-    """
-
-    machine: str
-    point: str | None
-    kind: str
-    subject: str
-    severity: str
-    state: str
-    transition: str
-    time: float | dt.datetime
-    evidence: Mapping[str, Any] | None = None
-    user: str | None = None
-
-
-@dataclass(frozen=True)
-class ReadingWrite:
-    """Outcome of :func:`write_reading`.
-
-    ``inserted`` is False for a replay (nothing was written); ``alarm_ids`` lists the alarm
-    rows the transitions touched, in order; ``snapshot_ids`` the spectrum snapshots stored.
-    """
-
-    inserted: bool
-    measurement_id: int | None
-    alarm_ids: tuple[int, ...] = ()
-    snapshot_ids: tuple[int, ...] = ()
-    evidence_snapshot_id: int | None = None
 
 
 # ----------------------------------------------------------------------------- helpers
@@ -188,35 +138,21 @@ def _snapshot_values(
     }
 
 
-def snapshot_due(
-    session: Session, machine: str, point: str, ts: dt.datetime, interval_s: float
-) -> bool:
-    """True when no spectrum of the point was kept in the ``interval_s`` before ``ts``."""
-    since = ts - dt.timedelta(seconds=interval_s)
-    n = session.execute(
-        select(func.count())
-        .select_from(SpectrumSnapshot)
-        .where(
-            SpectrumSnapshot.machine_id == machine,
-            SpectrumSnapshot.point_id == point,
-            SpectrumSnapshot.ts > since,
-            SpectrumSnapshot.ts <= ts,
-        )
-    ).scalar_one()
-    return n == 0
-
-
 def measurement_values(
     analysis: ReadingAnalysis | Waveform,
     *,
     zone: str | None = None,
     health: Any = None,
-    evaluation: Any = None,
-    stored_at: dt.datetime | None = None,
+    evaluation: Mapping[str, Any] | None = None,
 ) -> dict[str, Any]:
-    """The ``measurements`` row of one analysed reading (see :func:`write_reading`), or
-    of a waveform the analysis could not use (no features, orders or peaks; its speed as
-    measured, if it carried one)."""
+    """The ``measurements`` row of one analysed reading, or of a waveform the analysis
+    could not use (no features, orders or peaks; its speed as measured, if it carried one).
+
+    ``health`` is converted to JSON (:func:`jsonable`); ``evaluation`` is the detector's
+    own JSON form (``ReadingEvaluation.to_json``), stored as given: converting it again
+    would cost about 40 us per reading (measured; 3 % of its cost). The store's JSON
+    serialiser turns NaN into null (store/db.py). ``stored_at`` is stamped now; the batch
+    writer stamps it again just before its insert."""
     if isinstance(analysis, Waveform):
         w = analysis
         return {
@@ -233,8 +169,8 @@ def measurement_values(
             "peaks": [],
             "zone": zone,
             "health": jsonable(health),
-            "evaluation": jsonable(evaluation),
-            "stored_at": stored_at or utcnow(),
+            "evaluation": evaluation,
+            "stored_at": utcnow(),
         }
     return {
         "machine_id": analysis.machine,
@@ -250,8 +186,8 @@ def measurement_values(
         "peaks": [{"hz": _num(p.hz), "amplitude": _num(p.amplitude)} for p in analysis.peaks],
         "zone": zone,
         "health": jsonable(health),
-        "evaluation": jsonable(evaluation),
-        "stored_at": stored_at or utcnow(),
+        "evaluation": evaluation,
+        "stored_at": utcnow(),
     }
 
 
@@ -342,100 +278,9 @@ def snapshot_times(
     return out
 
 
-def write_reading(
-    session: Session,
-    analysis: ReadingAnalysis,
-    *,
-    zone: str | None = None,
-    health: Any = None,
-    evaluation: Any = None,
-    transitions: Sequence[TransitionLike] = (),
-    snapshot_interval_s: float | None = None,
-    keep_spectrum: bool = False,
-    detector_state: Mapping[str, Any] | None = None,
-) -> ReadingWrite:
-    """Store one reading's results, spectrum snapshots, alarm transitions and detector
-    state, inside the caller's transaction; a replay of the same (machine, point, ts)
-    writes nothing and returns ``inserted=False``.
-
-    Parameters
-    ----------
-    analysis : ReadingAnalysis
-        The analysed waveform; its machine and point must exist in the registry tables.
-    zone : str, optional
-        ISO 20816 zone letter of the overall velocity.
-    health, evaluation : dataclass or mapping, optional
-        Sensor-health flags and the detection results (margins, baselines, ...), stored
-        as JSON (see :func:`jsonable`).
-    transitions : sequence of TransitionLike
-        Alarm transitions this reading caused; each gets the reading's velocity spectrum
-        as evidence.
-    snapshot_interval_s : float, optional
-        Keep the spectra when none of this point was kept in the last ``snapshot_interval_s``
-        seconds (the cadence); None keeps spectra only as evidence or on ``keep_spectrum``.
-    detector_state : mapping, optional
-        The machine's detector state after this reading (JSON-able), for restarts.
-    """
-    ts = to_datetime(analysis.ts)
-    values = measurement_values(analysis, zone=zone, health=health, evaluation=evaluation)
-    mid = insert_ignore(session, Measurement.__table__, values, ("machine_id", "point_id", "ts"))
-    if mid is None:
-        return ReadingWrite(inserted=False, measurement_id=None)
-
-    evidence = bool(transitions)
-    keep = (
-        keep_spectrum
-        or evidence
-        or (
-            snapshot_interval_s is not None
-            and snapshot_due(session, analysis.machine, analysis.point, ts, snapshot_interval_s)
-        )
-    )
-    snapshot_ids: list[int] = []
-    evidence_id: int | None = None
-    if keep:
-        for kind, spectrum in (
-            ("native", analysis.spectrum),
-            ("velocity", analysis.velocity_spectrum),
-        ):
-            if spectrum is None:
-                continue
-            sid = insert_ignore(
-                session,
-                SpectrumSnapshot.__table__,
-                _snapshot_values(analysis, ts, kind, spectrum, evidence),
-                ("machine_id", "point_id", "ts", "kind"),
-            )
-            if sid is not None:
-                snapshot_ids.append(sid)
-                if kind == "velocity" or evidence_id is None:
-                    evidence_id = sid
-    alarm_ids = record_transitions(session, transitions, spectrum_snapshot_id=evidence_id)
-    if detector_state is not None:
-        save_detector_state(session, analysis.machine, detector_state, ts)
-    return ReadingWrite(
-        inserted=True,
-        measurement_id=mid,
-        alarm_ids=tuple(alarm_ids),
-        snapshot_ids=tuple(snapshot_ids),
-        evidence_snapshot_id=evidence_id if evidence else None,
-    )
-
-
 def speed_reading_values(reading: SpeedReading) -> dict[str, Any]:
     """The ``speed_readings`` row of one speed reading."""
     return {"machine_id": reading.machine, "ts": to_datetime(reading.ts), "speed_hz": float(reading.speed_hz)}
-
-
-def write_speed_reading(session: Session, reading: SpeedReading) -> bool:
-    """Store a speed reading; False when one for (machine, ts) is already stored."""
-    rid = insert_ignore(
-        session,
-        SpeedReadingRow.__table__,
-        speed_reading_values(reading),
-        ("machine_id", "ts"),
-    )
-    return rid is not None
 
 
 # ----------------------------------------------------------------------------- alarms
@@ -457,39 +302,23 @@ class _Step:
     ref: str | None
 
 
-def _step(t: Any) -> _Step:
-    """Normalise a ``monitor.detection.alarms.Transition`` (alarm dict + name/ts) or a
-    :class:`TransitionLike` into one shape."""
-    alarm = getattr(t, "alarm", None)
-    if isinstance(alarm, Mapping) and hasattr(t, "name") and hasattr(t, "ts"):
-        ref = alarm.get("id")
-        return _Step(
-            machine=str(alarm["machine"]),
-            point=alarm.get("point"),
-            kind=str(alarm["kind"]),
-            subject=str(alarm.get("subject") or ""),
-            severity=str(t.severity),
-            state=str(alarm["state"]),
-            name=str(t.name),
-            at=to_datetime(t.ts),
-            evidence=t.evidence,
-            user=getattr(t, "user", None),
-            comment=getattr(t, "comment", None),
-            ref=None if ref is None else str(ref),
-        )
+def _step(t: Transition) -> _Step:
+    """What the store needs of a detector's transition (its alarm's state after it)."""
+    alarm = t.alarm
+    ref = alarm.get("id")
     return _Step(
-        machine=t.machine,
-        point=t.point,
-        kind=t.kind,
-        subject=t.subject or "",
+        machine=str(alarm["machine"]),
+        point=alarm.get("point"),
+        kind=str(alarm["kind"]),
+        subject=str(alarm.get("subject") or ""),
         severity=str(t.severity),
-        state=str(t.state),
-        name=str(t.transition),
-        at=to_datetime(t.time),
+        state=str(alarm["state"]),
+        name=str(t.name),
+        at=to_datetime(t.ts),
         evidence=t.evidence,
-        user=getattr(t, "user", None),
-        comment=getattr(t, "comment", None),
-        ref=getattr(t, "ref", None),
+        user=t.user,
+        comment=t.comment,
+        ref=None if ref is None else str(ref),
     )
 
 
@@ -502,16 +331,14 @@ def _key_filter(t: _Step) -> Any:
 
 def record_transitions(
     session: Session,
-    transitions: Iterable[Any],
+    transitions: Iterable[Transition],
     *,
     spectrum_snapshot_id: int | None = None,
 ) -> list[int]:
-    """Apply alarm transitions to the ``alarms`` rows and append them to
+    """Apply the detectors' alarm transitions to the ``alarms`` rows and append them to
     ``alarm_transitions``, inside the caller's transaction.
 
-    Accepts ``monitor.detection.alarms.Transition`` objects or any :class:`TransitionLike` (e.g.
-    :class:`AlarmTransitionInput`). An alarm is identified by (machine, point, kind,
-    subject); a transition opens a new alarm row when none of that identity is open
+    An alarm is identified by (machine, point, kind, subject); a transition opens a new alarm row when none of that identity is open
     (state not ``cleared``). A transition already stored (same alarm identity, name and
     instant) is skipped, so replays are no-ops. Returns the alarm ids touched, in order.
     """
@@ -626,33 +453,14 @@ def acknowledge_alarm(
 # ----------------------------------------------------------------------------- service state
 
 
-def save_detector_state(
-    session: Session, machine: str, state: Mapping[str, Any], ts: dt.datetime | float | None = None
-) -> None:
-    """Upsert the detector state JSON of ``machine`` (inside the caller's transaction).
-
-    ``state`` is exact JSON data (:func:`monitor.detection.evaluator.stored_state`: non-finite
-    floats already tagged, :mod:`monitor.detection.state_json`); the serialiser's null for a NaN
-    would lose it."""
-    row = session.get(DetectorState, machine)
-    when = to_datetime(ts) if ts is not None else None
-    if row is None:
-        session.add(
-            DetectorState(machine_id=machine, state=jsonable(state), ts=when, updated_at=utcnow())
-        )
-    else:
-        row.state = jsonable(state)
-        row.ts = when
-        row.updated_at = utcnow()
-    session.flush()
-
-
 def save_detector_states(
     session: Session | Connection, states: Mapping[str, tuple[Mapping[str, Any], dt.datetime | float | None]]
 ) -> None:
     """Upsert the detector state JSON of several machines (``{machine: (state, ts)}``) with
     one statement (one parameter set per machine), inside the caller's transaction.
-    Each state is exact JSON data, as for :func:`save_detector_state`."""
+    Each state is exact JSON data (:func:`monitor.detection.evaluator.stored_state`: non-finite
+    floats already tagged, :mod:`monitor.detection.state_json`); the serialiser's null for a
+    NaN would lose it."""
     if not states:
         return
     dialect = _dialect_name(session)

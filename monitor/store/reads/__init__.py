@@ -1,0 +1,110 @@
+"""The reads of the service and the dashboard: one place for every query of stored data.
+
+Each function runs inside the caller's session and never commits: the caller owns the
+transaction (a dashboard request's session, a service unit of work). Page-level reads
+issue a fixed number of statements whatever the number of machines or stored readings.
+By idea:
+
+- :mod:`~monitor.store.reads.machines`: the plant overview, one machine's page, its modes,
+  their history and the baseline restarts asked for;
+- :mod:`~monitor.store.reads.evaluations`: what the dashboard shows of the detector's
+  stored evaluations, the margin table at a machine's speed, the zone limits of a point;
+- :mod:`~monitor.store.reads.trends`: decimated trends of a machine's points;
+- :mod:`~monitor.store.reads.spectra`: stored spectra;
+- :mod:`~monitor.store.reads.alarms`: the alarm history, in the one JSON shape of an alarm
+  (REST API and MQTT alarm events);
+- :mod:`~monitor.store.reads.people`: users, API tokens and the audit trail;
+- :mod:`~monitor.store.reads.service`: what a starting service reads.
+
+Callers import from this package; the names below are its whole surface.
+"""
+
+from monitor.store.reads.alarms import (
+    OPEN_STATES,
+    alarm_counts_by_state,
+    alarm_json,
+    alarms_by_id,
+    find_alarms,
+    get_alarm,
+    machines_with_open_alarms,
+    newest_alarm_with_ref,
+    open_alarm_counts,
+)
+from monitor.store.reads.evaluations import (
+    current_margins,
+    evaluation_view,
+    feature_json,
+    margins_for,
+    nearest_margin,
+    point_zone_limits,
+)
+from monitor.store.reads.machines import (
+    baseline_restart_json,
+    get_machine,
+    machine_detail,
+    machine_list,
+    machine_modes,
+    machine_summaries,
+    mode_history,
+    mode_json,
+    mode_named,
+    recent_baseline_restarts,
+)
+from monitor.store.reads.people import (
+    MAX_AUDIT_PAGE,
+    active_user,
+    audit_event_json,
+    find_audit_events,
+    get_user,
+    list_api_tokens,
+)
+from monitor.store.reads.service import StartState, start_state
+from monitor.store.reads.spectra import (
+    MAX_SPECTRUM_BINS,
+    get_spectrum,
+    latest_spectra,
+    spectrum_json,
+)
+from monitor.store.reads.trends import decimate_indices, trends
+
+__all__ = [
+    "MAX_AUDIT_PAGE",
+    "active_user",
+    "audit_event_json",
+    "find_audit_events",
+    "get_user",
+    "list_api_tokens",
+    "MAX_SPECTRUM_BINS",
+    "OPEN_STATES",
+    "StartState",
+    "alarm_counts_by_state",
+    "alarm_json",
+    "alarms_by_id",
+    "baseline_restart_json",
+    "current_margins",
+    "decimate_indices",
+    "evaluation_view",
+    "feature_json",
+    "find_alarms",
+    "get_alarm",
+    "get_machine",
+    "get_spectrum",
+    "latest_spectra",
+    "machine_detail",
+    "machine_list",
+    "machine_modes",
+    "machine_summaries",
+    "machines_with_open_alarms",
+    "margins_for",
+    "mode_history",
+    "mode_json",
+    "mode_named",
+    "nearest_margin",
+    "newest_alarm_with_ref",
+    "open_alarm_counts",
+    "point_zone_limits",
+    "recent_baseline_restarts",
+    "spectrum_json",
+    "start_state",
+    "trends",
+]

@@ -1,0 +1,229 @@
+"""Reads of the machines: the plant overview, one machine's page, its modes and their
+history, the baseline restarts asked for.
+
+Every page-level read issues a fixed number of SQL statements whatever the number of
+machines or stored readings: rows for all machines are fetched in one statement per
+table, the latest reading per point by an indexed correlated lookup.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from collections import defaultdict
+from typing import Any
+
+from sqlalchemy import select
+from sqlalchemy.orm import Session, aliased
+
+from monitor.detection.alarms import severity_rank
+from monitor.model.timefmt import iso_utc
+from monitor.store.models import (
+    BaselineRestart,
+    Machine,
+    Measurement,
+    MeasurementPoint,
+    Mode,
+    ModeHistory,
+)
+from monitor.store.reads.alarms import open_alarm_counts
+from monitor.store.reads.evaluations import (
+    current_margins,
+    evaluation_view,
+    feature_json,
+    nearest_margin,
+    point_zone_limits,
+)
+from monitor.store.reads.spectra import latest_spectra, spectrum_json
+from monitor.store.registry_sync import mode_problem
+
+ZONE_ORDER = {"A": 1, "B": 2, "C": 3, "D": 4}
+
+
+def get_machine(s: Session, machine_id: str) -> Machine | None:
+    """One machine (its points and modes load when first used), or None."""
+    return s.get(Machine, machine_id)
+
+
+def machine_list(s: Session) -> list[dict[str, Any]]:
+    """Ids and names of active machines (for filter menus)."""
+    return [{"id": i, "name": n or i} for i, n in s.execute(
+        select(Machine.id, Machine.name).where(Machine.active.is_(True)).order_by(Machine.position, Machine.id))]
+
+
+def _newest_id() -> Any:
+    # The newest measurement of a point: one indexed lookup through the
+    # (machine_id, point_id, ts) unique index, correlated to measurement_points.
+    inner = aliased(Measurement)
+    return (
+        select(inner.id)
+        .where(inner.machine_id == MeasurementPoint.machine_id, inner.point_id == MeasurementPoint.id)
+        .order_by(inner.ts.desc())
+        .limit(1)
+        .correlate(MeasurementPoint)
+        .scalar_subquery()
+    )
+
+
+def _latest_per_point(s: Session, machine_id: str) -> list[Measurement]:
+    """The newest measurement of every active point of a machine, one statement."""
+    return list(s.scalars(
+        select(Measurement)
+        .join(MeasurementPoint, Measurement.id == _newest_id())
+        .where(MeasurementPoint.active.is_(True), MeasurementPoint.machine_id == machine_id)
+    ))
+
+
+def _latest_per_point_rows(s: Session) -> list[Any]:
+    """The cheap columns of the newest measurement of every active point, one statement."""
+    return list(s.execute(
+        select(Measurement.id, Measurement.machine_id, Measurement.point_id, Measurement.ts,
+               Measurement.speed_hz, Measurement.zone, Measurement.overall_velocity_mm_s_rms,
+               Measurement.stored_at)
+        .join(MeasurementPoint, Measurement.id == _newest_id())
+        .where(MeasurementPoint.active.is_(True))
+    ))
+
+
+def _machine_state(n_open: int, latest: dt.datetime | None) -> str:
+    if n_open:
+        return "alarm"
+    return "no_data" if latest is None else "normal"
+
+
+def machine_summaries(s: Session) -> list[dict[str, Any]]:
+    """Every active machine with its current state, for the plant overview (6 statements).
+
+    Plain column rows, not ORM objects (the page reads a few columns of thousands of rows);
+    the nearest margin comes from the margin rows the service stored with each machine's
+    newest reading (:func:`current_margins`), and only that part of its evaluation is read."""
+    machines = s.execute(select(
+        Machine.id, Machine.name, Machine.location, Machine.machine_class, Machine.speed_min_rpm,
+        Machine.speed_max_rpm, Machine.excitation_orders, Machine.line_frequency_hz, Machine.limits_mm_s,
+        Machine.settings, Machine.updated_at,
+    ).where(Machine.active.is_(True)).order_by(Machine.position, Machine.id)).all()
+    modes_by: dict[str, list[Any]] = defaultdict(list)
+    for mo in s.execute(select(
+            Mode.machine_id, Mode.name, Mode.frequency_hz, Mode.damping_ratio, Mode.amplification_factor,
+            Mode.required_margin_pct, Mode.source, Mode.date, Mode.updated_at,
+    ).join(Machine).where(Machine.active.is_(True)).order_by(Mode.position, Mode.id)):
+        modes_by[mo.machine_id].append(mo)
+    latest_by: dict[str, list[Any]] = defaultdict(list)
+    for me in _latest_per_point_rows(s):
+        latest_by[me.machine_id].append(me)
+    newest_by = {mid: max(rows, key=lambda r: r.ts) for mid, rows in latest_by.items()}
+    stored: dict[int, Any] = {i: margins for i, margins in s.execute(
+        select(Measurement.id, Measurement.evaluation["margins"])
+        .where(Measurement.id.in_([r.id for r in newest_by.values()])))} if newest_by else {}
+    open_by = open_alarm_counts(s)
+    out = []
+    for m in machines:
+        rows = latest_by.get(m.id, [])
+        newest = newest_by.get(m.id)
+        speed = newest.speed_hz if newest else None
+        margins = current_margins(m, modes_by.get(m.id, []), speed,
+                                  {"margins": stored.get(newest.id)} if newest else None,
+                                  newest.stored_at if newest else None)
+        zoned = [r for r in rows if r.zone in ZONE_ORDER]
+        worst = max(zoned, key=lambda r: (ZONE_ORDER[r.zone], r.overall_velocity_mm_s_rms or 0)) if zoned else None
+        by_severity = open_by.get(m.id, {})
+        n_open = sum(by_severity.values())
+        out.append({
+            "id": m.id, "name": m.name or m.id, "location": m.location,
+            "class": m.machine_class,
+            "state": _machine_state(n_open, newest.ts if newest else None),
+            "speed_hz": speed, "speed_rpm": None if speed is None else speed * 60.0,
+            "last_reading_at": iso_utc(newest.ts) if newest else None,
+            "nearest_margin": nearest_margin(margins),
+            "worst_zone": None if worst is None else {
+                "point": worst.point_id, "zone": worst.zone,
+                "overall_mm_s_rms": worst.overall_velocity_mm_s_rms},
+            "active_alarms": n_open,
+            "worst_severity": max(by_severity, key=severity_rank) if by_severity else None,
+        })
+    return out
+
+
+def machine_modes(s: Session, machine_id: str) -> list[Mode]:
+    """The stored modes of a machine, in registry order."""
+    return list(s.scalars(select(Mode).where(Mode.machine_id == machine_id).order_by(Mode.position, Mode.id)))
+
+
+def mode_named(s: Session, machine_id: str, name: str) -> Mode | None:
+    """The mode of a machine with this name, or None."""
+    return s.scalar(select(Mode).where(Mode.machine_id == machine_id, Mode.name == name))
+
+
+def mode_json(mo: Mode) -> dict[str, Any]:
+    """A stored mode; ``valid`` false and ``problem`` (one sentence) when its values lie
+    outside the registry's bounds, so neither the service nor the margins use it."""
+    d = mo.values()
+    problem = mode_problem(mo, mo.machine_id)
+    d.update({"id": mo.id, "updated_at": iso_utc(mo.updated_at), "valid": problem is None, "problem": problem})
+    return d
+
+
+def mode_history(s: Session, machine_id: str, limit: int = 200) -> list[dict[str, Any]]:
+    """The recorded changes of a machine's modes, newest first."""
+    rows = s.scalars(select(ModeHistory).where(ModeHistory.machine_id == machine_id)
+                     .order_by(ModeHistory.changed_at.desc(), ModeHistory.id.desc()).limit(limit))
+    return [{"id": h.id, "mode": h.mode_name, "change": h.change, "changed_by": h.changed_by,
+             "changed_at": iso_utc(h.changed_at), "old": h.old_values, "new": h.new_values} for h in rows]
+
+
+def recent_baseline_restarts(s: Session, machine_id: str, limit: int = 20) -> list[BaselineRestart]:
+    """The newest baseline restarts asked for a machine, newest first."""
+    return list(s.scalars(
+        select(BaselineRestart).where(BaselineRestart.machine_id == machine_id)
+        .order_by(BaselineRestart.requested_at.desc(), BaselineRestart.id.desc()).limit(limit)))
+
+
+def baseline_restart_json(r: BaselineRestart) -> dict[str, Any]:
+    """A baseline restart asked for, and when the service applied it."""
+    return {"id": r.id, "machine": r.machine_id, "point": r.point_id, "comment": r.comment,
+            "requested_by": r.requested_by, "requested_at": iso_utc(r.requested_at),
+            "applied_at": iso_utc(r.applied_at)}
+
+
+def machine_detail(s: Session, m: Machine) -> dict[str, Any]:
+    """One machine: points, modes, latest readings and spectra, margins, open alarms."""
+    points = s.scalars(select(MeasurementPoint).where(
+        MeasurementPoint.machine_id == m.id, MeasurementPoint.active.is_(True)).order_by(MeasurementPoint.position)).all()
+    modes = machine_modes(s, m.id)
+    latest = {r.point_id: r for r in _latest_per_point(s, m.id)}
+    newest = max(latest.values(), key=lambda r: r.ts) if latest else None
+    speed = newest.speed_hz if newest else None
+    n_open = sum(open_alarm_counts(s, m.id).get(m.id, {}).values())
+    pts = []
+    for p in points:
+        me = latest.get(p.id)
+        view = evaluation_view(me.evaluation if me is not None else None)
+        lim = point_zone_limits(m, p)
+        overall = view["features"].get("overall", {})
+        pts.append({
+            "id": p.id, "direction": p.direction, "quantity": p.quantity, "unit": p.unit,
+            "zone_limits_mm_s": list(lim.as_tuple()) if lim else view["zone_limits_mm_s"],
+            "zone_limits_source": lim.source if lim else view["zone_limits_source"],
+            "latest": None if me is None else {
+                "ts": iso_utc(me.ts), "zone": me.zone, "overall_mm_s_rms": me.overall_velocity_mm_s_rms,
+                "speed_hz": me.speed_hz, "speed_source": me.speed_source,
+                "orders": me.orders, "peaks": me.peaks},
+            # The learned baseline of the overall level (mm/s RMS; None while learning).
+            "baseline_mm_s_rms": overall.get("baseline_median"),
+            "features": [feature_json(f) for f in view["features"].values()],
+            "growth_ignored": view["growth_ignored"],
+        })
+    return {
+        "id": m.id, "name": m.name or m.id, "location": m.location, "class": m.machine_class,
+        "speed_range_rpm": [m.speed_min_rpm, m.speed_max_rpm],
+        "excitation_orders": m.excitation_orders, "line_frequency_hz": m.line_frequency_hz,
+        "state": _machine_state(n_open, newest.ts if newest else None),
+        "active_alarms": n_open,
+        "speed_hz": speed, "speed_rpm": None if speed is None else speed * 60.0,
+        "last_reading_at": iso_utc(newest.ts) if newest else None,
+        "points": pts,
+        "modes": [mode_json(x) for x in modes],
+        "margins": current_margins(m, modes, speed, newest.evaluation if newest else None,
+                                   newest.stored_at if newest else None),
+        "latest_spectra": [spectrum_json(sn) for sn in latest_spectra(s, m.id)],
+        "baseline_restarts": [baseline_restart_json(r) for r in recent_baseline_restarts(s, m.id)],
+    }

@@ -1,0 +1,41 @@
+"""What a starting service reads from the store besides the detector states."""
+
+from __future__ import annotations
+
+from typing import NamedTuple
+
+from sqlalchemy import func, select
+from sqlalchemy.orm import Session
+
+from monitor.store.models import DetectorState, Machine, Measurement
+from monitor.store.reads.alarms import machines_with_open_alarms
+
+
+class StartState(NamedTuple):
+    """Where the stored readings stand and what a starting service must settle."""
+
+    #: The latest stored waveform time per (machine, point), epoch s.
+    last_ts: dict[tuple[str, str], float]
+    #: Machines with alarms open (some may be of a mode or point since taken out).
+    with_open_alarms: list[str]
+    #: Retired machines whose alarms and status nobody has closed yet.
+    unretired: list[str]
+
+
+def start_state(s: Session) -> StartState:
+    """The latest stored waveform of each stream, the machines with alarms open, and the
+    retired machines not yet settled (three statements)."""
+    rows = s.execute(
+        select(Measurement.machine_id, Measurement.point_id, func.max(Measurement.ts))
+        .group_by(Measurement.machine_id, Measurement.point_id)
+    ).all()
+    retired = s.execute(
+        select(DetectorState.machine_id, DetectorState.state["retired"].as_boolean())
+        .join(Machine, Machine.id == DetectorState.machine_id)
+        .where(Machine.active.is_(False))
+    ).all()
+    return StartState(
+        last_ts={(m, p): ts.timestamp() for m, p, ts in rows if ts is not None},
+        with_open_alarms=machines_with_open_alarms(s),
+        unretired=[m for m, done in retired if not done],
+    )

@@ -1,0 +1,101 @@
+"""Trends of a machine's points over a time range, decimated so a short excursion is
+never averaged away."""
+
+from __future__ import annotations
+
+import datetime as dt
+from typing import Any
+
+import numpy as np
+from sqlalchemy import select
+from sqlalchemy.orm import Session
+
+from monitor.store.models import Machine, Measurement, MeasurementPoint
+from monitor.store.reads.evaluations import evaluation_view, point_zone_limits
+
+
+def trends(s: Session, m: Machine, point_ids: list[str], t0: dt.datetime, t1: dt.datetime,
+           max_points: int) -> list[dict[str, Any]]:
+    """Per point: overall velocity (mm/s RMS), speed (Hz) and order amplitudes (1x, 2x and
+    each excitation order, velocity mm/s peak) in [t0, t1], at most ``max_points``
+    readings, with the ISO 20816 zone boundaries of the point and the learned baseline of
+    each feature as the detector stored it with each kept reading (None while learning).
+
+    Two statements per point: the cheap columns over the indexed (machine, point, ts)
+    range, decimated in numpy (the largest overall level of each time bucket, so a short
+    excursion is never averaged away), then the JSON columns of the rows kept."""
+    points = {p.id: p for p in s.scalars(select(MeasurementPoint).where(MeasurementPoint.machine_id == m.id))}
+    out = []
+    for pid in point_ids:
+        rows = s.execute(
+            select(Measurement.id, Measurement.ts, Measurement.overall_velocity_mm_s_rms)
+            .where(Measurement.machine_id == m.id, Measurement.point_id == pid,
+                   Measurement.ts >= t0, Measurement.ts <= t1)
+            .order_by(Measurement.ts)
+        ).all()
+        n_total = len(rows)
+        if n_total:
+            ids = np.fromiter((r[0] for r in rows), dtype=np.int64, count=n_total)
+            ts = np.fromiter((r[1].timestamp() for r in rows), dtype=np.float64, count=n_total)
+            ov = np.fromiter((np.nan if r[2] is None else r[2] for r in rows), dtype=np.float64, count=n_total)
+            ids = ids[decimate_indices(ts, ov, max_points)]
+        else:
+            ids = np.empty(0, dtype=np.int64)
+        kept = s.execute(
+            select(Measurement.ts, Measurement.overall_velocity_mm_s_rms, Measurement.speed_hz,
+                   Measurement.orders, Measurement.zone, Measurement.evaluation)
+            .where(Measurement.id.in_(ids.tolist())).order_by(Measurement.ts)
+        ).all() if ids.size else []
+        got = [_order_values(r.orders) for r in kept]
+        # In the order the analysis stores them (1x, 2x, then the excitation orders,
+        # ascending); an order no kept reading has a value for is left out.
+        labels = [lab for lab in dict.fromkeys(k for g in got for k in g) if any(g.get(lab) is not None for g in got)]
+        views = [evaluation_view(r.evaluation) for r in kept]
+        baseline: dict[str, list[float | None]] = {}
+        for name in ("overall", *labels):
+            b = [v["features"].get(name, {}).get("baseline_median") for v in views]
+            if any(x is not None for x in b):
+                baseline[name] = b
+        p = points.get(pid)
+        lim = point_zone_limits(m, p) if p is not None else None
+        out.append({
+            "point": pid, "readings_in_range": n_total, "returned": len(kept),
+            "ts": [r.ts.timestamp() for r in kept],
+            "overall_mm_s_rms": [r.overall_velocity_mm_s_rms for r in kept],
+            "speed_hz": [r.speed_hz for r in kept],
+            "zone": [r.zone for r in kept],
+            "orders": {lab: [g.get(lab) for g in got] for lab in labels},
+            "units": {"overall": "mm/s RMS", **{lab: "mm/s peak" for lab in labels}},
+            "baseline": baseline,
+            "zone_limits_mm_s": list(lim.as_tuple()) if lim else None,
+        })
+    return out
+
+
+def _order_values(orders: Any) -> dict[str, float | None]:
+    """The stored orders of a reading by label (``1x``, ...): velocity, mm/s peak, as
+    detection's order features use (not the point's own unit)."""
+    out: dict[str, float | None] = {}
+    for o in orders or ():
+        if isinstance(o, dict) and "order" in o:
+            v = o.get("velocity_mm_s")
+            out[f"{float(o['order']):g}x"] = None if v is None else float(v)
+    return out
+
+
+def decimate_indices(ts: np.ndarray, values: np.ndarray, max_points: int) -> np.ndarray:
+    """Indices of at most ``max_points`` samples: in each of ``max_points`` equal time
+    buckets, the sample with the largest value (first sample when all are NaN)."""
+    n = ts.size
+    if n <= max_points:
+        return np.arange(n)
+    span = ts[-1] - ts[0]
+    if span <= 0:
+        return np.linspace(0, n - 1, max_points).astype(np.int64)
+    b = np.minimum(((ts - ts[0]) / span * max_points).astype(np.int64), max_points - 1)
+    v = np.where(np.isnan(values), -np.inf, values)
+    # Sort by bucket, then by value descending; the first of each bucket is its peak.
+    order = np.lexsort((-v, b))
+    first = np.ones(n, dtype=bool)
+    first[1:] = b[order][1:] != b[order][:-1]
+    return np.sort(order[first])
