@@ -12,7 +12,7 @@ from pathlib import Path
 from sqlalchemy import event
 
 ROOT = Path(__file__).resolve().parent.parent
-sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(ROOT / "tests"))
 
 
 def _time(client, path: str, reps: int) -> float:
@@ -28,8 +28,9 @@ def _time(client, path: str, reps: int) -> float:
 def run(quick: bool) -> list[dict]:
     import re
 
+    from dashboard_seed import PASSWORDS, seed
+
     from dashboard import create_app
-    from tests.dashboard_seed import PASSWORDS, seed
 
     machines, per_point = (500, 1000) if not quick else (500, 40)
     with tempfile.TemporaryDirectory() as d:

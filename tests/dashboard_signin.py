@@ -8,19 +8,20 @@ from __future__ import annotations
 
 import http.client
 import re
-import shutil
+import sqlite3
 import subprocess
 import sys
 import tempfile
 import time
 from collections.abc import Iterator, Mapping
-from contextlib import contextmanager
+from contextlib import closing, contextmanager
 from pathlib import Path
 from urllib.parse import urlencode
 
+from dashboard_seed import PASSWORDS, seed
+
 from dashboard import create_app
 from monitor.demo import free_port
-from tests.dashboard_seed import PASSWORDS, seed
 
 ROOT = Path(__file__).resolve().parent.parent
 _CSRF = re.compile(r'name="csrf-token" content="([^"]+)"')
@@ -29,14 +30,18 @@ _CSRF = re.compile(r'name="csrf-token" content="([^"]+)"')
 def seeded_copy(template: Path, directory: Path) -> str:
     """A URL of a fresh copy of the seeded SQLite file ``template`` (made once per module)."""
     target = directory / "store.sqlite"
-    shutil.copyfile(template, target)
+    # SQLite's backup API, not a file copy: the seeded file is in WAL mode and part of it
+    # may still sit in its -wal file.
+    with closing(sqlite3.connect(template)) as src, closing(sqlite3.connect(target)) as dst:
+        src.backup(dst)
     return f"sqlite:///{target}"
 
 
 def seed_template(directory: Path) -> Path:
-    """Seed a small plant with the three users of tests/dashboard_seed.py into a file."""
+    """Seed a small plant with the three users of tests/dashboard_seed.py into a file (its
+    readings raise alarms through the service, the first with id 1)."""
     path = directory / "template.sqlite"
-    seed(f"sqlite:///{path}", machines=1, readings_per_point=3, detected=1, alarms_per_machine=1)
+    seed(f"sqlite:///{path}", machines=1, readings_per_point=3, detected=1)
     return path
 
 

@@ -13,8 +13,7 @@ import urllib.request
 from pathlib import Path
 
 import pytest
-
-from tests.dashboard_seed import PASSWORDS, seed
+from dashboard_seed import PASSWORDS, seed
 
 CHROMIUM = "/usr/bin/chromium"
 ARTIFACTS = Path(__file__).resolve().parent.parent / "test-artifacts"

@@ -9,11 +9,11 @@ import json
 import re
 
 import pytest
+from dashboard_seed import PASSWORDS, seed
+from fixtures_db import fresh_database
 from sqlalchemy import event
 
 from dashboard import create_app
-from tests.dashboard_seed import PASSWORDS, seed
-from tests.fixtures_db import fresh_database
 
 BACKENDS = ["sqlite", pytest.param("postgresql", marks=pytest.mark.postgres)]
 

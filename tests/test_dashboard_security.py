@@ -16,11 +16,8 @@ import subprocess
 import time
 
 import pytest
-
-from dashboard.redirects import same_origin_path
-from monitor.demo import free_port
-from tests.dashboard_seed import PASSWORDS
-from tests.dashboard_signin import (
+from dashboard_seed import PASSWORDS
+from dashboard_signin import (
     Browser,
     dashboard_server,
     make_app,
@@ -30,6 +27,9 @@ from tests.dashboard_signin import (
     seeded_copy,
     user_id,
 )
+
+from dashboard.redirects import same_origin_path
+from monitor.demo import free_port
 
 
 @pytest.fixture(scope="module")

@@ -16,14 +16,14 @@ import sys
 from pathlib import Path
 
 import pytest
+from dashboard_seed import PASSWORDS
+from dashboard_signin import Browser, make_app, seed_template, seeded_copy, user_id
 from sqlalchemy import text
 from werkzeug.security import generate_password_hash
 
 from dashboard.api import OPENAPI_PATH
 from monitor.store import upgrade
 from monitor.store.db import make_engine
-from tests.dashboard_seed import PASSWORDS
-from tests.dashboard_signin import Browser, make_app, seed_template, seeded_copy, user_id
 
 ROOT = Path(__file__).resolve().parent.parent
 ADMIN_ADDR = "192.0.2.10"
