@@ -239,7 +239,7 @@ def point_inertance(model: MachineModel, point: str, freq_hz: np.ndarray | float
 def _shaft_angle(speed_hz: np.ndarray, fs_hz: float) -> np.ndarray:
     """Shaft angle, rad: 2 pi times the running integral of speed (phase = integral of
     speed, so a changing speed keeps a continuous phase)."""
-    return 2.0 * math.pi * cumulative_trapezoid(speed_hz, dx=1.0 / fs_hz, initial=0.0)
+    return 2.0 * math.pi * cumulative_trapezoid(speed_hz, dx=1.0 / fs_hz, initial=0)
 
 
 def _force(
