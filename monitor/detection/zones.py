@@ -25,6 +25,8 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Literal
 
+from monitor.model.bounds import check_zone_limits
+
 Zone = Literal["A", "B", "C", "D"]
 ZONES: tuple[Zone, ...] = ("A", "B", "C", "D")
 
@@ -50,24 +52,10 @@ class ZoneLimits:
     source: str = ""
 
     def __post_init__(self) -> None:
-        check_limits((self.ab, self.bc, self.cd), "limits_mm_s")
+        check_zone_limits((self.ab, self.bc, self.cd), "limits_mm_s")
 
     def as_tuple(self) -> tuple[float, float, float]:
         return (self.ab, self.bc, self.cd)
-
-
-def check_limits(limits: Sequence[float], field: str = "limits_mm_s") -> tuple[float, float, float]:
-    """Validate three increasing positive boundaries; ValueError naming ``field``."""
-    if len(limits) != 3:
-        raise ValueError(f"{field} must be three numbers [A/B, B/C, C/D] in mm/s RMS, got {list(limits)!r}.")
-    vals = tuple(float(v) for v in limits)
-    if not all(math.isfinite(v) and v > 0 for v in vals):
-        raise ValueError(f"{field} must be positive finite mm/s RMS values, got {list(limits)!r}.")
-    if not vals[0] < vals[1] < vals[2]:
-        raise ValueError(
-            f"{field} zone boundaries overlap: need A/B < B/C < C/D, got {list(limits)!r}."
-        )
-    return vals  # type: ignore[return-value]
 
 
 def zone_limits(
@@ -82,9 +70,9 @@ def zone_limits(
             f"class must be one of {tuple(CLASS_LIMITS_MM_S)}, got {machine_class!r}."
         )
     if point_limits is not None:
-        return ZoneLimits(*check_limits(point_limits, "point limits_mm_s"), source="point")
+        return ZoneLimits(*check_zone_limits(point_limits, "point limits_mm_s"), source="point")
     if machine_limits is not None:
-        return ZoneLimits(*check_limits(machine_limits, "machine limits_mm_s"), source="machine")
+        return ZoneLimits(*check_zone_limits(machine_limits, "machine limits_mm_s"), source="machine")
     return ZoneLimits(*CLASS_LIMITS_MM_S[machine_class], source=machine_class)
 
 
