@@ -4,7 +4,7 @@ The plant is invented ("Harbour Mill"); its numbers are demo data, never expecte
 
 The first ``detected`` machines get their readings the way the service makes them:
 waveforms from monitor.sim.simulate, analysed by monitor.analysis.waveform.analyse_waveform, evaluated
-by monitor.detection.evaluator.Detector (baselines, zones, margins, trends), written by
+by monitor.detection.evaluator.MachineEvaluator (baselines, zones, margins, trends), written by
 monitor.store.write_reading with the evaluation object, so the dashboard is tested on the
 shapes the service really writes. Alarms stay invented (fixed counts for the tests); the
 detector's own transitions are not written. The other machines (bulk rows for the
@@ -26,7 +26,7 @@ import numpy as np
 from sqlalchemy import insert, select
 
 from monitor.analysis.waveform import analyse_waveform
-from monitor.detection.evaluator import Detector
+from monitor.detection.evaluator import MachineEvaluator
 from monitor.detection.margins import margin_table
 from monitor.model.jsonsafe import jsonable
 from monitor.model.registry import Machine as RegMachine
@@ -81,7 +81,7 @@ def _detected(detected: int, readings_per_point: int) -> tuple:
     """(analysis, evaluation) of every simulated reading of the first ``detected`` fans,
     in time order; computed once per process (the detector is deterministic)."""
     registry = plant(detected)
-    detector = Detector(registry)
+    evaluators = {m.id: MachineEvaluator(m) for m in registry.machines}
     k = np.arange(readings_per_point)
     out = []
     for i, rm in enumerate(registry.machines):
@@ -100,7 +100,7 @@ def _detected(detected: int, readings_per_point: int) -> tuple:
                 w = simulate_reading(grown, point.id, speed_hz=float(speed[x]), ts=ts, fs_hz=FS_HZ, n_samples=BLOCK,
                                      seed=1000 * i + 10 * x + j, include_speed=True, reading_id=f"{rm.id}-{point.id}-{x}")
                 analysis = analyse_waveform(w, rm, point)
-                out.append((analysis, detector.evaluate(analysis, w), x == readings_per_point - 1))
+                out.append((analysis, evaluators[rm.id].evaluate(analysis, w), x == readings_per_point - 1))
     return tuple(out)
 
 
@@ -139,7 +139,7 @@ def _fallback_template() -> dict:
     rm = reg.machines[0]
     w = simulate_reading(MachineModel(machine_id=rm.id, unbalance_kg_m=2e-3, sensor_noise_m_s2=0.02), "de-h",
                          speed_hz=14.0, ts=T_END.timestamp(), fs_hz=FS_HZ, n_samples=BLOCK, include_speed=True)
-    return jsonable(Detector(reg).evaluate(analyse_waveform(w, rm, rm.points[0]), w))
+    return jsonable(MachineEvaluator(rm).evaluate(analyse_waveform(w, rm, rm.points[0]), w))
 
 
 def _bulk(s, machines, first: int, times: list[dt.datetime], template: dict) -> None:

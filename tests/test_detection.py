@@ -10,9 +10,14 @@ import numpy as np
 import pytest
 
 from monitor.analysis.waveform import OrderAmplitude, ReadingAnalysis, Spectrum
-from monitor.detection.evaluator import Detector, MachineEvaluator, validate_machine
+from monitor.detection.evaluator import (
+    MachineEvaluator,
+    evaluator_from_state,
+    stored_state,
+    validate_machine,
+)
 from monitor.model.readings import SpeedReading, Waveform
-from monitor.model.registry import Machine, Mode, Point, Registry
+from monitor.model.registry import Machine, Mode, Point
 
 FS = 25600.0
 DAY = 86400.0
@@ -283,10 +288,10 @@ def test_acknowledge_and_snapshot_restore_equivalence():
         assert tr.to_json()["acknowledged_by"] == "j.berg"
 
 
-def test_detector_and_json():
+def test_evaluation_json_and_stored_state():
     m = _machine()
-    d = Detector(Registry((m,)))
-    e = d.evaluate(_analysis(0.0, 16.5, overall=3.0, rid="r-1"), _waveform(0.0))
+    ev = MachineEvaluator(m)
+    e = ev.evaluate(_analysis(0.0, 16.5, overall=3.0, rid="r-1"), _waveform(0.0))
     js = json.loads(json.dumps(e.to_json()))
     # group2/rigid: 1.4 / 2.8 / 4.5 mm/s RMS (ISO 10816-3:2009 Table A.2, from memory); 3.0 is C
     assert js["zone"] == "C" and js["zone_limits_mm_s"] == [1.4, 2.8, 4.5]
@@ -296,10 +301,11 @@ def test_detector_and_json():
     # Features built on access are the same objects however they are reached.
     assert e.feature("overall") is e.features[0] and tuple(e.features) == e.features
     assert js["health"]["ok"] is True
-    d2 = Detector.restore(Registry((m,)), json.loads(json.dumps(d.snapshot())))
-    assert d2.evaluator("fan-7").snapshot() == d.evaluator("fan-7").snapshot()
+    # Through the stored form the service keeps (detector_state.state) and back.
+    ev2, version = evaluator_from_state(m, json.loads(json.dumps(stored_state(ev, 4))))
+    assert version == 4 and ev2.snapshot() == ev.snapshot()
     with pytest.raises(ValueError, match="machine"):
-        d.evaluator("fan-7").evaluate(_analysis(0.0, 12.0, machine="other"))
+        ev.evaluate(_analysis(0.0, 12.0, machine="other"))
 
 
 def test_evaluation_has_every_field_and_equals_its_dataclass_copy():

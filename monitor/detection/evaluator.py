@@ -8,8 +8,8 @@ speed readings, and the current time for stale-stream checks; it gets back
 :class:`~monitor.detection.alarms.Transition` objects to store and publish, and a
 :class:`ReadingEvaluation` for the store and the dashboard. ``snapshot()`` returns a
 JSON-able dict that keeps every float exactly (format in docs/store.md);
-``MachineEvaluator.restore`` rebuilds the same state after a restart.
-:class:`Detector` does the same for every machine of a registry.
+``MachineEvaluator.restore`` rebuilds the same state after a restart. The service keeps
+one evaluator per machine (monitor/service/states.py).
 
 Rules
 -----
@@ -65,7 +65,7 @@ from monitor.detection.zones import ZoneLimits, zone_limits, zone_of
 from monitor.model.bounds import check_machine
 from monitor.model.detection_settings import DetectionSettings
 from monitor.model.readings import SpeedReading, Waveform
-from monitor.model.registry import Machine, Registry
+from monitor.model.registry import Machine
 from monitor.modes.shift import ModeShift
 
 #: Why an alarm closes when what it watches leaves the registry: the ``reason`` of its
@@ -1047,48 +1047,3 @@ def stored_state(evaluator: MachineEvaluator, version: int) -> dict[str, Any]:
     to reload) and the evaluator's snapshot."""
     return {"version": version, "evaluator": evaluator.snapshot()}
 
-
-class Detector:
-    """State detection for every machine of a registry (one :class:`MachineEvaluator` each)."""
-
-    def __init__(self, registry: Registry) -> None:
-        self.evaluators = {m.id: MachineEvaluator(m) for m in registry.machines}
-
-    def evaluator(self, machine_id: str) -> MachineEvaluator:
-        try:
-            return self.evaluators[machine_id]
-        except KeyError:
-            raise KeyError(f"no machine {machine_id!r} in the registry") from None
-
-    def evaluate(self, analysis: ReadingAnalysis | None, waveform: Waveform | None = None) -> ReadingEvaluation:
-        src = analysis if analysis is not None else waveform
-        if src is None:
-            raise ValueError("evaluate needs an analysis or a waveform, got neither.")
-        return self.evaluator(src.machine).evaluate(analysis, waveform)
-
-    def observe_speed(self, reading: SpeedReading) -> list[Transition]:
-        return self.evaluator(reading.machine).observe_speed(reading)
-
-    def check_stale(self, now: float) -> list[Transition]:
-        return [t for e in self.evaluators.values() for t in e.check_stale(now)]
-
-    def acknowledge(self, alarm_id: str, user: str, comment: str, ts: float) -> Transition:
-        for e in self.evaluators.values():
-            if e.engine.find(alarm_id) is not None:
-                return e.acknowledge(alarm_id, user, comment, ts)
-        raise KeyError(f"no alarm {alarm_id!r}")
-
-    def active_alarms(self) -> list[dict]:
-        return [a for e in self.evaluators.values() for a in e.active_alarms()]
-
-    def snapshot(self) -> dict:
-        return {"machines": {mid: e.snapshot() for mid, e in self.evaluators.items()}}
-
-    @classmethod
-    def restore(cls, registry: Registry, data: Mapping[str, Any]) -> Detector:
-        """Rebuild; machines new to the registry start fresh, removed ones are dropped."""
-        d = cls(registry)
-        for mid, snap in data.get("machines", {}).items():
-            if mid in d.evaluators:
-                d.evaluators[mid] = MachineEvaluator.restore(registry.machine(mid), snap)
-        return d
