@@ -25,7 +25,8 @@ from typing import Any
 import numpy as np
 
 from monitor.analysis.waveform import analyse_waveform
-from monitor.detection.evaluator import MachineEvaluator, evaluator_from_state, stored_state
+from monitor.detection.evaluator import MachineEvaluator
+from monitor.detection.stored_state import evaluator_from_state, stored_state
 from monitor.io.ingest import decode_message
 from monitor.io.replay import load_streams
 from monitor.io.streams import parse_ts

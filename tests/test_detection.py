@@ -10,12 +10,8 @@ import numpy as np
 import pytest
 
 from monitor.analysis.waveform import OrderAmplitude, ReadingAnalysis, Spectrum
-from monitor.detection.evaluator import (
-    MachineEvaluator,
-    evaluator_from_state,
-    stored_state,
-    validate_machine,
-)
+from monitor.detection.evaluator import MachineEvaluator, validate_machine
+from monitor.detection.stored_state import evaluator_from_state, stored_state
 from monitor.model.readings import SpeedReading, Waveform
 from monitor.model.registry import Machine, Mode, Point
 
@@ -313,7 +309,7 @@ def test_evaluation_has_every_field_and_equals_its_dataclass_copy():
     # set, and the object must equal one made through the dataclass's own constructor.
     from dataclasses import fields, replace
 
-    from monitor.detection.evaluator import ReadingEvaluation
+    from monitor.detection.results import ReadingEvaluation
 
     ev = MachineEvaluator(_machine())
     e = ev.evaluate(_analysis(0.0, 16.5, overall=3.0, rid="r-1"), _waveform(0.0))

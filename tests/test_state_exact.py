@@ -22,8 +22,9 @@ from sqlalchemy import select
 
 from monitor.config import load_settings
 from monitor.detection.alarms import AlarmEngine, AlarmKey
-from monitor.detection.evaluator import MachineEvaluator, evaluator_from_state, stored_state
+from monitor.detection.evaluator import MachineEvaluator
 from monitor.detection.growth import Baseline, TrendWindow
+from monitor.detection.stored_state import evaluator_from_state, stored_state
 from monitor.io.replay import load_streams
 from monitor.model.registry_file import load_registry
 from monitor.model.timefmt import iso_utc

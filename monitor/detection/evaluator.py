@@ -36,11 +36,11 @@ import functools
 import math
 from collections import deque
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
 from typing import Any
 
 from monitor.analysis.waveform import ReadingAnalysis
-from monitor.detection.alarms import SEVERITIES, AlarmEngine, AlarmKey, Transition
+from monitor.detection.alarms import AlarmEngine, AlarmKey, Transition
+from monitor.detection.features import growth_orders, reading_features
 from monitor.detection.growth import Baseline, TrendWindow, fit_due_windows
 from monitor.detection.health import HealthReport, check_waveform, is_stale
 from monitor.detection.margins import (
@@ -50,8 +50,14 @@ from monitor.detection.margins import (
     MarginRows,
     MarginState,
     approach_forecasts,
-    order_label,
     speed_is_steady,
+)
+from monitor.detection.results import (
+    _LEVELS,
+    _READY,
+    FeatureEvaluation,
+    FeatureRows,
+    ReadingEvaluation,
 )
 from monitor.detection.state_json import (
     STATE_FORMAT,
@@ -59,7 +65,7 @@ from monitor.detection.state_json import (
     float_out,
     floats_in,
     floats_out,
-    value_out,
+    upgrade_snapshot,
 )
 from monitor.detection.zones import ZoneLimits, zone_limits, zone_of
 from monitor.model.bounds import check_machine
@@ -92,154 +98,6 @@ def validate_machine(machine: Machine) -> DetectionSettings:
     return DetectionSettings.from_mapping(machine.settings, f"machine {machine.id!r}")
 
 
-@dataclass(frozen=True)
-class FeatureEvaluation:
-    """One growth feature of one reading.
-
-    ``value`` in ``unit``; baseline median/MAD in the same unit; ``ratio`` value over the
-    baseline median (None while learning or not comparable); ``baseline_status`` in words;
-    ``trend_per_day`` Theil-Sen slope (unit/day); ``limit_name``/``limit_value`` the next
-    limit the trend is projected to (a zone boundary for ``overall``, a baseline ratio
-    limit otherwise); ``time_to_limit_s`` seconds (None when not rising); ``raise_level``
-    and ``hold_level`` as given to the alarm engine.
-    """
-
-    name: str
-    value: float
-    unit: str
-    baseline_median: float | None
-    baseline_mad: float | None
-    baseline_status: str
-    ratio: float | None
-    trend_per_day: float | None
-    limit_name: str | None
-    limit_value: float | None
-    time_to_limit_s: float | None
-    raise_level: str | None
-    hold_level: str | None
-    causes: tuple[str, ...] = ()
-
-    def to_json(self) -> dict:
-        return {
-            "name": self.name, "value": self.value, "unit": self.unit,
-            "baseline_median": self.baseline_median, "baseline_mad": self.baseline_mad,
-            "baseline_status": self.baseline_status, "ratio": self.ratio,
-            "trend_per_day": self.trend_per_day, "limit_name": self.limit_name,
-            "limit_value": self.limit_value, "time_to_limit_s": self.time_to_limit_s,
-            "time_to_limit_days": None if self.time_to_limit_s is None else self.time_to_limit_s / 86400.0,
-            "raise_level": self.raise_level, "hold_level": self.hold_level,
-            "causes": list(self.causes),
-        }
-
-
-@dataclass(frozen=True)
-class ReadingEvaluation:
-    """What detection made of one reading (for the store and the dashboard).
-
-    ``zone`` of ``overall_velocity_mm_s_rms`` against ``zone_limits``; ``margins`` table at
-    the reading's speed (a sequence of :class:`MarginRow`, built on first use); ``approach`` forecasts from the speed trend; ``features`` the
-    growth features; ``growth_ignored`` why growth skipped the reading (None when used);
-    ``machine_alarms_suppressed`` when sensor health flagged the reading; ``transitions``
-    the alarm transitions the reading caused.
-    """
-
-    machine: str
-    point: str
-    ts: float
-    reading_id: str | None
-    speed_hz: float | None
-    overall_velocity_mm_s_rms: float | None
-    zone: str | None
-    zone_limits: ZoneLimits
-    margins: Sequence[MarginRow]
-    approach: tuple[ApproachForecast, ...]
-    features: Sequence[FeatureEvaluation]
-    health: HealthReport
-    growth_ignored: str | None
-    machine_alarms_suppressed: bool
-    transitions: tuple[Transition, ...] = field(default_factory=tuple)
-
-    def feature(self, name: str) -> FeatureEvaluation | None:
-        if isinstance(self.features, FeatureRows):
-            return self.features.get(name)
-        for f in self.features:
-            if f.name == name:
-                return f
-        return None
-
-    def nearest_margin(self) -> MarginRow | None:
-        """The tightest (mode, excitation) pair at this reading's speed: the margin row
-        with the smallest ``margin_pct - required_pct`` (percent; the first on a tie), or
-        None without a margin table. Cheaper than scanning :attr:`margins` (one row is
-        built)."""
-        if isinstance(self.margins, MarginRows):
-            return self.margins.nearest_margin()
-        return min(self.margins, key=lambda r: r.margin_pct - r.required_pct, default=None)
-
-    def to_json(self, *, margins: bool = True) -> dict:
-        """JSON-able form; ``margins=False`` leaves out the margin table (the costly part),
-        for readings whose table nobody will read (a store keeping it on the newest only)."""
-        out = {
-            "machine": self.machine, "point": self.point, "ts": self.ts,
-            "reading_id": self.reading_id, "speed_hz": self.speed_hz,
-            "overall_velocity_mm_s_rms": self.overall_velocity_mm_s_rms, "zone": self.zone,
-            "zone_limits_mm_s": list(self.zone_limits.as_tuple()),
-            "zone_limits_source": self.zone_limits.source,
-            "approach": [a.to_json() for a in self.approach],
-            "features": [f.to_json() for f in self.features],
-            "health": self.health.to_json(), "growth_ignored": self.growth_ignored,
-            "machine_alarms_suppressed": self.machine_alarms_suppressed,
-            "transitions": [t.to_json() for t in self.transitions],
-        }
-        if margins:
-            out["margins"] = [m.to_json() for m in self.margins]
-        return out
-
-
-def _growth_orders(machine: Machine) -> tuple[tuple[float, str], ...]:
-    """(order, feature name) of the order features other than 1x, in growth's order."""
-    return tuple((o, order_label(o))
-                 for o in sorted({2.0, *(float(x) for x in machine.excitation_orders)} - {1.0}))
-
-
-# An envelope line needs this much prominence over the envelope spectrum's floor before it
-# counts as a defect line (common practice: a line well clear of the noise, ~15 dB).
-BEARING_NOISE_DB = 15.0
-
-
-def _features(analysis: ReadingAnalysis, machine: Machine,
-              orders: tuple[tuple[float, str], ...] | None = None) -> list[tuple[str, float, str, bool]]:
-    """(name, value, unit, speed dependent) of the growth features present in ``analysis``;
-    ``orders`` is :func:`_growth_orders` of ``machine`` when the caller keeps it."""
-    out: list[tuple[str, float, str, bool]] = [
-        ("overall", float(analysis.overall_velocity_mm_s_rms), "mm/s RMS", True)
-    ]
-    # Order amplitudes by their order, looked up exactly first (the analysis computes the
-    # machine's own orders) and by ReadingAnalysis.order's tolerance otherwise.
-    by_order = {o.order: o for o in analysis.orders}
-    one = by_order.get(1.0) or analysis.order(1.0)
-    if one is not None:
-        out.append(("1x", float(one.velocity_mm_s), "mm/s peak", True))
-    if math.isfinite(analysis.one_x_normalised):
-        out.append(("1x_norm", float(analysis.one_x_normalised), "mm/s peak per Hz^2", False))
-    for o, name in (_growth_orders(machine) if orders is None else orders):
-        oa = by_order.get(o) or analysis.order(o)
-        if oa is not None:
-            out.append((name, float(oa.velocity_mm_s), "mm/s peak", True))
-    bearing = analysis.extra.get("bearing") if analysis.extra else None
-    if bearing:
-        # The envelope line over the envelope spectrum's floor (linear), not the line's
-        # amplitude: the demodulation band may move between readings, the prominence
-        # hardly does (monitor/analysis/bearings.py). A defect shows as this ratio growing against
-        # its own baseline.
-        # Lines less prominent than BEARING_NOISE_DB are envelope noise: clamping them there
-        # keeps a healthy bearing's baseline flat, so only a line that stands out grows.
-        for defect, db in bearing.get("indicator_db", {}).items():
-            if db is not None and math.isfinite(db):
-                prominence = 10.0 ** (max(db, BEARING_NOISE_DB) / 20.0)
-                out.append((f"bearing_{defect}", prominence, "line / floor", False))
-    return out
-
 
 class MachineEvaluator:
     """Detection state of one machine (see the module docstring).
@@ -263,7 +121,7 @@ class MachineEvaluator:
         self._last_ts: dict[str, float] = {}
         self._intervals: dict[str, deque[float]] = {}
         self._keys: dict[tuple[str | None, str, str], AlarmKey] = {}
-        self._orders = _growth_orders(machine)
+        self._orders = growth_orders(machine)
         # Per point: feature name -> (baseline, trend window, alarm key), the same objects
         # as in _baselines/_trends, so a reading finds all three with one lookup.
         self._slots: dict[str, dict[str, tuple[Baseline, TrendWindow, AlarmKey]]] = {}
@@ -729,7 +587,7 @@ class MachineEvaluator:
             slots = self._slots[pid] = {}
         rows = []
         due_fits: list[TrendWindow] = []
-        for name, value, unit, speed_dep in _features(analysis, self.machine, self._orders):
+        for name, value, unit, speed_dep in reading_features(analysis, self.machine, self._orders):
             if not (0.0 <= value < math.inf):  # finite and not negative (NaN fails too)
                 continue
             slot = slots.get(name)
@@ -840,87 +698,8 @@ class MachineEvaluator:
         return feats, out
 
 
-_LEVELS: tuple[str | None, ...] = (None, *SEVERITIES)
-_READY = ("ready",)
+
 _NO_MARGINS = MarginRows()
-
-
-def _feature_of(spec: tuple) -> FeatureEvaluation:
-    """The :class:`FeatureEvaluation` of one row of :meth:`MachineEvaluator._growth`."""
-    (name, value, unit, st, status, ratio, per_day, lim_name, lim_val, ttl,
-     raise_l, hold_l, parts) = spec
-    if status[0] == "learning":
-        words = f"learning {status[1]}/{status[2]}"
-    elif status[0] == "speed":
-        words = f"not comparable: speed {status[1]:.2f} Hz, baseline at {status[2]:.2f} Hz"
-    else:
-        words = "ready"
-    causes = []
-    for p in parts:
-        if p[0] == "zone":
-            causes.append(f"zone {p[1]} ({p[2]:.3g} mm/s RMS)")
-        elif p[0] == "ratio":
-            causes.append(f"{p[1]:.2f}x baseline")
-        else:
-            causes.append(f"{p[1]} in {p[2] / 86400.0:.1f} days at the current trend")
-    return FeatureEvaluation(
-        name=name, value=value, unit=unit,
-        baseline_median=st.median if st else None, baseline_mad=st.mad if st else None,
-        baseline_status=words, ratio=ratio, trend_per_day=per_day,
-        limit_name=lim_name, limit_value=lim_val, time_to_limit_s=ttl,
-        raise_level=raise_l, hold_level=hold_l, causes=tuple(causes),
-    )
-
-
-class FeatureRows(Sequence[FeatureEvaluation]):
-    """The growth features of one reading, each :class:`FeatureEvaluation` built on first
-    use. Behaves as a read-only sequence (``len``, indexing, iteration, equality with a
-    tuple); :meth:`get` finds one feature by name without building the others."""
-
-    __slots__ = ("_specs", "_made")
-
-    def __init__(self, specs: Sequence[tuple] = ()) -> None:
-        self._specs = list(specs)
-        self._made: list[FeatureEvaluation | None] = [None] * len(self._specs)
-
-    def _one(self, i: int) -> FeatureEvaluation:
-        fe = self._made[i]
-        if fe is None:
-            fe = self._made[i] = _feature_of(self._specs[i])
-        return fe
-
-    def names(self) -> tuple[str, ...]:
-        return tuple(sp[0] for sp in self._specs)
-
-    def get(self, name: str) -> FeatureEvaluation | None:
-        for i, sp in enumerate(self._specs):
-            if sp[0] == name:
-                return self._one(i)
-        return None
-
-    def __len__(self) -> int:
-        return len(self._specs)
-
-    def __getitem__(self, index):  # type: ignore[override]
-        if isinstance(index, slice):
-            return tuple(self)[index]
-        n = len(self._specs)
-        if not -n <= index < n:
-            raise IndexError("feature index out of range")
-        return self._one(index % n)
-
-    def __iter__(self):
-        return (self._one(i) for i in range(len(self._specs)))
-
-    def __eq__(self, other: object) -> bool:
-        if isinstance(other, FeatureRows | tuple | list):
-            return tuple(self) == tuple(other)
-        return NotImplemented
-
-    __hash__ = None  # type: ignore[assignment]
-
-    def __repr__(self) -> str:
-        return f"FeatureRows({', '.join(self.names())})"
 
 
 def _resonance_evidence(speed: float, rid: str | None, grid: MarginGrid, state: list[MarginState],
@@ -937,113 +716,3 @@ def _growth_evidence(rid: str | None, speed: float, limits: ZoneLimits, feats: F
                      counts: dict[str, int]) -> dict[str, Any]:
     return {"reading_id": rid, "speed_hz": speed, "zone_limits_mm_s": list(limits.as_tuple()),
             **feats[i].to_json(), "ignored_readings": dict(counts)}
-
-
-def upgrade_snapshot(data: Mapping[str, Any]) -> Mapping[str, Any]:
-    """A :meth:`MachineEvaluator.snapshot` of any format in the current one
-    (:data:`~monitor.detection.state_json.STATE_FORMAT`); a current one is returned as it is.
-
-    Format 1 (no ``format`` key) was written through the store's JSON serialiser, which
-    turns NaN and infinities into ``null``. Where a ``null`` can only have been a
-    non-finite float it is read as NaN (the only non-finite value the code puts there):
-
-    - ``trends[*].fit``: slope, interval ends and fitted value (the interval ends are NaN
-      when a window's values are all tied);
-    - ``baselines[*].speeds``: a running speed the analysis gave as NaN.
-
-    Everywhere else a ``null`` is read as None, a value those fields hold in their own
-    right: a window's ``ref_speed`` (no reference yet) and ``speed_band`` (a speed-free
-    feature), a baseline's ``started_at``, an alarm's times, a stream's ``last_ts``, and
-    any evidence value. ``fit_ts`` null is read as 0.0 (its value before any fit). Fields
-    that hold finite numbers only (window times and values, baseline values, the speed
-    history, reading times and intervals) cannot hold ``null``; a snapshot where they do
-    is refused (ValueError naming the machine and the field). Evidence strings are
-    escaped as the current format writes them.
-    """
-    fmt = data.get("format", 1)
-    if fmt == STATE_FORMAT:
-        return data
-    machine = data.get("machine")
-    if fmt != 1:
-        raise ValueError(f"snapshot of machine {machine!r} has format {fmt!r}; this version reads "
-                         f"formats 1 to {STATE_FORMAT}.")
-
-    def finite_only(values: Any, field: str) -> Any:
-        if any(v is None for v in values):
-            raise ValueError(f"snapshot of machine {machine!r} (format 1): {field!r} holds null "
-                             "where only finite numbers belong.")
-        return values
-
-    nan = float_out(math.nan)
-    out = dict(data, format=STATE_FORMAT)
-    trends = []
-    for p, f, w in data.get("trends", []):
-        w = dict(w)
-        finite_only(w.get("ts", []), f"trends {p}/{f} ts")
-        finite_only(w.get("values", []), f"trends {p}/{f} values")
-        if w.get("fit") is not None:
-            w["fit"] = [nan if v is None else v for v in w["fit"][:4]] + list(w["fit"][4:])
-        if w.get("fit_ts", 0.0) is None:
-            w["fit_ts"] = 0.0
-        trends.append([p, f, w])
-    out["trends"] = trends
-    baselines = []
-    for p, f, b in data.get("baselines", []):
-        b = dict(b)
-        finite_only(b.get("values", []), f"baselines {p}/{f} values")
-        b["speeds"] = [nan if v is None else v for v in b.get("speeds", [])]
-        baselines.append([p, f, b])
-    out["baselines"] = baselines
-    engine = dict(data["engine"])
-    streams = []
-    for st in engine.get("streams", []):
-        st = dict(st)
-        if st.get("alarm"):
-            st["alarm"] = dict(st["alarm"], evidence=value_out(st["alarm"].get("evidence") or {}))
-        streams.append(st)
-    engine["streams"] = streams
-    out["engine"] = engine
-    for x in data.get("speed", []):
-        finite_only(x, "speed")
-    finite_only(data.get("last_ts", {}).values(), "last_ts")
-    for p, v in data.get("intervals", {}).items():
-        finite_only(v, f"intervals {p}")
-    return out
-
-
-def evaluator_from_state(machine: Machine, state: Any) -> tuple[MachineEvaluator, int]:
-    """The evaluator of ``machine`` and its version from a stored detector state
-    (:func:`stored_state`), or a fresh evaluator at version 0 when nothing usable is
-    stored."""
-    if isinstance(state, dict) and "evaluator" in state:
-        return MachineEvaluator.restore(machine, state["evaluator"]), int(state.get("version") or 0)
-    return MachineEvaluator(machine), 0
-
-
-def retire_state(state: Any, ts: float) -> tuple[dict[str, Any], list[Transition]]:
-    """The stored detector state (:func:`stored_state`) of a machine retired from the
-    registry, and the transitions that closed its alarms: every live alarm is cleared at
-    ``ts`` (epoch s), evidence reason :data:`MACHINE_RETIRED`, in key order. The rest of
-    the state is kept as it was (should the machine come back, its baselines and trends
-    are there); the version moves on by one and ``retired`` marks the retirement as done,
-    so it is done once."""
-    if not (isinstance(state, Mapping) and isinstance(state.get("evaluator"), Mapping)):
-        return {"version": 1, "retired": True}, []
-    snap = upgrade_snapshot(state["evaluator"])
-    engine = AlarmEngine.restore(dict(snap["engine"]))
-    machine = snap.get("machine")
-    out: list[Transition] = []
-    for key in sorted(engine.alarm_keys(), key=AlarmKey.text):
-        out += engine.end(key, float(ts), {
-            "reason": MACHINE_RETIRED,
-            "message": f"machine {machine!r} is no longer in the registry; nothing evaluates this alarm any more"})
-    return {"version": int(state.get("version") or 0) + 1, "retired": True,
-            "evaluator": dict(snap, engine=engine.snapshot())}, out
-
-
-def stored_state(evaluator: MachineEvaluator, version: int) -> dict[str, Any]:
-    """The detector state of one machine as stored (``detector_state.state``): its
-    ``version`` (moved on by one at each write, so a process holding an older copy knows
-    to reload) and the evaluator's snapshot."""
-    return {"version": version, "evaluator": evaluator.snapshot()}
-

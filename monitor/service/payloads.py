@@ -17,7 +17,8 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from monitor.detection.alarms import Transition, severity_rank
-from monitor.detection.evaluator import MachineEvaluator, ReadingEvaluation
+from monitor.detection.evaluator import MachineEvaluator
+from monitor.detection.results import ReadingEvaluation
 from monitor.model.timefmt import iso_utc
 from monitor.store.models import Alarm
 from monitor.store.queries import alarm_as_json

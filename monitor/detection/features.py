@@ -1,0 +1,56 @@
+"""The growth features of one reading: the amplitudes detection keeps a baseline and a
+trend of (overall level, order amplitudes, speed-normalised 1x, bearing envelope lines).
+"""
+
+from __future__ import annotations
+
+import math
+
+from monitor.analysis.waveform import ReadingAnalysis
+from monitor.detection.margins import order_label
+from monitor.model.registry import Machine
+
+
+def growth_orders(machine: Machine) -> tuple[tuple[float, str], ...]:
+    """(order, feature name) of the order features other than 1x, in growth's order."""
+    return tuple((o, order_label(o))
+                 for o in sorted({2.0, *(float(x) for x in machine.excitation_orders)} - {1.0}))
+
+
+# An envelope line needs this much prominence over the envelope spectrum's floor before it
+# counts as a defect line (common practice: a line well clear of the noise, ~15 dB).
+BEARING_NOISE_DB = 15.0
+
+
+def reading_features(analysis: ReadingAnalysis, machine: Machine,
+              orders: tuple[tuple[float, str], ...] | None = None) -> list[tuple[str, float, str, bool]]:
+    """(name, value, unit, speed dependent) of the growth features present in ``analysis``;
+    ``orders`` is :func:`growth_orders` of ``machine`` when the caller keeps it."""
+    out: list[tuple[str, float, str, bool]] = [
+        ("overall", float(analysis.overall_velocity_mm_s_rms), "mm/s RMS", True)
+    ]
+    # Order amplitudes by their order, looked up exactly first (the analysis computes the
+    # machine's own orders) and by ReadingAnalysis.order's tolerance otherwise.
+    by_order = {o.order: o for o in analysis.orders}
+    one = by_order.get(1.0) or analysis.order(1.0)
+    if one is not None:
+        out.append(("1x", float(one.velocity_mm_s), "mm/s peak", True))
+    if math.isfinite(analysis.one_x_normalised):
+        out.append(("1x_norm", float(analysis.one_x_normalised), "mm/s peak per Hz^2", False))
+    for o, name in (growth_orders(machine) if orders is None else orders):
+        oa = by_order.get(o) or analysis.order(o)
+        if oa is not None:
+            out.append((name, float(oa.velocity_mm_s), "mm/s peak", True))
+    bearing = analysis.extra.get("bearing") if analysis.extra else None
+    if bearing:
+        # The envelope line over the envelope spectrum's floor (linear), not the line's
+        # amplitude: the demodulation band may move between readings, the prominence
+        # hardly does (monitor/analysis/bearings.py). A defect shows as this ratio growing against
+        # its own baseline.
+        # Lines less prominent than BEARING_NOISE_DB are envelope noise: clamping them there
+        # keeps a healthy bearing's baseline flat, so only a line that stands out grows.
+        for defect, db in bearing.get("indicator_db", {}).items():
+            if db is not None and math.isfinite(db):
+                prominence = 10.0 ** (max(db, BEARING_NOISE_DB) / 20.0)
+                out.append((f"bearing_{defect}", prominence, "line / floor", False))
+    return out
