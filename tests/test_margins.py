@@ -8,13 +8,13 @@ import numpy as np
 import pytest
 from scipy import signal
 
+from monitor.detection.approach import approach_forecasts
 from monitor.detection.margins import (
     COMMON_PRACTICE_MARGIN_PCT,
     MarginGrid,
     MarginRows,
     amplification_factor_from_damping,
     api684_required_margin,
-    approach_forecasts,
     excitations,
     margin_table,
     required_margin,

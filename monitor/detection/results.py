@@ -9,13 +9,16 @@ never looked at.
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
+from typing import overload
 
-from monitor.detection.alarms import SEVERITIES, Transition
+from monitor.detection.alarms import LEVELS, Severity, Transition
+from monitor.detection.approach import ApproachForecast
+from monitor.detection.growth_rules import FeatureVerdict
 from monitor.detection.health import HealthReport
-from monitor.detection.margins import ApproachForecast, MarginRow, MarginRows
-from monitor.detection.zones import ZoneLimits
+from monitor.detection.margins import MarginRow, MarginRows
+from monitor.detection.zones import Zone, ZoneLimits
 
 
 @dataclass(frozen=True)
@@ -41,8 +44,8 @@ class FeatureEvaluation:
     limit_name: str | None
     limit_value: float | None
     time_to_limit_s: float | None
-    raise_level: str | None
-    hold_level: str | None
+    raise_level: Severity | None
+    hold_level: Severity | None
     causes: tuple[str, ...] = ()
 
     def to_json(self) -> dict:
@@ -63,8 +66,9 @@ class ReadingEvaluation:
     """What detection made of one reading (for the store and the dashboard).
 
     ``zone`` of ``overall_velocity_mm_s_rms`` against ``zone_limits``; ``margins`` table at
-    the reading's speed (a sequence of :class:`MarginRow`, built on first use); ``approach`` forecasts from the speed trend; ``features`` the
-    growth features; ``growth_ignored`` why growth skipped the reading (None when used);
+    the reading's speed (a sequence of :class:`MarginRow`, built on first use);
+    ``approach`` forecasts from the speed trend; ``features`` the growth features;
+    ``growth_ignored`` why growth skipped the reading (None when used);
     ``machine_alarms_suppressed`` when sensor health flagged the reading; ``transitions``
     the alarm transitions the reading caused.
     """
@@ -75,7 +79,7 @@ class ReadingEvaluation:
     reading_id: str | None
     speed_hz: float | None
     overall_velocity_mm_s_rms: float | None
-    zone: str | None
+    zone: Zone | None
     zone_limits: ZoneLimits
     margins: Sequence[MarginRow]
     approach: tuple[ApproachForecast, ...]
@@ -86,6 +90,7 @@ class ReadingEvaluation:
     transitions: tuple[Transition, ...] = field(default_factory=tuple)
 
     def feature(self, name: str) -> FeatureEvaluation | None:
+        """The growth feature ``name`` of this reading, or None."""
         if isinstance(self.features, FeatureRows):
             return self.features.get(name)
         for f in self.features:
@@ -122,76 +127,68 @@ class ReadingEvaluation:
         return out
 
 
-_LEVELS: tuple[str | None, ...] = (None, *SEVERITIES)
-_READY = ("ready",)
-
-
-def _feature_of(spec: tuple) -> FeatureEvaluation:
-    """The :class:`FeatureEvaluation` of one row of :meth:`MachineEvaluator._growth`."""
-    (name, value, unit, st, status, ratio, per_day, lim_name, lim_val, ttl,
-     raise_l, hold_l, parts) = spec
-    if status[0] == "learning":
-        words = f"learning {status[1]}/{status[2]}"
-    elif status[0] == "speed":
-        words = f"not comparable: speed {status[1]:.2f} Hz, baseline at {status[2]:.2f} Hz"
-    else:
-        words = "ready"
-    causes = []
-    for p in parts:
-        if p[0] == "zone":
-            causes.append(f"zone {p[1]} ({p[2]:.3g} mm/s RMS)")
-        elif p[0] == "ratio":
-            causes.append(f"{p[1]:.2f}x baseline")
-        else:
-            causes.append(f"{p[1]} in {p[2] / 86400.0:.1f} days at the current trend")
+def feature_evaluation(verdict: FeatureVerdict) -> FeatureEvaluation:
+    """The :class:`FeatureEvaluation` of a growth verdict, its status and causes in words."""
+    feature, stats, trend, limit = verdict.feature, verdict.baseline, verdict.trend, verdict.limit
     return FeatureEvaluation(
-        name=name, value=value, unit=unit,
-        baseline_median=st.median if st else None, baseline_mad=st.mad if st else None,
-        baseline_status=words, ratio=ratio, trend_per_day=per_day,
-        limit_name=lim_name, limit_value=lim_val, time_to_limit_s=ttl,
-        raise_level=raise_l, hold_level=hold_l, causes=tuple(causes),
+        name=feature.name, value=verdict.value, unit=feature.unit,
+        baseline_median=None if stats is None else stats.median,
+        baseline_mad=None if stats is None else stats.mad,
+        baseline_status=verdict.status.words(), ratio=verdict.ratio,
+        trend_per_day=None if trend is None else trend.slope_per_day,
+        limit_name=None if limit is None else limit[0], limit_value=None if limit is None else limit[1],
+        time_to_limit_s=verdict.time_to_limit_s,
+        raise_level=LEVELS[verdict.raise_rank], hold_level=LEVELS[verdict.hold_rank],
+        causes=tuple(cause.words() for cause in verdict.causes),
     )
 
 
 class FeatureRows(Sequence[FeatureEvaluation]):
     """The growth features of one reading, each :class:`FeatureEvaluation` built on first
-    use. Behaves as a read-only sequence (``len``, indexing, iteration, equality with a
-    tuple); :meth:`get` finds one feature by name without building the others."""
+    use from its verdict. Behaves as a read-only sequence (``len``, indexing, iteration,
+    equality with a tuple); :meth:`get` finds one feature by name without building the
+    others."""
 
-    __slots__ = ("_specs", "_made")
+    __slots__ = ("_verdicts", "_made")
 
-    def __init__(self, specs: Sequence[tuple] = ()) -> None:
-        self._specs = list(specs)
-        self._made: list[FeatureEvaluation | None] = [None] * len(self._specs)
+    def __init__(self, verdicts: Sequence[FeatureVerdict] = ()) -> None:
+        self._verdicts = list(verdicts)
+        self._made: list[FeatureEvaluation | None] = [None] * len(self._verdicts)
 
     def _one(self, i: int) -> FeatureEvaluation:
         fe = self._made[i]
         if fe is None:
-            fe = self._made[i] = _feature_of(self._specs[i])
+            fe = self._made[i] = feature_evaluation(self._verdicts[i])
         return fe
 
     def names(self) -> tuple[str, ...]:
-        return tuple(sp[0] for sp in self._specs)
+        return tuple(v.feature.name for v in self._verdicts)
 
     def get(self, name: str) -> FeatureEvaluation | None:
-        for i, sp in enumerate(self._specs):
-            if sp[0] == name:
+        for i, v in enumerate(self._verdicts):
+            if v.feature.name == name:
                 return self._one(i)
         return None
 
     def __len__(self) -> int:
-        return len(self._specs)
+        return len(self._verdicts)
 
-    def __getitem__(self, index):  # type: ignore[override]
+    @overload
+    def __getitem__(self, index: int) -> FeatureEvaluation: ...
+
+    @overload
+    def __getitem__(self, index: slice) -> tuple[FeatureEvaluation, ...]: ...
+
+    def __getitem__(self, index: int | slice) -> FeatureEvaluation | tuple[FeatureEvaluation, ...]:
         if isinstance(index, slice):
             return tuple(self)[index]
-        n = len(self._specs)
+        n = len(self._verdicts)
         if not -n <= index < n:
             raise IndexError("feature index out of range")
         return self._one(index % n)
 
-    def __iter__(self):
-        return (self._one(i) for i in range(len(self._specs)))
+    def __iter__(self) -> Iterator[FeatureEvaluation]:
+        return (self._one(i) for i in range(len(self._verdicts)))
 
     def __eq__(self, other: object) -> bool:
         if isinstance(other, FeatureRows | tuple | list):
@@ -202,5 +199,3 @@ class FeatureRows(Sequence[FeatureEvaluation]):
 
     def __repr__(self) -> str:
         return f"FeatureRows({', '.join(self.names())})"
-
-

@@ -38,6 +38,7 @@ CLASS_LIMITS_MM_S: dict[str, tuple[float, float, float]] = {
     "group2/flexible": (2.3, 4.5, 7.1),
 }
 
+#: The boundaries at the top of zones A, B and C.
 BOUNDARY_NAMES = ("A/B", "B/C", "C/D")
 
 
@@ -91,9 +92,15 @@ def zone_of(velocity_mm_s_rms: float, limits: ZoneLimits) -> Zone:
 
 
 def next_boundary(velocity_mm_s_rms: float, limits: ZoneLimits) -> tuple[str, float] | None:
-    """The next boundary above the value: ``('B/C', 4.5)`` ..., or None in zone D."""
-    v = float(velocity_mm_s_rms)
-    for name, b in zip(BOUNDARY_NAMES, limits.as_tuple(), strict=True):
-        if v <= b:
-            return name, b
-    return None
+    """The next boundary above the value: ``('B/C', 4.5)`` ..., or None in zone D (the
+    boundary at the top of the value's zone, which includes it)."""
+    return boundary_above(zone_of(velocity_mm_s_rms, limits), limits)
+
+
+def boundary_above(zone: Zone, limits: ZoneLimits) -> tuple[str, float] | None:
+    """The boundary at the top of ``zone``, name and mm/s RMS: ``('A/B', limits.ab)`` for
+    zone A ..., None for zone D."""
+    if zone == "D":
+        return None
+    i = ZONES.index(zone)
+    return BOUNDARY_NAMES[i], limits.as_tuple()[i]
