@@ -27,7 +27,7 @@ from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, field
 from typing import Any, Literal
 
-from monitor.detection.state_json import float_in, float_out, value_in, value_out
+from monitor.detection.state_json import float_in, float_out, number_in, value_in, value_out
 from monitor.model.timefmt import iso_utc
 
 #: Severities, lowest first. ``alert`` is ISO 20816's ALERT; ``advisory`` and ``severe``
@@ -138,7 +138,7 @@ class Alarm:
         evidence = value_in(dict(stored))
         return cls(
             id=d["id"], key=AlarmKey(m, p, k, s), severity=d["severity"], state=d["state"],
-            raised_at=float_in(d["raised_at"]), cleared_at=float_in(d.get("cleared_at")),
+            raised_at=number_in(d["raised_at"], "raised_at"), cleared_at=float_in(d.get("cleared_at")),
             acknowledged_by=d.get("acknowledged_by"), acknowledged_at=float_in(d.get("acknowledged_at")),
             ack_comment=d.get("ack_comment"), evidence=evidence, _evidence_out=(evidence, stored),
         )

@@ -50,10 +50,10 @@ from monitor.detection.resonance import ResonanceWatch
 from monitor.detection.results import FeatureEvaluation, FeatureRows, ReadingEvaluation
 from monitor.detection.state_json import (
     STATE_FORMAT,
-    float_in,
     float_out,
     floats_in,
     floats_out,
+    number_in,
     upgrade_snapshot,
 )
 from monitor.detection.zones import ZoneLimits, zone_limits, zone_of
@@ -377,7 +377,8 @@ class MachineEvaluator:
         ev._ignored = {p: dict(c) for p, c in data.get("ignored", {}).items()}
         ev._resonance.speeds.extend((t, v) for t, v in (floats_in(x) for x in data.get("speed", [])))
         points = ev._limits
-        ev._last_ts = {p: float_in(t) for p, t in data.get("last_ts", {}).items() if p in points}
+        ev._last_ts = {p: number_in(t, f"last_ts {p}") for p, t in data.get("last_ts", {}).items()
+                       if p in points}
         ev._intervals = {p: deque(floats_in(v), maxlen=10) for p, v in data.get("intervals", {}).items()
                          if p in points}
         ev._fault_seen = {k.point for k in ev.engine.alarm_keys()

@@ -30,13 +30,13 @@ from monitor.model.detection_settings import DetectionSettings
 
 
 class Learning(NamedTuple):
-    """The baseline is still learning: ``count`` of ``size`` readings."""
+    """The baseline is still learning: ``readings`` of ``size`` readings so far."""
 
-    count: int
+    readings: int
     size: int
 
     def words(self) -> str:
-        return f"learning {self.count}/{self.size}"
+        return f"learning {self.readings}/{self.size}"
 
 
 class OutOfSpeedBand(NamedTuple):

@@ -181,9 +181,8 @@ class ResonanceWatch:
         warning_s = self.settings.approach_warning_s
         for k in self._seen_order:
             key = self.keys[k]
-            margin = near.get(k)
-            if margin is None:
-                margin = grid.pair(k, speed_hz)
+            known = near.get(k)
+            margin = known if known is not None else grid.pair(k, speed_hz)
             if margin.required_pct <= 0:
                 out += engine.update_ranked(key, ts, 0, 0, {"reason": "no margin required"}, reading_id)
                 continue

@@ -89,7 +89,7 @@ def float_in(v: Any) -> float | None:
 
 def floats_out(xs: Iterable[float]) -> list[float | str]:
     """A list of floats as exact JSON data (see :func:`float_out`)."""
-    out = list(xs)
+    out: list[Any] = list(xs)  # floats, or whatever the caller kept (tagged below)
     # A finite sum means every term is finite (NaN and infinities carry through a sum):
     # one pass in C for the common case.
     try:
@@ -98,6 +98,15 @@ def floats_out(xs: Iterable[float]) -> list[float | str]:
     except TypeError:
         pass
     return [float_out(x) for x in out]  # type: ignore[misc]
+
+
+def number_in(v: Any, field: str) -> float:
+    """Read back :func:`float_out`'s data where a number belongs; ValueError naming
+    ``field`` for null."""
+    x = float_in(v)
+    if x is None:
+        raise ValueError(f"state value {field!r} is null where a number belongs.")
+    return x
 
 
 def floats_in(vs: Sequence[Any]) -> list[float]:
