@@ -95,8 +95,9 @@ class TestResonance:
         assert [(t.name, t.severity) for t in res] == [("raised", "alert"), ("cleared", "alert")]
         assert res[0].alarm["point"] is None and res[0].alarm["subject"] == "pedestal@1x"
         ev0 = res[0].evidence
-        # API 684 (REFERENCES.md): AF 10, mode above the excitation -> 25 % required;
-        # margin (20 - 16.5) / 20 = 17.5 %, percent of the mode frequency (DESIGN.md)
+        # API 684 rule: AF 10 (1 / (2 x 0.05)), mode above the excitation ->
+        # min(26, 10 + 17 (1 - 1/8.5)) = 25 % required; margin (20 - 16.5) / 20 = 17.5 %,
+        # percent of the mode frequency (docs/alarms.md, "Separation margin")
         assert ev0["required_pct"] == pytest.approx(25.0) and ev0["margin_pct"] == pytest.approx(17.5)
         assert ev0["side"] == "above" and ev0["basis"] == "API 684 (AF from damping)"
 
@@ -292,7 +293,8 @@ def test_evaluation_json_and_stored_state():
     # group2/rigid: 1.4 / 2.8 / 4.5 mm/s RMS (ISO 10816-3:2009 Table A.2, from memory); 3.0 is C
     assert js["zone"] == "C" and js["zone_limits_mm_s"] == [1.4, 2.8, 4.5]
     assert js["margins"][0]["status"] == "inside"
-    # The tightest pair is the row the whole table gives (DESIGN.md: SM minus required).
+    # The tightest pair is the row the whole table gives (docs/api.md, /machines: the
+    # nearest margin against its required margin, i.e. the smallest SM minus required).
     assert e.nearest_margin() == min(e.margins, key=lambda r: r.margin_pct - r.required_pct)
     # Features built on access are the same objects however they are reached.
     assert e.feature("overall") is e.features[0] and tuple(e.features) == e.features

@@ -100,7 +100,8 @@ class Alarm:
     _evidence_out: tuple[Any, Any] | None = field(default=None, repr=False, compare=False)
 
     def to_json(self) -> dict:
-        """The alarm as in the REST API (DESIGN.md section 3)."""
+        """The alarm as the REST API gives it (docs/api.md; docs/alarms.md, "Transition and
+        alarm JSON")."""
         return {
             "id": self.id,
             "machine": self.key.machine,
@@ -173,7 +174,7 @@ class Transition:
 
     def to_json(self) -> dict:
         """The alarm's JSON (REST shape, current state) plus the ``transition`` (the MQTT
-        alarm event of DESIGN.md section 3)."""
+        alarm event, docs/mqtt.md, "Alarm events")."""
         out = dict(self.alarm)
         out["transition"] = {
             "name": self.name,

@@ -10,7 +10,7 @@ ratio. How long a ramping speed takes to bring an excitation into a required ban
 Conventions
 -----------
 - Separation margin ``SM = |f_exc - f_mode| / f_mode * 100`` (percent of the mode
-  frequency, the convention of DESIGN.md; API 684 leaves open which speed to divide by).
+  frequency, our convention, docs/alarms.md; API 684 leaves open which speed to divide by).
 - ``side`` says where the MODE lies relative to the excitation: ``'below'`` (mode below the
   excitation, the API 684 case of a critical below minimum operating speed) or ``'above'``
   (mode above the excitation, a critical above maximum continuous speed).

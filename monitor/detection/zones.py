@@ -14,7 +14,7 @@ limited time until remedial action; D severe enough to cause damage.
 References
 ----------
 ISO 10816-3:2009 / ISO 20816-3:2022, Annex A, Tables A.1 (group 1) and A.2 (group 2);
-values from memory (see REFERENCES.md): a site must review them against the machine
+values from memory: a site must review them against the machine
 manufacturer's limits.
 """
 
