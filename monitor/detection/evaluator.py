@@ -36,7 +36,7 @@ import functools
 import math
 from collections import deque
 from collections.abc import Mapping, Sequence
-from typing import Any, Literal, NamedTuple
+from typing import TYPE_CHECKING, Any, Literal, NamedTuple
 
 from monitor.analysis.waveform import ReadingAnalysis
 from monitor.detection.alarms import AlarmEngine, AlarmKey, AlarmKind, Severity, Transition
@@ -61,7 +61,9 @@ from monitor.model.bounds import check_machine
 from monitor.model.detection_settings import DetectionSettings
 from monitor.model.readings import SpeedReading, Waveform
 from monitor.model.registry import Machine
-from monitor.modes.shift import ModeShift
+
+if TYPE_CHECKING:  # the mode tests build on detection, not the other way round
+    from monitor.modes.shift import ModeShift
 
 #: Why an alarm closes when what it watches leaves the registry: the ``reason`` of its
 #: ``cleared`` transition's evidence (docs/alarms.md, "Alarms of what leaves the registry").
