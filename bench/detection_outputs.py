@@ -25,7 +25,8 @@ from typing import Any
 import numpy as np
 
 from monitor.analysis.waveform import analyse_waveform
-from monitor.detection.evaluator import Detector, MachineEvaluator
+from monitor.detection.evaluator import MachineEvaluator
+from monitor.detection.stored_state import evaluator_from_state, stored_state
 from monitor.io.ingest import decode_message
 from monitor.io.replay import load_streams
 from monitor.io.streams import parse_ts
@@ -42,10 +43,11 @@ def _plain(obj: Any) -> Any:
 
 
 def plant_outputs() -> list[Any]:
-    """The sample plant's streams in time order through one Detector."""
+    """The sample plant's streams in time order, one evaluator per machine as the service
+    keeps them (monitor/service/states.py), restored midway from their stored states."""
     out: list[Any] = []
     reg = load_registry(ROOT / "sample_streams" / "plant.toml")
-    det = Detector(reg)
+    evaluators = {m.id: MachineEvaluator(m) for m in reg.machines}
     msgs = load_streams(sorted(glob.glob(str(ROOT / "sample_streams" / "*.jsonl"))))
     for k, (topic, payload) in enumerate(msgs):
         r = decode_message(topic, json.dumps(payload).encode(), reg, now=parse_ts(payload["ts"]) + 1.0)
@@ -55,20 +57,21 @@ def plant_outputs() -> list[Any]:
                 a = analyse_waveform(r, m, m.point(r.point))
             except ValueError:
                 a = None
-            ev = det.evaluate(a, r)
+            ev = evaluators[r.machine].evaluate(a, r)
             doc = ev.to_json()
             nearest = ev.nearest_margin()
             doc["nearest"] = None if nearest is None else nearest.to_json()
             out.append(doc)
         else:
-            out.append([t.to_json() for t in det.observe_speed(r)])
+            out.append([t.to_json() for t in evaluators[r.machine].observe_speed(r)])
         if k == 500:
-            det = Detector.restore(reg, _plain(det.snapshot()))
+            evaluators = {mid: evaluator_from_state(reg.machine(mid), _plain(stored_state(e, 0)))[0]
+                          for mid, e in evaluators.items()}
         if k == 700:
-            e = det.evaluator("rwp-1")
+            e = evaluators["rwp-1"]
             e.restart_baseline(e.machine.points[0].id, 0.0)
-    out.append(_plain(det.snapshot()))
-    out.append([t.to_json() for t in det.check_stale(2e9)])
+    out.append(_plain({"machines": {mid: e.snapshot() for mid, e in evaluators.items()}}))
+    out.append([t.to_json() for e in evaluators.values() for t in e.check_stale(2e9)])
     return out
 
 

@@ -23,8 +23,8 @@ def test_persistence_before_raise():
     e = AlarmEngine(persistence=3)
     assert _feed(e, [("alert", "alert")] * 2 + [(None, None)] + [("alert", "alert")] * 2) == []
     tr = _feed(e, [("alert", "alert")], t0=10)
-    # definition of persistence (DESIGN.md section 5): raised on the 3rd consecutive reading,
-    # stamped with that reading's time and id (t0 + 0)
+    # definition of persistence (docs/alarms.md, "Lifecycle, persistence and hysteresis"):
+    # raised on the 3rd consecutive reading, stamped with that reading's time and id (t0 + 0)
     assert [t.name for t in tr] == ["raised"]
     assert tr[0].severity == "alert" and tr[0].ts == 10 and tr[0].reading_id == "r0"
 
@@ -91,8 +91,9 @@ def test_ack_validation():
 
 
 def test_levels_above():
-    # definition of hysteresis (DESIGN.md section 5): (raise, hold) levels; a level is raised
-    # at its limit and held down to limit x (1 - 0.1): 1.9 holds advisory, 3.7 holds alert
+    # definition of hysteresis (docs/alarms.md, "Lifecycle, persistence and hysteresis"):
+    # (raise, hold) levels; a level is raised at its limit and held down to limit x (1 - 0.1):
+    # 1.9 holds advisory, 3.7 holds alert
     th = {"advisory": 2.0, "alert": 4.0}
     assert levels_above(1.0, th, 0.1) == (None, None)
     assert levels_above(1.9, th, 0.1) == (None, "advisory")

@@ -10,9 +10,10 @@ import numpy as np
 import pytest
 
 from monitor.analysis.waveform import OrderAmplitude, ReadingAnalysis, Spectrum
-from monitor.detection.evaluator import Detector, MachineEvaluator, validate_machine
+from monitor.detection.evaluator import MachineEvaluator, validate_machine
+from monitor.detection.stored_state import evaluator_from_state, stored_state
 from monitor.model.readings import SpeedReading, Waveform
-from monitor.model.registry import Machine, Mode, Point, Registry
+from monitor.model.registry import Machine, Mode, Point
 
 FS = 25600.0
 DAY = 86400.0
@@ -94,8 +95,9 @@ class TestResonance:
         assert [(t.name, t.severity) for t in res] == [("raised", "alert"), ("cleared", "alert")]
         assert res[0].alarm["point"] is None and res[0].alarm["subject"] == "pedestal@1x"
         ev0 = res[0].evidence
-        # API 684 (REFERENCES.md): AF 10, mode above the excitation -> 25 % required;
-        # margin (20 - 16.5) / 20 = 17.5 %, percent of the mode frequency (DESIGN.md)
+        # API 684 rule: AF 10 (1 / (2 x 0.05)), mode above the excitation ->
+        # min(26, 10 + 17 (1 - 1/8.5)) = 25 % required; margin (20 - 16.5) / 20 = 17.5 %,
+        # percent of the mode frequency (docs/alarms.md, "Separation margin")
         assert ev0["required_pct"] == pytest.approx(25.0) and ev0["margin_pct"] == pytest.approx(17.5)
         assert ev0["side"] == "above" and ev0["basis"] == "API 684 (AF from damping)"
 
@@ -283,23 +285,25 @@ def test_acknowledge_and_snapshot_restore_equivalence():
         assert tr.to_json()["acknowledged_by"] == "j.berg"
 
 
-def test_detector_and_json():
+def test_evaluation_json_and_stored_state():
     m = _machine()
-    d = Detector(Registry((m,)))
-    e = d.evaluate(_analysis(0.0, 16.5, overall=3.0, rid="r-1"), _waveform(0.0))
+    ev = MachineEvaluator(m)
+    e = ev.evaluate(_analysis(0.0, 16.5, overall=3.0, rid="r-1"), _waveform(0.0))
     js = json.loads(json.dumps(e.to_json()))
     # group2/rigid: 1.4 / 2.8 / 4.5 mm/s RMS (ISO 10816-3:2009 Table A.2, from memory); 3.0 is C
     assert js["zone"] == "C" and js["zone_limits_mm_s"] == [1.4, 2.8, 4.5]
     assert js["margins"][0]["status"] == "inside"
-    # The tightest pair is the row the whole table gives (DESIGN.md: SM minus required).
+    # The tightest pair is the row the whole table gives (docs/api.md, /machines: the
+    # nearest margin against its required margin, i.e. the smallest SM minus required).
     assert e.nearest_margin() == min(e.margins, key=lambda r: r.margin_pct - r.required_pct)
     # Features built on access are the same objects however they are reached.
     assert e.feature("overall") is e.features[0] and tuple(e.features) == e.features
     assert js["health"]["ok"] is True
-    d2 = Detector.restore(Registry((m,)), json.loads(json.dumps(d.snapshot())))
-    assert d2.evaluator("fan-7").snapshot() == d.evaluator("fan-7").snapshot()
+    # Through the stored form the service keeps (detector_state.state) and back.
+    ev2, version = evaluator_from_state(m, json.loads(json.dumps(stored_state(ev, 4))))
+    assert version == 4 and ev2.snapshot() == ev.snapshot()
     with pytest.raises(ValueError, match="machine"):
-        d.evaluator("fan-7").evaluate(_analysis(0.0, 12.0, machine="other"))
+        ev.evaluate(_analysis(0.0, 12.0, machine="other"))
 
 
 def test_evaluation_has_every_field_and_equals_its_dataclass_copy():
@@ -307,7 +311,7 @@ def test_evaluation_has_every_field_and_equals_its_dataclass_copy():
     # set, and the object must equal one made through the dataclass's own constructor.
     from dataclasses import fields, replace
 
-    from monitor.detection.evaluator import ReadingEvaluation
+    from monitor.detection.results import ReadingEvaluation
 
     ev = MachineEvaluator(_machine())
     e = ev.evaluate(_analysis(0.0, 16.5, overall=3.0, rid="r-1"), _waveform(0.0))

@@ -8,13 +8,13 @@ import numpy as np
 import pytest
 from scipy import signal
 
+from monitor.detection.approach import approach_forecasts
 from monitor.detection.margins import (
     COMMON_PRACTICE_MARGIN_PCT,
     MarginGrid,
     MarginRows,
     amplification_factor_from_damping,
     api684_required_margin,
-    approach_forecasts,
     excitations,
     margin_table,
     required_margin,
@@ -25,7 +25,8 @@ from monitor.model.registry import Machine, Mode
 
 
 class TestApi684RequiredMargin:
-    # API 684 separation margin rule; values from REFERENCES.md (computed from the rule).
+    # API 684 separation margin rule; values computed by hand from the rule:
+    # below min(16, 17 (1 - 1/(AF - 1.5))), above min(26, 10 + 17 (1 - 1/(AF - 1.5))).
     @pytest.mark.parametrize(
         ("af", "below", "above"),
         [(2.5, 0.0, 10.0), (3.0, 5.667, 15.667), (5.0, 12.143, 22.143), (10.0, 15.0, 25.0)],
@@ -36,7 +37,7 @@ class TestApi684RequiredMargin:
 
     def test_caps(self):
         # API 684 rule: the caps 16 % / 26 % bind where 17 (1 - 1/(AF - 1.5)) = 16, i.e.
-        # AF = 18.5 (solved by hand). REFERENCES.md lists the cap from AF >= 12.8, but the
+        # AF = 18.5 (solved by hand). A cap from AF >= 12.8 is sometimes quoted, but the
         # rule itself gives 15.496 / 25.496 there, so this check follows the rule.
         for af in (18.5, 25.0, 100.0):
             assert api684_required_margin(af, "below") == pytest.approx(16.0)
@@ -60,13 +61,14 @@ class TestApi684RequiredMargin:
 
 class TestAmplificationFactor:
     def test_half_power_relation(self):
-        # Half-power bandwidth: AF = Q ~= 1/(2 zeta); zeta = 0.05 -> 10 (REFERENCES.md).
+        # Half-power bandwidth: AF = Q ~= 1/(2 zeta); zeta = 0.05 -> 10 (Thomson, Theory
+        # of Vibration with Applications; API 684 defines AF by the half-power points).
         assert amplification_factor_from_damping(0.05) == pytest.approx(10.0)
         assert amplification_factor_from_damping(0.03) == pytest.approx(1 / 0.06)
 
     def test_against_sdof_half_power_points(self):
         # Textbook: half-power points r^2 = 1 - 2z^2 +- 2z sqrt(1 - z^2); AF = 1/(r2 - r1)
-        # approaches 1/(2 zeta) for light damping (REFERENCES.md: zeta 0.05 -> 9.95).
+        # approaches 1/(2 zeta) for light damping (zeta 0.05 -> 9.95, from these roots).
         z = 0.05
         r1 = math.sqrt(1 - 2 * z * z - 2 * z * math.sqrt(1 - z * z))
         r2 = math.sqrt(1 - 2 * z * z + 2 * z * math.sqrt(1 - z * z))
@@ -93,7 +95,8 @@ class TestSdofAmplification:
         assert sdof_amplification(r, zeta) == pytest.approx(abs(h[0]), rel=1e-9)
 
     def test_known_values(self):
-        # REFERENCES.md (computed): zeta = 0.05: H(1) = 10; peak 10.01252 at r = 0.997497.
+        # Thomson, forced SDOF response: H(1) = 1/(2 zeta) = 10 for zeta = 0.05; peak
+        # 1/(2 zeta sqrt(1 - zeta^2)) = 10.01252 at r = sqrt(1 - 2 zeta^2) = 0.997497.
         assert sdof_amplification(1.0, 0.05) == pytest.approx(10.0)
         assert sdof_amplification(0.997497, 0.05) == pytest.approx(10.01252, abs=1e-4)
         # Static limit and high-frequency limit: H(0) = 1, H(2) ~ 1/3 (light damping).
@@ -130,7 +133,8 @@ class TestExcitations:
 
 class TestSeparationMargin:
     def test_definition(self):
-        # DESIGN.md: SM = |f_exc - f_mode| / f_mode * 100; side = where the mode lies.
+        # docs/alarms.md, "Separation margin" (API 684 leaves the divisor open; ours is the
+        # mode frequency): SM = |f_exc - f_mode| / f_mode * 100; side = where the mode lies.
         sm, side = separation_margin(18.0, 20.0)
         assert sm == pytest.approx(10.0)
         assert side == "above"
@@ -163,7 +167,7 @@ class TestSeparationMargin:
 
     def test_required_margin_sources(self):
         assert required_margin(Mode("a", 10.0, required_margin_pct=12.0)).basis == "configured"
-        # API 684 (REFERENCES.md table): AF 5 -> 12.143 % below, AF 10 -> 25 % above
+        # API 684 rule (computed by hand): AF 5 -> 12.143 % below, AF 10 -> 25 % above
         assert required_margin(Mode("a", 10.0, amplification_factor=5.0)).below_pct == pytest.approx(12.143, abs=1e-3)
         r = required_margin(Mode("a", 10.0, damping_ratio=0.05))
         assert r.basis == "API 684 (AF from damping)"
@@ -180,8 +184,8 @@ class TestSeparationMargin:
     def test_nearest_margin(self):
         # Mode at 20 Hz, zeta 0.05 -> AF = 10 -> API 684: 15 % below, 25 % above; speed
         # 9.5 Hz: 1x at 9.5 Hz is 52.5 % below the mode (needs 25 %), 2x at 19 Hz is 5 %
-        # below (needs 25 %), 9x at 85.5 Hz is 327.5 % above (needs 15 %). DESIGN.md
-        # definition of SM; the tightest is 2x, 20 % inside its band.
+        # below (needs 25 %), 9x at 85.5 Hz is 327.5 % above (needs 15 %). SM as
+        # docs/alarms.md defines it; the tightest is 2x, 20 % inside its band.
         m = _machine()
         rows = MarginRows(MarginGrid(m), speed_hz=9.5)
         near = rows.nearest_margin()

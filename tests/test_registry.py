@@ -14,8 +14,8 @@ from monitor.store import export_registry, import_registry
 from monitor.store.models import Machine as MachineRow
 from monitor.store.models import ModeHistory
 
-# The example of DESIGN.md section 3 (the binding key names).
-DESIGN_EXAMPLE = """
+# A machine table with the keys of docs/registry.md (the binding key names).
+REGISTRY_EXAMPLE = """
 [[machines]]
 id = "af-3"
 name = "Supply air fan 3"
@@ -43,7 +43,7 @@ line_frequency_hz = 50
 
 
 def test_toml_round_trip():
-    registry = parse_registry(tomllib.loads(DESIGN_EXAMPLE))
+    registry = parse_registry(tomllib.loads(REGISTRY_EXAMPLE))
     assert parse_registry(tomllib.loads(dump_registry(registry))) == registry
     other = small_registry()
     assert parse_registry(tomllib.loads(dump_registry(other))) == other
@@ -61,14 +61,14 @@ def test_toml_round_trip():
     ],
 )
 def test_validation_error_names_the_field(edit, field):
-    bad = DESIGN_EXAMPLE.replace(*edit)
+    bad = REGISTRY_EXAMPLE.replace(*edit)
     with pytest.raises(RegistryError) as exc:
         parse_registry(tomllib.loads(bad))
     assert field in str(exc.value)
 
 
 def test_import_export_round_trip(store):
-    registry = parse_registry(tomllib.loads(DESIGN_EXAMPLE))
+    registry = parse_registry(tomllib.loads(REGISTRY_EXAMPLE))
     with store.transaction() as s:
         report = import_registry(s, registry)
     assert report.machines_added == ["af-3"]
@@ -90,8 +90,8 @@ def test_import_export_round_trip(store):
 
 
 def test_mode_changes_are_recorded(store):
-    registry = parse_registry(tomllib.loads(DESIGN_EXAMPLE))
-    moved = parse_registry(tomllib.loads(DESIGN_EXAMPLE.replace("frequency_hz = 18.4", "frequency_hz = 17.9")))
+    registry = parse_registry(tomllib.loads(REGISTRY_EXAMPLE))
+    moved = parse_registry(tomllib.loads(REGISTRY_EXAMPLE.replace("frequency_hz = 18.4", "frequency_hz = 17.9")))
     with store.transaction() as s:
         import_registry(s, registry, user="ana")
     with store.transaction() as s:
@@ -104,7 +104,7 @@ def test_mode_changes_are_recorded(store):
 
 
 def test_every_registry_key_is_documented():
-    # DESIGN.md section 3: "more keys are allowed; document them"
+    # docs/registry.md: further keys of a machine table are allowed, and every key read is documented
     import re
     import tomllib
     from pathlib import Path
@@ -140,8 +140,8 @@ def test_every_registry_key_is_documented():
     (('fs_hz = 25600', 'sample_rate = 25600'), "'sample_rate'"),
 ])
 def test_misspelt_tables_and_keys_are_errors_naming_them(edit, named):
-    bad = DESIGN_EXAMPLE.replace(*edit)
-    assert bad != DESIGN_EXAMPLE
+    bad = REGISTRY_EXAMPLE.replace(*edit)
+    assert bad != REGISTRY_EXAMPLE
     with pytest.raises(RegistryError) as exc:
         parse_registry(tomllib.loads(bad))
     msg = str(exc.value)
@@ -153,7 +153,7 @@ def test_misspelt_tables_and_keys_are_errors_naming_them(edit, named):
 def test_unknown_machine_keys_are_kept_exported_and_warned(store):
     from monitor.model.registry_file import registry_warnings
 
-    text = DESIGN_EXAMPLE.replace('line_frequency_hz = 50', 'line_frequency_hz = 50\nasset_tag = "P-1041"\n'
+    text = REGISTRY_EXAMPLE.replace('line_frequency_hz = 50', 'line_frequency_hz = 50\nasset_tag = "P-1041"\n'
                                   'commissioned = { by = "ana", year = 2019 }')
     registry = parse_registry(tomllib.loads(text))
     (m,) = registry.machines
@@ -182,8 +182,8 @@ def test_unknown_machine_keys_are_kept_exported_and_warned(store):
     (('class = "group2/flexible"', 'class = "group2/flexible"\npersistence = 0'), "'persistence'"),
 ])
 def test_physical_bounds_name_machine_entry_and_key(edit, key):
-    bad = DESIGN_EXAMPLE.replace(*edit)
-    assert bad != DESIGN_EXAMPLE
+    bad = REGISTRY_EXAMPLE.replace(*edit)
+    assert bad != REGISTRY_EXAMPLE
     with pytest.raises(RegistryError) as exc:
         parse_registry(tomllib.loads(bad))
     assert key in str(exc.value) and "'af-3'" in str(exc.value)

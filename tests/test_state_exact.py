@@ -22,8 +22,9 @@ from sqlalchemy import select
 
 from monitor.config import load_settings
 from monitor.detection.alarms import AlarmEngine, AlarmKey
-from monitor.detection.evaluator import MachineEvaluator, evaluator_from_state, stored_state
+from monitor.detection.evaluator import MachineEvaluator
 from monitor.detection.growth import Baseline, TrendWindow
+from monitor.detection.stored_state import evaluator_from_state, stored_state
 from monitor.io.replay import load_streams
 from monitor.model.registry_file import load_registry
 from monitor.model.timefmt import iso_utc
@@ -169,13 +170,13 @@ def test_tied_window_round_trips_through_the_store(plant_url: str) -> None:
     w = TrendWindow(size=12, min_readings=10, refit_every=5)
     for k in range(10):
         w.add(1000.0 + k, 2.5)
-    line = w.line()
-    assert line is not None and math.isnan(line[1])
+    trend = w.trend()
+    assert trend is not None and math.isnan(trend.low_per_s)
     back = through_store(plant_url, "sp-2", {"window": w.snapshot()})
     w2 = TrendWindow.restore(back["window"])
     w.add(1010.0, 2.5)
     w2.add(1010.0, 2.5)
-    assert same(list(w2.line()), list(w.line()))
+    assert same(list(w2.trend()), list(w.trend()))
     assert same(w2.snapshot(), w.snapshot())
 
 

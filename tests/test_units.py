@@ -64,7 +64,7 @@ class TestAmplitudeMeasures:
 class TestVelocityFrom:
     def test_one_g_at_100_hz(self):
         # V = A / (2 pi f): 1 g peak at 100 Hz = 15.608 mm/s peak = 11.036 mm/s RMS
-        # (REFERENCES.md, computed; recomputed here from the formula)
+        # (computed from the formula with standard gravity, scipy.constants.g)
         v = units.velocity_mm_s_from(1.0, "g", 100.0)
         assert v == pytest.approx(constants.g / (2 * math.pi * 100) * 1e3, rel=1e-12)
         assert v == pytest.approx(15.608, abs=5e-4)

@@ -6,7 +6,7 @@ import pytest
 
 from monitor.detection.zones import CLASS_LIMITS_MM_S, next_boundary, zone_limits, zone_of
 
-# ISO 10816-3:2009 Table A.1/A.2, from memory (REFERENCES.md): A/B, B/C, C/D in mm/s RMS.
+# ISO 10816-3:2009 Table A.1/A.2, from memory: A/B, B/C, C/D in mm/s RMS.
 ISO_TABLE = {
     "group1/rigid": (2.3, 4.5, 7.1),
     "group1/flexible": (3.5, 7.1, 11.0),
@@ -51,8 +51,8 @@ def test_next_boundary():
 
 
 def test_overrides_point_wins():
-    # limits here are invented overrides; the checks are the precedence rule (DESIGN.md:
-    # configured limits override the class defaults; ours: a point's over its machine's)
+    # limits here are invented overrides; the checks are the precedence rule (docs/registry.md:
+    # configured limits override the class defaults, a point's its machine's)
     # and the zone definition (2.5 lies between 2.0 and 3.0: zone C)
     lim = zone_limits("group2/rigid", machine_limits=(2.0, 3.0, 5.0))
     assert lim.as_tuple() == (2.0, 3.0, 5.0) and lim.source == "machine"

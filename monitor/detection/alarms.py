@@ -23,20 +23,29 @@ JSON-able dict (exact: non-finite floats as tagged strings, :mod:`monitor.detect
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, field
 from typing import Any, Literal
 
-from monitor.detection.state_json import float_in, float_out, value_in, value_out
+from monitor.detection.state_json import float_in, float_out, number_in, value_in, value_out
 from monitor.model.timefmt import iso_utc
 
 #: Severities, lowest first. ``alert`` is ISO 20816's ALERT; ``advisory`` and ``severe``
 #: are our own words for the levels below and above it (docs/alarms.md).
-SEVERITIES = ("advisory", "alert", "severe")
-#: ``processing_fault`` is the service's own: a stream whose readings cannot be processed.
-KINDS = ("resonance_proximity", "amplitude_growth", "mode_shift", "sensor_fault", "processing_fault")
-TRANSITIONS = ("raised", "escalated", "de-escalated", "acknowledged", "cleared")
+Severity = Literal["advisory", "alert", "severe"]
+SEVERITIES: tuple[Severity, ...] = ("advisory", "alert", "severe")
+#: What an alarm watches. ``processing_fault`` is the service's own: a stream whose
+#: readings cannot be processed.
+AlarmKind = Literal["resonance_proximity", "amplitude_growth", "mode_shift", "sensor_fault",
+                    "processing_fault"]
+KINDS: tuple[AlarmKind, ...] = ("resonance_proximity", "amplitude_growth", "mode_shift", "sensor_fault",
+                                "processing_fault")
+#: The steps of an alarm's lifecycle (see the module docstring).
+TransitionName = Literal["raised", "escalated", "de-escalated", "acknowledged", "cleared"]
+TRANSITIONS: tuple[TransitionName, ...] = ("raised", "escalated", "de-escalated", "acknowledged", "cleared")
 State = Literal["active", "acknowledged", "cleared"]
+#: The severity of each rank (:func:`severity_rank`'s inverse): None for rank 0.
+LEVELS: tuple[Severity | None, ...] = (None, *SEVERITIES)
 
 
 def severity_rank(severity: str | None) -> int:
@@ -47,7 +56,7 @@ def severity_rank(severity: str | None) -> int:
         raise ValueError(f"severity must be one of {SEVERITIES} or None, got {severity!r}.") from None
 
 
-_RANK: dict[str | None, int] = {None: 0, **{s: i + 1 for i, s in enumerate(SEVERITIES)}}
+_RANK: dict[str | None, int] = {level: rank for rank, level in enumerate(LEVELS)}
 
 
 @dataclass(frozen=True)
@@ -56,7 +65,7 @@ class AlarmKey:
 
     machine: str
     point: str | None
-    kind: str
+    kind: AlarmKind
     subject: str
 
     def __post_init__(self) -> None:
@@ -78,7 +87,7 @@ class Alarm:
 
     id: str
     key: AlarmKey
-    severity: str
+    severity: Severity
     state: State
     raised_at: float
     cleared_at: float | None = None
@@ -91,7 +100,8 @@ class Alarm:
     _evidence_out: tuple[Any, Any] | None = field(default=None, repr=False, compare=False)
 
     def to_json(self) -> dict:
-        """The alarm as in the REST API (DESIGN.md section 3)."""
+        """The alarm as the REST API gives it (docs/api.md; docs/alarms.md, "Transition and
+        alarm JSON")."""
         return {
             "id": self.id,
             "machine": self.key.machine,
@@ -129,7 +139,7 @@ class Alarm:
         evidence = value_in(dict(stored))
         return cls(
             id=d["id"], key=AlarmKey(m, p, k, s), severity=d["severity"], state=d["state"],
-            raised_at=float_in(d["raised_at"]), cleared_at=float_in(d.get("cleared_at")),
+            raised_at=number_in(d["raised_at"], "raised_at"), cleared_at=float_in(d.get("cleared_at")),
             acknowledged_by=d.get("acknowledged_by"), acknowledged_at=float_in(d.get("acknowledged_at")),
             ack_comment=d.get("ack_comment"), evidence=evidence, _evidence_out=(evidence, stored),
         )
@@ -144,10 +154,10 @@ class Transition:
     ``evidence`` what the detectors saw (feature values, margins, reading id ...).
     """
 
-    name: str
+    name: TransitionName
     ts: float
-    severity: str
-    previous_severity: str | None
+    severity: Severity
+    previous_severity: Severity | None
     alarm: dict[str, Any]
     evidence: dict[str, Any]
     reading_id: str | None = None
@@ -164,7 +174,7 @@ class Transition:
 
     def to_json(self) -> dict:
         """The alarm's JSON (REST shape, current state) plus the ``transition`` (the MQTT
-        alarm event of DESIGN.md section 3)."""
+        alarm event, docs/mqtt.md, "Alarm events")."""
         out = dict(self.alarm)
         out["transition"] = {
             "name": self.name,
@@ -392,8 +402,9 @@ class AlarmEngine:
         s.up_count = s.down_count = s.down_level = s.clear_count = 0
 
     @staticmethod
-    def _transition(a: Alarm, name: str, ts: float, prev: str | None, ev: dict, reading_id: str | None,
-                    user: str | None = None, comment: str | None = None) -> Transition:
+    def _transition(a: Alarm, name: TransitionName, ts: float, prev: Severity | None, ev: dict,
+                    reading_id: str | None, user: str | None = None, comment: str | None = None
+                    ) -> Transition:
         return Transition(name=name, ts=ts, severity=a.severity, previous_severity=prev,
                           alarm=a.to_json(), evidence=ev, reading_id=reading_id, user=user,
                           comment=comment)
@@ -429,21 +440,36 @@ class AlarmEngine:
         return e
 
 
-def levels_above(value: float, thresholds: dict[str, float], hysteresis: float) -> tuple[str | None, str | None]:
+def levels_above(value: float, thresholds: Mapping[str, float], hysteresis: float
+                 ) -> tuple[Severity | None, Severity | None]:
     """``(raise_level, hold_level)`` for a feature where higher is worse.
 
     ``thresholds`` maps severity -> raise limit; a level holds (hysteresis) while the value
-    stays above ``limit * (1 - hysteresis)``.
+    stays above ``limit * (1 - hysteresis)``. :func:`level_ranks_above` in severities.
     """
     if not 0.0 <= hysteresis < 1.0:
         raise ValueError(f"hysteresis must lie in [0, 1), got {hysteresis!r}.")
-    raise_l = hold_l = None
-    for sev in SEVERITIES:
-        lim = thresholds.get(sev)
-        if lim is None:
-            continue
-        if value >= lim:
-            raise_l = sev
-        if value >= lim * (1.0 - hysteresis):
-            hold_l = sev
-    return raise_l, hold_l
+    limits = [(rank, thresholds[sev]) for rank, sev in enumerate(SEVERITIES, 1)
+              if thresholds.get(sev) is not None]
+    raise_rank, hold_rank = level_ranks_above(value, limits, hysteresis)
+    return LEVELS[raise_rank], LEVELS[hold_rank]
+
+
+def level_ranks_above(value: float, limits: Iterable[tuple[int, float]], hysteresis: float
+                      ) -> tuple[int, int]:
+    """``(raise rank, hold rank)`` (:func:`severity_rank`: 0 none, 1 advisory, 2 alert,
+    3 severe) of a value where higher is worse.
+
+    ``limits`` holds ``(rank, raise limit)`` pairs in the value's unit: a rank is raised
+    at or above its limit and holds (hysteresis, a fraction in [0, 1), unchecked here)
+    while the value stays at or above ``limit * (1 - hysteresis)``; the highest rank of
+    each wins.
+    """
+    raise_rank = hold_rank = 0
+    hold = 1.0 - hysteresis
+    for rank, limit in limits:
+        if value >= limit and rank > raise_rank:
+            raise_rank = rank
+        if value >= limit * hold and rank > hold_rank:
+            hold_rank = rank
+    return raise_rank, hold_rank

@@ -1,15 +1,16 @@
 """State detection for one machine: readings in, alarm transitions and evaluations out.
 
-:class:`MachineEvaluator` ties together sensor health (``health``), separation margins
-(``margins``), severity zones (``zones``), baselines and trends (``growth``) and the alarm
-engine (``alarms``). It is deterministic and does no I/O: the caller passes each
-:class:`~monitor.analysis.waveform.ReadingAnalysis` with its :class:`~monitor.model.readings.Waveform`,
-speed readings, and the current time for stale-stream checks; it gets back
-:class:`~monitor.detection.alarms.Transition` objects to store and publish, and a
-:class:`ReadingEvaluation` for the store and the dashboard. ``snapshot()`` returns a
-JSON-able dict that keeps every float exactly (format in docs/store.md);
-``MachineEvaluator.restore`` rebuilds the same state after a restart.
-:class:`Detector` does the same for every machine of a registry.
+:class:`MachineEvaluator` ties together sensor health (``health``), resonance proximity
+(``resonance``: separation margins and ramp forecasts), severity zones (``zones``),
+baselines and trends (``growth``, judged by ``growth_rules``) and the alarm engine
+(``alarms``). It is deterministic and does no I/O: the caller passes each
+:class:`~monitor.analysis.waveform.ReadingAnalysis` with its
+:class:`~monitor.model.readings.Waveform`, speed readings, and the current time for
+stale-stream checks; it gets back :class:`~monitor.detection.alarms.Transition` objects to
+store and publish, and a :class:`~monitor.detection.results.ReadingEvaluation` for the
+store and the dashboard. ``snapshot()`` returns a JSON-able dict that keeps every float
+exactly (format in docs/store.md); ``MachineEvaluator.restore`` rebuilds the same state
+after a restart. The service keeps one evaluator per machine (monitor/service/states.py).
 
 Rules
 -----
@@ -26,46 +27,43 @@ Rules
   the window started at; the speed-normalised 1x is always compared and trended.
 
 Settings (keys of the machine's registry table, ``machine.settings``; docs/alarms.md):
-see :class:`DetectionSettings`.
+see :class:`~monitor.model.detection_settings.DetectionSettings`.
 """
 
 from __future__ import annotations
 
-import bisect
 import functools
 import math
 from collections import deque
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field, fields
-from typing import Any
+from typing import TYPE_CHECKING, Any, Literal, NamedTuple
 
 from monitor.analysis.waveform import ReadingAnalysis
-from monitor.detection.alarms import SEVERITIES, AlarmEngine, AlarmKey, Transition
+from monitor.detection.alarms import AlarmEngine, AlarmKey, AlarmKind, Severity, Transition
+from monitor.detection.approach import ApproachForecast
+from monitor.detection.features import Feature, growth_orders, reading_features
 from monitor.detection.growth import Baseline, TrendWindow, fit_due_windows
-from monitor.detection.health import HealthReport, check_waveform, is_stale
-from monitor.detection.margins import (
-    ApproachForecast,
-    MarginGrid,
-    MarginRow,
-    MarginRows,
-    MarginState,
-    approach_forecasts,
-    order_label,
-    speed_is_steady,
-)
+from monitor.detection.growth_rules import FeatureVerdict, GrowthRules
+from monitor.detection.health import HealthCheck, HealthReport, check_waveform, is_stale
+from monitor.detection.margins import MarginRow, MarginRows
+from monitor.detection.resonance import ResonanceWatch
+from monitor.detection.results import FeatureEvaluation, FeatureRows, ReadingEvaluation
 from monitor.detection.state_json import (
     STATE_FORMAT,
-    float_in,
     float_out,
     floats_in,
     floats_out,
-    value_out,
+    number_in,
+    upgrade_snapshot,
 )
 from monitor.detection.zones import ZoneLimits, zone_limits, zone_of
 from monitor.model.bounds import check_machine
+from monitor.model.detection_settings import DetectionSettings
 from monitor.model.readings import SpeedReading, Waveform
-from monitor.model.registry import Machine, Registry
-from monitor.modes.shift import ModeShift
+from monitor.model.registry import Machine
+
+if TYPE_CHECKING:  # the mode tests build on detection, not the other way round
+    from monitor.modes.shift import ModeShift
 
 #: Why an alarm closes when what it watches leaves the registry: the ``reason`` of its
 #: ``cleared`` transition's evidence (docs/alarms.md, "Alarms of what leaves the registry").
@@ -75,282 +73,48 @@ POINT_RETIRED = "point retired from the registry"
 MACHINE_RETIRED = "machine retired from the registry"
 
 #: Severity of each sensor-health check (docs/alarms.md).
-SENSOR_FAULT_SEVERITY = {
+SENSOR_FAULT_SEVERITY: dict[HealthCheck, Severity] = {
     "flat_line": "alert", "clipping": "alert", "dropouts": "alert", "stale": "alert",
     "sample_rate": "alert", "unit": "alert", "spikes": "advisory",
 }
 
+#: Why growth leaves a reading out: the key its count goes under (``ignored_readings`` of
+#: a growth transition's evidence) and the start of ``growth_ignored``.
+IgnoreReason = Literal["sensor fault", "resonance band"]
 
-@dataclass(frozen=True)
-class DetectionSettings:
-    """Detection settings of one machine; the field names are the registry keys.
 
-    Attributes
-    ----------
-    required_margin_pct : float or None
-        Machine default required margin (%) for modes with no AF, damping or own margin;
-        None uses 10 % (common practice).
-    approach_factor : float
-        Approach band as a multiple of the required margin (default 1.5).
-    persistence : int
-        Consecutive readings before a raise, escalation, de-escalation or clear (3).
-    hysteresis_pct : float
-        A condition holds until the value falls this many percent inside its limit (10 %).
-    baseline_readings : int
-        Readings in the baseline learning window (20).
-    growth_ratios : tuple of two floats
-        Baseline ratios for advisory and alert (2, 4: +6 dB, +12 dB, common practice).
-    baseline_speed_band_pct : float
-        Speed-dependent features are compared with the baseline only within this speed
-        band, percent of the baseline speed (10 %).
-    baseline_sigmas : float
-        A ratio alarm also needs the value this many robust standard deviations (1.4826 x
-        MAD) above the baseline median, so a noisy feature does not alarm on noise (3).
-    trend_window : int
-        Readings in the sliding Theil-Sen window (50).
-    trend_min_readings : int
-        Readings before a trend is given (10).
-    trend_horizon_days : float
-        Alarm when the projected time to the next limit is shorter (7 days).
-    trend_refit_every : int
-        Refit the Theil-Sen trend after this many new readings; in between its line is
-        carried forward (5).
-    approach_warning_s : float
-        Advisory when a ramping speed brings an excitation into a required band within
-        this time, seconds (600).
-    speed_history : int
-        Speed values kept for the speed trend (12).
-    reading_interval_s : float or None
-        Expected time between readings of a point, seconds; None learns it (median of
-        the last intervals).
-    stale_intervals : float
-        A point is stale after this many expected intervals without a reading (3).
-    """
+class Ignored(NamedTuple):
+    """Why growth leaves a reading out: the ``reason`` and what caused it (the failed
+    checks, or the subjects inside their required band)."""
 
-    required_margin_pct: float | None = None
-    approach_factor: float = 1.5
-    persistence: int = 3
-    hysteresis_pct: float = 10.0
-    baseline_readings: int = 20
-    growth_ratios: tuple[float, float] = (2.0, 4.0)
-    baseline_speed_band_pct: float = 10.0
-    baseline_sigmas: float = 3.0
-    trend_window: int = 50
-    trend_min_readings: int = 10
-    trend_horizon_days: float = 7.0
-    trend_refit_every: int = 5
-    approach_warning_s: float = 600.0
-    speed_history: int = 12
-    reading_interval_s: float | None = None
-    stale_intervals: float = 3.0
+    reason: IgnoreReason
+    causes: tuple[str, ...]
 
-    @classmethod
-    def from_mapping(cls, settings: Mapping[str, Any], where: str = "settings") -> DetectionSettings:
-        """Build from registry keys, ignoring keys that are not detection settings;
-        ValueError naming the key for a bad value."""
-        names = {f.name for f in fields(cls)}
-        kw = {k: v for k, v in settings.items() if k in names}
-        if "growth_ratios" in kw and isinstance(kw["growth_ratios"], list):
-            kw["growth_ratios"] = tuple(kw["growth_ratios"])
-        s = cls(**kw)
-        s.validate(where)
-        return s
+    def text(self) -> str:
+        """``growth_ignored`` of the evaluation: ``'<reason>: <cause>, <cause>'``."""
+        return f"{self.reason}: {', '.join(self.causes)}"
 
-    def validate(self, where: str = "settings") -> None:
-        def num(name: str, lo: float, hi: float = math.inf, *, integer: bool = False,
-                lo_open: bool = False) -> None:
-            v = getattr(self, name)
-            ok = isinstance(v, int | float) and not isinstance(v, bool) and math.isfinite(v)
-            ok = ok and (v > lo if lo_open else v >= lo) and v <= hi
-            if integer:
-                ok = ok and isinstance(v, int)
-            if not ok:
-                kind = "an integer" if integer else "a number"
-                bound = f"> {lo:g}" if lo_open else f">= {lo:g}"
-                raise ValueError(f"{where}: '{name}' must be {kind} {bound}"
-                                 f"{'' if hi == math.inf else f' and <= {hi:g}'}, got {v!r}.")
 
-        if self.required_margin_pct is not None:
-            num("required_margin_pct", 0.0, 99.0)
-        num("approach_factor", 1.0)
-        num("persistence", 1, integer=True)
-        num("hysteresis_pct", 0.0, 90.0)
-        num("baseline_readings", 3, integer=True)
-        num("baseline_speed_band_pct", 0.0, lo_open=True)
-        num("baseline_sigmas", 0.0)
-        num("trend_window", 3, integer=True)
-        num("trend_min_readings", 3, self.trend_window, integer=True)
-        num("trend_horizon_days", 0.0, lo_open=True)
-        num("trend_refit_every", 1, integer=True)
-        num("approach_warning_s", 0.0)
-        num("speed_history", 3, integer=True)
-        num("stale_intervals", 1.0)
-        if self.reading_interval_s is not None:
-            num("reading_interval_s", 0.0, lo_open=True)
-        r = self.growth_ratios
-        if (not isinstance(r, tuple) or len(r) != 2
-                or not all(isinstance(x, int | float) and math.isfinite(x) for x in r)
-                or not 1.0 < r[0] < r[1]):
-            raise ValueError(f"{where}: 'growth_ratios' must be two increasing numbers above 1, got {r!r}.")
+class _Slot(NamedTuple):
+    """The state of one growth feature of one point."""
+
+    baseline: Baseline
+    window: TrendWindow
+    key: AlarmKey
+
+
+_NO_MARGINS = MarginRows()
 
 
 def validate_machine(machine: Machine) -> DetectionSettings:
-    """Check what detection relies on (the registry's bounds, :func:`monitor.model.registry.
-    check_machine`); ValueError naming the machine, entry and field.
+    """Check what detection relies on (the registry's bounds,
+    :func:`monitor.model.bounds.check_machine`); ValueError naming the machine, entry and
+    field.
 
-    Returns the machine's :class:`DetectionSettings`.
+    Returns the machine's :class:`~monitor.model.detection_settings.DetectionSettings`.
     """
     check_machine(machine)
     return DetectionSettings.from_mapping(machine.settings, f"machine {machine.id!r}")
-
-
-@dataclass(frozen=True)
-class FeatureEvaluation:
-    """One growth feature of one reading.
-
-    ``value`` in ``unit``; baseline median/MAD in the same unit; ``ratio`` value over the
-    baseline median (None while learning or not comparable); ``baseline_status`` in words;
-    ``trend_per_day`` Theil-Sen slope (unit/day); ``limit_name``/``limit_value`` the next
-    limit the trend is projected to (a zone boundary for ``overall``, a baseline ratio
-    limit otherwise); ``time_to_limit_s`` seconds (None when not rising); ``raise_level``
-    and ``hold_level`` as given to the alarm engine.
-    """
-
-    name: str
-    value: float
-    unit: str
-    baseline_median: float | None
-    baseline_mad: float | None
-    baseline_status: str
-    ratio: float | None
-    trend_per_day: float | None
-    limit_name: str | None
-    limit_value: float | None
-    time_to_limit_s: float | None
-    raise_level: str | None
-    hold_level: str | None
-    causes: tuple[str, ...] = ()
-
-    def to_json(self) -> dict:
-        return {
-            "name": self.name, "value": self.value, "unit": self.unit,
-            "baseline_median": self.baseline_median, "baseline_mad": self.baseline_mad,
-            "baseline_status": self.baseline_status, "ratio": self.ratio,
-            "trend_per_day": self.trend_per_day, "limit_name": self.limit_name,
-            "limit_value": self.limit_value, "time_to_limit_s": self.time_to_limit_s,
-            "time_to_limit_days": None if self.time_to_limit_s is None else self.time_to_limit_s / 86400.0,
-            "raise_level": self.raise_level, "hold_level": self.hold_level,
-            "causes": list(self.causes),
-        }
-
-
-@dataclass(frozen=True)
-class ReadingEvaluation:
-    """What detection made of one reading (for the store and the dashboard).
-
-    ``zone`` of ``overall_velocity_mm_s_rms`` against ``zone_limits``; ``margins`` table at
-    the reading's speed (a sequence of :class:`MarginRow`, built on first use); ``approach`` forecasts from the speed trend; ``features`` the
-    growth features; ``growth_ignored`` why growth skipped the reading (None when used);
-    ``machine_alarms_suppressed`` when sensor health flagged the reading; ``transitions``
-    the alarm transitions the reading caused.
-    """
-
-    machine: str
-    point: str
-    ts: float
-    reading_id: str | None
-    speed_hz: float | None
-    overall_velocity_mm_s_rms: float | None
-    zone: str | None
-    zone_limits: ZoneLimits
-    margins: Sequence[MarginRow]
-    approach: tuple[ApproachForecast, ...]
-    features: Sequence[FeatureEvaluation]
-    health: HealthReport
-    growth_ignored: str | None
-    machine_alarms_suppressed: bool
-    transitions: tuple[Transition, ...] = field(default_factory=tuple)
-
-    def feature(self, name: str) -> FeatureEvaluation | None:
-        if isinstance(self.features, FeatureRows):
-            return self.features.get(name)
-        for f in self.features:
-            if f.name == name:
-                return f
-        return None
-
-    def nearest_margin(self) -> MarginRow | None:
-        """The tightest (mode, excitation) pair at this reading's speed: the margin row
-        with the smallest ``margin_pct - required_pct`` (percent; the first on a tie), or
-        None without a margin table. Cheaper than scanning :attr:`margins` (one row is
-        built)."""
-        if isinstance(self.margins, MarginRows):
-            return self.margins.nearest_margin()
-        return min(self.margins, key=lambda r: r.margin_pct - r.required_pct, default=None)
-
-    def to_json(self, *, margins: bool = True) -> dict:
-        """JSON-able form; ``margins=False`` leaves out the margin table (the costly part),
-        for readings whose table nobody will read (a store keeping it on the newest only)."""
-        out = {
-            "machine": self.machine, "point": self.point, "ts": self.ts,
-            "reading_id": self.reading_id, "speed_hz": self.speed_hz,
-            "overall_velocity_mm_s_rms": self.overall_velocity_mm_s_rms, "zone": self.zone,
-            "zone_limits_mm_s": list(self.zone_limits.as_tuple()),
-            "zone_limits_source": self.zone_limits.source,
-            "approach": [a.to_json() for a in self.approach],
-            "features": [f.to_json() for f in self.features],
-            "health": self.health.to_json(), "growth_ignored": self.growth_ignored,
-            "machine_alarms_suppressed": self.machine_alarms_suppressed,
-            "transitions": [t.to_json() for t in self.transitions],
-        }
-        if margins:
-            out["margins"] = [m.to_json() for m in self.margins]
-        return out
-
-
-def _growth_orders(machine: Machine) -> tuple[tuple[float, str], ...]:
-    """(order, feature name) of the order features other than 1x, in growth's order."""
-    return tuple((o, order_label(o))
-                 for o in sorted({2.0, *(float(x) for x in machine.excitation_orders)} - {1.0}))
-
-
-# An envelope line needs this much prominence over the envelope spectrum's floor before it
-# counts as a defect line (common practice: a line well clear of the noise, ~15 dB).
-BEARING_NOISE_DB = 15.0
-
-
-def _features(analysis: ReadingAnalysis, machine: Machine,
-              orders: tuple[tuple[float, str], ...] | None = None) -> list[tuple[str, float, str, bool]]:
-    """(name, value, unit, speed dependent) of the growth features present in ``analysis``;
-    ``orders`` is :func:`_growth_orders` of ``machine`` when the caller keeps it."""
-    out: list[tuple[str, float, str, bool]] = [
-        ("overall", float(analysis.overall_velocity_mm_s_rms), "mm/s RMS", True)
-    ]
-    # Order amplitudes by their order, looked up exactly first (the analysis computes the
-    # machine's own orders) and by ReadingAnalysis.order's tolerance otherwise.
-    by_order = {o.order: o for o in analysis.orders}
-    one = by_order.get(1.0) or analysis.order(1.0)
-    if one is not None:
-        out.append(("1x", float(one.velocity_mm_s), "mm/s peak", True))
-    if math.isfinite(analysis.one_x_normalised):
-        out.append(("1x_norm", float(analysis.one_x_normalised), "mm/s peak per Hz^2", False))
-    for o, name in (_growth_orders(machine) if orders is None else orders):
-        oa = by_order.get(o) or analysis.order(o)
-        if oa is not None:
-            out.append((name, float(oa.velocity_mm_s), "mm/s peak", True))
-    bearing = analysis.extra.get("bearing") if analysis.extra else None
-    if bearing:
-        # The envelope line over the envelope spectrum's floor (linear), not the line's
-        # amplitude: the demodulation band may move between readings, the prominence
-        # hardly does (monitor/analysis/bearings.py). A defect shows as this ratio growing against
-        # its own baseline.
-        # Lines less prominent than BEARING_NOISE_DB are envelope noise: clamping them there
-        # keeps a healthy bearing's baseline flat, so only a line that stands out grows.
-        for defect, db in bearing.get("indicator_db", {}).items():
-            if db is not None and math.isfinite(db):
-                prominence = 10.0 ** (max(db, BEARING_NOISE_DB) / 20.0)
-                out.append((f"bearing_{defect}", prominence, "line / floor", False))
-    return out
 
 
 class MachineEvaluator:
@@ -367,63 +131,23 @@ class MachineEvaluator:
         self.settings = validate_machine(machine)
         s = self.settings
         self.engine = AlarmEngine(s.persistence)
-        self._h = s.hysteresis_pct / 100.0
+        self._rules = GrowthRules.from_settings(s)
+        self._resonance = ResonanceWatch(machine, s)
         self._baselines: dict[tuple[str, str], Baseline] = {}
         self._trends: dict[tuple[str, str], TrendWindow] = {}
         self._ignored: dict[str, dict[str, int]] = {}
-        self._speed: deque[tuple[float, float]] = deque(maxlen=s.speed_history)
         self._last_ts: dict[str, float] = {}
         self._intervals: dict[str, deque[float]] = {}
         self._keys: dict[tuple[str | None, str, str], AlarmKey] = {}
-        self._orders = _growth_orders(machine)
-        # Per point: feature name -> (baseline, trend window, alarm key), the same objects
-        # as in _baselines/_trends, so a reading finds all three with one lookup.
-        self._slots: dict[str, dict[str, tuple[Baseline, TrendWindow, AlarmKey]]] = {}
-        self._ratio_limits = tuple((float(r), f"{r:g}x baseline") for r in s.growth_ratios)
-        self._grid = MarginGrid(machine, approach_factor=s.approach_factor,
-                                machine_default_pct=s.required_margin_pct)
-        self._res_seen: set[int] = set()  # margin rows that ever fed the alarm engine
-        self._res_order: list[int] = []  # the same, ascending
+        self._orders = growth_orders(machine)
+        # Per point: feature name -> its slot, the same objects as in _baselines/_trends,
+        # so a reading finds all three with one lookup.
+        self._slots: dict[str, dict[str, _Slot]] = {}
         self._growth_fed: set[AlarmKey] = set()  # growth keys that ever fed the engine
         self._fault_seen: set[str] = set()  # points whose block checks ever fed the engine
         # Whether every open alarm is known to fit this registry entry (a fresh evaluator
         # has none; a restored one is checked by close_orphaned_alarms).
         self._orphans_checked = True
-        # Excitation frequencies (Hz) between which each (mode, excitation) pair can be
-        # near its band (margin inside the approach band with hysteresis), widened by a
-        # part in 10^9 so rounding never hides a pair (a stray candidate only costs the
-        # exact computation); readings whose excitations lie
-        # outside every such window skip the margin arrays altogether.
-        g = self._grid
-        widest = g.approach_factor * (1.0 + self._h) / 100.0 * (1.0 + 1e-9)
-        self._near_lo = g.mode_hz * (1.0 - g.req_above * widest - 1e-9)
-        self._near_hi = g.mode_hz * (1.0 + g.req_below * widest + 1e-9)
-        # Per flat pair (mode-major): mode Hz, order, fixed Hz, required % below/above.
-        self._pairs = [(float(g.mode_hz[i, 0]), float(g.order_arr[j]), float(g.fixed_arr[j]),
-                        float(g.req_below[i, 0]), float(g.req_above[i, 0]))
-                       for i in range(len(g.modes)) for j in range(g.n_exc)]
-        # The same windows as running-speed intervals, widened again by a part in 10^9:
-        # between two consecutive interval ends the candidate set does not change, so a
-        # reading finds its candidates by one bisection instead of array arithmetic.
-        always: list[int] = []
-        spans: list[tuple[float, float, int]] = []
-        for k, (_, order, fixed, _, _) in enumerate(self._pairs):
-            lo = float(self._near_lo[k // g.n_exc, 0])
-            hi = float(self._near_hi[k // g.n_exc, 0])
-            if order == 0.0:
-                if lo < fixed < hi:
-                    always.append(k)
-                continue
-            a, b = (lo - fixed) / order, (hi - fixed) / order
-            spans.append((a - 1e-9 * abs(a) - 1e-12, b + 1e-9 * abs(b) + 1e-12, k))
-        self._res_keys = [self._key(None, "resonance_proximity", subj) for subj in g.subjects]
-        self._res_index = {subj: k for k, subj in enumerate(g.subjects)}
-        self._pair_zetas = [g.zetas[k // g.n_exc] for k in range(len(self._pairs))]
-        self._cand_edges = sorted({e for a, b, _ in spans for e in (a, b)})
-        edges = [-math.inf, *self._cand_edges, math.inf]
-        self._cand_sets = [
-            sorted(always + [k for a, b, k in spans if a <= edges[i] and b >= edges[i + 1]])
-            for i in range(len(edges) - 1)]
         self._limits = {p.id: zone_limits(machine.machine_class, machine.limits_mm_s, p.limits_mm_s)
                         for p in machine.points}
 
@@ -458,20 +182,20 @@ class MachineEvaluator:
         inside: list[str] = []
         if speed is not None and math.isfinite(speed) and speed > 0:
             if not suppressed:
-                inside, approach, t = self._speed_value(ts, speed, rid)
+                inside, approach, t = self._resonance.at_speed(self.engine, ts, speed, rid)
                 trans += t
-            margins = MarginRows(self._grid, speed_hz=speed)
+            margins = self._resonance.rows(speed)
 
         overall = zone = None
         feats: Sequence[FeatureEvaluation] = ()
-        ignored: str | None = None
+        ignored: Ignored | None = None
         if analysis is not None:
             overall = float(analysis.overall_velocity_mm_s_rms)
             zone = zone_of(overall, limits) if math.isfinite(overall) and overall >= 0 else None
             if not health.ok:
-                ignored = "sensor fault: " + ", ".join(health.checks)
+                ignored = Ignored("sensor fault", health.checks)
             elif inside:
-                    ignored = "resonance band: " + ", ".join(inside)
+                ignored = Ignored("resonance band", tuple(inside))
             feats, t = self._growth(analysis, point.id, limits, ignored)
             trans += t
         # Every field set at once, past the frozen dataclass's __init__ (one
@@ -480,7 +204,8 @@ class MachineEvaluator:
         out.__dict__.update(
             machine=self.machine.id, point=point.id, ts=ts, reading_id=rid, speed_hz=speed,
             overall_velocity_mm_s_rms=overall, zone=zone, zone_limits=limits, margins=margins,
-            approach=approach, features=feats, health=health, growth_ignored=ignored,
+            approach=approach, features=feats, health=health,
+            growth_ignored=None if ignored is None else ignored.text(),
             machine_alarms_suppressed=suppressed, transitions=tuple(trans),
         )
         return out
@@ -492,7 +217,7 @@ class MachineEvaluator:
         sp = float(reading.speed_hz)
         if not (math.isfinite(sp) and sp > 0):
             raise ValueError(f"speed_hz must be a positive finite speed, got {reading.speed_hz!r}.")
-        return self._speed_value(float(reading.ts), sp, None)[2]
+        return self._resonance.at_speed(self.engine, float(reading.ts), sp, None).transitions
 
     def observe_mode_findings(self, findings: Sequence[ModeShift], ts: float, *, point: str | None = None,
                               evidence: Mapping[str, Any] | None = None) -> list[Transition]:
@@ -515,7 +240,7 @@ class MachineEvaluator:
                 raise ValueError(f"finding names mode {f.mode!r}, which machine {self.machine.id!r} does not have.")
             if f.status == "not_found":
                 continue
-            level = None
+            level: Severity | None = None
             if f.status == "shifted":
                 level = "alert" if abs(f.shift_pct or 0.0) > 2.0 * f.tolerance_pct else "advisory"
             ev = {**f.to_json(), **(evidence or {})}
@@ -525,7 +250,8 @@ class MachineEvaluator:
 
     def margins_at(self, speed_hz: float) -> tuple[MarginRow, ...]:
         """The margin table at any running speed (Hz), e.g. for a resonance map."""
-        return self._grid.rows(self._grid.compute(speed_hz))
+        grid = self._resonance.grid
+        return grid.rows(grid.compute(speed_hz))
 
     def check_stale(self, now: float) -> list[Transition]:
         """Raise ``sensor_fault``/``stale`` for points silent for ``stale_intervals``
@@ -556,7 +282,7 @@ class MachineEvaluator:
                 b.restart(ts)
                 self._trends[(pid, name)].clear()
 
-    def active_alarms(self) -> list[dict]:
+    def active_alarms(self) -> list[dict[str, Any]]:
         """JSON of every alarm not cleared."""
         return [a.to_json() for a in self.engine.active()]
 
@@ -569,7 +295,7 @@ class MachineEvaluator:
         if key.point is not None and key.point not in self._limits:
             return POINT_RETIRED
         if key.kind == "resonance_proximity":
-            if key.subject in self._res_index:
+            if key.subject in self._resonance.index:
                 return None
             mode = key.subject.rpartition("@")[0]
             return EXCITATION_REMOVED if any(m.name == mode for m in self.machine.modes) else MODE_REMOVED
@@ -579,7 +305,7 @@ class MachineEvaluator:
             # An order feature of an order no longer excited; the fixed features and the
             # bearing lines (present as the analysis finds them) stay.
             name = key.subject
-            if name.endswith("x") and name not in ("1x", *(n for _, n in self._orders)):
+            if name.endswith("x") and name not in ("1x", *(f.name for _, f in self._orders)):
                 return EXCITATION_REMOVED
         return None
 
@@ -608,13 +334,14 @@ class MachineEvaluator:
 
     # ------------------------------------------------------------------ persistence
 
-    def snapshot(self) -> dict:
+    def snapshot(self) -> dict[str, Any]:
         """JSON-able state of this machine's detection, exact to the bit: non-finite
         floats as tagged strings (:mod:`monitor.detection.state_json`), format
         :data:`~monitor.detection.state_json.STATE_FORMAT` (docs/store.md)."""
-        speed = [list(x) for x in self._speed]
-        if not math.isfinite(sum(t + v for t, v in self._speed)):  # rare: tag what is not finite
-            speed = [floats_out(x) for x in self._speed]
+        speeds = self._resonance.speeds
+        speed: list[list[float]] | list[list[float | str]] = [list(x) for x in speeds]
+        if not math.isfinite(sum(t + v for t, v in speeds)):  # rare: tag what is not finite
+            speed = [floats_out(x) for x in speeds]
         return {
             "format": STATE_FORMAT,
             "machine": self.machine.id,
@@ -650,32 +377,29 @@ class MachineEvaluator:
         for p, f, w in data.get("trends", []):
             ev._trends[(p, f)] = TrendWindow.restore(w)
         ev._ignored = {p: dict(c) for p, c in data.get("ignored", {}).items()}
-        ev._speed.extend(tuple(floats_in(x)) for x in data.get("speed", []))
+        ev._resonance.speeds.extend((t, v) for t, v in (floats_in(x) for x in data.get("speed", [])))
         points = ev._limits
-        ev._last_ts = {p: float_in(t) for p, t in data.get("last_ts", {}).items() if p in points}
+        ev._last_ts = {p: number_in(t, f"last_ts {p}") for p, t in data.get("last_ts", {}).items()
+                       if p in points}
         ev._intervals = {p: deque(floats_in(v), maxlen=10) for p, v in data.get("intervals", {}).items()
                          if p in points}
-        index = ev._res_index
         ev._fault_seen = {k.point for k in ev.engine.alarm_keys()
                           if k.kind == "sensor_fault" and k.subject != "stale" and k.point is not None}
-        ev._res_seen = {index[k.subject] for k in ev.engine.alarm_keys()
-                        if k.kind == "resonance_proximity" and k.subject in index}
-        ev._res_order = sorted(ev._res_seen)
+        ev._resonance.restore(ev.engine.alarm_keys())
         ev._growth_fed = {k for k in ev.engine.alarm_keys() if k.kind == "amplitude_growth"}
         ev._orphans_checked = not ev.engine.active()
         return ev
 
     # ------------------------------------------------------------------ internals
 
-    def _key(self, point: str | None, kind: str, subject: str) -> AlarmKey:
+    def _key(self, point: str | None, kind: AlarmKind, subject: str) -> AlarmKey:
         k = (point, kind, subject)
         key = self._keys.get(k)
         if key is None:
             key = self._keys[k] = AlarmKey(self.machine.id, point, kind, subject)
         return key
 
-    def _slot(self, pid: str, name: str, speed_band: float | None
-              ) -> tuple[Baseline, TrendWindow, AlarmKey]:
+    def _slot(self, pid: str, name: str, speed_band: float | None) -> _Slot:
         """The baseline, trend window and growth alarm key of one feature of a point,
         made on the feature's first reading (or taken from a restored snapshot)."""
         s = self.settings
@@ -687,7 +411,7 @@ class MachineEvaluator:
         if win is None:
             win = self._trends[k] = TrendWindow(
                 s.trend_window, s.trend_min_readings, s.trend_refit_every, speed_band)
-        return base, win, self._key(pid, "amplitude_growth", name)
+        return _Slot(base, win, self._key(pid, "amplitude_growth", name))
 
     def _expected_interval(self, pid: str) -> float | None:
         if self.settings.reading_interval_s is not None:
@@ -727,480 +451,84 @@ class MachineEvaluator:
             f = flagged.get(check)
             if f is None and self.engine.alarm(key) is None:
                 continue  # nothing to count for a check that never failed
-            lvl = sev if f is not None else None
+            lvl: Severity | None = sev if f is not None else None
             ev = {"check": check, "message": f.message if f else "check passes",
                   "value": f.value if f else None, "reading_id": rid}
             out += self.engine.update(key, ts, lvl, lvl, ev, rid)
         return out
 
-    def _pair(self, k: int, speed: float) -> tuple[float, float, float, float]:
-        """(margin %, required %, approach %, frequency ratio) of flat pair ``k``: the
-        arithmetic of :meth:`MarginGrid.compute` on one pair (same IEEE operations, so
-        the same numbers)."""
-        fm, order, fixed, rb, ra = self._pairs[k]
-        exc = order * speed + fixed
-        rq = rb if fm <= exc else ra
-        return abs(exc - fm) / fm * 100.0, rq, rq * self._grid.approach_factor, exc / fm
-
-    def _speed_value(self, ts: float, speed: float, rid: str | None
-                     ) -> tuple[list[str], tuple[ApproachForecast, ...], list[Transition]]:
-        """Resonance alarms at a new speed value: (subjects with an excitation inside
-        their required band, approach forecasts, transitions)."""
-        grid = self._grid
-        h1 = 1.0 + self._h
-        inside: list[str] = []
-        near: dict[int, tuple[float, float, float, float]] = {}
-        pairs = self._pairs
-        af = grid.approach_factor
-        # The pairs whose excitation lies in the (widened) window where it can be near its
-        # band; every other pair holds no condition at this speed.
-        for k in self._cand_sets[bisect.bisect_right(self._cand_edges, speed)]:
-            # _pair(k, speed), inlined (the same operations).
-            fm, order, fixed, rb, ra = pairs[k]
-            exc = order * speed + fixed
-            rq = rb if fm <= exc else ra
-            m = abs(exc - fm) / fm * 100.0
-            ap = rq * af
-            if rq > 0 and m < ap * h1:
-                near[k] = (m, rq, ap, exc / fm)
-                if m < rq:
-                    inside.append(grid.subjects[k])
-        if self._speed and ts <= self._speed[-1][0]:
-            return inside, (), []  # the same instant seen from another point: count it once
-        self._speed.append((ts, speed))
-        s = self.settings
-        approach: tuple[ApproachForecast, ...] = ()
-        # A steady speed has no ramp to forecast (approach_forecasts' own first test, on
-        # the speeds alone: most readings stop here).
-        if len(self._speed) >= 5 and not speed_is_steady([p[1] for p in self._speed]):
-            t, v = zip(*self._speed, strict=True)
-            approach = tuple(a for a in approach_forecasts(
-                self.machine, t, v, machine_default_pct=s.required_margin_pct)
-                if a.seconds <= s.approach_warning_s * h1)
-        soon = {a.subject: a for a in approach}
-        # Only rows near a band, forecast to enter one, or with alarm history need the
-        # engine; the rest hold no condition and have nothing to count.
-        if soon or not near.keys() <= self._res_seen:
-            self._res_seen |= near.keys()
-            if soon:
-                self._res_seen |= {k for k, subj in enumerate(grid.subjects) if subj in soon}
-            self._res_order = sorted(self._res_seen)
-        out: list[Transition] = []
-        state: list[MarginState] = []  # the arrays, built only for a transition's evidence
-        update = self.engine.update_ranked
-        warn_s = s.approach_warning_s
-        for k in self._res_order:
-            key = self._res_keys[k]
-            p = near.get(k)
-            m, rq, ap, ratio = p if p is not None else self._pair(k, speed)
-            if rq <= 0:
-                out += update(key, ts, 0, 0, {"reason": "no margin required"}, rid)
-                continue
-            fc = soon.get(key.subject) if soon else None
-            # Ranks as severity_rank: 1 advisory, 2 alert, 3 severe.
-            r = hl = 0
-            if fc is not None:
-                hl = 1
-                if fc.seconds <= warn_s:
-                    r = 1
-            if m < ap:
-                r = 1
-            if m < ap * h1:
-                hl = 1
-            if m < rq:
-                r = 2
-            if m < rq * h1:
-                hl = 2
-                # Inside the half-power band the excitation sits on the resonance peak.
-                zeta = self._pair_zetas[k]
-                if zeta is not None:
-                    dev = abs(ratio - 1.0)
-                    if m < rq and dev <= zeta:
-                        r = 3
-                    if dev <= zeta * h1:
-                        hl = 3
-            out += update(key, ts, r, hl,
-                          functools.partial(_resonance_evidence, speed, rid, grid, state, k, fc), rid)
-        return inside, approach, out
-
-    def _growth(self, analysis: ReadingAnalysis, pid: str, limits: ZoneLimits, ignored: str | None
+    def _growth(self, analysis: ReadingAnalysis, pid: str, limits: ZoneLimits, ignored: Ignored | None
                 ) -> tuple[FeatureRows, list[Transition]]:
-        s = self.settings
-        h = self._h
-        horizon_s = s.trend_horizon_days * 86400.0
+        """Amplitude-growth alarms of one reading of point ``pid``: its features fed to
+        their baselines and trend windows (unless the reading is ``ignored``), judged by
+        :class:`~monitor.detection.growth_rules.GrowthRules`, and the levels given to the
+        engine. The features' evaluations are built only when something reads them."""
         ts = float(analysis.ts)
         speed = float(analysis.speed_hz)
         rid = analysis.reading_id
         counts = self._ignored.setdefault(pid, {})
         if ignored is not None:
-            reason = ignored.split(":")[0]
-            counts[reason] = counts.get(reason, 0) + 1
-        band = s.baseline_speed_band_pct / 100.0
+            counts[ignored.reason] = counts.get(ignored.reason, 0) + 1
+        judge = self._rules.judge
+        verdicts: list[FeatureVerdict] = []
+        due: list[tuple[int, AlarmKey]] = []
+        for feature, value, slot, comparable in self._feed(analysis, pid, ts, speed, ignored is None):
+            trend = slot.window.trend() if ignored is None else None
+            verdict = judge(feature, value, slot.baseline, comparable, speed, trend, limits)
+            verdicts.append(verdict)
+            # A key that never fed the engine has no alarm to count down.
+            if ignored is None and (verdict.raise_rank or verdict.hold_rank or (
+                    slot.key in self._growth_fed and self.engine.alarm(slot.key) is not None)):
+                due.append((len(verdicts) - 1, slot.key))
+                self._growth_fed.add(slot.key)
+        features = FeatureRows(verdicts)
+        out: list[Transition] = []
+        for i, key in due:
+            evidence = functools.partial(_growth_evidence, rid, speed, limits, features, i, counts)
+            out += self.engine.update_ranked(key, ts, verdicts[i].raise_rank, verdicts[i].hold_rank,
+                                             evidence, rid)
+        if out:
+            counts.clear()  # reported in these transitions' evidence
+        return features, out
+
+    def _feed(self, analysis: ReadingAnalysis, pid: str, ts: float, speed: float, use: bool
+              ) -> list[tuple[Feature, float, _Slot, bool]]:
+        """The growth features of a reading of point ``pid`` at ``ts`` (epoch s) and
+        ``speed`` (Hz) with their slots, and whether each is comparable with its baseline
+        (the speed within the baseline's band). With ``use``, each finite value >= 0 is
+        fed to its baseline (while learning) and trend window, and the windows due are
+        refitted together; without, nothing is fed."""
+        band = self.settings.baseline_speed_band_pct / 100.0
         slots = self._slots.get(pid)
         if slots is None:
             slots = self._slots[pid] = {}
-        rows = []
+        fed: list[tuple[Feature, float, _Slot, bool]] = []
         due_fits: list[TrendWindow] = []
-        for name, value, unit, speed_dep in _features(analysis, self.machine, self._orders):
+        for feature, value in reading_features(analysis, self.machine, self._orders):
             if not (0.0 <= value < math.inf):  # finite and not negative (NaN fails too)
                 continue
-            slot = slots.get(name)
+            slot = slots.get(feature.name)
             if slot is None:
-                slot = slots[name] = self._slot(pid, name, band if speed_dep else None)
-            base, win, key = slot
+                slot = slots[feature.name] = self._slot(pid, feature.name, band if feature.speed_dependent else None)
             comparable = True
-            if ignored is None:
+            if use:
+                base = slot.baseline
                 if base.stats is None:
                     base.add(value, speed, ts)
-                bs = base.speed_hz
-                comparable = not (speed_dep and bs and abs(speed - bs) > band * bs)
-                if win.add(ts, value, speed):
-                    due_fits.append(win)
-            rows.append((name, value, unit, base, win, comparable, key))
+                base_speed = base.speed_hz
+                comparable = not (feature.speed_dependent and base_speed
+                                  and abs(speed - base_speed) > band * base_speed)
+                if slot.window.add(ts, value, speed):
+                    due_fits.append(slot.window)
+            fed.append((feature, value, slot, comparable))
         if due_fits:
             fit_due_windows(due_fits)
-        # Levels are decided here on plain floats; the FeatureEvaluation objects (and their
-        # words) are built only when something reads them (FeatureRows, a transition's
-        # evidence): most readings' features are never looked at.
-        r_adv, r_alert = s.growth_ratios
-        hold = 1.0 - h
-        r_adv_hold, r_alert_hold = r_adv * hold, r_alert * hold
-        ab, bc, cd = limits.ab, limits.bc, limits.cd
-        bc_hold, cd_hold = bc * hold, cd * hold
-        sigmas = s.baseline_sigmas
-        horizon_hold = horizon_s * (1 + h)
-        specs: list[tuple] = []
-        alarm = self.engine.alarm
-        fed = self._growth_fed
-        due: list[tuple[int, AlarmKey, int, int]] = []
-        ratio_limits = self._ratio_limits
-        for name, value, unit, base, win, comparable, key in rows:
-            st = base.stats
-            if st is None:
-                status: tuple = ("learning", len(base.values), base.size)
-                ratio = None
-            elif not comparable:
-                status = ("speed", speed, base.speed_hz)
-                ratio = None
-            else:
-                status = _READY
-                med = st.median
-                ratio = value / med if med > 0 else None
-            line = win.line() if ignored is None else None
-            # (raise rank, hold rank) from each rule; the worst of each wins. Ranks as
-            # severity_rank: 1 advisory, 2 alert, 3 severe.
-            rr = hr = 0
-            causes: list[tuple] = []
-            # Next limit: zone boundary for the overall level, baseline ratio limit otherwise.
-            lim_name = lim_val = None
-            if name == "overall":
-                if value <= ab:
-                    lim_name, lim_val, zr = "A/B", ab, 1
-                elif value <= bc:
-                    lim_name, lim_val, zr = "B/C", bc, 2
-                elif value <= cd:
-                    lim_name, lim_val, zr = "C/D", cd, 3
-                else:
-                    zr = 4
-                # Raise by the zone itself (a zone includes its upper boundary); hold by
-                # levels_above(value, {alert: B/C, severe: C/D}, h).
-                rr = 2 if zr == 3 else 3 if zr == 4 else 0
-                hr = 3 if value >= cd_hold else 2 if value >= bc_hold else 0
-                if rr or hr:
-                    causes.append(("zone", "ABCD"[zr - 1], value))
-            elif ratio is not None:
-                for r, r_name in ratio_limits:
-                    if value < r * med:
-                        lim_name, lim_val = r_name, r * med
-                        break
-            ttl = None
-            if line is not None and lim_val is not None:
-                # time_to_limit on the carried-forward line (same arithmetic).
-                slope, low, fitted = line
-                if fitted >= lim_val:
-                    ttl = 0.0
-                elif low > 0.0 and slope > 0:
-                    ttl = (lim_val - fitted) / slope
-            if ratio is not None:
-                r = 2 if ratio >= r_alert else 1 if ratio >= r_adv else 0
-                hl = 2 if ratio >= r_alert_hold else 1 if ratio >= r_adv_hold else 0
-                if r and value <= med + sigmas * st.sigma:
-                    r = 0  # within the baseline's own scatter
-                if r or hl:
-                    causes.append(("ratio", ratio))
-                    rr, hr = max(rr, r), max(hr, hl)
-            # Trend: only towards limits that matter (B/C and C/D, or a ratio limit).
-            if ttl is not None and lim_name != "A/B" and ttl <= horizon_hold:
-                r = 1 if ttl <= horizon_s else 0
-                causes.append(("trend", lim_name, ttl))
-                rr, hr = max(rr, r), max(hr, 1)
-            specs.append((name, value, unit, st, status, ratio,
-                          None if line is None else line[0] * 86400.0,
-                          lim_name, lim_val, ttl, _LEVELS[rr], _LEVELS[hr], causes))
-            # A key that never fed the engine has no alarm to count down.
-            if ignored is None and (rr or hr or (key in fed and alarm(key) is not None)):
-                due.append((len(specs) - 1, key, rr, hr))
-                fed.add(key)
-        feats = FeatureRows(specs)
-        out: list[Transition] = []
-        for i, key, rr, hr in due:
-            out += self.engine.update_ranked(
-                key, ts, rr, hr,
-                functools.partial(_growth_evidence, rid, speed, limits, feats, i, counts), rid)
-        if out:
-            counts.clear()  # reported in these transitions' evidence
-        return feats, out
+        return fed
 
 
-_LEVELS: tuple[str | None, ...] = (None, *SEVERITIES)
-_READY = ("ready",)
-_NO_MARGINS = MarginRows()
-
-
-def _feature_of(spec: tuple) -> FeatureEvaluation:
-    """The :class:`FeatureEvaluation` of one row of :meth:`MachineEvaluator._growth`."""
-    (name, value, unit, st, status, ratio, per_day, lim_name, lim_val, ttl,
-     raise_l, hold_l, parts) = spec
-    if status[0] == "learning":
-        words = f"learning {status[1]}/{status[2]}"
-    elif status[0] == "speed":
-        words = f"not comparable: speed {status[1]:.2f} Hz, baseline at {status[2]:.2f} Hz"
-    else:
-        words = "ready"
-    causes = []
-    for p in parts:
-        if p[0] == "zone":
-            causes.append(f"zone {p[1]} ({p[2]:.3g} mm/s RMS)")
-        elif p[0] == "ratio":
-            causes.append(f"{p[1]:.2f}x baseline")
-        else:
-            causes.append(f"{p[1]} in {p[2] / 86400.0:.1f} days at the current trend")
-    return FeatureEvaluation(
-        name=name, value=value, unit=unit,
-        baseline_median=st.median if st else None, baseline_mad=st.mad if st else None,
-        baseline_status=words, ratio=ratio, trend_per_day=per_day,
-        limit_name=lim_name, limit_value=lim_val, time_to_limit_s=ttl,
-        raise_level=raise_l, hold_level=hold_l, causes=tuple(causes),
-    )
-
-
-class FeatureRows(Sequence[FeatureEvaluation]):
-    """The growth features of one reading, each :class:`FeatureEvaluation` built on first
-    use. Behaves as a read-only sequence (``len``, indexing, iteration, equality with a
-    tuple); :meth:`get` finds one feature by name without building the others."""
-
-    __slots__ = ("_specs", "_made")
-
-    def __init__(self, specs: Sequence[tuple] = ()) -> None:
-        self._specs = list(specs)
-        self._made: list[FeatureEvaluation | None] = [None] * len(self._specs)
-
-    def _one(self, i: int) -> FeatureEvaluation:
-        fe = self._made[i]
-        if fe is None:
-            fe = self._made[i] = _feature_of(self._specs[i])
-        return fe
-
-    def names(self) -> tuple[str, ...]:
-        return tuple(sp[0] for sp in self._specs)
-
-    def get(self, name: str) -> FeatureEvaluation | None:
-        for i, sp in enumerate(self._specs):
-            if sp[0] == name:
-                return self._one(i)
-        return None
-
-    def __len__(self) -> int:
-        return len(self._specs)
-
-    def __getitem__(self, index):  # type: ignore[override]
-        if isinstance(index, slice):
-            return tuple(self)[index]
-        n = len(self._specs)
-        if not -n <= index < n:
-            raise IndexError("feature index out of range")
-        return self._one(index % n)
-
-    def __iter__(self):
-        return (self._one(i) for i in range(len(self._specs)))
-
-    def __eq__(self, other: object) -> bool:
-        if isinstance(other, FeatureRows | tuple | list):
-            return tuple(self) == tuple(other)
-        return NotImplemented
-
-    __hash__ = None  # type: ignore[assignment]
-
-    def __repr__(self) -> str:
-        return f"FeatureRows({', '.join(self.names())})"
-
-
-def _resonance_evidence(speed: float, rid: str | None, grid: MarginGrid, state: list[MarginState],
-                        k: int, fc: ApproachForecast | None) -> dict[str, Any]:
-    if not state:
-        state.append(grid.compute(speed))
-    ev = {"speed_hz": speed, "reading_id": rid, **grid.row(state[0], k).to_json()}
-    if fc is not None:
-        ev["approach"] = fc.to_json()
-    return ev
-
-
-def _growth_evidence(rid: str | None, speed: float, limits: ZoneLimits, feats: FeatureRows, i: int,
+def _growth_evidence(rid: str | None, speed: float, limits: ZoneLimits, features: FeatureRows, i: int,
                      counts: dict[str, int]) -> dict[str, Any]:
+    """A growth transition's evidence: the feature's evaluation and the readings growth
+    left out since the last growth transition, by reason."""
     return {"reading_id": rid, "speed_hz": speed, "zone_limits_mm_s": list(limits.as_tuple()),
-            **feats[i].to_json(), "ignored_readings": dict(counts)}
-
-
-def upgrade_snapshot(data: Mapping[str, Any]) -> Mapping[str, Any]:
-    """A :meth:`MachineEvaluator.snapshot` of any format in the current one
-    (:data:`~monitor.detection.state_json.STATE_FORMAT`); a current one is returned as it is.
-
-    Format 1 (no ``format`` key) was written through the store's JSON serialiser, which
-    turns NaN and infinities into ``null``. Where a ``null`` can only have been a
-    non-finite float it is read as NaN (the only non-finite value the code puts there):
-
-    - ``trends[*].fit``: slope, interval ends and fitted value (the interval ends are NaN
-      when a window's values are all tied);
-    - ``baselines[*].speeds``: a running speed the analysis gave as NaN.
-
-    Everywhere else a ``null`` is read as None, a value those fields hold in their own
-    right: a window's ``ref_speed`` (no reference yet) and ``speed_band`` (a speed-free
-    feature), a baseline's ``started_at``, an alarm's times, a stream's ``last_ts``, and
-    any evidence value. ``fit_ts`` null is read as 0.0 (its value before any fit). Fields
-    that hold finite numbers only (window times and values, baseline values, the speed
-    history, reading times and intervals) cannot hold ``null``; a snapshot where they do
-    is refused (ValueError naming the machine and the field). Evidence strings are
-    escaped as the current format writes them.
-    """
-    fmt = data.get("format", 1)
-    if fmt == STATE_FORMAT:
-        return data
-    machine = data.get("machine")
-    if fmt != 1:
-        raise ValueError(f"snapshot of machine {machine!r} has format {fmt!r}; this version reads "
-                         f"formats 1 to {STATE_FORMAT}.")
-
-    def finite_only(values: Any, field: str) -> Any:
-        if any(v is None for v in values):
-            raise ValueError(f"snapshot of machine {machine!r} (format 1): {field!r} holds null "
-                             "where only finite numbers belong.")
-        return values
-
-    nan = float_out(math.nan)
-    out = dict(data, format=STATE_FORMAT)
-    trends = []
-    for p, f, w in data.get("trends", []):
-        w = dict(w)
-        finite_only(w.get("ts", []), f"trends {p}/{f} ts")
-        finite_only(w.get("values", []), f"trends {p}/{f} values")
-        if w.get("fit") is not None:
-            w["fit"] = [nan if v is None else v for v in w["fit"][:4]] + list(w["fit"][4:])
-        if w.get("fit_ts", 0.0) is None:
-            w["fit_ts"] = 0.0
-        trends.append([p, f, w])
-    out["trends"] = trends
-    baselines = []
-    for p, f, b in data.get("baselines", []):
-        b = dict(b)
-        finite_only(b.get("values", []), f"baselines {p}/{f} values")
-        b["speeds"] = [nan if v is None else v for v in b.get("speeds", [])]
-        baselines.append([p, f, b])
-    out["baselines"] = baselines
-    engine = dict(data["engine"])
-    streams = []
-    for st in engine.get("streams", []):
-        st = dict(st)
-        if st.get("alarm"):
-            st["alarm"] = dict(st["alarm"], evidence=value_out(st["alarm"].get("evidence") or {}))
-        streams.append(st)
-    engine["streams"] = streams
-    out["engine"] = engine
-    for x in data.get("speed", []):
-        finite_only(x, "speed")
-    finite_only(data.get("last_ts", {}).values(), "last_ts")
-    for p, v in data.get("intervals", {}).items():
-        finite_only(v, f"intervals {p}")
-    return out
-
-
-def evaluator_from_state(machine: Machine, state: Any) -> tuple[MachineEvaluator, int]:
-    """The evaluator of ``machine`` and its version from a stored detector state
-    (:func:`stored_state`), or a fresh evaluator at version 0 when nothing usable is
-    stored."""
-    if isinstance(state, dict) and "evaluator" in state:
-        return MachineEvaluator.restore(machine, state["evaluator"]), int(state.get("version") or 0)
-    return MachineEvaluator(machine), 0
-
-
-def retire_state(state: Any, ts: float) -> tuple[dict[str, Any], list[Transition]]:
-    """The stored detector state (:func:`stored_state`) of a machine retired from the
-    registry, and the transitions that closed its alarms: every live alarm is cleared at
-    ``ts`` (epoch s), evidence reason :data:`MACHINE_RETIRED`, in key order. The rest of
-    the state is kept as it was (should the machine come back, its baselines and trends
-    are there); the version moves on by one and ``retired`` marks the retirement as done,
-    so it is done once."""
-    if not (isinstance(state, Mapping) and isinstance(state.get("evaluator"), Mapping)):
-        return {"version": 1, "retired": True}, []
-    snap = upgrade_snapshot(state["evaluator"])
-    engine = AlarmEngine.restore(dict(snap["engine"]))
-    machine = snap.get("machine")
-    out: list[Transition] = []
-    for key in sorted(engine.alarm_keys(), key=AlarmKey.text):
-        out += engine.end(key, float(ts), {
-            "reason": MACHINE_RETIRED,
-            "message": f"machine {machine!r} is no longer in the registry; nothing evaluates this alarm any more"})
-    return {"version": int(state.get("version") or 0) + 1, "retired": True,
-            "evaluator": dict(snap, engine=engine.snapshot())}, out
-
-
-def stored_state(evaluator: MachineEvaluator, version: int) -> dict[str, Any]:
-    """The detector state of one machine as stored (``detector_state.state``): its
-    ``version`` (moved on by one at each write, so a process holding an older copy knows
-    to reload) and the evaluator's snapshot."""
-    return {"version": version, "evaluator": evaluator.snapshot()}
-
-
-class Detector:
-    """State detection for every machine of a registry (one :class:`MachineEvaluator` each)."""
-
-    def __init__(self, registry: Registry) -> None:
-        self.evaluators = {m.id: MachineEvaluator(m) for m in registry.machines}
-
-    def evaluator(self, machine_id: str) -> MachineEvaluator:
-        try:
-            return self.evaluators[machine_id]
-        except KeyError:
-            raise KeyError(f"no machine {machine_id!r} in the registry") from None
-
-    def evaluate(self, analysis: ReadingAnalysis | None, waveform: Waveform | None = None) -> ReadingEvaluation:
-        src = analysis if analysis is not None else waveform
-        if src is None:
-            raise ValueError("evaluate needs an analysis or a waveform, got neither.")
-        return self.evaluator(src.machine).evaluate(analysis, waveform)
-
-    def observe_speed(self, reading: SpeedReading) -> list[Transition]:
-        return self.evaluator(reading.machine).observe_speed(reading)
-
-    def check_stale(self, now: float) -> list[Transition]:
-        return [t for e in self.evaluators.values() for t in e.check_stale(now)]
-
-    def acknowledge(self, alarm_id: str, user: str, comment: str, ts: float) -> Transition:
-        for e in self.evaluators.values():
-            if e.engine.find(alarm_id) is not None:
-                return e.acknowledge(alarm_id, user, comment, ts)
-        raise KeyError(f"no alarm {alarm_id!r}")
-
-    def active_alarms(self) -> list[dict]:
-        return [a for e in self.evaluators.values() for a in e.active_alarms()]
-
-    def snapshot(self) -> dict:
-        return {"machines": {mid: e.snapshot() for mid, e in self.evaluators.items()}}
-
-    @classmethod
-    def restore(cls, registry: Registry, data: Mapping[str, Any]) -> Detector:
-        """Rebuild; machines new to the registry start fresh, removed ones are dropped."""
-        d = cls(registry)
-        for mid, snap in data.get("machines", {}).items():
-            if mid in d.evaluators:
-                d.evaluators[mid] = MachineEvaluator.restore(registry.machine(mid), snap)
-        return d
+            **features[i].to_json(), "ignored_readings": dict(counts)}

@@ -449,22 +449,6 @@ class TrendWindow:
         return Trend(f.slope_per_s, f.low_per_s, f.high_per_s,
                      f.fitted_now + f.slope_per_s * (self.ts[-1] - self._fit_ts), f.n)
 
-    def line(self) -> tuple[float, float, float] | None:
-        """``(slope_per_s, low_per_s, fitted_now)`` of :meth:`trend` without building a
-        :class:`Trend` (the same numbers; detection calls this for every feature)."""
-        ts = self.ts
-        if len(ts) < self.min_readings:
-            return None
-        f = self._fit
-        if f is None or self._since_fit >= self.refit_every:  # needs_fit, inlined
-            self.set_fit(theil_sen_trend(list(ts), list(self.values)))
-            f = self._fit
-            assert f is not None
-        last = ts[-1]
-        if last == self._fit_ts:
-            return f.slope_per_s, f.low_per_s, f.fitted_now
-        return f.slope_per_s, f.low_per_s, f.fitted_now + f.slope_per_s * (last - self._fit_ts)
-
     def snapshot(self) -> dict:
         """Exact JSON data (:mod:`monitor.detection.state_json`). ``ts`` and ``values`` are finite
         (:meth:`add` admits nothing else) and go as they are; the fit's interval ends are

@@ -23,7 +23,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, Literal
 
 import numpy as np
 
@@ -32,7 +32,10 @@ from monitor.detection.kernels import block_scan, strided_order_stats
 from monitor.model.readings import Waveform
 from monitor.model.registry import Point
 
-CHECKS = ("flat_line", "clipping", "spikes", "dropouts", "sample_rate", "unit", "stale")
+#: The checks, by the names alarms and stored evaluations give them.
+HealthCheck = Literal["flat_line", "clipping", "spikes", "dropouts", "sample_rate", "unit", "stale"]
+CHECKS: tuple[HealthCheck, ...] = ("flat_line", "clipping", "spikes", "dropouts", "sample_rate", "unit",
+                                   "stale")
 
 
 @dataclass(frozen=True)
@@ -53,7 +56,7 @@ class HealthFlag:
     """One failed check: ``check`` (one of :data:`CHECKS`), a plain ``message`` and the
     measured ``value`` behind it."""
 
-    check: str
+    check: HealthCheck
     message: str
     value: float | str | None = None
 
@@ -72,7 +75,7 @@ class HealthReport:
         return not self.flags
 
     @property
-    def checks(self) -> tuple[str, ...]:
+    def checks(self) -> tuple[HealthCheck, ...]:
         return tuple(f.check for f in self.flags)
 
     def to_json(self) -> dict:

@@ -173,12 +173,13 @@ def strided_order_stats(x, step, ranks):  # pragma: no cover - compiled
 
 
 def warm_up() -> None:
-    """Compile (or load from the cache) every kernel now, with a tiny input: the first
+    """Compile (or load from the cache) every kernel now, with a tiny input of the types
+    detection passes (float64 arrays, int64 index arrays, Python ints): the first
     compilation takes several seconds, which a service should spend at its start rather
     than in the middle of a batch."""
-    from monitor.detection.growth import _theil_sen_increasing
-
     x = np.arange(4, dtype=float)
-    _theil_sen_increasing(x, np.array([[0.0, 1.0, 3.0, 2.0]]))
+    i, j = (a.astype(np.int64) for a in np.triu_indices(x.size, 1))
+    ranks = np.array([0, 2, 3, 5], dtype=np.int64)
+    theil_sen_rows(x, np.array([[0.0, 1.0, 3.0, 2.0]]), i, j, ranks, np.array([2, 3], dtype=np.int64), 0, 5)
     block_scan(x)
     strided_order_stats(x, 1, np.array([0, 2], dtype=np.int64))

@@ -3,13 +3,14 @@
 For every mode of a machine and every excitation (each configured order of running speed,
 and 2x line frequency on motors) this module gives the separation margin in percent of the
 mode frequency, which side of the excitation the mode lies on, the margin required for the
-mode, the single-degree-of-freedom dynamic amplification at the current frequency ratio,
-and, from a speed trend, how long until an excitation enters a required band.
+mode and the single-degree-of-freedom dynamic amplification at the current frequency
+ratio. How long a ramping speed takes to bring an excitation into a required band is
+:mod:`monitor.detection.approach`.
 
 Conventions
 -----------
 - Separation margin ``SM = |f_exc - f_mode| / f_mode * 100`` (percent of the mode
-  frequency, the convention of DESIGN.md; API 684 leaves open which speed to divide by).
+  frequency, our convention, docs/alarms.md; API 684 leaves open which speed to divide by).
 - ``side`` says where the MODE lies relative to the excitation: ``'below'`` (mode below the
   excitation, the API 684 case of a critical below minimum operating speed) or ``'above'``
   (mode above the excitation, a critical above maximum continuous speed).
@@ -26,13 +27,12 @@ bandwidth (AF = Q ~= 1 / (2 zeta) for light damping).
 from __future__ import annotations
 
 import math
-from collections.abc import Iterable, Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
-from typing import Literal
+from typing import Any, Literal, NamedTuple
 
 import numpy as np
 
-from monitor.detection.growth import theil_sen
 from monitor.model.registry import Machine, Mode
 
 #: Required margin used when a mode has no amplification factor, no damping ratio and no
@@ -102,8 +102,14 @@ def sdof_amplification(frequency_ratio: float | np.ndarray, damping_ratio: float
     r = np.asarray(frequency_ratio, dtype=float)
     if np.any(~np.isfinite(r)) or np.any(r < 0):
         raise ValueError(f"frequency_ratio must be finite and >= 0, got {frequency_ratio!r}.")
-    h = 1.0 / np.sqrt((1.0 - r * r) ** 2 + (2.0 * z * r) ** 2)
+    h = _amplification(r, z)
     return float(h) if h.ndim == 0 else h
+
+
+def _amplification(r: Any, z: float, sqrt: Callable[[Any], Any] = np.sqrt) -> Any:
+    """:func:`sdof_amplification` without its checks: of an array ``r`` with numpy's
+    square root, of a float with ``sqrt=math.sqrt`` (cheaper per row, the same value)."""
+    return 1.0 / sqrt((1.0 - r * r) ** 2 + (2.0 * z * r) ** 2)
 
 
 @dataclass(frozen=True)
@@ -149,6 +155,12 @@ class RequiredMargin:
 
     def for_side(self, side: Side) -> float:
         return self.below_pct if side == "below" else self.above_pct
+
+    def band(self, mode_hz: float) -> tuple[float, float]:
+        """The required band of a mode at ``mode_hz`` (Hz): excitation frequencies (Hz)
+        from ``mode_hz * (1 - above_pct / 100)`` to ``mode_hz * (1 + below_pct / 100)``
+        (an excitation above the mode needs the ``below`` margin)."""
+        return mode_hz * (1.0 - self.above_pct / 100.0), mode_hz * (1.0 + self.below_pct / 100.0)
 
 
 def required_margin(mode: Mode, machine_default_pct: float | None = None) -> RequiredMargin:
@@ -271,8 +283,20 @@ def separation_margin(excitation_hz: float, mode_hz: float) -> tuple[float, Side
         raise ValueError(f"mode_hz must be a positive finite frequency, got {mode_hz!r}.")
     if not (math.isfinite(excitation_hz) and excitation_hz >= 0):
         raise ValueError(f"excitation_hz must be finite and >= 0, got {excitation_hz!r}.")
-    side: Side = "below" if mode_hz <= excitation_hz else "above"
-    return abs(excitation_hz - mode_hz) / mode_hz * 100.0, side
+    side: Side = "below" if mode_below(excitation_hz, mode_hz) else "above"
+    return margin_pct(excitation_hz, mode_hz), side
+
+
+def margin_pct(excitation_hz: Any, mode_hz: Any) -> Any:
+    """Separation margin ``|f_exc - f_mode| / f_mode * 100``, percent of the mode frequency
+    (Hz in; floats or numpy arrays alike, unchecked: :func:`separation_margin` checks)."""
+    return abs(excitation_hz - mode_hz) / mode_hz * 100.0
+
+
+def mode_below(excitation_hz: Any, mode_hz: Any) -> Any:
+    """Whether the mode lies below the excitation (a mode at the excitation counts as
+    below), so that the mode's ``below`` required margin applies (floats or arrays)."""
+    return mode_hz <= excitation_hz
 
 
 def margin_table(
@@ -314,6 +338,29 @@ class MarginState:
 _STATUS: tuple[Status, ...] = ("clear", "approach", "inside")
 
 
+class _Pair(NamedTuple):
+    """One (mode, excitation) pair of a :class:`MarginGrid`: mode frequency (Hz), order
+    of running speed (0 for a fixed excitation), fixed frequency (Hz), required margins
+    (percent) with the mode below and above the excitation."""
+
+    mode_hz: float
+    order: float
+    fixed_hz: float
+    required_below_pct: float
+    required_above_pct: float
+
+
+class PairMargin(NamedTuple):
+    """The margin of one pair at one speed (:meth:`MarginGrid.pair`): percent of the mode
+    frequency, the required and approach margins on its side (percent), and the
+    excitation over the mode frequency."""
+
+    margin_pct: float
+    required_pct: float
+    approach_pct: float
+    frequency_ratio: float
+
+
 class MarginGrid:
     """The margins of one machine, set up once and evaluated per speed with numpy.
 
@@ -346,6 +393,10 @@ class MarginGrid:
         self.fixed_arr = np.array(fixed)
         self.n_exc = len(self.labels)
         self.subjects = [f"{m.name}@{lab}" for m in machine.modes for lab in self.labels]
+        # Per flat pair (mode-major, as subjects), as floats for :meth:`pair`.
+        self.pairs = [_Pair(float(self.mode_hz[i, 0]), float(self.order_arr[j]), float(self.fixed_arr[j]),
+                            float(self.req_below[i, 0]), float(self.req_above[i, 0]))
+                      for i in range(len(self.modes)) for j in range(self.n_exc)]
 
     def compute(self, speed_hz: float) -> MarginState:
         s = float(speed_hz)
@@ -353,8 +404,8 @@ class MarginGrid:
             raise ValueError(f"speed_hz must be finite and >= 0, got {speed_hz!r}.")
         exc = self.order_arr * s + self.fixed_arr
         fm = self.mode_hz
-        sm = np.abs(exc - fm) / fm * 100.0
-        below = fm <= exc
+        sm = margin_pct(exc, fm)
+        below = mode_below(exc, fm)
         req = np.where(below, self.req_below, self.req_above)
         appr = req * self.approach_factor
         r = exc / fm
@@ -362,6 +413,15 @@ class MarginGrid:
             hp = (np.abs(r - 1.0) <= self.zeta) & (req > 0)
         status = np.where((req > 0) & (sm < req), 2, np.where((req > 0) & (sm < appr), 1, 0))
         return MarginState(s, exc, sm, req, appr, r, below, hp, status)
+
+    def pair(self, index: int, speed_hz: float) -> PairMargin:
+        """The margin of flat pair ``index`` (mode-major, as :attr:`subjects`) at running
+        speed ``speed_hz`` (Hz, unchecked): :meth:`compute` for one pair, in floats (the
+        same operations, so the same numbers), for callers that look at a few pairs."""
+        mode_hz, order, fixed_hz, required_below_pct, required_above_pct = self.pairs[index]
+        exc = order * speed_hz + fixed_hz
+        required = required_below_pct if mode_below(exc, mode_hz) else required_above_pct
+        return PairMargin(margin_pct(exc, mode_hz), required, required * self.approach_factor, exc / mode_hz)
 
     def row(self, st: MarginState, index: int) -> MarginRow:
         """The row of flat ``index`` (mode-major, as :attr:`subjects`)."""
@@ -376,9 +436,7 @@ class MarginGrid:
             side="below" if st.mode_below[i, j] else "above",
             required_pct=float(st.required_pct[i, j]), approach_pct=float(st.approach_pct[i, j]),
             basis=req.basis, amplification_factor=req.amplification_factor, frequency_ratio=r,
-            # Same formula as sdof_amplification, scalar (this runs per row).
-            amplification=(1.0 / math.sqrt((1.0 - r * r) ** 2 + (2.0 * z * r) ** 2)
-                           if z is not None and z < 1.0 else None),
+            amplification=_amplification(r, z, math.sqrt) if z is not None and z < 1.0 else None,
             in_half_power_band=bool(st.half_power[i, j]), status=_STATUS[int(st.status[i, j])],
         )
 
@@ -448,98 +506,3 @@ class MarginRows(Sequence[MarginRow]):
 
     def __repr__(self) -> str:
         return f"MarginRows({len(self)} rows)"
-
-
-@dataclass(frozen=True)
-class ApproachForecast:
-    """Projected entry of an order excitation into a mode's required band.
-
-    ``seconds`` until the excitation reaches the band edge ``edge_hz`` (Hz, excitation
-    frequency) at the current speed slope ``speed_slope_hz_per_s`` (Hz/s, Theil-Sen).
-    """
-
-    mode: str
-    excitation: str
-    edge_hz: float
-    speed_at_entry_hz: float
-    seconds: float
-    speed_slope_hz_per_s: float
-
-    @property
-    def subject(self) -> str:
-        return f"{self.mode}@{self.excitation}"
-
-    def to_json(self) -> dict:
-        return {
-            "mode": self.mode, "excitation": self.excitation, "edge_hz": self.edge_hz,
-            "speed_at_entry_hz": self.speed_at_entry_hz, "seconds": self.seconds,
-            "speed_slope_hz_per_s": self.speed_slope_hz_per_s,
-        }
-
-
-def speed_trend(ts: Sequence[float], speed_hz: Sequence[float]) -> tuple[float, float, float, float]:
-    """Theil-Sen slope of running speed (Hz/s) with its 95 % interval and the fitted speed at
-    the last time (Hz): ``(slope, low, high, speed_now)``.
-
-    References
-    ----------
-    Sen (1968), Theil (1950); same estimator as ``scipy.stats.theilslopes``.
-    """
-    t = np.asarray(ts, dtype=float)
-    v = np.asarray(speed_hz, dtype=float)
-    if t.shape != v.shape or t.size < 3:
-        raise ValueError(f"ts and speed_hz must have the same length >= 3, got {t.size} and {v.size}.")
-    slope, inter, lo, hi = theil_sen(t - t[-1], v)
-    return slope, lo, hi, inter
-
-
-def speed_is_steady(speed_hz: Iterable[float]) -> bool:
-    """True when the speeds (Hz) stay within 0.1 % of their largest: no ramp to forecast."""
-    v = tuple(speed_hz)
-    hi = max(v)
-    return hi - min(v) <= 1e-3 * hi
-
-
-def approach_forecasts(
-    machine: Machine,
-    ts: Sequence[float],
-    speed_hz: Sequence[float],
-    *,
-    machine_default_pct: float | None = None,
-) -> tuple[ApproachForecast, ...]:
-    """Time until each order excitation enters a required band, for a ramping speed.
-
-    Only pairs whose excitation is outside the band now and moving towards it are reported,
-    and only when the 95 % interval of the Theil-Sen speed slope excludes zero (a real
-    ramp, not noise), projecting from the latest speed along the slope. Fixed-frequency
-    excitations (2x line) never move.
-    """
-    if len(ts) < 3 or speed_is_steady(speed_hz):
-        return ()  # no ramp to project
-    slope, lo, hi, _ = speed_trend(ts, speed_hz)
-    if lo <= 0.0 <= hi or slope == 0.0:
-        return ()
-    # From the latest measured speed: the median-based intercept lags behind on a ramp
-    # that started inside the window.
-    now = float(speed_hz[-1])
-    out: list[ApproachForecast] = []
-    for mode in machine.modes:
-        req = required_margin(mode, machine_default_pct)
-        fm = float(mode.frequency_hz)
-        lo_edge = fm * (1.0 - req.above_pct / 100.0)
-        hi_edge = fm * (1.0 + req.below_pct / 100.0)
-        if req.above_pct <= 0 and req.below_pct <= 0:
-            continue
-        for o in sorted(set(machine.excitation_orders)):
-            f_now = o * now
-            if slope > 0 and f_now <= lo_edge:
-                edge = lo_edge
-            elif slope < 0 and f_now >= hi_edge:
-                edge = hi_edge
-            else:
-                continue
-            s_entry = edge / o
-            secs = (s_entry - now) / slope
-            if secs >= 0:
-                out.append(ApproachForecast(mode.name, order_label(o), edge, s_entry, secs, slope))
-    return tuple(out)

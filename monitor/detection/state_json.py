@@ -89,7 +89,7 @@ def float_in(v: Any) -> float | None:
 
 def floats_out(xs: Iterable[float]) -> list[float | str]:
     """A list of floats as exact JSON data (see :func:`float_out`)."""
-    out = list(xs)
+    out: list[Any] = list(xs)  # floats, or whatever the caller kept (tagged below)
     # A finite sum means every term is finite (NaN and infinities carry through a sum):
     # one pass in C for the common case.
     try:
@@ -98,6 +98,15 @@ def floats_out(xs: Iterable[float]) -> list[float | str]:
     except TypeError:
         pass
     return [float_out(x) for x in out]  # type: ignore[misc]
+
+
+def number_in(v: Any, field: str) -> float:
+    """Read back :func:`float_out`'s data where a number belongs; ValueError naming
+    ``field`` for null."""
+    x = float_in(v)
+    if x is None:
+        raise ValueError(f"state value {field!r} is null where a number belongs.")
+    return x
 
 
 def floats_in(vs: Sequence[Any]) -> list[float]:
@@ -157,3 +166,75 @@ def value_in(obj: Any) -> Any:
     if t is list:
         return [value_in(v) for v in obj]
     return obj
+
+
+def upgrade_snapshot(data: Mapping[str, Any]) -> Mapping[str, Any]:
+    """A :meth:`~monitor.detection.evaluator.MachineEvaluator.snapshot` of any format in
+    the current one (:data:`STATE_FORMAT`); a current one is returned as it is.
+
+    Format 1 (no ``format`` key) was written through the store's JSON serialiser, which
+    turns NaN and infinities into ``null``. Where a ``null`` can only have been a
+    non-finite float it is read as NaN (the only non-finite value the code puts there):
+
+    - ``trends[*].fit``: slope, interval ends and fitted value (the interval ends are NaN
+      when a window's values are all tied);
+    - ``baselines[*].speeds``: a running speed the analysis gave as NaN.
+
+    Everywhere else a ``null`` is read as None, a value those fields hold in their own
+    right: a window's ``ref_speed`` (no reference yet) and ``speed_band`` (a speed-free
+    feature), a baseline's ``started_at``, an alarm's times, a stream's ``last_ts``, and
+    any evidence value. ``fit_ts`` null is read as 0.0 (its value before any fit). Fields
+    that hold finite numbers only (window times and values, baseline values, the speed
+    history, reading times and intervals) cannot hold ``null``; a snapshot where they do
+    is refused (ValueError naming the machine and the field). Evidence strings are
+    escaped as the current format writes them.
+    """
+    fmt = data.get("format", 1)
+    if fmt == STATE_FORMAT:
+        return data
+    machine = data.get("machine")
+    if fmt != 1:
+        raise ValueError(f"snapshot of machine {machine!r} has format {fmt!r}; this version reads "
+                         f"formats 1 to {STATE_FORMAT}.")
+
+    def finite_only(values: Any, field: str) -> Any:
+        if any(v is None for v in values):
+            raise ValueError(f"snapshot of machine {machine!r} (format 1): {field!r} holds null "
+                             "where only finite numbers belong.")
+        return values
+
+    nan = float_out(math.nan)
+    out = dict(data, format=STATE_FORMAT)
+    trends = []
+    for p, f, w in data.get("trends", []):
+        w = dict(w)
+        finite_only(w.get("ts", []), f"trends {p}/{f} ts")
+        finite_only(w.get("values", []), f"trends {p}/{f} values")
+        if w.get("fit") is not None:
+            w["fit"] = [nan if v is None else v for v in w["fit"][:4]] + list(w["fit"][4:])
+        if w.get("fit_ts", 0.0) is None:
+            w["fit_ts"] = 0.0
+        trends.append([p, f, w])
+    out["trends"] = trends
+    baselines = []
+    for p, f, b in data.get("baselines", []):
+        b = dict(b)
+        finite_only(b.get("values", []), f"baselines {p}/{f} values")
+        b["speeds"] = [nan if v is None else v for v in b.get("speeds", [])]
+        baselines.append([p, f, b])
+    out["baselines"] = baselines
+    engine = dict(data["engine"])
+    streams = []
+    for st in engine.get("streams", []):
+        st = dict(st)
+        if st.get("alarm"):
+            st["alarm"] = dict(st["alarm"], evidence=value_out(st["alarm"].get("evidence") or {}))
+        streams.append(st)
+    engine["streams"] = streams
+    out["engine"] = engine
+    for x in data.get("speed", []):
+        finite_only(x, "speed")
+    finite_only(data.get("last_ts", {}).values(), "last_ts")
+    for p, v in data.get("intervals", {}).items():
+        finite_only(v, f"intervals {p}")
+    return out

@@ -14,7 +14,7 @@ limited time until remedial action; D severe enough to cause damage.
 References
 ----------
 ISO 10816-3:2009 / ISO 20816-3:2022, Annex A, Tables A.1 (group 1) and A.2 (group 2);
-values from memory (see REFERENCES.md): a site must review them against the machine
+values from memory: a site must review them against the machine
 manufacturer's limits.
 """
 
@@ -24,6 +24,8 @@ import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Literal
+
+from monitor.model.bounds import check_zone_limits
 
 Zone = Literal["A", "B", "C", "D"]
 ZONES: tuple[Zone, ...] = ("A", "B", "C", "D")
@@ -36,6 +38,7 @@ CLASS_LIMITS_MM_S: dict[str, tuple[float, float, float]] = {
     "group2/flexible": (2.3, 4.5, 7.1),
 }
 
+#: The boundaries at the top of zones A, B and C.
 BOUNDARY_NAMES = ("A/B", "B/C", "C/D")
 
 
@@ -50,24 +53,10 @@ class ZoneLimits:
     source: str = ""
 
     def __post_init__(self) -> None:
-        check_limits((self.ab, self.bc, self.cd), "limits_mm_s")
+        check_zone_limits((self.ab, self.bc, self.cd), "limits_mm_s")
 
     def as_tuple(self) -> tuple[float, float, float]:
         return (self.ab, self.bc, self.cd)
-
-
-def check_limits(limits: Sequence[float], field: str = "limits_mm_s") -> tuple[float, float, float]:
-    """Validate three increasing positive boundaries; ValueError naming ``field``."""
-    if len(limits) != 3:
-        raise ValueError(f"{field} must be three numbers [A/B, B/C, C/D] in mm/s RMS, got {list(limits)!r}.")
-    vals = tuple(float(v) for v in limits)
-    if not all(math.isfinite(v) and v > 0 for v in vals):
-        raise ValueError(f"{field} must be positive finite mm/s RMS values, got {list(limits)!r}.")
-    if not vals[0] < vals[1] < vals[2]:
-        raise ValueError(
-            f"{field} zone boundaries overlap: need A/B < B/C < C/D, got {list(limits)!r}."
-        )
-    return vals  # type: ignore[return-value]
 
 
 def zone_limits(
@@ -82,9 +71,9 @@ def zone_limits(
             f"class must be one of {tuple(CLASS_LIMITS_MM_S)}, got {machine_class!r}."
         )
     if point_limits is not None:
-        return ZoneLimits(*check_limits(point_limits, "point limits_mm_s"), source="point")
+        return ZoneLimits(*check_zone_limits(point_limits, "point limits_mm_s"), source="point")
     if machine_limits is not None:
-        return ZoneLimits(*check_limits(machine_limits, "machine limits_mm_s"), source="machine")
+        return ZoneLimits(*check_zone_limits(machine_limits, "machine limits_mm_s"), source="machine")
     return ZoneLimits(*CLASS_LIMITS_MM_S[machine_class], source=machine_class)
 
 
@@ -103,9 +92,15 @@ def zone_of(velocity_mm_s_rms: float, limits: ZoneLimits) -> Zone:
 
 
 def next_boundary(velocity_mm_s_rms: float, limits: ZoneLimits) -> tuple[str, float] | None:
-    """The next boundary above the value: ``('B/C', 4.5)`` ..., or None in zone D."""
-    v = float(velocity_mm_s_rms)
-    for name, b in zip(BOUNDARY_NAMES, limits.as_tuple(), strict=True):
-        if v <= b:
-            return name, b
-    return None
+    """The next boundary above the value: ``('B/C', 4.5)`` ..., or None in zone D (the
+    boundary at the top of the value's zone, which includes it)."""
+    return boundary_above(zone_of(velocity_mm_s_rms, limits), limits)
+
+
+def boundary_above(zone: Zone, limits: ZoneLimits) -> tuple[str, float] | None:
+    """The boundary at the top of ``zone``, name and mm/s RMS: ``('A/B', limits.ab)`` for
+    zone A ..., None for zone D."""
+    if zone == "D":
+        return None
+    i = ZONES.index(zone)
+    return BOUNDARY_NAMES[i], limits.as_tuple()[i]

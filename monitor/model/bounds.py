@@ -11,11 +11,11 @@ from __future__ import annotations
 import datetime as _dt
 import math
 import re
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from typing import Any
 
-from monitor.detection.zones import check_limits
 from monitor.model.bearing_geometry import BearingGeometry
+from monitor.model.detection_settings import DetectionSettings
 from monitor.model.registry import (
     DIRECTIONS,
     MACHINE_CLASSES,
@@ -87,6 +87,21 @@ def _text(value: Any, where: str, key: str) -> str:
     return s
 
 
+def check_zone_limits(limits: Sequence[float], field: str = "limits_mm_s") -> tuple[float, float, float]:
+    """Three increasing positive zone boundaries [A/B, B/C, C/D] in mm/s RMS as floats
+    (ISO 20816-3 zones); ValueError naming ``field`` otherwise."""
+    if len(limits) != 3:
+        raise ValueError(f"{field} must be three numbers [A/B, B/C, C/D] in mm/s RMS, got {list(limits)!r}.")
+    ab, bc, cd = (float(v) for v in limits)
+    if not all(math.isfinite(v) and v > 0 for v in (ab, bc, cd)):
+        raise ValueError(f"{field} must be positive finite mm/s RMS values, got {list(limits)!r}.")
+    if not ab < bc < cd:
+        raise ValueError(
+            f"{field} zone boundaries overlap: need A/B < B/C < C/D, got {list(limits)!r}."
+        )
+    return ab, bc, cd
+
+
 def limits_mm_s(value: Any, where: str, key: str) -> tuple[float, float, float] | None:
     """Three zone boundaries [A/B, B/C, C/D] in mm/s RMS, or None; RegistryError naming
     ``key`` otherwise."""
@@ -98,7 +113,7 @@ def limits_mm_s(value: Any, where: str, key: str) -> tuple[float, float, float] 
         )
     numbers = [number(v, where, key) for v in value]
     try:
-        return check_limits(numbers, f"'{key}'")
+        return check_zone_limits(numbers, f"'{key}'")
     except ValueError as exc:
         raise RegistryError(f"{where}: {exc}") from exc
 
@@ -205,9 +220,6 @@ def check_machine(machine: Machine) -> Machine:
 
 
 def _check_settings(settings: Mapping[str, Any], where: str) -> None:
-    # Imported when asked: the detection stage builds on this one.
-    from monitor.detection.evaluator import DetectionSettings
-
     if not isinstance(settings, Mapping):
         raise RegistryError(f"{where}: settings must be a table, got {settings!r}.")
     try:

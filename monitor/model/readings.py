@@ -1,6 +1,6 @@
 """Readings as they arrive from sensors: a waveform block or a speed reading.
 
-These are the validated, decoded forms of the MQTT payloads of DESIGN.md section 3;
+These are the validated, decoded forms of the MQTT payloads of docs/mqtt.md ("Inbound payloads");
 ``monitor.io.ingest`` builds them from raw messages, ``monitor.io.streams`` reads and writes
 them as ``.jsonl`` stream files, the simulator produces them.
 """

@@ -28,6 +28,7 @@ from monitor.model.bounds import (
     limits_mm_s,
     number,
 )
+from monitor.model.detection_settings import DetectionSettings
 from monitor.model.registry import Machine, Mode, Point, Registry, RegistryError
 from monitor.model.units import BASE_UNIT, QUANTITIES
 
@@ -48,10 +49,6 @@ _UNIT_SUFFIX = re.compile(r"_(hz|rpm|mm_s|pct|mm|deg|s)$")
 def machine_setting_keys() -> frozenset[str]:
     """The further keys of a machine table whirlwatch reads: detection settings
     (docs/alarms.md) and the bearing geometry (docs/registry.md)."""
-    # Imported when asked: the detection stage builds on this one, and reading a
-    # registry should not load it.
-    from monitor.detection.evaluator import DetectionSettings
-
     return frozenset({f.name for f in fields(DetectionSettings)} | set(SETTINGS_KEYS))
 
 

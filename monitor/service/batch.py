@@ -35,7 +35,8 @@ from sqlalchemy.orm import Session
 
 from monitor.analysis.waveform import ReadingAnalysis
 from monitor.detection.alarms import Transition
-from monitor.detection.evaluator import MachineEvaluator, ReadingEvaluation
+from monitor.detection.evaluator import MachineEvaluator
+from monitor.detection.results import ReadingEvaluation
 from monitor.service.cadence import Kept, SnapshotCadence
 from monitor.service.core import Core
 from monitor.service.failures import ReadingRaced

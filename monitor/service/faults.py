@@ -11,14 +11,14 @@ from __future__ import annotations
 
 from collections.abc import Iterable, Sequence
 
-from monitor.detection.alarms import AlarmKey, Transition
+from monitor.detection.alarms import AlarmKey, AlarmKind, Transition
 from monitor.detection.evaluator import MachineEvaluator
 from monitor.model.readings import SpeedReading, Waveform
 from monitor.model.timefmt import iso_utc
 from monitor.service.failures import printable
 
 #: Alarm kind of a stream whose readings keep failing to be processed (docs/alarms.md).
-PROCESSING_FAULT = "processing_fault"
+PROCESSING_FAULT: AlarmKind = "processing_fault"
 
 
 def fault_key(reading: Waveform | SpeedReading) -> AlarmKey:

@@ -18,7 +18,7 @@ from typing import Any
 from sqlalchemy import select
 
 from monitor.detection.alarms import Transition
-from monitor.detection.evaluator import evaluator_from_state, stored_state
+from monitor.detection.stored_state import evaluator_from_state, stored_state
 from monitor.model.registry import Machine
 from monitor.modes.shift import ModeShift
 from monitor.store import Store

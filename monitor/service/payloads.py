@@ -16,7 +16,8 @@ from typing import Any
 from sqlalchemy.orm import Session
 
 from monitor.detection.alarms import Transition, severity_rank
-from monitor.detection.evaluator import MachineEvaluator, ReadingEvaluation
+from monitor.detection.evaluator import MachineEvaluator
+from monitor.detection.results import ReadingEvaluation
 from monitor.model.timefmt import iso_utc
 from monitor.store import reads
 

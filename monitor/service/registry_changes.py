@@ -18,7 +18,7 @@ from functools import partial
 
 from sqlalchemy import select
 
-from monitor.detection.evaluator import retire_state
+from monitor.detection.stored_state import retire_state
 from monitor.service.core import Core
 from monitor.service.failures import is_transient, short_cause
 from monitor.service.items import Outcome, OutcomeKind
@@ -114,7 +114,7 @@ class RegistryChanges:
 
     def _retire(self, machine: str) -> Outcome | None:
         """Close the alarms of a machine retired from the registry
-        (:func:`monitor.detection.evaluator.retire_state`), record them and write its state
+        (:func:`monitor.detection.stored_state.retire_state`), record them and write its state
         marked retired, in one transaction; the outcome carries their events and removes
         the machine's retained status when published. None when there is nothing to do:
         the machine is active again, was never monitored (no state), or another process

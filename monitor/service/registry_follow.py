@@ -24,7 +24,8 @@ from typing import Any
 
 from sqlalchemy import select
 
-from monitor.detection.evaluator import MachineEvaluator, stored_state
+from monitor.detection.evaluator import MachineEvaluator
+from monitor.detection.stored_state import stored_state
 from monitor.model.registry import Machine, Registry
 from monitor.model.registry_file import load_registry, registry_warnings
 from monitor.store import Store
@@ -73,7 +74,7 @@ def follow(registry: Registry, evaluators: Mapping[str, MachineEvaluator], chang
     the rebuilt evaluator until the service takes its state in a transaction, where
     :meth:`MachineEvaluator.close_orphaned_alarms` closes it and the transition is
     recorded and published; a retired machine's stored alarms are closed by the service
-    (:func:`monitor.detection.evaluator.retire_state`). docs/alarms.md, "Alarms of what leaves the
+    (:func:`monitor.detection.stored_state.retire_state`). docs/alarms.md, "Alarms of what leaves the
     registry"."""
     machines = dict(registry.by_id())
     out = dict(evaluators)

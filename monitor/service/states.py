@@ -24,7 +24,8 @@ from sqlalchemy import and_, bindparam, select
 from sqlalchemy.orm import Session
 
 from monitor.detection.alarms import Transition
-from monitor.detection.evaluator import MachineEvaluator, evaluator_from_state, stored_state
+from monitor.detection.evaluator import MachineEvaluator
+from monitor.detection.stored_state import evaluator_from_state, stored_state
 from monitor.model.registry import Registry
 from monitor.service.registry_follow import RegistryChange, RegistryFollower, follow
 from monitor.store import record_transitions
