@@ -17,10 +17,16 @@ Rules
 - A reading flagged by sensor health raises ``sensor_fault`` alarms only: it updates no
   machine alarm (resonance or growth), and its speed is not used.
 - Resonance alarms are per machine (``point`` None), subject ``'<mode>@<excitation>'``; they
-  advance on every new speed value (from a reading or a speed message; a value whose
-  time is not later than the last one is shown but not counted twice).
-- Growth ignores readings taken with an excitation inside a required band (not comparable
-  with the baseline); the next growth transition's evidence counts them.
+  advance on every new speed value (from a reading or a speed message, so a speed stream
+  keeps them going while the vibration sensor is faulted or absent; a value whose time is
+  not later than the last one is shown but not counted twice). A level is raised only
+  once the excitation has dwelt in its band for ``resonance_dwell_s``
+  (:mod:`monitor.detection.dwell`): a run-up or coast-down passing through is not alarmed.
+- The zone of every reading sensor health accepts is judged, whatever the resonance state.
+  Growth (baseline and trend) leaves out the readings taken while the speed sweeps an
+  excitation through a required band (a transient response, comparable with nothing); the
+  next growth transition's evidence counts them. Readings at a steady speed next to a mode
+  are used: the amplification there is constant, so growth there is still growth.
 - Baseline ratios of speed-dependent features (overall, 1x, 2x, orders) are compared only
   when the running speed is within ``baseline_speed_band_pct`` of the baseline's speed,
   and their trend window starts afresh when the speed leaves that band around the speed
@@ -47,7 +53,12 @@ from monitor.detection.growth_rules import FeatureVerdict, GrowthRules
 from monitor.detection.health import HealthCheck, HealthReport, check_waveform, is_stale
 from monitor.detection.margins import MarginRow, MarginRows
 from monitor.detection.resonance import ResonanceWatch
-from monitor.detection.results import FeatureEvaluation, FeatureRows, ReadingEvaluation
+from monitor.detection.results import (
+    FeatureEvaluation,
+    FeatureRows,
+    ReadingEvaluation,
+    SpeedEvaluation,
+)
 from monitor.detection.state_json import (
     STATE_FORMAT,
     float_out,
@@ -80,12 +91,15 @@ SENSOR_FAULT_SEVERITY: dict[HealthCheck, Severity] = {
 
 #: Why growth leaves a reading out: the key its count goes under (``ignored_readings`` of
 #: a growth transition's evidence) and the start of ``growth_ignored``.
-IgnoreReason = Literal["sensor fault", "resonance band"]
+IgnoreReason = Literal["sensor fault", "sweep through band"]
+SWEEP: IgnoreReason = "sweep through band"
 
 
 class Ignored(NamedTuple):
     """Why growth leaves a reading out: the ``reason`` and what caused it (the failed
-    checks, or the subjects inside their required band)."""
+    checks, or the subjects whose required band the speed was sweeping through). A sensor
+    fault leaves the reading out of every growth rule; a sweep only out of the baseline
+    and the trend (its zone is judged)."""
 
     reason: IgnoreReason
     causes: tuple[str, ...]
@@ -179,12 +193,14 @@ class MachineEvaluator:
         speed = float(analysis.speed_hz) if analysis is not None else None
         approach: tuple[ApproachForecast, ...] = ()
         margins = _NO_MARGINS
-        inside: list[str] = []
+        sweeping: list[str] = []
         if speed is not None and math.isfinite(speed) and speed > 0:
             if not suppressed:
-                inside, approach, t = self._resonance.at_speed(self.engine, ts, speed, rid)
+                sweeping, approach, t = self._resonance.at_speed(self.engine, ts, speed, rid)
                 trans += t
             margins = self._resonance.rows(speed)
+        elif speed == 0.0 and not suppressed:
+            self._resonance.stopped()
 
         overall = zone = None
         feats: Sequence[FeatureEvaluation] = ()
@@ -194,8 +210,8 @@ class MachineEvaluator:
             zone = zone_of(overall, limits) if math.isfinite(overall) and overall >= 0 else None
             if not health.ok:
                 ignored = Ignored("sensor fault", health.checks)
-            elif inside:
-                ignored = Ignored("resonance band", tuple(inside))
+            elif sweeping:
+                ignored = Ignored(SWEEP, tuple(sweeping))
             feats, t = self._growth(analysis, point.id, limits, ignored)
             trans += t
         # Every field set at once, past the frozen dataclass's __init__ (one
@@ -210,14 +226,34 @@ class MachineEvaluator:
         )
         return out
 
-    def observe_speed(self, reading: SpeedReading) -> list[Transition]:
-        """A running-speed message (Hz) for this machine; advances resonance alarms."""
+    def evaluate_speed(self, reading: SpeedReading) -> SpeedEvaluation:
+        """A running-speed message (Hz, from the speed topic or a tach) for this machine:
+        advances the resonance alarms and gives the margin table at that speed, whatever
+        the state of the vibration sensors. Speed 0 (standing still) ends every stay in a
+        band and evaluates nothing else."""
         if reading.machine != self.machine.id:
             raise ValueError(f"speed is for machine {reading.machine!r}, this evaluator is for {self.machine.id!r}.")
         sp = float(reading.speed_hz)
-        if not (math.isfinite(sp) and sp > 0):
-            raise ValueError(f"speed_hz must be a positive finite speed, got {reading.speed_hz!r}.")
-        return self._resonance.at_speed(self.engine, float(reading.ts), sp, None).transitions
+        if not (math.isfinite(sp) and sp >= 0):
+            raise ValueError(f"speed_hz must be a finite speed >= 0, got {reading.speed_hz!r}.")
+        ts = float(reading.ts)
+        if sp == 0.0:
+            self._resonance.stopped()
+            return SpeedEvaluation(self.machine.id, ts, sp, _NO_MARGINS, (), (), ())
+        sweeping, approach, trans = self._resonance.at_speed(self.engine, ts, sp, None)
+        return SpeedEvaluation(self.machine.id, ts, sp, self._resonance.rows(sp), approach, tuple(sweeping),
+                               tuple(trans))
+
+    def observe_speed(self, reading: SpeedReading) -> list[Transition]:
+        """:meth:`evaluate_speed`'s alarm transitions."""
+        return list(self.evaluate_speed(reading).transitions)
+
+    @property
+    def latest_speed(self) -> tuple[float, float] | None:
+        """The latest running speed counted, ``(epoch s, Hz)``, from a reading or a speed
+        message, or None before any."""
+        speeds = self._resonance.speeds
+        return speeds[-1] if speeds else None
 
     def observe_mode_findings(self, findings: Sequence[ModeShift], ts: float, *, point: str | None = None,
                               evidence: Mapping[str, Any] | None = None) -> list[Transition]:
@@ -350,6 +386,7 @@ class MachineEvaluator:
             "trends": [[p, f, w.snapshot()] for (p, f), w in self._trends.items()],
             "ignored": {p: dict(c) for p, c in self._ignored.items()},
             "speed": speed,
+            "stays": self._resonance.stays_snapshot(),
             "last_ts": {p: float_out(t) for p, t in self._last_ts.items()},
             "intervals": {p: floats_out(d) for p, d in self._intervals.items()},
         }
@@ -378,6 +415,7 @@ class MachineEvaluator:
             ev._trends[(p, f)] = TrendWindow.restore(w)
         ev._ignored = {p: dict(c) for p, c in data.get("ignored", {}).items()}
         ev._resonance.speeds.extend((t, v) for t, v in (floats_in(x) for x in data.get("speed", [])))
+        ev._resonance.restore_stays(data.get("stays"))
         points = ev._limits
         ev._last_ts = {p: number_in(t, f"last_ts {p}") for p, t in data.get("last_ts", {}).items()
                        if p in points}
@@ -461,23 +499,28 @@ class MachineEvaluator:
                 ) -> tuple[FeatureRows, list[Transition]]:
         """Amplitude-growth alarms of one reading of point ``pid``: its features fed to
         their baselines and trend windows (unless the reading is ``ignored``), judged by
-        :class:`~monitor.detection.growth_rules.GrowthRules`, and the levels given to the
-        engine. The features' evaluations are built only when something reads them."""
+        :class:`~monitor.detection.growth_rules.GrowthRules` (a sweep's reading by its
+        zone only, a sensor fault's not at all), and the levels given to the engine. The
+        features' evaluations are built only when something reads them."""
         ts = float(analysis.ts)
         speed = float(analysis.speed_hz)
         rid = analysis.reading_id
         counts = self._ignored.setdefault(pid, {})
         if ignored is not None:
             counts[ignored.reason] = counts.get(ignored.reason, 0) + 1
+        # A sweep's reading is judged by its zone (no baseline, no trend); a sensor fault's
+        # by nothing.
+        judged = ignored is None or ignored.reason == SWEEP
+        sweeping = ignored.causes if ignored is not None and judged else ()
         judge = self._rules.judge
         verdicts: list[FeatureVerdict] = []
         due: list[tuple[int, AlarmKey]] = []
         for feature, value, slot, comparable in self._feed(analysis, pid, ts, speed, ignored is None):
             trend = slot.window.trend() if ignored is None else None
-            verdict = judge(feature, value, slot.baseline, comparable, speed, trend, limits)
+            verdict = judge(feature, value, slot.baseline, comparable, speed, trend, limits, sweeping)
             verdicts.append(verdict)
             # A key that never fed the engine has no alarm to count down.
-            if ignored is None and (verdict.raise_rank or verdict.hold_rank or (
+            if judged and (verdict.raise_rank or verdict.hold_rank or (
                     slot.key in self._growth_fed and self.engine.alarm(slot.key) is not None)):
                 due.append((len(verdicts) - 1, slot.key))
                 self._growth_fed.add(slot.key)
