@@ -281,3 +281,19 @@ def test_time_to_limit_is_from_the_fitted_line(start, noisy, limit):
     f = e.feature("overall")
     assert (f.limit_name, f.limit_value) == limit
     assert f.time_to_limit_s / DAY == pytest.approx((limit[1] - line_now) / 0.1, rel=1e-9)
+
+
+def test_a_state_kept_without_stays_takes_the_next_speed_as_the_first_seen():
+    # A detector state written before stays were kept: no entry into a band is known, so
+    # the next speed inside a band starts its dwell and is not taken for a sweep
+    # (docs/alarms.md, "Dwell").
+    ev = MachineEvaluator(fan())
+    for i in range(3):
+        ev.observe_speed(SpeedReading("fan", float(i), 12.0 + i))
+    snap = ev.snapshot()
+    assert snap["stays"] == {"lateral@1x": [1.0, None, None, False]}  # approach band (39 %) from 13 Hz
+    del snap["stays"]
+    again = MachineEvaluator.restore(fan(), snap)
+    e = again.evaluate(reading("fan", 3.0, 17.0, 1.0))
+    assert e.growth_ignored is None
+    assert again.snapshot()["stays"] == {"lateral@1x": [3.0, 3.0, None, False]}
