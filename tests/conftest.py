@@ -7,6 +7,7 @@ Fixture plugins live in their own modules next to this file; add yours with
 pytest_plugins: list[str] = []
 pytest_plugins.append("broker")  # private Mosquitto: mosquitto, fresh_mosquitto (tests/broker.py)
 pytest_plugins.append("fixtures_db")  # databases: database_url, store, plant (tests/fixtures_db.py)
+pytest_plugins.append("registry_api")  # plant_url, api: the sample plant and its JSON API (tests/registry_api.py)
 
 
 def pytest_sessionstart(session):

@@ -1,5 +1,6 @@
 """Helpers for the service tests: a store with the sample plant, retimed sample traffic,
-a service without a broker, a subscriber that records what the service publishes, and the
+a service without a broker, the detector state stored and its straight-through
+reference, a subscriber that records what the service publishes, and the
 service as a subprocess."""
 
 from __future__ import annotations
@@ -18,14 +19,17 @@ from broker import wait_until
 from paho.mqtt.enums import CallbackAPIVersion
 from sqlalchemy import func, select
 
+from monitor.analysis.waveform import analyse_waveform
 from monitor.config import load_settings
+from monitor.detection.evaluator import MachineEvaluator
+from monitor.io.ingest import decode_message
 from monitor.io.replay import load_streams, retimed
 from monitor.io.streams import reading_message
 from monitor.model.readings import SpeedReading, Waveform
 from monitor.model.registry_file import load_registry
 from monitor.service.service import Service
 from monitor.store import Store, import_registry, upgrade
-from monitor.store.models import Measurement
+from monitor.store.models import DetectorState, Measurement
 
 ROOT = Path(__file__).resolve().parent.parent
 SAMPLES = ROOT / "sample_streams"
@@ -158,3 +162,32 @@ def wait_started(workdir: Path, client_id: str, count: int = 1, timeout_s: float
     if not wait_for(started, timeout_s, 0.05):
         tail = path.read_text(errors="replace")[-2000:] if path.exists() else "(no log)"
         raise RuntimeError(f"the service did not start: {tail}")
+
+
+def stored_evaluator_state(url: str, machine: str) -> dict:
+    """The evaluator part of ``machine``'s detector state as the service stored it."""
+    store = Store.open(url)
+    try:
+        with store.session() as s:
+            state = s.scalar(select(DetectorState.state).where(DetectorState.machine_id == machine))
+    finally:
+        store.close()
+    assert isinstance(state, dict) and "evaluator" in state, f"no detector state stored for {machine}"
+    return state["evaluator"]
+
+
+def straight_feed(messages: list[tuple[str, bytes]], machine: str) -> dict:
+    """The detector state after each distinct reading was evaluated exactly once, in order,
+    straight through the pure core (no service, no store): the reference for 'fed once'."""
+    registry = load_registry(PLANT)
+    spec = registry.machine(machine)
+    ev = MachineEvaluator(spec)
+    seen: set[tuple[str, bytes]] = set()
+    for topic, payload in messages:
+        if (topic, payload) in seen:
+            continue
+        seen.add((topic, payload))
+        w = decode_message(topic, payload, registry, prefix="whirlwatch")
+        ev.evaluate(analyse_waveform(w, spec, spec.point(w.point)), w)
+    return ev.snapshot()
+

@@ -11,27 +11,13 @@ import re
 
 import pytest
 from click.testing import CliRunner
-from service_helpers import plant_store
+from registry_api import Api, newest_evaluation, run_bounded, settings_for, waveforms
 from sqlalchemy import select
-from test_registry_edits import Api, newest_evaluation, run_bounded, settings_for, waveforms
 
 from monitor.cli import main as cli
 from monitor.service.service import Service
 from monitor.store import Store
 from monitor.store.models import BaselineRestart, DetectorState
-
-
-@pytest.fixture()
-def plant_url(database_url: str) -> str:
-    plant_store(database_url)
-    return database_url
-
-
-@pytest.fixture()
-def api(plant_url: str):
-    a = Api(plant_url)
-    yield a
-    a.close()
 
 
 def restarts(url: str) -> list[BaselineRestart]:

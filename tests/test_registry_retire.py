@@ -15,9 +15,9 @@ from pathlib import Path
 
 import pytest
 from click.testing import CliRunner
-from service_helpers import PLANT, plant_store, traffic
+from registry_api import Api, run_bounded, settings_for
+from service_helpers import PLANT, traffic
 from sqlalchemy import select
-from test_registry_edits import Api, run_bounded, settings_for
 
 from monitor.cli import main as cli
 from monitor.config import load_settings
@@ -37,19 +37,6 @@ MACHINE_RETIRED = "machine retired from the registry"
 #: needs 10 + 17 (1 - 1 / (AF - 1.5)) = 25.0 % of separation; 1x lies about 1 % below
 #: it, far inside: a resonance alarm after `persistence` readings.
 NEAR_MODE = {"name": "motor frame", "frequency_hz": 25.0, "damping_ratio": 0.05, "source": "impact test"}
-
-
-@pytest.fixture()
-def plant_url(database_url: str) -> str:
-    plant_store(database_url)
-    return database_url
-
-
-@pytest.fixture()
-def api(plant_url: str):
-    a = Api(plant_url)
-    yield a
-    a.close()
 
 
 def waveforms(name: str) -> list[tuple[str, bytes]]:

@@ -25,6 +25,8 @@ from service_helpers import (
     measurement_count,
     plant_store,
     service_process,
+    stored_evaluator_state,
+    straight_feed,
     traffic,
     wait_for,
     wait_started,
@@ -32,14 +34,13 @@ from service_helpers import (
 )
 from sqlalchemy import select
 
-from monitor.analysis.waveform import analyse_waveform
 from monitor.config import load_settings
 from monitor.detection.evaluator import MachineEvaluator
 from monitor.io.ingest import decode_message
 from monitor.model.registry_file import load_registry
 from monitor.service.service import Service
 from monitor.store import Store
-from monitor.store.models import Alarm, AlarmTransitionRow, DetectorState
+from monitor.store.models import Alarm, AlarmTransitionRow
 
 pytestmark = pytest.mark.broker
 
@@ -64,31 +65,6 @@ def waveforms(name: str, n: int) -> list[tuple[str, bytes]]:
     return msgs[:n]
 
 
-def single_feed(messages: list[tuple[str, bytes]], machine: str) -> dict:
-    """The detector state after each distinct reading was evaluated exactly once, in order,
-    straight through the pure core (no service, no store): the reference for 'fed once'."""
-    registry = load_registry(PLANT)
-    spec = registry.machine(machine)
-    ev = MachineEvaluator(spec)
-    seen: set[tuple[str, bytes]] = set()
-    for topic, payload in messages:
-        if (topic, payload) in seen:
-            continue
-        seen.add((topic, payload))
-        w = decode_message(topic, payload, registry, prefix="whirlwatch")
-        ev.evaluate(analyse_waveform(w, spec, spec.point(w.point)), w)
-    return ev.snapshot()
-
-
-def stored_state(url: str, machine: str) -> dict:
-    store = Store.open(url)
-    try:
-        with store.session() as s:
-            state = s.scalar(select(DetectorState.state).where(DetectorState.machine_id == machine))
-    finally:
-        store.close()
-    assert isinstance(state, dict) and "evaluator" in state
-    return state["evaluator"]
 
 
 def baseline_lengths(snapshot: dict) -> dict[tuple[str, str], int]:
@@ -111,15 +87,15 @@ def test_repeats_within_one_batch_feed_the_detector_once(tmp_path: Path) -> None
                                       "waveform", "duplicate"]
     assert [o.kind for o in again] == ["duplicate"]
     assert measurement_count(url) == (3, 3)
-    reference = single_feed([m1, m2, m3], "ab-1")
+    reference = straight_feed([m1, m2, m3], "ab-1")
     # Each baseline holds one value per distinct reading: three, not the seven copies
     # (fewer only if the learning window were shorter than three readings).
     window = MachineEvaluator(load_registry(PLANT).machine("ab-1")).settings.baseline_readings
-    lengths = baseline_lengths(stored_state(url, "ab-1"))
+    lengths = baseline_lengths(stored_evaluator_state(url, "ab-1"))
     assert lengths and set(lengths.values()) == {min(3, window)}
     # The whole detector state, in memory and as stored, is that of a single feed.
     assert memory == reference
-    assert stored_state(url, "ab-1") == reference
+    assert stored_evaluator_state(url, "ab-1") == reference
 
 
 def test_repeated_publishes_are_stored_once_and_all_acknowledged(
@@ -156,7 +132,7 @@ def test_repeated_publishes_are_stored_once_and_all_acknowledged(
     finally:
         svc.stop()
     assert measurement_count(url) == (len(readings), len(readings))
-    assert stored_state(url, "ab-1") == single_feed(readings, "ab-1")
+    assert stored_evaluator_state(url, "ab-1") == straight_feed(readings, "ab-1")
     # Every copy was acknowledged: the same persistent session gets nothing back.
     svc = Service(settings, stale_check_s=0)
     svc.start()
@@ -320,7 +296,7 @@ def test_reading_stored_by_another_process_after_the_check_reruns_the_batch(pg_u
     assert sorted(results.values()) == ["duplicate", "waveform"], results
     assert sorted(reruns) == [0.0, 1.0]
     assert measurement_count(pg_url) == (2, 2)
-    assert stored_state(pg_url, "ab-1") == single_feed([m0, m1], "ab-1")
+    assert stored_evaluator_state(pg_url, "ab-1") == straight_feed([m0, m1], "ab-1")
 
 
 # ----------------------------------------------------------------------------- publishing

@@ -12,19 +12,23 @@ import json
 from pathlib import Path
 
 import pytest
-from service_helpers import PLANT, measurement_count, plant_store, traffic, wait_for, waveform_keys
+from service_helpers import (
+    measurement_count,
+    plant_store,
+    stored_evaluator_state,
+    straight_feed,
+    traffic,
+    wait_for,
+    waveform_keys,
+)
 from sqlalchemy import select
 
-from monitor.analysis.waveform import analyse_waveform
 from monitor.config import load_settings
-from monitor.detection.evaluator import MachineEvaluator
-from monitor.io.ingest import decode_message
 from monitor.io.source import StreamFileSource
 from monitor.io.streams import write_stream
-from monitor.model.registry_file import load_registry
 from monitor.service.service import Service, ServiceError
 from monitor.store import Store
-from monitor.store.models import DeadLetter, DetectorState
+from monitor.store.models import DeadLetter
 
 
 def settings_for(url: str):
@@ -45,26 +49,6 @@ def stream_file(path: Path, messages: list[tuple[str, bytes]]) -> Path:
     return path
 
 
-def straight_feed(messages: list[tuple[str, bytes]], machine: str) -> dict:
-    """The detector state after each reading was evaluated once, in order, straight through
-    the pure core (no service, no store)."""
-    registry = load_registry(PLANT)
-    spec = registry.machine(machine)
-    ev = MachineEvaluator(spec)
-    for topic, payload in messages:
-        w = decode_message(topic, payload, registry, prefix="whirlwatch")
-        ev.evaluate(analyse_waveform(w, spec, spec.point(w.point)), w)
-    return ev.snapshot()
-
-
-def stored_evaluator(url: str, machine: str) -> dict:
-    store = Store.open(url)
-    try:
-        with store.session() as s:
-            state = s.scalar(select(DetectorState.state).where(DetectorState.machine_id == machine))
-    finally:
-        store.close()
-    return state["evaluator"]
 
 
 def test_a_stream_file_is_stored_once_and_fed_once_in_order(sqlite_url: str, tmp_path: Path) -> None:
@@ -86,7 +70,7 @@ def test_a_stream_file_is_stored_once_and_fed_once_in_order(sqlite_url: str, tmp
     assert svc.metrics.registry.get_sample_value("whirlwatch_batch_size_count") == 4
     assert len(waveform_keys(messages)) == 50
     assert measurement_count(sqlite_url) == (50, 50)
-    assert stored_evaluator(sqlite_url, "ab-1") == straight_feed(messages, "ab-1")
+    assert stored_evaluator_state(sqlite_url, "ab-1") == straight_feed(messages, "ab-1")
 
 
 def test_a_malformed_line_is_skipped_and_a_bad_message_kept_as_a_dead_letter(
