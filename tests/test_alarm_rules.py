@@ -297,3 +297,28 @@ def test_a_state_kept_without_stays_takes_the_next_speed_as_the_first_seen():
     e = again.evaluate(reading("fan", 3.0, 17.0, 1.0))
     assert e.growth_ignored is None
     assert again.snapshot()["stays"] == {"lateral@1x": [3.0, 3.0, None, False]}
+
+
+def test_the_speed_normalised_1x_is_not_compared_where_a_mode_amplifies_1x():
+    # Baseline learned at 22 Hz; then the fan dwells at 15 Hz, 1x inside the required band
+    # of its 15.5 Hz mode (zeta 0.025). The SDOF response there (Thomson, rotating
+    # unbalance) is several times what the speed squared explains, with the unbalance
+    # unchanged: not growth, so 1x_norm is compared with nothing (docs/alarms.md).
+    machine = Machine(
+        id="ef", machine_class="group2/flexible", excitation_orders=(1.0,), speed_range_rpm=(360.0, 1500.0),
+        modes=(Mode("pedestal", 15.5, damping_ratio=0.025),), points=(Point("de", fs_hz=FS, unit="m/s^2"),),
+        settings={"baseline_readings": 5},
+    )
+    me = 1.0 / sdof_unbalance_velocity_mm_s_rms(22.0, 15.5, 0.025, 1.0)  # 1 mm/s RMS at 22 Hz
+    v15 = sdof_unbalance_velocity_mm_s_rms(15.0, 15.5, 0.025, me)
+    assert (v15 / 15.0**2) / (1.0 / 22.0**2) > 4  # what 1x_norm would call 4x baseline
+    ev = MachineEvaluator(machine)
+    trans = []
+    for k in range(6):
+        trans += ev.evaluate(reading("ef", k * HOUR, 22.0, 1.0)).transitions
+    for k in range(6, 30):
+        e = ev.evaluate(reading("ef", k * HOUR, 15.0, v15))
+        trans += e.transitions
+    f = e.feature("1x_norm")
+    assert f.ratio is None and f.baseline_status == "not comparable: 1x inside the required band of pedestal@1x"
+    assert growth_transitions(trans, "1x_norm") == []

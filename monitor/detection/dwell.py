@@ -57,11 +57,15 @@ class BandStay:
         self.since: list[float | None] = [None, None, None]
         self.crossed = False
 
-    def advance(self, ts: float, raise_rank: int, hold_rank: int, entry_seen: bool) -> None:
+    def advance(self, ts: float, raise_rank: int, hold_rank: int, entry_seen: bool, dwell_s: float) -> int:
         """Follow one new speed value at ``ts`` (epoch s) at which the pair's margin gives
         ``raise_rank`` and ``hold_rank`` (0 none ... 3 severe, the margin's levels without
         any forecast). ``entry_seen`` tells whether a speed value came before this one (so
-        a stay beginning now began with an entry seen)."""
+        a stay beginning now began with an entry seen).
+
+        Returns the rank the pair may raise: the highest up to ``raise_rank`` whose band
+        the excitation has stayed in for ``dwell_s`` seconds, or 0; -1 when it is outside
+        every band (the stay may be forgotten)."""
         since = self.since
         for k in LEVEL_RANKS:
             if hold_rank < k:
@@ -70,20 +74,11 @@ class BandStay:
                 since[k - 1] = ts
                 if k == REQUIRED_BAND_RANK:
                     self.crossed = entry_seen
-
-    @property
-    def outside(self) -> bool:
-        """True when the excitation is outside every band (the stay may be forgotten)."""
-        return self.since[0] is None and self.since[1] is None and self.since[2] is None
-
-    def dwelt_rank(self, ts: float, raise_rank: int, dwell_s: float) -> int:
-        """The highest rank up to ``raise_rank`` whose band the excitation has stayed in
-        for ``dwell_s`` seconds by ``ts`` (epoch s), or 0: the rank the pair may raise."""
         for k in range(raise_rank, 0, -1):
-            start = self.since[k - 1]
+            start = since[k - 1]
             if start is not None and ts - start >= dwell_s:
                 return k
-        return 0
+        return 0 if since[0] is not None or since[1] is not None or since[2] is not None else -1
 
     def sweeping(self, ts: float, dwell_s: float) -> bool:
         """True when, at ``ts`` (epoch s), the excitation is passing through the required

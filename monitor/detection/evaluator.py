@@ -1,9 +1,9 @@
 """State detection for one machine: readings in, alarm transitions and evaluations out.
 
 :class:`MachineEvaluator` ties together sensor health (``health``), resonance proximity
-(``resonance``: separation margins and ramp forecasts), severity zones (``zones``),
-baselines and trends (``growth``, judged by ``growth_rules``) and the alarm engine
-(``alarms``). It is deterministic and does no I/O: the caller passes each
+(``resonance``: separation margins, dwell and ramp forecasts), severity zones (``zones``),
+baselines and trends (``growth_watch``: ``growth`` judged by ``growth_rules``) and the
+alarm engine (``alarms``). It is deterministic and does no I/O: the caller passes each
 :class:`~monitor.analysis.waveform.ReadingAnalysis` with its
 :class:`~monitor.model.readings.Waveform`, speed readings, and the current time for
 stale-stream checks; it gets back :class:`~monitor.detection.alarms.Transition` objects to
@@ -30,7 +30,9 @@ Rules
 - Baseline ratios of speed-dependent features (overall, 1x, 2x, orders) are compared only
   when the running speed is within ``baseline_speed_band_pct`` of the baseline's speed,
   and their trend window starts afresh when the speed leaves that band around the speed
-  the window started at; the speed-normalised 1x is always compared and trended.
+  the window started at; the speed-normalised 1x is compared and trended at any speed
+  but one that puts 1x inside a mode's required band (its normalisation assumes no
+  resonant amplification).
 
 Settings (keys of the machine's registry table, ``machine.settings``; docs/alarms.md):
 see :class:`~monitor.model.detection_settings.DetectionSettings`.
@@ -38,24 +40,20 @@ see :class:`~monitor.model.detection_settings.DetectionSettings`.
 
 from __future__ import annotations
 
-import functools
 import math
 from collections import deque
 from collections.abc import Mapping, Sequence
-from typing import TYPE_CHECKING, Any, Literal, NamedTuple
+from typing import TYPE_CHECKING, Any
 
 from monitor.analysis.waveform import ReadingAnalysis
 from monitor.detection.alarms import AlarmEngine, AlarmKey, AlarmKind, Severity, Transition
 from monitor.detection.approach import ApproachForecast
-from monitor.detection.features import Feature, growth_orders, reading_features
-from monitor.detection.growth import Baseline, TrendWindow, fit_due_windows
-from monitor.detection.growth_rules import FeatureVerdict, GrowthRules
+from monitor.detection.growth_watch import SENSOR_FAULT, SWEEP, GrowthWatch, Ignored
 from monitor.detection.health import HealthCheck, HealthReport, check_waveform, is_stale
 from monitor.detection.margins import MarginRow, MarginRows
 from monitor.detection.resonance import ResonanceWatch
 from monitor.detection.results import (
     FeatureEvaluation,
-    FeatureRows,
     ReadingEvaluation,
     SpeedEvaluation,
 )
@@ -67,7 +65,7 @@ from monitor.detection.state_json import (
     number_in,
     upgrade_snapshot,
 )
-from monitor.detection.zones import ZoneLimits, zone_limits, zone_of
+from monitor.detection.zones import zone_limits, zone_of
 from monitor.model.bounds import check_machine
 from monitor.model.detection_settings import DetectionSettings
 from monitor.model.readings import SpeedReading, Waveform
@@ -88,34 +86,6 @@ SENSOR_FAULT_SEVERITY: dict[HealthCheck, Severity] = {
     "flat_line": "alert", "clipping": "alert", "dropouts": "alert", "stale": "alert",
     "sample_rate": "alert", "unit": "alert", "spikes": "advisory",
 }
-
-#: Why growth leaves a reading out: the key its count goes under (``ignored_readings`` of
-#: a growth transition's evidence) and the start of ``growth_ignored``.
-IgnoreReason = Literal["sensor fault", "sweep through band"]
-SWEEP: IgnoreReason = "sweep through band"
-
-
-class Ignored(NamedTuple):
-    """Why growth leaves a reading out: the ``reason`` and what caused it (the failed
-    checks, or the subjects whose required band the speed was sweeping through). A sensor
-    fault leaves the reading out of every growth rule; a sweep only out of the baseline
-    and the trend (its zone is judged)."""
-
-    reason: IgnoreReason
-    causes: tuple[str, ...]
-
-    def text(self) -> str:
-        """``growth_ignored`` of the evaluation: ``'<reason>: <cause>, <cause>'``."""
-        return f"{self.reason}: {', '.join(self.causes)}"
-
-
-class _Slot(NamedTuple):
-    """The state of one growth feature of one point."""
-
-    baseline: Baseline
-    window: TrendWindow
-    key: AlarmKey
-
 
 _NO_MARGINS = MarginRows()
 
@@ -145,19 +115,11 @@ class MachineEvaluator:
         self.settings = validate_machine(machine)
         s = self.settings
         self.engine = AlarmEngine(s.persistence)
-        self._rules = GrowthRules.from_settings(s)
         self._resonance = ResonanceWatch(machine, s)
-        self._baselines: dict[tuple[str, str], Baseline] = {}
-        self._trends: dict[tuple[str, str], TrendWindow] = {}
-        self._ignored: dict[str, dict[str, int]] = {}
+        self._growth = GrowthWatch(machine, s)
         self._last_ts: dict[str, float] = {}
         self._intervals: dict[str, deque[float]] = {}
         self._keys: dict[tuple[str | None, str, str], AlarmKey] = {}
-        self._orders = growth_orders(machine)
-        # Per point: feature name -> its slot, the same objects as in _baselines/_trends,
-        # so a reading finds all three with one lookup.
-        self._slots: dict[str, dict[str, _Slot]] = {}
-        self._growth_fed: set[AlarmKey] = set()  # growth keys that ever fed the engine
         self._fault_seen: set[str] = set()  # points whose block checks ever fed the engine
         # Whether every open alarm is known to fit this registry entry (a fresh evaluator
         # has none; a restored one is checked by close_orphaned_alarms).
@@ -194,9 +156,10 @@ class MachineEvaluator:
         approach: tuple[ApproachForecast, ...] = ()
         margins = _NO_MARGINS
         sweeping: list[str] = []
+        one_x_bands: tuple[str, ...] = ()
         if speed is not None and math.isfinite(speed) and speed > 0:
             if not suppressed:
-                sweeping, approach, t = self._resonance.at_speed(self.engine, ts, speed, rid)
+                sweeping, approach, t, one_x_bands = self._resonance.at_speed(self.engine, ts, speed, rid)
                 trans += t
             margins = self._resonance.rows(speed)
         elif speed == 0.0 and not suppressed:
@@ -209,10 +172,10 @@ class MachineEvaluator:
             overall = float(analysis.overall_velocity_mm_s_rms)
             zone = zone_of(overall, limits) if math.isfinite(overall) and overall >= 0 else None
             if not health.ok:
-                ignored = Ignored("sensor fault", health.checks)
+                ignored = Ignored(SENSOR_FAULT, health.checks)
             elif sweeping:
                 ignored = Ignored(SWEEP, tuple(sweeping))
-            feats, t = self._growth(analysis, point.id, limits, ignored)
+            feats, t = self._growth.reading(self.engine, analysis, point.id, limits, ignored, one_x_bands)
             trans += t
         # Every field set at once, past the frozen dataclass's __init__ (one
         # object.__setattr__ per field, a measurable part of a reading's detection).
@@ -240,9 +203,9 @@ class MachineEvaluator:
         if sp == 0.0:
             self._resonance.stopped()
             return SpeedEvaluation(self.machine.id, ts, sp, _NO_MARGINS, (), (), ())
-        sweeping, approach, trans = self._resonance.at_speed(self.engine, ts, sp, None)
-        return SpeedEvaluation(self.machine.id, ts, sp, self._resonance.rows(sp), approach, tuple(sweeping),
-                               tuple(trans))
+        outcome = self._resonance.at_speed(self.engine, ts, sp, None)
+        return SpeedEvaluation(self.machine.id, ts, sp, self._resonance.rows(sp), outcome.approach,
+                               tuple(outcome.sweeping), tuple(outcome.transitions))
 
     def observe_speed(self, reading: SpeedReading) -> list[Transition]:
         """:meth:`evaluate_speed`'s alarm transitions."""
@@ -313,10 +276,7 @@ class MachineEvaluator:
         """Learn the baseline (and trend) of ``point_id`` again from the next readings,
         for one ``feature`` or all; e.g. after maintenance."""
         self.machine.point(point_id)
-        for (pid, name), b in list(self._baselines.items()):
-            if pid == point_id and (feature is None or name == feature):
-                b.restart(ts)
-                self._trends[(pid, name)].clear()
+        self._growth.restart(point_id, ts, feature)
 
     def active_alarms(self) -> list[dict[str, Any]]:
         """JSON of every alarm not cleared."""
@@ -341,7 +301,7 @@ class MachineEvaluator:
             # An order feature of an order no longer excited; the fixed features and the
             # bearing lines (present as the analysis finds them) stay.
             name = key.subject
-            if name.endswith("x") and name not in ("1x", *(f.name for _, f in self._orders)):
+            if name.endswith("x") and name not in ("1x", *(f.name for _, f in self._growth.orders)):
                 return EXCITATION_REMOVED
         return None
 
@@ -382,9 +342,7 @@ class MachineEvaluator:
             "format": STATE_FORMAT,
             "machine": self.machine.id,
             "engine": self.engine.snapshot(),
-            "baselines": [[p, f, b.snapshot()] for (p, f), b in self._baselines.items()],
-            "trends": [[p, f, w.snapshot()] for (p, f), w in self._trends.items()],
-            "ignored": {p: dict(c) for p, c in self._ignored.items()},
+            **self._growth.snapshot(),
             "speed": speed,
             "stays": self._resonance.stays_snapshot(),
             "last_ts": {p: float_out(t) for p, t in self._last_ts.items()},
@@ -409,11 +367,7 @@ class MachineEvaluator:
         eng = dict(data["engine"])
         eng["persistence"] = ev.settings.persistence
         ev.engine = AlarmEngine.restore(eng)
-        for p, f, b in data.get("baselines", []):
-            ev._baselines[(p, f)] = Baseline.restore(b)
-        for p, f, w in data.get("trends", []):
-            ev._trends[(p, f)] = TrendWindow.restore(w)
-        ev._ignored = {p: dict(c) for p, c in data.get("ignored", {}).items()}
+        ev._growth.restore(dict(data), ev.engine.alarm_keys())
         ev._resonance.speeds.extend((t, v) for t, v in (floats_in(x) for x in data.get("speed", [])))
         ev._resonance.restore_stays(data.get("stays"))
         points = ev._limits
@@ -424,7 +378,6 @@ class MachineEvaluator:
         ev._fault_seen = {k.point for k in ev.engine.alarm_keys()
                           if k.kind == "sensor_fault" and k.subject != "stale" and k.point is not None}
         ev._resonance.restore(ev.engine.alarm_keys())
-        ev._growth_fed = {k for k in ev.engine.alarm_keys() if k.kind == "amplitude_growth"}
         ev._orphans_checked = not ev.engine.active()
         return ev
 
@@ -436,20 +389,6 @@ class MachineEvaluator:
         if key is None:
             key = self._keys[k] = AlarmKey(self.machine.id, point, kind, subject)
         return key
-
-    def _slot(self, pid: str, name: str, speed_band: float | None) -> _Slot:
-        """The baseline, trend window and growth alarm key of one feature of a point,
-        made on the feature's first reading (or taken from a restored snapshot)."""
-        s = self.settings
-        k = (pid, name)
-        base = self._baselines.get(k)
-        if base is None:
-            base = self._baselines[k] = Baseline(s.baseline_readings)
-        win = self._trends.get(k)
-        if win is None:
-            win = self._trends[k] = TrendWindow(
-                s.trend_window, s.trend_min_readings, s.trend_refit_every, speed_band)
-        return _Slot(base, win, self._key(pid, "amplitude_growth", name))
 
     def _expected_interval(self, pid: str) -> float | None:
         if self.settings.reading_interval_s is not None:
@@ -494,84 +433,3 @@ class MachineEvaluator:
                   "value": f.value if f else None, "reading_id": rid}
             out += self.engine.update(key, ts, lvl, lvl, ev, rid)
         return out
-
-    def _growth(self, analysis: ReadingAnalysis, pid: str, limits: ZoneLimits, ignored: Ignored | None
-                ) -> tuple[FeatureRows, list[Transition]]:
-        """Amplitude-growth alarms of one reading of point ``pid``: its features fed to
-        their baselines and trend windows (unless the reading is ``ignored``), judged by
-        :class:`~monitor.detection.growth_rules.GrowthRules` (a sweep's reading by its
-        zone only, a sensor fault's not at all), and the levels given to the engine. The
-        features' evaluations are built only when something reads them."""
-        ts = float(analysis.ts)
-        speed = float(analysis.speed_hz)
-        rid = analysis.reading_id
-        counts = self._ignored.setdefault(pid, {})
-        if ignored is not None:
-            counts[ignored.reason] = counts.get(ignored.reason, 0) + 1
-        # A sweep's reading is judged by its zone (no baseline, no trend); a sensor fault's
-        # by nothing.
-        judged = ignored is None or ignored.reason == SWEEP
-        sweeping = ignored.causes if ignored is not None and judged else ()
-        judge = self._rules.judge
-        verdicts: list[FeatureVerdict] = []
-        due: list[tuple[int, AlarmKey]] = []
-        for feature, value, slot, comparable in self._feed(analysis, pid, ts, speed, ignored is None):
-            trend = slot.window.trend() if ignored is None else None
-            verdict = judge(feature, value, slot.baseline, comparable, speed, trend, limits, sweeping)
-            verdicts.append(verdict)
-            # A key that never fed the engine has no alarm to count down.
-            if judged and (verdict.raise_rank or verdict.hold_rank or (
-                    slot.key in self._growth_fed and self.engine.alarm(slot.key) is not None)):
-                due.append((len(verdicts) - 1, slot.key))
-                self._growth_fed.add(slot.key)
-        features = FeatureRows(verdicts)
-        out: list[Transition] = []
-        for i, key in due:
-            evidence = functools.partial(_growth_evidence, rid, speed, limits, features, i, counts)
-            out += self.engine.update_ranked(key, ts, verdicts[i].raise_rank, verdicts[i].hold_rank,
-                                             evidence, rid)
-        if out:
-            counts.clear()  # reported in these transitions' evidence
-        return features, out
-
-    def _feed(self, analysis: ReadingAnalysis, pid: str, ts: float, speed: float, use: bool
-              ) -> list[tuple[Feature, float, _Slot, bool]]:
-        """The growth features of a reading of point ``pid`` at ``ts`` (epoch s) and
-        ``speed`` (Hz) with their slots, and whether each is comparable with its baseline
-        (the speed within the baseline's band). With ``use``, each finite value >= 0 is
-        fed to its baseline (while learning) and trend window, and the windows due are
-        refitted together; without, nothing is fed."""
-        band = self.settings.baseline_speed_band_pct / 100.0
-        slots = self._slots.get(pid)
-        if slots is None:
-            slots = self._slots[pid] = {}
-        fed: list[tuple[Feature, float, _Slot, bool]] = []
-        due_fits: list[TrendWindow] = []
-        for feature, value in reading_features(analysis, self.machine, self._orders):
-            if not (0.0 <= value < math.inf):  # finite and not negative (NaN fails too)
-                continue
-            slot = slots.get(feature.name)
-            if slot is None:
-                slot = slots[feature.name] = self._slot(pid, feature.name, band if feature.speed_dependent else None)
-            comparable = True
-            if use:
-                base = slot.baseline
-                if base.stats is None:
-                    base.add(value, speed, ts)
-                base_speed = base.speed_hz
-                comparable = not (feature.speed_dependent and base_speed
-                                  and abs(speed - base_speed) > band * base_speed)
-                if slot.window.add(ts, value, speed):
-                    due_fits.append(slot.window)
-            fed.append((feature, value, slot, comparable))
-        if due_fits:
-            fit_due_windows(due_fits)
-        return fed
-
-
-def _growth_evidence(rid: str | None, speed: float, limits: ZoneLimits, features: FeatureRows, i: int,
-                     counts: dict[str, int]) -> dict[str, Any]:
-    """A growth transition's evidence: the feature's evaluation and the readings growth
-    left out since the last growth transition, by reason."""
-    return {"reading_id": rid, "speed_hz": speed, "zone_limits_mm_s": list(limits.as_tuple()),
-            **features[i].to_json(), "ignored_readings": dict(counts)}

@@ -61,6 +61,17 @@ class Sweeping(NamedTuple):
         return f"not comparable: sweep through band {', '.join(self.subjects)}"
 
 
+class InBand(NamedTuple):
+    """The speed-normalised 1x of a reading whose 1x lies inside the required band of
+    ``subjects``: dividing by the speed squared does not remove a resonant amplification,
+    so the value is compared with nothing."""
+
+    subjects: tuple[str, ...]
+
+    def words(self) -> str:
+        return f"not comparable: 1x inside the required band of {', '.join(self.subjects)}"
+
+
 class Ready(NamedTuple):
     """The baseline is learned and comparable."""
 
@@ -71,7 +82,7 @@ class Ready(NamedTuple):
 READY = Ready()
 #: Raise rank by zone: alert in C, severe in D.
 _ZONE_RAISE_RANK: dict[Zone, int] = {"C": 2, "D": 3}
-BaselineStatus = Learning | OutOfSpeedBand | Sweeping | Ready
+BaselineStatus = Learning | OutOfSpeedBand | Sweeping | InBand | Ready
 
 
 class ZoneCause(NamedTuple):
@@ -133,12 +144,12 @@ class FeatureVerdict(NamedTuple):
 
 
 def baseline_status(baseline: Baseline, comparable: bool, speed_hz: float,
-                    sweeping: tuple[str, ...] = ()) -> BaselineStatus:
+                    left_out: Sweeping | InBand | None = None) -> BaselineStatus:
     """Where ``baseline`` stands for a reading at ``speed_hz`` (Hz); ``comparable`` is
-    whether the reading's speed lies within the baseline's speed band; ``sweeping`` the
-    subjects whose band the speed was sweeping through when the reading was taken."""
-    if sweeping:
-        return Sweeping(sweeping)
+    whether the reading's speed lies within the baseline's speed band; ``left_out`` why
+    the reading is compared with nothing (then that is the status)."""
+    if left_out is not None:
+        return left_out
     if baseline.stats is None:
         return Learning(len(baseline.values), baseline.size)
     if not comparable:
@@ -172,14 +183,14 @@ class GrowthRules:
 
     def judge(self, feature: Feature, value: float, baseline: Baseline, comparable: bool,
               speed_hz: float, trend: Trend | None, limits: ZoneLimits,
-              sweeping: tuple[str, ...] = ()) -> FeatureVerdict:
+              left_out: Sweeping | InBand | None = None) -> FeatureVerdict:
         """The verdict on ``value`` (finite, >= 0) of ``feature`` in a reading at
         ``speed_hz`` (Hz), against its ``baseline`` (``comparable``: the speed lies within
         the baseline's band), its ``trend`` (None when the reading is left out of growth)
-        and the point's zone ``limits``. A reading taken while the speed swept through the
-        required bands of ``sweeping`` is judged by its zone only."""
+        and the point's zone ``limits``. A value ``left_out`` of the comparison (a sweep's
+        reading, a 1x amplified by a mode) is judged by its zone only."""
         stats = baseline.stats
-        status = baseline_status(baseline, comparable, speed_hz, sweeping)
+        status = baseline_status(baseline, comparable, speed_hz, left_out)
         ratio = None
         if status is READY and stats is not None and stats.median > 0:
             ratio = value / stats.median

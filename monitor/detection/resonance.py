@@ -45,11 +45,13 @@ KIND: AlarmKind = "resonance_proximity"
 class SpeedOutcome(NamedTuple):
     """What a new speed value did: the subjects whose excitation is sweeping through their
     required band (:meth:`monitor.detection.dwell.BandStay.sweeping`), the approach
-    forecasts within the warning time, and the alarm transitions."""
+    forecasts within the warning time, the alarm transitions, and the subjects whose
+    required band holds 1x at that speed."""
 
     sweeping: list[str]
     approach: tuple[ApproachForecast, ...]
     transitions: list[Transition]
+    one_x_inside: tuple[str, ...] = ()
 
 
 def margin_ranks(margin: PairMargin, zeta: float | None, hysteresis: float) -> tuple[int, int]:
@@ -193,18 +195,21 @@ class ResonanceWatch:
         another point) gives the subjects sweeping through a band but counts nothing
         again.
         """
-        if self.speeds and ts <= self.speeds[-1][0]:
-            return SpeedOutcome(self.sweeping(ts) if self.stays else [], (), [])
-        entry_seen = self.entries_known and bool(self.speeds)
-        self.entries_known = True
         grid = self.grid
         widen = 1.0 + self.hysteresis
         near: dict[int, PairMargin] = {}
+        one_x: list[str] = []
         # Every pair outside the candidates holds no condition at this speed.
         for k in self._candidates[bisect.bisect_right(self._edges, speed_hz)]:
             margin = grid.pair(k, speed_hz)
             if margin.required_pct > 0 and margin.margin_pct < margin.approach_pct * widen:
                 near[k] = margin
+                if margin.margin_pct < margin.required_pct and grid.pairs[k].order == 1.0:
+                    one_x.append(grid.subjects[k])
+        if self.speeds and ts <= self.speeds[-1][0]:
+            return SpeedOutcome(self.sweeping(ts) if self.stays else [], (), [], tuple(one_x))
+        entry_seen = self.entries_known and bool(self.speeds)
+        self.entries_known = True
         self.speeds.append((ts, speed_hz))
         approach = self._forecasts()
         dwell_s = self.settings.resonance_dwell_s
@@ -221,6 +226,7 @@ class ResonanceWatch:
         state: list[MarginState] = []  # the arrays, built only for a transition's evidence
         warning_s = self.settings.approach_warning_s
         stays = self.stays
+        sweeping: list[str] = []
         for k in self._seen_order:
             key = self.keys[k]
             known = near.get(k)
@@ -234,20 +240,20 @@ class ResonanceWatch:
             if hold_rank or stay is not None:
                 if stay is None:
                     stay = stays[k] = BandStay()
-                stay.advance(ts, raise_rank, hold_rank, entry_seen)
-                if stay.outside:
+                raise_rank = stay.advance(ts, raise_rank, hold_rank, entry_seen, dwell_s)
+                if raise_rank < 0:  # outside every band
                     del stays[k]
                     stay = None
-                else:
-                    raise_rank = stay.dwelt_rank(ts, raise_rank, dwell_s)
+                    raise_rank = 0
+                elif stay.crossed and stay.sweeping(ts, dwell_s):
+                    sweeping.append(key.subject)
             forecast = soon.get(key.subject) if soon else None
             if forecast is not None:
                 f_raise, f_hold = forecast_ranks(forecast.seconds, warning_s)
                 raise_rank, hold_rank = max(raise_rank, f_raise), max(hold_rank, f_hold)
-            dwelt = None if stay is None else stay.seconds_in(ts)
-            evidence = functools.partial(_evidence, speed_hz, reading_id, grid, state, k, forecast, dwelt, dwell_s)
+            evidence = functools.partial(_evidence, speed_hz, reading_id, grid, state, k, forecast, stay, ts, dwell_s)
             out += engine.update_ranked(key, ts, raise_rank, hold_rank, evidence, reading_id)
-        return SpeedOutcome(self.sweeping(ts) if stays else [], approach, out)
+        return SpeedOutcome(sweeping, approach, out, tuple(one_x) if one_x else ())
 
     def _forecasts(self) -> tuple[ApproachForecast, ...]:
         """The ramp forecasts within the warning time (with hysteresis) from the latest
@@ -262,16 +268,16 @@ class ResonanceWatch:
 
 
 def _evidence(speed_hz: float, reading_id: str | None, grid: MarginGrid, state: list[MarginState],
-              k: int, forecast: ApproachForecast | None, dwelt_s: float | None, dwell_s: float
+              k: int, forecast: ApproachForecast | None, stay: BandStay | None, ts: float, dwell_s: float
               ) -> dict[str, Any]:
-    """A transition's evidence: the pair's margin row (the grid's arrays computed once per
-    speed, kept in ``state``), how long the excitation has stayed in its innermost band
-    (``dwell_s``, None outside every band) against the dwell a raise needs
+    """A transition's evidence at ``ts`` (epoch s): the pair's margin row (the grid's arrays
+    computed once per speed, kept in ``state``), how long the excitation has stayed in its
+    innermost band (``dwell_s``, None outside every band) against the dwell a raise needs
     (``required_dwell_s``), and its forecast."""
     if not state:
         state.append(grid.compute(speed_hz))
     out = {"speed_hz": speed_hz, "reading_id": reading_id, **grid.row(state[0], k).to_json(),
-           "dwell_s": dwelt_s, "required_dwell_s": dwell_s}
+           "dwell_s": None if stay is None else stay.seconds_in(ts), "required_dwell_s": dwell_s}
     if forecast is not None:
         out["approach"] = forecast.to_json()
     return out
