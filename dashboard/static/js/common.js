@@ -106,5 +106,30 @@ const WW = (function () {
   // Colours for chart series, chosen to stay apart for colour-blind readers.
   const palette = ["#1b6ca8", "#d1495b", "#2a9d8f", "#8d5a97", "#e09f3e", "#5c6b73", "#3d405b", "#81b29a"];
 
+  // Phones show each table row as a card whose cells carry their column's name (CSS
+  // content: attr(data-label), site.css); label the cells of every table, and again
+  // whenever a script fills one.
+  function labelCells() {
+    for (const table of document.querySelectorAll("main table.grid")) {
+      const names = [...table.querySelectorAll("thead th")].map(th => th.textContent.trim());
+      for (const body of table.tBodies) {
+        for (const row of body.rows) {
+          let col = 0;
+          for (const cell of row.cells) {
+            if (cell.colSpan === 1 && names[col] && cell.dataset.label !== names[col]) cell.dataset.label = names[col];
+            col += cell.colSpan;
+          }
+        }
+      }
+    }
+  }
+  let labelPending = false;
+  new MutationObserver(() => {
+    if (labelPending) return;
+    labelPending = true;
+    requestAnimationFrame(() => { labelPending = false; labelCells(); });
+  }).observe(document.querySelector("main"), { childList: true, subtree: true });
+  labelCells();
+
   return { api, el, num, when, timeZone, timeTicks, timeChart, zoneTag, stateTag, severityTag, palette, csrf };
 })();
