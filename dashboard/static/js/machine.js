@@ -15,6 +15,7 @@
     if (charts[id]) charts[id].destroy();
     target.replaceChildren();
     opts.width = width(target);
+    if (opts.scales && opts.scales.x && opts.scales.x.time) WW.timeChart(opts);
     charts[id] = new uPlot(opts, data, target);
     target.dataset.series = opts.series.slice(1).map(s => s.label).join("|");
     target.dataset.drawn = "1";
