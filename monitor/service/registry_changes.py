@@ -59,6 +59,7 @@ class RegistryChanges:
                     if mid in before:
                         self._unretired.add(mid)
                         core.board.drop(mid)
+                        core.latest.forget(mid)
                     continue
                 if before.get(mid) != machine:
                     self._unsettled.add(mid)

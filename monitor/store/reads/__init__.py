@@ -63,6 +63,7 @@ from monitor.store.reads.spectra import (
     MAX_SPECTRUM_BINS,
     get_spectrum,
     latest_spectra,
+    newest_velocity_spectra,
     spectrum_json,
 )
 from monitor.store.reads.trends import decimate_indices, trends
@@ -100,6 +101,7 @@ __all__ = [
     "mode_json",
     "mode_named",
     "nearest_margin",
+    "newest_velocity_spectra",
     "newest_alarm_with_ref",
     "open_alarm_counts",
     "point_zone_limits",
