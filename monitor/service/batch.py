@@ -17,7 +17,7 @@
 6. :func:`record_alarms`: alarm transitions in arrival order, each with its evidence
    spectra (monitor/service/evidence.py); the alarm events to publish;
 7. ``DetectorStates.save``: each machine's detector state written once;
-8. :func:`attach_statuses`: at most one retained status per machine.
+8. :func:`attach_statuses`: one retained status per machine touched.
 
 A crash at any instant leaves either nothing or everything of a batch committed. A reading
 another process stored between step 2 and step 5 makes the insert come back short
@@ -185,7 +185,7 @@ def evaluate(readings: Sequence[Decoded], evaluators: Mapping[str, MachineEvalua
         else:
             r = it.reading
             out.append(Evaluated(it, None, ev.observe_speed(r) if r.speed_hz > 0 else []))
-            board.saw_speed(r.machine, r.speed_hz)
+            board.saw_speed(r.machine, r.ts, r.speed_hz)
     return out
 
 
@@ -272,10 +272,8 @@ def record_alarms(s: Session, evaluated: Sequence[Evaluated], outside: Mapping[s
 
 def attach_statuses(evaluated: Sequence[Evaluated], outcomes: Mapping[Item, Outcome],
                     evaluators: Mapping[str, MachineEvaluator], board: StatusBoard) -> None:
-    """The retained status once per machine: on its last waveform's outcome, or on its
-    last outcome with events when only speed readings came."""
-    for machine in dict.fromkeys(e.item.machine for e in evaluated):
-        carrier = next((o for e in reversed(evaluated) if e.item.machine == machine
-                        and ((o := outcomes[e.item]).kind == OutcomeKind.WAVEFORM or o.events)), None)
-        if carrier is not None:
-            carrier.status = board.status(machine, evaluators[machine])
+    """The retained status once per machine, on its last outcome of the batch (a speed
+    message's too: the speed and the nearest margin follow the speed stream)."""
+    last = {e.item.machine: e.item for e in evaluated}
+    for machine, item in last.items():
+        outcomes[item].status = board.status(machine, evaluators[machine])
