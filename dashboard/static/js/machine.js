@@ -17,6 +17,7 @@
     opts.width = width(target);
     charts[id] = new uPlot(opts, data, target);
     target.dataset.series = opts.series.slice(1).map(s => s.label).join("|");
+    target.dataset.xLast = data[0].length ? data[0][data[0].length - 1] : "";
     target.dataset.drawn = "1";
     return charts[id];
   }
@@ -125,12 +126,17 @@
     const flagged = (p.flags || []).map(f => f.length > 0);
     const accepted = vals => vals.map((v, i) => (flagged[i] ? null : v));
     const overall = accepted(p.overall_mm_s_rms);
+    const top = Math.max(lim[2] ? lim[2] * 1.15 : 0, ...overall.filter(v => v !== null).map(v => v * 1.1)) || 1;
     const series = [{}, { label: "overall", stroke: "#1d2433", width: 2, value: (u, v) => WW.num(v, 2) + " mm/s RMS" }];
     const data = [p.ts, overall];
     if (flagged.some(Boolean)) {
+      // The scale follows accepted readings; a flagged level above it sits on the top edge,
+      // its own value in the legend.
+      const raw = p.overall_mm_s_rms.map((v, i) => (flagged[i] ? v : null));
       series.push({ label: "flagged by sensor health", stroke: "#8a8f98", width: 0, paths: () => null,
-        points: { show: true, size: 8, width: 1.5, fill: "#ffffff" }, value: (u, v) => (v === null ? "–" : WW.num(v, 2) + " mm/s RMS") });
-      data.push(p.overall_mm_s_rms.map((v, i) => (flagged[i] ? v : null)));
+        points: { show: true, size: 8, width: 1.5, fill: "#ffffff" },
+        value: (u, v, si, i) => (i === null || raw[i] === null ? "–" : WW.num(raw[i], 2) + " mm/s RMS (" + p.flags[i].join(", ") + ")") });
+      data.push(raw.map(v => (v === null ? null : Math.min(v, top * 0.98))));
     }
     const zoneColours = ["#7ea33a", "#d19a00", "#b3261e"];
     ["A/B", "B/C", "C/D"].forEach((name, i) => {
@@ -143,8 +149,7 @@
       series.push({ label: "baseline", stroke: "#8d5a97", dash: [2, 3], width: 2, points: { show: false }, value: (u, v) => WW.num(v, 2) + " mm/s RMS" });
       data.push(base.overall);
     }
-    const top = Math.max(lim[2] ? lim[2] * 1.15 : 0, ...overall.filter(v => v !== null).map(v => v * 1.1));
-    put("chart-overall", { height: 260, scales: { x: { time: true }, y: { range: [0, top || 1] } },
+    put("chart-overall", { height: 260, scales: { x: { time: true }, y: { range: [0, top] } },
       series: series, axes: [{}, { label: "overall velocity, mm/s RMS", size: 60 }] }, data);
     const labels = Object.keys(p.orders);
     if (!labels.length) { noData("chart-orders", "No order amplitudes stored."); return; }
