@@ -126,7 +126,8 @@ def commit_batch(core: Core, items: Sequence[Item], *, check_all: bool = True) -
             attach_statuses(evaluated, outcomes, taken.evaluators, core.board)
     core.states.saved(touched)
     core.cadence.remember(kept)
-    core.latest.remember(analysed)
+    with core.lock:  # the registry follower (periodic thread) drops retired points' spectra
+        core.latest.remember(analysed)
     return [outcomes[it] for it in items]
 
 

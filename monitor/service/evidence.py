@@ -15,7 +15,7 @@ second transition) and is marked evidence, so retention never thins it
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -97,7 +97,12 @@ class LatestSpectra:
 
     def forget(self, machine: str) -> None:
         """A retired machine's spectra are no longer anyone's evidence."""
-        for key in [k for k in self._by_point if k[0] == machine]:
+        self.keep_points(machine, ())
+
+    def keep_points(self, machine: str, points: Iterable[str]) -> None:
+        """Only ``points`` remain of ``machine``: a retired point's spectrum is no evidence."""
+        kept = set(points)
+        for key in [k for k in self._by_point if k[0] == machine and k[1] not in kept]:
             del self._by_point[key]
 
 

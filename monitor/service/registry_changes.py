@@ -64,6 +64,7 @@ class RegistryChanges:
                 if before.get(mid) != machine:
                     self._unsettled.add(mid)
                     core.board.keep_points(mid, [p.id for p in machine.points])
+                    core.latest.keep_points(mid, [p.id for p in machine.points])
             for m in core.states.registry.machines:
                 core.board.ensure(m.id)
 
