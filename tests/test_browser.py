@@ -3,7 +3,6 @@ charts, acknowledge an alarm. Screenshots go to test-artifacts/."""
 
 from __future__ import annotations
 
-import json
 import os
 import shutil
 import socket
@@ -16,11 +15,9 @@ from pathlib import Path
 import numpy as np
 import pytest
 from dashboard_seed import BLOCK, FS_HZ, PASSWORDS, T_END, seed
+from service_helpers import message, offline_service
 
-from monitor.config import load_settings
-from monitor.io.streams import reading_message
 from monitor.model.readings import SpeedReading, Waveform
-from monitor.service.service import Service
 
 CHROMIUM = "/usr/bin/chromium"
 ARTIFACTS = Path(__file__).resolve().parent.parent / "test-artifacts"
@@ -99,14 +96,12 @@ def _flagged_then_speed_topic(url: str) -> None:
         x = 0.5 * np.sin(2 * np.pi * 14.0 * t) + np.random.default_rng(k).normal(0.0, 0.01, BLOCK)
         if k == 1:
             x[[400, 1400, 2400, 3000, 3600]] = 400.0
-        msgs.append(reading_message(Waveform("fan-005", "de-h", t0 + 600.0 * k, FS_HZ, "m/s^2", x, speed_hz=14.0)))
-    msgs += [reading_message(r) for r in speeds]
-    settings = load_settings(None, env={}, overrides={
-        "broker.url": "mqtt://127.0.0.1:1", "database.url": url, "retention.enabled": False})
-    svc = Service(settings, clock=lambda: speeds[-1].ts + 60.0, stale_check_s=0)
+        msgs.append(message(Waveform("fan-005", "de-h", t0 + 600.0 * k, FS_HZ, "m/s^2", x, speed_hz=14.0)))
+    msgs += [message(r) for r in speeds]
+    svc = offline_service(url, clock=lambda: speeds[-1].ts + 60.0)
     try:
-        for topic, payload in msgs:
-            svc.handle_batch([(topic, json.dumps(payload).encode())])
+        for m in msgs:
+            svc.handle_batch([m])
     finally:
         svc.store.close()
 
