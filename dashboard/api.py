@@ -86,6 +86,7 @@ def machine_trends(machine_id: str):
     return jsonify({
         "machine": m.id, "from": iso_utc(t0), "to": iso_utc(t1), "max_points": n,
         "points": reads.trends(db_session(), m, wanted, t0, t1, n),
+        "speed": reads.speed_trend(db_session(), m, t0, t1, n),
     })
 
 

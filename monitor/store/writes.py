@@ -17,10 +17,10 @@ import datetime as dt
 import math
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, cast
 
 import numpy as np
-from sqlalchemy import Connection, Table, and_, bindparam, select
+from sqlalchemy import Connection, Table, and_, bindparam, select, update
 from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.orm import Session
 
@@ -41,6 +41,10 @@ from monitor.store.models import (
 )
 
 CLOSED_STATES = frozenset({"cleared"})
+#: The unique key of a stored spectrum.
+SNAPSHOT_KEY = ("machine_id", "point_id", "ts", "kind")
+# The ORM types a model's __table__ as any FromClause; this is its Table.
+_SNAPSHOTS = cast(Table, SpectrumSnapshot.__table__)
 DEAD_LETTER_HEAD_BYTES = 256
 
 
@@ -118,15 +122,16 @@ def _orders_json(analysis: ReadingAnalysis) -> list[dict[str, Any]]:
     ]
 
 
-def _snapshot_values(
-    analysis: ReadingAnalysis, ts: dt.datetime, kind: str, spectrum: Spectrum, evidence: bool
+def spectrum_row(
+    machine: str, point: str, ts: float | dt.datetime, kind: str, spectrum: Spectrum, *, evidence: bool = False
 ) -> dict[str, Any]:
+    """The ``spectrum_snapshots`` row of one spectrum of a point's reading at ``ts``."""
     freq = np.asarray(spectrum.freq_hz, dtype=np.float64)
     amp = np.asarray(spectrum.amplitude)
     return {
-        "machine_id": analysis.machine,
-        "point_id": analysis.point,
-        "ts": ts,
+        "machine_id": machine,
+        "point_id": point,
+        "ts": to_datetime(ts),
         "kind": kind,
         "unit": spectrum.unit,
         "scaling": spectrum.scaling,
@@ -192,15 +197,43 @@ def measurement_values(
 
 
 def snapshot_rows(
-    analysis: ReadingAnalysis, *, evidence: bool = False
+    analysis: ReadingAnalysis, *, evidence: bool = False, envelope: bool = False
 ) -> list[dict[str, Any]]:
-    """The ``spectrum_snapshots`` rows (native, then velocity) of one analysed reading."""
+    """The ``spectrum_snapshots`` rows (native, then velocity; then the bearing envelope
+    spectrum when ``envelope`` and the analysis has one) of one analysed reading."""
     ts = to_datetime(analysis.ts)
-    return [
-        _snapshot_values(analysis, ts, kind, spectrum, evidence)
-        for kind, spectrum in (("native", analysis.spectrum), ("velocity", analysis.velocity_spectrum))
-        if spectrum is not None
-    ]
+    kinds: list[tuple[str, Spectrum | None]] = [("native", analysis.spectrum),
+                                                ("velocity", analysis.velocity_spectrum)]
+    if envelope:
+        kinds.append(("envelope", analysis.envelope_spectrum))
+    return [spectrum_row(analysis.machine, analysis.point, ts, kind, spectrum, evidence=evidence)
+            for kind, spectrum in kinds if spectrum is not None]
+
+
+def keep_evidence_snapshots(session: Session, rows: Sequence[Mapping[str, Any]]) -> list[int]:
+    """Store ``snapshot_rows(..., evidence=True)`` as alarm evidence; the id of each row, in
+    order. A spectrum stored already (by the snapshot cadence, or as the evidence of an
+    earlier transition) is not stored again: its row is marked evidence, so retention keeps
+    it, and its id returned."""
+    t = _SNAPSHOTS.c
+    ids: list[int] = []
+    for row in rows:
+        sid = insert_ignore(session, _SNAPSHOTS, row, SNAPSHOT_KEY)
+        if sid is None:
+            sid = session.execute(select(t.id).where(
+                t.machine_id == row["machine_id"], t.point_id == row["point_id"], t.ts == row["ts"],
+                t.kind == row["kind"])).scalar_one()
+            mark_evidence(session, [sid])
+        ids.append(int(sid))
+    return ids
+
+
+def mark_evidence(session: Session, snapshot_ids: Sequence[int]) -> None:
+    """Mark stored spectra as alarm evidence (retention never thins them)."""
+    if snapshot_ids:
+        t = _SNAPSHOTS
+        session.execute(update(t).where(t.c.id.in_(list(snapshot_ids)), t.c.evidence.is_(False))
+                        .values(evidence=True))
 
 
 def insert_many_ignore(
@@ -334,9 +367,15 @@ def record_transitions(
     transitions: Iterable[Transition],
     *,
     spectrum_snapshot_id: int | None = None,
+    spectra: Sequence[Mapping[str, Any]] = (),
 ) -> list[int]:
     """Apply the detectors' alarm transitions to the ``alarms`` rows and append them to
     ``alarm_transitions``, inside the caller's transaction.
+
+    ``spectrum_snapshot_id`` (the velocity spectrum kept as evidence) goes into each
+    transition's row and evidence, ``spectra`` (every spectrum kept or referred to as
+    evidence: ``point``, ``kind``, ``spectrum_id``, ``ts``, ``age_s``) into its evidence
+    as ``spectra`` (docs/alarms.md, "Evidence spectra").
 
     An alarm is identified by (machine, point, kind, subject); a transition opens a new alarm row when none of that identity is open
     (state not ``cleared``). A transition already stored (same alarm identity, name and
@@ -367,6 +406,8 @@ def record_transitions(
         evidence = jsonable(t.evidence) if t.evidence is not None else None
         if isinstance(evidence, dict) and spectrum_snapshot_id is not None:
             evidence["spectrum_snapshot_id"] = spectrum_snapshot_id
+        if isinstance(evidence, dict) and spectra:
+            evidence["spectra"] = [dict(x) for x in spectra]
         if alarm is None:
             alarm = Alarm(
                 ref=t.ref,

@@ -9,7 +9,10 @@ By idea:
   their history and the baseline restarts asked for;
 - :mod:`~monitor.store.reads.evaluations`: what the dashboard shows of the detector's
   stored evaluations, the margin table at a machine's speed, the zone limits of a point;
-- :mod:`~monitor.store.reads.trends`: decimated trends of a machine's points;
+- :mod:`~monitor.store.reads.trends`: decimated trends of a machine's points and of its
+  running speed;
+- :mod:`~monitor.store.reads.speeds`: the running speed people see (speed readings and
+  accepted readings);
 - :mod:`~monitor.store.reads.spectra`: stored spectra;
 - :mod:`~monitor.store.reads.alarms`: the alarm history, in the one JSON shape of an alarm
   (REST API and MQTT alarm events);
@@ -63,9 +66,18 @@ from monitor.store.reads.spectra import (
     MAX_SPECTRUM_BINS,
     get_spectrum,
     latest_spectra,
+    newest_velocity_spectra,
     spectrum_json,
 )
-from monitor.store.reads.trends import decimate_indices, trends
+from monitor.store.reads.speeds import (
+    SPEED_TOPIC,
+    RunningSpeed,
+    SpeedCandidate,
+    health_flags,
+    latest_speed_readings,
+    running_speed,
+)
+from monitor.store.reads.trends import decimate_indices, speed_trend, trends
 
 __all__ = [
     "MAX_AUDIT_PAGE",
@@ -100,6 +112,7 @@ __all__ = [
     "mode_json",
     "mode_named",
     "nearest_margin",
+    "newest_velocity_spectra",
     "newest_alarm_with_ref",
     "open_alarm_counts",
     "point_zone_limits",
@@ -107,4 +120,11 @@ __all__ = [
     "spectrum_json",
     "start_state",
     "trends",
+    "SPEED_TOPIC",
+    "RunningSpeed",
+    "SpeedCandidate",
+    "health_flags",
+    "latest_speed_readings",
+    "running_speed",
+    "speed_trend",
 ]
