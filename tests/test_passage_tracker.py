@@ -204,6 +204,21 @@ class TestSplitting:
             SweepRules(min_rate_hz_s=0)
 
 
+    def test_a_waveform_at_a_speed_message_instant_takes_its_place(self) -> None:
+        # a speed message and the waveform of the same instant, in either order, make one
+        # reading with the waveform's speed and 1x (docs/modes.md "Sweeps")
+        for first, second in ((SpeedPoint(10.0, 20.0), SpeedPoint(10.0, 20.1, 2.0, 30.0)),
+                              (SpeedPoint(10.0, 20.1, 2.0, 30.0), SpeedPoint(10.0, 20.0))):
+            splitter = SweepSplitter()
+            splitter.update(first)
+            splitter.update(second)
+            assert splitter.snapshot()["pending"] == [10.0, 20.1, 2.0, 30.0]
+        splitter = SweepSplitter()
+        splitter.update(SpeedPoint(10.0, 20.0, 1.0, None))
+        splitter.update(SpeedPoint(10.0, 20.5, 2.0, None))  # both with a 1x: the first stays
+        assert splitter.snapshot()["pending"] == [10.0, 20.0, 1.0, None]
+
+
 class TestState:
     def test_snapshot_carries_on_after_a_restart(self) -> None:
         segments = RUN_UP + [(20.0, -0.5), (60.0, 0.0)]

@@ -34,6 +34,11 @@ is the longest time the speed may take to move by ``noise_hz`` inside a sweep:
    top speed at an average of ``min_rate_hz_s`` or faster; a shorter or slower leg was
    steady running.
 
+Readings come in time order; one not newer than the newest is ignored, but for a reading
+at the newest one's instant that carries a 1x amplitude the newest lacks: it takes its
+place (a speed message and the waveform of the same instant, in either order, make one
+reading with the waveform's speed and 1x).
+
 Memory: a leg keeps at most ``max_points`` readings (past that every other one is
 dropped, halving its resolution), the look-back for rule 4 at most ``W`` seconds of
 readings (and never more than ``max_points``).
@@ -174,12 +179,17 @@ class SweepSplitter:
     def update(self, point: SpeedPoint) -> tuple[Sweep, ...]:
         """Feed one reading; returns the sweeps it completes.
 
-        A reading not newer than the last one is ignored (the caller feeds time order).
-        Raises ValueError for a non-finite time, a negative or non-finite speed, or a
-        non-finite amplitude or phase.
+        A reading not newer than the last one is ignored (the caller feeds time order),
+        but for one at the last one's instant with a 1x amplitude the last one lacks,
+        which takes its place (module docstring). Raises ValueError for a non-finite
+        time, a negative or non-finite speed, or a non-finite amplitude or phase.
         """
         p = _checked(point)
         if self._last_ts is not None and p.ts <= self._last_ts:
+            held = self._pending
+            if (held is not None and held.ts == p.ts and held.amplitude is None
+                    and p.amplitude is not None):
+                self._pending = p  # still waiting for its next neighbour (rule 3)
             return ()
         self._last_ts = p.ts
         prev, pending = self._prev, self._pending
