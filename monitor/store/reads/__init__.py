@@ -58,7 +58,7 @@ from monitor.store.reads.people import (
     get_user,
     list_api_tokens,
 )
-from monitor.store.reads.service import StartState, start_state
+from monitor.store.reads.service import StartState, passage_tracker_state, start_state
 from monitor.store.reads.spectra import (
     MAX_SPECTRUM_BINS,
     get_spectrum,
@@ -102,6 +102,7 @@ __all__ = [
     "nearest_margin",
     "newest_alarm_with_ref",
     "open_alarm_counts",
+    "passage_tracker_state",
     "point_zone_limits",
     "recent_baseline_restarts",
     "spectrum_json",
