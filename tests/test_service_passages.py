@@ -10,84 +10,31 @@ the textbook method's: the half-power estimate of the natural frequency and damp
 amplification factor) and the SDOF phase, which lags the force by 45 deg at the lower
 half-power point and 135 deg at the upper (Thomson, forced SDOF response).
 
-A sweep is quasi-steady only when slow compared with the mode's decay: the sweep rate
-here, 0.1 Hz/s, is below the largest linear sweep rate for a steady-state response,
-54 fr^2 zeta^2 Hz/min = 0.144 Hz/s at 20 Hz and zeta 0.02 (D. J. Ewins, *Modal Testing:
-Theory, Practice and Application*, sweep rate; from memory). Faster, the response peak
-lags the sweep (1.6 % at 0.5 Hz/s, docs/modes.md).
+The run (tests/passage_run.py) sweeps at 0.1 Hz/s, slow enough for a quasi-steady
+response (the sweep-rate limit is cited there).
 """
 
 from __future__ import annotations
 
-import time
 from pathlib import Path
 from typing import Any
 
 import pytest
-from service_helpers import message, offline_service
+from passage_run import FN_HZ, ZETA, feed, machine, run_messages, store_with
 from sqlalchemy import select
 
-from monitor.model.readings import SpeedReading, Waveform
-from monitor.model.registry import Machine, Mode, Point, Registry
-from monitor.sim.simulate import MachineModel, ModalMode, simulate_run
-from monitor.sim.speed_profile import SpeedProfile
-from monitor.store import Store, import_registry, upgrade
+from monitor.model.registry import Machine, Mode
+from monitor.store import Store
 from monitor.store.models import Alarm, AlarmTransitionRow, PassageRow, PassageTrackerState
-
-FN_HZ, ZETA = 20.0, 0.02
-RATE_HZ_S = 0.1
-#: A run-up from 17 to 23 Hz and a coast-down back, with a steady stretch around each.
-PROFILE = (SpeedProfile.steady(17.0, 15.0)
-           .then(SpeedProfile.ramp(17.0, 23.0, 6.0 / RATE_HZ_S))
-           .then(SpeedProfile.steady(23.0, 15.0))
-           .then(SpeedProfile.ramp(23.0, 17.0, 6.0 / RATE_HZ_S))
-           .then(SpeedProfile.steady(17.0, 15.0)))
-#: A reading every 0.5 s: 0.05 Hz apart at 0.1 Hz/s, 16 across the 0.8 Hz half-power band.
-INTERVAL_S = 0.5
-FS_HZ = 2560.0
-
-
-def machine(modes: tuple[Mode, ...] = ()) -> Machine:
-    return Machine("fan-9", name="Test fan", machine_class="group2/flexible",
-                   speed_range_rpm=(900.0, 1500.0), excitation_orders=(1.0,),
-                   points=(Point("de-h", fs_hz=FS_HZ),), modes=modes)
 
 
 @pytest.fixture(scope="module")
 def traffic() -> list[tuple[str, bytes]]:
-    """The run's messages: before each block a speed message of its instant (mean speed
-    over the block), then the block with its once-per-revolution pulses; ending a minute
-    ago."""
-    model = MachineModel("fan-9", modes=(ModalMode(FN_HZ, ZETA, modal_mass_kg=50.0),),
-                         rigid_mass_kg=None, unbalance_kg_m=1e-3, sensor_noise_m_s2=0.01)
-    start = time.time() - 60.0 - PROFILE.duration_s
-    readings = simulate_run(model, PROFILE, points=["de-h"], fs_hz=FS_HZ, block_samples=2560,
-                            interval_s=INTERVAL_S, start_ts=start, seed=13, once_per_rev=True)
-    assert any(isinstance(r, SpeedReading) for r in readings)
-    assert all(r.once_per_rev_s is not None for r in readings if isinstance(r, Waveform))
-    return [message(r) for r in readings]
+    return run_messages()
 
 
-def store_with(tmp_path: Path, name: str, spec: Machine) -> str:
-    url = f"sqlite:///{tmp_path / name}"
-    upgrade(url)
-    store = Store.open(url)
-    try:
-        with store.transaction() as s:
-            import_registry(s, Registry(machines=(spec,)))
-    finally:
-        store.close()
-    return url
-
-
-def feed(url: str, messages: list[tuple[str, bytes]], batch: int = 25) -> None:
-    svc = offline_service(url)
-    try:
-        for i in range(0, len(messages), batch):
-            outs = svc.handle_batch(messages[i:i + batch])
-            assert all(o.kind in ("waveform", "speed") for o in outs), [o.reason for o in outs]
-    finally:
-        svc.store.close()
+def db(tmp_path: Path, name: str, spec: Machine) -> str:
+    return store_with(f"sqlite:///{tmp_path / name}", spec)
 
 
 def stored(url: str) -> dict[str, Any]:
@@ -110,7 +57,7 @@ def stored(url: str) -> dict[str, Any]:
 
 def test_a_run_up_and_a_coast_down_become_two_candidate_passages(
         tmp_path: Path, traffic: list[tuple[str, bytes]]) -> None:
-    url = store_with(tmp_path, "fresh.sqlite", machine())
+    url = db(tmp_path, "fresh.sqlite", machine())
     feed(url, traffic)
     got = stored(url)["passages"]
     assert [p["kind"] for p in got] == ["run-up", "coast-down"]
@@ -136,7 +83,7 @@ def test_a_restart_midway_carries_on_as_an_uninterrupted_run(
     # A stored mode 8 % below the passage: each passage raises or keeps a mode-shift alarm
     # (beyond the 5 % tolerance), so the alarms are compared too.
     spec = machine((Mode("pedestal", 18.5, damping_ratio=0.02, source="impact test"),))
-    whole = store_with(tmp_path, "whole.sqlite", spec)
+    whole = db(tmp_path, "whole.sqlite", spec)
     feed(whole, traffic)
     reference = stored(whole)
     assert [(p["kind"], p["mode"]) for p in reference["passages"]] == [
@@ -151,7 +98,7 @@ def test_a_restart_midway_carries_on_as_an_uninterrupted_run(
 
     # The same messages with the service restarted twice, each time in the middle of a
     # sweep: once in the run-up below the mode, once in the coast-down above it.
-    url = store_with(tmp_path, "restarted.sqlite", spec)
+    url = db(tmp_path, "restarted.sqlite", spec)
     start = 0
     for cut in (len(traffic) // 5 + 7, len(traffic) * 3 // 5 + 3, len(traffic)):
         feed(url, traffic[start:cut], batch=17)  # another service each time, other batches

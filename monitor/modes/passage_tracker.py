@@ -49,6 +49,9 @@ from monitor.modes.sweeps import (
     SweepSplitter,
 )
 
+#: The ``source`` of a mode identified in a run-up or coast-down (a registry mode made
+#: from a passage, the evidence of a passage's mode-shift finding).
+PASSAGE_SOURCE = "run-up/coast-down"
 #: A passage's phase change between its half-power speeds, degrees: 90 for one mode
 #: (Thomson); the band allows for a neighbouring mode, a flexible support and the
 #: sweep's delay (common practice, no published bound).

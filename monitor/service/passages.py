@@ -43,7 +43,7 @@ from monitor.detection.results import ReadingEvaluation
 from monitor.model.bounds import check_mode
 from monitor.model.registry import Machine, RegistryError
 from monitor.model.timefmt import iso_utc
-from monitor.modes.passage_tracker import PassageTracker, SweepPassages
+from monitor.modes.passage_tracker import PASSAGE_SOURCE, PassageTracker, SweepPassages
 from monitor.modes.runup import Passage
 from monitor.modes.shift import ModeShift, compare_modes
 from monitor.modes.sweeps import SweepRules
@@ -55,8 +55,6 @@ log = logging.getLogger("whirlwatch.service")
 AMPLITUDE_UNIT = "mm/s"
 #: Layout version of :meth:`PassageTrackers.snapshot`.
 STATE_VERSION = 1
-#: The ``source`` of a mode made from a passage, and of its mode-shift findings' evidence.
-PASSAGE_SOURCE = "run-up/coast-down"
 
 
 def sweep_rules(machine: Machine) -> SweepRules:
