@@ -43,7 +43,12 @@ from monitor.detection.results import ReadingEvaluation
 from monitor.model.bounds import check_mode
 from monitor.model.registry import Machine, RegistryError
 from monitor.model.timefmt import iso_utc
-from monitor.modes.passage_tracker import PASSAGE_SOURCE, PassageTracker, SweepPassages
+from monitor.modes.passage_tracker import (
+    PASSAGE_SOURCE,
+    PassageTracker,
+    SweepPassages,
+    stop_speed_hz,
+)
 from monitor.modes.runup import Passage
 from monitor.modes.shift import ModeShift, compare_modes
 from monitor.modes.sweeps import SweepRules
@@ -60,9 +65,9 @@ STATE_VERSION = 1
 def sweep_rules(machine: Machine) -> SweepRules:
     """The sweep rules of ``machine``'s trackers: the defaults of
     :class:`~monitor.modes.sweeps.SweepRules`, stopped below half the minimum operating
-    speed (as the ``passage`` command's ``--min-speed``: at very low speed the 1x of an
-    accelerometer is noise)."""
-    return SweepRules(stop_hz=machine.speed_range_hz[0] / 2.0)
+    speed (:func:`~monitor.modes.passage_tracker.stop_speed_hz`, as the ``passage``
+    command)."""
+    return SweepRules(stop_hz=stop_speed_hz(machine))
 
 
 @dataclass(frozen=True, eq=False)
