@@ -627,6 +627,8 @@ def test_a_plant_month_with_faults_matches_an_uninterrupted_run(
     for alarm_kind in ("amplitude_growth", "resonance_proximity", "sensor_fault"):
         assert {(alarm_kind, "raised"), (alarm_kind, "cleared")} <= kinds, (alarm_kind, fig)
     assert r["acks"] >= 3 and len(ref.acks) == len(ACK_AT), fig
+    # The fan's run-ups and coast-downs give passages (invariant 6 compares them).
+    assert r["passages"] > 0, fig
     assert ref.mode_answer is not None and ref.mode_answer[0] == 201, ref.mode_answer
     # The edit reached the detectors: its mode's resonance alarm, which nothing else raises.
     assert any(t[2].startswith(NEW_MODE["name"] + "@") and t[3] == "raised"
