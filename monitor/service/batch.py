@@ -10,13 +10,15 @@
    brought up to date (monitor/service/states.py), with the changes made outside the
    readings (registry closings, acknowledgements);
 4. :func:`evaluate`: each new reading through its machine's detector, in arrival order;
+   :func:`track_passages`: each through its machine's passage trackers, the mode-shift
+   alarms of the passages found (monitor/service/passages.py);
    :func:`clear_processing_faults` for the streams processed again;
 5. :func:`build_rows` and :func:`insert_rows`: measurements, speed readings and spectra
    in multi-row ``INSERT ... ON CONFLICT DO NOTHING`` (one row per reading, built by the
-   store's own row builders);
+   store's own row builders), and the passages found;
 6. :func:`record_alarms`: alarm transitions in arrival order, each with its evidence
    spectra (monitor/service/evidence.py); the alarm events to publish;
-7. ``DetectorStates.save``: each machine's detector state written once;
+7. ``DetectorStates.save``: each machine's detector state (and passage trackers') written once;
 8. :func:`attach_statuses`: one retained status per machine touched.
 
 A crash at any instant leaves either nothing or everything of a batch committed. A reading
@@ -51,15 +53,18 @@ from monitor.service.items import (
     SpeedMessage,
     WaveformMessage,
 )
+from monitor.service.passages import FoundPassage, feed_reading
 from monitor.service.payloads import StatusBoard, alarm_events
+from monitor.service.states import DetectorStates
 from monitor.store import add_dead_letter, record_transitions
-from monitor.store.models import Measurement, SpectrumSnapshot, SpeedReadingRow, utcnow
+from monitor.store.models import Measurement, PassageRow, SpectrumSnapshot, SpeedReadingRow, utcnow
 from monitor.store.writes import (
     SNAPSHOT_KEY,
     existing_measurements,
     existing_speed_readings,
     insert_many_ignore,
     measurement_values,
+    passage_values,
     snapshot_rows,
     speed_reading_values,
     to_datetime,
@@ -71,6 +76,8 @@ SPEED_READINGS = cast(Table, SpeedReadingRow.__table__)
 SNAPSHOTS = cast(Table, SpectrumSnapshot.__table__)
 MEASUREMENT_KEY = ("machine_id", "point_id", "ts")
 SPEED_READING_KEY = ("machine_id", "ts")
+PASSAGES = cast(Table, PassageRow.__table__)
+PASSAGE_KEY = ("machine_id", "point_id", "started_at", "seq")
 
 
 @dataclass(eq=False)
@@ -117,9 +124,11 @@ def commit_batch(core: Core, items: Sequence[Item], *, check_all: bool = True) -
             kept = core.cadence.kept(c, [it for it in fresh if isinstance(it, WaveformMessage)
                                          and it.analysis is not None])
             evaluated = evaluate(fresh, taken.evaluators, core.board)
+            found = track_passages(evaluated, taken.evaluators, core.states)
             clear_processing_faults(evaluated, taken.evaluators)
             rows = build_rows(evaluated, kept, core.cadence)
             insert_rows(c, rows)
+            insert_passages(c, found)
             analysed = [it.analysis for it in fresh if isinstance(it, WaveformMessage) and it.analysis is not None]
             outcomes.update(record_alarms(s, evaluated, taken.outside, core.latest, analysed))
             core.states.save(c, touched)
@@ -188,6 +197,26 @@ def evaluate(readings: Sequence[Decoded], evaluators: Mapping[str, MachineEvalua
             out.append(Evaluated(it, None, ev.observe_speed(r) if r.speed_hz > 0 else []))
             board.saw_speed(r.machine, r.ts, r.speed_hz)
     return out
+
+
+def track_passages(evaluated: Sequence[Evaluated], evaluators: Mapping[str, MachineEvaluator],
+                   states: DetectorStates) -> list[FoundPassage]:
+    """Each reading through its machine's passage trackers, in arrival order; the passages
+    of the sweeps completed, whose mode-shift transitions ride on the reading that
+    completed them (monitor/service/passages.py)."""
+    out: list[FoundPassage] = []
+    for e in evaluated:
+        machine = e.item.machine
+        found, trans = feed_reading(states.passages(machine), evaluators[machine], e.item, e.evaluation)
+        out += found
+        e.transitions.extend(trans)
+    return out
+
+
+def insert_passages(conn: Connection, found: Sequence[FoundPassage]) -> None:
+    """Insert the passages found (one stored already, by a batch that raced, is skipped)."""
+    insert_many_ignore(conn, PASSAGES, [passage_values(f.machine, f.point, f.sweep, f.seq, f.detected_at,
+                                                       f.shift) for f in found], PASSAGE_KEY)
 
 
 def clear_processing_faults(evaluated: Sequence[Evaluated], evaluators: Mapping[str, MachineEvaluator]) -> None:

@@ -6,7 +6,8 @@ builds each reading's rows with :func:`measurement_values`, :func:`snapshot_rows
 :func:`speed_reading_values` and inserts a whole batch with :func:`insert_many_ignore`
 (``INSERT ... ON CONFLICT DO NOTHING``), so a redelivered message inserts nothing; alarm
 transitions go through :func:`record_transitions`, each machine's detector state through
-:func:`save_detector_states`. Two service processes racing on the same reading are
+:func:`save_detector_states` and its passage trackers' through :func:`save_passage_trackers`;
+a sweep's passages are rows built by :func:`passage_values`. Two service processes racing on the same reading are
 serialised by the unique key the same way. The dashboard's one write here is
 :func:`acknowledge_alarm`.
 """
@@ -28,12 +29,16 @@ from monitor.analysis.waveform import ReadingAnalysis, Spectrum
 from monitor.detection.alarms import Transition
 from monitor.model.jsonsafe import jsonable
 from monitor.model.readings import SpeedReading, Waveform
+from monitor.model.timefmt import iso_utc
+from monitor.modes.passage_tracker import SweepPassages
+from monitor.modes.shift import ModeShift
 from monitor.store.models import (
     Alarm,
     AlarmTransitionRow,
     DeadLetter,
     DetectorState,
     Measurement,
+    PassageTrackerState,
     SpectrumSnapshot,
     SpeedReadingRow,
     pack_amplitudes,
@@ -523,6 +528,54 @@ def save_detector_states(
          "ts": to_datetime(ts) if ts is not None else None, "updated_at": now}
         for machine, (state, ts) in sorted(states.items())
     ])
+
+
+def save_passage_trackers(session: Session | Connection, states: Mapping[str, Mapping[str, Any]]) -> None:
+    """Upsert the passage trackers' state of several machines (``{machine: state}``,
+    monitor/service/passages.py: plain JSON, finite floats only) with one statement,
+    inside the caller's transaction."""
+    if not states:
+        return
+    dialect = _dialect_name(session)
+    ins_mod = postgresql if dialect == "postgresql" else sqlite
+
+    def build() -> Any:
+        stmt = ins_mod.insert(PassageTrackerState.__table__)
+        return stmt.on_conflict_do_update(
+            index_elements=["machine_id"],
+            set_={"state": stmt.excluded.state, "updated_at": stmt.excluded.updated_at})
+
+    now = utcnow()
+    session.execute(_statement(("save_passage_trackers", dialect), build), [
+        {"machine_id": m, "state": state, "updated_at": now} for m, state in sorted(states.items())])
+
+
+def passage_values(machine: str, point: str, sp: SweepPassages, seq: int, detected_at: float,
+                   shift: ModeShift | None) -> dict[str, Any]:
+    """The ``passages`` row of passage ``seq`` of sweep ``sp`` at ``point``, found by the
+    reading at ``detected_at`` (epoch s): with the stored mode that claimed it and its
+    shift, or a candidate mode ('open') when ``shift`` is None; the sweep's Bode points
+    (``[{"ts", "speed_hz", "amplitude", "phase_deg"}]``, phase unwrapped along the sweep)."""
+    p, sweep, bode = sp.passages[seq], sp.sweep, sp.bode
+    points: list[dict[str, Any]] = []
+    if bode is not None:
+        used = [q for q in sweep.points if q.amplitude is not None]
+        phase = bode.phase_deg
+        points = [{"ts": iso_utc(q.ts, timespec="milliseconds"), "speed_hz": float(bode.speed_hz[i]),
+                   "amplitude": float(bode.amplitude[i]),
+                   "phase_deg": None if phase is None else float(phase[i])} for i, q in enumerate(used)]
+    return {
+        "machine_id": machine, "point_id": point, "seq": seq, "kind": sweep.kind, "method": sp.method,
+        "started_at": to_datetime(sweep.started_at), "ended_at": to_datetime(sweep.ended_at),
+        "detected_at": to_datetime(detected_at), "natural_frequency_hz": p.frequency_hz,
+        "critical_speed_hz": p.critical_speed_hz, "amplification_factor": p.amplification_factor,
+        "damping_ratio": p.damping_ratio, "peak_amplitude": p.peak_amplitude,
+        "unit": bode.unit if bode is not None else "", "phase_at_peak_deg": _num(p.phase_at_peak_deg),
+        "phase_change_deg": _num(p.phase_change_deg), "mode": None if shift is None else shift.mode,
+        "shift_pct": None if shift is None else _num(shift.shift_pct), "points": points,
+        "candidate": "open" if shift is None else None,
+        "decided_by": None, "decided_at": None, "accepted_mode": None,
+    }
 
 
 def add_dead_letter(

@@ -16,6 +16,8 @@ By idea:
 - :mod:`~monitor.store.reads.spectra`: stored spectra;
 - :mod:`~monitor.store.reads.alarms`: the alarm history, in the one JSON shape of an alarm
   (REST API and MQTT alarm events);
+- :mod:`~monitor.store.reads.passages`: the passages of run-ups and coast-downs, and the
+  candidate modes among them;
 - :mod:`~monitor.store.reads.people`: users, API tokens and the audit trail;
 - :mod:`~monitor.store.reads.service`: what a starting service reads.
 
@@ -53,6 +55,7 @@ from monitor.store.reads.machines import (
     mode_named,
     recent_baseline_restarts,
 )
+from monitor.store.reads.passages import find_passages, get_passage, passage_json
 from monitor.store.reads.people import (
     MAX_AUDIT_PAGE,
     active_user,
@@ -61,7 +64,7 @@ from monitor.store.reads.people import (
     get_user,
     list_api_tokens,
 )
-from monitor.store.reads.service import StartState, start_state
+from monitor.store.reads.service import StartState, passage_tracker_state, start_state
 from monitor.store.reads.spectra import (
     MAX_SPECTRUM_BINS,
     get_spectrum,
@@ -84,6 +87,9 @@ __all__ = [
     "active_user",
     "audit_event_json",
     "find_audit_events",
+    "find_passages",
+    "get_passage",
+    "passage_json",
     "get_user",
     "list_api_tokens",
     "MAX_SPECTRUM_BINS",
@@ -115,6 +121,7 @@ __all__ = [
     "newest_velocity_spectra",
     "newest_alarm_with_ref",
     "open_alarm_counts",
+    "passage_tracker_state",
     "point_zone_limits",
     "recent_baseline_restarts",
     "spectrum_json",

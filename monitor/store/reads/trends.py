@@ -18,12 +18,13 @@ from monitor.store.reads.speeds import FIRST_FLAG, SPEED_TOPIC, health_flags
 def trends(s: Session, m: Machine, point_ids: list[str], t0: dt.datetime, t1: dt.datetime,
            max_points: int) -> list[dict[str, Any]]:
     """Per point: overall velocity (mm/s RMS), speed (Hz) and order amplitudes (1x, 2x and
-    each excitation order, velocity mm/s peak) in [t0, t1], at most ``max_points``
-    readings, with the ISO 20816 zone boundaries of the point, the learned baseline of
-    each feature as the detector stored it with each kept reading (None while learning)
-    and ``flags``: per kept reading the checks sensor health failed (empty: accepted). A
-    flagged reading's levels are no machine levels (a spike, a clipped or dead sensor):
-    they are returned, marked, for the chart to draw apart, never as the trend.
+    each excitation order, velocity mm/s peak; their phase, degrees of lag after the
+    once-per-revolution pulse, where readings carried pulses) in [t0, t1], at most
+    ``max_points`` readings, with the ISO 20816 zone boundaries of the point, the learned
+    baseline of each feature as the detector stored it with each kept reading (None while
+    learning) and ``flags``: per kept reading the checks sensor health failed (empty:
+    accepted). A flagged reading's levels are no machine levels (a spike, a clipped or dead
+    sensor): they are returned, marked, for the chart to draw apart, never as the trend.
 
     Two statements per point: the cheap columns over the indexed (machine, point, ts)
     range, decimated in numpy (the largest overall level of each time bucket, so a short
@@ -73,6 +74,7 @@ def trends(s: Session, m: Machine, point_ids: list[str], t0: dt.datetime, t1: dt
             "zone": [r.zone for r in kept],
             "flags": [health_flags(r.health) for r in kept],
             "orders": {lab: [g.get(lab) for g in got] for lab in labels},
+            "phase_deg": _order_phases(kept, labels),
             "units": {"overall": "mm/s RMS", **{lab: "mm/s peak" for lab in labels}},
             "baseline": baseline,
             "zone_limits_mm_s": list(lim.as_tuple()) if lim else None,
@@ -115,6 +117,14 @@ def _order_values(orders: Any) -> dict[str, float | None]:
             v = o.get("velocity_mm_s")
             out[f"{float(o['order']):g}x"] = None if v is None else float(v)
     return out
+
+
+def _order_phases(kept: Any, labels: list[str]) -> dict[str, list[float | None]]:
+    """The stored phase of each order label (degrees, None where a reading had no pulses);
+    an order no kept reading has a phase for is left out."""
+    got = [{f"{float(o['order']):g}x": o.get("phase_deg") for o in r.orders or ()
+            if isinstance(o, dict) and "order" in o} for r in kept]
+    return {lab: [g.get(lab) for g in got] for lab in labels if any(g.get(lab) is not None for g in got)}
 
 
 def decimate_indices(ts: np.ndarray, values: np.ndarray, max_points: int) -> np.ndarray:
