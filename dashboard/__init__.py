@@ -12,6 +12,9 @@ plus these of our own (docs/security.md describes each and how to set it):
   X-Forwarded-For, -Proto and -Host: trust them, mark the session cookie ``Secure`` and
   send HSTS.
 - ``OVERVIEW_REFRESH_S``: how often the overview page refetches the API (default 15 s).
+- ``TIME_ZONE``: the plant's IANA time zone; pages and charts show every time in it,
+  24-hour, with its UTC offset (the template filter ``ts`` here, ``WW.when`` in the
+  browser; the API keeps ISO 8601 UTC).
 - ``SECRET_KEY``: signs the session cookie; a random key per process when not given
   (sessions then end when the process restarts, and several processes need one key).
 """
@@ -27,6 +30,8 @@ from flask import Flask
 from flask_wtf.csrf import CSRFProtect
 from werkzeug.middleware.proxy_fix import ProxyFix
 
+from monitor.model.timefmt import plant_time, time_zone
+
 DEFAULTS: dict[str, Any] = {
     "DATABASE_URL": "sqlite:///whirlwatch.sqlite",
     # A guesser waits a minute, then an hour, then a day; OWASP ASVS 4.0.3 V2.2.1 allows
@@ -36,6 +41,7 @@ DEFAULTS: dict[str, Any] = {
     "LOGIN_LIMIT_STORAGE_URL": "memory://",
     "BEHIND_TLS_PROXY": False,
     "OVERVIEW_REFRESH_S": 15,
+    "TIME_ZONE": "UTC",
     "SESSION_COOKIE_HTTPONLY": True,
     "SESSION_COOKIE_SAMESITE": "Lax",
     "PERMANENT_SESSION_LIFETIME": timedelta(hours=12),
@@ -87,18 +93,20 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     app.extensions["csrf"].exempt(audit.api_bp)
     login_limits.install(app)
 
-    @app.template_filter("ts")
-    def _ts(t):
-        return "–" if t is None else t.strftime("%Y-%m-%d %H:%M UTC")
+    zone = time_zone(app.config["TIME_ZONE"])
 
-    @app.template_filter("iso")
-    def _iso(text):
-        return "–" if not text else str(text).replace("T", " ")[:16] + " UTC"
+    @app.template_filter("ts")
+    def _ts(when):
+        # Datetimes, epoch seconds and ISO text alike: one way of showing a time.
+        return plant_time(when, zone)
+
+    # Older templates' name for the same filter.
+    app.add_template_filter(_ts, "iso")
 
     @app.context_processor
     def _inject():
         from dashboard.security import current
 
-        return {"principal": current()}
+        return {"principal": current(), "time_zone": app.config["TIME_ZONE"]}
 
     return app

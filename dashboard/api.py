@@ -15,6 +15,7 @@ from flask import Blueprint, Response, jsonify, request
 from dashboard.alarms import acting_user, do_acknowledge, parse_filters, parse_page, parse_time
 from dashboard.db import db_session
 from dashboard.errors import BadRequest, Conflict, NotFound
+from dashboard.machines import decide_candidate
 from dashboard.security import require
 from monitor.model.registry import RegistryError
 from monitor.model.registry_file import parse_mode
@@ -29,6 +30,8 @@ OPENAPI_PATH = Path(__file__).with_name("openapi.json")
 MAX_TREND_POINTS = 5000
 DEFAULT_TREND_POINTS = 500
 DEFAULT_TREND_SPAN = dt.timedelta(days=7)
+#: Passages per page by default (each carries its sweep's Bode points).
+DEFAULT_PASSAGE_PAGE = 20
 
 
 def _machine_or_404(machine_id: str) -> Machine:
@@ -86,6 +89,7 @@ def machine_trends(machine_id: str):
     return jsonify({
         "machine": m.id, "from": iso_utc(t0), "to": iso_utc(t1), "max_points": n,
         "points": reads.trends(db_session(), m, wanted, t0, t1, n),
+        "speed": reads.speed_trend(db_session(), m, t0, t1, n),
     })
 
 
@@ -174,6 +178,40 @@ def restart_baseline(machine_id: str):
         raise BadRequest(str(exc)) from None
     s.commit()
     return jsonify(reads.baseline_restart_json(req)), 202
+
+
+@bp.get("/machines/<machine_id>/passages")
+@require("viewer")
+def machine_passages(machine_id: str):
+    m = _machine_or_404(machine_id)
+    limit, cursor = parse_page(request.args, DEFAULT_PASSAGE_PAGE)
+    rows, nxt = reads.find_passages(db_session(), m.id, before_id=cursor, limit=limit)
+    return jsonify({"items": [reads.passage_json(p) for p in rows],
+                    "next": None if nxt is None else str(nxt)})
+
+
+@bp.post("/machines/<machine_id>/candidates/<int:passage_id>/accept")
+@require("engineer")
+def accept_candidate(machine_id: str, passage_id: int):
+    """Make a candidate mode a registry mode (body: optional ``{"name": ...}``)."""
+    data = request.get_json(silent=True) if request.data else {}
+    if not isinstance(data, dict):
+        raise BadRequest("The request body must be a JSON object such as {\"name\": \"...\"}.")
+    extra = sorted(set(data) - {"name"})
+    if extra:
+        raise BadRequest(f"Unknown field {extra[0]!r}; allowed: name.")
+    name = data.get("name")
+    if name is not None and not isinstance(name, str):
+        raise BadRequest("Field 'name' must be a string (the new mode's name) or left out.")
+    p = decide_candidate(machine_id, passage_id, accept=True, name=name)
+    return jsonify(reads.passage_json(p, with_points=False))
+
+
+@bp.post("/machines/<machine_id>/candidates/<int:passage_id>/reject")
+@require("engineer")
+def reject_candidate(machine_id: str, passage_id: int):
+    p = decide_candidate(machine_id, passage_id, accept=False)
+    return jsonify(reads.passage_json(p, with_points=False))
 
 
 @bp.get("/alarms")

@@ -10,8 +10,10 @@ messages only for named clients).
 from __future__ import annotations
 
 import asyncio
+import math
 import os
 import secrets
+import shlex
 import shutil
 import signal
 import socket
@@ -31,6 +33,7 @@ from monitor.redact import redact
 #: Where the sample streams live in a source checkout.
 SAMPLES = Path(__file__).resolve().parent.parent / "sample_streams"
 DEMO_USER = "demo"
+DEMO_ADMIN = "demo-admin"
 
 
 def free_port() -> int:
@@ -172,6 +175,17 @@ class DemoResult:
     published: int
     measurements: int
     alarms: int
+    admin: str = ""
+    admin_password: str = ""
+
+
+#: Wall time the replay of the whole sample history takes, s.
+REPLAY_S = 60.0
+
+
+def reopen_command(database_url: str) -> str:
+    """The command that serves the dashboard on the demo's store again, once it stopped."""
+    return f"whirlwatch dashboard --database {shlex.quote(redact(database_url))}"
 
 
 def run_demo(
@@ -180,14 +194,17 @@ def run_demo(
     broker_url: str | None = None,
     database_url: str | None = None,
     machines: Path | None = None,
-    duration_s: float = 120.0,
+    duration_s: float | None = None,
     host: str = "127.0.0.1",
     port: int | None = 8050,
     say: Callable[[str], None] = print,
     stop: threading.Event | None = None,
     embedded_broker: bool = False,
+    replay_s: float = REPLAY_S,
 ) -> DemoResult:
-    """Run the demo for ``duration_s`` seconds (or until ``stop`` is set); see the module.
+    """Run the demo until ``stop`` is set (Ctrl-C) or, when given, for ``duration_s``
+    seconds; see the module. The replay takes about ``replay_s`` seconds; the service and
+    the dashboard keep running after it.
 
     ``embedded_broker`` starts the in-process amqtt broker even when Mosquitto is installed.
     """
@@ -207,12 +224,14 @@ def run_demo(
     if machines is not None:
         registry_file = machines
     upgrade(db)
-    password = secrets.token_urlsafe(12)
-    user = f"{DEMO_USER}-{secrets.token_hex(2)}"
+    password, admin_password = secrets.token_urlsafe(12), secrets.token_urlsafe(12)
+    suffix = secrets.token_hex(2)
+    user, admin = f"{DEMO_USER}-{suffix}", f"{DEMO_ADMIN}-{suffix}"
     store = Store.open(db)
     with store.transaction() as s:
         import_registry(s, load_registry(registry_file), user="demo")
         create_user(s, user, password, role="engineer")
+        create_user(s, admin, admin_password, role="admin")
     store.close()
 
     broker = None
@@ -237,21 +256,24 @@ def run_demo(
         service = Service(settings, limits=IngestLimits(max_age_s=90 * 86400.0), stale_check_s=0)
         service.start()
         server, dashboard_url = _start_dashboard(db, host, port, say)
-        say(f"database: {db}")
+        say(f"database: {redact(db)}")
         if dashboard_url:
-            say(f"dashboard: {dashboard_url}  login: {user} / {password} (engineer)")
+            say(f"dashboard: {dashboard_url}")
+            say(f"  login: {user} / {password} (engineer: acknowledges alarms, edits modes)")
+            say(f"  login: {admin} / {admin_password} (admin: also users, API tokens, audit)")
+            say(f"  after the demo, open its data again with: {reopen_command(db)}")
         say(f"MQTT: subscribe to whirlwatch/+/alarms and whirlwatch/+/status at {redact(broker_url)}")
         say(f"replaying {len(messages)} messages from {origin}, accelerated")
+        say("serving until Ctrl-C" if duration_s is None else f"stopping after {duration_s:g} s (or Ctrl-C)")
         pub = StreamPublisher(broker_url, username=username, protocol=protocol)
         counter = {"n": 0}
-        t_end = time.monotonic() + duration_s
+        t_end = math.inf if duration_s is None else time.monotonic() + duration_s
 
         def feed() -> None:
-            # About 60 s of wall time for the whole plant history.
             from monitor.io.streams import parse_ts
 
             span = parse_ts(messages[-1][1]["ts"]) - parse_ts(messages[0][1]["ts"])
-            counter["n"] = replay(messages, pub, speedup=max(1.0, span / 60.0), max_gap_s=1.0,
+            counter["n"] = replay(messages, pub, speedup=max(1.0, span / replay_s), max_gap_s=1.0,
                                   stop=stop, progress=lambda i, _n: counter.__setitem__("n", i))
 
         feeder = threading.Thread(target=feed, name="replay", daemon=True)
@@ -259,7 +281,12 @@ def run_demo(
         while not stop.wait(min(5.0, max(0.0, t_end - time.monotonic()))):
             if time.monotonic() >= t_end:
                 break
-            say(f"  published {counter['n']}/{len(messages)}, in flight {service.source.stats.in_flight if service.source else 0}")
+            if feeder.is_alive():
+                say(f"  published {counter['n']}/{len(messages)}, in flight {service.source.stats.in_flight if service.source else 0}")
+            elif counter.get("told") is None:
+                counter["told"] = 1
+                say(f"replay finished: {counter['n']} messages published; the dashboard keeps serving"
+                    + (" until Ctrl-C" if duration_s is None else ""))
         stop.set()
         feeder.join(30)
         published = counter["n"]
@@ -268,7 +295,7 @@ def run_demo(
         if service is not None:
             service.stop()
         if server is not None:
-            server.shutdown()
+            server.stop()
         if broker is not None:
             broker.stop()
     store = Store.open(db)
@@ -276,25 +303,28 @@ def run_demo(
         n_meas = int(s.scalar(select(func.count()).select_from(Measurement)) or 0)
         n_alarms = int(s.scalar(select(func.count()).select_from(Alarm)) or 0)
     store.close()
-    say(f"done: {published} messages published, {n_meas} measurements and {n_alarms} alarms in {db}")
-    return DemoResult(data_dir, db, broker_url, dashboard_url, user, password, published, n_meas, n_alarms)
+    say(f"done: {published} messages published, {n_meas} measurements and {n_alarms} alarms in {redact(db)}")
+    if dashboard_url:
+        say(f"open the dashboard on this data again: {reopen_command(db)}")
+    return DemoResult(data_dir, db, broker_url, dashboard_url, user, password, published, n_meas,
+                      n_alarms, admin, admin_password)
 
 
 def _start_dashboard(db: str, host: str, port: int | None, say: Callable[[str], None]) -> tuple[Any, str | None]:
+    """The dashboard on the production server, as ``whirlwatch dashboard`` serves it."""
     try:
-        from werkzeug.serving import make_server
-
         from dashboard import create_app
+        from dashboard.serving import ServerThread, make_server
     except ImportError:
         say("dashboard: not available in this installation")
         return None, None
     app = create_app({"DATABASE_URL": db})
     try:
-        server = make_server(host, port or 0, app, threaded=True)
+        server = make_server(app, host, port or 0)
     except OSError:
-        server = make_server(host, 0, app, threaded=True)
-    threading.Thread(target=server.serve_forever, name="dashboard", daemon=True).start()
-    return server, f"http://{host}:{server.server_port}/"
+        server = make_server(app, host, 0)
+    running = ServerThread(server)
+    return running, f"http://{host}:{running.port}/"
 
 
 def install_stop_signals(stop: threading.Event) -> None:

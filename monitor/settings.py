@@ -1,4 +1,5 @@
-"""The service's settings: one registry of every setting, and the typed groups it fills.
+"""The settings of the service and the dashboard: one registry of every setting, and the
+typed groups it fills.
 
 A setting is named ``section.key`` (``broker.url``): in the TOML service file it is key
 ``key`` of table ``[section]``; its environment variable is ``WHIRLWATCH_SECTION_KEY``
@@ -18,6 +19,7 @@ from pathlib import Path
 from typing import Any
 
 from monitor.io.mqtt_names import MqttConfigError, is_topic_level, is_topic_prefix, parse_broker_url
+from monitor.model.timefmt import time_zone
 
 ENV_PREFIX = "WHIRLWATCH_"
 
@@ -112,6 +114,14 @@ def _address(v: str) -> str | None:
     host, _, port = v.rpartition(":")
     if not host or not port.isdigit() or not 0 < int(port) < 65536:
         return "HOST:PORT (or empty to turn it off)"
+    return None
+
+
+def _time_zone(v: str) -> str | None:
+    try:
+        time_zone(v)
+    except ValueError:
+        return "an IANA time zone name such as 'UTC' or 'Europe/Berlin'"
     return None
 
 
@@ -293,6 +303,43 @@ SETTINGS: tuple[Setting, ...] = (
         check=_address,
     ),
     Setting("service.log_level", "str", "INFO", "Log level.", check=_log_level),
+    # dashboard (`whirlwatch dashboard`; docs/security.md, "Dashboard settings")
+    Setting("dashboard.host", "str", "127.0.0.1", "Address the dashboard listens on."),
+    Setting("dashboard.port", "int", 8050, "TCP port of the dashboard.", minimum=1, maximum=65535),
+    Setting(
+        "dashboard.threads",
+        "int",
+        8,
+        "Requests the dashboard's HTTP server (waitress) works on at once.",
+        minimum=1,
+        maximum=256,
+    ),
+    Setting(
+        "dashboard.time_zone",
+        "str",
+        "UTC",
+        "The plant's IANA time zone (Europe/Berlin): the dashboard shows every time in it, 24-hour, with its UTC offset.",
+        check=_time_zone,
+    ),
+    Setting(
+        "dashboard.behind_tls_proxy",
+        "bool",
+        False,
+        "Reached through one HTTPS reverse proxy: trust its X-Forwarded-For/-Proto/-Host, mark the session cookie Secure, send HSTS.",
+    ),
+    Setting(
+        "dashboard.limiter_storage",
+        "str",
+        "memory://",
+        "Where failed sign-ins are counted: memory:// (this process) or redis://HOST:6379/0 shared by several dashboard processes.",
+    ),
+    Setting(
+        "dashboard.secret_key",
+        "str",
+        "",
+        "Key that signs session cookies, the same for every dashboard process of a site; empty makes one per process (sessions end when it restarts). Keep it in the environment.",
+        secret=True,
+    ),
 )
 
 BY_NAME: dict[str, Setting] = {s.name: s for s in SETTINGS}
@@ -381,6 +428,17 @@ class ServiceSettings:
     log_level: str = default("service.log_level")
 
 
+@dataclass(frozen=True)
+class DashboardSettings:
+    host: str = default("dashboard.host")
+    port: int = default("dashboard.port")
+    threads: int = default("dashboard.threads")
+    time_zone: str = default("dashboard.time_zone")
+    behind_tls_proxy: bool = default("dashboard.behind_tls_proxy")
+    limiter_storage: str = default("dashboard.limiter_storage")
+    secret_key: str = field(default=default("dashboard.secret_key"), repr=False)
+
+
 GROUPS: dict[str, type] = {
     "broker": BrokerSettings,
     "database": DatabaseSettings,
@@ -388,6 +446,7 @@ GROUPS: dict[str, type] = {
     "spectra": SpectraSettings,
     "alarms": AlarmSettings,
     "service": ServiceSettings,
+    "dashboard": DashboardSettings,
 }
 
 
@@ -401,6 +460,7 @@ class Settings:
     spectra: SpectraSettings
     alarms: AlarmSettings
     service: ServiceSettings
+    dashboard: DashboardSettings
     source: str | None = None
 
     def get(self, name: str) -> Any:

@@ -143,13 +143,16 @@ def request(port: int, method: str, path: str, body: str | None = None,
         conn.close()
 
 
-def raw_sign_in(port: int, user: str) -> str:
-    """Sign ``user`` in on the real server; returns the Cookie header to send."""
-    _, headers, html = request(port, "GET", "/login")
-    cookie = headers["Set-Cookie"].split(";", 1)[0]
+def raw_sign_in(port: int, user: str, password: str | None = None,
+                headers: Mapping[str, str] | None = None) -> str:
+    """Sign ``user`` in on the real server (password default: the seeded one), sending
+    ``headers`` too; returns the Cookie header to send."""
+    extra = dict(headers or {})
+    _, got, html = request(port, "GET", "/login", headers=extra)
+    cookie = got["Set-Cookie"].split(";", 1)[0]
     token = _CSRF.search(html).group(1)
-    form = urlencode({"username": user, "password": PASSWORDS[user], "csrf_token": token})
-    status, headers, _ = request(port, "POST", "/login", form, {
-        "Cookie": cookie, "Content-Type": "application/x-www-form-urlencoded"})
+    form = urlencode({"username": user, "password": password or PASSWORDS[user], "csrf_token": token})
+    status, got, _ = request(port, "POST", "/login", form, {
+        **extra, "Cookie": cookie, "Content-Type": "application/x-www-form-urlencoded"})
     assert status == 302, status
-    return headers["Set-Cookie"].split(";", 1)[0]
+    return got["Set-Cookie"].split(";", 1)[0]

@@ -44,6 +44,7 @@ from monitor.store.models import (
     Measurement,
     Mode,
     ModeHistory,
+    PassageRow,
     SpeedReadingRow,
 )
 
@@ -352,6 +353,26 @@ def alarm_transitions(url: str) -> dict[str, list[TransitionKey]]:
         when: int | str | None = user if name == "acknowledged" else _ms(at)
         out.setdefault(machine, []).append((point, kind, subject, name, severity, state, when))
     return out
+
+
+def stored_passages(url: str) -> list[tuple[Any, ...]]:
+    """Every stored passage by machine, point, start and place in its sweep: machine,
+    point, kind, start and end (epoch ms), its place in the sweep, natural frequency,
+    damping ratio, the mode it matched and whether it is a candidate (values exact: two
+    runs of the same readings compute the same)."""
+    store = Store.open(url)
+    try:
+        with store.session() as s:
+            rows = s.execute(
+                select(PassageRow.machine_id, PassageRow.point_id, PassageRow.kind, PassageRow.started_at,
+                       PassageRow.ended_at, PassageRow.seq, PassageRow.natural_frequency_hz,
+                       PassageRow.damping_ratio, PassageRow.mode, PassageRow.candidate)
+                .order_by(PassageRow.machine_id, PassageRow.point_id, PassageRow.started_at,
+                          PassageRow.seq)).all()
+    finally:
+        store.close()
+    return [(m, p, k, _ms(t0), _ms(t1), seq, fn, zeta, mode, cand)
+            for m, p, k, t0, t1, seq, fn, zeta, mode, cand in rows]
 
 
 def dead_letter_reasons(url: str) -> Counter[str]:

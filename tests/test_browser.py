@@ -12,8 +12,12 @@ import time
 import urllib.request
 from pathlib import Path
 
+import numpy as np
 import pytest
-from dashboard_seed import PASSWORDS, seed
+from dashboard_seed import BLOCK, FS_HZ, PASSWORDS, T_END, seed
+from service_helpers import message, offline_service
+
+from monitor.model.readings import SpeedReading, Waveform
 
 CHROMIUM = "/usr/bin/chromium"
 ARTIFACTS = Path(__file__).resolve().parent.parent / "test-artifacts"
@@ -41,6 +45,7 @@ def server(tmp_path_factory):
     db = tmp_path_factory.mktemp("browser") / "store.sqlite"
     url = f"sqlite:///{db}"
     seed(url, machines=6, readings_per_point=60, names={2: "<script>alert(1)</script>"})
+    _flagged_then_speed_topic(url)
     port = _free_port()
     exe = shutil.which("whirlwatch", path=str(Path(sys.executable).parent)) or "whirlwatch"
     proc = subprocess.Popen([exe, "dashboard", "--port", str(port), "--database", url],
@@ -77,6 +82,28 @@ def page(server):
         pg.on("pageerror", lambda e: pg.errors.append(str(e)))
         yield pg
         browser.close()
+
+
+def _flagged_then_speed_topic(url: str) -> None:
+    """fan-005 after the seeded range, through the service's batch path: three readings of
+    de-h at 14 Hz, the middle one with five samples knocked to 400 m/s^2 (sensor health
+    flags its spikes), then speed messages alone (the sensor gone, the tach reporting)."""
+    t0 = T_END.timestamp() + 600.0
+    t = np.arange(BLOCK) / FS_HZ
+    speeds = [SpeedReading("fan-005", t0 + 1200.0 + 60.0 * k, 14.0 + 0.1 * k) for k in range(10)]
+    msgs = []
+    for k in range(3):
+        x = 0.5 * np.sin(2 * np.pi * 14.0 * t) + np.random.default_rng(k).normal(0.0, 0.01, BLOCK)
+        if k == 1:
+            x[[400, 1400, 2400, 3000, 3600]] = 400.0
+        msgs.append(message(Waveform("fan-005", "de-h", t0 + 600.0 * k, FS_HZ, "m/s^2", x, speed_hz=14.0)))
+    msgs += [message(r) for r in speeds]
+    svc = offline_service(url, clock=lambda: speeds[-1].ts + 60.0)
+    try:
+        for m in msgs:
+            svc.handle_batch([m])
+    finally:
+        svc.store.close()
 
 
 def _canvas_ink(page, selector):
@@ -134,4 +161,27 @@ def test_walkthrough(server, page):
     assert page.locator("#caution").is_visible()
     page.screenshot(path=str(ARTIFACTS / "alarms.png"), full_page=True)
     # No script errors and no CSP violations on any page.
+    assert page.errors == [], page.errors
+
+
+def test_flagged_readings_and_speed_topic(server, page):
+    page.goto(server + "/machines/fan-005")
+    if "/login" in page.url:
+        page.fill("input[name=username]", "vic")
+        page.fill("input[name=password]", PASSWORDS["vic"])
+        page.click("#login-form button[type=submit]")
+        page.goto(server + "/machines/fan-005")
+    page.wait_for_selector("body[data-loaded='1']")
+    page.wait_for_selector("#chart-overall[data-drawn='1']")
+    # The running speed is the tach's, after the last vibration reading.
+    assert page.get_attribute("#fact-speed", "data-source") == "speed_topic"
+    assert page.locator("#fact-speed").inner_text().endswith("(14.90 Hz)")
+    # The spike-flagged reading is drawn apart from the trend line.
+    assert page.get_attribute("#chart-overall", "data-series").startswith("overall|flagged by sensor health|A/B|B/C|C/D")
+    # The resonance map runs on to the last speed message.
+    assert float(page.get_attribute("#chart-resonance", "data-x-last")) == T_END.timestamp() + 600.0 + 1200.0 + 540.0
+    assert page.locator("#margins-table tbody tr").count() == 6
+    for sel in ("#chart-resonance", "#chart-overall"):
+        assert _canvas_ink(page, sel) > 1000, sel
+    page.screenshot(path=str(ARTIFACTS / "machine-flagged.png"), full_page=True)
     assert page.errors == [], page.errors

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import math
+import re
 from pathlib import Path
 
 import numpy as np
@@ -108,8 +109,34 @@ class TestTableAndErrors:
         write_stream(stream, [reading_message(_sine(T0, 15.0, 1.0, speed_hz=15.0))])
         result = CliRunner().invoke(main, ["analyse", str(stream), "--machines", str(_registry(tmp_path))])
         assert result.exit_code == 0, result.stderr
-        lines = result.stdout.splitlines()
-        assert "mm/s rms" in lines[0] and "rig-1/de-h" in lines[1] and "15.00 m" in lines[1]
+        header, row = result.stdout.splitlines()[:2]
+        # Every column says what it holds and in which unit; no bare "s" column.
+        assert re.split(r"\s{2,}", header.strip()) == [
+            "time (UTC)", "machine/point", "speed Hz", "speed from", "mm/s RMS", "1x mm/s pk",
+            "2x mm/s pk", "largest peaks (sensor unit, peak)"]
+        cells = row.split()
+        assert cells[1:4] == ["rig-1/de-h", "15.00", "measured"]
+        # Harmonic motion: velocity peak = acceleration peak / (2 pi f); 1 m/s^2 at 15 Hz
+        # and 0.3 m/s^2 at 30 Hz (textbook kinematics), in mm/s.
+        assert float(cells[5]) == pytest.approx(1.0 / (2 * math.pi * 15.0) * 1e3, rel=0.01)
+        assert float(cells[6]) == pytest.approx(0.3 / (2 * math.pi * 30.0) * 1e3, rel=0.01)
+        assert row.endswith("(m/s^2 pk)") and "15.0 Hz 1" in row
+
+    def test_every_message_rejected_exits_with_1(self, tmp_path: Path) -> None:
+        stream = tmp_path / "s.jsonl"
+        stream.write_text("not json at all\n"
+                          '{"topic": "whirlwatch/nope/de-h/waveform", "payload": {"ts": 1}}\n')
+        result = CliRunner().invoke(main, ["analyse", str(stream), "--machines", str(_registry(tmp_path))])
+        # Before: exit 0 with nothing analysed. A script must see that nothing was usable.
+        assert result.exit_code == 1
+        assert "0 waveforms analysed, 2 messages rejected" in result.stderr
+        assert "every message of" in result.stderr and "s.jsonl" in result.stderr
+        # One good waveform among the rejected ones is a success (the rejections reported).
+        write_stream(stream, [reading_message(_sine(T0, 15.0, 1.0, speed_hz=15.0))])
+        with stream.open("a") as fh:
+            fh.write("not json at all\n")
+        result = CliRunner().invoke(main, ["analyse", str(stream), "--machines", str(_registry(tmp_path))])
+        assert result.exit_code == 0 and "1 waveforms analysed, 1 messages rejected" in result.stderr
 
     def test_missing_file_is_one_sentence(self, tmp_path: Path) -> None:
         result = CliRunner().invoke(

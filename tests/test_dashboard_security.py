@@ -313,20 +313,22 @@ def test_documented_dashboard_settings_are_the_commands():
     from pathlib import Path
 
     from dashboard import DEFAULTS
-    from monitor.commands.dashboard import SECRET_KEY_ENV, dashboard
+    from monitor.commands.dashboard import OPTION_SETTINGS, dashboard
+    from monitor.settings import BY_NAME, SETTINGS
 
     doc = (Path(__file__).resolve().parent.parent / "docs" / "security.md").read_text(encoding="utf-8")
     section = doc.split("## Dashboard settings", 1)[1].split("\n## ", 1)[0]
     rows = [[c.strip().strip("`") for c in line.strip("|").split("|")]
             for line in section.splitlines() if line.startswith("| ") and not line.startswith("| option")]
-    documented = {(opt, env, default) for opt, env, default, _ in rows if opt}
-    actual = set()
-    for p in dashboard.params:
-        env = p.envvar or ""
-        default = "off" if getattr(p, "is_flag", False) else str(p.default)
-        actual.add((p.opts[0], env, default))
-    assert documented == actual
-    assert [r[1] for r in rows if not r[0]] == [SECRET_KEY_ENV]
+    documented = {(opt, setting, env) for opt, setting, env, _ in rows}
+    # Every option overrides one registry setting and is documented with its variable.
+    options = {p.opts[0] for p in dashboard.params} - {"--config", "--debug"}
+    assert options == set(OPTION_SETTINGS)
+    expected = {(opt, name, BY_NAME[name].env) for opt, name in OPTION_SETTINGS.items()}
+    expected.add(("", "dashboard.secret_key", "WHIRLWATCH_DASHBOARD_SECRET_KEY"))
+    assert documented == expected
+    # Every [dashboard] setting is in the table.
+    assert {s.name for s in SETTINGS if s.section == "dashboard"} <= {r[1] for r in rows}
     # The limits as the table under "Sign-in and the login limiter" words them.
     for key, words in (("LOGIN_LIMIT_PER_ADDRESS", "10 a minute, 50 an hour, 200 a day"),
                        ("LOGIN_LIMIT_PER_ACCOUNT", "5 a minute, 20 an hour, 100 a day")):

@@ -203,3 +203,29 @@ def test_users_from_before_the_session_version_sign_in(tmp_path):
     assert b.sign_in("old", "an-old-passphrase").status_code == 302
     assert b.get("/api/v1/audit").get_json()["items"][0]["action"] == "sign_in"
     app.extensions["whirlwatch_engine"].dispose()
+
+
+def _cells(html: str, table_id: str) -> list[list[str]]:
+    """The text of each body cell of table ``table_id``, tags and spacing removed."""
+    body = re.search(rf'<table[^>]*id="{table_id}".*?<tbody>(.*?)</tbody>', html, re.S).group(1)
+    return [[re.sub(r"\s+", " ", re.sub(r"<[^>]+>", " ", c)).strip()
+             for c in re.findall(r"<td[^>]*>(.*?)</td>", row, re.S)]
+            for row in re.findall(r"<tr[^>]*>(.*?)</tr>", body, re.S)]
+
+
+def test_users_and_tokens_pages_name_every_user(app, admin):
+    # Before: the USER column was empty and "For user" listed only roles (the templates
+    # asked for `username`; the user's field is `name`).
+    r = admin.post("/users/", {"username": "olga", "password": "a-long-passphrase-9", "role": "engineer"},
+                   token_from="/users")
+    assert r.status_code == 302, r.get_data(as_text=True)
+    html = admin.get("/users").get_data(as_text=True)
+    assert [row[0] for row in _cells(html, "users-table")] == ["ada", "eng", "olga", "vic"]
+    assert re.search(r'aria-label="Role for olga">.*?<option value="engineer" selected>', html, re.S)
+    _token_for(admin, app, "eng")
+    html = admin.get("/tokens").get_data(as_text=True)
+    options = re.findall(r'<option value="\d+">([^<]*)</option>', html.split('name="user_id"', 1)[1].split("</select>", 1)[0])
+    assert options == ["ada (admin)", "eng (engineer)", "olga (engineer)", "vic (viewer)"]
+    assert [row[0] for row in _cells(html, "tokens-table")] == ["eng"]
+    # The top bar names who is signed in.
+    assert re.search(r'title="Change your password">ada</a>', html)

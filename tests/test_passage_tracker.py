@@ -204,6 +204,23 @@ class TestSplitting:
             SweepRules(min_rate_hz_s=0)
 
 
+    def test_a_waveform_and_a_speed_message_of_one_instant_make_one_reading(self) -> None:
+        # in either order: the waveform's speed and 1x when the speeds agree (within
+        # noise_hz or 10 %), the speed message's alone when the waveform's speed was an
+        # estimate locked on 2x (docs/modes.md "Sweeps")
+        for bare, with_1x, kept in ((SpeedPoint(10.0, 20.0), SpeedPoint(10.0, 20.1, 2.0, 30.0), 1),
+                                    (SpeedPoint(10.0, 11.9), SpeedPoint(10.0, 23.7, 1.0, None), 0)):
+            for first, second in ((bare, with_1x), (with_1x, bare)):
+                splitter = SweepSplitter()
+                splitter.update(first)
+                splitter.update(second)
+                assert splitter.snapshot()["pending"] == list((bare, with_1x)[kept])
+        splitter = SweepSplitter()
+        splitter.update(SpeedPoint(10.0, 20.0, 1.0, None))
+        splitter.update(SpeedPoint(10.0, 20.5, 2.0, None))  # both with a 1x: the first stays
+        assert splitter.snapshot()["pending"] == [10.0, 20.0, 1.0, None]
+
+
 class TestState:
     def test_snapshot_carries_on_after_a_restart(self) -> None:
         segments = RUN_UP + [(20.0, -0.5), (60.0, 0.0)]

@@ -30,17 +30,19 @@ from typing import Any
 import pytest
 from broker import PrivateBroker, publish_many
 from fixtures_db import fresh_database
+from registry_api import settings_for
 from service_helpers import (
     measurement_count,
     plant_store,
     service_process,
+    stored_evaluator_state,
+    straight_feed,
     traffic,
     wait_for,
     wait_started,
     waveform_keys,
 )
 from sqlalchemy import select, text
-from test_service_batches import settings_for, single_feed, stored_state
 
 from monitor.service.service import Service
 from monitor.store import Store
@@ -169,7 +171,7 @@ def test_poison_readings_are_set_aside_and_the_rest_committed(
     # The detectors saw each good reading once and the poison not at all.
     for machine, msgs in (("ab-1", blower), ("rwp-1", pump)):
         fed = [m for m in good if m in msgs]
-        assert without_processing_faults(stored_state(plant_url, machine)) == single_feed(fed, machine)
+        assert without_processing_faults(stored_evaluator_state(plant_url, machine)) == straight_feed(fed, machine)
 
 
 def test_a_stream_whose_readings_keep_failing_raises_processing_fault_until_they_pass(tmp_path: Path) -> None:
@@ -232,7 +234,7 @@ def test_an_old_registry_value_is_left_out_and_every_stream_goes_on(tmp_path: Pa
     assert measurement_count(url) == (len(blower) + len(fan_waves),) * 2
     assert dead_letters(url) == []
     assert alarm_history(url, "processing_fault") == []
-    assert without_processing_faults(stored_state(url, "ab-1")) == single_feed(blower, "ab-1")
+    assert without_processing_faults(stored_evaluator_state(url, "ab-1")) == straight_feed(blower, "ab-1")
 
 
 @pytest.mark.broker

@@ -16,6 +16,7 @@ from monitor.sim.simulate import (
     BearingDefect,
     MachineModel,
     ModalMode,
+    once_per_rev_times,
     point_inertance,
     simulate_reading,
     simulate_run,
@@ -217,6 +218,40 @@ class TestDeterminismAndRuns:
         # tolerance: 4 %, engineering choice: the speed steps about 0.33 Hz (2 %) between
         # 2 s readings, and the textbook peak (r = sqrt(1 - 2 zeta^2) = 0.9991) is 0.1 % below fn
         assert peak_speed == pytest.approx(15.0, rel=0.04)
+
+    def test_once_per_rev_pulses_follow_the_shaft_angle(self) -> None:
+        # kinematics: the shaft angle is the integral of speed, so on a linear ramp
+        # f(t) = f0 + a t the n-th pulse comes at f0 t + a t^2 / 2 = n (whole turns)
+        fs, f0, a = 2560.0, 10.0, 0.5
+        t = np.arange(int(20 * fs)) / fs
+        pulses = once_per_rev_times(f0 + a * t, fs)
+        n = np.arange(1, pulses.size + 1)
+        exact = (-f0 + np.sqrt(f0 * f0 + 2 * a * n)) / a
+        # 300 turns in 20 s; the 300th falls at 20 s, just past the last sample
+        assert pulses.size == int(f0 * 20 + a * 400 / 2) - 1
+        # within a thousandth of a sample (the trapezoid integral is exact for a ramp;
+        # the crossing is interpolated linearly within one sample)
+        assert np.max(np.abs(pulses - exact)) < 1e-3 / fs
+        # after a warm-up at the first speed the angle goes on from where it was
+        warm = once_per_rev_times(np.full(2560, 25.0), fs, warmup_samples=100)
+        assert warm[0] == pytest.approx((1 - (25.0 * 100 / fs) % 1) / 25.0, abs=1e-9)
+        assert np.allclose(np.diff(warm), 1 / 25.0)
+
+    def test_run_blocks_carry_their_pulses_only_when_asked(self) -> None:
+        model = _one_mode(15.0, 0.03, 150.0, 0.005)
+        prof = SpeedProfile.run_up(25.0, 20.0, start_hz=5.0)
+        kw = dict(points=["p"], fs_hz=1024.0, block_samples=1024, interval_s=2.0, start_ts=0.0,
+                  warmup_s=0.0)
+        plain = [r for r in simulate_run(model, prof, **kw) if isinstance(r, Waveform)]
+        keyed = [r for r in simulate_run(model, prof, **kw, once_per_rev=True) if isinstance(r, Waveform)]
+        assert all(w.once_per_rev_s is None for w in plain)
+        for w, k in zip(plain, keyed, strict=True):
+            assert np.array_equal(w.samples, k.samples)  # the pulses change no sample
+            assert k.once_per_rev_s is not None and k.once_per_rev_s.size >= 5
+            # speed from the pulse spacing (one turn per pulse) within the block's range
+            # (kinematics: 5 + t Hz)
+            f = 1.0 / np.diff(k.once_per_rev_s)
+            assert np.all((f > 5.0 + k.ts - 0.1) & (f < 5.0 + k.ts + 1.1))
 
     def test_profiles(self) -> None:
         steps = SpeedProfile.steps([10.0, 20.0], dwell_s=5.0, ramp_hz_per_s=2.0)

@@ -45,7 +45,10 @@ Invariants checked on the soak:
 4. ``/healthz`` answered unhealthy during the outage and healthy again after it (issue
    11 item 3: unhealthy within 30 s when readings wait and no commit succeeds or the
    database is unreachable);
-5. the mode added through the API is still in the registry at the end.
+5. the mode added through the API is still in the registry at the end;
+6. the passages stored (run-ups and coast-downs, monitor/service/passages.py) equal the
+   reference run's: a restart, even in the middle of a sweep, carries the passage
+   trackers on from their stored state.
 
 The figures (readings published, stored, lost, duplicated, kills, transition diffs) are
 printed and repeated in the assertion message.
@@ -82,6 +85,7 @@ from soak_harness import (
     mode_names,
     retry_loops,
     stored_keys,
+    stored_passages,
     stored_row_count,
 )
 from soak_month import Reading, plant_month, write_soak_registry
@@ -198,6 +202,7 @@ class RunRecord:
     retry_loops: list = field(default_factory=list)
     lives: list[list[float | None]] = field(default_factory=list)  # service (start, end), epoch s
     mode_history: list = field(default_factory=list)
+    passages: list = field(default_factory=list)
     faults_done: list[str] = field(default_factory=list)
     stalled: list[str] = field(default_factory=list)
     log_tail: str = ""
@@ -391,6 +396,7 @@ class MonthRun:
         self.rec.transitions = alarm_transitions(self.db_url)
         self.rec.dead_letters = dict(dead_letter_reasons(self.db_url))
         self.rec.modes_at_end = mode_names(self.db_url, NEW_MODE_MACHINE)
+        self.rec.passages = stored_passages(self.db_url)
         self.rec.health_samples = list(health.samples)
         log = self.workdir / f"{self.client_id}.log"
         self.rec.retry_loops = retry_loops(log_records(log), [tuple(x) for x in self.rec.lives])
@@ -466,9 +472,11 @@ def summary(kind: str, ref: RunRecord, soak: RunRecord, month: list[Reading]) ->
         "readings": len(month),
         "machines": len({r.machine for r in month}),
         "reference": {**d_ref, "transitions": sum(len(v) for v in ref.transitions.values()),
-                      "acks": sum(len(a) for a in ref.acks), "seconds": round(ref.seconds, 1)},
+                      "passages": len(ref.passages), "acks": sum(len(a) for a in ref.acks),
+                      "seconds": round(ref.seconds, 1)},
         "soak": {**d_soak, "transitions": sum(len(v) for v in soak.transitions.values()),
-                 "acks": sum(len(a) for a in soak.acks), "seconds": round(soak.seconds, 1),
+                 "passages": len(soak.passages), "acks": sum(len(a) for a in soak.acks),
+                 "seconds": round(soak.seconds, 1),
                  "kills": soak.kills, "clean_stops": soak.clean_stops,
                  "broker_kills": soak.broker_kills, "copies_resent": soak.copies,
                  "never_acknowledged": len(soak.given_up),
@@ -514,6 +522,12 @@ def broken_invariants(ref: RunRecord, soak: RunRecord, month: list[Reading], fig
         out.append(f"4. /healthz after the outage: healthy again after "
                    f"{fig['health_back_after_s']} s (bound {HEALTH_BOUND_S:g} s), at the end "
                    f"{soak.final_health}")
+    if soak.passages != ref.passages:
+        first = next((i for i, (a, b) in enumerate(zip(ref.passages, soak.passages, strict=False)) if a != b),
+                     min(len(ref.passages), len(soak.passages)))
+        out.append(f"6. passages: {len(soak.passages)} stored against {len(ref.passages)} in the "
+                   f"reference run; first difference at {first}: reference "
+                   f"{ref.passages[first:first + 1]} soak {soak.passages[first:first + 1]}")
     if NEW_MODE["name"] not in soak.modes_at_end:
         out.append(f"5. the mode added through the API is gone: modes of {NEW_MODE_MACHINE} "
                    f"at the end {soak.modes_at_end}")
@@ -613,6 +627,8 @@ def test_a_plant_month_with_faults_matches_an_uninterrupted_run(
     for alarm_kind in ("amplitude_growth", "resonance_proximity", "sensor_fault"):
         assert {(alarm_kind, "raised"), (alarm_kind, "cleared")} <= kinds, (alarm_kind, fig)
     assert r["acks"] >= 3 and len(ref.acks) == len(ACK_AT), fig
+    # The fan's run-ups and coast-downs give passages (invariant 6 compares them).
+    assert r["passages"] > 0, fig
     assert ref.mode_answer is not None and ref.mode_answer[0] == 201, ref.mode_answer
     # The edit reached the detectors: its mode's resonance alarm, which nothing else raises.
     assert any(t[2].startswith(NEW_MODE["name"] + "@") and t[3] == "raised"

@@ -75,6 +75,9 @@ class ReadingAnalysis:
         Velocity amplitude spectrum, mm/s peak (integrated when the sensor is not a
         velocity sensor).
     reading_id : str or None
+    envelope_spectrum : Spectrum or None
+        The bearing envelope spectrum, m/s^2 peak, when the bearing analysis ran (kept as
+        the evidence of a bearing feature's alarm transition).
     """
 
     machine: str
@@ -91,6 +94,7 @@ class ReadingAnalysis:
     velocity_spectrum: Spectrum
     reading_id: str | None = None
     extra: dict[str, Any] = field(default_factory=dict)
+    envelope_spectrum: Spectrum | None = None
 
     def order(self, order: float) -> OrderAmplitude | None:
         """The amplitude at ``order`` (1.0 = 1x), or None if not computed."""
@@ -229,6 +233,7 @@ def analyse_waveform(
     one_x_norm = one_x.velocity_mm_s / speed**2 if one_x is not None else math.nan
     # skip the DC bin and the one next to it, where the removed mean and drift leak
     peaks = sp.find_peaks(spec, count=peak_count, min_hz=2.0 * spec.resolution_hz)
+    envelope = None
     if point.quantity == "acceleration" and any(
         k in machine.settings for k in SETTINGS_KEYS
     ):
@@ -237,9 +242,11 @@ def analyse_waveform(
         try:
             geometry = BearingGeometry.from_settings(machine.settings)
             if geometry is not None:
-                extra["bearing"] = bearings.analyse_bearing(
+                bearing = bearings.analyse_bearing(
                     record, None, speed, geometry, unit=unit, band_hz=bearing_band_hz
-                ).to_json()
+                )
+                extra["bearing"] = bearing.to_json()
+                envelope = bearing.envelope
         except ValueError as exc:
             extra["bearing_error"] = str(exc)
     return ReadingAnalysis(
@@ -257,6 +264,7 @@ def analyse_waveform(
         velocity_spectrum=vel,
         reading_id=waveform.reading_id,
         extra=extra,
+        envelope_spectrum=envelope,
     )
 
 

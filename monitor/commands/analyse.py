@@ -113,18 +113,21 @@ def format_or_dash(v: float | None, spec: str = ".3g") -> str:
 
 def _table_row(a: ReadingAnalysis) -> str:
     one, two = a.order(1.0), a.order(2.0)
-    peaks = "  ".join(f"{p.hz:.1f}Hz:{p.amplitude:.3g}" for p in a.peaks[:3])
-    src = "m" if a.speed_source == "measured" else "e"
+    unit = a.spectrum.unit
+    peaks = ", ".join(f"{p.hz:.1f} Hz {p.amplitude:.3g}" for p in a.peaks[:3])
     return (
-        f"{iso_utc(a.ts, timespec='milliseconds'):24}  {a.machine + '/' + a.point:16}  {a.speed_hz:8.2f} {src}  "
-        f"{a.overall_velocity_mm_s_rms:8.2f}  {format_or_dash(one.amplitude if one else None):>8}  "
-        f"{format_or_dash(two.amplitude if two else None):>8}  {peaks}"
+        f"{iso_utc(a.ts, timespec='milliseconds'):24}  {a.machine + '/' + a.point:16}  "
+        f"{a.speed_hz:8.2f}  {a.speed_source:10}  {a.overall_velocity_mm_s_rms:10.2f}  "
+        f"{format_or_dash(one.velocity_mm_s if one else None, '.2f'):>10}  "
+        f"{format_or_dash(two.velocity_mm_s if two else None, '.2f'):>10}  "
+        f"{peaks}{f' ({unit} pk)' if peaks else ''}"
     )
 
 
+#: The table's columns; README.md, "Analysing a stream file", explains each.
 _HEADER = (
-    f"{'ts (UTC)':24}  {'machine/point':16}  {'speed Hz':>8} s  {'mm/s rms':>8}  "
-    f"{'1x pk':>8}  {'2x pk':>8}  top peaks (Hz:amplitude pk, sensor unit)"
+    f"{'time (UTC)':24}  {'machine/point':16}  {'speed Hz':>8}  {'speed from':10}  "
+    f"{'mm/s RMS':>10}  {'1x mm/s pk':>10}  {'2x mm/s pk':>10}  largest peaks (sensor unit, peak)"
 )
 
 
@@ -146,8 +149,9 @@ def count_lines(path: Path) -> int:
               help="One JSON object per analysed waveform instead of a table.")
 @click.option("--prefix", default=DEFAULT_PREFIX, show_default=True, help="MQTT topic prefix.")
 def analyse(file: Path, machines_file: Path, as_json: bool, prefix: str) -> None:
-    """Analyse every waveform of stream FILE (.jsonl): speed, overall velocity, 1x, 2x
-    and the largest peaks, one line per reading."""
+    """Analyse every waveform of stream FILE (.jsonl): speed and where it came from,
+    overall velocity (mm/s RMS), 1x and 2x (mm/s peak) and the largest peaks (sensor unit),
+    one line per reading. Exits with 1 when every message of the file was rejected."""
     if not file.is_file():
         raise click.UsageError(f"stream file {str(file)!r} does not exist or is not a file.")
     if not machines_file.is_file():
@@ -176,3 +180,6 @@ def analyse(file: Path, machines_file: Path, as_json: bool, prefix: str) -> None
             last_count = outcome.seen
         bar.update(total - last_count)
     outcome.report("waveforms analysed")
+    if outcome.seen and sum(outcome.rejected.values()) == outcome.seen:
+        # Nothing usable in the file is an error a script must see (exit status 1).
+        raise click.ClickException(f"every message of {str(file)!r} was rejected (reasons above).")

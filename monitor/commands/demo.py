@@ -16,8 +16,8 @@ import click
               help="SQLAlchemy URL of the store (default: SQLite in --data-dir).")
 @click.option("--machines", type=click.Path(dir_okay=False, exists=True, path_type=Path), default=None,
               help="Machine registry TOML (default: the sample plant).")
-@click.option("--for", "duration_s", type=click.FloatRange(1, 86400), default=120.0, show_default=True,
-              help="Stop by itself after this many seconds.")
+@click.option("--for", "duration_s", type=click.FloatRange(1, 86400), default=None,
+              help="Stop by itself after this many seconds (default: serve until Ctrl-C).")
 @click.option("--data-dir", type=click.Path(file_okay=False, path_type=Path), default=Path("demo-data"),
               show_default=True, help="Folder for the demo's database and broker files.")
 @click.option("--host", default="127.0.0.1", show_default=True, help="Dashboard address.")
@@ -25,9 +25,11 @@ import click
               help="Dashboard port (a free one if taken; 0 = any).")
 @click.option("--embedded-broker", is_flag=True, default=False,
               help="Start the in-process amqtt broker (MQTT 3.1.1) even when Mosquitto is installed.")
-def demo(broker: str | None, database: str | None, machines: Path | None, duration_s: float,
+def demo(broker: str | None, database: str | None, machines: Path | None, duration_s: float | None,
          data_dir: Path, host: str, port: int, embedded_broker: bool) -> None:
-    """Run everything on embedded defaults and replay the sample plant, accelerated."""
+    """Run everything on embedded defaults and replay the sample plant, accelerated; keep
+    serving the dashboard until Ctrl-C (or --for seconds). Prints an engineer and an admin
+    login, and how to open the dashboard on the demo's data again afterwards."""
     from monitor.demo import install_stop_signals, run_demo
     from monitor.service.logs import configure_logging
 

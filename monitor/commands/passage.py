@@ -43,7 +43,12 @@ from monitor.model import validate
 from monitor.model.jsonsafe import jsonable
 from monitor.model.registry import Machine
 from monitor.model.timefmt import iso_utc
-from monitor.modes.passage_tracker import PassageTracker, SweepPassages
+from monitor.modes.passage_tracker import (
+    PASSAGE_SOURCE,
+    PassageTracker,
+    SweepPassages,
+    stop_speed_hz,
+)
 from monitor.modes.runup import BodeData, Passage, bode_data
 from monitor.modes.shift import (
     DEFAULT_SHIFT_TOLERANCE_PCT,
@@ -248,7 +253,7 @@ def _passage(file: Path, total: int, registry: Any, machine: Machine, amplitude:
              min_speed_rpm: float | None, prominence: float, tolerance_pct: float,
              as_json: bool, prefix: str, store: Any) -> None:
     machine_id = machine.id
-    min_hz = (machine.speed_range_rpm[0] / 2 if min_speed_rpm is None else min_speed_rpm) / 60.0
+    min_hz = stop_speed_hz(machine) if min_speed_rpm is None else min_speed_rpm / 60.0
     outcome = Outcome()
     by_point: dict[str, list[ReadingAnalysis]] = defaultdict(list)
     last = 0
@@ -280,7 +285,7 @@ def _passage(file: Path, total: int, registry: Any, machine: Machine, amplitude:
             continue
         found += 1
         transitions = record_comparison(store, machine, r.comparison, r.ts, point,
-                                        {"source": "run-up/coast-down", "file": file.name,
+                                        {"source": PASSAGE_SOURCE, "file": file.name,
                                          "readings": r.readings, "sweeps": len(r.sweeps)})
         emit_point(result_json(r, stored_bands) if as_json else None, functools.partial(print_table, r),
                    transitions, recording=store is not None)

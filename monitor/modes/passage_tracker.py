@@ -38,6 +38,7 @@ import numpy as np
 
 from monitor.model import validate
 from monitor.model.jsonsafe import jsonable
+from monitor.model.registry import Machine
 from monitor.model.timefmt import iso_utc
 from monitor.modes.runup import BodeData, Passage, bode_data, find_passages
 from monitor.modes.sweeps import (
@@ -49,6 +50,9 @@ from monitor.modes.sweeps import (
     SweepSplitter,
 )
 
+#: The ``source`` of a mode identified in a run-up or coast-down (a registry mode made
+#: from a passage, the evidence of a passage's mode-shift finding).
+PASSAGE_SOURCE = "run-up/coast-down"
 #: A passage's phase change between its half-power speeds, degrees: 90 for one mode
 #: (Thomson); the band allows for a neighbouring mode, a flexible support and the
 #: sweep's delay (common practice, no published bound).
@@ -147,6 +151,13 @@ def _rejection(p: Passage, with_phase: bool) -> str | None:
             return (f"the phase moves by {moved} between the half-power speeds, "
                     f"not {lo:.0f}-{hi:.0f} deg.")
     return None
+
+
+def stop_speed_hz(machine: Machine) -> float:
+    """Half ``machine``'s minimum operating speed, Hz: below it the machine counts as
+    stopped for the sweep rules, and its readings are left out (at very low speed the 1x
+    of an accelerometer is noise)."""
+    return machine.speed_range_rpm[0] / 2.0 / 60.0
 
 
 class PassageTracker:

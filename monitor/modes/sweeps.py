@@ -34,6 +34,13 @@ is the longest time the speed may take to move by ``noise_hz`` inside a sweep:
    top speed at an average of ``min_rate_hz_s`` or faster; a shorter or slower leg was
    steady running.
 
+Readings come in time order; one not newer than the newest is ignored, but for a
+speed-only reading and one with a 1x amplitude at the same instant (a speed message and
+the waveform of that instant, in either order): they make one reading, the one with the
+1x when the two speeds agree within the margin of rule 3 (``noise_hz`` or 10 % of the
+speed), the speed-only one otherwise (the 1x was taken at another speed: an estimate
+locked on a harmonic).
+
 Memory: a leg keeps at most ``max_points`` readings (past that every other one is
 dropped, halving its resolution), the look-back for rule 4 at most ``W`` seconds of
 readings (and never more than ``max_points``).
@@ -174,12 +181,18 @@ class SweepSplitter:
     def update(self, point: SpeedPoint) -> tuple[Sweep, ...]:
         """Feed one reading; returns the sweeps it completes.
 
-        A reading not newer than the last one is ignored (the caller feeds time order).
-        Raises ValueError for a non-finite time, a negative or non-finite speed, or a
-        non-finite amplitude or phase.
+        A reading not newer than the last one is ignored (the caller feeds time order),
+        but for a speed-only reading and one with a 1x at the same instant, which make
+        one (module docstring). Raises ValueError for a non-finite time, a negative or
+        non-finite speed, or a non-finite amplitude or phase.
         """
         p = _checked(point)
         if self._last_ts is not None and p.ts <= self._last_ts:
+            held = self._pending  # the newest reading, still waiting for its next neighbour
+            if held is not None and held.ts == p.ts and (held.amplitude is None) != (p.amplitude is None):
+                bare, with_1x = (held, p) if held.amplitude is None else (p, held)
+                margin = max(self.rules.noise_hz, SPIKE_FRACTION * bare.speed_hz)
+                self._pending = with_1x if abs(with_1x.speed_hz - bare.speed_hz) <= margin else bare
             return ()
         self._last_ts = p.ts
         prev, pending = self._prev, self._pending

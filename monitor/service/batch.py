@@ -10,14 +10,16 @@
    brought up to date (monitor/service/states.py), with the changes made outside the
    readings (registry closings, acknowledgements);
 4. :func:`evaluate`: each new reading through its machine's detector, in arrival order;
+   :func:`track_passages`: each through its machine's passage trackers, the mode-shift
+   alarms of the passages found (monitor/service/passages.py);
    :func:`clear_processing_faults` for the streams processed again;
 5. :func:`build_rows` and :func:`insert_rows`: measurements, speed readings and spectra
    in multi-row ``INSERT ... ON CONFLICT DO NOTHING`` (one row per reading, built by the
-   store's own row builders);
-6. :func:`record_alarms`: alarm transitions in arrival order, each waveform's spectra kept
-   as their evidence; the alarm events to publish;
-7. ``DetectorStates.save``: each machine's detector state written once;
-8. :func:`attach_statuses`: at most one retained status per machine.
+   store's own row builders), and the passages found;
+6. :func:`record_alarms`: alarm transitions in arrival order, each with its evidence
+   spectra (monitor/service/evidence.py); the alarm events to publish;
+7. ``DetectorStates.save``: each machine's detector state (and passage trackers') written once;
+8. :func:`attach_statuses`: one retained status per machine touched.
 
 A crash at any instant leaves either nothing or everything of a batch committed. A reading
 another process stored between step 2 and step 5 makes the insert come back short
@@ -37,6 +39,7 @@ from monitor.analysis.waveform import ReadingAnalysis
 from monitor.detection.alarms import Transition
 from monitor.detection.evaluator import MachineEvaluator
 from monitor.detection.results import ReadingEvaluation
+from monitor.service import evidence
 from monitor.service.cadence import Kept, SnapshotCadence
 from monitor.service.core import Core
 from monitor.service.failures import ReadingRaced
@@ -50,15 +53,18 @@ from monitor.service.items import (
     SpeedMessage,
     WaveformMessage,
 )
+from monitor.service.passages import FoundPassage, feed_reading
 from monitor.service.payloads import StatusBoard, alarm_events
+from monitor.service.states import DetectorStates
 from monitor.store import add_dead_letter, record_transitions
-from monitor.store.models import Measurement, SpectrumSnapshot, SpeedReadingRow, utcnow
+from monitor.store.models import Measurement, PassageRow, SpectrumSnapshot, SpeedReadingRow, utcnow
 from monitor.store.writes import (
+    SNAPSHOT_KEY,
     existing_measurements,
     existing_speed_readings,
-    insert_ignore,
     insert_many_ignore,
     measurement_values,
+    passage_values,
     snapshot_rows,
     speed_reading_values,
     to_datetime,
@@ -70,7 +76,8 @@ SPEED_READINGS = cast(Table, SpeedReadingRow.__table__)
 SNAPSHOTS = cast(Table, SpectrumSnapshot.__table__)
 MEASUREMENT_KEY = ("machine_id", "point_id", "ts")
 SPEED_READING_KEY = ("machine_id", "ts")
-SNAPSHOT_KEY = ("machine_id", "point_id", "ts", "kind")
+PASSAGES = cast(Table, PassageRow.__table__)
+PASSAGE_KEY = ("machine_id", "point_id", "started_at", "seq")
 
 
 @dataclass(eq=False)
@@ -103,6 +110,7 @@ def commit_batch(core: Core, items: Sequence[Item], *, check_all: bool = True) -
     decoded = [it for it in items if not isinstance(it, RejectedMessage)]
     touched: dict[str, float] = {}
     kept: Kept = {}
+    analysed: list[ReadingAnalysis] = []
     with core.transaction() as s:
         # Core statements run on the session's connection (same transaction): the ORM
         # Session's execute adds about as much per statement as SQLite takes.
@@ -116,14 +124,19 @@ def commit_batch(core: Core, items: Sequence[Item], *, check_all: bool = True) -
             kept = core.cadence.kept(c, [it for it in fresh if isinstance(it, WaveformMessage)
                                          and it.analysis is not None])
             evaluated = evaluate(fresh, taken.evaluators, core.board)
+            found = track_passages(evaluated, taken.evaluators, core.states)
             clear_processing_faults(evaluated, taken.evaluators)
             rows = build_rows(evaluated, kept, core.cadence)
             insert_rows(c, rows)
-            outcomes.update(record_alarms(s, evaluated, taken.outside))
+            insert_passages(c, found)
+            analysed = [it.analysis for it in fresh if isinstance(it, WaveformMessage) and it.analysis is not None]
+            outcomes.update(record_alarms(s, evaluated, taken.outside, core.latest, analysed))
             core.states.save(c, touched)
             attach_statuses(evaluated, outcomes, taken.evaluators, core.board)
     core.states.saved(touched)
     core.cadence.remember(kept)
+    with core.lock:  # the registry follower (periodic thread) drops retired points' spectra
+        core.latest.remember(analysed)
     return [outcomes[it] for it in items]
 
 
@@ -182,8 +195,28 @@ def evaluate(readings: Sequence[Decoded], evaluators: Mapping[str, MachineEvalua
         else:
             r = it.reading
             out.append(Evaluated(it, None, ev.observe_speed(r) if r.speed_hz > 0 else []))
-            board.saw_speed(r.machine, r.speed_hz)
+            board.saw_speed(r.machine, r.ts, r.speed_hz)
     return out
+
+
+def track_passages(evaluated: Sequence[Evaluated], evaluators: Mapping[str, MachineEvaluator],
+                   states: DetectorStates) -> list[FoundPassage]:
+    """Each reading through its machine's passage trackers, in arrival order; the passages
+    of the sweeps completed, whose mode-shift transitions ride on the reading that
+    completed them (monitor/service/passages.py)."""
+    out: list[FoundPassage] = []
+    for e in evaluated:
+        machine = e.item.machine
+        found, trans = feed_reading(states.passages(machine), evaluators[machine], e.item, e.evaluation)
+        out += found
+        e.transitions.extend(trans)
+    return out
+
+
+def insert_passages(conn: Connection, found: Sequence[FoundPassage]) -> None:
+    """Insert the passages found (one stored already, by a batch that raced, is skipped)."""
+    insert_many_ignore(conn, PASSAGES, [passage_values(f.machine, f.point, f.sweep, f.seq, f.detected_at,
+                                                       f.shift) for f in found], PASSAGE_KEY)
 
 
 def clear_processing_faults(evaluated: Sequence[Evaluated], evaluators: Mapping[str, MachineEvaluator]) -> None:
@@ -240,21 +273,25 @@ def insert_rows(conn: Connection, rows: BatchRows) -> None:
     insert_many_ignore(conn, SNAPSHOTS, rows.snapshots, SNAPSHOT_KEY)
 
 
-def record_alarms(s: Session, evaluated: Sequence[Evaluated], outside: Mapping[str, list[Transition]]
-                  ) -> dict[Item, Outcome]:
-    """Record the alarm transitions in arrival order, each waveform's spectra kept as
-    their evidence; the outcome of each reading carries its alarm events, the first
-    reading of a machine also those made outside the readings (``outside``)."""
+def record_alarms(s: Session, evaluated: Sequence[Evaluated], outside: Mapping[str, list[Transition]],
+                  latest: evidence.LatestSpectra, analysed: Sequence[ReadingAnalysis]) -> dict[Item, Outcome]:
+    """Record the alarm transitions in arrival order, each with its evidence spectra
+    (monitor/service/evidence.py: a waveform's own; for a speed message the machine's
+    latest, from ``latest`` and the batch's ``analysed`` readings); the outcome of each
+    reading carries its alarm events, the first reading of a machine also those made
+    outside the readings (``outside``)."""
     out: dict[Item, Outcome] = {}
     announced: set[str] = set()
     for e in evaluated:
         it, trans = e.item, e.transitions
         ids: list[int] = []
         if trans:
-            evidence_id = None
-            if isinstance(it, WaveformMessage) and it.analysis is not None:
-                evidence_id = keep_evidence(s, it.analysis)
-            ids = record_transitions(s, trans, spectrum_snapshot_id=evidence_id)
+            if isinstance(it, WaveformMessage):
+                kept = evidence.Evidence() if it.analysis is None else evidence.for_reading(s, it.analysis, trans)
+            else:
+                kept = evidence.for_speed(s, it.machine, it.reading.ts,
+                                          latest.newest(it.machine, it.reading.ts, analysed))
+            ids = record_transitions(s, trans, spectrum_snapshot_id=kept.spectrum_id, spectra=kept.spectra)
         mine = [] if it.machine in announced else outside.get(it.machine, [])
         announced.add(it.machine)
         kind = OutcomeKind.WAVEFORM if isinstance(it, WaveformMessage) else OutcomeKind.SPEED
@@ -263,23 +300,10 @@ def record_alarms(s: Session, evaluated: Sequence[Evaluated], outside: Mapping[s
     return out
 
 
-def keep_evidence(s: Session, a: ReadingAnalysis) -> int | None:
-    """Keep a reading's spectra as alarm evidence; the id of its velocity spectrum (else
-    of the first kept)."""
-    evidence_id = None
-    for row in snapshot_rows(a, evidence=True):
-        sid = insert_ignore(s, SNAPSHOTS, row, SNAPSHOT_KEY)
-        if sid is not None and (row["kind"] == "velocity" or evidence_id is None):
-            evidence_id = sid
-    return evidence_id
-
-
 def attach_statuses(evaluated: Sequence[Evaluated], outcomes: Mapping[Item, Outcome],
                     evaluators: Mapping[str, MachineEvaluator], board: StatusBoard) -> None:
-    """The retained status once per machine: on its last waveform's outcome, or on its
-    last outcome with events when only speed readings came."""
-    for machine in dict.fromkeys(e.item.machine for e in evaluated):
-        carrier = next((o for e in reversed(evaluated) if e.item.machine == machine
-                        and ((o := outcomes[e.item]).kind == OutcomeKind.WAVEFORM or o.events)), None)
-        if carrier is not None:
-            carrier.status = board.status(machine, evaluators[machine])
+    """The retained status once per machine, on its last outcome of the batch (a speed
+    message's too: the speed and the nearest margin follow the speed stream)."""
+    last = {e.item.machine: e.item for e in evaluated}
+    for machine, item in last.items():
+        outcomes[item].status = board.status(machine, evaluators[machine])

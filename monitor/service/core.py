@@ -1,5 +1,6 @@
 """What the batch steps and the periodic jobs share: the store, the detectors, the status
-views, the snapshot cadence, the retry loop and the one lock that keeps them in step.
+views, the snapshot cadence, each point's newest spectrum, the retry loop and the one lock
+that keeps them in step.
 
 The service (monitor/service/service.py) builds one :class:`Core`; the batch
 (monitor/service/batch.py, monitor/service/isolation.py) and the periodic jobs
@@ -11,13 +12,14 @@ from __future__ import annotations
 import threading
 from collections.abc import Callable, Iterable, Iterator
 from contextlib import contextmanager
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import TypeVar
 
 from sqlalchemy.orm import Session
 
 from monitor.metrics import ServiceMetrics
 from monitor.service.cadence import SnapshotCadence
+from monitor.service.evidence import LatestSpectra
 from monitor.service.failures import Retrier
 from monitor.service.payloads import StatusBoard
 from monitor.service.states import DetectorStates
@@ -47,6 +49,9 @@ class Core:
     stop: threading.Event
     #: Readings set aside as dead letters so far (monitor/service/isolation.py).
     set_aside: int = 0
+    #: Each point's newest velocity spectrum, for the evidence of speed messages'
+    #: transitions (monitor/service/evidence.py).
+    latest: LatestSpectra = field(default_factory=LatestSpectra)
 
     @property
     def postgres(self) -> bool:

@@ -17,6 +17,7 @@ from sqlalchemy.orm import Session
 
 from monitor.detection.alarms import Transition, severity_rank
 from monitor.detection.evaluator import MachineEvaluator
+from monitor.detection.margins import MarginRow
 from monitor.detection.results import ReadingEvaluation
 from monitor.model.timefmt import iso_utc
 from monitor.store import reads
@@ -24,7 +25,11 @@ from monitor.store import reads
 
 @dataclass
 class MachineView:
-    """Latest facts of one machine for its retained status."""
+    """Latest facts of one machine for its retained status.
+
+    The running speed is the newest of the speed messages and the readings sensor health
+    accepted (the speed message on a tie), as the detector uses them: so the status stays
+    current from the speed stream while a vibration sensor is faulted or absent."""
 
     ts: float | None = None
     speed_hz: float | None = None
@@ -35,20 +40,36 @@ class MachineView:
     #: taken from the newest that has one when the status is built (once per batch),
     #: not computed for every reading.
     unseen: list[ReadingEvaluation] = field(default_factory=list)
+    #: When ``speed_hz`` was measured, epoch s.
+    speed_ts: float | None = None
+    #: The speed came from a speed message since the status was last built: the nearest
+    #: margin is computed at it.
+    speed_due: bool = False
 
     def copy(self) -> MachineView:
         return MachineView(self.ts, self.speed_hz, self.speed_source, dict(self.zones), self.nearest,
-                           list(self.unseen))
+                           list(self.unseen), self.speed_ts, self.speed_due)
 
-    def nearest_margin(self) -> dict[str, Any] | None:
-        for evaluation in reversed(self.unseen):
-            m = evaluation.nearest_margin()
-            if m is not None:
-                self.nearest = {"subject": m.subject, "margin_pct": m.margin_pct,
-                                "required_pct": m.required_pct, "status": m.status}
-                break
+    def nearest_margin(self, ev: MachineEvaluator) -> dict[str, Any] | None:
+        if self.speed_due and self.speed_hz is not None:
+            # The tightest pair at the speed, as ReadingEvaluation.nearest_margin chooses it
+            # (none while the machine stands).
+            rows = ev.margins_at(self.speed_hz) if self.speed_hz > 0 else ()
+            row = min(rows, key=lambda r: r.margin_pct - r.required_pct, default=None)
+            self.nearest = None if row is None else _nearest_json(row)
+        else:
+            for evaluation in reversed(self.unseen):
+                m = evaluation.nearest_margin()
+                if m is not None:
+                    self.nearest = _nearest_json(m)
+                    break
         self.unseen.clear()
+        self.speed_due = False
         return self.nearest
+
+
+def _nearest_json(m: MarginRow) -> dict[str, Any]:
+    return {"subject": m.subject, "margin_pct": m.margin_pct, "required_pct": m.required_pct, "status": m.status}
 
 
 class StatusBoard:
@@ -58,18 +79,25 @@ class StatusBoard:
         self._views: dict[str, MachineView] = {m: MachineView() for m in machines}
 
     def saw_waveform(self, machine: str, evaluation: ReadingEvaluation) -> None:
-        """A waveform of ``machine`` was evaluated: its time, zone and speed."""
+        """A waveform of ``machine`` was evaluated: its time, zone, and its speed when
+        sensor health accepted the reading and no newer speed is known."""
         view = self._views[machine]
         view.ts = max(view.ts or 0.0, evaluation.ts)
         view.zones[evaluation.point] = evaluation.zone
-        if evaluation.speed_hz is not None:
-            view.speed_hz = evaluation.speed_hz
-        view.unseen.append(evaluation)
+        if evaluation.speed_hz is not None and evaluation.health.ok and (
+                view.speed_ts is None or evaluation.ts > view.speed_ts):
+            view.speed_hz, view.speed_ts, view.speed_source = evaluation.speed_hz, evaluation.ts, "reading"
+            view.speed_due = False
+            view.unseen.append(evaluation)
 
-    def saw_speed(self, machine: str, speed_hz: float) -> None:
-        """A speed reading of ``machine`` was observed."""
+    def saw_speed(self, machine: str, ts: float, speed_hz: float) -> None:
+        """A speed reading of ``machine`` (epoch s, Hz) was observed."""
         view = self._views[machine]
-        view.speed_hz, view.speed_source = speed_hz, "measured"
+        view.ts = max(view.ts or 0.0, ts)
+        if view.speed_ts is None or ts >= view.speed_ts:
+            view.speed_hz, view.speed_ts, view.speed_source = speed_hz, ts, reads.SPEED_TOPIC
+            view.speed_due = True
+            view.unseen.clear()
 
     def status(self, machine: str, ev: MachineEvaluator) -> dict[str, Any]:
         """The retained status body of ``machine`` (docs/mqtt.md)."""
@@ -82,7 +110,7 @@ class StatusBoard:
             "ts": iso_utc(view.ts),
             "state": worst or "normal",
             "speed_hz": view.speed_hz,
-            "nearest_margin": view.nearest_margin(),
+            "nearest_margin": view.nearest_margin(ev),
             "zone": max(zones) if zones else None,
             "zones": dict(view.zones),
             "active_alarms": [

@@ -59,10 +59,12 @@ class RegistryChanges:
                     if mid in before:
                         self._unretired.add(mid)
                         core.board.drop(mid)
+                        core.latest.forget(mid)
                     continue
                 if before.get(mid) != machine:
                     self._unsettled.add(mid)
                     core.board.keep_points(mid, [p.id for p in machine.points])
+                    core.latest.keep_points(mid, [p.id for p in machine.points])
             for m in core.states.registry.machines:
                 core.board.ensure(m.id)
 

@@ -27,10 +27,12 @@ from monitor.detection.alarms import Transition
 from monitor.detection.evaluator import MachineEvaluator
 from monitor.detection.stored_state import evaluator_from_state, stored_state
 from monitor.model.registry import Registry
+from monitor.service.passages import PassageTrackers
 from monitor.service.registry_follow import RegistryChange, RegistryFollower, follow
 from monitor.store import record_transitions
 from monitor.store.models import Alarm, DetectorState
-from monitor.store.writes import save_detector_states
+from monitor.store.reads import passage_tracker_state
+from monitor.store.writes import save_detector_states, save_passage_trackers
 
 log = logging.getLogger("whirlwatch.service")
 
@@ -62,6 +64,9 @@ class DetectorStates:
         self._evaluators: dict[str, MachineEvaluator] = {m.id: MachineEvaluator(m) for m in registry.machines}
         # The stored version each detector matches; None: load it from the store first.
         self._versions: dict[str, int | None] = {m.id: None for m in registry.machines}
+        # Each machine's live passage trackers: loaded, written and reloaded with its
+        # detector (monitor/service/passages.py).
+        self._passages: dict[str, PassageTrackers] = {}
         # Statements of the hot path, built once (building costs about what running them does).
         self._versions_stmt: Any = None
         self._acks_stmt: Any = None
@@ -69,6 +74,10 @@ class DetectorStates:
     def evaluator(self, machine: str) -> MachineEvaluator:
         """The detector of ``machine`` as held in memory (KeyError if not monitored)."""
         return self._evaluators[machine]
+
+    def passages(self, machine: str) -> PassageTrackers:
+        """The passage trackers of ``machine`` as held in memory (taken with its detector)."""
+        return self._passages.setdefault(machine, PassageTrackers())
 
     # -- registry changes
 
@@ -81,6 +90,7 @@ class DetectorStates:
         for mid in change.machines:
             if mid not in known:
                 self._versions.pop(mid, None)
+                self._passages.pop(mid, None)
         for m in self.registry.machines:
             if m.id not in self._evaluators:
                 self._versions[m.id] = None  # loaded from the store on first use
@@ -127,12 +137,13 @@ class DetectorStates:
 
     def save(self, s: Any, touched: Mapping[str, float | dt.datetime | None]) -> None:
         """Write the new state of every machine in ``touched`` (``{machine: latest reading
-        time}``), one row each, its version moved on by one (``s``: a session or its
-        connection)."""
+        time}``), one row each, its version moved on by one, and its passage trackers'
+        (``s``: a session or its connection)."""
         save_detector_states(s, {
             m: (stored_state(self._evaluators[m], (self._versions.get(m) or 0) + 1), ts)
             for m, ts in touched.items()
         })
+        save_passage_trackers(s, {m: self._passages[m].snapshot() for m in touched if m in self._passages})
 
     def saved(self, machines: Iterable[str]) -> None:
         """After the commit: the held versions match what :meth:`save` wrote."""
@@ -149,7 +160,9 @@ class DetectorStates:
         state = s.execute(
             select(DetectorState.state).where(DetectorState.machine_id == machine)
         ).scalar_one_or_none()
-        self._evaluators[machine] = evaluator_from_state(self.registry.machine(machine), state)[0]
+        spec = self.registry.machine(machine)
+        self._evaluators[machine] = evaluator_from_state(spec, state)[0]
+        self._passages[machine] = PassageTrackers.restore(spec, passage_tracker_state(s, machine))
         self._versions[machine] = version
 
     def _versions_statement(self) -> Any:

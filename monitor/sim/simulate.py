@@ -351,9 +351,7 @@ def simulate_signal(
             raise ValueError(
                 f"mode at {m.frequency_hz} Hz is above the Nyquist frequency of fs_hz={fs_hz}."
             )
-    if warmup_s is None:
-        warmup_s = min(8.0 * model.slowest_decay_s(), 30.0)
-    n_warm = int(round(validate.non_negative(warmup_s, "warmup_s") * fs_hz))
+    n_warm = _warmup_samples(model, warmup_s, fs_hz)
     if n_warm:
         speed = np.concatenate([np.full(n_warm, speed[0]), speed])
     rng = np.random.default_rng(seed)
@@ -376,6 +374,32 @@ def simulate_signal(
         noise = rng.normal(0.0, model.sensor_noise_m_s2, speed.size)
         out += noise if quantity == "acceleration" else _integrate(noise, fs_hz, quantity)
     return _to_unit(out[n_warm:], unit)
+
+
+def _warmup_samples(model: MachineModel, warmup_s: float | None, fs_hz: float) -> int:
+    """Samples simulated before a record and discarded (``warmup_s`` of
+    :func:`simulate_signal`; None: 8 time constants of the slowest mode, at most 30 s)."""
+    if warmup_s is None:
+        warmup_s = min(8.0 * model.slowest_decay_s(), 30.0)
+    return int(round(validate.non_negative(warmup_s, "warmup_s") * fs_hz))
+
+
+def once_per_rev_times(speed_hz: np.ndarray, fs_hz: float, warmup_samples: int = 0) -> np.ndarray:
+    """The pulses of a once-per-revolution sensor on the simulated shaft: the instants
+    (s from the first sample after ``warmup_samples`` samples at the first speed, as
+    :func:`simulate_signal` runs them) at which the shaft angle the forces are built from
+    passes a whole turn (angle 0 is the reference mark; the unbalance sits at
+    ``unbalance_phase_deg`` from it). Each instant is interpolated linearly between the
+    two samples around it."""
+    speed = np.asarray(speed_hz, dtype=float)
+    if warmup_samples:
+        speed = np.concatenate([np.full(warmup_samples, speed[0]), speed])
+    turns = _shaft_angle(speed, fs_hz) / (2.0 * math.pi)
+    idx = np.flatnonzero(np.diff(np.floor(turns)) > 0) + 1
+    c0, c1 = turns[idx - 1], turns[idx]
+    pos = idx - 1 + (np.floor(c1) - c0) / (c1 - c0)
+    t = (pos - warmup_samples) / fs_hz
+    return t[t >= 0.0]
 
 
 def _integrate(a: np.ndarray, fs_hz: float, quantity: str, f_low_hz: float = 2.0) -> np.ndarray:
@@ -442,6 +466,7 @@ def simulate_run(
     seed: int | np.random.SeedSequence | None = 0,
     speed_readings: bool = True,
     warmup_s: float | None = None,
+    once_per_rev: bool = False,
 ) -> list[Waveform | SpeedReading]:
     """A continuous run along ``profile``, cut into blocks every ``interval_s`` s.
 
@@ -449,7 +474,9 @@ def simulate_run(
     transients through modes carry from block to block. Each block is a
     :class:`Waveform` of ``block_samples`` samples starting at ``start_ts + k*interval_s``;
     with ``speed_readings`` each block is preceded by a :class:`SpeedReading` at the same
-    ts with the mean speed over the block (Hz). Returned in time order.
+    ts with the mean speed over the block (Hz). With ``once_per_rev`` each block carries
+    the once-per-revolution pulses that fall in it (:func:`once_per_rev_times`, s from
+    its first sample); off by default. Returned in time order.
     """
     validate.positive(interval_s, "interval_s")
     validate.whole_number(block_samples, "block_samples")
@@ -464,10 +491,17 @@ def simulate_run(
         )
         for p, s in zip(points, ss.spawn(len(points)), strict=True)
     }
+    pulses = None
+    if once_per_rev:
+        pulses = once_per_rev_times(speed, fs_hz, _warmup_samples(model, warmup_s, fs_hz))
     out: list[Waveform | SpeedReading] = []
     for k, i0 in enumerate(starts):
         ts = round(start_ts + i0 / fs_hz, 3)
         block = slice(int(i0), int(i0) + int(block_samples))
+        tacho = None
+        if pulses is not None:
+            t0, t1 = i0 / fs_hz, (i0 + int(block_samples)) / fs_hz
+            tacho = pulses[(pulses >= t0) & (pulses < t1)] - t0
         if speed_readings:
             out.append(SpeedReading(model.machine_id, ts, float(np.mean(speed[block]))))
         for p in points:
@@ -475,6 +509,7 @@ def simulate_run(
                 Waveform(
                     machine=model.machine_id, point=p, ts=ts, fs_hz=float(fs_hz), unit=unit,
                     samples=records[p][block].copy(), reading_id=f"{model.machine_id}-{p}-{k}",
+                    once_per_rev_s=tacho,
                 )
             )
     return out

@@ -16,7 +16,10 @@ Tables (see docs/store.md for the full schema and the retention policy):
   ``audit_events`` every change to them, with who, when and from where.
 - ``dead_letters``: rejected messages with their reason and first bytes.
 - ``detector_state``: one JSON snapshot per machine so a restarted service can rebuild
-  its detectors.
+  its detectors; ``passage_trackers`` the state of its live passage trackers beside it.
+- ``passages``: the resonance passages of the run-ups and coast-downs the service saw,
+  with their Bode points; one matching no stored mode is a candidate mode an engineer
+  accepts or rejects.
 
 Times are stored as UTC: ``UTCDateTime`` accepts aware datetimes, stores naive UTC on
 SQLite (which has no time zone type) and ``timestamptz`` on PostgreSQL, and always
@@ -462,3 +465,59 @@ class DetectorState(Base):
     state: Mapped[dict[str, Any]] = mapped_column(JSON)
     ts: Mapped[dt.datetime | None] = mapped_column(UTCDateTime)
     updated_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
+
+
+class PassageTrackerState(Base):
+    """The live passage trackers of one machine's points as JSON
+    (monitor/service/passages.py), written with its detector state."""
+
+    __tablename__ = "passage_trackers"
+
+    machine_id: Mapped[str] = mapped_column(
+        String(64), ForeignKey("machines.id", ondelete="CASCADE"), primary_key=True
+    )
+    state: Mapped[dict[str, Any]] = mapped_column(JSON)
+    updated_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
+
+
+#: What became of a passage that matched no stored mode (``passages.candidate``).
+CANDIDATE_STATES = ("open", "accepted", "rejected")
+
+
+class PassageRow(Base):
+    """One resonance passage of a run-up or coast-down at one point: ``seq`` numbers the
+    passages of one sweep (ascending in speed). ``mode`` and ``shift_pct`` name the stored
+    mode it matched and how far it lies from it; with no match it is a candidate mode
+    (``candidate`` 'open' until an engineer accepts or rejects it). ``points``: the
+    sweep's Bode points, ``[{"ts", "speed_hz", "amplitude", "phase_deg"}]``."""
+
+    __tablename__ = "passages"
+    __table_args__ = (
+        UniqueConstraint("machine_id", "point_id", "started_at", "seq"),
+        Index(None, "machine_id", "id"),
+    )
+
+    id: Mapped[int] = mapped_column(BigId, primary_key=True)
+    machine_id: Mapped[str] = mapped_column(String(64), ForeignKey("machines.id"))
+    point_id: Mapped[str] = mapped_column(String(64))
+    seq: Mapped[int] = mapped_column(Integer)
+    kind: Mapped[str] = mapped_column(String(16))
+    method: Mapped[str] = mapped_column(String(16))
+    started_at: Mapped[dt.datetime] = mapped_column(UTCDateTime)
+    ended_at: Mapped[dt.datetime] = mapped_column(UTCDateTime)
+    detected_at: Mapped[dt.datetime] = mapped_column(UTCDateTime)
+    natural_frequency_hz: Mapped[float] = mapped_column(Float)
+    critical_speed_hz: Mapped[float] = mapped_column(Float)
+    amplification_factor: Mapped[float] = mapped_column(Float)
+    damping_ratio: Mapped[float] = mapped_column(Float)
+    peak_amplitude: Mapped[float] = mapped_column(Float)
+    unit: Mapped[str] = mapped_column(String(16))
+    phase_at_peak_deg: Mapped[float | None] = mapped_column(Float)
+    phase_change_deg: Mapped[float | None] = mapped_column(Float)
+    mode: Mapped[str | None] = mapped_column(String(200))
+    shift_pct: Mapped[float | None] = mapped_column(Float)
+    points: Mapped[list[Any]] = mapped_column(JSON)
+    candidate: Mapped[str | None] = mapped_column(String(16))
+    decided_by: Mapped[str | None] = mapped_column(String(100))
+    decided_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime)
+    accepted_mode: Mapped[str | None] = mapped_column(String(200))

@@ -6,7 +6,8 @@ builds each reading's rows with :func:`measurement_values`, :func:`snapshot_rows
 :func:`speed_reading_values` and inserts a whole batch with :func:`insert_many_ignore`
 (``INSERT ... ON CONFLICT DO NOTHING``), so a redelivered message inserts nothing; alarm
 transitions go through :func:`record_transitions`, each machine's detector state through
-:func:`save_detector_states`. Two service processes racing on the same reading are
+:func:`save_detector_states` and its passage trackers' through :func:`save_passage_trackers`;
+a sweep's passages are rows built by :func:`passage_values`. Two service processes racing on the same reading are
 serialised by the unique key the same way. The dashboard's one write here is
 :func:`acknowledge_alarm`.
 """
@@ -17,10 +18,10 @@ import datetime as dt
 import math
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, cast
 
 import numpy as np
-from sqlalchemy import Connection, Table, and_, bindparam, select
+from sqlalchemy import Connection, Table, and_, bindparam, select, update
 from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.orm import Session
 
@@ -28,12 +29,16 @@ from monitor.analysis.waveform import ReadingAnalysis, Spectrum
 from monitor.detection.alarms import Transition
 from monitor.model.jsonsafe import jsonable
 from monitor.model.readings import SpeedReading, Waveform
+from monitor.model.timefmt import iso_utc
+from monitor.modes.passage_tracker import SweepPassages
+from monitor.modes.shift import ModeShift
 from monitor.store.models import (
     Alarm,
     AlarmTransitionRow,
     DeadLetter,
     DetectorState,
     Measurement,
+    PassageTrackerState,
     SpectrumSnapshot,
     SpeedReadingRow,
     pack_amplitudes,
@@ -41,6 +46,10 @@ from monitor.store.models import (
 )
 
 CLOSED_STATES = frozenset({"cleared"})
+#: The unique key of a stored spectrum.
+SNAPSHOT_KEY = ("machine_id", "point_id", "ts", "kind")
+# The ORM types a model's __table__ as any FromClause; this is its Table.
+_SNAPSHOTS = cast(Table, SpectrumSnapshot.__table__)
 DEAD_LETTER_HEAD_BYTES = 256
 
 
@@ -118,15 +127,16 @@ def _orders_json(analysis: ReadingAnalysis) -> list[dict[str, Any]]:
     ]
 
 
-def _snapshot_values(
-    analysis: ReadingAnalysis, ts: dt.datetime, kind: str, spectrum: Spectrum, evidence: bool
+def spectrum_row(
+    machine: str, point: str, ts: float | dt.datetime, kind: str, spectrum: Spectrum, *, evidence: bool = False
 ) -> dict[str, Any]:
+    """The ``spectrum_snapshots`` row of one spectrum of a point's reading at ``ts``."""
     freq = np.asarray(spectrum.freq_hz, dtype=np.float64)
     amp = np.asarray(spectrum.amplitude)
     return {
-        "machine_id": analysis.machine,
-        "point_id": analysis.point,
-        "ts": ts,
+        "machine_id": machine,
+        "point_id": point,
+        "ts": to_datetime(ts),
         "kind": kind,
         "unit": spectrum.unit,
         "scaling": spectrum.scaling,
@@ -192,15 +202,43 @@ def measurement_values(
 
 
 def snapshot_rows(
-    analysis: ReadingAnalysis, *, evidence: bool = False
+    analysis: ReadingAnalysis, *, evidence: bool = False, envelope: bool = False
 ) -> list[dict[str, Any]]:
-    """The ``spectrum_snapshots`` rows (native, then velocity) of one analysed reading."""
+    """The ``spectrum_snapshots`` rows (native, then velocity; then the bearing envelope
+    spectrum when ``envelope`` and the analysis has one) of one analysed reading."""
     ts = to_datetime(analysis.ts)
-    return [
-        _snapshot_values(analysis, ts, kind, spectrum, evidence)
-        for kind, spectrum in (("native", analysis.spectrum), ("velocity", analysis.velocity_spectrum))
-        if spectrum is not None
-    ]
+    kinds: list[tuple[str, Spectrum | None]] = [("native", analysis.spectrum),
+                                                ("velocity", analysis.velocity_spectrum)]
+    if envelope:
+        kinds.append(("envelope", analysis.envelope_spectrum))
+    return [spectrum_row(analysis.machine, analysis.point, ts, kind, spectrum, evidence=evidence)
+            for kind, spectrum in kinds if spectrum is not None]
+
+
+def keep_evidence_snapshots(session: Session, rows: Sequence[Mapping[str, Any]]) -> list[int]:
+    """Store ``snapshot_rows(..., evidence=True)`` as alarm evidence; the id of each row, in
+    order. A spectrum stored already (by the snapshot cadence, or as the evidence of an
+    earlier transition) is not stored again: its row is marked evidence, so retention keeps
+    it, and its id returned."""
+    t = _SNAPSHOTS.c
+    ids: list[int] = []
+    for row in rows:
+        sid = insert_ignore(session, _SNAPSHOTS, row, SNAPSHOT_KEY)
+        if sid is None:
+            sid = session.execute(select(t.id).where(
+                t.machine_id == row["machine_id"], t.point_id == row["point_id"], t.ts == row["ts"],
+                t.kind == row["kind"])).scalar_one()
+            mark_evidence(session, [sid])
+        ids.append(int(sid))
+    return ids
+
+
+def mark_evidence(session: Session, snapshot_ids: Sequence[int]) -> None:
+    """Mark stored spectra as alarm evidence (retention never thins them)."""
+    if snapshot_ids:
+        t = _SNAPSHOTS
+        session.execute(update(t).where(t.c.id.in_(list(snapshot_ids)), t.c.evidence.is_(False))
+                        .values(evidence=True))
 
 
 def insert_many_ignore(
@@ -334,9 +372,15 @@ def record_transitions(
     transitions: Iterable[Transition],
     *,
     spectrum_snapshot_id: int | None = None,
+    spectra: Sequence[Mapping[str, Any]] = (),
 ) -> list[int]:
     """Apply the detectors' alarm transitions to the ``alarms`` rows and append them to
     ``alarm_transitions``, inside the caller's transaction.
+
+    ``spectrum_snapshot_id`` (the velocity spectrum kept as evidence) goes into each
+    transition's row and evidence, ``spectra`` (every spectrum kept or referred to as
+    evidence: ``point``, ``kind``, ``spectrum_id``, ``ts``, ``age_s``) into its evidence
+    as ``spectra`` (docs/alarms.md, "Evidence spectra").
 
     An alarm is identified by (machine, point, kind, subject); a transition opens a new alarm row when none of that identity is open
     (state not ``cleared``). A transition already stored (same alarm identity, name and
@@ -367,6 +411,8 @@ def record_transitions(
         evidence = jsonable(t.evidence) if t.evidence is not None else None
         if isinstance(evidence, dict) and spectrum_snapshot_id is not None:
             evidence["spectrum_snapshot_id"] = spectrum_snapshot_id
+        if isinstance(evidence, dict) and spectra:
+            evidence["spectra"] = [dict(x) for x in spectra]
         if alarm is None:
             alarm = Alarm(
                 ref=t.ref,
@@ -482,6 +528,54 @@ def save_detector_states(
          "ts": to_datetime(ts) if ts is not None else None, "updated_at": now}
         for machine, (state, ts) in sorted(states.items())
     ])
+
+
+def save_passage_trackers(session: Session | Connection, states: Mapping[str, Mapping[str, Any]]) -> None:
+    """Upsert the passage trackers' state of several machines (``{machine: state}``,
+    monitor/service/passages.py: plain JSON, finite floats only) with one statement,
+    inside the caller's transaction."""
+    if not states:
+        return
+    dialect = _dialect_name(session)
+    ins_mod = postgresql if dialect == "postgresql" else sqlite
+
+    def build() -> Any:
+        stmt = ins_mod.insert(PassageTrackerState.__table__)
+        return stmt.on_conflict_do_update(
+            index_elements=["machine_id"],
+            set_={"state": stmt.excluded.state, "updated_at": stmt.excluded.updated_at})
+
+    now = utcnow()
+    session.execute(_statement(("save_passage_trackers", dialect), build), [
+        {"machine_id": m, "state": state, "updated_at": now} for m, state in sorted(states.items())])
+
+
+def passage_values(machine: str, point: str, sp: SweepPassages, seq: int, detected_at: float,
+                   shift: ModeShift | None) -> dict[str, Any]:
+    """The ``passages`` row of passage ``seq`` of sweep ``sp`` at ``point``, found by the
+    reading at ``detected_at`` (epoch s): with the stored mode that claimed it and its
+    shift, or a candidate mode ('open') when ``shift`` is None; the sweep's Bode points
+    (``[{"ts", "speed_hz", "amplitude", "phase_deg"}]``, phase unwrapped along the sweep)."""
+    p, sweep, bode = sp.passages[seq], sp.sweep, sp.bode
+    points: list[dict[str, Any]] = []
+    if bode is not None:
+        used = [q for q in sweep.points if q.amplitude is not None]
+        phase = bode.phase_deg
+        points = [{"ts": iso_utc(q.ts, timespec="milliseconds"), "speed_hz": float(bode.speed_hz[i]),
+                   "amplitude": float(bode.amplitude[i]),
+                   "phase_deg": None if phase is None else float(phase[i])} for i, q in enumerate(used)]
+    return {
+        "machine_id": machine, "point_id": point, "seq": seq, "kind": sweep.kind, "method": sp.method,
+        "started_at": to_datetime(sweep.started_at), "ended_at": to_datetime(sweep.ended_at),
+        "detected_at": to_datetime(detected_at), "natural_frequency_hz": p.frequency_hz,
+        "critical_speed_hz": p.critical_speed_hz, "amplification_factor": p.amplification_factor,
+        "damping_ratio": p.damping_ratio, "peak_amplitude": p.peak_amplitude,
+        "unit": bode.unit if bode is not None else "", "phase_at_peak_deg": _num(p.phase_at_peak_deg),
+        "phase_change_deg": _num(p.phase_change_deg), "mode": None if shift is None else shift.mode,
+        "shift_pct": None if shift is None else _num(shift.shift_pct), "points": points,
+        "candidate": "open" if shift is None else None,
+        "decided_by": None, "decided_at": None, "accepted_mode": None,
+    }
 
 
 def add_dead_letter(

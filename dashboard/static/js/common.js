@@ -46,10 +46,47 @@ const WW = (function () {
     return Number(v).toFixed(digits === undefined ? 1 : digits);
   }
 
-  function when(iso) {
-    if (!iso) return "–";
-    const d = new Date(iso);
-    return d.toISOString().replace("T", " ").slice(0, 16) + " UTC";
+  // The plant's IANA time zone (dashboard.time_zone), from the page.
+  const timeZone = document.querySelector('meta[name="time-zone"]').content || "UTC";
+  const timeParts = new Intl.DateTimeFormat("en-GB", {
+    timeZone: timeZone, year: "numeric", month: "2-digit", day: "2-digit",
+    hour: "2-digit", minute: "2-digit", hourCycle: "h23", timeZoneName: "longOffset" });
+
+  // A time as people read it, the one form of the whole dashboard (the server writes the
+  // same with monitor.model.timefmt.plant_time): "YYYY-MM-DD HH:MM +HH:MM", 24-hour, in
+  // the plant's time zone with the offset of that instant. Takes ISO text, epoch seconds
+  // or a Date.
+  function when(t) {
+    if (t === null || t === undefined || t === "") return "–";
+    const d = t instanceof Date ? t : new Date(typeof t === "number" ? t * 1000 : t);
+    if (Number.isNaN(d.getTime())) return "–";
+    const p = {};
+    for (const x of timeParts.formatToParts(d)) p[x.type] = x.value;
+    const offset = p.timeZoneName === "GMT" ? "+00:00" : p.timeZoneName.replace("GMT", "");
+    return p.year + "-" + p.month + "-" + p.day + " " + p.hour + ":" + p.minute + " " + offset;
+  }
+
+  // Time-axis tick labels cut from when(): the clock time, with the date under the first
+  // tick of each day; only dates when every tick falls on midnight.
+  function timeTicks(u, splits) {
+    const parts = splits.map(s => when(s).split(" "));
+    if (parts.every(p => p[1] === "00:00")) return parts.map(p => p[0]);
+    let day = null;
+    return parts.map(p => {
+      const label = p[0] === day ? p[1] : p[1] + "\n" + p[0];
+      day = p[0];
+      return label;
+    });
+  }
+
+  // uPlot options of a chart against time: ticks on the plant's clock, labelled as above,
+  // and the legend's time written by when().
+  function timeChart(opts) {
+    opts.tzDate = ts => uPlot.tzDate(new Date(ts * 1e3), timeZone);
+    opts.series[0] = Object.assign({ label: "time", value: (u, v) => when(v) }, opts.series[0]);
+    opts.axes = opts.axes || [{}];
+    opts.axes[0] = Object.assign({ values: timeTicks, space: 80, size: 56 }, opts.axes[0]);
+    return opts;
   }
 
   function zoneTag(zone) {
@@ -69,5 +106,30 @@ const WW = (function () {
   // Colours for chart series, chosen to stay apart for colour-blind readers.
   const palette = ["#1b6ca8", "#d1495b", "#2a9d8f", "#8d5a97", "#e09f3e", "#5c6b73", "#3d405b", "#81b29a"];
 
-  return { api, el, num, when, zoneTag, stateTag, severityTag, palette, csrf };
+  // Phones show each table row as a card whose cells carry their column's name (CSS
+  // content: attr(data-label), site.css); label the cells of every table, and again
+  // whenever a script fills one.
+  function labelCells() {
+    for (const table of document.querySelectorAll("main table.grid")) {
+      const names = [...table.querySelectorAll("thead th")].map(th => th.textContent.trim());
+      for (const body of table.tBodies) {
+        for (const row of body.rows) {
+          let col = 0;
+          for (const cell of row.cells) {
+            if (cell.colSpan === 1 && names[col] && cell.dataset.label !== names[col]) cell.dataset.label = names[col];
+            col += cell.colSpan;
+          }
+        }
+      }
+    }
+  }
+  let labelPending = false;
+  new MutationObserver(() => {
+    if (labelPending) return;
+    labelPending = true;
+    requestAnimationFrame(() => { labelPending = false; labelCells(); });
+  }).observe(document.querySelector("main"), { childList: true, subtree: true });
+  labelCells();
+
+  return { api, el, num, when, timeZone, timeTicks, timeChart, zoneTag, stateTag, severityTag, palette, csrf };
 })();

@@ -15,8 +15,10 @@
     if (charts[id]) charts[id].destroy();
     target.replaceChildren();
     opts.width = width(target);
+    if (opts.scales && opts.scales.x && opts.scales.x.time) WW.timeChart(opts);
     charts[id] = new uPlot(opts, data, target);
     target.dataset.series = opts.series.slice(1).map(s => s.label).join("|");
+    target.dataset.xLast = data[0].length ? data[0][data[0].length - 1] : "";
     target.dataset.drawn = "1";
     return charts[id];
   }
@@ -60,12 +62,11 @@
   }
 
   function drawResonance() {
-    const pts = trendData.points.filter(p => p.ts.length);
-    if (!pts.length) { noData("chart-resonance"); return; }
-    // Speed from the point with most readings (all points share the machine's speed).
-    const p = pts.reduce((a, b) => (b.ts.length > a.ts.length ? b : a));
+    // The machine's running speed: its speed readings and its readings sensor health accepted.
+    const sp = trendData.speed;
+    if (!sp || !sp.ts.length) { noData("chart-resonance"); return; }
     const orders = orderList();
-    const data = [p.ts].concat(orders.map(o => p.speed_hz.map(s => (s === null ? null : s * o))));
+    const data = [sp.ts].concat(orders.map(o => sp.speed_hz.map(s => (s === null ? null : s * o))));
     const maxMode = Math.max(0, ...machine.modes.map(m => m.frequency_hz * 1.3));
     const maxExc = Math.max(0, ...data.slice(1).flat().filter(v => v !== null));
     put("chart-resonance", {
@@ -121,8 +122,23 @@
     const lim = p.zone_limits_mm_s || [];
     const base = p.baseline || {};
     const flat = v => p.ts.map(() => v);
+    // Readings sensor health flagged are no machine levels: left out of the lines, the
+    // overall level drawn apart as hollow markers.
+    const flagged = (p.flags || []).map(f => f.length > 0);
+    const accepted = vals => vals.map((v, i) => (flagged[i] ? null : v));
+    const overall = accepted(p.overall_mm_s_rms);
+    const top = Math.max(lim[2] ? lim[2] * 1.15 : 0, ...overall.filter(v => v !== null).map(v => v * 1.1)) || 1;
     const series = [{}, { label: "overall", stroke: "#1d2433", width: 2, value: (u, v) => WW.num(v, 2) + " mm/s RMS" }];
-    const data = [p.ts, p.overall_mm_s_rms];
+    const data = [p.ts, overall];
+    if (flagged.some(Boolean)) {
+      // The scale follows accepted readings; a flagged level above it sits on the top edge,
+      // its own value in the legend.
+      const raw = p.overall_mm_s_rms.map((v, i) => (flagged[i] ? v : null));
+      series.push({ label: "flagged by sensor health", stroke: "#8a8f98", width: 0, paths: () => null,
+        points: { show: true, size: 8, width: 1.5, fill: "#ffffff" },
+        value: (u, v, si, i) => (i === null || raw[i] === null ? "–" : WW.num(raw[i], 2) + " mm/s RMS (" + p.flags[i].join(", ") + ")") });
+      data.push(raw.map(v => (v === null ? null : Math.min(v, top * 0.98))));
+    }
     const zoneColours = ["#7ea33a", "#d19a00", "#b3261e"];
     ["A/B", "B/C", "C/D"].forEach((name, i) => {
       if (lim[i] === undefined) return;
@@ -134,8 +150,7 @@
       series.push({ label: "baseline", stroke: "#8d5a97", dash: [2, 3], width: 2, points: { show: false }, value: (u, v) => WW.num(v, 2) + " mm/s RMS" });
       data.push(base.overall);
     }
-    const top = Math.max(lim[2] ? lim[2] * 1.15 : 0, ...p.overall_mm_s_rms.filter(v => v !== null).map(v => v * 1.1));
-    put("chart-overall", { height: 260, scales: { x: { time: true }, y: { range: [0, top || 1] } },
+    put("chart-overall", { height: 260, scales: { x: { time: true }, y: { range: [0, top] } },
       series: series, axes: [{}, { label: "overall velocity, mm/s RMS", size: 60 }] }, data);
     const labels = Object.keys(p.orders);
     if (!labels.length) { noData("chart-orders", "No order amplitudes stored."); return; }
@@ -143,7 +158,7 @@
     labels.forEach((l, i) => {
       const colour = WW.palette[i % WW.palette.length];
       oSeries.push({ label: l, stroke: colour, width: 1.8, value: (u, v) => WW.num(v, 3) + " mm/s peak" });
-      oData.push(p.orders[l]);
+      oData.push(accepted(p.orders[l]));
       if (base[l]) {
         oSeries.push({ label: l + " baseline", stroke: colour, dash: [2, 3], width: 1.5, points: { show: false }, value: (u, v) => WW.num(v, 3) + " mm/s peak" });
         oData.push(base[l]);
@@ -155,7 +170,10 @@
 
   function renderFacts() {
     document.getElementById("fact-state").replaceChildren(WW.stateTag(machine.state));
-    document.getElementById("fact-speed").textContent = machine.speed_hz === null ? "–" : WW.num(machine.speed_rpm, 0) + " r/min (" + WW.num(machine.speed_hz, 2) + " Hz)";
+    const speed = document.getElementById("fact-speed");
+    speed.textContent = machine.speed_hz === null ? "–" : WW.num(machine.speed_rpm, 0) + " r/min (" + WW.num(machine.speed_hz, 2) + " Hz)";
+    speed.title = machine.speed_at ? (machine.speed_source === "speed_topic" ? "speed topic, " : "reading, ") + WW.when(machine.speed_at) : "";
+    speed.dataset.source = machine.speed_source || "";
     document.getElementById("fact-last").textContent = WW.when(machine.last_reading_at);
     document.getElementById("fact-orders").textContent = orderList().map(o => o + "x").join(", ") || "–";
   }
@@ -294,7 +312,9 @@
 
   async function loadTrends() {
     const span = Number(document.getElementById("range").value);
-    const to = machine.last_reading_at ? new Date(machine.last_reading_at).getTime() / 1000 : Date.now() / 1000;
+    // The newer of the last reading and the last speed (a speed stream outlives a dead sensor).
+    const times = [machine.last_reading_at, machine.speed_at].filter(Boolean).map(t => new Date(t).getTime() / 1000);
+    const to = times.length ? Math.max(...times) : Date.now() / 1000;
     trendData = await WW.api(root.dataset.trends + "?from=" + (to - span) + "&to=" + (to + 1) + "&max_points=" + Math.min(2000, width(document.getElementById("chart-overall"))));
     drawResonance();
     drawTrends();

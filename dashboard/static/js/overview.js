@@ -73,7 +73,7 @@
       const data = await WW.api(table.dataset.api);
       rows = data.items;
       render();
-      refreshed.textContent = "updated " + new Date().toLocaleTimeString();
+      refreshed.textContent = "updated " + WW.when(new Date());
       refreshed.classList.remove("error");
       document.body.dataset.loaded = "1";
     } catch (e) {

@@ -9,10 +9,15 @@ By idea:
   their history and the baseline restarts asked for;
 - :mod:`~monitor.store.reads.evaluations`: what the dashboard shows of the detector's
   stored evaluations, the margin table at a machine's speed, the zone limits of a point;
-- :mod:`~monitor.store.reads.trends`: decimated trends of a machine's points;
+- :mod:`~monitor.store.reads.trends`: decimated trends of a machine's points and of its
+  running speed;
+- :mod:`~monitor.store.reads.speeds`: the running speed people see (speed readings and
+  accepted readings);
 - :mod:`~monitor.store.reads.spectra`: stored spectra;
 - :mod:`~monitor.store.reads.alarms`: the alarm history, in the one JSON shape of an alarm
   (REST API and MQTT alarm events);
+- :mod:`~monitor.store.reads.passages`: the passages of run-ups and coast-downs, and the
+  candidate modes among them;
 - :mod:`~monitor.store.reads.people`: users, API tokens and the audit trail;
 - :mod:`~monitor.store.reads.service`: what a starting service reads.
 
@@ -50,6 +55,7 @@ from monitor.store.reads.machines import (
     mode_named,
     recent_baseline_restarts,
 )
+from monitor.store.reads.passages import find_passages, get_passage, passage_json
 from monitor.store.reads.people import (
     MAX_AUDIT_PAGE,
     active_user,
@@ -58,20 +64,32 @@ from monitor.store.reads.people import (
     get_user,
     list_api_tokens,
 )
-from monitor.store.reads.service import StartState, start_state
+from monitor.store.reads.service import StartState, passage_tracker_state, start_state
 from monitor.store.reads.spectra import (
     MAX_SPECTRUM_BINS,
     get_spectrum,
     latest_spectra,
+    newest_velocity_spectra,
     spectrum_json,
 )
-from monitor.store.reads.trends import decimate_indices, trends
+from monitor.store.reads.speeds import (
+    SPEED_TOPIC,
+    RunningSpeed,
+    SpeedCandidate,
+    health_flags,
+    latest_speed_readings,
+    running_speed,
+)
+from monitor.store.reads.trends import decimate_indices, speed_trend, trends
 
 __all__ = [
     "MAX_AUDIT_PAGE",
     "active_user",
     "audit_event_json",
     "find_audit_events",
+    "find_passages",
+    "get_passage",
+    "passage_json",
     "get_user",
     "list_api_tokens",
     "MAX_SPECTRUM_BINS",
@@ -100,11 +118,20 @@ __all__ = [
     "mode_json",
     "mode_named",
     "nearest_margin",
+    "newest_velocity_spectra",
     "newest_alarm_with_ref",
     "open_alarm_counts",
+    "passage_tracker_state",
     "point_zone_limits",
     "recent_baseline_restarts",
     "spectrum_json",
     "start_state",
     "trends",
+    "SPEED_TOPIC",
+    "RunningSpeed",
+    "SpeedCandidate",
+    "health_flags",
+    "latest_speed_readings",
+    "running_speed",
+    "speed_trend",
 ]

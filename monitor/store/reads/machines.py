@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import datetime as dt
 from collections import defaultdict
+from collections.abc import Sequence
 from typing import Any
 
 from sqlalchemy import select
@@ -34,6 +35,14 @@ from monitor.store.reads.evaluations import (
     point_zone_limits,
 )
 from monitor.store.reads.spectra import latest_spectra, spectrum_json
+from monitor.store.reads.speeds import (
+    FIRST_FLAG,
+    RunningSpeed,
+    SpeedCandidate,
+    health_flags,
+    latest_speed_readings,
+    running_speed,
+)
 from monitor.store.registry_sync import mode_problem
 
 ZONE_ORDER = {"A": 1, "B": 2, "C": 3, "D": 4}
@@ -74,11 +83,12 @@ def _latest_per_point(s: Session, machine_id: str) -> list[Measurement]:
 
 
 def _latest_per_point_rows(s: Session) -> list[Any]:
-    """The cheap columns of the newest measurement of every active point, one statement."""
+    """The cheap columns of the newest measurement of every active point (and the first
+    check sensor health failed on it, or None), one statement."""
     return list(s.execute(
         select(Measurement.id, Measurement.machine_id, Measurement.point_id, Measurement.ts,
-               Measurement.speed_hz, Measurement.zone, Measurement.overall_velocity_mm_s_rms,
-               Measurement.stored_at)
+               Measurement.speed_hz, Measurement.speed_source, Measurement.zone,
+               Measurement.overall_velocity_mm_s_rms, Measurement.stored_at, FIRST_FLAG.label("first_flag"))
         .join(MeasurementPoint, Measurement.id == _newest_id())
         .where(MeasurementPoint.active.is_(True))
     ))
@@ -90,12 +100,23 @@ def _machine_state(n_open: int, latest: dt.datetime | None) -> str:
     return "no_data" if latest is None else "normal"
 
 
-def machine_summaries(s: Session) -> list[dict[str, Any]]:
-    """Every active machine with its current state, for the plant overview (6 statements).
+def _current_margins(m: Any, modes: Sequence[Any], speed: RunningSpeed, evaluation: Any) -> list[dict[str, Any]]:
+    """The margin table at the running speed: the one stored with the reading the speed
+    came from when it still fits (:func:`current_margins`), else computed at the speed (a
+    speed reading's, or when the reading's stored table is not at hand)."""
+    me = speed.reading
+    return current_margins(m, modes, speed.speed_hz, evaluation if me is not None else None,
+                           me.stored_at if me is not None else None)
 
-    Plain column rows, not ORM objects (the page reads a few columns of thousands of rows);
-    the nearest margin comes from the margin rows the service stored with each machine's
-    newest reading (:func:`current_margins`), and only that part of its evaluation is read."""
+
+def machine_summaries(s: Session) -> list[dict[str, Any]]:
+    """Every active machine with its current state, for the plant overview (7 statements).
+
+    Plain column rows, not ORM objects (the page reads a few columns of thousands of rows).
+    The running speed is the newest of the speed readings and the accepted readings
+    (monitor/store/reads/speeds.py); the nearest margin comes from the margin rows the
+    service stored with the reading that speed came from (:func:`current_margins`; only
+    that part of its evaluation is read), or is computed at a speed reading's speed."""
     machines = s.execute(select(
         Machine.id, Machine.name, Machine.location, Machine.machine_class, Machine.speed_min_rpm,
         Machine.speed_max_rpm, Machine.excitation_orders, Machine.line_frequency_hz, Machine.limits_mm_s,
@@ -111,18 +132,22 @@ def machine_summaries(s: Session) -> list[dict[str, Any]]:
     for me in _latest_per_point_rows(s):
         latest_by[me.machine_id].append(me)
     newest_by = {mid: max(rows, key=lambda r: r.ts) for mid, rows in latest_by.items()}
+    tach = latest_speed_readings(s)
+    speeds = {mid: running_speed((SpeedCandidate(r.ts, r.speed_hz, r.speed_source, r.first_flag is None, r)
+                                  for r in latest_by.get(mid, ())), tach.get(mid))
+              for mid in {*latest_by, *tach}}
+    with_speed = [sp.reading.id for sp in speeds.values() if sp.reading is not None]
     stored: dict[int, Any] = {i: margins for i, margins in s.execute(
         select(Measurement.id, Measurement.evaluation["margins"])
-        .where(Measurement.id.in_([r.id for r in newest_by.values()])))} if newest_by else {}
+        .where(Measurement.id.in_(with_speed)))} if with_speed else {}
     open_by = open_alarm_counts(s)
     out = []
     for m in machines:
         rows = latest_by.get(m.id, [])
         newest = newest_by.get(m.id)
-        speed = newest.speed_hz if newest else None
-        margins = current_margins(m, modes_by.get(m.id, []), speed,
-                                  {"margins": stored.get(newest.id)} if newest else None,
-                                  newest.stored_at if newest else None)
+        speed = speeds.get(m.id, RunningSpeed())
+        margins = _current_margins(m, modes_by.get(m.id, []), speed,
+                                   {"margins": stored.get(speed.reading.id)} if speed.reading is not None else None)
         zoned = [r for r in rows if r.zone in ZONE_ORDER]
         worst = max(zoned, key=lambda r: (ZONE_ORDER[r.zone], r.overall_velocity_mm_s_rms or 0)) if zoned else None
         by_severity = open_by.get(m.id, {})
@@ -130,8 +155,8 @@ def machine_summaries(s: Session) -> list[dict[str, Any]]:
         out.append({
             "id": m.id, "name": m.name or m.id, "location": m.location,
             "class": m.machine_class,
-            "state": _machine_state(n_open, newest.ts if newest else None),
-            "speed_hz": speed, "speed_rpm": None if speed is None else speed * 60.0,
+            "state": _machine_state(n_open, newest.ts if newest else speed.at),
+            **speed.to_json(),
             "last_reading_at": iso_utc(newest.ts) if newest else None,
             "nearest_margin": nearest_margin(margins),
             "worst_zone": None if worst is None else {
@@ -191,7 +216,8 @@ def machine_detail(s: Session, m: Machine) -> dict[str, Any]:
     modes = machine_modes(s, m.id)
     latest = {r.point_id: r for r in _latest_per_point(s, m.id)}
     newest = max(latest.values(), key=lambda r: r.ts) if latest else None
-    speed = newest.speed_hz if newest else None
+    speed = running_speed((SpeedCandidate(r.ts, r.speed_hz, r.speed_source, not health_flags(r.health), r)
+                           for r in latest.values()), latest_speed_readings(s, m.id).get(m.id))
     n_open = sum(open_alarm_counts(s, m.id).get(m.id, {}).values())
     pts = []
     for p in points:
@@ -216,14 +242,13 @@ def machine_detail(s: Session, m: Machine) -> dict[str, Any]:
         "id": m.id, "name": m.name or m.id, "location": m.location, "class": m.machine_class,
         "speed_range_rpm": [m.speed_min_rpm, m.speed_max_rpm],
         "excitation_orders": m.excitation_orders, "line_frequency_hz": m.line_frequency_hz,
-        "state": _machine_state(n_open, newest.ts if newest else None),
+        "state": _machine_state(n_open, newest.ts if newest else speed.at),
         "active_alarms": n_open,
-        "speed_hz": speed, "speed_rpm": None if speed is None else speed * 60.0,
+        **speed.to_json(),
         "last_reading_at": iso_utc(newest.ts) if newest else None,
         "points": pts,
         "modes": [mode_json(x) for x in modes],
-        "margins": current_margins(m, modes, speed, newest.evaluation if newest else None,
-                                   newest.stored_at if newest else None),
+        "margins": _current_margins(m, modes, speed, speed.reading.evaluation if speed.reading is not None else None),
         "latest_spectra": [spectrum_json(sn) for sn in latest_spectra(s, m.id)],
         "baseline_restarts": [baseline_restart_json(r) for r in recent_baseline_restarts(s, m.id)],
     }

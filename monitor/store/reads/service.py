@@ -2,12 +2,12 @@
 
 from __future__ import annotations
 
-from typing import NamedTuple
+from typing import Any, NamedTuple
 
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
-from monitor.store.models import DetectorState, Machine, Measurement
+from monitor.store.models import DetectorState, Machine, Measurement, PassageTrackerState
 from monitor.store.reads.alarms import machines_with_open_alarms
 
 
@@ -39,3 +39,11 @@ def start_state(s: Session) -> StartState:
         with_open_alarms=machines_with_open_alarms(s),
         unretired=[m for m, done in retired if not done],
     )
+
+
+def passage_tracker_state(s: Session, machine: str) -> Any:
+    """The stored state of ``machine``'s passage trackers (monitor/service/passages.py),
+    or None."""
+    return s.execute(
+        select(PassageTrackerState.state).where(PassageTrackerState.machine_id == machine)
+    ).scalar_one_or_none()

@@ -1,7 +1,9 @@
-"""Reads of stored spectra: one by id, each point's newest, in the API's JSON shape."""
+"""Reads of stored spectra: one by id, each point's newest (or newest velocity spectrum up
+to an instant, for alarm evidence), in the API's JSON shape."""
 
 from __future__ import annotations
 
+import datetime as dt
 import math
 from typing import Any
 
@@ -38,6 +40,28 @@ def latest_spectra(s: Session, machine_id: str) -> list[SpectrumSnapshot]:
         .join(MeasurementPoint, SpectrumSnapshot.id == newest_id)
         .where(MeasurementPoint.machine_id == machine_id, MeasurementPoint.active.is_(True))
     ))
+
+
+def newest_velocity_spectra(s: Session, machine_id: str, until: dt.datetime) -> dict[str, tuple[int, dt.datetime]]:
+    """The newest stored velocity spectrum of each active point of a machine at or before
+    ``until``: point -> (spectrum id, its time), in one statement (points with none left
+    out). The evidence a speed message's alarm transition refers to."""
+    inner = aliased(SpectrumSnapshot)
+    newest_id = (
+        select(inner.id)
+        .where(inner.machine_id == MeasurementPoint.machine_id, inner.point_id == MeasurementPoint.id,
+               inner.kind == "velocity", inner.ts <= until)
+        .order_by(inner.ts.desc())
+        .limit(1)
+        .correlate(MeasurementPoint)
+        .scalar_subquery()
+    )
+    rows = s.execute(
+        select(SpectrumSnapshot.point_id, SpectrumSnapshot.id, SpectrumSnapshot.ts)
+        .join(MeasurementPoint, SpectrumSnapshot.id == newest_id)
+        .where(MeasurementPoint.machine_id == machine_id, MeasurementPoint.active.is_(True))
+    ).all()
+    return {p: (int(i), ts) for p, i, ts in rows}
 
 
 def spectrum_json(sn: SpectrumSnapshot, max_bins: int = MAX_SPECTRUM_BINS) -> dict[str, Any]:
