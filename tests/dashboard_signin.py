@@ -39,9 +39,10 @@ def seeded_copy(template: Path, directory: Path) -> str:
 
 def seed_template(directory: Path) -> Path:
     """Seed a small plant with the three users of tests/dashboard_seed.py into a file (its
-    readings raise alarms through the service, the first with id 1)."""
+    readings raise alarms through the service, the first with id 1: a resonance alarm
+    needs the dwell, then three readings, so four readings 10 minutes apart)."""
     path = directory / "template.sqlite"
-    seed(f"sqlite:///{path}", machines=1, readings_per_point=3, detected=1)
+    seed(f"sqlite:///{path}", machines=1, readings_per_point=4, detected=1)
     return path
 
 

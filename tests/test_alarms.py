@@ -174,3 +174,53 @@ def test_update_by_rank_matches_update_by_name():
             by_name.acknowledge(aid, "r.osei", "seen", float(i))
             by_rank.acknowledge(aid, "r.osei", "seen", float(i))
     assert by_name.snapshot() == by_rank.snapshot()
+
+
+def test_alternating_lower_levels_bring_the_alarm_down_to_the_worst_of_them():
+    # Rule (docs/alarms.md, "Going down: the worst level of the last N readings"): an alert
+    # whose readings alternate between nothing and advisory goes down to advisory after N
+    # readings, and clears only after N readings that hold nothing. An alarm that outlives
+    # its condition is a stale alarm (ANSI/ISA-18.2, alarm states; from memory).
+    e = AlarmEngine(persistence=3)
+    _feed(e, [("alert", "alert")] * 3)
+    tr = _feed(e, [(None, None), ("advisory", "advisory"), (None, None)], t0=10)
+    assert [(t.name, t.previous_severity, t.severity, t.ts) for t in tr] == [
+        ("de-escalated", "alert", "advisory", 12)]
+    # Still alternating: advisory is what the readings support, so it stays.
+    assert _feed(e, [(None, None), ("advisory", "advisory")] * 5, t0=20) == []
+    tr = _feed(e, [(None, None)] * 3, t0=40)
+    assert [(t.name, t.ts) for t in tr] == [("cleared", 42)]
+
+
+@pytest.mark.parametrize("persistence", [1, 2, 3, 5])
+def test_an_alarm_never_outlasts_every_level_of_its_last_n_readings(persistence):
+    # Property of the rule in docs/alarms.md: after any reading, a live alarm's severity is
+    # held by at least one of the last N readings, unless fewer than N readings have come
+    # since its last transition.
+    rng = np.random.default_rng(persistence)
+    names = [None, "advisory", "alert", "severe"]
+    e = AlarmEngine(persistence)
+    holds: list[int] = []
+    since = 0
+    for i in range(3000):
+        r = int(rng.integers(0, 4))
+        h = max(r, int(rng.integers(0, 4)))
+        trans = e.update(KEY, float(i), names[r], names[h])
+        holds.append(h)
+        since = 0 if trans else since + 1
+        a = e.alarm(KEY)
+        if a is not None and a.state != "cleared" and since >= persistence:
+            assert max(holds[-persistence:]) >= names.index(a.severity), (i, holds[-persistence:], a.severity)
+
+
+def test_restore_reads_the_older_clear_counter():
+    # A snapshot written before going down was judged by the worst level kept readings
+    # holding nothing in 'clear_count': two of three such readings, then one more clears.
+    e = AlarmEngine(persistence=3)
+    _feed(e, [("alert", "alert")] * 3)
+    _feed(e, [(None, None)] * 2, t0=10)
+    snap = e.snapshot()
+    stream = snap["streams"][0]
+    stream.update(clear_count=stream.pop("down_count"), down_count=0, down_level=0)
+    tr = _feed(AlarmEngine.restore(snap), [(None, None)], t0=20)
+    assert [t.name for t in tr] == ["cleared"]

@@ -88,11 +88,15 @@ class TestResonance:
         trans = []
         # 1x at 11 Hz: 45 % from the mode, clear of the approach band (1.5 x 25 % = 37.5 %,
         # held to 41.25 % by 10 % hysteresis); 16.5 Hz: 17.5 % < 25 % required (inside).
-        speeds = [11.0] * 3 + [16.5] * 5 + [11.0] * 8
+        speeds = [11.0] * 3 + [16.5] * 10 + [11.0] * 8
         for i, sp in enumerate(speeds):
             trans += ev.evaluate(_analysis(i * 10, sp), _waveform(i * 10)).transitions
         res = [t for t in trans if t.kind == "resonance_proximity"]
         assert [(t.name, t.severity) for t in res] == [("raised", "alert"), ("cleared", "alert")]
+        # Rule (docs/alarms.md, "Dwell"): in the band from 30 s, dwelt 60 s at 90 s, and
+        # the persistence of 3 readings 10 s apart: raised at 110 s.
+        assert res[0].ts == 110.0 and res[0].evidence["dwell_s"] == 80.0
+        assert res[0].evidence["required_dwell_s"] == 60.0
         assert res[0].alarm["point"] is None and res[0].alarm["subject"] == "pedestal@1x"
         ev0 = res[0].evidence
         # API 684 rule: AF 10 (1 / (2 x 0.05)), mode above the excitation ->
@@ -104,9 +108,9 @@ class TestResonance:
     def test_half_power_band_is_severe(self):
         ev = MachineEvaluator(_machine())
         trans = []
-        for i in range(4):
-            trans += ev.evaluate(_analysis(i, 20.4), _waveform(i)).transitions
-        assert [(t.name, t.severity) for t in trans] == [("raised", "severe")]
+        for i in range(5):  # 30 s apart: dwelt 60 s at the third, raised at the fifth
+            trans += ev.evaluate(_analysis(30 * i, 20.4), _waveform(30 * i)).transitions
+        assert [(t.name, t.severity, t.ts) for t in trans] == [("raised", "severe", 120.0)]
         # Textbook SDOF: H(1.02) for zeta 0.05.
         assert trans[0].evidence["amplification"] == pytest.approx(
             1 / math.sqrt((1 - 1.02**2) ** 2 + (0.1 * 1.02) ** 2))
@@ -201,17 +205,27 @@ class TestGrowth:
         assert e.feature("1x").ratio is None and "not comparable" in e.feature("1x").baseline_status
         assert e.feature("1x_norm").ratio == pytest.approx(1.0)
 
-    def test_readings_in_resonance_band_are_ignored_and_said_so(self):
+    def test_readings_of_a_sweep_through_a_band_leave_growth_but_keep_their_zone(self):
+        # Rules (docs/alarms.md, "amplitude_growth"): the zone is judged on every reading;
+        # a reading taken within resonance_dwell_s (60 s) of the speed entering a required
+        # band is left out of the baseline and the trend, and said so.
         ev = MachineEvaluator(_machine())
         for i in range(3):
-            e = ev.evaluate(_analysis(i, 17.0, overall=6.0))
-            assert e.growth_ignored == "resonance band: pedestal@1x"
-            assert not any(t.kind == "amplitude_growth" for t in e.transitions)
+            assert ev.evaluate(_analysis(i, 12.0, overall=1.0)).growth_ignored is None
         trans = []
-        for i in range(3, 6):
-            trans += ev.evaluate(_analysis(i, 12.0, overall=6.0)).transitions
+        for i in range(3, 6):  # 1x at 17 Hz: inside the required band (15 to 23 Hz)
+            e = ev.evaluate(_analysis(i, 17.0, overall=6.0))
+            assert e.growth_ignored == "sweep through band: pedestal@1x"
+            assert e.feature("1x").ratio is None and e.feature("1x").trend_per_day is None
+            assert e.feature("overall").baseline_status == "not comparable: sweep through band pedestal@1x"
+            trans += e.transitions
+        # 6.0 mm/s is zone D for group 2 rigid (C/D 4.5 mm/s, ISO 10816-3 Table A.2, from memory).
         g = [t for t in trans if t.kind == "amplitude_growth" and t.alarm["subject"] == "overall"]
-        assert g[0].evidence["ignored_readings"] == {"resonance band": 3}
+        assert [(t.name, t.severity) for t in g] == [("raised", "severe")]
+        assert g[0].evidence["ignored_readings"] == {"sweep through band": 3}
+        # Dwelling in the band from 3 s: from 63 s on the readings are used again.
+        assert ev.evaluate(_analysis(62, 17.0, overall=6.0)).growth_ignored is not None
+        assert ev.evaluate(_analysis(63, 17.0, overall=6.0)).growth_ignored is None
 
     def test_trend_projects_time_to_limit(self):
         # Linear growth 0.1 mm/s RMS per day from 1.0: B/C (2.8) in 18 days from start.

@@ -264,9 +264,9 @@ def sample_readings(machine_id: str, start: int, stop: int) -> list:
 def test_format_1_state_is_converted_and_detection_goes_on_as_if_uninterrupted(
     backend: str, tmp_path: Path
 ) -> None:
-    # The file is what the previous code stored for the bearing pump after its first 40
-    # sample readings (NaN written as null, no format key): tied bearing windows hold
-    # null interval ends.
+    # The file is the bearing pump's state after its first 40 sample readings as format 1
+    # stored it (NaN written as null, no format key): tied bearing windows hold null
+    # interval ends.
     old = json.loads(FORMAT_1.read_text())
     assert "format" not in old["evaluator"] and old["version"] == 40
     assert any(w["fit"] and None in w["fit"] for _, _, w in old["evaluator"]["trends"])

@@ -10,13 +10,16 @@ Lifecycle (every arrow is a :class:`Transition` carrying time, severity and evid
 
     (none) --raise_level for N readings--> active --ack(user, comment)--> acknowledged
     active/acknowledged --raise_level above severity for N readings--> escalated (needs a new ack)
-    active/acknowledged --hold_level below severity for N readings--> de-escalated
-    active/acknowledged --hold_level None for N readings--> cleared
+    active/acknowledged --hold_level below severity for N readings--> de-escalated to the
+                         worst hold_level of those N readings, or cleared when that is None
     cleared --raise_level for N readings--> raised again (a new alarm id)
 
 N is the persistence count. Raise and clear use different levels (hysteresis), so a value
-hovering on a limit with noise raises once and does not chatter. Acknowledging never
-clears. The engine is deterministic: no clock, ids from a counter; ``snapshot()`` gives a
+hovering on a limit with noise raises once and does not chatter. Going down is judged by
+the worst level of the last N readings, whatever their order: readings that alternate
+between two lower levels (none and advisory, say) bring an alert down to the worse of the
+two, so an alarm never stays above every level its last N readings support. Acknowledging
+never clears. The engine is deterministic: no clock, ids from a counter; ``snapshot()`` gives a
 JSON-able dict (exact: non-finite floats as tagged strings, :mod:`monitor.detection.state_json`) and
 ``AlarmEngine.restore`` rebuilds the same state after a restart.
 """
@@ -191,7 +194,10 @@ class Transition:
 
 @dataclass(slots=True)
 class _Stream:
-    """Per-key counters: consecutive readings for raise/escalate/de-escalate/clear."""
+    """Per-key counters: consecutive readings for a raise (``raise_count``) or an
+    escalation (``up_count``); readings in a row whose hold level lies below the live
+    alarm's severity (``down_count``) and the worst hold rank among them (``down_level``,
+    0 when none of them held any level), which decide a de-escalation or a clear."""
 
     seq: int = 0
     alarm: Alarm | None = None
@@ -199,7 +205,6 @@ class _Stream:
     up_count: int = 0
     down_count: int = 0
     down_level: int = 0
-    clear_count: int = 0
     last_ts: float | None = None
 
 
@@ -209,8 +214,9 @@ class AlarmEngine:
     Parameters
     ----------
     persistence : int
-        Consecutive readings a condition must hold before a raise, escalation,
-        de-escalation or clear (N >= 1).
+        Readings a condition must hold before a raise, escalation, de-escalation or
+        clear (N >= 1): N in a row for a raise or an escalation; N in a row below the
+        alarm's severity for going down, to the worst level among them (module docstring).
     """
 
     def __init__(self, persistence: int = 3) -> None:
@@ -295,7 +301,7 @@ class AlarmEngine:
                 # A live alarm whose own level still holds (or a higher level's relaxed
                 # condition) and nothing worse is raised: every counter restarts and no
                 # transition can follow (the steady case).
-                s.up_count = s.clear_count = s.down_count = 0
+                s.up_count = s.down_count = s.down_level = 0
                 s.last_ts = ts
                 return []
         else:
@@ -321,14 +327,13 @@ class AlarmEngine:
         cur = severity_rank(a.severity)
         # Escalation: the strict condition of a higher level holds for N readings.
         s.up_count = s.up_count + 1 if r > cur else 0
-        # Clear: not even the relaxed condition of the lowest level holds for N readings.
-        s.clear_count = s.clear_count + 1 if h == 0 else 0
-        # De-escalation: only a lower level's relaxed condition holds for N readings.
-        if 0 < h < cur:
+        # Going down: N readings in a row whose relaxed condition is below the alarm's
+        # level, to the worst level they held (none of them holding any: a clear).
+        if h < cur:
+            s.down_level = h if s.down_count == 0 else max(s.down_level, h)
             s.down_count += 1
-            s.down_level = h if s.down_count == 1 else max(s.down_level, h)
         else:
-            s.down_count = 0
+            s.down_count = s.down_level = 0
         if s.up_count >= n:
             prev = a.severity
             a.severity = SEVERITIES[r - 1]
@@ -339,7 +344,7 @@ class AlarmEngine:
                 a.acknowledged_by = a.acknowledged_at = a.ack_comment = None
             self._reset(s)
             out.append(self._transition(a, "escalated", ts, prev, a.evidence, reading_id))
-        elif s.clear_count >= n:
+        elif s.down_count >= n and s.down_level == 0:
             out.append(self._clear(s, a, ts, ev, reading_id))
         elif s.down_count >= n:
             prev = a.severity
@@ -399,7 +404,7 @@ class AlarmEngine:
 
     @staticmethod
     def _reset(s: _Stream) -> None:
-        s.up_count = s.down_count = s.down_level = s.clear_count = 0
+        s.up_count = s.down_count = s.down_level = 0
 
     @staticmethod
     def _transition(a: Alarm, name: TransitionName, ts: float, prev: Severity | None, ev: dict,
@@ -421,7 +426,7 @@ class AlarmEngine:
                     "alarm": s.alarm.snapshot() if s.alarm else None,
                     "raise_count": s.raise_count, "up_count": s.up_count,
                     "down_count": s.down_count, "down_level": s.down_level,
-                    "clear_count": s.clear_count, "last_ts": float_out(s.last_ts),
+                    "last_ts": float_out(s.last_ts),
                 }
                 for k, s in self._streams.items()
             ],
@@ -429,13 +434,19 @@ class AlarmEngine:
 
     @classmethod
     def restore(cls, data: dict) -> AlarmEngine:
+        """Rebuild from :meth:`snapshot`. A snapshot written before going down was judged
+        by the worst level (it counted readings holding nothing apart, in
+        ``clear_count``) is read as the same count of readings holding nothing."""
         e = cls(int(data["persistence"]))
         for d in data.get("streams", []):
             m, p, k, subj = d["key"]
+            down_count, down_level = d["down_count"], d["down_level"]
+            if d.get("clear_count"):  # the older counters: a run of readings holding nothing
+                down_count, down_level = d["clear_count"], 0
             e._streams[AlarmKey(m, p, k, subj)] = _Stream(
                 seq=d["seq"], alarm=Alarm.restore(d["alarm"]) if d.get("alarm") else None,
-                raise_count=d["raise_count"], up_count=d["up_count"], down_count=d["down_count"],
-                down_level=d["down_level"], clear_count=d["clear_count"], last_ts=float_in(d.get("last_ts")),
+                raise_count=d["raise_count"], up_count=d["up_count"], down_count=down_count,
+                down_level=down_level, last_ts=float_in(d.get("last_ts")),
             )
         return e
 

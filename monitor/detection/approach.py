@@ -25,7 +25,9 @@ class ApproachForecast:
     """Projected entry of an order excitation into a mode's required band.
 
     ``seconds`` until the excitation reaches the band edge ``edge_hz`` (Hz, excitation
-    frequency) at the current speed slope ``speed_slope_hz_per_s`` (Hz/s, Theil-Sen).
+    frequency) at the current speed slope ``speed_slope_hz_per_s`` (Hz/s, Theil-Sen);
+    ``crossing_s`` the seconds the ramp would take to cross the whole band at that slope
+    (shorter than the dwell a resonance alarm needs: a passage, not a dwell).
     """
 
     mode: str
@@ -34,6 +36,7 @@ class ApproachForecast:
     speed_at_entry_hz: float
     seconds: float
     speed_slope_hz_per_s: float
+    crossing_s: float
 
     @property
     def subject(self) -> str:
@@ -43,7 +46,7 @@ class ApproachForecast:
         return {
             "mode": self.mode, "excitation": self.excitation, "edge_hz": self.edge_hz,
             "speed_at_entry_hz": self.speed_at_entry_hz, "seconds": self.seconds,
-            "speed_slope_hz_per_s": self.speed_slope_hz_per_s,
+            "speed_slope_hz_per_s": self.speed_slope_hz_per_s, "crossing_s": self.crossing_s,
         }
 
 
@@ -110,5 +113,6 @@ def approach_forecasts(
             s_entry = edge / o
             secs = (s_entry - now) / slope
             if secs >= 0:
-                out.append(ApproachForecast(mode.name, order_label(o), edge, s_entry, secs, slope))
+                crossing = (hi_edge - lo_edge) / o / abs(slope)
+                out.append(ApproachForecast(mode.name, order_label(o), edge, s_entry, secs, slope, crossing))
     return tuple(out)

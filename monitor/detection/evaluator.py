@@ -1,9 +1,9 @@
 """State detection for one machine: readings in, alarm transitions and evaluations out.
 
 :class:`MachineEvaluator` ties together sensor health (``health``), resonance proximity
-(``resonance``: separation margins and ramp forecasts), severity zones (``zones``),
-baselines and trends (``growth``, judged by ``growth_rules``) and the alarm engine
-(``alarms``). It is deterministic and does no I/O: the caller passes each
+(``resonance``: separation margins, dwell and ramp forecasts), severity zones (``zones``),
+baselines and trends (``growth_watch``: ``growth`` judged by ``growth_rules``) and the
+alarm engine (``alarms``). It is deterministic and does no I/O: the caller passes each
 :class:`~monitor.analysis.waveform.ReadingAnalysis` with its
 :class:`~monitor.model.readings.Waveform`, speed readings, and the current time for
 stale-stream checks; it gets back :class:`~monitor.detection.alarms.Transition` objects to
@@ -17,14 +17,22 @@ Rules
 - A reading flagged by sensor health raises ``sensor_fault`` alarms only: it updates no
   machine alarm (resonance or growth), and its speed is not used.
 - Resonance alarms are per machine (``point`` None), subject ``'<mode>@<excitation>'``; they
-  advance on every new speed value (from a reading or a speed message; a value whose
-  time is not later than the last one is shown but not counted twice).
-- Growth ignores readings taken with an excitation inside a required band (not comparable
-  with the baseline); the next growth transition's evidence counts them.
+  advance on every new speed value (from a reading or a speed message, so a speed stream
+  keeps them going while the vibration sensor is faulted or absent; a value whose time is
+  not later than the last one is shown but not counted twice). A level is raised only
+  once the excitation has dwelt in its band for ``resonance_dwell_s``
+  (:mod:`monitor.detection.dwell`): a run-up or coast-down passing through is not alarmed.
+- The zone of every reading sensor health accepts is judged, whatever the resonance state.
+  Growth (baseline and trend) leaves out the readings taken while the speed sweeps an
+  excitation through a required band (a transient response, comparable with nothing); the
+  next growth transition's evidence counts them. Readings at a steady speed next to a mode
+  are used: the amplification there is constant, so growth there is still growth.
 - Baseline ratios of speed-dependent features (overall, 1x, 2x, orders) are compared only
   when the running speed is within ``baseline_speed_band_pct`` of the baseline's speed,
   and their trend window starts afresh when the speed leaves that band around the speed
-  the window started at; the speed-normalised 1x is always compared and trended.
+  the window started at; the speed-normalised 1x is compared and trended at any speed
+  but one that puts 1x inside a mode's required band (its normalisation assumes no
+  resonant amplification).
 
 Settings (keys of the machine's registry table, ``machine.settings``; docs/alarms.md):
 see :class:`~monitor.model.detection_settings.DetectionSettings`.
@@ -32,22 +40,23 @@ see :class:`~monitor.model.detection_settings.DetectionSettings`.
 
 from __future__ import annotations
 
-import functools
 import math
 from collections import deque
 from collections.abc import Mapping, Sequence
-from typing import TYPE_CHECKING, Any, Literal, NamedTuple
+from typing import TYPE_CHECKING, Any
 
 from monitor.analysis.waveform import ReadingAnalysis
 from monitor.detection.alarms import AlarmEngine, AlarmKey, AlarmKind, Severity, Transition
 from monitor.detection.approach import ApproachForecast
-from monitor.detection.features import Feature, growth_orders, reading_features
-from monitor.detection.growth import Baseline, TrendWindow, fit_due_windows
-from monitor.detection.growth_rules import FeatureVerdict, GrowthRules
+from monitor.detection.growth_watch import SENSOR_FAULT, SWEEP, GrowthWatch, Ignored
 from monitor.detection.health import HealthCheck, HealthReport, check_waveform, is_stale
 from monitor.detection.margins import MarginRow, MarginRows
 from monitor.detection.resonance import ResonanceWatch
-from monitor.detection.results import FeatureEvaluation, FeatureRows, ReadingEvaluation
+from monitor.detection.results import (
+    FeatureEvaluation,
+    ReadingEvaluation,
+    SpeedEvaluation,
+)
 from monitor.detection.state_json import (
     STATE_FORMAT,
     float_out,
@@ -56,7 +65,7 @@ from monitor.detection.state_json import (
     number_in,
     upgrade_snapshot,
 )
-from monitor.detection.zones import ZoneLimits, zone_limits, zone_of
+from monitor.detection.zones import zone_limits, zone_of
 from monitor.model.bounds import check_machine
 from monitor.model.detection_settings import DetectionSettings
 from monitor.model.readings import SpeedReading, Waveform
@@ -77,31 +86,6 @@ SENSOR_FAULT_SEVERITY: dict[HealthCheck, Severity] = {
     "flat_line": "alert", "clipping": "alert", "dropouts": "alert", "stale": "alert",
     "sample_rate": "alert", "unit": "alert", "spikes": "advisory",
 }
-
-#: Why growth leaves a reading out: the key its count goes under (``ignored_readings`` of
-#: a growth transition's evidence) and the start of ``growth_ignored``.
-IgnoreReason = Literal["sensor fault", "resonance band"]
-
-
-class Ignored(NamedTuple):
-    """Why growth leaves a reading out: the ``reason`` and what caused it (the failed
-    checks, or the subjects inside their required band)."""
-
-    reason: IgnoreReason
-    causes: tuple[str, ...]
-
-    def text(self) -> str:
-        """``growth_ignored`` of the evaluation: ``'<reason>: <cause>, <cause>'``."""
-        return f"{self.reason}: {', '.join(self.causes)}"
-
-
-class _Slot(NamedTuple):
-    """The state of one growth feature of one point."""
-
-    baseline: Baseline
-    window: TrendWindow
-    key: AlarmKey
-
 
 _NO_MARGINS = MarginRows()
 
@@ -131,19 +115,11 @@ class MachineEvaluator:
         self.settings = validate_machine(machine)
         s = self.settings
         self.engine = AlarmEngine(s.persistence)
-        self._rules = GrowthRules.from_settings(s)
         self._resonance = ResonanceWatch(machine, s)
-        self._baselines: dict[tuple[str, str], Baseline] = {}
-        self._trends: dict[tuple[str, str], TrendWindow] = {}
-        self._ignored: dict[str, dict[str, int]] = {}
+        self._growth = GrowthWatch(machine, s)
         self._last_ts: dict[str, float] = {}
         self._intervals: dict[str, deque[float]] = {}
         self._keys: dict[tuple[str | None, str, str], AlarmKey] = {}
-        self._orders = growth_orders(machine)
-        # Per point: feature name -> its slot, the same objects as in _baselines/_trends,
-        # so a reading finds all three with one lookup.
-        self._slots: dict[str, dict[str, _Slot]] = {}
-        self._growth_fed: set[AlarmKey] = set()  # growth keys that ever fed the engine
         self._fault_seen: set[str] = set()  # points whose block checks ever fed the engine
         # Whether every open alarm is known to fit this registry entry (a fresh evaluator
         # has none; a restored one is checked by close_orphaned_alarms).
@@ -179,12 +155,15 @@ class MachineEvaluator:
         speed = float(analysis.speed_hz) if analysis is not None else None
         approach: tuple[ApproachForecast, ...] = ()
         margins = _NO_MARGINS
-        inside: list[str] = []
+        sweeping: list[str] = []
+        one_x_bands: tuple[str, ...] = ()
         if speed is not None and math.isfinite(speed) and speed > 0:
             if not suppressed:
-                inside, approach, t = self._resonance.at_speed(self.engine, ts, speed, rid)
+                sweeping, approach, t, one_x_bands = self._resonance.at_speed(self.engine, ts, speed, rid)
                 trans += t
             margins = self._resonance.rows(speed)
+        elif speed == 0.0 and not suppressed:
+            self._resonance.stopped()
 
         overall = zone = None
         feats: Sequence[FeatureEvaluation] = ()
@@ -193,10 +172,10 @@ class MachineEvaluator:
             overall = float(analysis.overall_velocity_mm_s_rms)
             zone = zone_of(overall, limits) if math.isfinite(overall) and overall >= 0 else None
             if not health.ok:
-                ignored = Ignored("sensor fault", health.checks)
-            elif inside:
-                ignored = Ignored("resonance band", tuple(inside))
-            feats, t = self._growth(analysis, point.id, limits, ignored)
+                ignored = Ignored(SENSOR_FAULT, health.checks)
+            elif sweeping:
+                ignored = Ignored(SWEEP, tuple(sweeping))
+            feats, t = self._growth.reading(self.engine, analysis, point.id, limits, ignored, one_x_bands)
             trans += t
         # Every field set at once, past the frozen dataclass's __init__ (one
         # object.__setattr__ per field, a measurable part of a reading's detection).
@@ -210,14 +189,34 @@ class MachineEvaluator:
         )
         return out
 
-    def observe_speed(self, reading: SpeedReading) -> list[Transition]:
-        """A running-speed message (Hz) for this machine; advances resonance alarms."""
+    def evaluate_speed(self, reading: SpeedReading) -> SpeedEvaluation:
+        """A running-speed message (Hz, from the speed topic or a tach) for this machine:
+        advances the resonance alarms and gives the margin table at that speed, whatever
+        the state of the vibration sensors. Speed 0 (standing still) ends every stay in a
+        band and evaluates nothing else."""
         if reading.machine != self.machine.id:
             raise ValueError(f"speed is for machine {reading.machine!r}, this evaluator is for {self.machine.id!r}.")
         sp = float(reading.speed_hz)
-        if not (math.isfinite(sp) and sp > 0):
-            raise ValueError(f"speed_hz must be a positive finite speed, got {reading.speed_hz!r}.")
-        return self._resonance.at_speed(self.engine, float(reading.ts), sp, None).transitions
+        if not (math.isfinite(sp) and sp >= 0):
+            raise ValueError(f"speed_hz must be a finite speed >= 0, got {reading.speed_hz!r}.")
+        ts = float(reading.ts)
+        if sp == 0.0:
+            self._resonance.stopped()
+            return SpeedEvaluation(self.machine.id, ts, sp, _NO_MARGINS, (), (), ())
+        outcome = self._resonance.at_speed(self.engine, ts, sp, None)
+        return SpeedEvaluation(self.machine.id, ts, sp, self._resonance.rows(sp), outcome.approach,
+                               tuple(outcome.sweeping), tuple(outcome.transitions))
+
+    def observe_speed(self, reading: SpeedReading) -> list[Transition]:
+        """:meth:`evaluate_speed`'s alarm transitions."""
+        return list(self.evaluate_speed(reading).transitions)
+
+    @property
+    def latest_speed(self) -> tuple[float, float] | None:
+        """The latest running speed counted, ``(epoch s, Hz)``, from a reading or a speed
+        message, or None before any."""
+        speeds = self._resonance.speeds
+        return speeds[-1] if speeds else None
 
     def observe_mode_findings(self, findings: Sequence[ModeShift], ts: float, *, point: str | None = None,
                               evidence: Mapping[str, Any] | None = None) -> list[Transition]:
@@ -277,10 +276,7 @@ class MachineEvaluator:
         """Learn the baseline (and trend) of ``point_id`` again from the next readings,
         for one ``feature`` or all; e.g. after maintenance."""
         self.machine.point(point_id)
-        for (pid, name), b in list(self._baselines.items()):
-            if pid == point_id and (feature is None or name == feature):
-                b.restart(ts)
-                self._trends[(pid, name)].clear()
+        self._growth.restart(point_id, ts, feature)
 
     def active_alarms(self) -> list[dict[str, Any]]:
         """JSON of every alarm not cleared."""
@@ -305,7 +301,7 @@ class MachineEvaluator:
             # An order feature of an order no longer excited; the fixed features and the
             # bearing lines (present as the analysis finds them) stay.
             name = key.subject
-            if name.endswith("x") and name not in ("1x", *(f.name for _, f in self._orders)):
+            if name.endswith("x") and name not in ("1x", *(f.name for _, f in self._growth.orders)):
                 return EXCITATION_REMOVED
         return None
 
@@ -346,10 +342,9 @@ class MachineEvaluator:
             "format": STATE_FORMAT,
             "machine": self.machine.id,
             "engine": self.engine.snapshot(),
-            "baselines": [[p, f, b.snapshot()] for (p, f), b in self._baselines.items()],
-            "trends": [[p, f, w.snapshot()] for (p, f), w in self._trends.items()],
-            "ignored": {p: dict(c) for p, c in self._ignored.items()},
+            **self._growth.snapshot(),
             "speed": speed,
+            "stays": self._resonance.stays_snapshot(),
             "last_ts": {p: float_out(t) for p, t in self._last_ts.items()},
             "intervals": {p: floats_out(d) for p, d in self._intervals.items()},
         }
@@ -372,12 +367,9 @@ class MachineEvaluator:
         eng = dict(data["engine"])
         eng["persistence"] = ev.settings.persistence
         ev.engine = AlarmEngine.restore(eng)
-        for p, f, b in data.get("baselines", []):
-            ev._baselines[(p, f)] = Baseline.restore(b)
-        for p, f, w in data.get("trends", []):
-            ev._trends[(p, f)] = TrendWindow.restore(w)
-        ev._ignored = {p: dict(c) for p, c in data.get("ignored", {}).items()}
+        ev._growth.restore(dict(data), ev.engine.alarm_keys())
         ev._resonance.speeds.extend((t, v) for t, v in (floats_in(x) for x in data.get("speed", [])))
+        ev._resonance.restore_stays(data.get("stays"))
         points = ev._limits
         ev._last_ts = {p: number_in(t, f"last_ts {p}") for p, t in data.get("last_ts", {}).items()
                        if p in points}
@@ -386,7 +378,6 @@ class MachineEvaluator:
         ev._fault_seen = {k.point for k in ev.engine.alarm_keys()
                           if k.kind == "sensor_fault" and k.subject != "stale" and k.point is not None}
         ev._resonance.restore(ev.engine.alarm_keys())
-        ev._growth_fed = {k for k in ev.engine.alarm_keys() if k.kind == "amplitude_growth"}
         ev._orphans_checked = not ev.engine.active()
         return ev
 
@@ -398,20 +389,6 @@ class MachineEvaluator:
         if key is None:
             key = self._keys[k] = AlarmKey(self.machine.id, point, kind, subject)
         return key
-
-    def _slot(self, pid: str, name: str, speed_band: float | None) -> _Slot:
-        """The baseline, trend window and growth alarm key of one feature of a point,
-        made on the feature's first reading (or taken from a restored snapshot)."""
-        s = self.settings
-        k = (pid, name)
-        base = self._baselines.get(k)
-        if base is None:
-            base = self._baselines[k] = Baseline(s.baseline_readings)
-        win = self._trends.get(k)
-        if win is None:
-            win = self._trends[k] = TrendWindow(
-                s.trend_window, s.trend_min_readings, s.trend_refit_every, speed_band)
-        return _Slot(base, win, self._key(pid, "amplitude_growth", name))
 
     def _expected_interval(self, pid: str) -> float | None:
         if self.settings.reading_interval_s is not None:
@@ -456,79 +433,3 @@ class MachineEvaluator:
                   "value": f.value if f else None, "reading_id": rid}
             out += self.engine.update(key, ts, lvl, lvl, ev, rid)
         return out
-
-    def _growth(self, analysis: ReadingAnalysis, pid: str, limits: ZoneLimits, ignored: Ignored | None
-                ) -> tuple[FeatureRows, list[Transition]]:
-        """Amplitude-growth alarms of one reading of point ``pid``: its features fed to
-        their baselines and trend windows (unless the reading is ``ignored``), judged by
-        :class:`~monitor.detection.growth_rules.GrowthRules`, and the levels given to the
-        engine. The features' evaluations are built only when something reads them."""
-        ts = float(analysis.ts)
-        speed = float(analysis.speed_hz)
-        rid = analysis.reading_id
-        counts = self._ignored.setdefault(pid, {})
-        if ignored is not None:
-            counts[ignored.reason] = counts.get(ignored.reason, 0) + 1
-        judge = self._rules.judge
-        verdicts: list[FeatureVerdict] = []
-        due: list[tuple[int, AlarmKey]] = []
-        for feature, value, slot, comparable in self._feed(analysis, pid, ts, speed, ignored is None):
-            trend = slot.window.trend() if ignored is None else None
-            verdict = judge(feature, value, slot.baseline, comparable, speed, trend, limits)
-            verdicts.append(verdict)
-            # A key that never fed the engine has no alarm to count down.
-            if ignored is None and (verdict.raise_rank or verdict.hold_rank or (
-                    slot.key in self._growth_fed and self.engine.alarm(slot.key) is not None)):
-                due.append((len(verdicts) - 1, slot.key))
-                self._growth_fed.add(slot.key)
-        features = FeatureRows(verdicts)
-        out: list[Transition] = []
-        for i, key in due:
-            evidence = functools.partial(_growth_evidence, rid, speed, limits, features, i, counts)
-            out += self.engine.update_ranked(key, ts, verdicts[i].raise_rank, verdicts[i].hold_rank,
-                                             evidence, rid)
-        if out:
-            counts.clear()  # reported in these transitions' evidence
-        return features, out
-
-    def _feed(self, analysis: ReadingAnalysis, pid: str, ts: float, speed: float, use: bool
-              ) -> list[tuple[Feature, float, _Slot, bool]]:
-        """The growth features of a reading of point ``pid`` at ``ts`` (epoch s) and
-        ``speed`` (Hz) with their slots, and whether each is comparable with its baseline
-        (the speed within the baseline's band). With ``use``, each finite value >= 0 is
-        fed to its baseline (while learning) and trend window, and the windows due are
-        refitted together; without, nothing is fed."""
-        band = self.settings.baseline_speed_band_pct / 100.0
-        slots = self._slots.get(pid)
-        if slots is None:
-            slots = self._slots[pid] = {}
-        fed: list[tuple[Feature, float, _Slot, bool]] = []
-        due_fits: list[TrendWindow] = []
-        for feature, value in reading_features(analysis, self.machine, self._orders):
-            if not (0.0 <= value < math.inf):  # finite and not negative (NaN fails too)
-                continue
-            slot = slots.get(feature.name)
-            if slot is None:
-                slot = slots[feature.name] = self._slot(pid, feature.name, band if feature.speed_dependent else None)
-            comparable = True
-            if use:
-                base = slot.baseline
-                if base.stats is None:
-                    base.add(value, speed, ts)
-                base_speed = base.speed_hz
-                comparable = not (feature.speed_dependent and base_speed
-                                  and abs(speed - base_speed) > band * base_speed)
-                if slot.window.add(ts, value, speed):
-                    due_fits.append(slot.window)
-            fed.append((feature, value, slot, comparable))
-        if due_fits:
-            fit_due_windows(due_fits)
-        return fed
-
-
-def _growth_evidence(rid: str | None, speed: float, limits: ZoneLimits, features: FeatureRows, i: int,
-                     counts: dict[str, int]) -> dict[str, Any]:
-    """A growth transition's evidence: the feature's evaluation and the readings growth
-    left out since the last growth transition, by reason."""
-    return {"reading_id": rid, "speed_hz": speed, "zone_limits_mm_s": list(limits.as_tuple()),
-            **features[i].to_json(), "ignored_readings": dict(counts)}

@@ -11,7 +11,8 @@ Three rules give each a raise and a hold level; the worst of each wins:
   baseline's own scatter);
 - trend: advisory when the Theil-Sen trend reaches the next limit that matters (B/C, C/D
   or a ratio limit) within the horizon, held within the horizon lengthened by the
-  hysteresis.
+  hysteresis. The next limit is the first one the fitted line has not reached yet, so
+  one noisy reading beyond a limit neither gives a time of zero nor skips a limit.
 
 The outcome is a :class:`FeatureVerdict` of plain numbers; its words are made only when
 someone reads them (:mod:`monitor.detection.results`).
@@ -25,7 +26,7 @@ from typing import NamedTuple
 from monitor.detection.alarms import level_ranks_above
 from monitor.detection.features import OVERALL, Feature
 from monitor.detection.growth import Baseline, BaselineStats, Trend, time_to_limit
-from monitor.detection.zones import Zone, ZoneLimits, boundary_above, zone_of
+from monitor.detection.zones import Zone, ZoneLimits, boundary_above, first_boundary_above, zone_of
 from monitor.model.detection_settings import DetectionSettings
 
 
@@ -49,6 +50,28 @@ class OutOfSpeedBand(NamedTuple):
         return f"not comparable: speed {self.speed_hz:.2f} Hz, baseline at {self.baseline_speed_hz:.2f} Hz"
 
 
+class Sweeping(NamedTuple):
+    """The reading was taken while the speed swept an excitation through a required band
+    (``subjects``, '<mode>@<excitation>'): left out of the baseline and the trend, only its
+    zone is judged."""
+
+    subjects: tuple[str, ...]
+
+    def words(self) -> str:
+        return f"not comparable: sweep through band {', '.join(self.subjects)}"
+
+
+class InBand(NamedTuple):
+    """The speed-normalised 1x of a reading whose 1x lies inside the required band of
+    ``subjects``: dividing by the speed squared does not remove a resonant amplification,
+    so the value is compared with nothing."""
+
+    subjects: tuple[str, ...]
+
+    def words(self) -> str:
+        return f"not comparable: 1x inside the required band of {', '.join(self.subjects)}"
+
+
 class Ready(NamedTuple):
     """The baseline is learned and comparable."""
 
@@ -59,7 +82,7 @@ class Ready(NamedTuple):
 READY = Ready()
 #: Raise rank by zone: alert in C, severe in D.
 _ZONE_RAISE_RANK: dict[Zone, int] = {"C": 2, "D": 3}
-BaselineStatus = Learning | OutOfSpeedBand | Ready
+BaselineStatus = Learning | OutOfSpeedBand | Sweeping | InBand | Ready
 
 
 class ZoneCause(NamedTuple):
@@ -100,7 +123,8 @@ class FeatureVerdict(NamedTuple):
     ``value`` in the feature's unit; ``baseline`` the learned median and MAD (None while learning); ``ratio`` the value
     over the baseline median (None while learning or not comparable); ``trend`` the
     Theil-Sen trend (None without one); ``limit`` the next limit, (name, value in the
-    feature's unit): a zone boundary for ``overall``, a ratio limit otherwise;
+    feature's unit): a zone boundary for ``overall``, a ratio limit otherwise, the first
+    one above the trend's fitted level now (above the value without a trend);
     ``time_to_limit_s`` seconds until the trend reaches it (None when not rising);
     ``raise_rank`` and ``hold_rank`` as :func:`~monitor.detection.alarms.severity_rank`;
     ``causes`` the rules that hold.
@@ -119,9 +143,13 @@ class FeatureVerdict(NamedTuple):
     causes: tuple[Cause, ...]
 
 
-def baseline_status(baseline: Baseline, comparable: bool, speed_hz: float) -> BaselineStatus:
+def baseline_status(baseline: Baseline, comparable: bool, speed_hz: float,
+                    left_out: Sweeping | InBand | None = None) -> BaselineStatus:
     """Where ``baseline`` stands for a reading at ``speed_hz`` (Hz); ``comparable`` is
-    whether the reading's speed lies within the baseline's speed band."""
+    whether the reading's speed lies within the baseline's speed band; ``left_out`` why
+    the reading is compared with nothing (then that is the status)."""
+    if left_out is not None:
+        return left_out
     if baseline.stats is None:
         return Learning(len(baseline.values), baseline.size)
     if not comparable:
@@ -154,27 +182,32 @@ class GrowthRules:
                    sigmas=s.baseline_sigmas, horizon_s=s.trend_horizon_days * 86400.0)
 
     def judge(self, feature: Feature, value: float, baseline: Baseline, comparable: bool,
-              speed_hz: float, trend: Trend | None, limits: ZoneLimits) -> FeatureVerdict:
+              speed_hz: float, trend: Trend | None, limits: ZoneLimits,
+              left_out: Sweeping | InBand | None = None) -> FeatureVerdict:
         """The verdict on ``value`` (finite, >= 0) of ``feature`` in a reading at
         ``speed_hz`` (Hz), against its ``baseline`` (``comparable``: the speed lies within
         the baseline's band), its ``trend`` (None when the reading is left out of growth)
-        and the point's zone ``limits``."""
+        and the point's zone ``limits``. A value ``left_out`` of the comparison (a sweep's
+        reading, a 1x amplified by a mode) is judged by its zone only."""
         stats = baseline.stats
-        status = baseline_status(baseline, comparable, speed_hz)
+        status = baseline_status(baseline, comparable, speed_hz, left_out)
         ratio = None
         if status is READY and stats is not None and stats.median > 0:
             ratio = value / stats.median
         raise_rank = hold_rank = 0
         causes: list[Cause] = []
         limit: tuple[str, float] | None = None
+        # The trend's limit is the next one its fitted line has to reach: one reading
+        # above or below the line must not pick a limit the line has passed.
+        level = value if trend is None else trend.fitted_now
         if feature is OVERALL:
             zone = zone_of(value, limits)
             raise_rank, hold_rank = self.zone_ranks(zone, value, limits)
             if raise_rank or hold_rank:
                 causes.append(ZoneCause(zone, value))
-            limit = boundary_above(zone, limits)
+            limit = boundary_above(zone, limits) if trend is None else first_boundary_above(level, limits)
         elif ratio is not None and stats is not None:
-            limit = self.next_ratio_limit(value, stats.median)
+            limit = self.next_ratio_limit(level, stats.median)
         ttl = None if trend is None or limit is None else time_to_limit(trend, limit[1])
         if ratio is not None and stats is not None:
             ratio_raise, ratio_hold = level_ranks_above(ratio, self.ratio_limits, self.hysteresis)
@@ -200,10 +233,10 @@ class GrowthRules:
         hold_rank = level_ranks_above(value_mm_s, ((2, limits.bc), (3, limits.cd)), self.hysteresis)[1]
         return raise_rank, hold_rank
 
-    def next_ratio_limit(self, value: float, median: float) -> tuple[str, float] | None:
-        """The first ratio limit (name, value in the feature's unit) above ``value``, for a
-        baseline ``median``; None above them all."""
+    def next_ratio_limit(self, level: float, median: float) -> tuple[str, float] | None:
+        """The first ratio limit (name, value in the feature's unit) above ``level`` (a
+        value, or a trend's fitted level), for a baseline ``median``; None above them all."""
         for ratio, name in self.ratio_names:
-            if value < ratio * median:
+            if level < ratio * median:
                 return name, ratio * median
         return None

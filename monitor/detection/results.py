@@ -127,6 +127,46 @@ class ReadingEvaluation:
         return out
 
 
+@dataclass(frozen=True)
+class SpeedEvaluation:
+    """What detection made of one running-speed message (for the store and the
+    dashboard): resonance depends on the speed alone, so a speed stream keeps it current
+    while the vibration sensors are faulted or absent.
+
+    ``speed_hz`` the running speed (0: standing still, then nothing else is evaluated);
+    ``margins`` the margin table at that speed (built on first use); ``approach`` the
+    forecasts from the speed trend; ``sweeping`` the subjects ('<mode>@<excitation>')
+    whose required band the speed is sweeping through; ``transitions`` the resonance
+    alarm transitions the message caused.
+    """
+
+    machine: str
+    ts: float
+    speed_hz: float
+    margins: Sequence[MarginRow]
+    approach: tuple[ApproachForecast, ...]
+    sweeping: tuple[str, ...]
+    transitions: tuple[Transition, ...] = ()
+
+    def nearest_margin(self) -> MarginRow | None:
+        """The tightest (mode, excitation) pair at this speed, as
+        :meth:`ReadingEvaluation.nearest_margin`."""
+        if isinstance(self.margins, MarginRows):
+            return self.margins.nearest_margin()
+        return min(self.margins, key=lambda r: r.margin_pct - r.required_pct, default=None)
+
+    def to_json(self, *, margins: bool = True) -> dict:
+        """JSON-able form; ``margins=False`` leaves out the margin table."""
+        out = {
+            "machine": self.machine, "ts": self.ts, "speed_hz": self.speed_hz,
+            "approach": [a.to_json() for a in self.approach], "sweeping": list(self.sweeping),
+            "transitions": [t.to_json() for t in self.transitions],
+        }
+        if margins:
+            out["margins"] = [m.to_json() for m in self.margins]
+        return out
+
+
 def feature_evaluation(verdict: FeatureVerdict) -> FeatureEvaluation:
     """The :class:`FeatureEvaluation` of a growth verdict, its status and causes in words."""
     feature, stats, trend, limit = verdict.feature, verdict.baseline, verdict.trend, verdict.limit

@@ -104,3 +104,14 @@ def boundary_above(zone: Zone, limits: ZoneLimits) -> tuple[str, float] | None:
         return None
     i = ZONES.index(zone)
     return BOUNDARY_NAMES[i], limits.as_tuple()[i]
+
+
+def first_boundary_above(level_mm_s: float, limits: ZoneLimits) -> tuple[str, float] | None:
+    """The first boundary (name, mm/s RMS) that ``level_mm_s`` has not reached (lies
+    strictly below), or None at or above C/D. For a trend's fitted level, which may lie
+    anywhere (even below zero); a measured value's next boundary is
+    :func:`next_boundary`."""
+    for name, boundary in zip(BOUNDARY_NAMES, limits.as_tuple(), strict=True):
+        if level_mm_s < boundary:
+            return name, boundary
+    return None

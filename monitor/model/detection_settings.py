@@ -50,6 +50,10 @@ class DetectionSettings:
     approach_warning_s : float
         Advisory when a ramping speed brings an excitation into a required band within
         this time, seconds (600).
+    resonance_dwell_s : float
+        A resonance level is raised only once the excitation has stayed in its band this
+        long, seconds (60; 0 to 86,400): a run-up or coast-down passing through faster is
+        a passage, not an alarm; readings taken during such a sweep are left out of growth.
     speed_history : int
         Speed values kept for the speed trend (12).
     reading_interval_s : float or None
@@ -72,6 +76,7 @@ class DetectionSettings:
     trend_horizon_days: float = 7.0
     trend_refit_every: int = 5
     approach_warning_s: float = 600.0
+    resonance_dwell_s: float = 60.0
     speed_history: int = 12
     reading_interval_s: float | None = None
     stale_intervals: float = 3.0
@@ -116,6 +121,7 @@ class DetectionSettings:
         num("trend_horizon_days", 0.0, lo_open=True)
         num("trend_refit_every", 1, integer=True)
         num("approach_warning_s", 0.0)
+        num("resonance_dwell_s", 0.0, 86400.0)
         num("speed_history", 3, integer=True)
         num("stale_intervals", 1.0)
         if self.reading_interval_s is not None:
