@@ -12,6 +12,7 @@ from flask import Blueprint, Response, flash, redirect, render_template, request
 
 from dashboard.db import db_session
 from dashboard.errors import BadRequest, Conflict, NotFound, Unauthorised
+from dashboard.ids import parse_cursor
 from dashboard.redirects import same_origin_path
 from dashboard.security import current, require
 from monitor.detection.alarms import KINDS, SEVERITIES
@@ -65,13 +66,7 @@ def parse_page(args: Mapping[str, str], default: int = 50) -> tuple[int, int | N
         raise BadRequest(f"Parameter 'limit' must be an integer 1-{MAX_LIMIT}, got {args.get('limit')!r}.") from None
     if not 1 <= limit <= MAX_LIMIT:
         raise BadRequest(f"Parameter 'limit' must be an integer 1-{MAX_LIMIT}, got {limit}.")
-    cursor = args.get("cursor")
-    if cursor in (None, ""):
-        return limit, None
-    try:
-        return limit, int(cursor)
-    except ValueError:
-        raise BadRequest(f"Parameter 'cursor' must be the 'next' value of a previous page, got {cursor!r}.") from None
+    return limit, parse_cursor(args.get("cursor"))
 
 
 def acting_user() -> str:

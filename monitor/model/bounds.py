@@ -52,11 +52,21 @@ def entry_label(machine_id: str | None, extra: str = "") -> str:
     return f"{base}{extra}"
 
 
+def quoted(value: Any, limit: int = 60) -> str:
+    """A bad value as an error message quotes it: its repr, cut to ``limit`` characters
+    (a 400-digit number would drown the sentence)."""
+    text = repr(value)
+    return text if len(text) <= limit else text[: limit - 3] + "..."
+
+
 def number(value: Any, where: str, key: str) -> float:
     """``value`` as a finite float; RegistryError naming ``key`` otherwise."""
     if isinstance(value, bool) or not isinstance(value, int | float):
-        raise RegistryError(f"{where}: '{key}' must be a number, got {value!r}.")
-    v = float(value)
+        raise RegistryError(f"{where}: '{key}' must be a number, got {quoted(value)}.")
+    try:
+        v = float(value)
+    except OverflowError:  # a whole number beyond any float (JSON allows 10**400)
+        raise RegistryError(f"{where}: '{key}' is absurdly large, got {quoted(value)}.") from None
     if not math.isfinite(v):
         raise RegistryError(f"{where}: '{key}' must be a finite number, got {value!r}.")
     return v

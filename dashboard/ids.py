@@ -1,0 +1,38 @@
+"""Database ids as the dashboard takes them from a URL: whole numbers a BIGINT column holds.
+
+A path id beyond that range names no row, so it answers 404 like any unknown id (the URL
+converter does not match it); a ``cursor`` beyond it is a malformed parameter (400).
+"""
+
+from __future__ import annotations
+
+import re
+from typing import Any
+
+from werkzeug.routing import IntegerConverter, Map
+
+from dashboard.errors import BadRequest
+
+#: The largest id a BIGINT (signed 64-bit) column holds: PostgreSQL's bigint, SQLite's INTEGER.
+MAX_ID = 2**63 - 1
+_DIGITS = re.compile(r"[0-9]{1,19}")
+
+
+class IdConverter(IntegerConverter):
+    """Flask's ``int`` converter bounded to ids the database can hold (0 to :data:`MAX_ID`);
+    installed as the app's ``int`` converter, so every ``<int:...>`` route uses it."""
+
+    def __init__(self, url_map: Map, *args: Any, **kwargs: Any) -> None:
+        kwargs.setdefault("max", MAX_ID)
+        super().__init__(url_map, *args, **kwargs)
+
+
+def parse_cursor(value: str | None) -> int | None:
+    """The ``cursor`` query parameter (the ``next`` of a previous page): None when absent
+    or empty, else an id from 1 to :data:`MAX_ID`; BadRequest otherwise."""
+    if value in (None, ""):
+        return None
+    assert value is not None
+    if not _DIGITS.fullmatch(value) or not 0 < int(value) <= MAX_ID:
+        raise BadRequest(f"Parameter 'cursor' must be the 'next' value of a previous page, got {value!r}.")
+    return int(value)
