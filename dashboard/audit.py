@@ -21,6 +21,9 @@ from monitor.store.reads import MAX_AUDIT_PAGE, audit_event_json, find_audit_eve
 bp = Blueprint("audit", __name__, url_prefix="/audit")
 api_bp = Blueprint("audit_api", __name__, url_prefix="/api/v1")
 
+#: The longest user name the store holds (monitor/store/models.py, users.name).
+MAX_USER_NAME = 100
+
 def _query(args: Mapping[str, str]) -> dict:
     action = args.get("action") or None
     if action is not None and action not in ACTIONS:
@@ -31,7 +34,10 @@ def _query(args: Mapping[str, str]) -> dict:
         raise BadRequest(f"Parameter 'limit' must be an integer 1-{MAX_AUDIT_PAGE}, got {args.get('limit')!r}.") from None
     if not 1 <= limit <= MAX_AUDIT_PAGE:
         raise BadRequest(f"Parameter 'limit' must be an integer 1-{MAX_AUDIT_PAGE}, got {limit}.")
-    return {"user": (args.get("user") or "").strip() or None, "action": action,
+    user = args.get("user") or ""
+    if len(user) > MAX_USER_NAME:
+        raise BadRequest(f"Parameter 'user' must be a user name of at most {MAX_USER_NAME} characters.")
+    return {"user": user.strip() or None, "action": action,
             "before_id": parse_cursor(args.get("cursor")),
             "limit": limit}
 

@@ -1,7 +1,7 @@
 """Database ids as the dashboard takes them from a URL: whole numbers a BIGINT column holds.
 
 A path id beyond that range names no row, so it answers 404 like any unknown id (the URL
-converter does not match it); a ``cursor`` beyond it is a malformed parameter (400).
+converter does not match it); a ``cursor`` beyond it lists from the newest row.
 """
 
 from __future__ import annotations
@@ -15,7 +15,8 @@ from dashboard.errors import BadRequest
 
 #: The largest id a BIGINT (signed 64-bit) column holds: PostgreSQL's bigint, SQLite's INTEGER.
 MAX_ID = 2**63 - 1
-_DIGITS = re.compile(r"[0-9]{1,19}")
+#: A cursor: a whole number from 1, at most 19 digits (2^63 - 1 has 19).
+CURSOR_PATTERN = re.compile(r"[1-9][0-9]{0,18}")
 
 
 class IdConverter(IntegerConverter):
@@ -28,11 +29,12 @@ class IdConverter(IntegerConverter):
 
 
 def parse_cursor(value: str | None) -> int | None:
-    """The ``cursor`` query parameter (the ``next`` of a previous page): None when absent
-    or empty, else an id from 1 to :data:`MAX_ID`; BadRequest otherwise."""
-    if value in (None, ""):
+    """The ``cursor`` query parameter (the ``next`` of a previous page, ids below it come
+    next): None when absent or empty; a whole number from 1 with at most 19 digits
+    (:data:`CURSOR_PATTERN`, as dashboard/openapi.json states), one beyond :data:`MAX_ID`
+    taken as :data:`MAX_ID`; BadRequest otherwise."""
+    if not value:
         return None
-    assert value is not None
-    if not _DIGITS.fullmatch(value) or not 0 < int(value) <= MAX_ID:
+    if not CURSOR_PATTERN.fullmatch(value):
         raise BadRequest(f"Parameter 'cursor' must be the 'next' value of a previous page, got {value!r}.")
-    return int(value)
+    return min(int(value), MAX_ID)

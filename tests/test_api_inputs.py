@@ -79,7 +79,11 @@ def test_ids_beyond_bigint_name_nothing(env):
         assert error(resp, 404)["code"] == "not_found", path  # RFC 9110, 15.5.5
     # The largest BIGINT is an id like any other: no such alarm.
     assert error(client.get(f"/api/v1/alarms/{BEYOND_BIGINT - 1}", headers=h), 404)["code"] == "not_found"
-    for cursor in (str(BEYOND_BIGINT), "1_0", " 5", "-1"):
+    # A cursor lists the ids below it (docs/api.md): one beyond any id lists from the newest.
+    newest = client.get("/api/v1/alarms", headers=h).get_json()["items"]
+    assert client.get("/api/v1/alarms", query_string={"cursor": str(BEYOND_BIGINT)}, headers=h).get_json()[
+        "items"] == newest
+    for cursor in ("0", "1_0", " 5", "-1", "1" * 20):
         e = error(client.get("/api/v1/alarms", query_string={"cursor": cursor}, headers=h), 400)
         assert "'cursor'" in e["message"]
 
@@ -154,3 +158,40 @@ def _subclasses(cls: type) -> set[type]:
     for sub in cls.__subclasses__():
         out |= {sub} | _subclasses(sub)
     return out
+
+
+@pytest.mark.parametrize(("zeta", "required"), [(0.8, {0.0}), (5e-324, {16.0, 26.0})])
+def test_any_damping_ratio_in_bounds_leaves_the_margins_computable(env, zeta, required):
+    # AF = 1 / (2 zeta) (Thomson, half-power bandwidth): below 1 for zeta > 0.5, where API
+    # 684 asks no margin (AF < 2.5); beyond any float for the smallest double, where its
+    # margins are at their caps, 16 % and 26 %. Either mode answered 500 on every machine
+    # read before.
+    client, h, _ = env
+    m = machine_id(client, h)
+    body = {"name": "damped", "frequency_hz": 30.0, "damping_ratio": zeta}
+    assert client.post(f"/api/v1/machines/{m}/modes", json=body, headers=h).status_code == 201
+    assert client.get("/api/v1/machines", headers=h).status_code == 200
+    resp = client.get(f"/api/v1/machines/{m}", headers=h)
+    assert "Infinity" not in resp.get_data(as_text=True)  # RFC 8259: no such JSON number
+    rows = [r for r in resp.get_json()["margins"] if r["mode"] == "damped"]
+    assert rows and {r["required_pct"] for r in rows} <= required
+
+
+@pytest.mark.parametrize("value", ["2026-03-04T10:00:00Z", "2026-03-04t10:00:00.5+05:30", "2026-03-04",
+                                   "1780000000", "1780000000.25", "",
+                                   "0001-01-01T00:00:00+05:00", "9999-12-31T23:59:59-05:00"])
+def test_query_times_in_every_documented_form(env, value):
+    # RFC 3339 section 5.6 (date-time, "T" and "Z" in either case), a date, epoch seconds,
+    # empty for "not given" (docs/api.md, dashboard/openapi.json).
+    client, h, _ = env
+    m = machine_id(client, h)
+    for path in ("/api/v1/alarms", f"/api/v1/machines/{m}/trends"):
+        assert client.get(path, query_string={"from": value, "to": value}, headers=h).status_code == 200, path
+
+
+@pytest.mark.parametrize("value", ["yesterday", "nan", "1e9", "-5", "2026-13-01", "2026-03-04T25:00:00Z",
+                                   "2026-03-04T10:00", "2026-02-30"])
+def test_query_times_in_no_documented_form(env, value):
+    client, h, _ = env
+    e = error(client.get("/api/v1/alarms", query_string={"from": value}, headers=h), 400)
+    assert "'from'" in e["message"]

@@ -43,6 +43,10 @@ MAX_EXCITATION_ORDER = 1000.0
 MAX_LINE_FREQUENCY_HZ = 10_000.0
 #: Longest name, location or source text (the store's column width).
 MAX_TEXT = 200
+#: A text that is not blank holds a character outside this class: the characters Python's
+#: ``str.strip`` removes (``str.isspace``), written as a regular expression both Python and
+#: JSON Schema (ECMA-262) read alike, so dashboard/openapi.json states the same rule.
+NOT_BLANK = r"[^\t\n\u000b\f\r\u001c-\u001f \u0085\u00a0\u1680\u2000-\u200a\u2028\u2029\u202f\u205f\u3000]"
 
 
 def entry_label(machine_id: str | None, extra: str = "") -> str:
