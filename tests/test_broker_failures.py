@@ -172,9 +172,12 @@ def test_tls_with_the_right_ca_connects(tls_broker, tls):
 def test_a_missing_ca_file_is_one_sentence_naming_setting_and_path(tmp_path):
     missing = tmp_path / "nowhere" / "ca.pem"
     with pytest.raises(MqttConfigError) as exc:
-        MqttSettings(url="mqtts://127.0.0.1:8883", ca_file=str(missing))
+        Publisher(MqttSettings(url="mqtts://127.0.0.1:8883", ca_file=str(missing)))
     assert str(exc.value) == f"broker.ca_file {str(missing)!r} cannot be read: no such file or directory."
     # Through the command line: the same sentence, no traceback (docs/configuration.md).
+    from service_helpers import plant_store
+
+    plant_store(f"sqlite:///{tmp_path / 's.sqlite'}")
     config = tmp_path / "service.toml"
     config.write_text(f'[broker]\nurl = "mqtts://127.0.0.1:8883"\nca_file = "{missing}"\n'
                       f'[database]\nurl = "sqlite:///{tmp_path / "s.sqlite"}"\n')

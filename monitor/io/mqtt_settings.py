@@ -167,7 +167,6 @@ class MqttSettings:
             )
         if bool(self.cert_file) != bool(self.key_file):
             raise MqttConfigError("MQTT TLS client certificate needs both cert_file and key_file.")
-        _check_readable(self)
 
     @property
     def shown_url(self) -> str:
@@ -215,7 +214,8 @@ def make_client(
     """A paho client for ``settings`` under ``client_id`` (empty: the broker or paho picks
     one), with credentials, TLS, the reconnect back-off and Nagle's algorithm off; it says
     why each connection attempt fails (:class:`~monitor.io.mqtt_failures.ReportingClient`).
-    MqttConfigError when a TLS file holds no usable certificate or key.
+    MqttConfigError naming the setting and the path of a TLS file that cannot be read, or
+    the files when they hold no usable certificate or key.
 
     ``persistent`` keeps the session across connections (MQTT 3.1.1 sets that here;
     MQTT 5 at connect, :func:`connect_async`)."""
@@ -235,6 +235,7 @@ def make_client(
     if username is not None:
         client.username_pw_set(username, password)
     if address.tls:
+        _check_readable(settings)
         try:
             client.tls_set(ca_certs=settings.ca_file, certfile=settings.cert_file, keyfile=settings.key_file)
         except (OSError, ValueError) as exc:  # ssl.SSLError: a file that is no PEM certificate or key
