@@ -60,6 +60,10 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
         Settings overriding :data:`DEFAULTS` (see the module docstring).
     """
     app = Flask(__name__)
+    from dashboard.ids import IdConverter
+
+    # Before any route is added: every <int:...> id is one the database can hold.
+    app.url_map.converters["int"] = IdConverter
     app.config.update(DEFAULTS)
     app.config["SECRET_KEY"] = os.urandom(32)
     if config:

@@ -6,12 +6,14 @@ import csv
 import datetime as dt
 import io
 import json
+import re
 from collections.abc import Mapping
 
 from flask import Blueprint, Response, flash, redirect, render_template, request, url_for
 
 from dashboard.db import db_session
 from dashboard.errors import BadRequest, Conflict, NotFound, Unauthorised
+from dashboard.ids import parse_cursor
 from dashboard.redirects import same_origin_path
 from dashboard.security import current, require
 from monitor.detection.alarms import KINDS, SEVERITIES
@@ -27,20 +29,42 @@ MAX_LIMIT = 500
 CSV_MAX_ROWS = 100_000
 
 
+#: Epoch seconds as a query takes them: a non-negative decimal (11 digits reach year 5138).
+EPOCH_PATTERN = r"[0-9]{1,11}(\.[0-9]{1,9})?"
+#: The forms a query time takes (docs/api.md; dashboard/openapi.json states the same):
+#: epoch seconds, an RFC 3339 date-time (section 5.6: "T" and "Z" in either case, an offset
+#: required) or a date (full-date); the calendar is checked when it is read.
+TIME_PATTERN = re.compile(
+    rf"{EPOCH_PATTERN}|[0-9]{{4}}-[0-9]{{2}}-[0-9]{{2}}"
+    r"([Tt][0-9]{2}:[0-9]{2}:[0-9]{2}(\.[0-9]+)?([Zz]|[+-][0-9]{2}:[0-9]{2}))?")
+_UTC_MIN = dt.datetime.min.replace(tzinfo=dt.UTC)
+_UTC_MAX = dt.datetime.max.replace(tzinfo=dt.UTC)
+
+
 def parse_time(value: str | None, name: str) -> dt.datetime | None:
-    """ISO 8601 (date or date-time; naive means UTC) or epoch seconds."""
+    """A query time (:data:`TIME_PATTERN`; a date is its midnight UTC) as an aware UTC datetime, None
+    when absent or empty; BadRequest naming the parameter otherwise. A time whose offset
+    takes it beyond year 1 or 9999 is taken as the earliest or latest time there is."""
     if not value:
         return None
+    if not TIME_PATTERN.fullmatch(value):
+        raise BadRequest(f"Parameter '{name}' must be ISO 8601 or epoch seconds, got {value!r}.")
+    if re.fullmatch(EPOCH_PATTERN, value):
+        return dt.datetime.fromtimestamp(float(value), dt.UTC)
     try:
-        t = dt.datetime.fromtimestamp(float(value), dt.UTC)
+        return parse_iso_utc(value.upper())
     except ValueError:
-        try:
-            t = parse_iso_utc(value)
-        except ValueError:
-            raise BadRequest(f"Parameter '{name}' must be ISO 8601 or epoch seconds, got {value!r}.") from None
-    except (OverflowError, OSError):
-        raise BadRequest(f"Parameter '{name}' is out of range: {value!r}.") from None
-    return t
+        raise BadRequest(f"Parameter '{name}' is no valid date or time: {value!r}.") from None
+    except OverflowError:
+        return _UTC_MIN if value < "5000" else _UTC_MAX
+
+
+def before(t: dt.datetime, span: dt.timedelta) -> dt.datetime:
+    """``t - span``, or the earliest time there is."""
+    try:
+        return t - span
+    except OverflowError:
+        return _UTC_MIN
 
 
 def parse_filters(args: Mapping[str, str]) -> dict:
@@ -65,13 +89,7 @@ def parse_page(args: Mapping[str, str], default: int = 50) -> tuple[int, int | N
         raise BadRequest(f"Parameter 'limit' must be an integer 1-{MAX_LIMIT}, got {args.get('limit')!r}.") from None
     if not 1 <= limit <= MAX_LIMIT:
         raise BadRequest(f"Parameter 'limit' must be an integer 1-{MAX_LIMIT}, got {limit}.")
-    cursor = args.get("cursor")
-    if cursor in (None, ""):
-        return limit, None
-    try:
-        return limit, int(cursor)
-    except ValueError:
-        raise BadRequest(f"Parameter 'cursor' must be the 'next' value of a previous page, got {cursor!r}.") from None
+    return limit, parse_cursor(args.get("cursor"))
 
 
 def acting_user() -> str:

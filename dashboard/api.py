@@ -12,7 +12,14 @@ from pathlib import Path
 
 from flask import Blueprint, Response, jsonify, request
 
-from dashboard.alarms import acting_user, do_acknowledge, parse_filters, parse_page, parse_time
+from dashboard.alarms import (
+    acting_user,
+    before,
+    do_acknowledge,
+    parse_filters,
+    parse_page,
+    parse_time,
+)
 from dashboard.db import db_session
 from dashboard.errors import BadRequest, Conflict, NotFound
 from dashboard.machines import decide_candidate
@@ -72,9 +79,8 @@ def machine_trends(machine_id: str):
     m = _machine_or_404(machine_id)
     now = dt.datetime.now(dt.UTC)
     t1 = parse_time(request.args.get("to"), "to") or now
-    t0 = parse_time(request.args.get("from"), "from") or (t1 - DEFAULT_TREND_SPAN)
-    if t0 >= t1:
-        raise BadRequest(f"Parameter 'from' ({t0.isoformat()}) must lie before 'to' ({t1.isoformat()}).")
+    t0 = parse_time(request.args.get("from"), "from") or before(t1, DEFAULT_TREND_SPAN)
+    # 'from' after 'to' is an empty window: no readings, not an error.
     try:
         n = int(request.args.get("max_points", DEFAULT_TREND_POINTS))
     except ValueError:
@@ -112,9 +118,10 @@ def _parse_mode_body(m: Machine, data: dict, base: Mode | None):
     raw.update(data)
     # Damping ratio and amplification factor are alternatives: a new one replaces the old.
     for given, other in (("damping_ratio", "amplification_factor"), ("amplification_factor", "damping_ratio")):
-        if data.get(given) not in (None, "") and other not in data:
+        if data.get(given) is not None and other not in data:
             raw.pop(other, None)
-    raw = {k: v for k, v in raw.items() if v is not None and v != ""}
+    # null leaves an optional value out; any other value is checked as given.
+    raw = {k: v for k, v in raw.items() if v is not None}
     try:
         return parse_mode(raw, m.id)
     except RegistryError as exc:
@@ -239,6 +246,9 @@ def acknowledge(alarm_id: int):
     data = request.get_json(silent=True) if request.data else {}
     if not isinstance(data, dict):
         raise BadRequest("The request body must be a JSON object such as {\"comment\": \"...\"}.")
+    extra = sorted(set(data) - {"comment"})
+    if extra:
+        raise BadRequest(f"Unknown field {extra[0]!r}; allowed: comment.")
     comment = data.get("comment", "")
     if not isinstance(comment, str):
         raise BadRequest("Field 'comment' must be a string.")

@@ -13,6 +13,7 @@ from flask import Blueprint, jsonify, render_template, request, url_for
 
 from dashboard.db import db_session
 from dashboard.errors import BadRequest
+from dashboard.ids import parse_cursor
 from dashboard.security import require
 from monitor.store.audit import ACTIONS
 from monitor.store.reads import MAX_AUDIT_PAGE, audit_event_json, find_audit_events
@@ -20,8 +21,8 @@ from monitor.store.reads import MAX_AUDIT_PAGE, audit_event_json, find_audit_eve
 bp = Blueprint("audit", __name__, url_prefix="/audit")
 api_bp = Blueprint("audit_api", __name__, url_prefix="/api/v1")
 
-_INT64_MAX = 2**63 - 1
-
+#: The longest user name the store holds (monitor/store/models.py, users.name).
+MAX_USER_NAME = 100
 
 def _query(args: Mapping[str, str]) -> dict:
     action = args.get("action") or None
@@ -33,13 +34,11 @@ def _query(args: Mapping[str, str]) -> dict:
         raise BadRequest(f"Parameter 'limit' must be an integer 1-{MAX_AUDIT_PAGE}, got {args.get('limit')!r}.") from None
     if not 1 <= limit <= MAX_AUDIT_PAGE:
         raise BadRequest(f"Parameter 'limit' must be an integer 1-{MAX_AUDIT_PAGE}, got {limit}.")
-    cursor = args.get("cursor") or None
-    before = None
-    if cursor is not None:
-        if not cursor.isdigit() or not 0 < int(cursor) <= _INT64_MAX:
-            raise BadRequest(f"Parameter 'cursor' must be the 'next' value of a previous page, got {cursor!r}.")
-        before = int(cursor)
-    return {"user": (args.get("user") or "").strip() or None, "action": action, "before_id": before,
+    user = args.get("user") or ""
+    if len(user) > MAX_USER_NAME:
+        raise BadRequest(f"Parameter 'user' must be a user name of at most {MAX_USER_NAME} characters.")
+    return {"user": user.strip() or None, "action": action,
+            "before_id": parse_cursor(args.get("cursor")),
             "limit": limit}
 
 

@@ -15,14 +15,16 @@ Requests under ``/api/`` get JSON in one fixed shape::
     {"error": {"status": 404, "code": "not_found", "message": "..."}}
 
 every other request gets the HTML error page. Werkzeug's own HTTP errors (unknown URL,
-wrong method, CSRF failure) go through the same handler, so the shape never varies.
+wrong method, CSRF failure) go through the same handler, so the shape never varies; a 405
+keeps its ``Allow`` header (RFC 9110, section 15.5.6). :data:`CODES` lists every code an
+answer can carry (docs/api.md, "Errors", lists the same).
 """
 
 from __future__ import annotations
 
-from flask import Flask, jsonify, render_template, request
+from flask import Flask, Response, jsonify, make_response, render_template, request
 from flask_wtf.csrf import CSRFError
-from werkzeug.exceptions import HTTPException
+from werkzeug.exceptions import HTTPException, MethodNotAllowed
 
 
 class DashboardError(Exception):
@@ -66,6 +68,7 @@ class TooManyAttempts(DashboardError):
     code = "too_many_attempts"
 
 
+#: Codes of the HTTP layer's own errors (unknown URL, wrong method, body too large, ...).
 _HTTP_CODES = {
     400: "bad_request",
     401: "unauthorised",
@@ -76,6 +79,17 @@ _HTTP_CODES = {
     413: "too_large",
     429: "too_many_attempts",
 }
+#: The code of an HTTP-layer error of any other status.
+OTHER_HTTP_CODE = "http_error"
+
+#: Every code an error answer under ``/api/`` can carry, with its status (None: the
+#: status of the HTTP-layer error itself).
+CODES: dict[str, int | None] = {
+    **{code: status for status, code in _HTTP_CODES.items()},
+    "csrf_failed": 400,
+    "internal_error": 500,
+    OTHER_HTTP_CODE: None,
+}
 
 
 def error_body(status: int, code: str, message: str) -> dict:
@@ -83,17 +97,17 @@ def error_body(status: int, code: str, message: str) -> dict:
     return {"error": {"status": status, "code": code, "message": message}}
 
 
-def _render(status: int, code: str, message: str):
+def _render(status: int, code: str, message: str) -> Response:
     if request.path.startswith("/api/"):
         resp = jsonify(error_body(status, code, message))
         resp.status_code = status
         if status == 401:
             resp.headers["WWW-Authenticate"] = 'Bearer realm="whirlwatch"'
         return resp
-    return render_template("error.html", status=status, message=message), status
+    return make_response(render_template("error.html", status=status, message=message), status)
 
 
-def render(exc: DashboardError):
+def render(exc: DashboardError) -> Response:
     """The response for ``exc``: JSON under ``/api/``, else the HTML error page."""
     return _render(exc.status, exc.code, exc.message)
 
@@ -112,7 +126,11 @@ def register(app: Flask) -> None:
     @app.errorhandler(HTTPException)
     def _http_error(exc: HTTPException):
         status = exc.code or 500
-        return _render(status, _HTTP_CODES.get(status, "http_error"), exc.description or "")
+        resp = _render(status, _HTTP_CODES.get(status, OTHER_HTTP_CODE), exc.description or "")
+        if isinstance(exc, MethodNotAllowed) and exc.valid_methods:
+            # RFC 9110, section 15.5.6: a 405 answer lists the methods the target has.
+            resp.headers["Allow"] = ", ".join(exc.valid_methods)
+        return resp
 
     @app.errorhandler(Exception)
     def _unexpected(exc: Exception):

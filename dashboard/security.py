@@ -148,7 +148,10 @@ def register(app: Flask) -> None:
                 session.clear()
             else:
                 g.principal = Principal(user.id, user.name, user.role, "session")
-        if request.path.startswith("/api/") and request.method not in ("GET", "HEAD", "OPTIONS"):
+        # Only a signed-in session can be ridden by a forged request: an anonymous write
+        # gets the view's own 401 (or the router's 404/405), not a CSRF refusal.
+        if (g.principal is not None and request.path.startswith("/api/")
+                and request.method not in ("GET", "HEAD", "OPTIONS")):
             csrf.protect()
 
     @app.after_request

@@ -102,7 +102,9 @@ class PrivateBroker:
     that file are used as written instead of the three keyword settings, and only its
     site-specific directives (:data:`SITE_DIRECTIVES`) are replaced. ``overrides``
     (directive name to value) change single directives on top, for a comparison run.
-    ``settings`` holds the broker-wide directives in force.
+    ``settings`` holds the broker-wide directives in force. ``tls`` (certificate and key
+    files) makes the listener TLS only; ``password_file`` (mosquitto_passwd's format)
+    turns anonymous access off.
     """
 
     def __init__(
@@ -115,6 +117,8 @@ class PrivateBroker:
         autosave_interval_s: int = 1,
         config_from: Path | None = None,
         overrides: dict[str, str] | None = None,
+        tls: tuple[Path, Path] | None = None,
+        password_file: Path | None = None,
     ) -> None:
         binary = find_mosquitto()
         if binary is None:
@@ -139,14 +143,18 @@ class PrivateBroker:
             self.settings = deploy_broker_settings(Path(config_from))
         self.settings.update(overrides or {})
         self.config_from = None if config_from is None else Path(config_from)
-        lines = [
-            f"listener {self.port} 127.0.0.1",
-            "allow_anonymous true",
+        lines = [f"listener {self.port} 127.0.0.1"]
+        if tls is not None:  # (certificate, key) in PEM: this listener speaks TLS only
+            lines += [f"certfile {tls[0]}", f"keyfile {tls[1]}"]
+        lines += [
+            "allow_anonymous true" if password_file is None else "allow_anonymous false",
             f"persistence_location {self.persistence_dir}/",
             "log_dest stderr",
             "log_type error",
             "log_type warning",
         ]
+        if password_file is not None:  # made with mosquitto_passwd
+            lines.append(f"password_file {password_file}")
         lines += [f"{name} {value}" for name, value in self.settings.items()]
         if os.geteuid() == 0:
             # Started as root, Mosquitto switches to the 'mosquitto' user, which cannot write

@@ -16,6 +16,7 @@ from pathlib import Path
 
 import paho.mqtt.client as paho
 from broker import wait_until
+from contracts import check_message
 from paho.mqtt.enums import CallbackAPIVersion
 from sqlalchemy import func, select
 
@@ -104,10 +105,13 @@ def wait_for(predicate: Callable[[], bool], timeout_s: float, poll_s: float = 0.
 
 
 class Recorder:
-    """Subscribes to ``topic`` (QoS 1) and keeps every message received."""
+    """Subscribes to ``topic`` (QoS 1) and keeps every message received; each alarm event
+    and status is checked against its published schema (tests/contracts.py), and
+    :meth:`json` and :meth:`close` fail the test if any was not of it."""
 
     def __init__(self, host: str, port: int, topic: str) -> None:
         self.messages: list[tuple[str, bytes, bool]] = []
+        self.off_contract: list[str] = []
         self._lock = threading.Lock()
         self._ready = threading.Event()
         self.client = paho.Client(CallbackAPIVersion.VERSION2, protocol=paho.MQTTv5)
@@ -120,16 +124,25 @@ class Recorder:
             raise RuntimeError("the recorder could not subscribe")
 
     def _on_message(self, _c, _u, msg) -> None:
+        try:
+            check_message(msg.topic, bytes(msg.payload))
+            wrong = None
+        except (AssertionError, ValueError) as exc:
+            wrong = f"{msg.topic}: {exc}"
         with self._lock:
             self.messages.append((msg.topic, bytes(msg.payload), bool(msg.retain)))
+            if wrong:
+                self.off_contract.append(wrong)
 
     def json(self) -> list[dict]:
         with self._lock:
+            assert not self.off_contract, self.off_contract[:3]
             return [json.loads(p) for _, p, _ in self.messages if p]
 
     def close(self) -> None:
         self.client.disconnect()
         self.client.loop_stop()
+        assert not self.off_contract, self.off_contract[:3]
 
 
 def service_process(broker_url: str, db_url: str, workdir: Path, *, client_id: str = "svc",

@@ -97,3 +97,19 @@ def test_broker_file_agrees_with_the_service_and_the_docs() -> None:
 def test_expiration_units(value: str, seconds: int) -> None:
     # mosquitto.conf(5), persistent_client_expiration: "an integer followed by one of h d w m y"
     assert expiration_s(value) == seconds
+
+
+def test_the_deploy_service_file_is_valid_and_its_defaults_are_the_registrys() -> None:
+    from monitor.config import load_settings
+
+    path = ROOT / "deploy" / "whirlwatch.toml"
+    settings = load_settings(path, env={})  # every key known, every value within its bounds
+    # A value the file says is the default is the registry's default.
+    for line in path.read_text(encoding="utf-8").splitlines():
+        section = re.match(r"^\[(\w+)\]", line)
+        if section:
+            table = section.group(1)
+        key = re.match(r"^(\w+)\s*=.*#.*\bthe default\b", line)
+        if key:
+            name = f"{table}.{key.group(1)}"
+            assert settings.get(name) == BY_NAME[name].default, name

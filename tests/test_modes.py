@@ -12,11 +12,13 @@ from __future__ import annotations
 
 import json
 import math
+import re
 from pathlib import Path
 
 import numpy as np
 import pytest
 from click.testing import CliRunner
+from contracts import check_alarm_event
 from scipy import integrate, optimize, signal
 from scipy.constants import g as G_SI
 from scipy.constants import inch
@@ -355,15 +357,17 @@ class TestBumptestCommand:
         # tolerance (common practice) but within twice it, so an advisory alarm is raised.
         doc = bump()
         (t,) = doc["alarm_transitions"]
-        assert (t["kind"], t["subject"], t["point"], t["transition"]["name"], t["severity"]) == (
+        check_alarm_event(t)  # the MQTT alarm-event shape (docs/alarms.md, "Transition and alarm JSON")
+        assert (t["kind"], t["subject"], t["point"], t["transition"], t["severity"]) == (
             "mode_shift", "frame", "top-h", "raised", "advisory")
-        assert t["transition"]["evidence"]["identified_hz"] == pytest.approx(self.FN, rel=1e-3)
+        assert t["evidence"]["identified_hz"] == pytest.approx(self.FN, rel=1e-3)
         # The same test again changes nothing: the alarm is open at the same level.
         assert bump()["alarm_transitions"] == []
         # The registry corrected to the measured frequency: the next test clears the alarm.
         assert _run(["machines", "import", str(registry_with(42.0)), "--database", database_url])[0] == 0
         (t,) = bump()["alarm_transitions"]
-        assert t["transition"]["name"] == "cleared"
+        check_alarm_event(t)
+        assert t["transition"] == "cleared" and t["state"] == "cleared"
         store = Store.open(database_url)
         try:
             with store.session() as s:
@@ -385,7 +389,7 @@ class TestBumptestCommand:
         code, _, out, err = _run(["bumptest", str(stream), "--record", "--database", database_url,
                                   "--force-point", "hammer", "--band", "10", "200"])
         assert code == 0, err
-        assert "recorded: mode_shift alarm tb-1/top-h/mode_shift/frame#2 raised (advisory)" in out
+        assert re.search(r"recorded: mode_shift alarm \d+ \(tb-1/top-h/mode_shift/frame#2\) raised \(advisory\)", out)
 
     def test_record_needs_the_database_registry(self, tmp_path: Path) -> None:
         stream = self._stream(tmp_path, force=False)
@@ -473,9 +477,10 @@ class TestPassageCommand:
         (doc,) = docs
         assert doc["comparison"][0]["shift_pct"] == pytest.approx(-11.8, abs=1.0)
         (t,) = doc["alarm_transitions"]
-        assert (t["kind"], t["subject"], t["transition"]["name"], t["severity"]) == (
+        check_alarm_event(t)  # passage --record --json prints the documented shape
+        assert (t["kind"], t["subject"], t["transition"], t["severity"]) == (
             "mode_shift", "frame lateral", "raised", "alert")
-        assert t["transition"]["evidence"]["source"] == "run-up/coast-down"
+        assert t["evidence"]["source"] == "run-up/coast-down"
         code, _, _, err = _run(["passage", str(stream), "--machine", "rig-1"])
         assert code == 2 and "--machines REGISTRY is required" in err
 

@@ -58,6 +58,9 @@ def test_toml_round_trip():
         (('unit = "m/s^2"', 'unit = "mm/s"'), "'unit'"),
         (("speed_range_rpm = [300, 1500]", "speed_range_rpm = [1500, 300]"), "'speed_range_rpm'"),
         (('id = "af-3"', 'id = "af 3"'), "'id'"),
+        # Types are the file's own, never converted (docs/registry.md).
+        (('name = "structure lateral"', 'name = 12'), "'name'"),
+        (('source = "impact test"', 'source = 3.5'), "'source'"),
     ],
 )
 def test_validation_error_names_the_field(edit, field):
@@ -138,6 +141,10 @@ def test_every_registry_key_is_documented():
     (("damping_ratio = 0.03", "damping_ration = 0.03"), "'damping_ration'"),
     (("damping_ratio = 0.03", "mode_shape = \"rocking\""), "'mode_shape'"),
     (('fs_hz = 25600', 'sample_rate = 25600'), "'sample_rate'"),
+    # A misspelt quantity with a unit of another quantity: the unknown key is named, not
+    # the unit checked against the default quantity (docs/registry.md, "Strict file").
+    (('quantity = "acceleration"\n  unit = "m/s^2"', 'quantiy = "velocity"\n  unit = "mm/s"'), "'quantiy'"),
+    (('quantity = "acceleration"', 'Quantity = "acceleration"'), "'Quantity'"),
 ])
 def test_misspelt_tables_and_keys_are_errors_naming_them(edit, named):
     bad = REGISTRY_EXAMPLE.replace(*edit)

@@ -290,6 +290,11 @@ def test_closings_are_published_and_a_retired_machine_loses_its_status(fresh_mos
         assert wait_for(lambda: want <= cleared(), 15), (opened, cleared())
         reasons = {(e["machine"], e["evidence"]["reason"]) for e in alarms.json() if e["transition"] == "cleared"}
         assert reasons == {("rwp-1", MODE_REMOVED), ("bwm-1", MACHINE_RETIRED)}
+        # docs/mqtt.md, "Status (retained)": an empty retained message removes a retired
+        # machine's status; MQTT 5.0 section 3.3.1.3: a retained PUBLISH with a zero-length
+        # payload removes the retained message of the topic.
+        doc = (Path(__file__).resolve().parent.parent / "docs" / "mqtt.md").read_text(encoding="utf-8")
+        assert "an empty retained message removes\nit: the service sends one for a machine retired" in doc
         assert wait_for(lambda: ("whirlwatch/bwm-1/status", b"") in [(t, p) for t, p, _ in status.messages], 10)
     finally:
         svc.stop()

@@ -103,9 +103,9 @@ def comparison_registry(record: bool, machines_file: Path | None, database_url: 
 
 
 def record_comparison(store: Any, machine: Machine, comparison: tuple[ModeShift, ...], ts: float,
-                      point: str, evidence: dict[str, Any]) -> list[Any]:
-    """Mode-shift alarm transitions of one point's comparison, recorded in ``store``
-    (none without a store)."""
+                      point: str, evidence: dict[str, Any]) -> list[dict[str, Any]]:
+    """Mode-shift alarm transitions of one point's comparison, recorded in ``store``, as
+    alarm events (docs/schemas/alarm-event.json; none without a store)."""
     if store is None or not comparison:
         return []
     from monitor.service.mode_findings import record_mode_findings  # the store: only when asked
@@ -113,19 +113,19 @@ def record_comparison(store: Any, machine: Machine, comparison: tuple[ModeShift,
     return record_mode_findings(store, machine, comparison, ts, point=point, evidence=evidence)
 
 
-def emit_point(doc: dict[str, Any] | None, print_table_fn: Callable[[], None], transitions: list[Any],
-               *, recording: bool) -> None:
-    """Write one point's result: ``doc`` as a JSON line (with its ``alarm_transitions``
-    when recording), or the table and one line per recorded transition when ``doc`` is
-    None."""
+def emit_point(doc: dict[str, Any] | None, print_table_fn: Callable[[], None],
+               events: list[dict[str, Any]], *, recording: bool) -> None:
+    """Write one point's result: ``doc`` as a JSON line (with its ``alarm_transitions``,
+    alarm events as MQTT carries them, when recording), or the table and one line per
+    recorded transition when ``doc`` is None."""
     if doc is not None:
         if recording:
-            doc["alarm_transitions"] = [jsonable(t.to_json()) for t in transitions]
+            doc["alarm_transitions"] = [jsonable(e) for e in events]
         click.echo(json.dumps(doc, separators=(",", ":"), allow_nan=False))
         return
     print_table_fn()
-    for t in transitions:
-        click.echo(f"  recorded: mode_shift alarm {t.alarm_id} {t.name} ({t.severity})")
+    for e in events:
+        click.echo(f"  recorded: mode_shift alarm {e['id']} ({e['ref']}) {e['transition']} ({e['severity']})")
 
 
 def _with_point(registry: Registry, machine_id: str, point: Point | None) -> Registry:
@@ -469,7 +469,7 @@ def _bumptest(file: Path, total: int, registry: Registry | None, store: Any, mac
     for r in _results(hits, forces, registry, band, tolerance_pct, force_range, refused):
         for text in r.refused_hits():
             click.echo(f"warning: {file.name}: {text}", err=True)
-        transitions = []
+        transitions: list[dict[str, Any]] = []
         if store is not None and registry is not None:
             transitions = record_comparison(
                 store, registry.machine(r.machine), r.comparison, r.ts, r.point,

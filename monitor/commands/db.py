@@ -52,14 +52,15 @@ def resolve_database_url(database_url: str | None, config_file: str | None) -> s
 
 def open_store(database_url: str | None, config_file: str | None) -> Store:
     """Open the store for a command; ClickException with the fix when the schema is missing."""
-    return _open(resolve_database_url(database_url, config_file))
+    return _open(command_settings(database_url, config_file))
 
 
-def _open(url: str) -> Store:
+def _open(settings: Settings) -> Store:
     from monitor.store.db import Store, StoreError
 
     try:
-        return Store.open(url)
+        # A locked SQLite file is waited for as long as the settings say (database.busy_timeout_ms).
+        return Store.open(settings.database.url, busy_timeout_ms=settings.database.busy_timeout_ms)
     except StoreError as exc:
         raise click.ClickException(str(exc)) from exc
 
@@ -101,7 +102,7 @@ def thin_cmd(database_url: str | None, config_file: str | None) -> None:
     from monitor.store.retention import apply_retention
 
     settings = command_settings(database_url, config_file)
-    store = _open(settings.database.url)
+    store = _open(settings)
     try:
         with store.transaction() as session:
             result = apply_retention(session, settings.retention.policy())

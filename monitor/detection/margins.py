@@ -27,6 +27,7 @@ bandwidth (AF = Q ~= 1 / (2 zeta) for light damping).
 from __future__ import annotations
 
 import math
+import sys
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any, Literal, NamedTuple
@@ -61,7 +62,9 @@ def amplification_factor_from_damping(damping_ratio: float) -> float:
     z = float(damping_ratio)
     if not (math.isfinite(z) and 0.0 < z < 1.0):
         raise ValueError(f"damping_ratio must lie in (0, 1), got {damping_ratio!r}.")
-    return 1.0 / (2.0 * z)
+    # A damping ratio below about 1e-308 would give an infinite factor: the largest float
+    # says the same to every rule (API 684's margins are capped from AF 18.5) and stays JSON.
+    return min(1.0 / (2.0 * z), sys.float_info.max)
 
 
 def api684_required_margin(amplification_factor: float, side: Side) -> float:
@@ -178,8 +181,11 @@ def required_margin(mode: Mode, machine_default_pct: float | None = None) -> Req
     af = _af_of(mode)
     if af is not None:
         basis = "API 684 (AF)" if mode.amplification_factor is not None else "API 684 (AF from damping)"
+        # 1 / (2 zeta) is below 1 for a damping ratio above 0.5: no peak, and API 684 asks
+        # no margin below AF 2.5, as for AF 1.
+        rule_af = max(af, 1.0)
         return RequiredMargin(
-            api684_required_margin(af, "below"), api684_required_margin(af, "above"), basis, af
+            api684_required_margin(rule_af, "below"), api684_required_margin(rule_af, "above"), basis, af
         )
     if machine_default_pct is not None:
         return RequiredMargin(float(machine_default_pct), float(machine_default_pct), "machine default", None)

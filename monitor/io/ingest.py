@@ -57,16 +57,37 @@ def _is_number(value: Any) -> bool:
     return isinstance(value, int | float) and not isinstance(value, bool)
 
 
-def _finite_number(value: Any, name: str, type_reason: str, finite_reason: str) -> float:
+class _Spelled(float):
+    """A NaN or infinity the payload wrote as such (``NaN``, ``Infinity``, ``-Infinity``:
+    Python's JSON reader accepts them), as opposed to a decimal number too large for a
+    double (``1e400``), which the reader also turns into infinity."""
+
+
+def _loads(text: str) -> Any:
+    return json.loads(text, parse_constant=lambda name: _Spelled(name.replace("Infinity", "inf")))
+
+
+def _number(value: Any, name: str, type_reason: str, finite_reason: str) -> float:
+    """``value`` as a float: ``type_reason`` for no number, ``finite_reason`` for a NaN or
+    infinity the payload spelled out. A number beyond any double (``1e400``, ``10**400``
+    written out) comes back as a signed infinity, for the caller's range check to call
+    absurd: the sender wrote a number, only a wildly implausible one."""
     if not _is_number(value):
         raise Rejected(type_reason, f"'{name}' must be a number, got {_show(value)}.")
     try:
         v = float(value)
     except OverflowError:
-        v = math.inf
-    if not math.isfinite(v):
+        return math.inf if value > 0 else -math.inf
+    if math.isnan(v) or (math.isinf(v) and isinstance(value, _Spelled)):
         raise Rejected(finite_reason, f"'{name}' must be finite, got {_show(value)}.")
     return v
+
+
+def _shown_number(value: Any) -> str:
+    """A number as a rejection shows it; one beyond any double says so."""
+    if isinstance(value, float) and math.isinf(value):
+        return "a number beyond the range of a double"
+    return _show(value)
 
 
 def parse_ts(value: Any) -> float:
@@ -142,14 +163,14 @@ def _speed_hz(
             raise Rejected("speed_missing", f"the payload has neither '{hz_key}' nor '{rpm_key}'.")
         return None
     key = hz_key if has_hz else rpm_key
-    v = _finite_number(raw[key], key, "speed_type", "speed_not_finite")
+    v = _number(raw[key], key, "speed_type", "speed_not_finite")
     if v < 0:
         raise Rejected("speed_negative", f"'{key}' must not be negative, got {_show(raw[key])}.")
     hz = v if has_hz else v / 60.0
     if hz > limits.max_speed_hz:
         raise Rejected(
             "speed_absurd",
-            f"'{key}' = {_show(raw[key])} is above {limits.max_speed_hz:g} Hz "
+            f"'{key}' = {_shown_number(raw[key])} is above {limits.max_speed_hz:g} Hz "
             f"({limits.max_speed_hz * 60:g} r/min).",
         )
     return hz
@@ -169,6 +190,8 @@ def _samples_from_list(value: Any, limits: IngestLimits) -> np.ndarray:
         raise Rejected("samples_not_numeric", "'samples' must be a flat list of numbers.")
     arr = arr.astype(np.float64)
     if not np.isfinite(arr).all():
+        if any(type(x) is float and math.isinf(x) for x in value):  # 1e400: not spelled out
+            raise Rejected("samples_absurd", "'samples' holds a number beyond the range of a double.")
         raise Rejected("samples_not_finite", "'samples' holds NaN or infinite values.")
     return arr
 
@@ -235,7 +258,7 @@ def _once_per_rev(
         )
     times = np.empty(len(value))
     for i, v in enumerate(value):
-        times[i] = _finite_number(v, f"{key}[{i}]", "once_per_rev_invalid", "once_per_rev_invalid")
+        times[i] = _number(v, f"{key}[{i}]", "once_per_rev_invalid", "once_per_rev_invalid")
     duration = n_samples / fs_hz
     if times.size and not (times[0] >= 0.0 and times[-1] <= duration):
         bad = times[0] if times[0] < 0 else times[-1]
@@ -353,7 +376,7 @@ def decode_message(
     except UnicodeDecodeError:
         raise Rejected("not_utf8", "the payload is not UTF-8 text.") from None
     try:
-        raw = json.loads(text)
+        raw = _loads(text)
     except (ValueError, RecursionError):
         raise Rejected("not_json", "the payload is not JSON.") from None
     if not isinstance(raw, dict):
@@ -369,13 +392,13 @@ def decode_message(
     ts = _check_ts(raw, machine_id, point.id, t_now, last_ts, limits)
     if "fs" not in raw:
         raise Rejected("fs_missing", "the payload has no 'fs' (sample rate, Hz).")
-    fs = _finite_number(raw["fs"], "fs", "fs_type", "fs_not_finite")
+    fs = _number(raw["fs"], "fs", "fs_type", "fs_not_finite")
     if fs <= 0:
         raise Rejected("fs_not_positive", f"'fs' must be positive, got {_show(raw['fs'])}.")
     if not limits.min_fs_hz <= fs <= limits.max_fs_hz:
         raise Rejected(
             "fs_absurd",
-            f"'fs' = {fs:g} Hz is outside {limits.min_fs_hz:g}-{limits.max_fs_hz:g} Hz.",
+            f"'fs' = {_shown_number(fs)} Hz is outside {limits.min_fs_hz:g}-{limits.max_fs_hz:g} Hz.",
         )
     if "unit" not in raw:
         raise Rejected("unit_missing", "the payload has no 'unit'.")

@@ -45,11 +45,12 @@ class Publisher:
         self._client.on_publish = self._on_publish
 
     def _on_connect(self, _c: paho.Client, _u: Any, _f: Any, reason: Any, _p: Any) -> None:
-        if not reason.is_failure:
+        if self._client.connack(reason):
             self._connected.set()
 
-    def _on_disconnect(self, _c: paho.Client, _u: Any, _f: Any, _r: Any, _p: Any) -> None:
+    def _on_disconnect(self, _c: paho.Client, _u: Any, _f: Any, reason: Any, _p: Any) -> None:
         self._connected.clear()
+        self._client.closed(reason)
 
     @property
     def connected(self) -> bool:
@@ -67,7 +68,10 @@ class Publisher:
         connect_async(self._client, self.settings, persistent=False)
         self._client.loop_start()
         if not self._connected.wait(timeout_s):
-            raise MqttError(f"no connection to the broker at {self.settings.shown_url} within {timeout_s:g} s.")
+            why = self._client.failure or "no answer"
+            raise MqttError(
+                f"no connection to the broker at {self.settings.shown_url} within {timeout_s:g} s: {why}."
+            )
 
     def publish(
         self, topic: str, payload: bytes, *, retain: bool = False, timeout_s: float = 10.0,

@@ -25,6 +25,7 @@ from paho.mqtt.enums import CallbackAPIVersion
 from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
 
+from monitor.io.mqtt_failures import ReportingClient
 from monitor.io.mqtt_names import (
     BrokerAddress,
     MqttConfigError,
@@ -193,16 +194,34 @@ class MqttSettings:
 # ----------------------------------------------------------------------------- the client
 
 
+def _check_readable(settings: MqttSettings) -> None:
+    """MqttConfigError naming the setting and the path of a TLS file that cannot be read."""
+    for name, path in (("ca_file", settings.ca_file), ("cert_file", settings.cert_file),
+                       ("key_file", settings.key_file)):
+        if not path:
+            continue
+        try:
+            with open(path, "rb"):
+                pass
+        except OSError as exc:
+            why = (exc.strerror or str(exc)).lower()
+            raise MqttConfigError(f"broker.{name} {path!r} cannot be read: {why}.") from None
+
+
 def make_client(
     settings: MqttSettings, client_id: str, *, manual_ack: bool, persistent: bool
-) -> paho.Client:
+) -> ReportingClient:
     """A paho client for ``settings`` under ``client_id`` (empty: the broker or paho picks
-    one), with credentials, TLS, the reconnect back-off and Nagle's algorithm off.
+    one), with credentials, TLS, the reconnect back-off and Nagle's algorithm off; it says
+    why each connection attempt fails (:class:`~monitor.io.mqtt_failures.ReportingClient`).
+    MqttConfigError naming the setting and the path of a TLS file that cannot be read, or
+    the files when they hold no usable certificate or key.
 
     ``persistent`` keeps the session across connections (MQTT 3.1.1 sets that here;
     MQTT 5 at connect, :func:`connect_async`)."""
     v5 = settings.protocol == "5"
-    client = paho.Client(
+    client = ReportingClient(
+        shown_url=settings.shown_url,
         callback_api_version=CallbackAPIVersion.VERSION2,
         client_id=client_id,
         protocol=paho.MQTTv5 if v5 else paho.MQTTv311,
@@ -216,7 +235,13 @@ def make_client(
     if username is not None:
         client.username_pw_set(username, password)
     if address.tls:
-        client.tls_set(ca_certs=settings.ca_file, certfile=settings.cert_file, keyfile=settings.key_file)
+        _check_readable(settings)
+        try:
+            client.tls_set(ca_certs=settings.ca_file, certfile=settings.cert_file, keyfile=settings.key_file)
+        except (OSError, ValueError) as exc:  # ssl.SSLError: a file that is no PEM certificate or key
+            raise MqttConfigError(
+                f"the TLS files broker.ca_file, broker.cert_file, broker.key_file could not be loaded: {exc}."
+            ) from None
     # paho's stub types the delays as int; the back-off takes fractions of a second.
     client.reconnect_delay_set(settings.reconnect_min_s, settings.reconnect_max_s)  # type: ignore[arg-type]
     client.on_socket_open = no_delay

@@ -104,14 +104,13 @@ class MessageSource:
         self._client.on_disconnect = self._on_disconnect
         self._client.on_subscribe = self._on_subscribe
         self._client.on_message = self._on_message
+        self._client.on_failure = self._on_failure
 
     # -- paho network thread
 
     def _on_connect(self, client: paho.Client, _u: Any, flags: Any, reason: Any, _p: Any) -> None:
-        if reason.is_failure:
-            self.last_error = f"the broker refused the connection: {reason}"
-            log.warning("mqtt connect refused: %s", reason)
-            return
+        if not self._client.connack(reason):
+            return  # _on_failure has the reason
         with self._lock:
             self._connection += 1
             self.stats.connects += 1
@@ -137,6 +136,10 @@ class MessageSource:
         else:
             client.subscribe([(t, 1) for t in self.settings.subscriptions()])
 
+    def _on_failure(self, why: str) -> None:
+        with self._lock:
+            self.last_error = why
+
     def _on_subscribe(self, _c: paho.Client, _u: Any, _mid: int, reasons: Any, _p: Any) -> None:
         failed = [str(r) for r in reasons if r.is_failure]
         if failed:
@@ -147,7 +150,7 @@ class MessageSource:
 
     def _on_disconnect(self, _c: paho.Client, _u: Any, _f: Any, reason: Any, _p: Any) -> None:
         self._subscribed.clear()
-        if not self._stopping.is_set():
+        if not self._client.closed(reason) and not self._stopping.is_set():
             with self._lock:
                 self.disconnected_at = time.time()
                 self.last_error = f"connection lost: {reason}"

@@ -43,6 +43,10 @@ MAX_EXCITATION_ORDER = 1000.0
 MAX_LINE_FREQUENCY_HZ = 10_000.0
 #: Longest name, location or source text (the store's column width).
 MAX_TEXT = 200
+#: A text that is not blank holds a character outside this class: the characters Python's
+#: ``str.strip`` removes (``str.isspace``), written as a regular expression both Python and
+#: JSON Schema (ECMA-262) read alike, so dashboard/openapi.json states the same rule.
+NOT_BLANK = r"[^\t\n\u000b\f\r\u001c-\u001f \u0085\u00a0\u1680\u2000-\u200a\u2028\u2029\u202f\u205f\u3000]"
 
 
 def entry_label(machine_id: str | None, extra: str = "") -> str:
@@ -52,11 +56,21 @@ def entry_label(machine_id: str | None, extra: str = "") -> str:
     return f"{base}{extra}"
 
 
+def quoted(value: Any, limit: int = 60) -> str:
+    """A bad value as an error message quotes it: its repr, cut to ``limit`` characters
+    (a 400-digit number would drown the sentence)."""
+    text = repr(value)
+    return text if len(text) <= limit else text[: limit - 3] + "..."
+
+
 def number(value: Any, where: str, key: str) -> float:
     """``value`` as a finite float; RegistryError naming ``key`` otherwise."""
     if isinstance(value, bool) or not isinstance(value, int | float):
-        raise RegistryError(f"{where}: '{key}' must be a number, got {value!r}.")
-    v = float(value)
+        raise RegistryError(f"{where}: '{key}' must be a number, got {quoted(value)}.")
+    try:
+        v = float(value)
+    except OverflowError:  # a whole number beyond any float (JSON allows 10**400)
+        raise RegistryError(f"{where}: '{key}' is absurdly large, got {quoted(value)}.") from None
     if not math.isfinite(v):
         raise RegistryError(f"{where}: '{key}' must be a finite number, got {value!r}.")
     return v

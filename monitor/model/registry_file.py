@@ -27,6 +27,7 @@ from monitor.model.bounds import (
     entry_label,
     limits_mm_s,
     number,
+    quoted,
 )
 from monitor.model.detection_settings import DetectionSettings
 from monitor.model.registry import Machine, Mode, Point, Registry, RegistryError
@@ -137,9 +138,13 @@ def parse_mode(raw: Mapping[str, Any], machine_id: str | None = None) -> Mode:
     """Validate one mode table (strict: only :data:`MODE_KEYS`) and return a :class:`Mode`."""
     if not isinstance(raw, Mapping):
         raise RegistryError(f"{entry_label(machine_id)}: each mode must be a table, got {raw!r}.")
-    name = str(raw.get("name", "")).strip()
+    given = raw.get("name", "")
+    name = given.strip() if isinstance(given, str) else ""
     where = entry_label(machine_id, f", mode {name!r}" if name else ", a mode")
     _refuse_unknown(raw, MODE_KEYS, where, "mode")
+    for key in ("name", "source"):
+        if key in raw and not isinstance(raw[key], str):
+            raise RegistryError(f"{where}: '{key}' must be a string, got {quoted(raw[key])}.")
     if not name:
         raise RegistryError(f"{where}: 'name' is required.")
     if "frequency_hz" not in raw:
@@ -159,7 +164,7 @@ def parse_mode(raw: Mapping[str, Any], machine_id: str | None = None) -> Mode:
     return check_mode(Mode(
         name=name,
         frequency_hz=number(raw["frequency_hz"], where, "frequency_hz"),
-        source=str(raw.get("source", "")),
+        source=raw.get("source", ""),
         date=date,
         **optional,
     ), machine_id)

@@ -21,6 +21,7 @@ from monitor.detection.alarms import Transition
 from monitor.detection.stored_state import evaluator_from_state, stored_state
 from monitor.model.registry import Machine
 from monitor.modes.shift import ModeShift
+from monitor.service.payloads import alarm_events
 from monitor.store import Store
 from monitor.store.models import DetectorState
 from monitor.store.writes import record_transitions, save_detector_states
@@ -34,19 +35,22 @@ def record_mode_findings(
     *,
     point: str | None = None,
     evidence: Mapping[str, Any] | None = None,
-) -> list[Transition]:
+) -> list[dict[str, Any]]:
     """Apply ``findings`` of a test at ``ts`` (epoch s) to ``machine``'s stored detector
-    state and store the alarm transitions they cause; returns those transitions (often
-    none: a mode still within its tolerance with no alarm open changes nothing)."""
+    state and store the alarm transitions they cause; returns them as alarm events, the
+    shape published on MQTT (docs/schemas/alarm-event.json; often none: a mode still
+    within its tolerance with no alarm open changes nothing)."""
     with store.write_transaction() as s:
         stmt = select(DetectorState.state, DetectorState.ts).where(DetectorState.machine_id == machine.id)
         if s.get_bind().dialect.name == "postgresql":
             stmt = stmt.with_for_update()
         row = s.execute(stmt).one_or_none()
         evaluator, version = evaluator_from_state(machine, row.state if row is not None else None)
-        transitions = evaluator.observe_mode_findings(findings, ts, point=point, evidence=evidence)
-        if transitions:
-            record_transitions(s, transitions)
-            save_detector_states(s, {machine.id: (stored_state(evaluator, version + 1),
-                                                  row.ts if row is not None else None)})
-    return transitions
+        transitions: list[Transition] = evaluator.observe_mode_findings(findings, ts, point=point,
+                                                                        evidence=evidence)
+        if not transitions:
+            return []
+        ids = record_transitions(s, transitions)
+        save_detector_states(s, {machine.id: (stored_state(evaluator, version + 1),
+                                              row.ts if row is not None else None)})
+        return alarm_events(s, transitions, ids, [])

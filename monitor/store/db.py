@@ -327,6 +327,16 @@ def has_schema(engine: Engine) -> bool:
     return inspect(engine).has_table("measurements")
 
 
+def describe_database_error(exc: Exception) -> str:
+    """One sentence for a database error a command or a request met: the driver's own
+    first line (``database is locked``), never the statement or its parameters, which
+    SQLAlchemy's text of the error carries."""
+    orig = getattr(exc, "orig", None)
+    first = (str(orig) if orig is not None else type(exc).__name__).strip().splitlines()
+    reason = first[0].rstrip(".") if first else type(exc).__name__
+    return f"the database refused the request ({reason}); nothing was changed."
+
+
 def require_schema(engine: Engine) -> None:
     """Raise :class:`StoreError` when the schema is missing, saying how to create it."""
     if not has_schema(engine):
