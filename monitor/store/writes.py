@@ -1,17 +1,12 @@
-"""The service's writes: the rows of a batch of readings, alarm transitions, detector
-states and dead letters, each inside the caller's transaction (the caller commits).
+"""The service's writes, each inside the caller's transaction (the caller commits).
 
-The service's batch writer (monitor/service/batch.py) is the one writer of readings: it
-builds each reading's rows with :func:`measurement_values`, :func:`snapshot_rows` and
-:func:`speed_reading_values` and inserts a whole batch with :func:`insert_many_ignore`
-(``INSERT ... ON CONFLICT DO NOTHING``), so a redelivered message inserts nothing; alarm
-transitions go through :func:`record_transitions`, each machine's detector state through
-:func:`save_detector_states` and its passage trackers' through :func:`save_passage_trackers`;
-a sweep's passages are rows built by :func:`passage_values`. Two service processes racing on the same reading are
-serialised by the unique key the same way. The dashboard's one write here is
-:func:`acknowledge_alarm`.
+The service's batch writer (monitor/service/batch.py) is the one writer of readings: rows
+from :func:`measurement_values`, :func:`snapshot_rows`, :func:`speed_reading_values` and
+:func:`passage_values`, inserted with :func:`insert_many_ignore` (``INSERT ... ON CONFLICT
+DO NOTHING``: a redelivered or raced reading inserts nothing); :func:`record_transitions`,
+:func:`save_detector_states`, :func:`save_passage_trackers`. The dashboard's one write here
+is :func:`acknowledge_alarm`.
 """
-
 from __future__ import annotations
 
 import datetime as dt
