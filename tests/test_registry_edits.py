@@ -13,7 +13,7 @@ from pathlib import Path
 import pytest
 from click.testing import CliRunner
 from registry_api import Api, newest_evaluation, run_bounded, settings_for, waveforms
-from service_helpers import PLANT
+from service_helpers import PLANT, stored_evaluator_state
 from sqlalchemy import select, update
 
 from monitor.cli import main as cli
@@ -21,17 +21,12 @@ from monitor.config import load_settings
 from monitor.model.registry_file import load_registry
 from monitor.service.service import Service
 from monitor.store import Store
-from monitor.store.models import DetectorState, Mode, ModeHistory
+from monitor.store.models import Mode, ModeHistory
 
 
 def stored_baselines(url: str, machine: str) -> dict[tuple[str, str], int]:
-    store = Store.open(url)
-    try:
-        with store.session() as s:
-            state = s.scalar(select(DetectorState.state).where(DetectorState.machine_id == machine))
-    finally:
-        store.close()
-    return {(p, f): len(b["values"]) for p, f, b in state["evaluator"]["baselines"]}
+    """How many readings each (point, feature) baseline of ``machine`` holds, as stored."""
+    return {(p, f): len(b["values"]) for p, f, b in stored_evaluator_state(url, machine)["baselines"]}
 
 
 # ----------------------------------------------------------------------------- edits kept
