@@ -4,6 +4,8 @@
 plus these of our own (docs/security.md describes each and how to set it):
 
 - ``DATABASE_URL``: SQLAlchemy URL of the store (default ``sqlite:///whirlwatch.sqlite``).
+- ``DATABASE_BUSY_TIMEOUT_MS``: how long a write waits for SQLite's lock before the
+  request answers 503 (the settings' ``database.busy_timeout_ms``).
 - ``LOGIN_LIMIT_PER_ADDRESS`` / ``LOGIN_LIMIT_PER_ACCOUNT``: failed sign-ins allowed per
   client address and per account, as windows (dashboard/login_limits.py).
 - ``LOGIN_LIMIT_STORAGE_URL``: where those counts live: ``memory://`` (per process) or a
@@ -31,9 +33,11 @@ from flask_wtf.csrf import CSRFProtect
 from werkzeug.middleware.proxy_fix import ProxyFix
 
 from monitor.model.timefmt import plant_time, time_zone
+from monitor.store.db import DEFAULT_BUSY_TIMEOUT_MS
 
 DEFAULTS: dict[str, Any] = {
     "DATABASE_URL": "sqlite:///whirlwatch.sqlite",
+    "DATABASE_BUSY_TIMEOUT_MS": DEFAULT_BUSY_TIMEOUT_MS,
     # A guesser waits a minute, then an hour, then a day; OWASP ASVS 4.0.3 V2.2.1 allows
     # at most 100 failures per account and hour.
     "LOGIN_LIMIT_PER_ADDRESS": "10 per minute; 50 per hour; 200 per day",

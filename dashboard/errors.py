@@ -10,6 +10,10 @@ Exception tree::
      +-- Conflict            409  the change clashes with the stored state
      +-- TooManyAttempts     429  too many failed sign-ins (dashboard/login_limits.py)
 
+A database that is busy or unreachable (SQLAlchemy's OperationalError: SQLite's lock held
+past the busy timeout, PostgreSQL away) answers 503 ``database_unavailable`` with
+``Retry-After``: nothing was changed and the same request may be sent again.
+
 Requests under ``/api/`` get JSON in one fixed shape::
 
     {"error": {"status": 404, "code": "not_found", "message": "..."}}
@@ -24,6 +28,7 @@ from __future__ import annotations
 
 from flask import Flask, Response, jsonify, make_response, render_template, request
 from flask_wtf.csrf import CSRFError
+from sqlalchemy.exc import OperationalError
 from werkzeug.exceptions import HTTPException, MethodNotAllowed
 
 
@@ -79,6 +84,10 @@ _HTTP_CODES = {
     413: "too_large",
     429: "too_many_attempts",
 }
+#: Seconds a client is asked to wait after a 503 (RFC 9110, section 10.2.3): a little more
+#: than the store's busy timeout (monitor/store/db.py, DEFAULT_BUSY_TIMEOUT_MS).
+RETRY_AFTER_S = 15
+
 #: The code of an HTTP-layer error of any other status.
 OTHER_HTTP_CODE = "http_error"
 
@@ -88,6 +97,7 @@ CODES: dict[str, int | None] = {
     **{code: status for status, code in _HTTP_CODES.items()},
     "csrf_failed": 400,
     "internal_error": 500,
+    "database_unavailable": 503,
     OTHER_HTTP_CODE: None,
 }
 
@@ -130,6 +140,16 @@ def register(app: Flask) -> None:
         if isinstance(exc, MethodNotAllowed) and exc.valid_methods:
             # RFC 9110, section 15.5.6: a 405 answer lists the methods the target has.
             resp.headers["Allow"] = ", ".join(exc.valid_methods)
+        return resp
+
+    @app.errorhandler(OperationalError)
+    def _database_unavailable(exc: OperationalError):
+        from monitor.store.db import describe_database_error
+
+        app.logger.warning("database unavailable on %s: %s", request.path, describe_database_error(exc))
+        resp = _render(503, "database_unavailable",
+                       "The database is busy or unreachable; nothing was changed. Try again shortly.")
+        resp.headers["Retry-After"] = str(RETRY_AFTER_S)
         return resp
 
     @app.errorhandler(Exception)

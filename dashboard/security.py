@@ -20,6 +20,7 @@ from dataclasses import dataclass
 
 from flask import Flask, g, has_request_context, request, session
 from flask.sessions import SecureCookieSessionInterface
+from sqlalchemy.exc import OperationalError
 
 from dashboard.errors import Forbidden, Unauthorised
 from monitor.store.audit import Actor
@@ -137,7 +138,12 @@ def register(app: Flask) -> None:
             user = verify_api_token(s, token.strip())
             if user is None:
                 raise Unauthorised("The API token is not valid or has been revoked.")
-            s.commit()  # the time of use the store stamped
+            try:
+                s.commit()  # the time of use the store stamped
+            except OperationalError:
+                # The stamp is a convenience (to LAST_USE_RESOLUTION); a read must not fail
+                # because the service held SQLite's lock at that moment.
+                s.rollback()
             g.principal = Principal(user.id, user.name, user.role, "token")
             return
         uid = session.get("uid")

@@ -29,6 +29,7 @@ def app_config(settings: Settings) -> dict[str, Any]:
     d = settings.dashboard
     config: dict[str, Any] = {
         "DATABASE_URL": settings.database.url,
+        "DATABASE_BUSY_TIMEOUT_MS": settings.database.busy_timeout_ms,
         "BEHIND_TLS_PROXY": d.behind_tls_proxy,
         "LOGIN_LIMIT_STORAGE_URL": d.limiter_storage,
         "TIME_ZONE": d.time_zone,

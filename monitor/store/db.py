@@ -29,7 +29,7 @@ from pathlib import Path
 from typing import Any
 
 import orjson
-from sqlalchemy import Engine, create_engine, event, inspect
+from sqlalchemy import Connection, Engine, create_engine, event, inspect
 from sqlalchemy.engine import make_url
 from sqlalchemy.engine.url import URL
 from sqlalchemy.exc import ArgumentError, DisconnectionError
@@ -346,6 +346,22 @@ def require_schema(engine: Engine) -> None:
         )
 
 
+def hold_write_lock(connection: Connection) -> None:
+    """On SQLite, take the database's write lock for ``connection``'s transaction now, before
+    it reads anything; nothing on other databases.
+
+    A SQLite transaction that reads and then writes cannot wait for the lock: if another
+    process committed since its first read, SQLite fails the write at once with "database
+    is locked" (SQLITE_BUSY_SNAPSHOT; https://www.sqlite.org/isolation.html). A write that
+    matches no row takes the lock before any read, so the wait is the busy handler's.
+    (PostgreSQL serialises such writers on row locks taken by their own queries instead.)"""
+    if connection.dialect.name == "sqlite":
+        # Through SQLAlchemy, so a lock or disk error arrives wrapped as its
+        # OperationalError, which the service retries (a raw driver error was taken for a
+        # bad reading and set aside).
+        connection.exec_driver_sql("UPDATE detector_state SET machine_id = machine_id WHERE 0")
+
+
 class Store:
     """An engine and its session factory: what the service and the dashboard hold.
 
@@ -390,20 +406,9 @@ class Store:
     def write_transaction(self) -> Iterator[Session]:
         """:meth:`transaction` for a writer that reads before it writes (the service, a
         recorded test): queued at :meth:`writer_gate`, and on SQLite holding the
-        database's write lock from the start.
-
-        A SQLite transaction that reads and then writes cannot wait for the lock: if
-        another process committed since its first read, SQLite fails the write at once with
-        "database is locked". A write that matches no row takes the lock before any read,
-        so the wait is the busy handler's. (PostgreSQL serialises such writers on row locks
-        taken by their own queries instead.)"""
+        database's write lock from the start (:func:`hold_write_lock`)."""
         with self.writer_gate(), self.transaction() as session:
-            if self.engine.dialect.name == "sqlite":
-                # Through SQLAlchemy, so a lock or disk error arrives wrapped as its
-                # OperationalError, which the service retries (a raw driver error was taken
-                # for a bad reading and set aside).
-                session.connection().exec_driver_sql(
-                    "UPDATE detector_state SET machine_id = machine_id WHERE 0")
+            hold_write_lock(session.connection())
             yield session
 
     def writer_gate(self) -> Any:
