@@ -137,7 +137,7 @@ def test_the_api_answers_a_write_it_cannot_make_in_one_sentence(tmp_path: Path) 
             token = create_api_token(s, "eng", "lock test")
     finally:
         store.close()
-    app = make_app(url)
+    app = make_app(url, DATABASE_BUSY_TIMEOUT_MS=200)
     app.testing = False
     client = app.test_client()
     h = {"Authorization": f"Bearer {token}"}
@@ -150,7 +150,9 @@ def test_the_api_answers_a_write_it_cannot_make_in_one_sentence(tmp_path: Path) 
         lock.close()
         app.extensions["whirlwatch_engine"].dispose()
     body = resp.get_json()
-    assert resp.status_code == 500 and body["error"]["code"] == "internal_error", resp.get_data(as_text=True)
+    # RFC 9110, section 15.6.4: a temporary condition is 503, with Retry-After (10.2.3).
+    assert resp.status_code == 503 and body["error"]["code"] == "database_unavailable", resp.get_data(as_text=True)
+    assert int(resp.headers["Retry-After"]) > 0
     text = resp.get_data(as_text=True)
-    assert body["error"]["message"] == "The server hit an unexpected error."
+    assert body["error"]["message"] == "The database is busy or unreachable; nothing was changed. Try again shortly."
     assert "INSERT" not in text and "parameters" not in text and "Traceback" not in text
