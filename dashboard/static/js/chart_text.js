@@ -27,7 +27,9 @@ const ChartText = (function () {
     return axis || u.series[0].label || "x";
   }
 
-  // "<label> <min> to <max>" of one series, or "<label> no data".
+  function lowerFirst(text) { return text.charAt(0).toLowerCase() + text.slice(1); }
+
+  // "<label> <min> to <max> at <x of max>" of one series, or "<label> no data".
   function range(u, si) {
     const ys = u.data[si];
     let lo = -1, hi = -1;
@@ -39,15 +41,16 @@ const ChartText = (function () {
     }
     const name = u.series[si].label;
     if (lo < 0) return name + " no data";
-    return lo === hi ? name + " " + cell(u, si, lo) : name + " " + cell(u, si, lo) + " to " + cell(u, si, hi);
+    if (ys[lo] === ys[hi]) return name + " " + cell(u, si, lo);
+    return name + " " + cell(u, si, lo) + " to " + cell(u, si, hi) + " at " + cell(u, 0, hi);
   }
 
   // The accessible name: what the chart plots, over what span, and each series' range.
   function summary(target, u, marks) {
     const n = u.data[0].length;
     const names = u.series.slice(1).map(s => s.label);
-    const span = n ? cell(u, 0, 0) + " to " + cell(u, 0, n - 1) : "no points";
-    const parts = [title(target) + ": " + names.join(", ") + " against " + xName(u) + ", " + n + " points, " + span + "."];
+    const span = n ? " (" + cell(u, 0, 0) + " to " + cell(u, 0, n - 1) + ")" : "";
+    const parts = [title(target) + ": " + names.join(", ") + " against " + lowerFirst(xName(u)) + span + ", " + n + " points."];
     parts.push(u.series.slice(1).map((s, k) => range(u, k + 1)).join("; ") + ".");
     if (marks.length) parts.push("Also drawn: " + marks.join("; ") + ".");
     parts.push("The data is in the table after the chart.");

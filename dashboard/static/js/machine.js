@@ -56,7 +56,9 @@
 
   // The mode bands as text, for the charts' text alternatives.
   function modeMarks() {
-    return machine.modes.map(mo => "shaded band of mode " + mo.name + " at " + WW.num(mo.frequency_hz, 2) + " Hz (margins in the separation margins table)");
+    if (!machine.modes.length) return [];
+    return ["shaded, each mode with its required separation margins (the separation margins table): " +
+      machine.modes.map(mo => mo.name + " " + WW.num(mo.frequency_hz, 2) + " Hz").join(", ")];
   }
 
   function requiredPct(modeName) {
@@ -117,7 +119,7 @@
       height: 300,
       scales: { x: { time: false } },
       cursor: { drag: { x: true, y: false } },
-      series: [{ label: "Hz", value: (u, v) => WW.num(v, 2) }, { label: sp.point + " " + sp.kind, stroke: "#3d405b", width: 1, value: (u, v) => WW.num(v, 4) + " " + sp.unit }],
+      series: [{ label: "frequency", value: (u, v) => WW.num(v, 2) + " Hz" }, { label: sp.point + " " + sp.kind, stroke: "#3d405b", width: 1, value: (u, v) => WW.num(v, 4) + " " + sp.unit }],
       axes: [{ label: "Frequency, Hz" }, { label: sp.unit + " " + sp.scaling, size: 70 }],
       hooks: { drawClear: [modeBands("x")], draw: [drawMarkers] },
     }, [sp.freq_hz, sp.amplitude], modeMarks().concat(markers.map(m => "dashed line " + m.label + " at " + WW.num(m.hz, 2) + " Hz")));
