@@ -74,9 +74,9 @@ def browser():
         b.close()
 
 
-def _new_page(browser, server, user: str | None):
-    """A page in a fresh context, signed in as ``user`` (None: anonymous)."""
-    ctx = browser.new_context(viewport={"width": 1400, "height": 1000})
+def _new_page(browser, server, user: str | None, width: int = 1400):
+    """A page ``width`` CSS px wide in a fresh context, signed in as ``user`` (None: anonymous)."""
+    ctx = browser.new_context(viewport={"width": width, "height": 1000})
     page = ctx.new_page()
     page.errors = []
     page.on("console", lambda m: page.errors.append(m.text) if m.type == "error" else None)
@@ -138,7 +138,12 @@ PAGES = {
     "audit": ("ada", lambda p, s: p.goto(s + "/audit/"), {"audit.index"}),
     "password": ("vic", lambda p, s: p.goto(s + "/account/password"), {"auth.change_password"}),
     "error": ("vic", lambda p, s: p.goto(s + "/machines/no-such-machine"), set()),
+    # The phone layout (tables as cards, the header on two rows, site.css).
+    "overview-phone": ("ada", lambda p, s: p.goto(s + "/"), set()),
+    "alarms-phone": ("eng", lambda p, s: p.goto(s + "/alarms/"), set()),
 }
+#: Viewport width of a common phone, CSS px (as tests/test_browser_layout.py).
+PHONE_PX = 390
 #: Pages that answer with an error status, which the browser logs as a console error.
 STATUS = {"login-failed": 401, "error": 404}
 #: GET routes that answer with no page of their own.
@@ -157,7 +162,7 @@ def test_every_page_of_the_dashboard_is_checked():
 @pytest.mark.parametrize("name", list(PAGES))
 def test_no_serious_or_critical_axe_violations(browser, server, axe, name):
     user, go, _ = PAGES[name]
-    page = _new_page(browser, server, user)
+    page = _new_page(browser, server, user, PHONE_PX if name.endswith("-phone") else 1400)
     try:
         go(page, server)
         page.wait_for_load_state("networkidle")
