@@ -10,7 +10,9 @@
 
   function width(target) { return Math.max(320, target.clientWidth - 4); }
 
-  function put(id, opts, data) {
+  // Draw a chart into element ``id`` and give it its text alternative (chart_text.js);
+  // marks: what it draws besides its series, as short text.
+  function put(id, opts, data, marks) {
     const target = document.getElementById(id);
     if (charts[id]) charts[id].destroy();
     target.replaceChildren();
@@ -20,6 +22,7 @@
     target.dataset.series = opts.series.slice(1).map(s => s.label).join("|");
     target.dataset.xLast = data[0].length ? data[0][data[0].length - 1] : "";
     target.dataset.drawn = "1";
+    ChartText.attach(target, charts[id], marks);
     return charts[id];
   }
 
@@ -51,6 +54,13 @@
     };
   }
 
+  // The mode bands as text, for the charts' text alternatives.
+  function modeMarks() {
+    if (!machine.modes.length) return [];
+    return ["shaded, each mode with its required separation margins (the separation margins table): " +
+      machine.modes.map(mo => mo.name + " " + WW.num(mo.frequency_hz, 2) + " Hz").join(", ")];
+  }
+
   function requiredPct(modeName) {
     const rows = machine.margins.filter(r => r.mode === modeName);
     if (!rows.length) return 10;
@@ -75,7 +85,7 @@
       series: [{}].concat(orders.map((o, i) => ({ label: o + "x", stroke: WW.palette[i % WW.palette.length], width: 2, value: (u, v) => WW.num(v, 2) + " Hz" }))),
       axes: [{}, { label: "Frequency, Hz", size: 60 }],
       hooks: { drawClear: [modeBands("y")] },
-    }, data);
+    }, data, modeMarks());
   }
 
   function noData(id, text) {
@@ -83,6 +93,7 @@
     if (charts[id]) { charts[id].destroy(); delete charts[id]; }
     t.replaceChildren(el("p", { class: "empty" }, text || "No readings in this time range."));
     t.dataset.drawn = "0";
+    ChartText.clear(t);
   }
 
   function drawSpectrum(sp, caption) {
@@ -108,10 +119,10 @@
       height: 300,
       scales: { x: { time: false } },
       cursor: { drag: { x: true, y: false } },
-      series: [{ label: "Hz", value: (u, v) => WW.num(v, 2) }, { label: sp.point + " " + sp.kind, stroke: "#3d405b", width: 1, value: (u, v) => WW.num(v, 4) + " " + sp.unit }],
+      series: [{ label: "frequency", value: (u, v) => WW.num(v, 2) + " Hz" }, { label: sp.point + " " + sp.kind, stroke: "#3d405b", width: 1, value: (u, v) => WW.num(v, 4) + " " + sp.unit }],
       axes: [{ label: "Frequency, Hz" }, { label: sp.unit + " " + sp.scaling, size: 70 }],
       hooks: { drawClear: [modeBands("x")], draw: [drawMarkers] },
-    }, [sp.freq_hz, sp.amplitude]);
+    }, [sp.freq_hz, sp.amplitude], modeMarks().concat(markers.map(m => "dashed line " + m.label + " at " + WW.num(m.hz, 2) + " Hz")));
     document.getElementById("spectrum-caption").textContent = caption || ("latest, " + WW.when(sp.ts));
   }
 
@@ -139,10 +150,11 @@
         value: (u, v, si, i) => (i === null || raw[i] === null ? "–" : WW.num(raw[i], 2) + " mm/s RMS (" + p.flags[i].join(", ") + ")") });
       data.push(raw.map(v => (v === null ? null : Math.min(v, top * 0.98))));
     }
-    const zoneColours = ["#7ea33a", "#d19a00", "#b3261e"];
+    // Darker than the zone tags' fills: lines on white need 3:1 (WCAG 2.1 SC 1.4.11).
+    const zoneColours = ["#5f8a1f", "#a87a00", "#b3261e"];
     ["A/B", "B/C", "C/D"].forEach((name, i) => {
       if (lim[i] === undefined) return;
-      series.push({ label: name, stroke: zoneColours[i], dash: [6, 4], width: 1.5, points: { show: false } });
+      series.push({ label: name, stroke: zoneColours[i], dash: [6, 4], width: 1.5, points: { show: false }, value: (u, v) => WW.num(v, 2) + " mm/s RMS" });
       data.push(flat(lim[i]));
     });
     if (base.overall) {
@@ -285,7 +297,7 @@
     const box = document.getElementById("alarm-evidence");
     box.hidden = false;
     box.replaceChildren(el("h3", {}, "Alarm " + a.id + ": " + a.kind.replace(/_/g, " ") + " " + a.subject),
-      el("table", { class: "grid" }, el("thead", {}, el("tr", {}, el("th", {}, "When"), el("th", {}, "Step"), el("th", {}, "Severity"), el("th", {}, "By"), el("th", {}, "Evidence"), el("th", {}, ""))),
+      el("table", { class: "grid" }, el("thead", {}, el("tr", {}, el("th", {}, "When"), el("th", {}, "Step"), el("th", {}, "Severity"), el("th", {}, "By"), el("th", {}, "Evidence"), el("th", {}, el("span", { class: "visually-hidden" }, "Spectrum")))),
         el("tbody", {}, a.transitions.map(t => el("tr", {},
           el("td", {}, WW.when(t.at)), el("td", {}, t.transition), el("td", {}, WW.severityTag(t.severity)), el("td", {}, t.user || ""),
           el("td", {}, el("pre", {}, JSON.stringify(t.evidence, null, 1))),
