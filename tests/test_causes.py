@@ -27,7 +27,7 @@ from service_helpers import message, offline_service, plant_store, traffic
 from sqlalchemy import select
 
 from monitor.detection.causes import CAUTION, machine_hints
-from monitor.detection.symptoms import point_symptoms
+from monitor.detection.symptoms import LINE_PRESENT_DB, point_symptoms, read_line
 from monitor.sim.fault_cases import (
     FAULT_CASES,
     SPEED_HZ,
@@ -259,3 +259,21 @@ def test_the_healthy_blower_of_the_demo_plant_gets_no_hint(tmp_path):
     _through_service(url, "ab-1")
     assert _detail(url, "ab-1")["likely_causes"]["hints"] == []
     assert math.isfinite(_detail(url, "ab-1")["points"][0]["latest"]["overall_mm_s_rms"])
+
+
+def test_a_line_reads_as_rms_with_its_prominence():
+    # a sinusoid's RMS is its peak over sqrt 2; prominence 20 log10(line / floor) dB
+    f = np.arange(2048) * 0.5
+    amp = np.full(f.size, 0.02)
+    amp[200] = 2.0 * math.sqrt(2.0)  # 100 Hz, mm/s peak
+    line = read_line(f, amp, 100.4)
+    assert line is not None and line.hz == 100.0
+    assert line.mm_s_rms == pytest.approx(2.0)
+    assert line.prominence_db == pytest.approx(20 * math.log10(2.0 * math.sqrt(2.0) / 0.02))
+    assert line.present and LINE_PRESENT_DB == 10.0
+    # a random floor bin exceeds 10 dB over its median with probability 2^-10 (Rayleigh)
+    rng = np.random.default_rng(1)
+    noise = np.hypot(rng.normal(size=200_000), rng.normal(size=200_000))
+    share = np.mean(noise > math.sqrt(10.0) * np.median(noise))
+    assert share == pytest.approx(2.0 ** -10, rel=0.25)
+    assert read_line(f, amp, 5000.0) is None  # above the spectrum

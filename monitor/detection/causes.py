@@ -101,6 +101,11 @@ def _pct(x: float) -> str:
     return f"{100.0 * x:.0f} %"
 
 
+def _of_1x(ratio: float) -> str:
+    """A ratio to 1x in words: a percentage up to twice 1x, then times 1x."""
+    return f"{_pct(ratio)} of 1x" if ratio < 2.0 else f"{ratio:.1f} times 1x"
+
+
 def _mm(x: float) -> str:
     return f"{x:.2f} mm/s RMS"
 
@@ -166,7 +171,7 @@ def misalignment(ps: PointSymptoms) -> Hint | None:
         return Hint(
             "misalignment", "Misalignment", ps.point,
             f"Axial vibration {_where(ps)} is {_mm(ps.overall_mm_s_rms or 0.0)}, above the zone B/C boundary; 1x is "
-            f"{_mm(one)}, 2x {_mm(two)} ({_pct(ratio)} of 1x){_growth(ps, '2x')}.",
+            f"{_mm(one)}, 2x {_mm(two)} ({_of_1x(ratio)}){_growth(ps, '2x')}.",
             "high" if ratio >= MISALIGNMENT_2X_RATIO else "medium",
             "high when the axial level is in zone C or D with 2x at least "
             f"{_pct(MISALIGNMENT_2X_RATIO)} of 1x; medium when 1x alone dominates it.",
@@ -175,7 +180,7 @@ def misalignment(ps: PointSymptoms) -> Hint | None:
         return None
     return Hint(
         "misalignment", "Misalignment", ps.point,
-        f"2x is {_mm(two)} at {2 * ps.speed_hz:.2f} Hz {_where(ps)}, {_pct(ratio)} of 1x "
+        f"2x is {_mm(two)} at {2 * ps.speed_hz:.2f} Hz {_where(ps)}, {_of_1x(ratio)} "
         f"({_mm(one)}){_growth(ps, '2x')}.",
         "medium",
         f"medium when 2x is at least {_pct(MISALIGNMENT_2X_RATIO)} of 1x at a radial point; high "
@@ -278,7 +283,7 @@ def electrical(ps: PointSymptoms) -> Hint | None:
     return Hint(
         "electrical", "Electrically induced vibration", ps.point,
         f"A line at twice the {f_line:g} Hz supply ({line.hz:.2f} Hz) {_where(ps)} is "
-        f"{_mm(line.mm_s_rms)}, {_pct(ratio)} of 1x, {line.prominence_db:.0f} dB over its floor.",
+        f"{_mm(line.mm_s_rms)}, {_of_1x(ratio)}, {line.prominence_db:.0f} dB over its floor.",
         "high" if ratio >= 1.0 else "medium",
         "high when the twice-line-frequency line reaches 1x; medium from "
         f"{_pct(ELECTRICAL_2F_FRACTION)} of 1x.",
