@@ -109,8 +109,7 @@ def insert_ignore(
 # ----------------------------------------------------------------------------- readings
 
 
-def orders_json(analysis: ReadingAnalysis) -> list[dict[str, Any]]:
-    """The stored order rows of a reading (order, Hz, native and mm/s peak, phase)."""
+def orders_json(analysis: ReadingAnalysis) -> list[dict[str, Any]]:  # the stored order rows
     return [
         {
             "order": _num(o.order),
@@ -375,11 +374,9 @@ def record_transitions(
     ``alarm_transitions``, inside the caller's transaction.
 
     ``spectrum_snapshot_id`` (the velocity spectrum kept as evidence) goes into each
-    transition's row and evidence, ``spectra`` (every spectrum kept or referred to as
-    evidence: ``point``, ``kind``, ``spectrum_id``, ``ts``, ``age_s``) into its evidence
-    as ``spectra`` (docs/alarms.md, "Evidence spectra"); ``hints`` (the likely-cause hints of
-    the reading, monitor/detection/causes.py) into the evidence of its amplitude-growth
-    transitions (docs/diagnosis.md).
+    transition's row and evidence, ``spectra`` (every spectrum kept or referred to: ``point``,
+    ``kind``, ``spectrum_id``, ``ts``, ``age_s``) into its evidence (docs/alarms.md, "Evidence
+    spectra"), ``hints`` into that of growth transitions (docs/diagnosis.md).
 
     An alarm is identified by (machine, point, kind, subject); a transition opens a new alarm row when none of that identity is open
     (state not ``cleared``). A transition already stored (same alarm identity, name and
