@@ -322,7 +322,9 @@ def flow(ps: PointSymptoms, pass_orders: Iterable[float]) -> Hint | None:
 
 def resonance(margins: Sequence[Mapping[str, Any]], points: Sequence[PointSymptoms]) -> Hint | None:
     """The tightest excitation inside its required separation margin from a mode."""
-    inside = [r for r in margins if r.get("status") == "inside"]
+    # rows as MarginRow.to_json writes them; a stored row missing a number takes no part
+    inside = [r for r in margins if r.get("status") == "inside" and all(
+        isinstance(r.get(k), int | float) for k in ("margin_pct", "required_pct", "excitation_hz", "mode_hz"))]
     if not inside:
         return None
     r = min(inside, key=lambda x: float(x["margin_pct"]) - float(x["required_pct"]))
