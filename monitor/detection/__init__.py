@@ -16,7 +16,8 @@
 - ``alarms``: the alarm engine (persistence, hysteresis, acknowledgement);
 - ``state_json``: exact JSON of the detector state and its format versions;
 - ``stored_state``: the detector state as the store keeps it;
-- ``kernels``: numba kernels for the hot loops (Theil-Sen selection, block scan).
+- ``kernels``: numba kernels for the hot loops (Theil-Sen selection, block scan);
+- ``symptoms`` and ``causes``: the likely-cause hints of a reading (docs/diagnosis.md).
 
 Detection settings are keys of a machine's registry table
 (:class:`monitor.model.detection_settings.DetectionSettings`, docs/alarms.md).

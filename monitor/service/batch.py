@@ -130,7 +130,7 @@ def commit_batch(core: Core, items: Sequence[Item], *, check_all: bool = True) -
             insert_rows(c, rows)
             insert_passages(c, found)
             analysed = [it.analysis for it in fresh if isinstance(it, WaveformMessage) and it.analysis is not None]
-            outcomes.update(record_alarms(s, evaluated, taken.outside, core.latest, analysed))
+            outcomes.update(record_alarms(s, evaluated, taken.outside, core.latest, analysed, taken.evaluators))
             core.states.save(c, touched)
             attach_statuses(evaluated, outcomes, taken.evaluators, core.board)
     core.states.saved(touched)
@@ -274,10 +274,12 @@ def insert_rows(conn: Connection, rows: BatchRows) -> None:
 
 
 def record_alarms(s: Session, evaluated: Sequence[Evaluated], outside: Mapping[str, list[Transition]],
-                  latest: evidence.LatestSpectra, analysed: Sequence[ReadingAnalysis]) -> dict[Item, Outcome]:
+                  latest: evidence.LatestSpectra, analysed: Sequence[ReadingAnalysis],
+                  evaluators: Mapping[str, MachineEvaluator]) -> dict[Item, Outcome]:
     """Record the alarm transitions in arrival order, each with its evidence spectra
     (monitor/service/evidence.py: a waveform's own; for a speed message the machine's
-    latest, from ``latest`` and the batch's ``analysed`` readings); the outcome of each
+    latest, from ``latest`` and the batch's ``analysed`` readings) and, for a waveform's
+    growth transitions, the reading's likely-cause hints; the outcome of each
     reading carries its alarm events, the first reading of a machine also those made
     outside the readings (``outside``)."""
     out: dict[Item, Outcome] = {}
@@ -286,12 +288,16 @@ def record_alarms(s: Session, evaluated: Sequence[Evaluated], outside: Mapping[s
         it, trans = e.item, e.transitions
         ids: list[int] = []
         if trans:
+            hints = None
             if isinstance(it, WaveformMessage):
                 kept = evidence.Evidence() if it.analysis is None else evidence.for_reading(s, it.analysis, trans)
+                if it.analysis is not None and evidence.moves_growth_alarm(trans):
+                    hints = evidence.reading_hints(it.analysis, e.evaluation, evaluators[it.machine].machine)
             else:
                 kept = evidence.for_speed(s, it.machine, it.reading.ts,
                                           latest.newest(it.machine, it.reading.ts, analysed))
-            ids = record_transitions(s, trans, spectrum_snapshot_id=kept.spectrum_id, spectra=kept.spectra)
+            ids = record_transitions(s, trans, spectrum_snapshot_id=kept.spectrum_id, spectra=kept.spectra,
+                                     hints=hints)
         mine = [] if it.machine in announced else outside.get(it.machine, [])
         announced.add(it.machine)
         kind = OutcomeKind.WAVEFORM if isinstance(it, WaveformMessage) else OutcomeKind.SPEED

@@ -23,11 +23,16 @@ from sqlalchemy.orm import Session
 
 from monitor.analysis.waveform import ReadingAnalysis, Spectrum
 from monitor.detection.alarms import Transition
+from monitor.detection.causes import machine_hints
+from monitor.detection.results import ReadingEvaluation
+from monitor.detection.symptoms import bearing_orders, point_symptoms
+from monitor.model.registry import Machine
 from monitor.model.timefmt import iso_utc
 from monitor.store import reads
 from monitor.store.writes import (
     keep_evidence_snapshots,
     mark_evidence,
+    orders_json,
     snapshot_rows,
     spectrum_row,
     to_datetime,
@@ -53,6 +58,32 @@ def moves_bearing_alarm(transitions: Sequence[Transition]) -> bool:
     """Whether any of ``transitions`` is of a bearing defect line's growth alarm."""
     return any(t.kind == "amplitude_growth" and str(t.alarm.get("subject", "")).startswith(BEARING_SUBJECT_PREFIX)
                for t in transitions)
+
+
+def moves_growth_alarm(transitions: Sequence[Transition]) -> bool:
+    """Whether any of ``transitions`` is of an amplitude-growth alarm (bearing lines included)."""
+    return any(t.kind == "amplitude_growth" for t in transitions)
+
+
+def reading_hints(analysis: ReadingAnalysis, evaluation: ReadingEvaluation | None,
+                  machine: Machine) -> list[dict[str, Any]]:
+    """The likely-cause hints of one reading (docs/diagnosis.md), for the evidence of its
+    growth transitions: measured from the reading's stored forms (order rows, growth
+    features, zone limits, margin table) and its velocity spectrum, as the dashboard
+    measures a stored reading (monitor/store/reads/machines.py)."""
+    point = machine.point(analysis.point)
+    ev = evaluation.to_json() if evaluation is not None else {}
+    spectrum = analysis.velocity_spectrum
+    ps = point_symptoms(
+        analysis.point, point.direction, speed_hz=analysis.speed_hz,
+        overall_mm_s_rms=analysis.overall_velocity_mm_s_rms,
+        zone_limits_mm_s=ev.get("zone_limits_mm_s"), orders=orders_json(analysis),
+        features=ev.get("features") or (), spectrum=(spectrum.freq_hz, spectrum.amplitude),
+        spectrum_ts=analysis.ts, line_frequency_hz=machine.line_frequency_hz,
+        bearing_orders=bearing_orders(machine.settings))
+    margins = ev.get("margins") or ()
+    hints = machine_hints([ps] if ps is not None else [], margins, machine.excitation_orders)
+    return [h.to_json() for h in hints]
 
 
 def _entry(point: str, kind: str, spectrum_id: int, spectrum_ts: float, at: float) -> dict[str, Any]:

@@ -109,7 +109,7 @@ def insert_ignore(
 # ----------------------------------------------------------------------------- readings
 
 
-def _orders_json(analysis: ReadingAnalysis) -> list[dict[str, Any]]:
+def orders_json(analysis: ReadingAnalysis) -> list[dict[str, Any]]:  # the stored order rows
     return [
         {
             "order": _num(o.order),
@@ -187,7 +187,7 @@ def measurement_values(
         "speed_uncertainty_hz": _num(analysis.speed_uncertainty_hz),
         "overall_velocity_mm_s_rms": _num(analysis.overall_velocity_mm_s_rms),
         "one_x_normalised": _num(analysis.one_x_normalised),
-        "orders": _orders_json(analysis),
+        "orders": orders_json(analysis),
         "peaks": [{"hz": _num(p.hz), "amplitude": _num(p.amplitude)} for p in analysis.peaks],
         "zone": zone,
         "health": jsonable(health),
@@ -368,14 +368,15 @@ def record_transitions(
     *,
     spectrum_snapshot_id: int | None = None,
     spectra: Sequence[Mapping[str, Any]] = (),
+    hints: Sequence[Mapping[str, Any]] | None = None,
 ) -> list[int]:
     """Apply the detectors' alarm transitions to the ``alarms`` rows and append them to
     ``alarm_transitions``, inside the caller's transaction.
 
     ``spectrum_snapshot_id`` (the velocity spectrum kept as evidence) goes into each
-    transition's row and evidence, ``spectra`` (every spectrum kept or referred to as
-    evidence: ``point``, ``kind``, ``spectrum_id``, ``ts``, ``age_s``) into its evidence
-    as ``spectra`` (docs/alarms.md, "Evidence spectra").
+    transition's row and evidence, ``spectra`` (every spectrum kept or referred to: ``point``,
+    ``kind``, ``spectrum_id``, ``ts``, ``age_s``) into its evidence (docs/alarms.md, "Evidence
+    spectra"), ``hints`` into that of growth transitions (docs/diagnosis.md).
 
     An alarm is identified by (machine, point, kind, subject); a transition opens a new alarm row when none of that identity is open
     (state not ``cleared``). A transition already stored (same alarm identity, name and
@@ -408,6 +409,8 @@ def record_transitions(
             evidence["spectrum_snapshot_id"] = spectrum_snapshot_id
         if isinstance(evidence, dict) and spectra:
             evidence["spectra"] = [dict(x) for x in spectra]
+        if isinstance(evidence, dict) and hints is not None and t.kind == "amplitude_growth":
+            evidence["hints"] = [dict(x) for x in hints]
         if alarm is None:
             alarm = Alarm(
                 ref=t.ref,

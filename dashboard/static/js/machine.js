@@ -190,6 +190,31 @@
     document.getElementById("fact-orders").textContent = orderList().map(o => o + "x").join(", ") || "–";
   }
 
+  // Likely-cause hints (monitor/detection/causes.py): the machine's summary and a growth
+  // alarm's evidence show them alike.
+  function hintList(hints) {
+    return hints.map(h => el("article", { class: "cause-item", "data-cause": h.cause },
+      el("h3", {}, h.title, " ", el("span", { class: "cause-confidence" }, h.confidence + " confidence")),
+      el("p", {}, h.symptom),
+      el("p", {}, el("strong", {}, "What to check next. "), h.check_next),
+      el("details", {}, el("summary", {}, "Rule and source"),
+        el("p", {}, el("strong", {}, "Confidence: "), h.confidence_rule),
+        el("p", {}, el("strong", {}, "Source: "), h.source))));
+  }
+
+  function renderCauses() {
+    const lc = machine.likely_causes;
+    const box = document.getElementById("causes-list");
+    if (!lc.hints.length) {
+      box.replaceChildren(el("p", { class: "empty" }, lc.readings.length
+        ? "No likely cause: the latest readings show none of the patterns the hints look for."
+        : "No readings yet."));
+    } else {
+      box.replaceChildren(...hintList(lc.hints));
+    }
+    document.getElementById("causes-caution").textContent = lc.caution;
+  }
+
   function renderMargins() {
     const tb = document.querySelector("#margins-table tbody");
     if (!machine.margins.length) { tb.replaceChildren(el("tr", {}, el("td", { colspan: 5, class: "empty" }, "No running speed or no modes yet."))); return; }
@@ -300,7 +325,7 @@
       el("table", { class: "grid" }, el("thead", {}, el("tr", {}, el("th", {}, "When"), el("th", {}, "Step"), el("th", {}, "Severity"), el("th", {}, "By"), el("th", {}, "Evidence"), el("th", {}, el("span", { class: "visually-hidden" }, "Spectrum")))),
         el("tbody", {}, a.transitions.map(t => el("tr", {},
           el("td", {}, WW.when(t.at)), el("td", {}, t.transition), el("td", {}, WW.severityTag(t.severity)), el("td", {}, t.user || ""),
-          el("td", {}, el("pre", {}, JSON.stringify(t.evidence, null, 1))),
+          el("td", {}, ...(t.evidence && t.evidence.hints ? hintList(t.evidence.hints) : []), el("pre", {}, JSON.stringify(t.evidence, null, 1))),
           el("td", {}, t.spectrum_id ? el("button", { type: "button", class: "open-spectrum", onclick: () => openStored(t) }, "Open spectrum") : "–"))))));
   }
 
@@ -336,6 +361,7 @@
     machine = await WW.api(root.dataset.api);
     renderFacts();
     fillPointSelects();
+    renderCauses();
     renderMargins();
     renderBaselines();
     drawSpectrum(latestFor(document.getElementById("spectrum-point").value));

@@ -34,6 +34,7 @@ from monitor.store.reads.evaluations import (
     nearest_margin,
     point_zone_limits,
 )
+from monitor.store.reads.hints import machine_hints_json
 from monitor.store.reads.spectra import latest_spectra, spectrum_json
 from monitor.store.reads.speeds import (
     FIRST_FLAG,
@@ -238,6 +239,8 @@ def machine_detail(s: Session, m: Machine) -> dict[str, Any]:
             "features": [feature_json(f) for f in view["features"].values()],
             "growth_ignored": view["growth_ignored"],
         })
+    margins = _current_margins(m, modes, speed, speed.reading.evaluation if speed.reading is not None else None)
+    spectra = latest_spectra(s, m.id)
     return {
         "id": m.id, "name": m.name or m.id, "location": m.location, "class": m.machine_class,
         "speed_range_rpm": [m.speed_min_rpm, m.speed_max_rpm],
@@ -248,7 +251,8 @@ def machine_detail(s: Session, m: Machine) -> dict[str, Any]:
         "last_reading_at": iso_utc(newest.ts) if newest else None,
         "points": pts,
         "modes": [mode_json(x) for x in modes],
-        "margins": _current_margins(m, modes, speed, speed.reading.evaluation if speed.reading is not None else None),
-        "latest_spectra": [spectrum_json(sn) for sn in latest_spectra(s, m.id)],
+        "margins": margins,
+        "latest_spectra": [spectrum_json(sn) for sn in spectra],
+        "likely_causes": machine_hints_json(m, points, latest, spectra, margins),
         "baseline_restarts": [baseline_restart_json(r) for r in recent_baseline_restarts(s, m.id)],
     }
