@@ -101,17 +101,34 @@ def acting_user() -> str:
     return p.username
 
 
+#: Longest acknowledgement comment, characters (dashboard/openapi.json states the same).
+MAX_COMMENT = 2000
+
+
+def check_comment(comment: str) -> str:
+    """The acknowledgement comment without surrounding white space; BadRequest naming the
+    field when it is empty or blank (docs/alarms.md: an acknowledgement needs a comment) or
+    longer than :data:`MAX_COMMENT` characters."""
+    text = comment.strip()
+    if not text:
+        raise BadRequest("Field 'comment' is required: say what was checked or decided.")
+    if len(text) > MAX_COMMENT:
+        raise BadRequest(f"Field 'comment' must be at most {MAX_COMMENT} characters.")
+    return text
+
+
 def do_acknowledge(alarm_id: int, comment: str) -> Alarm:
+    """Acknowledge active alarm ``alarm_id`` for the signed-in user with ``comment`` (checked
+    by :func:`check_comment` before anything is read or stored), and commit."""
+    text = check_comment(comment)
     s = db_session()
     a = s.get(Alarm, alarm_id)
     if a is None:
         raise NotFound(f"No alarm with id {alarm_id}.")
     if a.state != "active":
         raise Conflict(f"Alarm {alarm_id} is {a.state}; only an active alarm can be acknowledged.")
-    if len(comment) > 2000:
-        raise BadRequest("The comment must be at most 2000 characters.")
     # The store records the transition; the request commits it.
-    a = acknowledge_alarm(s, a.id, acting_user(), comment or None)
+    a = acknowledge_alarm(s, a.id, acting_user(), text)
     s.commit()
     return a
 
@@ -135,10 +152,16 @@ def index():
 @bp.post("/<int:alarm_id>/acknowledge")
 @require("engineer")
 def acknowledge(alarm_id: int):
-    a = do_acknowledge(alarm_id, request.form.get("comment", "").strip())
-    flash(f"Alarm {a.id} acknowledged.", "ok")
     back = same_origin_path(request.form.get("back")) or ""
-    return redirect(back if back.startswith("/alarms") else url_for("alarms.index"))
+    back = back if back.startswith("/alarms") else url_for("alarms.index")
+    try:
+        a = do_acknowledge(alarm_id, request.form.get("comment", ""))
+    except BadRequest as exc:
+        # Back to the list the form came from, the one sentence on top; nothing stored.
+        flash(exc.message, "error")
+        return redirect(back)
+    flash(f"Alarm {a.id} acknowledged.", "ok")
+    return redirect(back)
 
 
 CSV_COLUMNS = ("id", "machine", "point", "kind", "subject", "severity", "state", "raised_at",
