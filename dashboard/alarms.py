@@ -9,8 +9,18 @@ import json
 import re
 from collections.abc import Mapping
 
-from flask import Blueprint, Response, flash, redirect, render_template, request, url_for
+from flask import (
+    Blueprint,
+    Response,
+    current_app,
+    flash,
+    redirect,
+    render_template,
+    request,
+    url_for,
+)
 
+from dashboard import wording
 from dashboard.db import db_session
 from dashboard.errors import BadRequest, Conflict, NotFound, Unauthorised
 from dashboard.ids import parse_cursor
@@ -142,11 +152,40 @@ def index():
     args = {k: v for k, v in request.args.items() if k != "cursor" and v}
     machines = [(m["id"], m["name"]) for m in reads.machine_list(db_session())]
     return render_template(
-        "alarms/index.html", alarms=[reads.alarm_json(a) for a in rows], next_cursor=nxt,
-        args=args, states=STATES, kinds=KINDS, severities=SEVERITIES, machines=machines,
+        "alarms/index.html", alarms=[with_words(reads.alarm_json(a)) for a in rows], next_cursor=nxt,
+        args=args, states=STATES, kinds=[(k, wording.kind_words(k)) for k in KINDS], severities=SEVERITIES,
+        machines=machines,
         csv_url=url_for("alarms.export_csv", **args),
         next_url=url_for("alarms.index", **args, cursor=nxt) if nxt else None,
     )
+
+
+@bp.get("/<int:alarm_id>")
+@require("viewer")
+def detail(alarm_id: int):
+    """One alarm's evidence page: what it is about in words, each step with its evidence
+    as a table (values rounded, with units), the spectra stored with it; the raw JSON one
+    link away (the API) for integrators."""
+    a = reads.get_alarm(db_session(), alarm_id)
+    if a is None:
+        raise NotFound(f"No alarm with id {alarm_id}.")
+    d = reads.alarm_json(a, with_transitions=True)
+    when = current_app.jinja_env.filters["ts"]
+    steps = [{**t, "rows": wording.evidence_rows(t["evidence"], when),
+              "spectra": _spectra_of(t["evidence"], t["spectrum_id"])} for t in d["transitions"]]
+    return render_template("alarms/detail.html", alarm=d, steps=steps,
+                           summary=wording.alarm_summary(d["kind"], d["subject"]),
+                           kind_text=wording.kind_words(d["kind"]),
+                           subject_text=wording.subject_words(d["kind"], d["subject"]))
+
+
+def _spectra_of(evidence: object, spectrum_id: int | None) -> list[dict]:
+    """The spectra a step's evidence lists (point, kind, id), or the one stored with it."""
+    listed = evidence.get("spectra") if isinstance(evidence, dict) else None
+    out = [s for s in listed or () if isinstance(s, dict) and isinstance(s.get("spectrum_id"), int)]
+    if not out and spectrum_id is not None:
+        out = [{"spectrum_id": spectrum_id, "point": None, "kind": "velocity"}]
+    return out
 
 
 @bp.post("/<int:alarm_id>/acknowledge")
@@ -164,8 +203,17 @@ def acknowledge(alarm_id: int):
     return redirect(back)
 
 
+def with_words(d: dict) -> dict:
+    """An alarm's JSON with its kind and subject in words (``kind_text``, ``subject_text``,
+    ``summary``) for the pages and the CSV (dashboard/wording.py)."""
+    return {**d, "kind_text": wording.kind_words(d["kind"]),
+            "subject_text": wording.subject_words(d["kind"], d["subject"]),
+            "summary": wording.alarm_summary(d["kind"], d["subject"])}
+
+
+#: The CSV's columns: the API's keys (integrators read them), then the alarm in words.
 CSV_COLUMNS = ("id", "machine", "point", "kind", "subject", "severity", "state", "raised_at",
-               "cleared_at", "acknowledged_by", "acknowledged_at", "ack_comment", "evidence")
+               "cleared_at", "acknowledged_by", "acknowledged_at", "ack_comment", "evidence", "summary")
 
 
 def _csv_cell(v) -> str:
@@ -190,7 +238,7 @@ def export_csv():
         while sent < CSV_MAX_ROWS:
             page, cursor = reads.find_alarms(s, **f, before_id=cursor, limit=MAX_LIMIT)
             for a in page:
-                d = reads.alarm_json(a)
+                d = with_words(reads.alarm_json(a))
                 w.writerow([_csv_cell(d[c]) for c in CSV_COLUMNS])
             sent += len(page)
             yield buf.getvalue()

@@ -311,34 +311,12 @@
     }
   });
 
-  async function renderAlarms() {
-    const data = await WW.api(root.dataset.alarms + "?machine=" + encodeURIComponent(machine.id) + "&limit=50");
-    const tb = document.querySelector("#machine-alarms tbody");
-    if (!data.items.length) { tb.replaceChildren(el("tr", {}, el("td", { colspan: 8, class: "empty" }, "No alarms."))); return; }
-    tb.replaceChildren(...data.items.map(a => el("tr", { "data-alarm": a.id },
-      el("td", {}, WW.when(a.raised_at)), el("td", {}, a.point || "–"), el("td", {}, a.kind.replace(/_/g, " "), el("small", { class: "sub" }, a.subject)),
-      el("td", {}, WW.severityTag(a.severity)), el("td", {}, el("span", { class: "astate astate-" + a.state }, a.state)),
-      el("td", {}, WW.when(a.cleared_at)), el("td", {}, a.acknowledged_by || "–"),
-      el("td", {}, el("button", { type: "button", onclick: () => showEvidence(a.id) }, "Evidence")))));
-  }
-
-  async function showEvidence(alarmId) {
-    const a = await WW.api(root.dataset.alarmBase + alarmId);
-    const box = document.getElementById("alarm-evidence");
-    box.hidden = false;
-    box.replaceChildren(el("h3", {}, "Alarm " + a.id + ": " + a.kind.replace(/_/g, " ") + " " + a.subject),
-      el("table", { class: "grid" }, el("thead", {}, el("tr", {}, el("th", {}, "When"), el("th", {}, "Step"), el("th", {}, "Severity"), el("th", {}, "By"), el("th", {}, "Evidence"), el("th", {}, ""))),
-        el("tbody", {}, a.transitions.map(t => el("tr", {},
-          el("td", {}, WW.when(t.at)), el("td", {}, t.transition), el("td", {}, WW.severityTag(t.severity)), el("td", {}, t.user || ""),
-          el("td", {}, el("pre", {}, JSON.stringify(t.evidence, null, 1))),
-          el("td", {}, t.spectrum_id ? el("button", { type: "button", class: "open-spectrum", onclick: () => openStored(t) }, "Open spectrum") : "–"))))));
-  }
-
-  async function openStored(t) {
-    const sp = await WW.api(root.dataset.spectrumBase + t.spectrum_id);
-    drawSpectrum(sp, "stored with '" + t.transition + "' at " + WW.when(sp.ts));
+  // A stored spectrum (an alarm's evidence page links here with ?spectrum=<id>&step=<step>).
+  async function openStored(spectrumId, step) {
+    const sp = await WW.api(root.dataset.spectrumBase + spectrumId);
+    drawSpectrum(sp, "stored with '" + step + "' at " + WW.when(sp.ts));
     document.getElementById("spectrum-latest").hidden = false;
-    document.getElementById("chart-spectrum").scrollIntoView({ behavior: "smooth" });
+    document.getElementById("chart-spectrum").scrollIntoView();
   }
 
   function latestFor(pid) { return machine.latest_spectra.find(s => s.point === pid); }
@@ -369,7 +347,9 @@
     renderMargins();
     renderBaselines();
     drawSpectrum(latestFor(document.getElementById("spectrum-point").value));
-    await Promise.all([loadTrends(), renderModes(), renderAlarms()]);
+    await Promise.all([loadTrends(), renderModes()]);
+    const asked = new URLSearchParams(location.search);
+    if (/^[0-9]{1,19}$/.test(asked.get("spectrum") || "")) await openStored(asked.get("spectrum"), asked.get("step") || "an alarm step");
     document.body.dataset.loaded = "1";
   }
 
