@@ -145,6 +145,8 @@ def number(value: Any, decimals: int | None = None) -> str:
         return "yes" if value else "no"
     if not isinstance(value, int | float):
         return str(value)
+    if isinstance(value, int) and decimals is None:
+        return str(value)
     v = float(value)
     if math.isnan(v):
         return "not a number"
@@ -303,9 +305,9 @@ def evidence_rows(evidence: Mapping[str, Any] | None, when: Callable[[Any], str]
             add("Forecast: band edge reached in", duration(v.get("seconds")))
             add("Forecast: band edge", hz(v.get("edge_hz")))
             add("Forecast: speed trend", "–" if v.get("speed_slope_hz_per_s") is None
-                else f"{number(v['speed_slope_hz_per_s'] * 60, 3)} Hz per minute")
+                else f"{number(v['speed_slope_hz_per_s'] * 60)} Hz per minute")
         elif key.endswith(("_at", "_ts")) or key in ("ts", "now"):
-            add(_label(key), when(v))
+            add(_label(key[:-3] if key.endswith(("_at", "_ts")) else key), when(v))
         elif key.endswith("_s") and isinstance(v, int | float):
             add(_label(key[:-2]), duration(v))
         elif key.endswith("_hz"):
