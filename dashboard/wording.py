@@ -291,7 +291,7 @@ def evidence_rows(evidence: Mapping[str, Any] | None, when: Callable[[Any], str]
         "shift_pct": lambda v: EvidenceRow("Shift (% of the stored frequency)", pct(v)),
         "tolerance_pct": lambda v: EvidenceRow("Tolerance", pct(v)),
         "failures": lambda v: EvidenceRow("Failed readings in a row", number(v, 0)),
-        "reading_id": lambda v: EvidenceRow("Reading", str(v)),
+        "reading_id": lambda v: EvidenceRow("Reading", "none named (a speed message, or a reading without an id)" if v is None else str(v)),
     }
     for key, fmt in formatters.items():
         if key in ev:
