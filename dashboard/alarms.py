@@ -9,8 +9,18 @@ import json
 import re
 from collections.abc import Mapping
 
-from flask import Blueprint, Response, flash, redirect, render_template, request, url_for
+from flask import (
+    Blueprint,
+    Response,
+    current_app,
+    flash,
+    redirect,
+    render_template,
+    request,
+    url_for,
+)
 
+from dashboard import wording
 from dashboard.db import db_session
 from dashboard.errors import BadRequest, Conflict, NotFound, Unauthorised
 from dashboard.ids import parse_cursor
@@ -101,17 +111,34 @@ def acting_user() -> str:
     return p.username
 
 
+#: Longest acknowledgement comment, characters (dashboard/openapi.json states the same).
+MAX_COMMENT = 2000
+
+
+def check_comment(comment: str) -> str:
+    """The acknowledgement comment without surrounding white space; BadRequest naming the
+    field when it is empty or blank (docs/alarms.md: an acknowledgement needs a comment) or
+    longer than :data:`MAX_COMMENT` characters."""
+    text = comment.strip()
+    if not text:
+        raise BadRequest("Field 'comment' is required: say what was checked or decided.")
+    if len(text) > MAX_COMMENT:
+        raise BadRequest(f"Field 'comment' must be at most {MAX_COMMENT} characters.")
+    return text
+
+
 def do_acknowledge(alarm_id: int, comment: str) -> Alarm:
+    """Acknowledge active alarm ``alarm_id`` for the signed-in user with ``comment`` (checked
+    by :func:`check_comment` before anything is read or stored), and commit."""
+    text = check_comment(comment)
     s = db_session()
     a = s.get(Alarm, alarm_id)
     if a is None:
         raise NotFound(f"No alarm with id {alarm_id}.")
     if a.state != "active":
         raise Conflict(f"Alarm {alarm_id} is {a.state}; only an active alarm can be acknowledged.")
-    if len(comment) > 2000:
-        raise BadRequest("The comment must be at most 2000 characters.")
     # The store records the transition; the request commits it.
-    a = acknowledge_alarm(s, a.id, acting_user(), comment or None)
+    a = acknowledge_alarm(s, a.id, acting_user(), text)
     s.commit()
     return a
 
@@ -125,24 +152,75 @@ def index():
     args = {k: v for k, v in request.args.items() if k != "cursor" and v}
     machines = [(m["id"], m["name"]) for m in reads.machine_list(db_session())]
     return render_template(
-        "alarms/index.html", alarms=[reads.alarm_json(a) for a in rows], next_cursor=nxt,
-        args=args, states=STATES, kinds=KINDS, severities=SEVERITIES, machines=machines,
+        "alarms/index.html", alarms=[with_words(reads.alarm_json(a)) for a in rows], next_cursor=nxt,
+        args=args, states=STATES, kinds=[(k, wording.kind_words(k)) for k in KINDS], severities=SEVERITIES,
+        machines=machines,
         csv_url=url_for("alarms.export_csv", **args),
         next_url=url_for("alarms.index", **args, cursor=nxt) if nxt else None,
     )
 
 
+@bp.get("/<int:alarm_id>")
+@require("viewer")
+def detail(alarm_id: int):
+    """One alarm's evidence page: what it is about in words, each step with its evidence
+    as a table (values rounded, with units), the spectra stored with it; the raw JSON one
+    link away (the API) for integrators."""
+    a = reads.get_alarm(db_session(), alarm_id)
+    if a is None:
+        raise NotFound(f"No alarm with id {alarm_id}.")
+    d = reads.alarm_json(a, with_transitions=True)
+    when = current_app.jinja_env.filters["ts"]
+    steps = [{**t, "rows": wording.evidence_rows(t["evidence"], when),
+              "spectra": _spectra_of(t["evidence"], t["spectrum_id"]),
+              "hints": _hints_of(t["evidence"])} for t in d["transitions"]]
+    return render_template("alarms/detail.html", alarm=d, steps=steps,
+                           summary=wording.alarm_summary(d["kind"], d["subject"]),
+                           kind_text=wording.kind_words(d["kind"]),
+                           subject_text=wording.subject_words(d["kind"], d["subject"]))
+
+
+def _hints_of(evidence: object) -> list[dict]:
+    """The likely-cause hints a growth step's evidence carries (monitor/detection/causes.py)."""
+    hints = evidence.get("hints") if isinstance(evidence, dict) else None
+    return [h for h in hints or () if isinstance(h, dict)]
+
+
+def _spectra_of(evidence: object, spectrum_id: int | None) -> list[dict]:
+    """The spectra a step's evidence lists (point, kind, id), or the one stored with it."""
+    listed = evidence.get("spectra") if isinstance(evidence, dict) else None
+    out = [s for s in listed or () if isinstance(s, dict) and isinstance(s.get("spectrum_id"), int)]
+    if not out and spectrum_id is not None:
+        out = [{"spectrum_id": spectrum_id, "point": None, "kind": "velocity"}]
+    return out
+
+
 @bp.post("/<int:alarm_id>/acknowledge")
 @require("engineer")
 def acknowledge(alarm_id: int):
-    a = do_acknowledge(alarm_id, request.form.get("comment", "").strip())
-    flash(f"Alarm {a.id} acknowledged.", "ok")
     back = same_origin_path(request.form.get("back")) or ""
-    return redirect(back if back.startswith("/alarms") else url_for("alarms.index"))
+    back = back if back.startswith("/alarms") else url_for("alarms.index")
+    try:
+        a = do_acknowledge(alarm_id, request.form.get("comment", ""))
+    except BadRequest as exc:
+        # Back to the list the form came from, the one sentence on top; nothing stored.
+        flash(exc.message, "error")
+        return redirect(back)
+    flash(f"Alarm {a.id} acknowledged.", "ok")
+    return redirect(back)
 
 
+def with_words(d: dict) -> dict:
+    """An alarm's JSON with its kind and subject in words (``kind_text``, ``subject_text``,
+    ``summary``) for the pages and the CSV (dashboard/wording.py)."""
+    return {**d, "kind_text": wording.kind_words(d["kind"]),
+            "subject_text": wording.subject_words(d["kind"], d["subject"]),
+            "summary": wording.alarm_summary(d["kind"], d["subject"])}
+
+
+#: The CSV's columns: the API's keys (integrators read them), then the alarm in words.
 CSV_COLUMNS = ("id", "machine", "point", "kind", "subject", "severity", "state", "raised_at",
-               "cleared_at", "acknowledged_by", "acknowledged_at", "ack_comment", "evidence")
+               "cleared_at", "acknowledged_by", "acknowledged_at", "ack_comment", "evidence", "summary")
 
 
 def _csv_cell(v) -> str:
@@ -167,7 +245,7 @@ def export_csv():
         while sent < CSV_MAX_ROWS:
             page, cursor = reads.find_alarms(s, **f, before_id=cursor, limit=MAX_LIMIT)
             for a in page:
-                d = reads.alarm_json(a)
+                d = with_words(reads.alarm_json(a))
                 w.writerow([_csv_cell(d[c]) for c in CSV_COLUMNS])
             sent += len(page)
             yield buf.getvalue()

@@ -252,7 +252,7 @@ def acknowledge(alarm_id: int):
     comment = data.get("comment", "")
     if not isinstance(comment, str):
         raise BadRequest("Field 'comment' must be a string.")
-    a = do_acknowledge(alarm_id, comment.strip())
+    a = do_acknowledge(alarm_id, comment)
     return jsonify(reads.alarm_json(a))
 
 

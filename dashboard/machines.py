@@ -5,7 +5,7 @@ from __future__ import annotations
 
 from flask import Blueprint, flash, redirect, render_template, request, url_for
 
-from dashboard.alarms import acting_user
+from dashboard.alarms import acting_user, with_words
 from dashboard.db import db_session
 from dashboard.errors import BadRequest, Conflict, NotFound
 from dashboard.security import require
@@ -23,6 +23,8 @@ bp = Blueprint("machines", __name__, url_prefix="/machines")
 
 #: Passages listed on the machine page (the newest; the API pages through all).
 PAGE_PASSAGES = 20
+#: Alarms in the machine page's alarm history (the newest; the alarms page has all).
+PAGE_ALARMS = 50
 
 
 @bp.get("/<machine_id>")
@@ -34,7 +36,8 @@ def detail(machine_id: str):
         raise NotFound(f"No machine with id {machine_id!r}.")
     passages = [reads.passage_json(p, with_points=False)
                 for p in reads.find_passages(s, m.id, limit=PAGE_PASSAGES)[0]]
-    return render_template("machines/detail.html", machine=m, passages=passages)
+    alarms = [with_words(reads.alarm_json(a)) for a in reads.find_alarms(s, machine=m.id, limit=PAGE_ALARMS)[0]]
+    return render_template("machines/detail.html", machine=m, passages=passages, alarms=alarms)
 
 
 def decide_candidate(machine_id: str, passage_id: int, *, accept: bool, name: str | None = None) -> PassageRow:

@@ -141,9 +141,11 @@ def test_walkthrough(server, page):
     for sel in ("#chart-resonance", "#chart-spectrum", "#chart-overall", "#chart-orders"):
         assert _canvas_ink(page, sel) > 1000, sel
     assert page.locator("#margins-table tbody tr").count() == 6
-    page.click("#machine-alarms tbody tr >> nth=0 >> button")
-    page.wait_for_selector(".open-spectrum")
-    page.click(".open-spectrum")
+    # The newest alarm's evidence page, then the spectrum stored when it was raised.
+    page.click("#machine-alarms tbody tr >> nth=0 >> a.evidence-link")
+    page.wait_for_selector(".evidence-table")
+    page.click(".evidence-step[data-step='raised'] .open-spectrum >> nth=0")
+    page.wait_for_selector("body[data-loaded='1']")
     page.locator("#spectrum-latest").wait_for(state="visible")
     assert page.locator("#spectrum-caption").inner_text().startswith("stored with 'raised'")
     page.screenshot(path=str(ARTIFACTS / "machine.png"), full_page=True)

@@ -97,8 +97,8 @@ def _machine(page, server, machine_id: str) -> None:
 
 def _evidence(page, server) -> None:
     _machine(page, server, "fan-001")
-    page.click("#machine-alarms tbody tr >> nth=0 >> button")
-    page.wait_for_selector("#alarm-evidence:not([hidden])")
+    page.click("#machine-alarms tbody tr >> nth=0 >> a.evidence-link")
+    page.wait_for_selector("#alarm-summary")
 
 
 def _stored_spectrum(page, server) -> None:
@@ -129,7 +129,7 @@ PAGES = {
     "login-failed": (None, _failed_sign_in, {"auth.login"}),
     "overview": ("ada", lambda p, s: p.goto(s + "/"), {"overview.index"}),
     "machine": ("eng", lambda p, s: _machine(p, s, "fan-001"), {"machines.detail"}),
-    "alarm-evidence": ("eng", _evidence, {"machines.detail"}),
+    "alarm-evidence": ("eng", _evidence, {"alarms.detail"}),
     "spectrum": ("eng", _stored_spectrum, {"machines.detail"}),
     "passages": ("eng", lambda p, s: _machine(p, s, SWEPT), {"machines.detail"}),
     "alarms": ("eng", lambda p, s: p.goto(s + "/alarms/"), {"alarms.index"}),

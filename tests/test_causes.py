@@ -250,6 +250,25 @@ def test_growth_alarms_of_the_demo_plant_carry_their_hints(tmp_path, machine, su
         assert ev["hints"][0]["confidence"] == "high"  # the feature grows as well
     # the machine page's summary names the same cause from the stored rows
     assert _detail(url, machine)["likely_causes"]["hints"][0]["cause"] == cause
+    # and the alarm's evidence page lists the hint with its step
+    store = Store.open(url)
+    try:
+        with store.transaction() as s:
+            create_user(s, "vic", "viewer-pass-1", "viewer")
+            alarm_id = s.execute(select(Alarm.id).where(Alarm.kind == "amplitude_growth",
+                                                        Alarm.subject == subject)).scalars().first()
+    finally:
+        store.close()
+    app = make_app(url)
+    try:
+        client = app.test_client()
+        page = client.get("/login").get_data(as_text=True)
+        token = re.search(r'name="csrf-token" content="([^"]+)"', page).group(1)
+        client.post("/login", data={"csrf_token": token, "username": "vic", "password": "viewer-pass-1"})
+        html = client.get(f"/alarms/{alarm_id}").get_data(as_text=True)
+        assert f'data-cause="{cause}"' in html and "What to check next." in html
+    finally:
+        app.extensions["whirlwatch_engine"].dispose()
 
 
 def test_the_healthy_blower_of_the_demo_plant_gets_no_hint(tmp_path):

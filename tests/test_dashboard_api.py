@@ -185,6 +185,27 @@ def test_viewer_cannot_write_and_csrf(client, auth, app):
     assert client.post("/alarms/1/acknowledge", data={"comment": "x"}).status_code == 400
 
 
+def test_acknowledge_needs_a_comment(client, auth):
+    # docs/alarms.md: "Acknowledgement needs a user name and a comment".
+    tok = auth.login("eng")
+    act = client.get("/api/v1/alarms?state=active&machine=fan-002").get_json()["items"][0]
+    for blank in ("", "   ", "\t\n", "\u3000"):
+        # The page form: back to the list with one sentence on top, nothing stored.
+        r = client.post(f"/alarms/{act['id']}/acknowledge",
+                        data={"comment": blank, "csrf_token": tok, "back": "/alarms/?machine=fan-002"})
+        assert r.status_code == 302 and r.headers["Location"].endswith("/alarms/?machine=fan-002")
+        page = client.get(r.headers["Location"]).get_data(as_text=True)
+        assert "Field &#39;comment&#39; is required" in page or "Field 'comment' is required" in page
+        # The API: 400 naming the field, nothing stored.
+        for body in ({"comment": blank}, {}):
+            r = client.post(f"/api/v1/alarms/{act['id']}/acknowledge", json=body, headers={"X-CSRFToken": tok})
+            _err(r, 400)
+            assert "'comment'" in r.get_json()["error"]["message"]
+    after = client.get(f"/api/v1/alarms/{act['id']}").get_json()
+    assert after["state"] == "active" and after["acknowledged_by"] is None
+    assert [t["transition"] for t in after["transitions"]].count("acknowledged") == 0
+
+
 def test_acknowledge_and_tokens(client, auth, app):
     tok = auth.login("ada")
     html = client.post("/tokens", data={"user_id": "2", "label": "cmms", "csrf_token": tok}).get_data(as_text=True)
@@ -194,7 +215,7 @@ def test_acknowledge_and_tokens(client, auth, app):
     act = c2.get("/api/v1/alarms?state=active&machine=fan-001", headers=h).get_json()["items"][0]
     r = c2.post(f"/api/v1/alarms/{act['id']}/acknowledge", json={"comment": "seen on site"}, headers=h)
     assert r.status_code == 200 and r.get_json()["acknowledged_by"] == "eng"
-    _err(c2.post(f"/api/v1/alarms/{act['id']}/acknowledge", json={}, headers=h), 409)
+    _err(c2.post(f"/api/v1/alarms/{act['id']}/acknowledge", json={"comment": "again"}, headers=h), 409)
     # Revoked tokens stop working; the page never shows the token again.
     page = client.get("/tokens").get_data(as_text=True)
     assert token not in page

@@ -66,6 +66,11 @@ def test_mode_bounds_are_the_registry_bounds():
         assert p["name"]["pattern"] == NOT_BLANK and p["name"]["maxLength"] == MAX_TEXT
         assert SCHEMAS[name]["additionalProperties"] is False
     assert SCHEMAS["BaselineRestartInput"]["properties"]["comment"]["pattern"] == NOT_BLANK
+    # An acknowledgement's comment is required and not blank (docs/alarms.md).
+    ack = DOC["paths"]["/alarms/{alarm_id}/acknowledge"]["post"]["requestBody"]
+    ack_schema = ack["content"]["application/json"]["schema"]
+    assert ack["required"] is True and ack_schema["required"] == ["comment"]
+    assert ack_schema["properties"]["comment"]["pattern"] == NOT_BLANK
 
 
 def test_ids_times_and_cursors_are_stated_as_the_server_reads_them():

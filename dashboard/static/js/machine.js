@@ -26,17 +26,20 @@
     return charts[id];
   }
 
-  // Mode bands (natural frequency +- the larger of its required margins) on the given axis.
+  // Mode bands on the given axis: each mode's band from low_hz to high_hz as the margin
+  // table judges it (the API's mode_bands, monitor/detection/margins.py), so an excitation
+  // the table calls clear is outside its band. The edges drawn are kept on the chart
+  // element (data-bands) for the tests.
   function modeBands(axis) {
     return u => {
       const ctx = u.ctx;
       const { left, top, width: w, height: h } = u.bbox;
       ctx.save();
       ctx.beginPath(); ctx.rect(left, top, w, h); ctx.clip();
-      for (const mo of machine.modes) {
-        const req = requiredPct(mo.name);
-        const lo = mo.frequency_hz * (1 - req / 100), hi = mo.frequency_hz * (1 + req / 100);
-        const a = u.valToPos(lo, axis, true), b = u.valToPos(hi, axis, true), c = u.valToPos(mo.frequency_hz, axis, true);
+      const drawn = [];
+      for (const band of machine.mode_bands || []) {
+        const a = u.valToPos(band.low_hz, axis, true), b = u.valToPos(band.high_hz, axis, true), c = u.valToPos(band.mode_hz, axis, true);
+        drawn.push({ mode: band.mode, low_hz: band.low_hz, high_hz: band.high_hz });
         ctx.fillStyle = "rgba(181, 101, 29, 0.14)";
         ctx.strokeStyle = "rgba(181, 101, 29, 0.9)";
         ctx.setLineDash([]);
@@ -47,10 +50,11 @@
         ctx.stroke();
         ctx.fillStyle = "#7a4310";
         ctx.font = (11 * devicePixelRatio) + "px system-ui";
-        if (axis === "y") ctx.fillText(mo.name + " " + WW.num(mo.frequency_hz, 1) + " Hz", left + 6, c - 4);
-        else ctx.fillText(mo.name, c + 4, top + 14 * devicePixelRatio);
+        if (axis === "y") ctx.fillText(band.mode + " " + WW.num(band.mode_hz, 1) + " Hz", left + 6, c - 4);
+        else ctx.fillText(band.mode, c + 4, top + 14 * devicePixelRatio);
       }
       ctx.restore();
+      u.root.parentElement.dataset.bands = JSON.stringify(drawn);
     };
   }
 
@@ -61,14 +65,36 @@
       machine.modes.map(mo => mo.name + " " + WW.num(mo.frequency_hz, 2) + " Hz").join(", ")];
   }
 
-  function requiredPct(modeName) {
-    const rows = machine.margins.filter(r => r.mode === modeName);
-    if (!rows.length) return 10;
-    return Math.max(...rows.map(r => r.required_pct));
-  }
-
   function orderList() {
     return (machine.excitation_orders || []).map(Number).sort((a, b) => a - b);
+  }
+
+  // Headroom above what a chart's axis must show (a fraction of its top).
+  const HEADROOM = 0.1;
+  // Orders up to this one are "low orders" the resonance map's axis always spans.
+  const LOW_ORDER_MAX = 2;
+  // The spectrum opens up to this many times running speed (or the modes, if higher).
+  const SPECTRUM_ORDERS = 10;
+
+  function highestBandHz() {
+    return Math.max(0, ...(machine.mode_bands || []).map(b => Math.max(b.high_hz, b.mode_hz)));
+  }
+
+  // The resonance map's top, Hz: a bit above the highest mode band or the highest low-order
+  // line (1x, 2x) over the window, whichever is larger; higher orders run off the top
+  // (they are in the legend and the margins table), so the modes and 1x are not squeezed.
+  function resonanceTop(speeds, orders) {
+    const low = orders.filter(o => o <= LOW_ORDER_MAX);
+    const order = low.length ? Math.max(...low) : Math.min(...orders);
+    const fastest = Math.max(0, ...speeds.filter(v => v !== null));
+    return Math.max(highestBandHz(), Number.isFinite(order) ? order * fastest : 0, 1) * (1 + HEADROOM);
+  }
+
+  // The spectrum's opening span, Hz: what matters, the modes' bands, ten times running
+  // speed and twice the line frequency, with headroom, never beyond the spectrum itself.
+  function spectrumSpan(speed, lastHz) {
+    const wanted = Math.max(highestBandHz(), (speed || 0) * SPECTRUM_ORDERS, 2 * (machine.line_frequency_hz || 0));
+    return wanted > 0 ? Math.min(lastHz, wanted * (1 + HEADROOM)) : lastHz;
   }
 
   function drawResonance() {
@@ -77,15 +103,15 @@
     if (!sp || !sp.ts.length) { noData("chart-resonance"); return; }
     const orders = orderList();
     const data = [sp.ts].concat(orders.map(o => sp.speed_hz.map(s => (s === null ? null : s * o))));
-    const maxMode = Math.max(0, ...machine.modes.map(m => m.frequency_hz * 1.3));
-    const maxExc = Math.max(0, ...data.slice(1).flat().filter(v => v !== null));
+    const top = resonanceTop(sp.speed_hz, orders);
     put("chart-resonance", {
       height: 320,
-      scales: { x: { time: true }, y: { range: [0, Math.max(maxMode, maxExc * 1.1, 1)] } },
+      scales: { x: { time: true }, y: { range: [0, top] } },
       series: [{}].concat(orders.map((o, i) => ({ label: o + "x", stroke: WW.palette[i % WW.palette.length], width: 2, value: (u, v) => WW.num(v, 2) + " Hz" }))),
       axes: [{}, { label: "Frequency, Hz", size: 60 }],
       hooks: { drawClear: [modeBands("y")] },
     }, data, modeMarks());
+    document.getElementById("chart-resonance").dataset.yMax = top;
   }
 
   function noData(id, text) {
@@ -115,14 +141,30 @@
       }
       ctx.restore();
     };
-    put("chart-spectrum", {
+    const lastHz = sp.freq_hz.length ? sp.freq_hz[sp.freq_hz.length - 1] : 0;
+    const span = spectrumSpan(speed, lastHz);
+    const target = document.getElementById("chart-spectrum");
+    const u = put("chart-spectrum", {
       height: 300,
       scales: { x: { time: false } },
       cursor: { drag: { x: true, y: false } },
       series: [{ label: "frequency", value: (u, v) => WW.num(v, 2) + " Hz" }, { label: sp.point + " " + sp.kind, stroke: "#3d405b", width: 1, value: (u, v) => WW.num(v, 4) + " " + sp.unit }],
       axes: [{ label: "Frequency, Hz" }, { label: sp.unit + " " + sp.scaling, size: 70 }],
-      hooks: { drawClear: [modeBands("x")], draw: [drawMarkers] },
+      hooks: { drawClear: [modeBands("x")], draw: [drawMarkers],
+        setScale: [(c, key) => { if (key === "x") target.dataset.xMax = c.scales.x.max; }] },
     }, [sp.freq_hz, sp.amplitude], modeMarks().concat(markers.map(m => "dashed line " + m.label + " at " + WW.num(m.hz, 2) + " Hz")));
+    // Opens on the span of interest; the full span is one click (or a double-click) away.
+    target.dataset.spanHz = span;
+    target.dataset.fullHz = lastHz;
+    if (span < lastHz) u.setScale("x", { min: 0, max: span });
+    const toggle = document.getElementById("spectrum-span");
+    toggle.hidden = !(span < lastHz);
+    toggle.textContent = "Full span (0–" + WW.num(lastHz, 0) + " Hz)";
+    toggle.onclick = () => {
+      const full = u.scales.x.max < lastHz;
+      u.setScale("x", { min: 0, max: full ? lastHz : span });
+      toggle.textContent = full ? "Span of interest (0–" + WW.num(span, 0) + " Hz)" : "Full span (0–" + WW.num(lastHz, 0) + " Hz)";
+    };
     document.getElementById("spectrum-caption").textContent = caption || ("latest, " + WW.when(sp.ts));
   }
 
@@ -306,34 +348,12 @@
     }
   });
 
-  async function renderAlarms() {
-    const data = await WW.api(root.dataset.alarms + "?machine=" + encodeURIComponent(machine.id) + "&limit=50");
-    const tb = document.querySelector("#machine-alarms tbody");
-    if (!data.items.length) { tb.replaceChildren(el("tr", {}, el("td", { colspan: 8, class: "empty" }, "No alarms."))); return; }
-    tb.replaceChildren(...data.items.map(a => el("tr", { "data-alarm": a.id },
-      el("td", {}, WW.when(a.raised_at)), el("td", {}, a.point || "–"), el("td", {}, a.kind.replace(/_/g, " "), el("small", { class: "sub" }, a.subject)),
-      el("td", {}, WW.severityTag(a.severity)), el("td", {}, el("span", { class: "astate astate-" + a.state }, a.state)),
-      el("td", {}, WW.when(a.cleared_at)), el("td", {}, a.acknowledged_by || "–"),
-      el("td", {}, el("button", { type: "button", onclick: () => showEvidence(a.id) }, "Evidence")))));
-  }
-
-  async function showEvidence(alarmId) {
-    const a = await WW.api(root.dataset.alarmBase + alarmId);
-    const box = document.getElementById("alarm-evidence");
-    box.hidden = false;
-    box.replaceChildren(el("h3", {}, "Alarm " + a.id + ": " + a.kind.replace(/_/g, " ") + " " + a.subject),
-      el("table", { class: "grid" }, el("thead", {}, el("tr", {}, el("th", {}, "When"), el("th", {}, "Step"), el("th", {}, "Severity"), el("th", {}, "By"), el("th", {}, "Evidence"), el("th", {}, el("span", { class: "visually-hidden" }, "Spectrum")))),
-        el("tbody", {}, a.transitions.map(t => el("tr", {},
-          el("td", {}, WW.when(t.at)), el("td", {}, t.transition), el("td", {}, WW.severityTag(t.severity)), el("td", {}, t.user || ""),
-          el("td", {}, ...(t.evidence && t.evidence.hints ? hintList(t.evidence.hints) : []), el("pre", {}, JSON.stringify(t.evidence, null, 1))),
-          el("td", {}, t.spectrum_id ? el("button", { type: "button", class: "open-spectrum", onclick: () => openStored(t) }, "Open spectrum") : "–"))))));
-  }
-
-  async function openStored(t) {
-    const sp = await WW.api(root.dataset.spectrumBase + t.spectrum_id);
-    drawSpectrum(sp, "stored with '" + t.transition + "' at " + WW.when(sp.ts));
+  // A stored spectrum (an alarm's evidence page links here with ?spectrum=<id>&step=<step>).
+  async function openStored(spectrumId, step) {
+    const sp = await WW.api(root.dataset.spectrumBase + spectrumId);
+    drawSpectrum(sp, "stored with '" + step + "' at " + WW.when(sp.ts));
     document.getElementById("spectrum-latest").hidden = false;
-    document.getElementById("chart-spectrum").scrollIntoView({ behavior: "smooth" });
+    document.getElementById("chart-spectrum").scrollIntoView();
   }
 
   function latestFor(pid) { return machine.latest_spectra.find(s => s.point === pid); }
@@ -365,7 +385,9 @@
     renderMargins();
     renderBaselines();
     drawSpectrum(latestFor(document.getElementById("spectrum-point").value));
-    await Promise.all([loadTrends(), renderModes(), renderAlarms()]);
+    await Promise.all([loadTrends(), renderModes()]);
+    const asked = new URLSearchParams(location.search);
+    if (/^[0-9]{1,19}$/.test(asked.get("spectrum") || "")) await openStored(asked.get("spectrum"), asked.get("step") || "an alarm step");
     document.body.dataset.loaded = "1";
   }
 

@@ -40,6 +40,7 @@ from monitor.store.reads.evaluations import (
     evaluation_view,
     feature_json,
     margins_for,
+    mode_bands,
     nearest_margin,
     point_zone_limits,
 )
@@ -114,6 +115,7 @@ __all__ = [
     "machine_summaries",
     "machines_with_open_alarms",
     "margins_for",
+    "mode_bands",
     "mode_history",
     "mode_json",
     "mode_named",

@@ -14,7 +14,7 @@ import datetime as dt
 from collections.abc import Iterable, Sequence
 from typing import Any, TypedDict
 
-from monitor.detection.margins import margin_table
+from monitor.detection.margins import margin_table, required_margin
 from monitor.detection.zones import ZoneLimits, zone_limits
 from monitor.model import registry as reg
 from monitor.model.bounds import check_machine
@@ -99,6 +99,29 @@ def margins_for(m: Any, modes: Sequence[Any], speed_hz: float | None) -> list[di
             _MARGIN_CACHE.clear()
         _MARGIN_CACHE[key] = rows
     return rows
+
+
+def mode_bands(m: Any, modes: Sequence[Any]) -> list[dict[str, Any]]:
+    """Each usable mode's required band as the margin table judges it, for the charts:
+    ``mode``, ``mode_hz``, ``below_pct`` and ``above_pct`` (the required margins, percent of
+    the mode frequency, with the mode below and above the excitation), ``low_hz`` and
+    ``high_hz`` (the band's edges, Hz: an excitation between them is closer than required)
+    and ``basis``. The rule is monitor.detection.margins (``required_margin`` and
+    ``RequiredMargin.band``, the margins of every table row), with the machine default the
+    table here takes (:func:`margins_for`); an excitation the table calls clear lies
+    outside its mode's band."""
+    modes = usable_modes(modes, m.id)
+    machine = _to_registry(m, modes) if modes else None
+    if machine is None:
+        return []
+    default = (m.settings or {}).get("required_margin_pct")
+    out = []
+    for mo in machine.modes:
+        req = required_margin(mo, default)
+        low, high = req.band(mo.frequency_hz)
+        out.append({"mode": mo.name, "mode_hz": mo.frequency_hz, "below_pct": req.below_pct,
+                    "above_pct": req.above_pct, "low_hz": low, "high_hz": high, "basis": req.basis})
+    return out
 
 
 def current_margins(m: Any, modes: Sequence[Any], speed_hz: float | None,

@@ -31,6 +31,7 @@ from monitor.store.reads.evaluations import (
     current_margins,
     evaluation_view,
     feature_json,
+    mode_bands,
     nearest_margin,
     point_zone_limits,
 )
@@ -252,6 +253,8 @@ def machine_detail(s: Session, m: Machine) -> dict[str, Any]:
         "points": pts,
         "modes": [mode_json(x) for x in modes],
         "margins": margins,
+        # The shaded bands of the charts: the margin rule's own edges, per mode.
+        "mode_bands": mode_bands(m, modes),
         "latest_spectra": [spectrum_json(sn) for sn in spectra],
         "likely_causes": machine_hints_json(m, points, latest, spectra, margins),
         "baseline_restarts": [baseline_restart_json(r) for r in recent_baseline_restarts(s, m.id)],
