@@ -8,6 +8,7 @@ stays a table of contents. Mistakes are reported as ``click.UsageError`` /
 from __future__ import annotations
 
 import os
+from importlib import import_module
 
 import click
 
@@ -32,8 +33,19 @@ def one_sentence(exc: Exception) -> str:
 
 
 class _Commands(click.Group):
-    """The command group; no traceback reaches the user: an error a command did not turn
-    into a one-sentence ``click`` error becomes one here."""
+    """The command group. A sub-command's module is imported when that command is asked
+    for (or the help lists them all), so ``whirlwatch db upgrade`` does not load the
+    simulator's or the dashboard's libraries. No traceback reaches the user: an error a
+    command did not turn into a one-sentence ``click`` error becomes one here."""
+
+    def list_commands(self, ctx: click.Context) -> list[str]:
+        return sorted(set(super().list_commands(ctx)) | set(COMMANDS))
+
+    def get_command(self, ctx: click.Context, cmd_name: str) -> click.Command | None:
+        if cmd_name in COMMANDS and cmd_name not in self.commands:
+            module, attr = COMMANDS[cmd_name]
+            self.add_command(getattr(import_module(module), attr), cmd_name)
+        return super().get_command(ctx, cmd_name)
 
     def invoke(self, ctx: click.Context) -> object:
         try:
@@ -46,40 +58,25 @@ class _Commands(click.Group):
             raise click.ClickException(one_sentence(exc)) from None
 
 
+#: Each sub-command's name -> (module, attribute of its click command).
+COMMANDS: dict[str, tuple[str, str]] = {
+    "simulate": ("monitor.commands.simulate", "simulate"),
+    "analyse": ("monitor.commands.analyse", "analyse"),
+    "db": ("monitor.commands.db", "db"),
+    "machines": ("monitor.commands.machines", "machines"),
+    "baseline": ("monitor.commands.baseline", "baseline"),
+    "user": ("monitor.commands.users", "user"),
+    "token": ("monitor.commands.users", "token"),
+    "dashboard": ("monitor.commands.dashboard", "dashboard"),
+    "run": ("monitor.commands.run", "run"),
+    "demo": ("monitor.commands.demo", "demo"),
+    "bumptest": ("monitor.commands.bumptest", "bumptest"),
+    "passage": ("monitor.commands.passage", "passage"),
+}
+
+
 @click.group(cls=_Commands, context_settings={"help_option_names": ["-h", "--help"]})
 @click.version_option(__version__, prog_name="whirlwatch")
 def main() -> None:
     """whirlwatch: vibration spectra, running speed against natural frequencies,
     resonance-proximity and amplitude-growth alarms."""
-
-
-def _attach() -> None:
-    # Each entry: (module, attribute). Imported here so `whirlwatch --help` lists all.
-    from importlib import import_module
-
-    for module, attr in _COMMANDS:
-        try:
-            mod = import_module(module)
-        except ModuleNotFoundError as exc:  # a part not built yet must not break the CLI
-            if exc.name and exc.name.startswith("monitor") or exc.name == "dashboard":
-                continue
-            raise
-        main.add_command(getattr(mod, attr))
-
-
-_COMMANDS: list[tuple[str, str]] = [
-    ("monitor.commands.simulate", "simulate"),
-    ("monitor.commands.analyse", "analyse"),
-    ("monitor.commands.db", "db"),
-    ("monitor.commands.machines", "machines"),
-    ("monitor.commands.baseline", "baseline"),
-    ("monitor.commands.users", "user"),
-    ("monitor.commands.users", "token"),
-    ("monitor.commands.dashboard", "dashboard"),
-    ("monitor.commands.run", "run"),
-    ("monitor.commands.demo", "demo"),
-    ("monitor.commands.bumptest", "bumptest"),
-    ("monitor.commands.passage", "passage"),
-]
-
-_attach()

@@ -156,3 +156,19 @@ def test_the_api_answers_a_write_it_cannot_make_in_one_sentence(tmp_path: Path) 
     text = resp.get_data(as_text=True)
     assert body["error"]["message"] == "The database is busy or unreachable; nothing was changed. Try again shortly."
     assert "INSERT" not in text and "parameters" not in text and "Traceback" not in text
+
+
+def test_every_listed_command_is_the_one_its_module_defines() -> None:
+    # The group loads a sub-command's module when it is asked for (monitor/cli.py): each
+    # name must lead to a command of that name, and every command must answer --help.
+    from click.testing import CliRunner
+
+    from monitor.cli import COMMANDS, main
+
+    for name in COMMANDS:
+        cmd = main.get_command(None, name)  # type: ignore[arg-type]
+        assert cmd is not None and cmd.name == name, name
+        done = CliRunner().invoke(main, [name, "--help"])
+        assert done.exit_code == 0, (name, done.output)
+    listed = CliRunner().invoke(main, ["--help"]).output
+    assert all(f"  {name} " in listed for name in COMMANDS), listed
