@@ -13,7 +13,9 @@ The other machines only make the plant large (the statement-count test, the benc
 their rows are copies, made in SQL (``INSERT ... SELECT``), of the rows the service stored
 for a detected machine, with the machine id replaced (the evaluation JSON inside still
 names the machine it was made for). No row is shaped here. They carry the measurements and
-each point's newest spectra, no alarms.
+each point's newest spectra and the service's stored status (monitor/store/statuses.py),
+no alarms (the status's alarm count set to none; its body still names the machine and the
+alarms it was made for).
 """
 
 from __future__ import annotations
@@ -39,7 +41,7 @@ from monitor.sim.simulate import MachineModel, ModalMode, simulate_reading
 from monitor.store.auth import create_user
 from monitor.store.db import make_engine, session_factory
 from monitor.store.migrate import upgrade_engine
-from monitor.store.models import Measurement, SpectrumSnapshot
+from monitor.store.models import MachineStatus, Measurement, SpectrumSnapshot
 from monitor.store.registry_sync import import_registry
 
 T_END = dt.datetime(2026, 3, 10, 12, 0, tzinfo=dt.UTC)
@@ -139,18 +141,21 @@ def _through_service(url: str, messages: tuple[tuple[str, bytes], ...]) -> None:
         svc.store.close()
 
 
-def _copy(s: Session, table: Table, source: str, target: str, *where) -> None:
+def _copy(s: Session, table: Table, source: str, target: str, *where, set_: dict | None = None) -> None:
     """Copy the rows of machine ``source`` in ``table`` (all columns but the id) to
-    machine ``target``, in one ``INSERT ... SELECT``."""
+    machine ``target``, in one ``INSERT ... SELECT``; ``set_`` gives columns a value."""
     cols = [c for c in table.c if c.name != "id"]
-    picked = [literal(target).label("machine_id") if c.name == "machine_id" else c for c in cols]
+    given = {"machine_id": target, **(set_ or {})}
+    picked = [literal(given[c.name]).label(c.name) if c.name in given else c for c in cols]
     s.execute(insert(table).from_select([c.name for c in cols],
                                         select(*picked).where(table.c.machine_id == source, *where)))
 
 
 def _copy_readings(s: Session, source: str, target: str) -> None:
-    """The measurements of ``source`` and its points' newest spectra, as ``target``'s."""
+    """The measurements of ``source``, its points' newest spectra and its stored status,
+    as ``target``'s (the status without alarms: copies carry none)."""
     snaps = SpectrumSnapshot.__table__.c
     newest = select(func.max(snaps.ts)).where(snaps.machine_id == source).scalar_subquery()
     _copy(s, Measurement.__table__, source, target)
     _copy(s, SpectrumSnapshot.__table__, source, target, snaps.ts == newest)
+    _copy(s, MachineStatus.__table__, source, target, set_={"severity_rank": 0, "active_alarms": 0})

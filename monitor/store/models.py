@@ -16,7 +16,8 @@ Tables (see docs/store.md for the full schema and the retention policy):
   ``audit_events`` every change to them, with who, when and from where.
 - ``dead_letters``: rejected messages with their reason and first bytes.
 - ``detector_state``: one JSON snapshot per machine so a restarted service can rebuild
-  its detectors; ``passage_trackers`` the state of its live passage trackers beside it.
+  its detectors; ``passage_trackers`` the state of its live passage trackers beside it;
+  ``machine_status`` the retained status the service last published for it (the overview).
 - ``passages``: the resonance passages of the run-ups and coast-downs the service saw,
   with their Bode points; one matching no stored mode is a candidate mode an engineer
   accepts or rejects.
@@ -464,6 +465,35 @@ class DetectorState(Base):
     )
     state: Mapped[dict[str, Any]] = mapped_column(JSON)
     ts: Mapped[dt.datetime | None] = mapped_column(UTCDateTime)
+    updated_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
+
+
+class MachineStatus(Base):
+    """The retained status of one machine (monitor/service/payloads.py, docs/mqtt.md), as
+    the service last published it, written in the transaction that built it. ``status``
+    is the published body; the other columns repeat the parts the overview filters and
+    sorts on: the worst severity of the active alarms (``severity_rank``, 0 with none,
+    monitor.detection.alarms.severity_rank) and their count, the running speed, the worst
+    ISO 20816 zone with its point and overall level (mm/s RMS), and the nearest margin
+    with its shortfall against the required margin (``margin_gap_pct``, percentage points)."""
+
+    __tablename__ = "machine_status"
+
+    machine_id: Mapped[str] = mapped_column(
+        String(64), ForeignKey("machines.id", ondelete="CASCADE"), primary_key=True
+    )
+    ts: Mapped[dt.datetime | None] = mapped_column(UTCDateTime)
+    severity_rank: Mapped[int] = mapped_column(Integer, default=0)
+    active_alarms: Mapped[int] = mapped_column(Integer, default=0)
+    speed_hz: Mapped[float | None] = mapped_column(Float)
+    speed_source: Mapped[str | None] = mapped_column(String(16))
+    speed_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime)
+    zone: Mapped[str | None] = mapped_column(String(8))
+    zone_point: Mapped[str | None] = mapped_column(String(64))
+    overall_mm_s_rms: Mapped[float | None] = mapped_column(Float)
+    margin_gap_pct: Mapped[float | None] = mapped_column(Float)
+    nearest_margin: Mapped[dict[str, Any] | None] = mapped_column(JSON)
+    status: Mapped[dict[str, Any]] = mapped_column(JSON)
     updated_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
 
 
