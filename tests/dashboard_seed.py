@@ -26,7 +26,7 @@ import functools
 import json
 
 import numpy as np
-from sqlalchemy import Table, func, insert, literal, select
+from sqlalchemy import Table, delete, func, insert, literal, select
 from sqlalchemy.orm import Session
 
 from monitor.config import load_settings
@@ -41,8 +41,16 @@ from monitor.sim.simulate import MachineModel, ModalMode, simulate_reading
 from monitor.store.auth import create_user
 from monitor.store.db import make_engine, session_factory
 from monitor.store.migrate import upgrade_engine
-from monitor.store.models import MachineStatus, Measurement, SpectrumSnapshot
+from monitor.store.models import (
+    Machine,
+    MachineStatus,
+    Measurement,
+    MeasurementPoint,
+    Mode,
+    SpectrumSnapshot,
+)
 from monitor.store.registry_sync import import_registry
+from monitor.store.statuses import NORMAL_RANK
 
 T_END = dt.datetime(2026, 3, 10, 12, 0, tzinfo=dt.UTC)
 STEP = dt.timedelta(minutes=10)
@@ -158,4 +166,40 @@ def _copy_readings(s: Session, source: str, target: str) -> None:
     newest = select(func.max(snaps.ts)).where(snaps.machine_id == source).scalar_subquery()
     _copy(s, Measurement.__table__, source, target)
     _copy(s, SpectrumSnapshot.__table__, source, target, snaps.ts == newest)
-    _copy(s, MachineStatus.__table__, source, target, set_={"severity_rank": 0, "active_alarms": 0})
+    # In place of the blank status the registry import gave it.
+    s.execute(delete(MachineStatus).where(MachineStatus.machine_id == target))
+    _copy(s, MachineStatus.__table__, source, target, set_={"state_rank": NORMAL_RANK, "active_alarms": 0})
+
+
+def seed_large(url: str, machines: int, readings_per_point: int = 4, *, detected: int = 3) -> None:
+    """A plant of ``machines`` machines for the overview's scale (its statement count and
+    benchmark): the first ``detected`` seeded as :func:`seed` does (readings, alarms and
+    statuses through the service), the others added in bulk as copies of them, registry
+    rows (machine, points, modes) and stored status (with its alarms: the overview reads
+    the status, not the alarm rows), with their own ids and names and no readings."""
+    seed(url, machines=detected, readings_per_point=readings_per_point, detected=detected)
+    engine = make_engine(url)
+    try:
+        with session_factory(engine)() as s:
+            sources = {t: [dict(r._mapping) for r in s.execute(select(t))]
+                       for t in (Machine.__table__, MeasurementPoint.__table__, Mode.__table__,
+                                 MachineStatus.__table__)}
+            for t, rows in sources.items():
+                by_machine: dict[str, list[dict]] = {}
+                for r in rows:
+                    by_machine.setdefault(r["machine_id" if "machine_id" in r else "id"], []).append(r)
+                new = []
+                for i in range(detected, machines):
+                    target = f"fan-{i:05d}"
+                    for r in by_machine.get(f"fan-{i % detected:03d}", ()):
+                        r = {k: v for k, v in r.items() if not (t is Mode.__table__ and k == "id")}
+                        if t is Machine.__table__:
+                            r.update(id=target, name=f"Dryer fan {i}", location=f"Hall {i % 4 + 1}", position=i)
+                        else:
+                            r["machine_id"] = target
+                        new.append(r)
+                for b in range(0, len(new), 2000):
+                    s.execute(insert(t), new[b:b + 2000])
+            s.commit()
+    finally:
+        engine.dispose()

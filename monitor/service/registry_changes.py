@@ -26,6 +26,7 @@ from monitor.service.payloads import alarm_events, retained_statuses
 from monitor.store import record_transitions
 from monitor.store.models import DetectorState
 from monitor.store.models import Machine as MachineRow
+from monitor.store.statuses import drop_statuses
 from monitor.store.writes import save_detector_states
 
 log = logging.getLogger("whirlwatch.service")
@@ -135,6 +136,7 @@ class RegistryChanges:
             state, trans = retire_state(row.state, core.clock())
             ids = record_transitions(s, trans) if trans else []
             save_detector_states(s, {machine: (state, row.ts)})
+            drop_statuses(s, [machine])  # as its retained status is removed
             out = Outcome(OutcomeKind.RETIRED, machine=machine, events=alarm_events(s, trans, ids, []))
         log.info("machine retired: alarms closed, status removed", extra={
             "machine": machine, "alarms": [t.alarm_id for t in trans]})

@@ -108,6 +108,8 @@ class Base(DeclarativeBase):
 
 class Machine(Base):
     __tablename__ = "machines"
+    # The overview's order by name read in index order.
+    __table_args__ = (Index(None, "name", "id"),)
 
     id: Mapped[str] = mapped_column(String(64), primary_key=True)
     name: Mapped[str] = mapped_column(String(200), default="")
@@ -469,21 +471,25 @@ class DetectorState(Base):
 
 
 class MachineStatus(Base):
-    """The retained status of one machine (monitor/service/payloads.py, docs/mqtt.md), as
-    the service last published it, written in the transaction that built it. ``status``
-    is the published body; the other columns repeat the parts the overview filters and
-    sorts on: the worst severity of the active alarms (``severity_rank``, 0 with none,
-    monitor.detection.alarms.severity_rank) and their count, the running speed, the worst
-    ISO 20816 zone with its point and overall level (mm/s RMS), and the nearest margin
-    with its shortfall against the required margin (``margin_gap_pct``, percentage points)."""
+    """The retained status of one active machine (monitor/service/payloads.py,
+    docs/mqtt.md), as the service last built it, written in the transaction that built
+    it; a blank one (no data) for a machine the service has not reported on yet
+    (monitor/store/statuses.py). ``status`` is the body; the other columns repeat the
+    parts the overview filters and sorts on: ``state_rank`` (0 severe, 1 alert, 2
+    advisory: the worst severity of the active alarms; 3 normal; 4 no data yet) and the
+    alarms' count, the running speed, the worst ISO 20816 zone with its point and overall
+    level (mm/s RMS), and the nearest margin with its shortfall against the required
+    margin (``margin_gap_pct``, percentage points)."""
 
     __tablename__ = "machine_status"
+    # The overview's default order (worst first, then machine id) read in index order.
+    __table_args__ = (Index(None, "state_rank", "machine_id"),)
 
     machine_id: Mapped[str] = mapped_column(
         String(64), ForeignKey("machines.id", ondelete="CASCADE"), primary_key=True
     )
     ts: Mapped[dt.datetime | None] = mapped_column(UTCDateTime)
-    severity_rank: Mapped[int] = mapped_column(Integer, default=0)
+    state_rank: Mapped[int] = mapped_column(Integer)
     active_alarms: Mapped[int] = mapped_column(Integer, default=0)
     speed_hz: Mapped[float | None] = mapped_column(Float)
     speed_source: Mapped[str | None] = mapped_column(String(16))

@@ -3,9 +3,13 @@ sorted in the database.
 
 Each machine's summary is the retained status the service built and stored
 (``machine_status``, monitor/store/statuses.py) when its readings, speed or alarms last
-changed it; nothing is worked out again per request. A page costs three statements
-whatever the number of machines: the page itself (``LIMIT``/``OFFSET`` on the filtered,
-sorted rows), the number of machines the filters match and the plant's count by state.
+changed it; nothing is worked out again per request. Every active machine has one status
+row, so a page is two statements whatever the number of machines (three with a filter):
+the page itself (``LIMIT``/``OFFSET`` on the filtered, sorted rows), the plant's count by
+state from the status table's index, and with filters the number they match. The default
+order (worst first, then machine id) and the order by name are read in index order
+and stop at the page; the other orders and the text, group and zone filters go through
+the machines.
 """
 
 from __future__ import annotations
@@ -13,13 +17,14 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Any
 
-from sqlalchemy import ColumnElement, and_, case, func, literal_column, or_, select
+from sqlalchemy import ColumnElement, func, or_, select
 from sqlalchemy.orm import Session
 
 from monitor.detection.alarms import LEVELS, severity_rank
 from monitor.model.timefmt import iso_utc
 from monitor.store.models import Machine, MachineStatus
 from monitor.store.reads.evaluations import nearest_margin
+from monitor.store.statuses import NO_DATA_RANK, NORMAL_RANK
 
 #: What a machine's row of the overview says of it.
 OVERVIEW_STATES = ("alarm", "normal", "no_data")
@@ -30,25 +35,10 @@ SORT_KEYS = ("name", "location", "state", "speed", "margin", "zone", "alarms", "
 MAX_OVERVIEW_PAGE = 500
 
 _S = MachineStatus
-# The state names are SQL text, not parameters: PostgreSQL groups by the expression only
-# when the one in GROUP BY is the very same text as the one selected.
-#: alarm with an open alarm; no_data before any reading or speed (and with no alarm).
-machine_state = case(
-    (func.coalesce(_S.active_alarms, 0) > 0, literal_column("'alarm'")),
-    (and_(_S.ts.is_(None), _S.speed_at.is_(None)), literal_column("'no_data'")),
-    else_=literal_column("'normal'"),
-)
-#: Worst first: severe, alert, advisory, then normal, then no data.
-_STATE_ORDER = case(
-    (func.coalesce(_S.active_alarms, 0) > 0, 3 - _S.severity_rank),
-    (and_(_S.ts.is_(None), _S.speed_at.is_(None)), 5),
-    else_=4,
-)
 _SORT_COLUMNS: dict[str, Any] = {
-    "name": Machine.name, "location": Machine.location, "state": _STATE_ORDER, "speed": _S.speed_hz,
+    "name": Machine.name, "location": Machine.location, "state": _S.state_rank, "speed": _S.speed_hz,
     # The shortfall against the required margin: the tightest machine first.
-    "margin": _S.margin_gap_pct, "zone": _S.zone, "alarms": func.coalesce(_S.active_alarms, 0),
-    "last_reading": _S.ts,
+    "margin": _S.margin_gap_pct, "zone": _S.zone, "alarms": _S.active_alarms, "last_reading": _S.ts,
 }
 
 
@@ -69,6 +59,10 @@ class OverviewQuery:
     offset: int = 0
     limit: int = 50
 
+    @property
+    def filtered(self) -> bool:
+        return any(v is not None for v in (self.text, self.group, self.state, self.severity, self.zone))
+
 
 def _where(q: OverviewQuery) -> list[ColumnElement[bool]]:
     conds: list[ColumnElement[bool]] = [Machine.active.is_(True)]
@@ -78,10 +72,12 @@ def _where(q: OverviewQuery) -> list[ColumnElement[bool]]:
                            for c in (Machine.name, Machine.id, Machine.location))))
     if q.group is not None:
         conds.append(Machine.location == q.group)
-    if q.state is not None:
-        conds.append(machine_state == q.state)
+    if q.state == "alarm":
+        conds.append(_S.state_rank < NORMAL_RANK)
+    elif q.state is not None:
+        conds.append(_S.state_rank == (NORMAL_RANK if q.state == "normal" else NO_DATA_RANK))
     if q.severity is not None:
-        conds.append(and_(_S.active_alarms > 0, _S.severity_rank == severity_rank(q.severity)))
+        conds.append(_S.state_rank == NORMAL_RANK - severity_rank(q.severity))
     if q.zone is not None:
         conds.append(_S.zone == q.zone)
     return conds
@@ -91,43 +87,51 @@ def _order(sort: str) -> list[Any]:
     key = sort.removeprefix("-")
     col = _SORT_COLUMNS[key]
     first = col.desc() if sort.startswith("-") else col.asc()
-    # A machine without the value comes last either way; then by name and id.
-    return [first.nulls_last(), Machine.name, Machine.id]
+    if key == "name":
+        return [first, Machine.id.desc() if sort.startswith("-") else Machine.id]
+    # A machine without the value comes last either way; ties by machine id.
+    return [first if key == "state" else first.nulls_last(), _S.machine_id]
+
+
+def _state(rank: int) -> str:
+    return "alarm" if rank < NORMAL_RANK else ("normal" if rank == NORMAL_RANK else "no_data")
 
 
 def _item(r: Any) -> dict[str, Any]:
     nm = r.nearest_margin
     return {
         "id": r.id, "name": r.name or r.id, "location": r.location, "class": r.machine_class,
-        "state": r.state,
+        "state": _state(r.state_rank),
         "speed_hz": r.speed_hz, "speed_rpm": None if r.speed_hz is None else r.speed_hz * 60.0,
         "speed_at": iso_utc(r.speed_at), "speed_source": r.speed_source,
         "last_reading_at": iso_utc(r.ts),
         "nearest_margin": nearest_margin([nm]) if isinstance(nm, dict) and "mode" in nm else None,
         "worst_zone": None if r.zone is None else {
             "point": r.zone_point, "zone": r.zone, "overall_mm_s_rms": r.overall_mm_s_rms},
-        "active_alarms": r.active_alarms or 0,
-        "worst_severity": LEVELS[r.severity_rank] if r.active_alarms else None,
+        "active_alarms": r.active_alarms,
+        "worst_severity": LEVELS[NORMAL_RANK - r.state_rank] if r.state_rank < NORMAL_RANK else None,
     }
 
 
 def overview_page(s: Session, q: OverviewQuery) -> dict[str, Any]:
-    """One page of the overview (three statements): ``items`` (the machines of the page,
-    each with its stored status), ``next`` (the offset of the next page, or None),
-    ``total`` (machines the filters match) and ``counts`` (active machines by state)."""
+    """One page of the overview: ``items`` (the machines of the page, each with its
+    stored status), ``next`` (the offset of the next page, or None), ``total`` (machines
+    the filters match) and ``counts`` (active machines by state)."""
     conds = _where(q)
-    joined = select(Machine.id).outerjoin(_S, _S.machine_id == Machine.id)
     rows = s.execute(
-        select(Machine.id, Machine.name, Machine.location, Machine.machine_class, machine_state.label("state"),
-               _S.ts, _S.severity_rank, _S.active_alarms, _S.speed_hz, _S.speed_source, _S.speed_at,
+        select(Machine.id, Machine.name, Machine.location, Machine.machine_class,
+               _S.ts, _S.state_rank, _S.active_alarms, _S.speed_hz, _S.speed_source, _S.speed_at,
                _S.zone, _S.zone_point, _S.overall_mm_s_rms, _S.nearest_margin)
-        .outerjoin(_S, _S.machine_id == Machine.id)
+        .select_from(_S).join(Machine, Machine.id == _S.machine_id)
         .where(*conds).order_by(*_order(q.sort)).offset(q.offset).limit(q.limit + 1)).all()
-    total = s.execute(joined.with_only_columns(func.count()).where(*conds)).scalar_one()
+    # Every active machine has one status row (and only they): counted from its index.
     counts = dict.fromkeys(OVERVIEW_STATES, 0)
-    for state, n in s.execute(joined.with_only_columns(machine_state, func.count())
-                              .where(Machine.active.is_(True)).group_by(machine_state)):
-        counts[state] = n
+    for rank, n in s.execute(select(_S.state_rank, func.count()).group_by(_S.state_rank)):
+        counts[_state(rank)] += n
+    total = sum(counts.values())
+    if q.filtered:
+        total = s.execute(select(func.count()).select_from(_S).join(Machine, Machine.id == _S.machine_id)
+                          .where(*conds)).scalar_one()
     more = len(rows) > q.limit
     return {"items": [_item(r) for r in rows[:q.limit]], "next": q.offset + q.limit if more else None,
             "total": total, "counts": counts}
@@ -137,4 +141,3 @@ def machine_groups(s: Session) -> list[str]:
     """The locations of the active machines, for the overview's group filter."""
     return list(s.scalars(select(Machine.location).where(Machine.active.is_(True), Machine.location != "")
                           .distinct().order_by(Machine.location)))
-

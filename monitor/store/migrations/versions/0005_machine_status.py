@@ -5,8 +5,10 @@
   it, with the parts the overview filters and sorts on as columns (worst severity rank and
   count of the active alarms, running speed, worst zone, nearest margin and its shortfall).
 
-A database upgraded to this revision has no rows yet: each machine's row appears with the
-first status the service builds for it (its next reading, speed message or alarm change).
+Every active machine has one row: the upgrade writes a blank one (no data yet) for each,
+which the service replaces with the first status it builds for the machine (its next
+reading, speed message or alarm change). Indexes serve the overview's default orders:
+(``state_rank``, ``machine_id``) and machines (``name``, ``id``).
 
 Revision ID: 0005
 Revises: 0004
@@ -15,6 +17,7 @@ Create Date: 2026-12-04
 
 from __future__ import annotations
 
+import datetime as dt
 from collections.abc import Sequence
 
 import sqlalchemy as sa
@@ -34,7 +37,7 @@ def upgrade() -> None:
         "machine_status",
         sa.Column("machine_id", sa.String(length=64), nullable=False),
         sa.Column("ts", UTC_TIME, nullable=True),
-        sa.Column("severity_rank", sa.Integer(), nullable=False),
+        sa.Column("state_rank", sa.Integer(), nullable=False),
         sa.Column("active_alarms", sa.Integer(), nullable=False),
         sa.Column("speed_hz", sa.Float(), nullable=True),
         sa.Column("speed_source", sa.String(length=16), nullable=True),
@@ -52,7 +55,29 @@ def upgrade() -> None:
         ),
         sa.PrimaryKeyConstraint("machine_id", name=op.f("pk_machine_status")),
     )
+    op.create_index(op.f("ix_machine_status_state_rank_machine_id"), "machine_status",
+                    ["state_rank", "machine_id"], unique=False)
+    op.create_index(op.f("ix_machines_name_id"), "machines", ["name", "id"], unique=False)
+    bind = op.get_bind()
+    machines = sa.table("machines", sa.column("id", sa.String), sa.column("active", sa.Boolean))
+    ids = [i for (i,) in bind.execute(sa.select(machines.c.id).where(machines.c.active.is_(True)))]
+    if ids:
+        # A frozen copy of monitor/store/statuses.py blank_status: the body of no data yet.
+        status = sa.table("machine_status", sa.column("machine_id", sa.String), sa.column("state_rank", sa.Integer),
+                          sa.column("active_alarms", sa.Integer), sa.column("status", sa.JSON),
+                          sa.column("updated_at", UTC_TIME))
+        now = dt.datetime.now(dt.UTC)
+        if bind.dialect.name == "sqlite":
+            now = now.replace(tzinfo=None)
+        bind.execute(status.insert(), [
+            {"machine_id": i, "state_rank": 4, "active_alarms": 0, "updated_at": now,
+             "status": {"machine": i, "ts": None, "state": "normal", "speed_hz": None, "speed_source": None,
+                        "speed_at": None, "nearest_margin": None, "zone": None, "zones": {},
+                        "overall_mm_s_rms": {}, "worst_zone": None, "active_alarms": []}}
+            for i in ids])
 
 
 def downgrade() -> None:
+    op.drop_index(op.f("ix_machines_name_id"), table_name="machines")
+    op.drop_index(op.f("ix_machine_status_state_rank_machine_id"), table_name="machine_status")
     op.drop_table("machine_status")
