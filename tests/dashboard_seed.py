@@ -175,8 +175,9 @@ def seed_large(url: str, machines: int, readings_per_point: int = 4, *, detected
     """A plant of ``machines`` machines for the overview's scale (its statement count and
     benchmark): the first ``detected`` seeded as :func:`seed` does (readings, alarms and
     statuses through the service), the others added in bulk as copies of them, registry
-    rows (machine, points, modes) and stored status (with its alarms: the overview reads
-    the status, not the alarm rows), with their own ids and names and no readings."""
+    rows (machine, points, modes) and stored status (the odd ones' without its alarms, so
+    the plant has both; the overview reads the status, not the alarm rows), with their own
+    ids and names and no readings."""
     seed(url, machines=detected, readings_per_point=readings_per_point, detected=detected)
     engine = make_engine(url)
     try:
@@ -197,6 +198,8 @@ def seed_large(url: str, machines: int, readings_per_point: int = 4, *, detected
                             r.update(id=target, name=f"Dryer fan {i}", location=f"Hall {i % 4 + 1}", position=i)
                         else:
                             r["machine_id"] = target
+                        if t is MachineStatus.__table__ and i % 2:
+                            r.update(state_rank=NORMAL_RANK, active_alarms=0)
                         new.append(r)
                 for b in range(0, len(new), 2000):
                     s.execute(insert(t), new[b:b + 2000])
