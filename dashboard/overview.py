@@ -46,7 +46,7 @@ def parse_overview(args: Mapping[str, str]) -> reads.OverviewQuery:
     """The overview's filters, sort and page from query parameters (docs/api.md,
     "Machines"); an empty parameter means not given."""
     sorts = (*reads.SORT_KEYS, *(f"-{k}" for k in reads.SORT_KEYS))
-    raw_limit = args.get("limit") or str(DEFAULT_OVERVIEW_PAGE)
+    raw_limit = args.get("limit", str(DEFAULT_OVERVIEW_PAGE))
     top = reads.MAX_OVERVIEW_PAGE
     if not re.fullmatch(r"[0-9]{1,4}", raw_limit) or not 1 <= int(raw_limit) <= top:
         raise BadRequest(f"Parameter 'limit' must be an integer 1-{top}, got {raw_limit!r}.")
