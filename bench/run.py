@@ -2,7 +2,8 @@
 
 Usage: ``python bench/run.py [SECTION ...]`` (default: every section). Each section is a
 module ``bench/bench_<name>.py`` with a ``run(quick: bool) -> list[dict]`` function; each
-row has ``name``, ``value``, ``unit`` and optionally ``floor``, ``ratio``, ``target``.
+row has ``name``, ``value``, ``unit`` and optionally ``floor``, ``ratio``, ``range`` (the
+lowest and highest of the ratio, or of the value, over the turns of one run), ``target``.
 Machines here are noisy, so targets are ratios to a floor measured in the same run.
 """
 
@@ -52,6 +53,8 @@ def main(argv: list[str] | None = None) -> int:
                 line += f"   floor {row['floor']:.4g} {row.get('unit', '')}"
             if "ratio" in row:
                 line += f"   ratio {row['ratio']:.3g}"
+            if "range" in row:
+                line += f"   range {row['range'][0]:.3g}-{row['range'][1]:.3g}"
             if "target" in row:
                 if "met" not in row:
                     raise ValueError(f"bench row {row['name']!r} states a target but no verdict")

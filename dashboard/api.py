@@ -23,6 +23,7 @@ from dashboard.alarms import (
 from dashboard.db import db_session
 from dashboard.errors import BadRequest, Conflict, NotFound
 from dashboard.machines import decide_candidate
+from dashboard.overview import parse_overview
 from dashboard.security import require
 from monitor.model.registry import RegistryError
 from monitor.model.registry_file import parse_mode
@@ -64,7 +65,11 @@ def openapi():
 @bp.get("/machines")
 @require("viewer")
 def machines():
-    return jsonify({"items": reads.machine_summaries(db_session()), "next": None})
+    """A page of the overview: filtered, sorted and cut in the database, each machine
+    with the retained status the service stored (monitor/store/reads/overview.py)."""
+    page = reads.overview_page(db_session(), parse_overview(request.args))
+    page["next"] = None if page["next"] is None else str(page["next"])
+    return jsonify(page)
 
 
 @bp.get("/machines/<machine_id>")

@@ -13,7 +13,9 @@ The other machines only make the plant large (the statement-count test, the benc
 their rows are copies, made in SQL (``INSERT ... SELECT``), of the rows the service stored
 for a detected machine, with the machine id replaced (the evaluation JSON inside still
 names the machine it was made for). No row is shaped here. They carry the measurements and
-each point's newest spectra, no alarms.
+each point's newest spectra and the service's stored status (monitor/store/statuses.py),
+no alarms (the status's alarm count set to none; its body still names the machine and the
+alarms it was made for).
 """
 
 from __future__ import annotations
@@ -24,7 +26,7 @@ import functools
 import json
 
 import numpy as np
-from sqlalchemy import Table, func, insert, literal, select
+from sqlalchemy import Table, delete, func, insert, literal, select
 from sqlalchemy.orm import Session
 
 from monitor.config import load_settings
@@ -39,8 +41,16 @@ from monitor.sim.simulate import MachineModel, ModalMode, simulate_reading
 from monitor.store.auth import create_user
 from monitor.store.db import make_engine, session_factory
 from monitor.store.migrate import upgrade_engine
-from monitor.store.models import Measurement, SpectrumSnapshot
+from monitor.store.models import (
+    Machine,
+    MachineStatus,
+    Measurement,
+    MeasurementPoint,
+    Mode,
+    SpectrumSnapshot,
+)
 from monitor.store.registry_sync import import_registry
+from monitor.store.statuses import NORMAL_RANK
 
 T_END = dt.datetime(2026, 3, 10, 12, 0, tzinfo=dt.UTC)
 STEP = dt.timedelta(minutes=10)
@@ -139,18 +149,60 @@ def _through_service(url: str, messages: tuple[tuple[str, bytes], ...]) -> None:
         svc.store.close()
 
 
-def _copy(s: Session, table: Table, source: str, target: str, *where) -> None:
+def _copy(s: Session, table: Table, source: str, target: str, *where, set_: dict | None = None) -> None:
     """Copy the rows of machine ``source`` in ``table`` (all columns but the id) to
-    machine ``target``, in one ``INSERT ... SELECT``."""
+    machine ``target``, in one ``INSERT ... SELECT``; ``set_`` gives columns a value."""
     cols = [c for c in table.c if c.name != "id"]
-    picked = [literal(target).label("machine_id") if c.name == "machine_id" else c for c in cols]
+    given = {"machine_id": target, **(set_ or {})}
+    picked = [literal(given[c.name]).label(c.name) if c.name in given else c for c in cols]
     s.execute(insert(table).from_select([c.name for c in cols],
                                         select(*picked).where(table.c.machine_id == source, *where)))
 
 
 def _copy_readings(s: Session, source: str, target: str) -> None:
-    """The measurements of ``source`` and its points' newest spectra, as ``target``'s."""
+    """The measurements of ``source``, its points' newest spectra and its stored status,
+    as ``target``'s (the status without alarms: copies carry none)."""
     snaps = SpectrumSnapshot.__table__.c
     newest = select(func.max(snaps.ts)).where(snaps.machine_id == source).scalar_subquery()
     _copy(s, Measurement.__table__, source, target)
     _copy(s, SpectrumSnapshot.__table__, source, target, snaps.ts == newest)
+    # In place of the blank status the registry import gave it.
+    s.execute(delete(MachineStatus).where(MachineStatus.machine_id == target))
+    _copy(s, MachineStatus.__table__, source, target, set_={"state_rank": NORMAL_RANK, "active_alarms": 0})
+
+
+def seed_large(url: str, machines: int, readings_per_point: int = 4, *, detected: int = 3) -> None:
+    """A plant of ``machines`` machines for the overview's scale (its statement count and
+    benchmark): the first ``detected`` seeded as :func:`seed` does (readings, alarms and
+    statuses through the service), the others added in bulk as copies of them, registry
+    rows (machine, points, modes) and stored status (the odd ones' without its alarms, so
+    the plant has both; the overview reads the status, not the alarm rows), with their own
+    ids and names and no readings."""
+    seed(url, machines=detected, readings_per_point=readings_per_point, detected=detected)
+    engine = make_engine(url)
+    try:
+        with session_factory(engine)() as s:
+            sources = {t: [dict(r._mapping) for r in s.execute(select(t))]
+                       for t in (Machine.__table__, MeasurementPoint.__table__, Mode.__table__,
+                                 MachineStatus.__table__)}
+            for t, rows in sources.items():
+                by_machine: dict[str, list[dict]] = {}
+                for r in rows:
+                    by_machine.setdefault(r["machine_id" if "machine_id" in r else "id"], []).append(r)
+                new = []
+                for i in range(detected, machines):
+                    target = f"fan-{i:05d}"
+                    for r in by_machine.get(f"fan-{i % detected:03d}", ()):
+                        r = {k: v for k, v in r.items() if not (t is Mode.__table__ and k == "id")}
+                        if t is Machine.__table__:
+                            r.update(id=target, name=f"Dryer fan {i}", location=f"Hall {i % 4 + 1}", position=i)
+                        else:
+                            r["machine_id"] = target
+                        if t is MachineStatus.__table__ and i % 2:
+                            r.update(state_rank=NORMAL_RANK, active_alarms=0)
+                        new.append(r)
+                for b in range(0, len(new), 2000):
+                    s.execute(insert(t), new[b:b + 2000])
+            s.commit()
+    finally:
+        engine.dispose()

@@ -25,7 +25,7 @@ ARTIFACTS = Path(__file__).resolve().parent.parent / "test-artifacts"
 pytestmark = [pytest.mark.browser, pytest.mark.slow]
 
 try:
-    from playwright.sync_api import sync_playwright
+    from playwright.sync_api import expect, sync_playwright
 except ImportError:  # pragma: no cover
     sync_playwright = None
 
@@ -125,9 +125,22 @@ def test_walkthrough(server, page):
     # A machine named <script> shows as text.
     assert page.locator("#machines-table tbody tr[data-machine='fan-002'] a").inner_text() == "<script>alert(1)</script>"
     assert page.locator("#caution").is_visible()
+    # The overview's filters, sort and pages are the server's (docs/api.md, "Machines").
+    assert page.locator("#page-where").inner_text() == "1–6 of 6"
     page.fill("#f-text", "Dryer fan 4")
-    assert rows.count() == 1
+    expect(rows).to_have_count(1)
+    expect(page.locator("#page-where")).to_have_text("1–1 of 1")
     page.fill("#f-text", "")
+    expect(rows).to_have_count(6)
+    page.click("#machines-table th[data-key='name']")
+    expect(page.locator("#machines-table tbody tr").first).to_have_attribute("data-machine", "fan-002")
+    page.click("#machines-table th[data-key='name']")
+    expect(page.locator("#machines-table tbody tr").first).to_have_attribute("data-machine", "fan-005")
+    page.select_option("#f-state", "alarm")
+    expect(rows).not_to_have_count(6)
+    assert all(c == "state-row-alarm" for c in rows.evaluate_all("rs => rs.map(r => r.className)"))
+    page.select_option("#f-state", "")
+    expect(rows).to_have_count(6)
     page.screenshot(path=str(ARTIFACTS / "overview.png"), full_page=True)
 
     page.click("#machines-table tbody tr[data-machine='fan-001'] a")

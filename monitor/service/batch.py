@@ -19,7 +19,8 @@
 6. :func:`record_alarms`: alarm transitions in arrival order, each with its evidence
    spectra (monitor/service/evidence.py); the alarm events to publish;
 7. ``DetectorStates.save``: each machine's detector state (and passage trackers') written once;
-8. :func:`attach_statuses`: one retained status per machine touched.
+8. :func:`attach_statuses`: one retained status per machine touched, stored for the
+   overview (``machine_status``).
 
 A crash at any instant leaves either nothing or everything of a batch committed. A reading
 another process stored between step 2 and step 5 makes the insert come back short
@@ -54,7 +55,7 @@ from monitor.service.items import (
     WaveformMessage,
 )
 from monitor.service.passages import FoundPassage, feed_reading
-from monitor.service.payloads import StatusBoard, alarm_events
+from monitor.service.payloads import StatusBoard, alarm_events, retained_statuses
 from monitor.service.states import DetectorStates
 from monitor.store import add_dead_letter, record_transitions
 from monitor.store.models import Measurement, PassageRow, SpectrumSnapshot, SpeedReadingRow, utcnow
@@ -132,7 +133,7 @@ def commit_batch(core: Core, items: Sequence[Item], *, check_all: bool = True) -
             analysed = [it.analysis for it in fresh if isinstance(it, WaveformMessage) and it.analysis is not None]
             outcomes.update(record_alarms(s, evaluated, taken.outside, core.latest, analysed, taken.evaluators))
             core.states.save(c, touched)
-            attach_statuses(evaluated, outcomes, taken.evaluators, core.board)
+            attach_statuses(c, evaluated, outcomes, taken.evaluators, core.board)
     core.states.saved(touched)
     core.cadence.remember(kept)
     with core.lock:  # the registry follower (periodic thread) drops retired points' spectra
@@ -191,7 +192,8 @@ def evaluate(readings: Sequence[Decoded], evaluators: Mapping[str, MachineEvalua
         if isinstance(it, WaveformMessage):
             evaluation = ev.evaluate(it.analysis, it.reading)
             out.append(Evaluated(it, evaluation, list(evaluation.transitions)))
-            board.saw_waveform(it.machine, evaluation)
+            board.saw_waveform(it.machine, evaluation,
+                               it.analysis.speed_source if it.analysis is not None else "measured")
         else:
             r = it.reading
             out.append(Evaluated(it, None, ev.observe_speed(r) if r.speed_hz > 0 else []))
@@ -306,10 +308,12 @@ def record_alarms(s: Session, evaluated: Sequence[Evaluated], outside: Mapping[s
     return out
 
 
-def attach_statuses(evaluated: Sequence[Evaluated], outcomes: Mapping[Item, Outcome],
+def attach_statuses(conn: Connection, evaluated: Sequence[Evaluated], outcomes: Mapping[Item, Outcome],
                     evaluators: Mapping[str, MachineEvaluator], board: StatusBoard) -> None:
-    """The retained status once per machine, on its last outcome of the batch (a speed
-    message's too: the speed and the nearest margin follow the speed stream)."""
+    """The retained status once per machine, stored and put on its last outcome of the
+    batch (a speed message's too: the speed and the nearest margin follow the speed
+    stream)."""
     last = {e.item.machine: e.item for e in evaluated}
+    bodies = retained_statuses(conn, board, {m: evaluators[m] for m in last})
     for machine, item in last.items():
-        outcomes[item].status = board.status(machine, evaluators[machine])
+        outcomes[item].status = bodies[machine]

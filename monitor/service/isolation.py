@@ -20,7 +20,7 @@ from monitor.service.core import Core
 from monitor.service.failures import is_transient, printable, short_cause
 from monitor.service.faults import processing_failed
 from monitor.service.items import Item, Outcome, OutcomeKind, RejectedMessage
-from monitor.service.payloads import alarm_events
+from monitor.service.payloads import alarm_events, retained_statuses
 from monitor.store import add_dead_letter, record_transitions
 
 log = logging.getLogger("whirlwatch.service")
@@ -85,7 +85,7 @@ def set_aside(core: Core, it: Item, failure: BaseException) -> Outcome:
             core.states.save(s, {r.machine: r.ts})
             out = Outcome(OutcomeKind.PROCESSING_ERROR, machine=r.machine, reason="processing_error",
                           events=alarm_events(s, trans, ids, closed) if trans or closed else [],
-                          status=core.board.status(r.machine, ev) if trans or closed else None)
+                          status=retained_statuses(s, core.board, {r.machine: ev})[r.machine] if trans or closed else None)
         core.states.saved(machines)
         return out
 

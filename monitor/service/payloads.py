@@ -3,24 +3,27 @@
 
 The status is built from a :class:`MachineView` (the latest facts of the machine seen in
 its readings) and the machine's detector (its active alarms); the views of all machines
-are kept on a :class:`StatusBoard`. An alarm event is the alarm as the REST API shows it,
+are kept on a :class:`StatusBoard`. Each status built is also stored, in the transaction
+that built it (:func:`retained_statuses`; the overview reads it). An alarm event is the alarm as the REST API shows it,
 in its state after the transition, with the transition's own fields added.
 """
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
+from sqlalchemy import Connection
 from sqlalchemy.orm import Session
 
 from monitor.detection.alarms import Transition, severity_rank
 from monitor.detection.evaluator import MachineEvaluator
 from monitor.detection.margins import MarginRow
 from monitor.detection.results import ReadingEvaluation
-from monitor.model.timefmt import iso_utc
+from monitor.model.timefmt import iso_utc, parse_iso_utc
 from monitor.store import reads
+from monitor.store.statuses import save_statuses
 
 
 @dataclass
@@ -45,10 +48,32 @@ class MachineView:
     #: The speed came from a speed message since the status was last built: the nearest
     #: margin is computed at it.
     speed_due: bool = False
+    #: Each point's overall velocity level of its newest reading, mm/s RMS.
+    overall: dict[str, float | None] = field(default_factory=dict)
 
     def copy(self) -> MachineView:
         return MachineView(self.ts, self.speed_hz, self.speed_source, dict(self.zones), self.nearest,
-                           list(self.unseen), self.speed_ts, self.speed_due)
+                           list(self.unseen), self.speed_ts, self.speed_due, dict(self.overall))
+
+    @classmethod
+    def from_status(cls, body: dict[str, Any]) -> MachineView:
+        """The view a stored status body was built from (a restarted service carries on
+        from the status it last published, not from an empty one)."""
+        def epoch(text: Any) -> float | None:
+            return parse_iso_utc(text).timestamp() if isinstance(text, str) else None
+
+        return cls(ts=epoch(body.get("ts")), speed_hz=body.get("speed_hz"), speed_source=body.get("speed_source"),
+                   zones=dict(body.get("zones") or {}), nearest=body.get("nearest_margin"),
+                   speed_ts=epoch(body.get("speed_at")), overall=dict(body.get("overall_mm_s_rms") or {}))
+
+    def worst_zone(self) -> dict[str, Any] | None:
+        """The point in the worst ISO 20816 zone (the higher overall level on a tie):
+        ``{"point", "zone", "overall_mm_s_rms"}``, or None while no point has a zone."""
+        zoned = [(z, self.overall.get(p) or 0.0, p) for p, z in self.zones.items() if z in ZONES]
+        if not zoned:
+            return None
+        z, _, p = max(zoned)
+        return {"point": p, "zone": z, "overall_mm_s_rms": self.overall.get(p)}
 
     def nearest_margin(self, ev: MachineEvaluator) -> dict[str, Any] | None:
         if self.speed_due and self.speed_hz is not None:
@@ -69,7 +94,13 @@ class MachineView:
 
 
 def _nearest_json(m: MarginRow) -> dict[str, Any]:
-    return {"subject": m.subject, "margin_pct": m.margin_pct, "required_pct": m.required_pct, "status": m.status}
+    return {"subject": m.subject, "margin_pct": m.margin_pct, "required_pct": m.required_pct, "status": m.status,
+            "mode": m.mode, "mode_hz": m.mode_hz, "excitation": m.excitation, "order": m.order,
+            "excitation_hz": m.excitation_hz}
+
+
+#: The ISO 20816 evaluation zones, best to worst.
+ZONES = ("A", "B", "C", "D")
 
 
 class StatusBoard:
@@ -78,15 +109,17 @@ class StatusBoard:
     def __init__(self, machines: Iterable[str]) -> None:
         self._views: dict[str, MachineView] = {m: MachineView() for m in machines}
 
-    def saw_waveform(self, machine: str, evaluation: ReadingEvaluation) -> None:
-        """A waveform of ``machine`` was evaluated: its time, zone, and its speed when
-        sensor health accepted the reading and no newer speed is known."""
+    def saw_waveform(self, machine: str, evaluation: ReadingEvaluation, speed_source: str = "measured") -> None:
+        """A waveform of ``machine`` was evaluated: its time, zone and overall level, and its
+        speed (``speed_source``: 'measured' or 'estimated', as the reading's analysis says)
+        when sensor health accepted the reading and no newer speed is known."""
         view = self._views[machine]
         view.ts = max(view.ts or 0.0, evaluation.ts)
         view.zones[evaluation.point] = evaluation.zone
+        view.overall[evaluation.point] = evaluation.overall_velocity_mm_s_rms
         if evaluation.speed_hz is not None and evaluation.health.ok and (
                 view.speed_ts is None or evaluation.ts > view.speed_ts):
-            view.speed_hz, view.speed_ts, view.speed_source = evaluation.speed_hz, evaluation.ts, "reading"
+            view.speed_hz, view.speed_ts, view.speed_source = evaluation.speed_hz, evaluation.ts, speed_source
             view.speed_due = False
             view.unseen.append(evaluation)
 
@@ -113,6 +146,10 @@ class StatusBoard:
             "nearest_margin": view.nearest_margin(ev),
             "zone": max(zones) if zones else None,
             "zones": dict(view.zones),
+            "overall_mm_s_rms": dict(view.overall),
+            "worst_zone": view.worst_zone(),
+            "speed_source": view.speed_source,
+            "speed_at": iso_utc(view.speed_ts),
             "active_alarms": [
                 {"ref": a.id, "point": a.key.point, "kind": a.key.kind, "subject": a.key.subject,
                  "severity": a.severity, "state": a.state}
@@ -142,6 +179,23 @@ class StatusBoard:
         if view is not None:
             kept = set(points)
             view.zones = {p: z for p, z in view.zones.items() if p in kept}
+            view.overall = {p: v for p, v in view.overall.items() if p in kept}
+
+    def load(self, bodies: Iterable[dict[str, Any]]) -> None:
+        """Views rebuilt from the stored status bodies of machines this process monitors."""
+        for body in bodies:
+            if body.get("machine") in self._views:
+                self._views[body["machine"]] = MachineView.from_status(body)
+
+
+def retained_statuses(db: Session | Connection, board: StatusBoard,
+                      evaluators: Mapping[str, MachineEvaluator]) -> dict[str, dict[str, Any]]:
+    """The retained status of each machine of ``evaluators``, built from its view and
+    detector and stored (``machine_status``, for the overview) in the caller's
+    transaction, so the stored status is always the one published after the commit."""
+    bodies = {m: board.status(m, ev) for m, ev in evaluators.items()}
+    save_statuses(db, bodies.values())
+    return bodies
 
 
 def alarm_events(session: Session, trans: Sequence[Transition], ids: Sequence[int],

@@ -22,7 +22,7 @@ from monitor.service.core import Core
 from monitor.service.failures import short_cause
 from monitor.service.items import Outcome, OutcomeKind
 from monitor.service.logs import RepeatGate
-from monitor.service.payloads import alarm_events
+from monitor.service.payloads import alarm_events, retained_statuses
 from monitor.store import Store, apply_retention, reads, record_transitions
 from monitor.store.retention import RetentionPolicy
 
@@ -83,7 +83,7 @@ def check_stale(core: Core) -> list[Outcome]:
                 ids = record_transitions(s, trans) if trans else []
                 core.states.save(s, {mid: now})
                 out = Outcome(OutcomeKind.STALE, machine=mid, events=alarm_events(s, trans, ids, closed),
-                              status=core.board.status(mid, ev))
+                              status=retained_statuses(s, core.board, {mid: ev})[mid])
             core.states.saved([mid])
             return out
 
@@ -119,7 +119,7 @@ def sync_acknowledgements(core: Core) -> list[Outcome]:
                     return None  # another process applied them (its copy was newer)
                 core.states.save(s, {mid: core.clock()})
                 out = Outcome(OutcomeKind.ACKNOWLEDGED, machine=mid, events=alarm_events(s, [], [], mine),
-                              status=core.board.status(mid, evaluators[mid]))
+                              status=retained_statuses(s, core.board, {mid: evaluators[mid]})[mid])
             core.states.saved([mid])
             return out
 

@@ -22,10 +22,11 @@ from monitor.detection.stored_state import retire_state
 from monitor.service.core import Core
 from monitor.service.failures import is_transient, short_cause
 from monitor.service.items import Outcome, OutcomeKind
-from monitor.service.payloads import alarm_events
+from monitor.service.payloads import alarm_events, retained_statuses
 from monitor.store import record_transitions
 from monitor.store.models import DetectorState
 from monitor.store.models import Machine as MachineRow
+from monitor.store.statuses import drop_statuses
 from monitor.store.writes import save_detector_states
 
 log = logging.getLogger("whirlwatch.service")
@@ -91,8 +92,9 @@ class RegistryChanges:
                     kept = dict(s.execute(select(DetectorState.machine_id, DetectorState.ts)
                                           .where(DetectorState.machine_id.in_(sorted(closed)))).all())
                     core.states.save(s, {m: kept.get(m) for m in closed})
+                    bodies = retained_statuses(s, core.board, {m: evaluators[m] for m in closed})
                     done = [Outcome(OutcomeKind.REGISTRY, machine=m, events=alarm_events(s, [], [], trans),
-                                    status=core.board.status(m, evaluators[m])) for m, trans in closed.items()]
+                                    status=bodies[m]) for m, trans in closed.items()]
                 core.states.saved(closed)
                 return done
 
@@ -134,6 +136,7 @@ class RegistryChanges:
             state, trans = retire_state(row.state, core.clock())
             ids = record_transitions(s, trans) if trans else []
             save_detector_states(s, {machine: (state, row.ts)})
+            drop_statuses(s, [machine])  # as its retained status is removed
             out = Outcome(OutcomeKind.RETIRED, machine=machine, events=alarm_events(s, trans, ids, []))
         log.info("machine retired: alarms closed, status removed", extra={
             "machine": machine, "alarms": [t.alarm_id for t in trans]})

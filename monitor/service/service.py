@@ -196,6 +196,8 @@ class Service:
         )
         self._health = Health(self.store, self.core.retrier, self._stop)
         start = read_start_state(self.store)
+        # The status views carry on from the statuses last stored (and published).
+        self.core.board.load(start.statuses)
         # The latest reading time committed here per stream (the replay check's reference).
         self._committed: dict[StreamKey, float] = dict(start.last_ts)
         known = registry.by_id()

@@ -16,7 +16,8 @@ Tables (see docs/store.md for the full schema and the retention policy):
   ``audit_events`` every change to them, with who, when and from where.
 - ``dead_letters``: rejected messages with their reason and first bytes.
 - ``detector_state``: one JSON snapshot per machine so a restarted service can rebuild
-  its detectors; ``passage_trackers`` the state of its live passage trackers beside it.
+  its detectors; ``passage_trackers`` the state of its live passage trackers beside it;
+  ``machine_status`` the retained status the service last published for it (the overview).
 - ``passages``: the resonance passages of the run-ups and coast-downs the service saw,
   with their Bode points; one matching no stored mode is a candidate mode an engineer
   accepts or rejects.
@@ -107,6 +108,8 @@ class Base(DeclarativeBase):
 
 class Machine(Base):
     __tablename__ = "machines"
+    # The overview's order by name read in index order.
+    __table_args__ = (Index(None, "name", "id"),)
 
     id: Mapped[str] = mapped_column(String(64), primary_key=True)
     name: Mapped[str] = mapped_column(String(200), default="")
@@ -464,6 +467,39 @@ class DetectorState(Base):
     )
     state: Mapped[dict[str, Any]] = mapped_column(JSON)
     ts: Mapped[dt.datetime | None] = mapped_column(UTCDateTime)
+    updated_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
+
+
+class MachineStatus(Base):
+    """The retained status of one active machine (monitor/service/payloads.py,
+    docs/mqtt.md), as the service last built it, written in the transaction that built
+    it; a blank one (no data) for a machine the service has not reported on yet
+    (monitor/store/statuses.py). ``status`` is the body; the other columns repeat the
+    parts the overview filters and sorts on: ``state_rank`` (0 severe, 1 alert, 2
+    advisory: the worst severity of the active alarms; 3 normal; 4 no data yet) and the
+    alarms' count, the running speed, the worst ISO 20816 zone with its point and overall
+    level (mm/s RMS), and the nearest margin with its shortfall against the required
+    margin (``margin_gap_pct``, percentage points)."""
+
+    __tablename__ = "machine_status"
+    # The overview's default order (worst first, then machine id) read in index order.
+    __table_args__ = (Index(None, "state_rank", "machine_id"),)
+
+    machine_id: Mapped[str] = mapped_column(
+        String(64), ForeignKey("machines.id", ondelete="CASCADE"), primary_key=True
+    )
+    ts: Mapped[dt.datetime | None] = mapped_column(UTCDateTime)
+    state_rank: Mapped[int] = mapped_column(Integer)
+    active_alarms: Mapped[int] = mapped_column(Integer, default=0)
+    speed_hz: Mapped[float | None] = mapped_column(Float)
+    speed_source: Mapped[str | None] = mapped_column(String(16))
+    speed_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime)
+    zone: Mapped[str | None] = mapped_column(String(8))
+    zone_point: Mapped[str | None] = mapped_column(String(64))
+    overall_mm_s_rms: Mapped[float | None] = mapped_column(Float)
+    margin_gap_pct: Mapped[float | None] = mapped_column(Float)
+    nearest_margin: Mapped[dict[str, Any] | None] = mapped_column(JSON)
+    status: Mapped[dict[str, Any]] = mapped_column(JSON)
     updated_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
 
 

@@ -41,6 +41,7 @@ from monitor.store.models import (
 )
 from monitor.store.models import Machine as MachineRow
 from monitor.store.models import Mode as ModeRow
+from monitor.store.statuses import drop_statuses, ensure_statuses
 
 
 class UnknownEntry(LookupError):
@@ -371,6 +372,9 @@ def import_registry(
     for row in touched:
         row.registry_version = version
     session.flush()
+    # One status row per active machine (monitor/store/statuses.py).
+    ensure_statuses(session, wanted | set(report.machines_kept))
+    drop_statuses(session, report.machines_retired)
     return report
 
 

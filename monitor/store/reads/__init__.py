@@ -5,8 +5,10 @@ transaction (a dashboard request's session, a service unit of work). Page-level 
 issue a fixed number of statements whatever the number of machines or stored readings.
 By idea:
 
-- :mod:`~monitor.store.reads.machines`: the plant overview, one machine's page, its modes,
-  their history and the baseline restarts asked for;
+- :mod:`~monitor.store.reads.overview`: the plant overview, a page of machines with their
+  stored retained status, filtered and sorted in the database;
+- :mod:`~monitor.store.reads.machines`: one machine's page, its modes, their history and
+  the baseline restarts asked for;
 - :mod:`~monitor.store.reads.evaluations`: what the dashboard shows of the detector's
   stored evaluations, the margin table at a machine's speed, the zone limits of a point;
 - :mod:`~monitor.store.reads.trends`: decimated trends of a machine's points and of its
@@ -50,11 +52,19 @@ from monitor.store.reads.machines import (
     machine_detail,
     machine_list,
     machine_modes,
-    machine_summaries,
     mode_history,
     mode_json,
     mode_named,
     recent_baseline_restarts,
+)
+from monitor.store.reads.overview import (
+    MAX_OVERVIEW_PAGE,
+    OVERVIEW_STATES,
+    SORT_KEYS,
+    ZONES,
+    OverviewQuery,
+    machine_groups,
+    overview_page,
 )
 from monitor.store.reads.passages import find_passages, get_passage, passage_json
 from monitor.store.reads.people import (
@@ -112,7 +122,13 @@ __all__ = [
     "machine_detail",
     "machine_list",
     "machine_modes",
-    "machine_summaries",
+    "MAX_OVERVIEW_PAGE",
+    "OVERVIEW_STATES",
+    "OverviewQuery",
+    "SORT_KEYS",
+    "ZONES",
+    "machine_groups",
+    "overview_page",
     "machines_with_open_alarms",
     "margins_for",
     "mode_bands",

@@ -1,22 +1,19 @@
-"""Reads of the machines: the plant overview, one machine's page, its modes and their
-history, the baseline restarts asked for.
+"""Reads of the machines: one machine's page, its modes and their history, the baseline
+restarts asked for (the plant overview: monitor/store/reads/overview.py).
 
 Every page-level read issues a fixed number of SQL statements whatever the number of
-machines or stored readings: rows for all machines are fetched in one statement per
-table, the latest reading per point by an indexed correlated lookup.
+machines or stored readings: the latest reading per point by an indexed correlated lookup.
 """
 
 from __future__ import annotations
 
 import datetime as dt
-from collections import defaultdict
 from collections.abc import Sequence
 from typing import Any
 
 from sqlalchemy import select
 from sqlalchemy.orm import Session, aliased
 
-from monitor.detection.alarms import severity_rank
 from monitor.model.timefmt import iso_utc
 from monitor.store.models import (
     BaselineRestart,
@@ -32,13 +29,11 @@ from monitor.store.reads.evaluations import (
     evaluation_view,
     feature_json,
     mode_bands,
-    nearest_margin,
     point_zone_limits,
 )
 from monitor.store.reads.hints import machine_hints_json
 from monitor.store.reads.spectra import latest_spectra, spectrum_json
 from monitor.store.reads.speeds import (
-    FIRST_FLAG,
     RunningSpeed,
     SpeedCandidate,
     health_flags,
@@ -46,8 +41,6 @@ from monitor.store.reads.speeds import (
     running_speed,
 )
 from monitor.store.registry_sync import mode_problem
-
-ZONE_ORDER = {"A": 1, "B": 2, "C": 3, "D": 4}
 
 
 def get_machine(s: Session, machine_id: str) -> Machine | None:
@@ -84,18 +77,6 @@ def _latest_per_point(s: Session, machine_id: str) -> list[Measurement]:
     ))
 
 
-def _latest_per_point_rows(s: Session) -> list[Any]:
-    """The cheap columns of the newest measurement of every active point (and the first
-    check sensor health failed on it, or None), one statement."""
-    return list(s.execute(
-        select(Measurement.id, Measurement.machine_id, Measurement.point_id, Measurement.ts,
-               Measurement.speed_hz, Measurement.speed_source, Measurement.zone,
-               Measurement.overall_velocity_mm_s_rms, Measurement.stored_at, FIRST_FLAG.label("first_flag"))
-        .join(MeasurementPoint, Measurement.id == _newest_id())
-        .where(MeasurementPoint.active.is_(True))
-    ))
-
-
 def _machine_state(n_open: int, latest: dt.datetime | None) -> str:
     if n_open:
         return "alarm"
@@ -109,65 +90,6 @@ def _current_margins(m: Any, modes: Sequence[Any], speed: RunningSpeed, evaluati
     me = speed.reading
     return current_margins(m, modes, speed.speed_hz, evaluation if me is not None else None,
                            me.stored_at if me is not None else None)
-
-
-def machine_summaries(s: Session) -> list[dict[str, Any]]:
-    """Every active machine with its current state, for the plant overview (7 statements).
-
-    Plain column rows, not ORM objects (the page reads a few columns of thousands of rows).
-    The running speed is the newest of the speed readings and the accepted readings
-    (monitor/store/reads/speeds.py); the nearest margin comes from the margin rows the
-    service stored with the reading that speed came from (:func:`current_margins`; only
-    that part of its evaluation is read), or is computed at a speed reading's speed."""
-    machines = s.execute(select(
-        Machine.id, Machine.name, Machine.location, Machine.machine_class, Machine.speed_min_rpm,
-        Machine.speed_max_rpm, Machine.excitation_orders, Machine.line_frequency_hz, Machine.limits_mm_s,
-        Machine.settings, Machine.updated_at,
-    ).where(Machine.active.is_(True)).order_by(Machine.position, Machine.id)).all()
-    modes_by: dict[str, list[Any]] = defaultdict(list)
-    for mo in s.execute(select(
-            Mode.machine_id, Mode.name, Mode.frequency_hz, Mode.damping_ratio, Mode.amplification_factor,
-            Mode.required_margin_pct, Mode.source, Mode.date, Mode.updated_at,
-    ).join(Machine).where(Machine.active.is_(True)).order_by(Mode.position, Mode.id)):
-        modes_by[mo.machine_id].append(mo)
-    latest_by: dict[str, list[Any]] = defaultdict(list)
-    for me in _latest_per_point_rows(s):
-        latest_by[me.machine_id].append(me)
-    newest_by = {mid: max(rows, key=lambda r: r.ts) for mid, rows in latest_by.items()}
-    tach = latest_speed_readings(s)
-    speeds = {mid: running_speed((SpeedCandidate(r.ts, r.speed_hz, r.speed_source, r.first_flag is None, r)
-                                  for r in latest_by.get(mid, ())), tach.get(mid))
-              for mid in {*latest_by, *tach}}
-    with_speed = [sp.reading.id for sp in speeds.values() if sp.reading is not None]
-    stored: dict[int, Any] = {i: margins for i, margins in s.execute(
-        select(Measurement.id, Measurement.evaluation["margins"])
-        .where(Measurement.id.in_(with_speed)))} if with_speed else {}
-    open_by = open_alarm_counts(s)
-    out = []
-    for m in machines:
-        rows = latest_by.get(m.id, [])
-        newest = newest_by.get(m.id)
-        speed = speeds.get(m.id, RunningSpeed())
-        margins = _current_margins(m, modes_by.get(m.id, []), speed,
-                                   {"margins": stored.get(speed.reading.id)} if speed.reading is not None else None)
-        zoned = [r for r in rows if r.zone in ZONE_ORDER]
-        worst = max(zoned, key=lambda r: (ZONE_ORDER[r.zone], r.overall_velocity_mm_s_rms or 0)) if zoned else None
-        by_severity = open_by.get(m.id, {})
-        n_open = sum(by_severity.values())
-        out.append({
-            "id": m.id, "name": m.name or m.id, "location": m.location,
-            "class": m.machine_class,
-            "state": _machine_state(n_open, newest.ts if newest else speed.at),
-            **speed.to_json(),
-            "last_reading_at": iso_utc(newest.ts) if newest else None,
-            "nearest_margin": nearest_margin(margins),
-            "worst_zone": None if worst is None else {
-                "point": worst.point_id, "zone": worst.zone,
-                "overall_mm_s_rms": worst.overall_velocity_mm_s_rms},
-            "active_alarms": n_open,
-            "worst_severity": max(by_severity, key=severity_rank) if by_severity else None,
-        })
-    return out
 
 
 def machine_modes(s: Session, machine_id: str) -> list[Mode]:

@@ -7,7 +7,13 @@ from typing import Any, NamedTuple
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
-from monitor.store.models import DetectorState, Machine, Measurement, PassageTrackerState
+from monitor.store.models import (
+    DetectorState,
+    Machine,
+    MachineStatus,
+    Measurement,
+    PassageTrackerState,
+)
 from monitor.store.reads.alarms import machines_with_open_alarms
 
 
@@ -20,11 +26,13 @@ class StartState(NamedTuple):
     with_open_alarms: list[str]
     #: Retired machines whose alarms and status nobody has closed yet.
     unretired: list[str]
+    #: The stored retained status bodies (monitor/store/statuses.py), to carry on from.
+    statuses: list[dict[str, Any]]
 
 
 def start_state(s: Session) -> StartState:
-    """The latest stored waveform of each stream, the machines with alarms open, and the
-    retired machines not yet settled (three statements)."""
+    """The latest stored waveform of each stream, the machines with alarms open, the
+    retired machines not yet settled and the stored statuses (four statements)."""
     rows = s.execute(
         select(Measurement.machine_id, Measurement.point_id, func.max(Measurement.ts))
         .group_by(Measurement.machine_id, Measurement.point_id)
@@ -38,6 +46,7 @@ def start_state(s: Session) -> StartState:
         last_ts={(m, p): ts.timestamp() for m, p, ts in rows if ts is not None},
         with_open_alarms=machines_with_open_alarms(s),
         unretired=[m for m, done in retired if not done],
+        statuses=[dict(b) for b in s.scalars(select(MachineStatus.status))],
     )
 
 
