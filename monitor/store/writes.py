@@ -36,6 +36,7 @@ from monitor.store.models import (
     PassageTrackerState,
     SpectrumSnapshot,
     SpeedReadingRow,
+    WaveformSnapshot,
     pack_amplitudes,
     utcnow,
 )
@@ -61,7 +62,6 @@ def to_datetime(t: float | int | dt.datetime) -> dt.datetime:
         raise ValueError(f"time {t!r} must be finite epoch seconds or an aware datetime.")
     # Round to the microsecond the database keeps, so a replay compares equal.
     return dt.datetime(1970, 1, 1, tzinfo=dt.UTC) + dt.timedelta(microseconds=round(t * 1e6))
-
 
 
 #: Statements of the service's hot path, built once per key: building a SQLAlchemy
@@ -90,9 +90,7 @@ def _num(x: Any) -> float | None:
     return v if math.isfinite(v) else None
 
 
-def insert_ignore(
-    session: Session, table: Table, values: Mapping[str, Any], keys: Sequence[str]
-) -> Any:
+def insert_ignore(session: Session, table: Table, values: Mapping[str, Any], keys: Sequence[str]) -> Any:
     """``INSERT ... ON CONFLICT (keys) DO NOTHING RETURNING id``: the new id, or None
     when a row with the same key exists."""
     dialect = _dialect_name(session)
@@ -141,6 +139,15 @@ def spectrum_row(
         "amplitudes": pack_amplitudes(amp),
         "evidence": evidence,
     }
+
+
+def waveform_row(w: Waveform, speed_hz: float | None, *, evidence: bool = False) -> dict[str, Any]:
+    """The ``waveform_snapshots`` row of a reading's raw samples (float32, the sensor's
+    unit); ``speed_hz`` the running speed its analysis used, Hz."""
+    samples = np.asarray(w.samples)
+    return {"machine_id": w.machine, "point_id": w.point, "ts": to_datetime(w.ts), "fs_hz": float(w.fs_hz),
+            "unit": w.unit, "speed_hz": _num(speed_hz), "n_samples": int(samples.size),
+            "samples": pack_amplitudes(samples), "evidence": evidence}
 
 
 def measurement_values(
@@ -288,16 +295,17 @@ def existing_speed_readings(
 
 
 def snapshot_times(
-    session: Session | Connection, points: Iterable[tuple[str, str]], since: dt.datetime, until: dt.datetime
+    session: Session | Connection, points: Iterable[tuple[str, str]], since: dt.datetime, until: dt.datetime,
+    *, waveforms: bool = False,
 ) -> dict[tuple[str, str], list[dt.datetime]]:
-    """Instants of the spectrum snapshots kept per (machine, point) in ``(since, until]``,
-    in one query (the batch form of :func:`snapshot_due`)."""
+    """Instants of the spectrum (``waveforms``: raw waveform) snapshots kept per (machine,
+    point) in ``(since, until]``, in one query (monitor/service/cadence.py)."""
     pairs = set(points)
     out: dict[tuple[str, str], list[dt.datetime]] = {p: [] for p in pairs}
     if not pairs:
         return out
-    t = SpectrumSnapshot.__table__.c
-    stmt = _statement(("snapshot_times",), lambda: select(t.machine_id, t.point_id, t.ts).where(
+    t = (WaveformSnapshot if waveforms else SpectrumSnapshot).__table__.c
+    stmt = _statement(("snapshot_times", waveforms), lambda: select(t.machine_id, t.point_id, t.ts).where(
         t.machine_id.in_(bindparam("machines", expanding=True)),
         t.ts > bindparam("since", type_=t.ts.type),
         t.ts <= bindparam("until", type_=t.ts.type),
@@ -573,15 +581,8 @@ def passage_values(machine: str, point: str, sp: SweepPassages, seq: int, detect
     }
 
 
-def add_dead_letter(
-    session: Session,
-    *,
-    topic: str,
-    reason: str,
-    detail: str = "",
-    payload: bytes = b"",
-    at: dt.datetime | None = None,
-) -> int:
+def add_dead_letter(session: Session, *, topic: str, reason: str, detail: str = "", payload: bytes = b"",
+                    at: dt.datetime | None = None) -> int:
     """Record a rejected message: its topic, the counted reason, a one-line detail and
     the first 256 bytes of the payload."""
     row = DeadLetter(
