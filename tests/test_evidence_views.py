@@ -10,6 +10,7 @@ import time
 
 import numpy as np
 import pytest
+from dashboard_seed import PASSWORDS
 from evidence_plant import (
     ANGLE_DEG,
     BALL_MM,
@@ -24,8 +25,8 @@ from evidence_plant import (
     outer_race_samples,
     store_with_readings,
 )
-from dashboard_seed import PASSWORDS
 from fixtures_db import fresh_database
+from passage_run import FN_HZ, feed, machine, run_messages, store_with
 from sqlalchemy import select
 
 from dashboard import create_app
@@ -191,8 +192,6 @@ def test_sweep_plot_phase_passes_90_at_the_natural_frequency():
 
 
 def test_sweep_plot_of_a_stored_passage(tmp_path):
-    from passage_run import FN_HZ, feed, machine, run_messages, store_with  # a long simulation: only here
-
     with fresh_database("sqlite", tmp_path) as url:
         feed(store_with(url, machine()), run_messages())
         app = create_app({"DATABASE_URL": url, "SECRET_KEY": "test", "TESTING": True})
