@@ -88,7 +88,11 @@ def machine_waveforms(machine_id: str):
     t0, t1 = _span(request.args)
     limit = _int(request.args, "limit", DEFAULT_WAVEFORM_LIST, MAX_WAVEFORM_LIST)
     rows = reads.find_waveforms(db_session(), m.id, point, t0, t1, limit)
-    return jsonify({"items": [reads.waveform_json(w) for w in rows], "next": None})
+    try:
+        bearing = BearingGeometry.from_settings(m.settings or {}) is not None
+    except ValueError:
+        bearing = False
+    return jsonify({"items": [reads.waveform_json(w) for w in rows], "next": None, "bearing_geometry": bearing})
 
 
 def _waveform_or_404(waveform_id: int):
