@@ -217,3 +217,15 @@ def test_sweep_plot_of_a_stored_passage(tmp_path):
             # the natural frequency (Thomson); the simulated mode is FN_HZ
             assert sw["phase_90_hz"] == pytest.approx(FN_HZ, rel=0.02)
         app.extensions["whirlwatch_engine"].dispose()
+
+
+def test_the_api_description_states_the_point_as_the_registry_bounds_it():
+    import json
+    from pathlib import Path
+
+    from monitor.model.bounds import ID_PATTERN
+
+    doc = json.loads((Path(__file__).resolve().parent.parent / "dashboard" / "openapi.json").read_text())
+    for path in ("/machines/{machine_id}/waterfall", "/machines/{machine_id}/compare"):
+        (point,) = [p for p in doc["paths"][path]["get"]["parameters"] if p["name"] == "point"]
+        assert point["required"] and point["schema"]["pattern"] == ID_PATTERN.pattern
