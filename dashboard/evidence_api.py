@@ -139,7 +139,11 @@ def machine_waterfall(machine_id: str):
     t0, t1 = _span(request.args)
     n = _int(request.args, "max_rows", DEFAULT_WATERFALL_ROWS, MAX_WATERFALL_ROWS)
     bins = _int(request.args, "max_bins", reads.MAX_SPECTRUM_BINS, 65536)
-    return jsonify(reads.waterfall(db_session(), m.id, point, _kind(request.args), t0, t1, n, bins))
+    order = request.args.get("order") or "time"
+    if order not in ("time", "speed"):
+        raise BadRequest(f"Parameter 'order' must be time or speed, got {order!r}.")
+    return jsonify(reads.waterfall(db_session(), m.id, point, _kind(request.args), t0, t1, n, bins,
+                                   by_speed=order == "speed"))
 
 
 @bp.get("/machines/<machine_id>/compare")

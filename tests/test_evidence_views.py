@@ -5,8 +5,10 @@ through the service's batch path on real SQLite (PostgreSQL where marked)."""
 
 from __future__ import annotations
 
+import json
 import math
 import time
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -20,20 +22,25 @@ from evidence_plant import (
     PITCH_MM,
     POINT,
     SHAFT_HZ,
+    N,
     bpfo_hz,
     login,
     outer_race_samples,
+    registry,
     store_with_readings,
 )
 from fixtures_db import fresh_database
 from passage_run import FN_HZ, feed, machine, run_messages, store_with
+from service_helpers import message, offline_service
 from sqlalchemy import select
 
 from dashboard import create_app
 from monitor.analysis.envelope_view import defect_markers, envelope_view
 from monitor.model.bearing_geometry import BearingGeometry
+from monitor.model.bounds import ID_PATTERN
+from monitor.model.readings import Waveform
 from monitor.modes.sweep_plots import crossing_hz, sweep_plot
-from monitor.store import Store
+from monitor.store import Store, import_registry, upgrade
 from monitor.store.auth import create_user
 from monitor.store.models import Measurement, SpectrumSnapshot, WaveformSnapshot
 
@@ -220,12 +227,39 @@ def test_sweep_plot_of_a_stored_passage(tmp_path):
 
 
 def test_the_api_description_states_the_point_as_the_registry_bounds_it():
-    import json
-    from pathlib import Path
-
-    from monitor.model.bounds import ID_PATTERN
-
     doc = json.loads((Path(__file__).resolve().parent.parent / "dashboard" / "openapi.json").read_text())
     for path in ("/machines/{machine_id}/waterfall", "/machines/{machine_id}/compare"):
         (point,) = [p for p in doc["paths"][path]["get"]["parameters"] if p["name"] == "point"]
         assert point["required"] and point["schema"]["pattern"] == ID_PATTERN.pattern
+
+
+def test_waterfall_against_speed(tmp_path):
+    # Six blocks at six speeds, stored out of speed order: with order=speed the rows are
+    # the same stored spectra, ordered by the speed of their readings.
+    speeds = [27.0, 29.5, 26.0, 30.0, 28.0, 29.0]
+    with fresh_database("sqlite", tmp_path) as url:
+        upgrade(url)
+        store = Store.open(url)
+        with store.transaction() as s:
+            import_registry(s, registry())
+            create_user(s, "vic", PASSWORDS["vic"], "viewer")
+        store.close()
+        t0 = time.time() - 600.0
+        clock = {"now": t0}
+        svc = offline_service(url, lambda: clock["now"], spectra_snapshot_interval_s=1)
+        t = np.arange(N) / FS_HZ
+        for i, hz in enumerate(speeds):
+            clock["now"] = t0 + 10.0 * i
+            svc.handle_batch([message(Waveform(MACHINE, POINT, clock["now"], FS_HZ, "m/s^2",
+                                               np.sin(2 * np.pi * hz * t), speed_hz=hz))])
+        svc.store.close()
+        app = create_app({"DATABASE_URL": url, "SECRET_KEY": "test", "TESTING": True})
+        client = app.test_client()
+        login(client)
+        wf = client.get(f"/api/v1/machines/{MACHINE}/waterfall?point={POINT}&order=speed").get_json()
+        assert [r["speed_hz"] for r in wf["rows"]] == sorted(speeds)
+        by_time = client.get(f"/api/v1/machines/{MACHINE}/waterfall?point={POINT}").get_json()
+        assert [r["speed_hz"] for r in by_time["rows"]] == speeds
+        assert sorted(r["id"] for r in wf["rows"]) == sorted(r["id"] for r in by_time["rows"])
+        assert client.get(f"/api/v1/machines/{MACHINE}/waterfall?point={POINT}&order=x").status_code == 400
+        app.extensions["whirlwatch_engine"].dispose()

@@ -116,8 +116,9 @@
     if (!point) return;
     const span = Number(document.getElementById("waterfall-range").value);
     const rows = document.getElementById("waterfall-rows").value;
+    const order = document.getElementById("waterfall-order").value;
     const to = machine.last_reading_at ? new Date(machine.last_reading_at).getTime() / 1000 + 1 : Date.now() / 1000;
-    const wf = await WW.api(root.dataset.waterfall + "?point=" + encodeURIComponent(point) + "&kind=velocity&from=" + (to - span) + "&to=" + to + "&max_rows=" + rows + "&max_bins=2048");
+    const wf = await WW.api(root.dataset.waterfall + "?point=" + encodeURIComponent(point) + "&kind=velocity&from=" + (to - span) + "&to=" + to + "&max_rows=" + rows + "&max_bins=2048&order=" + order);
     if (!wf.rows.length) { empty("chart-waterfall", "No stored spectra of this point in this time range."); return; }
     const top = Math.max(...wf.rows.map(r => Math.max(...r.amplitude.filter(v => v !== null))), 1e-9);
     const step = top * 0.35;  // each row raised above the one before it
@@ -132,7 +133,8 @@
     draw("chart-waterfall", { height: 360, scales: { x: { time: false } }, legend: { show: wf.rows.length <= 12 },
       cursor: { drag: { x: true, y: false } },
       series: series, axes: [{ label: "Frequency, Hz" }, { label: wf.unit + " " + wf.scaling + ", each row raised " + WW.num(step, 3), size: 70 }] }, data);
-    document.getElementById("waterfall-caption").textContent = wf.rows.length + " of " + wf.stored + " stored spectra, " + WW.when(wf.rows[0].ts) + " (bottom) to " + WW.when(wf.rows[wf.rows.length - 1].ts) + " (top)" + (wf.left_out ? "; " + wf.left_out + " on another frequency grid left out" : "") + ".";
+    const ends = order === "speed" ? r => (r.speed_hz ? WW.num(r.speed_hz * 60, 0) + " r/min" : "no speed") : r => WW.when(r.ts);
+    document.getElementById("waterfall-caption").textContent = wf.rows.length + " of " + wf.stored + " stored spectra, " + ends(wf.rows[0]) + " (bottom) to " + ends(wf.rows[wf.rows.length - 1]) + " (top)" + (wf.left_out ? "; " + wf.left_out + " on another frequency grid left out" : "") + ".";
   }
 
   // ------------------------------------------------------------------ waveform + envelope
@@ -233,7 +235,7 @@
   });
   document.getElementById("compare-point").addEventListener("change", drawCompare);
   document.getElementById("compare-kind").addEventListener("change", drawCompare);
-  for (const id of ["waterfall-point", "waterfall-range", "waterfall-rows"]) document.getElementById(id).addEventListener("change", drawWaterfall);
+  for (const id of ["waterfall-point", "waterfall-range", "waterfall-rows", "waterfall-order"]) document.getElementById(id).addEventListener("change", drawWaterfall);
   document.getElementById("waveform-point").addEventListener("change", listWaveforms);
   document.getElementById("waveform-pick").addEventListener("change", e => drawWaveform(e.target.value));
   document.getElementById("sweep-pick").addEventListener("change", e => drawSweep(e.target.value));

@@ -102,14 +102,16 @@ def bucket_peaks(amp: np.ndarray, max_bins: int) -> tuple[np.ndarray, int]:
 
 
 def waterfall(s: Session, machine_id: str, point_id: str, kind: str, since: dt.datetime, until: dt.datetime,
-              max_rows: int, max_bins: int = MAX_SPECTRUM_BINS) -> dict[str, Any]:
+              max_rows: int, max_bins: int = MAX_SPECTRUM_BINS, *, by_speed: bool = False) -> dict[str, Any]:
     """A point's stored spectra of ``kind`` with ``since <= ts <= until``, oldest first, as
     the rows of a waterfall on one frequency grid (that of the newest; a spectrum on
     another grid is left out and counted in ``left_out``); at most ``max_rows`` rows,
     evenly spread over those stored (``stored`` counts them). Each row: spectrum ``id``,
     ``ts``, ``speed_hz`` of its reading (Hz; None when not kept) and ``amplitude`` in
     ``unit``; above ``max_bins`` bins each is the largest of ``bin_group`` neighbours, at
-    the frequency of the bucket's first bin."""
+    the frequency of the bucket's first bin. ``by_speed``: the rows chosen are then
+    ordered by the running speed of their readings (a run-up or coast-down's spectra
+    against speed; rows without a speed last)."""
     rows = s.execute(
         select(SpectrumSnapshot, Measurement.speed_hz)
         .outerjoin(Measurement, and_(Measurement.machine_id == SpectrumSnapshot.machine_id,
@@ -135,6 +137,8 @@ def waterfall(s: Session, machine_id: str, point_id: str, kind: str, since: dt.d
     out["rows"] = [{"id": sn.id, "ts": iso_utc(sn.ts), "speed_hz": sp, "evidence": sn.evidence,
                     "amplitude": _amplitudes_json(bucket_peaks(sn.amplitude_array().astype(np.float64), max_bins)[0])}
                    for sn, sp in same]
+    if by_speed:
+        out["rows"].sort(key=lambda r: (r["speed_hz"] is None, r["speed_hz"] or 0.0))
     return out
 
 
