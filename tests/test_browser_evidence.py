@@ -12,19 +12,33 @@ import os
 import time
 from pathlib import Path
 
+import numpy as np
 import pytest
 from dashboard_seed import PASSWORDS
 from dashboard_signin import dashboard_server
-from evidence_plant import MACHINE, POINT, SHAFT_HZ, bpfo_hz, store_with_readings
+from evidence_plant import (
+    FS_HZ,
+    MACHINE,
+    POINT,
+    SHAFT_HZ,
+    bpfo_hz,
+    outer_race_samples,
+    store_with_readings,
+)
 from passage_run import feed, machine, run_messages
+from service_helpers import message, offline_service
 
 from monitor.model.bearing_geometry import BearingGeometry
+from monitor.model.readings import Waveform
 from monitor.model.registry import Registry
 from monitor.store import Store, import_registry
 
 CHROMIUM = "/usr/bin/chromium"
 ARTIFACTS = Path(__file__).resolve().parent.parent / "test-artifacts"
 READINGS = 6
+#: After the defect blocks, three clipped ones (the amplifier at its rails): sensor health
+#: raises a sensor_fault on the third (persistence 3, docs/alarms.md), keeping its waveform.
+CLIPPED = 3
 
 pytestmark = [pytest.mark.browser, pytest.mark.slow]
 
@@ -41,8 +55,21 @@ def server(tmp_path_factory):
     if not os.path.exists(CHROMIUM):
         pytest.skip(f"Chromium is not installed at {CHROMIUM} (apt-get install chromium)")
     url = f"sqlite:///{tmp_path_factory.mktemp('evidence') / 'store.sqlite'}"
-    store_with_readings(url, time.time() - 120.0, READINGS, spectra_snapshot_interval_s=30,
-                        spectra_waveform_interval_s=30)
+    end = time.time() - 600.0
+    store_with_readings(url, end, READINGS, spectra_snapshot_interval_s=30, spectra_waveform_interval_s=30)
+    clipped = []
+    for k in range(1, CLIPPED + 1):
+        x = outer_race_samples(100 + k)
+        rail = 0.05 * float(np.max(np.abs(x)))  # well inside the signal: long runs at the rails
+        clipped.append(message(Waveform(MACHINE, POINT, end + 60.0 * k, FS_HZ, "m/s^2", np.clip(x, -rail, rail),
+                                        speed_hz=SHAFT_HZ)))
+    svc = offline_service(url, lambda: end + 60.0 * CLIPPED, spectra_snapshot_interval_s=30,
+                          spectra_waveform_interval_s=30)
+    try:
+        for m in clipped:
+            svc.handle_batch([m])
+    finally:
+        svc.store.close()
     store = Store.open(url)
     try:
         with store.transaction() as s:
@@ -92,7 +119,7 @@ def test_bearing_evidence_views(server, page):
     series = page.get_attribute("#chart-compare", "data-series").split("|")
     assert len(series) == 2 and series[0].startswith("now ") and series[1].startswith("baseline ")
     # one waterfall row per stored velocity spectrum
-    assert len(page.get_attribute("#chart-waterfall", "data-series").split("|")) == READINGS
+    assert len(page.get_attribute("#chart-waterfall", "data-series").split("|")) == READINGS + CLIPPED
     # the newest waveform, all its samples
     assert page.get_attribute("#chart-waveform", "data-points") == "32768"
     # envelope: BPFO, BPFI, BSF, FTF at 1x-3x and BPFI -+ fr (Randall and Antoni 2011)
@@ -112,6 +139,13 @@ def test_bearing_evidence_views(server, page):
     page.wait_for_function("document.getElementById('chart-envelope').dataset.drawn === '1'")
     page.locator("#waveform-panel").screenshot(path=str(ARTIFACTS / "evidence-waveform.png"))
     page.locator("#waterfall-panel").screenshot(path=str(ARTIFACTS / "evidence-waterfall.png"))
+    # the sensor_fault alarm's evidence opens the waveform of the reading that raised it
+    page.click("#machine-alarms tbody tr >> nth=0 >> button")
+    page.click("#alarm-evidence .open-waveform >> nth=0")
+    page.wait_for_selector("#waveform-panel[data-opened]:not([data-opened='none'])")
+    chosen = page.locator("#waveform-pick option:checked").inner_text()
+    assert chosen.endswith("alarm evidence"), chosen
+    page.wait_for_function("document.getElementById('chart-envelope').dataset.drawn === '1'")
     # no passage on this machine: the sweep plots say so
     assert page.get_attribute("#chart-bode-amplitude", "data-drawn") == "0"
     assert page.errors == [], page.errors

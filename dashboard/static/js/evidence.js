@@ -146,6 +146,7 @@
     const to = Date.now() / 1000 + 60;
     const data = await WW.api(root.dataset.waveforms + "?point=" + encodeURIComponent(point) + "&from=" + (to - 366 * 86400) + "&to=" + to + "&limit=200");
     pick.replaceChildren(...data.items.map(w => el("option", { value: w.id }, WW.when(w.ts) + (w.evidence ? " · alarm evidence" : ""))));
+    if (!pick.value && data.items.length) pick.value = String(data.items[0].id);
     if (!data.items.length) { empty("chart-waveform", "No stored waveform for this point yet."); empty("chart-envelope", ""); document.getElementById("envelope-caption").textContent = ""; return; }
     envelopeOk = data.bearing_geometry && (machine.points.find(p => p.id === point) || {}).quantity === "acceleration";
     await drawWaveform(data.items[0].id);
@@ -175,6 +176,24 @@
     const ind = Object.entries(env.indicator_db).map(([k, v]) => k.toUpperCase() + " " + (v === null ? "–" : WW.num(v, 1) + " dB")).join(", ");
     caption.textContent = "Envelope of " + WW.num(env.band_hz[0], 0) + "–" + WW.num(env.band_hz[1], 0) + " Hz at " + WW.num(env.shaft_hz * 60, 0) + " r/min. Defect lines over the spectrum's median: " + ind + ".";
   }
+
+  // The stored waveform of a point's reading at an instant (an alarm transition's), drawn
+  // with its envelope spectrum; false when none was kept then.
+  async function openWaveformAt(point, ts) {
+    const q = "?point=" + encodeURIComponent(point) + "&from=" + encodeURIComponent(ts) + "&to=" + encodeURIComponent(ts) + "&limit=1";
+    const data = await WW.api(root.dataset.waveforms + q);
+    const panel = document.getElementById("waveform-panel");
+    if (!data.items.length) { panel.dataset.opened = "none"; return false; }
+    document.getElementById("waveform-point").value = point;
+    await listWaveforms();
+    const pick = document.getElementById("waveform-pick");
+    pick.value = String(data.items[0].id);
+    await drawWaveform(data.items[0].id);
+    panel.dataset.opened = String(data.items[0].id);
+    panel.scrollIntoView({ behavior: "smooth" });
+    return true;
+  }
+  window.WWEvidence = { openWaveformAt };
 
   // ------------------------------------------------------------------ sweep plots
   let passages = [];

@@ -289,7 +289,9 @@
         el("tbody", {}, a.transitions.map(t => el("tr", {},
           el("td", {}, WW.when(t.at)), el("td", {}, t.transition), el("td", {}, WW.severityTag(t.severity)), el("td", {}, t.user || ""),
           el("td", {}, el("pre", {}, JSON.stringify(t.evidence, null, 1))),
-          el("td", {}, t.spectrum_id ? el("button", { type: "button", class: "open-spectrum", onclick: () => openStored(t) }, "Open spectrum") : "–"))))));
+          el("td", {}, t.spectrum_id ? el("button", { type: "button", class: "open-spectrum", onclick: () => openStored(t) }, "Open spectrum") : "–",
+            // a reading's transitions keep its raw waveform (evidence.js draws it and its envelope)
+            a.point && t.transition !== "acknowledged" && window.WWEvidence ? el("button", { type: "button", class: "open-waveform", onclick: () => WWEvidence.openWaveformAt(a.point, t.at) }, "Open waveform") : null))))));
   }
 
   async function openStored(t) {
