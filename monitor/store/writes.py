@@ -1,8 +1,8 @@
 """The service's writes, each inside the caller's transaction (the caller commits).
 
 The service's batch writer (monitor/service/batch.py) is the one writer of readings: rows
-from :func:`measurement_values`, :func:`snapshot_rows`, :func:`speed_reading_values` and
-:func:`passage_values`, inserted with :func:`insert_many_ignore` (``INSERT ... ON CONFLICT
+from :func:`measurement_values`, :func:`snapshot_rows`, :func:`waveform_row`,
+:func:`speed_reading_values` and :func:`passage_values`, inserted with :func:`insert_many_ignore` (``INSERT ... ON CONFLICT
 DO NOTHING``: a redelivered or raced reading inserts nothing); :func:`record_transitions`,
 :func:`save_detector_states`, :func:`save_passage_trackers`. The dashboard's one write here
 is :func:`acknowledge_alarm`.
