@@ -116,3 +116,17 @@ def test_retention_thins_cadence_waveforms_and_keeps_evidence(store, plant, data
     assert result.waveform_snapshots == 3 + 3
     with store.transaction() as s:
         assert apply_retention(s, policy, now=NOW).waveform_snapshots == 0
+
+
+def test_a_flat_block_with_transitions_keeps_its_waveform(store, plant, database_url):
+    # A dead sensor's flat block: sensor health raises flat_line after three of them
+    # (docs/alarms.md); the raw samples are the evidence, whether or not the analysis
+    # could use them.
+    t0 = (NOW - dt.timedelta(days=1)).timestamp()
+    flat = SensorFault("flat_line")
+    blocks = [_block(t0 + 600.0 * k, flat) for k in range(3)]
+    events = _feed(database_url, blocks, spectra_waveform_interval_s=0)
+    assert ("raised", "sensor_fault") in events
+    rows = _waveforms(store)
+    assert [r.evidence for r in rows] == [True]
+    assert np.ptp(rows[0].sample_array()) == 0.0
