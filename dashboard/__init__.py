@@ -85,7 +85,18 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     errors.register(app)
     security.register(app)
 
-    from dashboard import alarms, api, audit, auth, login_limits, machines, overview, tokens, users
+    from dashboard import (
+        alarms,
+        api,
+        audit,
+        auth,
+        evidence_api,
+        login_limits,
+        machines,
+        overview,
+        tokens,
+        users,
+    )
 
     app.register_blueprint(auth.bp)
     app.register_blueprint(users.bp)
@@ -95,9 +106,11 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     app.register_blueprint(machines.bp)
     app.register_blueprint(alarms.bp)
     app.register_blueprint(api.bp)
+    app.register_blueprint(evidence_api.bp)
     app.register_blueprint(audit.api_bp)
     # The API authenticates tokens itself and checks CSRF only for session writes.
     app.extensions["csrf"].exempt(api.bp)
+    app.extensions["csrf"].exempt(evidence_api.bp)
     app.extensions["csrf"].exempt(audit.api_bp)
     login_limits.install(app)
 

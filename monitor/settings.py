@@ -269,6 +269,14 @@ SETTINGS: tuple[Setting, ...] = (
         "Keep one spectrum per point at least this often, s; 0 keeps only alarm evidence.",
         minimum=0.0,
     ),
+    Setting(
+        "spectra.waveform_interval_s",
+        "float",
+        3600.0,
+        "Keep one raw time waveform per point at least this often, s (besides those of alarm"
+        " transitions, always kept); 0 keeps only those.",
+        minimum=0.0,
+    ),
     # alarms
     Setting(
         "alarms.publish",
@@ -412,6 +420,7 @@ class RetentionSettings:
 @dataclass(frozen=True)
 class SpectraSettings:
     snapshot_interval_s: float = default("spectra.snapshot_interval_s")
+    waveform_interval_s: float = default("spectra.waveform_interval_s")
 
 
 @dataclass(frozen=True)

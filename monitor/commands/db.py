@@ -110,6 +110,7 @@ def thin_cmd(database_url: str | None, config_file: str | None) -> None:
         store.close()
     click.echo(
         f"deleted {result.measurements} measurements, {result.speed_readings} speed readings, "
-        f"{result.spectrum_snapshots} spectra, {result.dead_letters} dead letters",
+        f"{result.spectrum_snapshots} spectra, {result.waveform_snapshots} waveforms, "
+        f"{result.dead_letters} dead letters",
         err=True,
     )

@@ -13,8 +13,8 @@
    :func:`track_passages`: each through its machine's passage trackers, the mode-shift
    alarms of the passages found (monitor/service/passages.py);
    :func:`clear_processing_faults` for the streams processed again;
-5. :func:`build_rows` and :func:`insert_rows`: measurements, speed readings and spectra
-   in multi-row ``INSERT ... ON CONFLICT DO NOTHING`` (one row per reading, built by the
+5. :func:`build_rows` and :func:`insert_rows`: measurements, speed readings, spectra and
+   raw waveforms (on their cadences; a waveform with alarm transitions keeps its own) in multi-row ``INSERT ... ON CONFLICT DO NOTHING`` (one row per reading, built by the
    store's own row builders), and the passages found;
 6. :func:`record_alarms`: alarm transitions in arrival order, each with its evidence
    spectra (monitor/service/evidence.py); the alarm events to publish;
@@ -58,17 +58,25 @@ from monitor.service.passages import FoundPassage, feed_reading
 from monitor.service.payloads import StatusBoard, alarm_events, retained_statuses
 from monitor.service.states import DetectorStates
 from monitor.store import add_dead_letter, record_transitions
-from monitor.store.models import Measurement, PassageRow, SpectrumSnapshot, SpeedReadingRow, utcnow
+from monitor.store.models import (
+    Measurement,
+    PassageRow,
+    SpectrumSnapshot,
+    SpeedReadingRow,
+    WaveformSnapshot,
+    utcnow,
+)
+from monitor.store.passage_writes import passage_values
 from monitor.store.writes import (
     SNAPSHOT_KEY,
     existing_measurements,
     existing_speed_readings,
     insert_many_ignore,
     measurement_values,
-    passage_values,
     snapshot_rows,
     speed_reading_values,
     to_datetime,
+    waveform_row,
 )
 
 # The ORM types a model's __table__ as any FromClause; these are its Tables.
@@ -79,6 +87,8 @@ MEASUREMENT_KEY = ("machine_id", "point_id", "ts")
 SPEED_READING_KEY = ("machine_id", "ts")
 PASSAGES = cast(Table, PassageRow.__table__)
 PASSAGE_KEY = ("machine_id", "point_id", "started_at", "seq")
+WAVEFORMS = cast(Table, WaveformSnapshot.__table__)
+WAVEFORM_KEY = ("machine_id", "point_id", "ts")
 
 
 @dataclass(eq=False)
@@ -98,6 +108,7 @@ class BatchRows:
     measurements: list[dict[str, Any]] = field(default_factory=list)
     speed_readings: list[dict[str, Any]] = field(default_factory=list)
     snapshots: list[dict[str, Any]] = field(default_factory=list)
+    waveforms: list[dict[str, Any]] = field(default_factory=list)
 
 
 def commit_batch(core: Core, items: Sequence[Item], *, check_all: bool = True) -> list[Outcome]:
@@ -111,6 +122,7 @@ def commit_batch(core: Core, items: Sequence[Item], *, check_all: bool = True) -
     decoded = [it for it in items if not isinstance(it, RejectedMessage)]
     touched: dict[str, float] = {}
     kept: Kept = {}
+    waves_kept: Kept = {}
     analysed: list[ReadingAnalysis] = []
     with core.transaction() as s:
         # Core statements run on the session's connection (same transaction): the ORM
@@ -122,12 +134,14 @@ def commit_batch(core: Core, items: Sequence[Item], *, check_all: bool = True) -
         if fresh:
             touched = latest_per_machine(fresh)
             taken = core.states.take(s, sorted(touched))
-            kept = core.cadence.kept(c, [it for it in fresh if isinstance(it, WaveformMessage)
-                                         and it.analysis is not None])
+            waves = [it for it in fresh if isinstance(it, WaveformMessage) and it.analysis is not None]
+            kept = core.cadence.kept(c, waves)
+            waves_kept = core.waveform_cadence.kept(c, waves)
             evaluated = evaluate(fresh, taken.evaluators, core.board)
             found = track_passages(evaluated, taken.evaluators, core.states)
             clear_processing_faults(evaluated, taken.evaluators)
             rows = build_rows(evaluated, kept, core.cadence)
+            rows.waveforms = waveform_rows(evaluated, waves_kept, core.waveform_cadence)
             insert_rows(c, rows)
             insert_passages(c, found)
             analysed = [it.analysis for it in fresh if isinstance(it, WaveformMessage) and it.analysis is not None]
@@ -136,6 +150,7 @@ def commit_batch(core: Core, items: Sequence[Item], *, check_all: bool = True) -
             attach_statuses(c, evaluated, outcomes, taken.evaluators, core.board)
     core.states.saved(touched)
     core.cadence.remember(kept)
+    core.waveform_cadence.remember(waves_kept)
     with core.lock:  # the registry follower (periodic thread) drops retired points' spectra
         core.latest.remember(analysed)
     return [outcomes[it] for it in items]
@@ -261,6 +276,24 @@ def build_rows(evaluated: Sequence[Evaluated], kept: Kept, cadence: SnapshotCade
     return rows
 
 
+def waveform_rows(evaluated: Sequence[Evaluated], kept: Kept, cadence: SnapshotCadence) -> list[dict[str, Any]]:
+    """The raw waveforms kept: each waveform with alarm transitions (their evidence, never
+    thinned; also one the analysis could not use, such as a flat line), and each analysed
+    waveform due by the waveform cadence (``kept`` records them)."""
+    rows: list[dict[str, Any]] = []
+    for e in evaluated:
+        it = e.item
+        if not isinstance(it, WaveformMessage):
+            continue
+        speed = None if it.analysis is None else it.analysis.speed_hz
+        if e.transitions:
+            kept.setdefault(it.stream, []).append(to_datetime(it.reading.ts))
+            rows.append(waveform_row(it.reading, speed, evidence=True))
+        elif it.analysis is not None and cadence.due(kept, it.reading):
+            rows.append(waveform_row(it.reading, speed))
+    return rows
+
+
 def insert_rows(conn: Connection, rows: BatchRows) -> None:
     """Insert the batch's rows, skipping any stored already; :class:`ReadingRaced` when a
     reading taken as new was stored meanwhile (the insert came back short)."""
@@ -273,6 +306,7 @@ def insert_rows(conn: Connection, rows: BatchRows) -> None:
     if new != len(rows.measurements) + len(rows.speed_readings):
         raise ReadingRaced
     insert_many_ignore(conn, SNAPSHOTS, rows.snapshots, SNAPSHOT_KEY)
+    insert_many_ignore(conn, WAVEFORMS, rows.waveforms, WAVEFORM_KEY)
 
 
 def record_alarms(s: Session, evaluated: Sequence[Evaluated], outside: Mapping[str, list[Transition]],

@@ -49,6 +49,8 @@ class Core:
     stop: threading.Event
     #: Readings set aside as dead letters so far (monitor/service/isolation.py).
     set_aside: int = 0
+    #: The cadence of the raw waveforms kept (``spectra.waveform_interval_s``).
+    waveform_cadence: SnapshotCadence = field(default_factory=lambda: SnapshotCadence(0.0, waveforms=True))
     #: Each point's newest velocity spectrum, for the evidence of speed messages'
     #: transitions (monitor/service/evidence.py).
     latest: LatestSpectra = field(default_factory=LatestSpectra)

@@ -191,6 +191,7 @@ class Service:
                                   postgres=self.store.engine.dialect.name == "postgresql"),
             board=StatusBoard(m.id for m in registry.machines),
             cadence=SnapshotCadence(settings.spectra.snapshot_interval_s),
+            waveform_cadence=SnapshotCadence(settings.spectra.waveform_interval_s, waveforms=True),
             retrier=Retrier(self._stop, self.metrics), metrics=self.metrics, clock=self._now,
             lock=threading.RLock(), stop=self._stop,
         )

@@ -31,8 +31,9 @@ from monitor.service.passages import PassageTrackers
 from monitor.service.registry_follow import RegistryChange, RegistryFollower, follow
 from monitor.store import record_transitions
 from monitor.store.models import Alarm, DetectorState
+from monitor.store.passage_writes import save_passage_trackers
 from monitor.store.reads import passage_tracker_state
-from monitor.store.writes import save_detector_states, save_passage_trackers
+from monitor.store.writes import save_detector_states
 
 log = logging.getLogger("whirlwatch.service")
 

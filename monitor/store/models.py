@@ -10,6 +10,8 @@ Tables (see docs/store.md for the full schema and the retention policy):
   redelivered MQTT message inserts nothing.
 - ``spectrum_snapshots``: compressed float32 spectra, kept on a cadence and with every
   alarm transition as evidence.
+- ``waveform_snapshots``: raw time waveforms as compressed float32, kept on their own
+  cadence and with every alarm transition of a waveform as evidence.
 - ``speed_readings``: the speed stream, unique on (machine, ts).
 - ``alarms`` and ``alarm_transitions``: the alarm history, never thinned.
 - ``users`` and ``api_tokens``: dashboard logins and hashed API tokens;
@@ -317,6 +319,40 @@ class SpectrumSnapshot(Base):
 def pack_amplitudes(amplitude: np.ndarray) -> bytes:
     """zlib of the little-endian float32 bytes of ``amplitude``."""
     return zlib.compress(np.ascontiguousarray(amplitude, dtype="<f4").tobytes(), 6)
+
+
+class WaveformSnapshot(Base):
+    """A stored raw time waveform: zlib-compressed little-endian float32 samples.
+
+    Sample ``k`` was taken ``k / fs_hz`` s after ``ts``, in ``unit`` (the unit the
+    sensor sent); ``speed_hz`` the running speed the analysis used (Hz), if any.
+    ``evidence`` waveforms belong to alarm transitions and are never thinned.
+    """
+
+    __tablename__ = "waveform_snapshots"
+    __table_args__ = (
+        UniqueConstraint("machine_id", "point_id", "ts"),
+        ForeignKeyConstraint(
+            ["machine_id", "point_id"],
+            ["measurement_points.machine_id", "measurement_points.id"],
+        ),
+        Index(None, "ts"),
+    )
+
+    id: Mapped[int] = mapped_column(BigId, primary_key=True)
+    machine_id: Mapped[str] = mapped_column(String(64))
+    point_id: Mapped[str] = mapped_column(String(64))
+    ts: Mapped[dt.datetime] = mapped_column(UTCDateTime)
+    fs_hz: Mapped[float] = mapped_column(Float)
+    unit: Mapped[str] = mapped_column(String(16))
+    speed_hz: Mapped[float | None] = mapped_column(Float)
+    n_samples: Mapped[int] = mapped_column(Integer)
+    samples: Mapped[bytes] = mapped_column(LargeBinary)
+    evidence: Mapped[bool] = mapped_column(Boolean, default=False)
+
+    def sample_array(self) -> np.ndarray:
+        """Samples as float32, in ``unit``."""
+        return np.frombuffer(zlib.decompress(self.samples), dtype="<f4").astype(np.float32)
 
 
 class SpeedReadingRow(Base):

@@ -8,7 +8,9 @@ Policy (defaults; see docs/store.md and the ``retention`` settings):
 - older than ``hourly_days``: the first row of each point in each UTC day kept;
 - cadence spectrum snapshots younger than ``spectra_raw_days`` (30): all kept; older:
   the first of each point and kind per UTC day kept;
-- evidence snapshots (those attached to alarm transitions) are never deleted, nor are
+- cadence raw waveforms: as the cadence spectra (all kept for ``spectra_raw_days``, then
+  the first of each point per UTC day);
+- evidence snapshots and evidence waveforms (those attached to alarm transitions) are never deleted, nor are
   alarms and alarm transitions, nor mode history;
 - dead letters older than ``dead_letter_days`` (30) are deleted.
 
@@ -33,6 +35,7 @@ from monitor.store.models import (
     Measurement,
     SpectrumSnapshot,
     SpeedReadingRow,
+    WaveformSnapshot,
     utcnow,
 )
 
@@ -82,6 +85,7 @@ class RetentionResult:
     speed_readings: int = 0
     spectrum_snapshots: int = 0
     dead_letters: int = 0
+    waveform_snapshots: int = 0
 
 
 def _floor(t: dt.datetime, seconds: int) -> dt.datetime:
@@ -155,6 +159,8 @@ def apply_retention(
         day,
         not_evidence,
     )
+    n_wave = _thin(session, WaveformSnapshot, [WaveformSnapshot.machine_id, WaveformSnapshot.point_id],
+                   None, spectra_edge, day, WaveformSnapshot.evidence.is_(False))
     dead_edge = now - dt.timedelta(days=policy.dead_letter_days)
     n_dead = cast(CursorResult[Any], session.execute(delete(DeadLetter).where(DeadLetter.at < dead_edge))).rowcount or 0
     return RetentionResult(
@@ -162,4 +168,5 @@ def apply_retention(
         speed_readings=n_speed,
         spectrum_snapshots=n_spec,
         dead_letters=int(n_dead),
+        waveform_snapshots=n_wave,
     )

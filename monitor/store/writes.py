@@ -1,11 +1,12 @@
 """The service's writes, each inside the caller's transaction (the caller commits).
 
 The service's batch writer (monitor/service/batch.py) is the one writer of readings: rows
-from :func:`measurement_values`, :func:`snapshot_rows`, :func:`speed_reading_values` and
-:func:`passage_values`, inserted with :func:`insert_many_ignore` (``INSERT ... ON CONFLICT
-DO NOTHING``: a redelivered or raced reading inserts nothing); :func:`record_transitions`,
-:func:`save_detector_states`, :func:`save_passage_trackers`. The dashboard's one write here
-is :func:`acknowledge_alarm`.
+from :func:`measurement_values`, :func:`snapshot_rows`, :func:`waveform_row`,
+:func:`speed_reading_values` (and monitor/store/passage_writes.py ``passage_values``),
+inserted with :func:`insert_many_ignore` (``INSERT ... ON CONFLICT DO NOTHING``: a
+redelivered or raced reading inserts nothing); :func:`record_transitions`,
+:func:`save_detector_states` (and ``save_passage_trackers`` there). The dashboard's one
+write here is :func:`acknowledge_alarm`.
 """
 from __future__ import annotations
 
@@ -24,18 +25,15 @@ from monitor.analysis.waveform import ReadingAnalysis, Spectrum
 from monitor.detection.alarms import Transition
 from monitor.model.jsonsafe import jsonable
 from monitor.model.readings import SpeedReading, Waveform
-from monitor.model.timefmt import iso_utc
-from monitor.modes.passage_tracker import SweepPassages
-from monitor.modes.shift import ModeShift
 from monitor.store.models import (
     Alarm,
     AlarmTransitionRow,
     DeadLetter,
     DetectorState,
     Measurement,
-    PassageTrackerState,
     SpectrumSnapshot,
     SpeedReadingRow,
+    WaveformSnapshot,
     pack_amplitudes,
     utcnow,
 )
@@ -63,39 +61,38 @@ def to_datetime(t: float | int | dt.datetime) -> dt.datetime:
     return dt.datetime(1970, 1, 1, tzinfo=dt.UTC) + dt.timedelta(microseconds=round(t * 1e6))
 
 
-
 #: Statements of the service's hot path, built once per key: building a SQLAlchemy
 #: statement (coercions, cache key, ``excluded`` columns) costs about as much as running
 #: it on SQLite, and a batch of one reading runs several.
 _STATEMENTS: dict[tuple[Any, ...], Any] = {}
 
 
-def _dialect_name(db: Session | Connection) -> str:
+def dialect_name(db: Session | Connection) -> str:
     """The dialect of a Session or of a Core Connection (the service runs its hot
     statements on the session's connection: the ORM layer costs more than SQLite does)."""
     return db.dialect.name if isinstance(db, Connection) else db.get_bind().dialect.name
 
 
-def _statement(key: tuple[Any, ...], build: Any) -> Any:
+def cached_statement(key: tuple[Any, ...], build: Any) -> Any:
+    """The statement cached under ``key``, built by ``build()`` the first time."""
     stmt = _STATEMENTS.get(key)
     if stmt is None:
         stmt = _STATEMENTS[key] = build()
     return stmt
 
 
-def _num(x: Any) -> float | None:
+def finite_or_none(x: Any) -> float | None:
+    """``x`` as a float, or None when it is None, NaN or infinite (stored as NULL)."""
     if x is None:
         return None
     v = float(x)
     return v if math.isfinite(v) else None
 
 
-def insert_ignore(
-    session: Session, table: Table, values: Mapping[str, Any], keys: Sequence[str]
-) -> Any:
+def insert_ignore(session: Session, table: Table, values: Mapping[str, Any], keys: Sequence[str]) -> Any:
     """``INSERT ... ON CONFLICT (keys) DO NOTHING RETURNING id``: the new id, or None
     when a row with the same key exists."""
-    dialect = _dialect_name(session)
+    dialect = dialect_name(session)
     ins_mod = postgresql if dialect == "postgresql" else sqlite
     stmt = (
         ins_mod.insert(table)
@@ -112,11 +109,11 @@ def insert_ignore(
 def orders_json(analysis: ReadingAnalysis) -> list[dict[str, Any]]:  # the stored order rows
     return [
         {
-            "order": _num(o.order),
-            "frequency_hz": _num(o.frequency_hz),
-            "amplitude": _num(o.amplitude),
-            "velocity_mm_s": _num(o.velocity_mm_s),
-            "phase_deg": _num(o.phase_deg),
+            "order": finite_or_none(o.order),
+            "frequency_hz": finite_or_none(o.frequency_hz),
+            "amplitude": finite_or_none(o.amplitude),
+            "velocity_mm_s": finite_or_none(o.velocity_mm_s),
+            "phase_deg": finite_or_none(o.phase_deg),
         }
         for o in analysis.orders
     ]
@@ -143,6 +140,15 @@ def spectrum_row(
     }
 
 
+def waveform_row(w: Waveform, speed_hz: float | None, *, evidence: bool = False) -> dict[str, Any]:
+    """The ``waveform_snapshots`` row of a reading's raw samples (float32, the sensor's
+    unit); ``speed_hz`` the running speed its analysis used, Hz."""
+    samples = np.asarray(w.samples)
+    return {"machine_id": w.machine, "point_id": w.point, "ts": to_datetime(w.ts), "fs_hz": float(w.fs_hz),
+            "unit": w.unit, "speed_hz": finite_or_none(speed_hz), "n_samples": int(samples.size),
+            "samples": pack_amplitudes(samples), "evidence": evidence}
+
+
 def measurement_values(
     analysis: ReadingAnalysis | Waveform,
     *,
@@ -165,7 +171,7 @@ def measurement_values(
             "point_id": w.point,
             "ts": to_datetime(w.ts),
             "reading_id": w.reading_id,
-            "speed_hz": _num(w.speed_hz),
+            "speed_hz": finite_or_none(w.speed_hz),
             "speed_source": "measured" if w.speed_hz is not None else None,
             "speed_uncertainty_hz": None,
             "overall_velocity_mm_s_rms": None,
@@ -182,13 +188,13 @@ def measurement_values(
         "point_id": analysis.point,
         "ts": to_datetime(analysis.ts),
         "reading_id": analysis.reading_id,
-        "speed_hz": _num(analysis.speed_hz),
+        "speed_hz": finite_or_none(analysis.speed_hz),
         "speed_source": analysis.speed_source,
-        "speed_uncertainty_hz": _num(analysis.speed_uncertainty_hz),
-        "overall_velocity_mm_s_rms": _num(analysis.overall_velocity_mm_s_rms),
-        "one_x_normalised": _num(analysis.one_x_normalised),
+        "speed_uncertainty_hz": finite_or_none(analysis.speed_uncertainty_hz),
+        "overall_velocity_mm_s_rms": finite_or_none(analysis.overall_velocity_mm_s_rms),
+        "one_x_normalised": finite_or_none(analysis.one_x_normalised),
         "orders": orders_json(analysis),
-        "peaks": [{"hz": _num(p.hz), "amplitude": _num(p.amplitude)} for p in analysis.peaks],
+        "peaks": [{"hz": finite_or_none(p.hz), "amplitude": finite_or_none(p.amplitude)} for p in analysis.peaks],
         "zone": zone,
         "health": jsonable(health),
         "evaluation": evaluation,
@@ -243,11 +249,11 @@ def insert_many_ignore(
     new (rows whose key already exists are skipped). All rows must have the same columns."""
     if not rows:
         return 0
-    dialect = _dialect_name(session)
+    dialect = dialect_name(session)
     ins_mod = postgresql if dialect == "postgresql" else sqlite
     # One statement executed with many parameter sets: SQLAlchemy sends it as batched
     # multi-row VALUES ("insertmanyvalues") and compiles it once, not once per row count.
-    stmt = _statement(("insert_many_ignore", dialect, table.name, tuple(keys)), lambda: (
+    stmt = cached_statement(("insert_many_ignore", dialect, table.name, tuple(keys)), lambda: (
         ins_mod.insert(table)
         .on_conflict_do_nothing(index_elements=list(keys))
         .returning(table.c.id)
@@ -263,7 +269,7 @@ def existing_measurements(
     if not want:
         return set()
     t = Measurement.__table__.c
-    stmt = _statement(("existing_measurements",), lambda: select(t.machine_id, t.point_id, t.ts).where(
+    stmt = cached_statement(("existing_measurements",), lambda: select(t.machine_id, t.point_id, t.ts).where(
         t.ts.in_(bindparam("ts", expanding=True)), t.machine_id.in_(bindparam("machines", expanding=True))))
     rows = session.execute(
         stmt, {"ts": sorted({k[2] for k in want}), "machines": sorted({k[0] for k in want})}
@@ -279,7 +285,7 @@ def existing_speed_readings(
     if not want:
         return set()
     t = SpeedReadingRow.__table__.c
-    stmt = _statement(("existing_speed_readings",), lambda: select(t.machine_id, t.ts).where(
+    stmt = cached_statement(("existing_speed_readings",), lambda: select(t.machine_id, t.ts).where(
         t.ts.in_(bindparam("ts", expanding=True)), t.machine_id.in_(bindparam("machines", expanding=True))))
     rows = session.execute(
         stmt, {"ts": sorted({k[1] for k in want}), "machines": sorted({k[0] for k in want})}
@@ -288,16 +294,17 @@ def existing_speed_readings(
 
 
 def snapshot_times(
-    session: Session | Connection, points: Iterable[tuple[str, str]], since: dt.datetime, until: dt.datetime
+    session: Session | Connection, points: Iterable[tuple[str, str]], since: dt.datetime, until: dt.datetime,
+    *, waveforms: bool = False,
 ) -> dict[tuple[str, str], list[dt.datetime]]:
-    """Instants of the spectrum snapshots kept per (machine, point) in ``(since, until]``,
-    in one query (the batch form of :func:`snapshot_due`)."""
+    """Instants of the spectrum (``waveforms``: raw waveform) snapshots kept per (machine,
+    point) in ``(since, until]``, in one query (monitor/service/cadence.py)."""
     pairs = set(points)
     out: dict[tuple[str, str], list[dt.datetime]] = {p: [] for p in pairs}
     if not pairs:
         return out
-    t = SpectrumSnapshot.__table__.c
-    stmt = _statement(("snapshot_times",), lambda: select(t.machine_id, t.point_id, t.ts).where(
+    t = (WaveformSnapshot if waveforms else SpectrumSnapshot).__table__.c
+    stmt = cached_statement(("snapshot_times", waveforms), lambda: select(t.machine_id, t.point_id, t.ts).where(
         t.machine_id.in_(bindparam("machines", expanding=True)),
         t.ts > bindparam("since", type_=t.ts.type),
         t.ts <= bindparam("until", type_=t.ts.type),
@@ -507,7 +514,7 @@ def save_detector_states(
     NaN would lose it."""
     if not states:
         return
-    dialect = _dialect_name(session)
+    dialect = dialect_name(session)
     ins_mod = postgresql if dialect == "postgresql" else sqlite
     table = DetectorState.__table__
 
@@ -519,7 +526,7 @@ def save_detector_states(
         )
 
     now = utcnow()
-    session.execute(_statement(("save_detector_states", dialect), build), [
+    session.execute(cached_statement(("save_detector_states", dialect), build), [
         # Written as given: the snapshot holds no NaN or infinity for the serialiser
         # (store/db.py dumps_json) to turn into null.
         {"machine_id": machine, "state": state,
@@ -528,63 +535,8 @@ def save_detector_states(
     ])
 
 
-def save_passage_trackers(session: Session | Connection, states: Mapping[str, Mapping[str, Any]]) -> None:
-    """Upsert the passage trackers' state of several machines (``{machine: state}``,
-    monitor/service/passages.py: plain JSON, finite floats only) with one statement,
-    inside the caller's transaction."""
-    if not states:
-        return
-    dialect = _dialect_name(session)
-    ins_mod = postgresql if dialect == "postgresql" else sqlite
-
-    def build() -> Any:
-        stmt = ins_mod.insert(PassageTrackerState.__table__)
-        return stmt.on_conflict_do_update(
-            index_elements=["machine_id"],
-            set_={"state": stmt.excluded.state, "updated_at": stmt.excluded.updated_at})
-
-    now = utcnow()
-    session.execute(_statement(("save_passage_trackers", dialect), build), [
-        {"machine_id": m, "state": state, "updated_at": now} for m, state in sorted(states.items())])
-
-
-def passage_values(machine: str, point: str, sp: SweepPassages, seq: int, detected_at: float,
-                   shift: ModeShift | None) -> dict[str, Any]:
-    """The ``passages`` row of passage ``seq`` of sweep ``sp`` at ``point``, found by the
-    reading at ``detected_at`` (epoch s): with the stored mode that claimed it and its
-    shift, or a candidate mode ('open') when ``shift`` is None; the sweep's Bode points
-    (``[{"ts", "speed_hz", "amplitude", "phase_deg"}]``, phase unwrapped along the sweep)."""
-    p, sweep, bode = sp.passages[seq], sp.sweep, sp.bode
-    points: list[dict[str, Any]] = []
-    if bode is not None:
-        used = [q for q in sweep.points if q.amplitude is not None]
-        phase = bode.phase_deg
-        points = [{"ts": iso_utc(q.ts, timespec="milliseconds"), "speed_hz": float(bode.speed_hz[i]),
-                   "amplitude": float(bode.amplitude[i]),
-                   "phase_deg": None if phase is None else float(phase[i])} for i, q in enumerate(used)]
-    return {
-        "machine_id": machine, "point_id": point, "seq": seq, "kind": sweep.kind, "method": sp.method,
-        "started_at": to_datetime(sweep.started_at), "ended_at": to_datetime(sweep.ended_at),
-        "detected_at": to_datetime(detected_at), "natural_frequency_hz": p.frequency_hz,
-        "critical_speed_hz": p.critical_speed_hz, "amplification_factor": p.amplification_factor,
-        "damping_ratio": p.damping_ratio, "peak_amplitude": p.peak_amplitude,
-        "unit": bode.unit if bode is not None else "", "phase_at_peak_deg": _num(p.phase_at_peak_deg),
-        "phase_change_deg": _num(p.phase_change_deg), "mode": None if shift is None else shift.mode,
-        "shift_pct": None if shift is None else _num(shift.shift_pct), "points": points,
-        "candidate": "open" if shift is None else None,
-        "decided_by": None, "decided_at": None, "accepted_mode": None,
-    }
-
-
-def add_dead_letter(
-    session: Session,
-    *,
-    topic: str,
-    reason: str,
-    detail: str = "",
-    payload: bytes = b"",
-    at: dt.datetime | None = None,
-) -> int:
+def add_dead_letter(session: Session, *, topic: str, reason: str, detail: str = "", payload: bytes = b"",
+                    at: dt.datetime | None = None) -> int:
     """Record a rejected message: its topic, the counted reason, a one-line detail and
     the first 256 bytes of the payload."""
     row = DeadLetter(

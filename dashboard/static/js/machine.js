@@ -379,6 +379,7 @@
 
   async function loadMachine() {
     machine = await WW.api(root.dataset.api);
+    document.dispatchEvent(new CustomEvent("ww:machine", { detail: machine }));  // evidence.js
     renderFacts();
     fillPointSelects();
     renderCauses();

@@ -15,7 +15,9 @@ By idea:
   running speed;
 - :mod:`~monitor.store.reads.speeds`: the running speed people see (speed readings and
   accepted readings);
-- :mod:`~monitor.store.reads.spectra`: stored spectra;
+- :mod:`~monitor.store.reads.spectra`: stored spectra, a point's waterfall and the
+  spectrum its baseline was learned from;
+- :mod:`~monitor.store.reads.waveforms`: stored raw time waveforms;
 - :mod:`~monitor.store.reads.alarms`: the alarm history, in the one JSON shape of an alarm
   (REST API and MQTT alarm events);
 - :mod:`~monitor.store.reads.passages`: the passages of run-ups and coast-downs, and the
@@ -78,10 +80,14 @@ from monitor.store.reads.people import (
 from monitor.store.reads.service import StartState, passage_tracker_state, start_state
 from monitor.store.reads.spectra import (
     MAX_SPECTRUM_BINS,
+    baseline_spectrum,
+    bucket_peaks,
     get_spectrum,
     latest_spectra,
+    newest_spectrum,
     newest_velocity_spectra,
     spectrum_json,
+    waterfall,
 )
 from monitor.store.reads.speeds import (
     SPEED_TOPIC,
@@ -92,6 +98,7 @@ from monitor.store.reads.speeds import (
     running_speed,
 )
 from monitor.store.reads.trends import decimate_indices, speed_trend, trends
+from monitor.store.reads.waveforms import find_waveforms, get_waveform, waveform_json
 
 __all__ = [
     "MAX_AUDIT_PAGE",
@@ -152,4 +159,11 @@ __all__ = [
     "latest_speed_readings",
     "running_speed",
     "speed_trend",
+    "baseline_spectrum",
+    "bucket_peaks",
+    "newest_spectrum",
+    "waterfall",
+    "find_waveforms",
+    "get_waveform",
+    "waveform_json",
 ]

@@ -1,5 +1,6 @@
 """Reads of stored spectra: one by id, each point's newest (or newest velocity spectrum up
-to an instant, for alarm evidence), in the API's JSON shape."""
+to an instant, for alarm evidence), a point's spectra over a time range (a waterfall), the
+spectrum a point's baseline was learned from, in the API's JSON shape."""
 
 from __future__ import annotations
 
@@ -8,11 +9,11 @@ import math
 from typing import Any
 
 import numpy as np
-from sqlalchemy import select
+from sqlalchemy import and_, or_, select
 from sqlalchemy.orm import Session, aliased
 
 from monitor.model.timefmt import iso_utc
-from monitor.store.models import MeasurementPoint, SpectrumSnapshot
+from monitor.store.models import BaselineRestart, Measurement, MeasurementPoint, SpectrumSnapshot
 
 #: Spectra longer than this are thinned (peak per bucket) before they go to the browser.
 MAX_SPECTRUM_BINS = 8192
@@ -84,3 +85,82 @@ def spectrum_json(sn: SpectrumSnapshot, max_bins: int = MAX_SPECTRUM_BINS) -> di
             "freq_hz": np.round(f, 4).tolist(),
             "amplitude": [float(f"{v:.5g}") if math.isfinite(v) else None for v in amp.tolist()],
             "non_finite_bins": int(amp.size - np.count_nonzero(np.isfinite(amp)))}
+
+
+def _amplitudes_json(amp: np.ndarray) -> list[float | None]:
+    return [float(f"{v:.5g}") if math.isfinite(v) else None for v in amp.tolist()]
+
+
+def bucket_peaks(amp: np.ndarray, max_bins: int) -> tuple[np.ndarray, int]:
+    """At most ``max_bins`` values of ``amp``: the largest of each bucket of ``k``
+    neighbouring bins (a trailing part bucket dropped), and ``k`` (1: all kept)."""
+    if amp.size <= max_bins:
+        return amp, 1
+    k = int(np.ceil(amp.size / max_bins))
+    n = amp.size // k * k
+    return np.nanmax(amp[:n].reshape(-1, k), axis=1), k
+
+
+def waterfall(s: Session, machine_id: str, point_id: str, kind: str, since: dt.datetime, until: dt.datetime,
+              max_rows: int, max_bins: int = MAX_SPECTRUM_BINS, *, by_speed: bool = False) -> dict[str, Any]:
+    """A point's stored spectra of ``kind`` with ``since <= ts <= until``, oldest first, as
+    the rows of a waterfall on one frequency grid (that of the newest; a spectrum on
+    another grid is left out and counted in ``left_out``); at most ``max_rows`` rows,
+    evenly spread over those stored (``stored`` counts them). Each row: spectrum ``id``,
+    ``ts``, ``speed_hz`` of its reading (Hz; None when not kept) and ``amplitude`` in
+    ``unit``; above ``max_bins`` bins each is the largest of ``bin_group`` neighbours, at
+    the frequency of the bucket's first bin. ``by_speed``: the rows chosen are then
+    ordered by the running speed of their readings (a run-up or coast-down's spectra
+    against speed; rows without a speed last)."""
+    rows = s.execute(
+        select(SpectrumSnapshot, Measurement.speed_hz)
+        .outerjoin(Measurement, and_(Measurement.machine_id == SpectrumSnapshot.machine_id,
+                                     Measurement.point_id == SpectrumSnapshot.point_id,
+                                     Measurement.ts == SpectrumSnapshot.ts))
+        .where(SpectrumSnapshot.machine_id == machine_id, SpectrumSnapshot.point_id == point_id,
+               SpectrumSnapshot.kind == kind, SpectrumSnapshot.ts >= since, SpectrumSnapshot.ts <= until)
+        .order_by(SpectrumSnapshot.ts, SpectrumSnapshot.id)).all()
+    out: dict[str, Any] = {"machine": machine_id, "point": point_id, "kind": kind, "from": iso_utc(since),
+                           "to": iso_utc(until), "stored": len(rows), "left_out": 0, "unit": None,
+                           "scaling": None, "df_hz": None, "bin_group": 1, "freq_hz": [], "rows": []}
+    if not rows:
+        return out
+    newest = rows[-1][0]
+    grid = (newest.f0_hz, newest.df_hz, newest.n_bins)
+    same = [(sn, sp) for sn, sp in rows if (sn.f0_hz, sn.df_hz, sn.n_bins) == grid]
+    if len(same) > max_rows:
+        same = [same[i] for i in np.unique(np.linspace(0, len(same) - 1, max_rows).round().astype(int))]
+    k = bucket_peaks(np.zeros(newest.n_bins), max_bins)[1]
+    out.update(left_out=len(rows) - sum(1 for sn, _ in rows if (sn.f0_hz, sn.df_hz, sn.n_bins) == grid),
+               unit=newest.unit, scaling=newest.scaling, df_hz=newest.df_hz, bin_group=k,
+               freq_hz=np.round(newest.freq_hz()[: newest.n_bins // k * k: k], 4).tolist())
+    out["rows"] = [{"id": sn.id, "ts": iso_utc(sn.ts), "speed_hz": sp, "evidence": sn.evidence,
+                    "amplitude": _amplitudes_json(bucket_peaks(sn.amplitude_array().astype(np.float64), max_bins)[0])}
+                   for sn, sp in same]
+    if by_speed:
+        out["rows"].sort(key=lambda r: (r["speed_hz"] is None, r["speed_hz"] or 0.0))
+    return out
+
+
+def baseline_spectrum(s: Session, machine_id: str, point_id: str, kind: str) -> tuple[SpectrumSnapshot | None,
+                                                                                      dt.datetime | None]:
+    """The spectrum a point's learned baseline describes: its first stored spectrum of
+    ``kind`` after the last applied baseline restart of the point (or of every point), or
+    its first stored one when none was applied; and the restart's time (None)."""
+    since = s.scalar(
+        select(BaselineRestart.applied_at)
+        .where(BaselineRestart.machine_id == machine_id, BaselineRestart.applied_at.is_not(None),
+               or_(BaselineRestart.point_id.is_(None), BaselineRestart.point_id == point_id))
+        .order_by(BaselineRestart.applied_at.desc()).limit(1))
+    q = select(SpectrumSnapshot).where(SpectrumSnapshot.machine_id == machine_id,
+                                       SpectrumSnapshot.point_id == point_id, SpectrumSnapshot.kind == kind)
+    if since is not None:
+        q = q.where(SpectrumSnapshot.ts >= since)
+    return s.scalars(q.order_by(SpectrumSnapshot.ts, SpectrumSnapshot.id).limit(1)).first(), since
+
+
+def newest_spectrum(s: Session, machine_id: str, point_id: str, kind: str) -> SpectrumSnapshot | None:
+    """A point's newest stored spectrum of ``kind``, or None."""
+    return s.scalars(select(SpectrumSnapshot).where(
+        SpectrumSnapshot.machine_id == machine_id, SpectrumSnapshot.point_id == point_id,
+        SpectrumSnapshot.kind == kind).order_by(SpectrumSnapshot.ts.desc(), SpectrumSnapshot.id.desc()).limit(1)).first()
