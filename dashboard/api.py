@@ -267,7 +267,7 @@ def spectrum(spectrum_id: int):
     sn = reads.get_spectrum(db_session(), spectrum_id)
     if sn is None:
         raise NotFound(f"No stored spectrum with id {spectrum_id}.")
-    return jsonify(reads.spectrum_json(sn))
+    return jsonify(reads.spectrum_json(sn, speed_hz=reads.reading_speeds(db_session(), [sn])[sn.id]))
 
 
 def openapi_document() -> dict:

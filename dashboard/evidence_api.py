@@ -161,10 +161,11 @@ def machine_compare(machine_id: str):
     if now is None or now.machine_id != m.id or now.point_id != point:
         raise NotFound(f"Point {point!r} of machine {m.id!r} has no such stored {kind} spectrum.")
     base, since = reads.baseline_spectrum(s, m.id, point, now.kind)
+    speeds = reads.reading_speeds(s, [now] if base is None else [now, base])
     return jsonify({"machine": m.id, "point": point, "kind": now.kind,
                     "baseline_since": iso_utc(since) if since is not None else None,
-                    "now": reads.spectrum_json(now),
-                    "baseline": None if base is None else reads.spectrum_json(base)})
+                    "now": reads.spectrum_json(now, speed_hz=speeds[now.id]),
+                    "baseline": None if base is None else reads.spectrum_json(base, speed_hz=speeds[base.id])})
 
 
 @bp.get("/machines/<machine_id>/passages/<int:passage_id>/sweep")

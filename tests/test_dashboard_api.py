@@ -5,15 +5,18 @@ are the ones the service writes."""
 
 from __future__ import annotations
 
+import datetime as dt
 import json
 import re
 
 import pytest
 from dashboard_seed import PASSWORDS, seed
 from fixtures_db import fresh_database
-from sqlalchemy import event
+from sqlalchemy import event, select
 
 from dashboard import create_app
+from monitor.store import Store
+from monitor.store.models import Measurement
 
 BACKENDS = ["sqlite", pytest.param("postgresql", marks=pytest.mark.postgres)]
 
@@ -135,7 +138,7 @@ def test_trends_decimated(client, auth):
     _err(client.get("/api/v1/machines/fan-000/trends?point=zz"), 404)
 
 
-def test_alarm_pagination_and_filters(client, auth):
+def test_alarm_pagination_and_filters(client, auth, db_url):
     auth.login("vic")
     everything = [a["id"] for a in client.get("/api/v1/alarms?limit=500").get_json()["items"]]
     seen, cursor = [], None
@@ -159,6 +162,16 @@ def test_alarm_pagination_and_filters(client, auth):
     sid = one["transitions"][0]["spectrum_id"]
     sp = client.get(f"/api/v1/spectra/{sid}").get_json()
     assert len(sp["freq_hz"]) == len(sp["amplitude"]) == 2049
+    # the running speed of the spectrum's reading, as stored with the reading
+    store = Store.open(db_url)
+    try:
+        with store.session() as s:
+            stored = s.execute(select(Measurement.speed_hz).where(
+                Measurement.machine_id == sp["machine"], Measurement.point_id == sp["point"],
+                Measurement.ts == dt.datetime.fromisoformat(sp["ts"].replace("Z", "+00:00")))).scalar_one()
+    finally:
+        store.close()
+    assert stored is not None and sp["speed_hz"] == stored
 
 
 def test_viewer_cannot_write_and_csrf(client, auth, app):

@@ -122,28 +122,140 @@
     ChartText.clear(t);
   }
 
+  // Marker families on demand (SpectrumMarks, spectrum_marks.js): colour, dash and the
+  // height of their labels, so overlapping families stay apart.
+  const MARK_STYLE = {
+    run: { colour: "#2a7d4f", dash: [], row: 3, text: "solid green" },
+    freq: { colour: "#7b3a96", dash: [], row: 4, text: "solid purple" },
+    side: { colour: "#b3261e", dash: [2, 3], row: 5, text: "dotted red" },
+  };
+  // A click this close to a peak (CSS px) picks it.
+  const PICK_PX = 8;
+  let shown = null;  // the spectrum on the chart: { sp, speed, u, fixed, marks }
+
+  function fieldNumber(id) {
+    const v = document.getElementById(id).value.trim();
+    return v === "" ? NaN : Number(v);
+  }
+
+  // The spacing preset's frequency, Hz (null: typed, or nothing to take it from).
+  function presetSpacing(speed) {
+    const kind = document.getElementById("marks-spacing").value;
+    if (kind === "run") return speed || null;
+    if (kind === "line") return machine.line_frequency_hz ? 2 * machine.line_frequency_hz : null;
+    return null;
+  }
+
+  // What the marker controls ask for, as SpectrumMarks.markerFrequencies takes it.
+  function markChoice(speed) {
+    const on = id => document.getElementById(id).checked;
+    const harmonics = [];
+    if (on("marks-run")) {
+      if (!speed) throw new Error("Harmonics of 1x need the running speed of this spectrum, and it has none.");
+      harmonics.push({ family: "run", name: "Harmonics of 1x", hz: speed, count: fieldNumber("marks-run-count"), order: true });
+    }
+    if (on("marks-freq")) harmonics.push({ family: "freq", name: "Harmonics of the chosen frequency", hz: fieldNumber("marks-freq-hz"), count: fieldNumber("marks-freq-count"), order: false });
+    const sidebands = on("marks-side") ? { family: "side", name: "Sidebands", carrier_hz: fieldNumber("marks-carrier-hz"),
+      spacing_hz: fieldNumber("marks-spacing-hz"), count: fieldNumber("marks-side-count") } : null;
+    return { harmonics, sidebands };
+  }
+
+  // The markers as text for the chart's text alternative, one line per family.
+  function markText(marks) {
+    const lines = [];
+    for (const family of Object.keys(MARK_STYLE)) {
+      const ms = marks.filter(m => m.family === family);
+      if (!ms.length) continue;
+      let head = ms[0].name;
+      if (family === "run") head += " (1x " + WW.num(ms[0].hz, 2) + " Hz)";
+      if (family === "freq") head += " (f " + WW.num(ms[0].hz, 2) + " Hz)";
+      if (family === "side") {
+        const c = ms.find(m => m.k === 0), up = ms.find(m => m.k === 1) || ms.find(m => m.k === -1);
+        head += " around " + (c ? WW.num(c.hz, 2) + " Hz" : "the carrier") + (up && c ? " at ± " + WW.num(Math.abs(up.hz - c.hz), 2) + " Hz" : "");
+      }
+      lines.push(MARK_STYLE[family].text + " lines, " + head + ": " + ms.map(m => m.label + " " + WW.num(m.hz, 2) + " Hz").join(", "));
+    }
+    return lines;
+  }
+
+  // Recompute the on-demand markers from the controls, redraw them and the chart's text.
+  function updateMarks() {
+    if (!shown) return;
+    const err = document.getElementById("marks-error");
+    const preset = presetSpacing(shown.speed);
+    if (preset !== null) document.getElementById("marks-spacing-hz").value = Number(preset.toFixed(4));
+    const lastHz = shown.sp.freq_hz.length ? shown.sp.freq_hz[shown.sp.freq_hz.length - 1] : 0;
+    try {
+      shown.marks = SpectrumMarks.markerFrequencies(markChoice(shown.speed), lastHz);
+      err.hidden = true;
+    } catch (e) {
+      shown.marks = [];
+      err.textContent = e.message;
+      err.hidden = false;
+    }
+    const target = document.getElementById("chart-spectrum");
+    target.dataset.marks = JSON.stringify(shown.marks.map(m => ({ family: m.family, k: m.k, hz: m.hz, label: m.label })));
+    shown.u.redraw(false, false);
+    ChartText.attach(target, shown.u, shown.fixed.concat(markText(shown.marks)));
+  }
+
+  // A click waits this long (ms) for a second one: a double-click zooms out, picks nothing.
+  const DOUBLE_CLICK_MS = 300;
+
+  // A click on the chart (no drag, no double-click): the highest bin within PICK_PX of it
+  // becomes the chosen frequency or the carrier, and its family is switched on.
+  function pickPeak(u, sp) {
+    let down = null, timer = null;
+    u.over.addEventListener("mousedown", e => { down = [e.clientX, e.clientY]; });
+    u.over.addEventListener("dblclick", () => { clearTimeout(timer); timer = null; });
+    u.over.addEventListener("click", e => {
+      if (down && Math.hypot(e.clientX - down[0], e.clientY - down[1]) > 3) return;
+      if (timer !== null) return;  // the second click of a double-click
+      const left = e.clientX - u.over.getBoundingClientRect().left;
+      timer = setTimeout(() => { timer = null; pick(left); }, DOUBLE_CLICK_MS);
+    });
+    function pick(left) {
+      const hz = u.posToVal(left, "x");
+      const reach = Math.abs(u.posToVal(left + PICK_PX, "x") - hz);
+      const peak = SpectrumMarks.nearestPeak(sp.freq_hz, sp.amplitude, hz, reach);
+      if (peak === null) return;
+      const into = document.getElementById("marks-click").value;
+      document.getElementById(into === "carrier" ? "marks-carrier-hz" : "marks-freq-hz").value = peak;
+      document.getElementById(into === "carrier" ? "marks-side" : "marks-freq").checked = true;
+      updateMarks();
+    }
+  }
+
   function drawSpectrum(sp, caption) {
-    if (!sp) { noData("chart-spectrum", "No stored spectrum for this point yet."); return; }
+    if (!sp) { shown = null; noData("chart-spectrum", "No stored spectrum for this point yet."); return; }
+    // The speed of this spectrum's own reading; the point's latest speed if it kept none.
     const latestSpeed = (machine.points.find(p => p.id === sp.point) || {}).latest;
-    const speed = latestSpeed ? latestSpeed.speed_hz : machine.speed_hz;
+    const speed = sp.speed_hz ? sp.speed_hz : (latestSpeed ? latestSpeed.speed_hz : machine.speed_hz);
     const orders = orderList();
     const markers = speed ? orders.map(o => ({ label: o + "x", hz: o * speed })) : [];
     if (machine.line_frequency_hz) markers.push({ label: "2xLF", hz: 2 * machine.line_frequency_hz });
     const drawMarkers = u => {
       const ctx = u.ctx; const { top, height: h } = u.bbox;
-      ctx.save(); ctx.setLineDash([5, 4]); ctx.strokeStyle = "#1b6ca8"; ctx.fillStyle = "#1b6ca8";
-      ctx.font = (11 * devicePixelRatio) + "px system-ui"; ctx.lineWidth = 1;
-      for (const m of markers) {
-        const x = u.valToPos(m.hz, "x", true);
-        if (x < u.bbox.left || x > u.bbox.left + u.bbox.width) continue;
+      const line = (hz, label, colour, dash, row) => {
+        const x = u.valToPos(hz, "x", true);
+        if (x < u.bbox.left || x > u.bbox.left + u.bbox.width) return;
+        ctx.setLineDash(dash); ctx.strokeStyle = colour; ctx.fillStyle = colour;
         ctx.beginPath(); ctx.moveTo(x, top); ctx.lineTo(x, top + h); ctx.stroke();
-        ctx.fillText(m.label, x + 3, top + 28 * devicePixelRatio);
+        ctx.fillText(label, x + 3, top + 14 * row * devicePixelRatio);
+      };
+      ctx.save();
+      ctx.font = (11 * devicePixelRatio) + "px system-ui"; ctx.lineWidth = 1;
+      for (const m of markers) line(m.hz, m.label, "#1b6ca8", [5, 4], 2);
+      for (const m of (shown && shown.u === u ? shown.marks : [])) {
+        const st = MARK_STYLE[m.family];
+        line(m.hz, m.label, st.colour, st.dash, st.row);
       }
       ctx.restore();
     };
     const lastHz = sp.freq_hz.length ? sp.freq_hz[sp.freq_hz.length - 1] : 0;
     const span = spectrumSpan(speed, lastHz);
     const target = document.getElementById("chart-spectrum");
+    const fixed = modeMarks().concat(markers.map(m => "dashed line " + m.label + " at " + WW.num(m.hz, 2) + " Hz"));
     const u = put("chart-spectrum", {
       height: 300,
       scales: { x: { time: false } },
@@ -152,7 +264,11 @@
       axes: [{ label: "Frequency, Hz" }, { label: sp.unit + " " + sp.scaling, size: 70 }],
       hooks: { drawClear: [modeBands("x")], draw: [drawMarkers],
         setScale: [(c, key) => { if (key === "x") target.dataset.xMax = c.scales.x.max; }] },
-    }, [sp.freq_hz, sp.amplitude], modeMarks().concat(markers.map(m => "dashed line " + m.label + " at " + WW.num(m.hz, 2) + " Hz")));
+    }, [sp.freq_hz, sp.amplitude], fixed);
+    shown = { sp, speed, u, fixed, marks: [] };
+    target.dataset.speedHz = speed || "";
+    pickPeak(u, sp);
+    updateMarks();
     // Opens on the span of interest; the full span is one click (or a double-click) away.
     target.dataset.spanHz = span;
     target.dataset.fullHz = lastHz;
@@ -382,6 +498,9 @@
     document.dispatchEvent(new CustomEvent("ww:machine", { detail: machine }));  // evidence.js
     renderFacts();
     fillPointSelects();
+    const linePreset = document.querySelector("#marks-spacing option[value=line]");
+    linePreset.disabled = !machine.line_frequency_hz;
+    linePreset.textContent = machine.line_frequency_hz ? "twice line frequency (" + WW.num(2 * machine.line_frequency_hz, 0) + " Hz)" : "twice line frequency (none set)";
     renderCauses();
     renderMargins();
     renderBaselines();
@@ -395,6 +514,11 @@
   document.getElementById("range").addEventListener("change", loadTrends);
   document.getElementById("trend-point").addEventListener("change", drawTrends);
   document.getElementById("spectrum-point").addEventListener("change", e => { drawSpectrum(latestFor(e.target.value)); });
+  // The marker controls redraw the markers; choosing a spacing preset fills its Hz,
+  // typing a spacing chooses "typed".
+  for (const id of ["marks-run", "marks-run-count", "marks-freq", "marks-freq-hz", "marks-freq-count", "marks-side",
+    "marks-carrier-hz", "marks-spacing", "marks-side-count"]) document.getElementById(id).addEventListener("change", updateMarks);
+  document.getElementById("marks-spacing-hz").addEventListener("change", () => { document.getElementById("marks-spacing").value = "typed"; updateMarks(); });
   document.getElementById("spectrum-latest").addEventListener("click", e => { e.target.hidden = true; drawSpectrum(latestFor(document.getElementById("spectrum-point").value)); });
   let resizeTimer = null;
   window.addEventListener("resize", () => { clearTimeout(resizeTimer); resizeTimer = setTimeout(() => { if (trendData) { drawResonance(); drawTrends(); } }, 200); });

@@ -86,6 +86,7 @@ from monitor.store.reads.spectra import (
     latest_spectra,
     newest_spectrum,
     newest_velocity_spectra,
+    reading_speeds,
     spectrum_json,
     waterfall,
 )
@@ -149,6 +150,7 @@ __all__ = [
     "passage_tracker_state",
     "point_zone_limits",
     "recent_baseline_restarts",
+    "reading_speeds",
     "spectrum_json",
     "start_state",
     "trends",

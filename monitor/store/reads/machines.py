@@ -32,7 +32,7 @@ from monitor.store.reads.evaluations import (
     point_zone_limits,
 )
 from monitor.store.reads.hints import machine_hints_json
-from monitor.store.reads.spectra import latest_spectra, spectrum_json
+from monitor.store.reads.spectra import latest_spectra, reading_speeds, spectrum_json
 from monitor.store.reads.speeds import (
     RunningSpeed,
     SpeedCandidate,
@@ -164,6 +164,7 @@ def machine_detail(s: Session, m: Machine) -> dict[str, Any]:
         })
     margins = _current_margins(m, modes, speed, speed.reading.evaluation if speed.reading is not None else None)
     spectra = latest_spectra(s, m.id)
+    spectrum_speeds = reading_speeds(s, spectra)
     return {
         "id": m.id, "name": m.name or m.id, "location": m.location, "class": m.machine_class,
         "speed_range_rpm": [m.speed_min_rpm, m.speed_max_rpm],
@@ -177,7 +178,7 @@ def machine_detail(s: Session, m: Machine) -> dict[str, Any]:
         "margins": margins,
         # The shaded bands of the charts: the margin rule's own edges, per mode.
         "mode_bands": mode_bands(m, modes),
-        "latest_spectra": [spectrum_json(sn) for sn in spectra],
+        "latest_spectra": [spectrum_json(sn, speed_hz=spectrum_speeds[sn.id]) for sn in spectra],
         "likely_causes": machine_hints_json(m, points, latest, spectra, margins),
         "baseline_restarts": [baseline_restart_json(r) for r in recent_baseline_restarts(s, m.id)],
     }

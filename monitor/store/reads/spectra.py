@@ -65,8 +65,24 @@ def newest_velocity_spectra(s: Session, machine_id: str, until: dt.datetime) -> 
     return {p: (int(i), ts) for p, i, ts in rows}
 
 
-def spectrum_json(sn: SpectrumSnapshot, max_bins: int = MAX_SPECTRUM_BINS) -> dict[str, Any]:
-    """A stored spectrum for the API, at most ``max_bins`` bins. Ingest keeps every
+def reading_speeds(s: Session, spectra: list[SpectrumSnapshot]) -> dict[int, float | None]:
+    """The running speed (Hz) the analysis used for the reading of each stored spectrum:
+    spectrum id -> speed (None when the reading had none or is no longer stored), in one
+    statement. The speed a spectrum's markers (1x, its harmonics) are drawn at."""
+    if not spectra:
+        return {}
+    rows = s.execute(
+        select(Measurement.machine_id, Measurement.point_id, Measurement.ts, Measurement.speed_hz)
+        .where(Measurement.machine_id.in_({sn.machine_id for sn in spectra}),
+               Measurement.ts.in_({sn.ts for sn in spectra}))).all()
+    speeds = {(m, p, ts): v for m, p, ts, v in rows}
+    return {sn.id: speeds.get((sn.machine_id, sn.point_id, sn.ts)) for sn in spectra}
+
+
+def spectrum_json(sn: SpectrumSnapshot, max_bins: int = MAX_SPECTRUM_BINS,
+                  speed_hz: float | None = None) -> dict[str, Any]:
+    """A stored spectrum for the API, at most ``max_bins`` bins, with ``speed_hz``, the
+    running speed of its reading (Hz, :func:`reading_speeds`). Ingest keeps every
     stored spectrum finite (``samples_absurd``, docs/mqtt.md); a bin that is not (stored
     before that check, e.g. a float32 overflow) is written as null, counted in
     ``non_finite_bins``, so the answer stays valid JSON."""
@@ -81,7 +97,7 @@ def spectrum_json(sn: SpectrumSnapshot, max_bins: int = MAX_SPECTRUM_BINS) -> di
         f, amp = f[idx], amp[idx]
     return {"id": sn.id, "machine": sn.machine_id, "point": sn.point_id, "ts": iso_utc(sn.ts),
             "kind": sn.kind, "unit": sn.unit, "scaling": sn.scaling,
-            "df_hz": sn.df_hz, "evidence": sn.evidence,
+            "df_hz": sn.df_hz, "evidence": sn.evidence, "speed_hz": speed_hz,
             "freq_hz": np.round(f, 4).tolist(),
             "amplitude": [float(f"{v:.5g}") if math.isfinite(v) else None for v in amp.tolist()],
             "non_finite_bins": int(amp.size - np.count_nonzero(np.isfinite(amp)))}
