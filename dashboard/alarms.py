@@ -175,6 +175,7 @@ def detail(alarm_id: int):
               "spectra": _spectra_of(t["evidence"], t["spectrum_id"]),
               "hints": _hints_of(t["evidence"])} for t in d["transitions"]]
     return render_template("alarms/detail.html", alarm=d, steps=steps,
+                           deliveries=reads.alarm_deliveries(db_session(), alarm_id),
                            summary=wording.alarm_summary(d["kind"], d["subject"]),
                            kind_text=wording.kind_words(d["kind"]),
                            subject_text=wording.subject_words(d["kind"], d["subject"]))
