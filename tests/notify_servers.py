@@ -120,7 +120,7 @@ class MailReceiver:
             ok = isinstance(data, LoginPassword) and data.login.decode() == user and data.password.decode() == password
             self.logins.append((mechanism, data.login.decode() if isinstance(data, LoginPassword) else "",
                                 ok, session.ssl is not None))
-            return AuthResult(success=ok)
+            return AuthResult(success=ok, handled=False)  # not handled: the server answers 535
 
         self.port = closed_port()
         self.controller = Controller(
