@@ -45,8 +45,8 @@ def counter(svc, name: str, target: str = "webhook") -> float:
     return svc.metrics.registry.get_sample_value(name, {"target": target}) or 0.0
 
 
-def test_signed_events_arrive_as_documented(tmp_path, caplog):
-    url = f"sqlite:///{tmp_path / 'store.sqlite'}"
+def test_signed_events_arrive_as_documented(database_url, tmp_path, caplog):
+    url = database_url
     plant_store(url)
     receiver = HookReceiver()
     cfg = notify_file(tmp_path, f'webhook_url = "{receiver.url}"\ndashboard_url = "https://cm.example.test"',
@@ -87,14 +87,17 @@ def test_signed_events_arrive_as_documented(tmp_path, caplog):
     store.close()
     app = create_app({"DATABASE_URL": url, "SECRET_KEY": "test", "TESTING": True})
     first = events[0]["id"]
-    with app.test_client() as client:
-        login(client)
-        alarm = client.get(f"/api/v1/alarms/{first}").get_json()
-        assert [(n["target"], n["outcome"], n["transition"]) for n in alarm["notifications"]] == [
-            ("webhook", "delivered", e["transition"]) for e in events if e["id"] == first]
-        page = client.get(f"/alarms/{first}").get_data(as_text=True)
-        table = page[page.index('id="delivery-table"'):]
-        assert "delivered" in table and receiver.url in table and "HTTP 200" in table
+    try:
+        with app.test_client() as client:
+            login(client)
+            alarm = client.get(f"/api/v1/alarms/{first}").get_json()
+            assert [(n["target"], n["outcome"], n["transition"]) for n in alarm["notifications"]] == [
+                ("webhook", "delivered", e["transition"]) for e in events if e["id"] == first]
+            page = client.get(f"/alarms/{first}").get_data(as_text=True)
+            table = page[page.index('id="delivery-table"'):]
+            assert "delivered" in table and receiver.url in table and "HTTP 200" in table
+    finally:
+        app.extensions["whirlwatch_engine"].dispose()
 
 
 def test_failing_target_retried_with_backoff(tmp_path):

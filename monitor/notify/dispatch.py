@@ -101,6 +101,10 @@ class Channel:
         """Transitions waiting in the queue (not counting one being delivered)."""
         return self._queue.qsize()
 
+    def request_stop(self) -> None:
+        """Ask the worker to end (:meth:`stop` waits for it)."""
+        self._stop.set()
+
     def stop(self, timeout_s: float) -> None:
         """End the worker (a back-off wait ends at once); what is still queued is dropped
         and logged."""
@@ -180,9 +184,14 @@ class Notifier:
         for channel in self.channels.values():
             channel.start()
 
-    def stop(self, timeout_s: float = 5.0) -> None:
+    def stop(self, timeout_s: float | None = None) -> None:
+        """Stop the workers; each may finish the attempt under way (by default waiting up
+        to one attempt's timeout and a second), which is then recorded as the last."""
+        wait = self.settings.timeout_s + 1.0 if timeout_s is None else timeout_s
         for channel in self.channels.values():
-            channel.stop(timeout_s)
+            channel.request_stop()  # all at once: the waits overlap
+        for channel in self.channels.values():
+            channel.stop(wait)
 
     def submit(self, events: Iterable[Mapping[str, Any]]) -> None:
         """Queue each committed transition of ``events`` for the targets its rules name
