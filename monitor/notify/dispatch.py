@@ -217,7 +217,9 @@ class Notifier:
 
         e = job.event
         try:
-            with self._store.write_transaction() as s:
+            # A plain short transaction: the writer gate (Store.write_transaction) queues
+            # processes, not the threads of one, and this insert is a few ms.
+            with self._store.transaction() as s:
                 record_delivery(s, alarm_id=int(e["id"]), transition=str(e.get("transition")),
                                 transition_at=parse_iso_utc(str(e.get("transition_at"))),
                                 target=target,
