@@ -16,10 +16,13 @@ import os
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from monitor.io.mqtt_names import MqttConfigError, is_topic_level, is_topic_prefix, parse_broker_url
 from monitor.model.timefmt import time_zone
+
+if TYPE_CHECKING:
+    from monitor.notify.rules import Rule
 
 ENV_PREFIX = "WHIRLWATCH_"
 
@@ -297,93 +300,36 @@ SETTINGS: tuple[Setting, ...] = (
         "Publish the retained machine status on {prefix}/{machine}/status.",
     ),
     # notifications (docs/notifications.md; the rules are [[notifications.rule]] tables)
-    Setting(
-        "notifications.dashboard_url",
-        "str",
-        "",
-        "Base URL of the dashboard as the receivers reach it (https://cm.example.com); e-mails link to {dashboard_url}/alarms/{id}.",
-        check=_http_url,
-    ),
-    Setting(
-        "notifications.webhook_url",
-        "str",
-        "",
-        "URL the rules with webhook = true POST each alarm event to; empty turns the webhook off.",
-        check=_http_url,
-    ),
-    Setting(
-        "notifications.webhook_secret",
-        "str",
-        "",
-        "Key of the HMAC-SHA256 signature of each webhook body (header X-Whirlwatch-Signature); keep it in the environment.",
-        secret=True,
-    ),
-    Setting(
-        "notifications.smtp_host", "str", "", "SMTP server for e-mail; empty turns e-mail off."
-    ),
-    Setting(
-        "notifications.smtp_port",
-        "int",
-        587,
-        "SMTP submission port (STARTTLS is always used).",
-        minimum=1,
-        maximum=65535,
-    ),
-    Setting(
-        "notifications.smtp_username", "str", "", "SMTP login name; empty sends without login."
-    ),
-    Setting(
-        "notifications.smtp_password",
-        "str",
-        "",
-        "SMTP login password; keep it in the environment.",
-        secret=True,
-    ),
+    Setting("notifications.dashboard_url", "str", "",
+            "Base URL of the dashboard as the receivers reach it (https://cm.example.com); e-mails link to {dashboard_url}/alarms/{id}.",
+            check=_http_url),
+    Setting("notifications.webhook_url", "str", "",
+            "URL the rules with webhook = true POST each alarm event to; empty turns the webhook off.",
+            check=_http_url),
+    Setting("notifications.webhook_secret", "str", "",
+            "Key of the HMAC-SHA256 signature of each webhook body (header X-Whirlwatch-Signature); keep it in the environment.",
+            secret=True),
+    Setting("notifications.smtp_host", "str", "", "SMTP server for e-mail; empty turns e-mail off."),
+    Setting("notifications.smtp_port", "int", 587, "SMTP submission port (STARTTLS is always used).",
+            minimum=1, maximum=65535),
+    Setting("notifications.smtp_username", "str", "", "SMTP login name; empty sends without login."),
+    Setting("notifications.smtp_password", "str", "", "SMTP login password; keep it in the environment.",
+            secret=True),
     Setting("notifications.smtp_from", "str", "", "Sender address of the e-mails."),
-    Setting(
-        "notifications.smtp_ca_file",
-        "path",
-        "",
-        "CA certificate file (PEM) to verify the SMTP server; empty uses the system store.",
-    ),
-    Setting(
-        "notifications.queue_size",
-        "int",
-        1000,
-        "Most transitions waiting per target; more are dropped, counted and logged.",
-        minimum=1,
-        maximum=1000000,
-    ),
-    Setting(
-        "notifications.max_attempts",
-        "int",
-        5,
-        "Most delivery attempts per transition and target.",
-        minimum=1,
-        maximum=100,
-    ),
-    Setting(
-        "notifications.backoff_s",
-        "float",
-        2.0,
-        "Wait before the second attempt, s; each further wait doubles (exponential back-off).",
-        minimum=0.0,
-    ),
-    Setting(
-        "notifications.backoff_max_s",
-        "float",
-        300.0,
-        "Longest wait between two attempts, s.",
-        minimum=0.0,
-    ),
-    Setting(
-        "notifications.timeout_s",
-        "float",
-        10.0,
-        "Network timeout of one delivery attempt, s.",
-        minimum=0.1,
-        maximum=600.0,
-    ),
+    Setting("notifications.smtp_ca_file", "path", "",
+            "CA certificate file (PEM) to verify the SMTP server; empty uses the system store."),
+    Setting("notifications.queue_size", "int", 1000,
+            "Most transitions waiting per target; more are dropped, counted and logged.",
+            minimum=1, maximum=1000000),
+    Setting("notifications.max_attempts", "int", 5, "Most delivery attempts per transition and target.",
+            minimum=1, maximum=100),
+    Setting("notifications.backoff_s", "float", 2.0,
+            "Wait before the second attempt, s; each further wait doubles (exponential back-off).",
+            minimum=0.0),
+    Setting("notifications.backoff_max_s", "float", 300.0, "Longest wait between two attempts, s.",
+            minimum=0.0),
+    Setting("notifications.timeout_s", "float", 10.0, "Network timeout of one delivery attempt, s.",
+            minimum=0.1, maximum=600.0),
     # service
     Setting(
         "service.data_dir",
@@ -542,7 +488,7 @@ class NotificationSettings:
     backoff_s: float = default("notifications.backoff_s")
     backoff_max_s: float = default("notifications.backoff_max_s")
     timeout_s: float = default("notifications.timeout_s")
-    rules: tuple[Any, ...] = ()
+    rules: tuple[Rule, ...] = ()
 
 
 @dataclass(frozen=True)

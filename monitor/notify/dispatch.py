@@ -20,13 +20,18 @@ import queue
 import threading
 from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from monitor.model.timefmt import parse_iso_utc
 from monitor.notify.mail import SmtpAccount, build_message, mail_text, send_mail
 from monitor.notify.rules import Eligible, not_shelved, targets_for
 from monitor.notify.webhook import DeliveryError, event_body, post_event, shown_url
 from monitor.redact import add_secret, redact
+
+if TYPE_CHECKING:
+    from monitor.metrics import ServiceMetrics
+    from monitor.settings import NotificationSettings
+    from monitor.store import Store
 
 log = logging.getLogger("whirlwatch.notify")
 
@@ -70,7 +75,7 @@ class Channel:
     ``record(target, job, destination, attempt, outcome, detail)`` stores one attempt."""
 
     def __init__(self, name: str, send: Callable[[Job], str], destination: Callable[[Job], str],
-                 retry: Retry, queue_size: int, metrics: Any, record: Callable[..., None]) -> None:
+                 retry: Retry, queue_size: int, metrics: ServiceMetrics, record: Callable[..., None]) -> None:
         self.name = name
         self._send = send
         self._destination = destination
@@ -156,7 +161,8 @@ class Notifier:
     registry location (for rules by group), ``eligible(event)`` may hold a transition
     back (shelved alarms; :func:`monitor.notify.rules.not_shelved`)."""
 
-    def __init__(self, settings: Any, store: Any, metrics: Any, location_of: Callable[[str], str | None],
+    def __init__(self, settings: NotificationSettings, store: Store, metrics: ServiceMetrics,
+                 location_of: Callable[[str], str | None],
                  eligible: Eligible = not_shelved, clock: Callable[[], dt.datetime] | None = None) -> None:
         self.settings = settings
         self._store = store
