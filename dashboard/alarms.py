@@ -20,12 +20,12 @@ from flask import (
     url_for,
 )
 
-from dashboard import wording
 from dashboard.db import db_session
 from dashboard.errors import BadRequest, Conflict, NotFound, Unauthorised
 from dashboard.ids import parse_cursor
 from dashboard.redirects import same_origin_path
 from dashboard.security import current, require
+from monitor import wording
 from monitor.detection.alarms import KINDS, SEVERITIES
 from monitor.model.timefmt import parse_iso_utc
 from monitor.store import reads
@@ -175,6 +175,7 @@ def detail(alarm_id: int):
               "spectra": _spectra_of(t["evidence"], t["spectrum_id"]),
               "hints": _hints_of(t["evidence"])} for t in d["transitions"]]
     return render_template("alarms/detail.html", alarm=d, steps=steps,
+                           deliveries=reads.alarm_deliveries(db_session(), alarm_id),
                            summary=wording.alarm_summary(d["kind"], d["subject"]),
                            kind_text=wording.kind_words(d["kind"]),
                            subject_text=wording.subject_words(d["kind"], d["subject"]))
@@ -212,7 +213,7 @@ def acknowledge(alarm_id: int):
 
 def with_words(d: dict) -> dict:
     """An alarm's JSON with its kind and subject in words (``kind_text``, ``subject_text``,
-    ``summary``) for the pages and the CSV (dashboard/wording.py)."""
+    ``summary``) for the pages and the CSV (monitor/wording.py)."""
     return {**d, "kind_text": wording.kind_words(d["kind"]),
             "subject_text": wording.subject_words(d["kind"], d["subject"]),
             "summary": wording.alarm_summary(d["kind"], d["subject"])}

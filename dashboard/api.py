@@ -242,7 +242,8 @@ def alarm(alarm_id: int):
     a = reads.get_alarm(db_session(), alarm_id)
     if a is None:
         raise NotFound(f"No alarm with id {alarm_id}.")
-    return jsonify(reads.alarm_json(a, with_transitions=True))
+    return jsonify({**reads.alarm_json(a, with_transitions=True),
+                    "notifications": reads.alarm_deliveries(db_session(), alarm_id)})
 
 
 @bp.post("/alarms/<int:alarm_id>/acknowledge")

@@ -17,15 +17,22 @@ from __future__ import annotations
 import os
 import tomllib
 from collections.abc import Mapping
+from dataclasses import replace
 from pathlib import Path
 from typing import Any
 
+from monitor.notify.rules import Rule, RuleError, parse_rules
 from monitor.redact import redact
 from monitor.settings import BY_NAME, GROUPS, SECTIONS, SETTINGS, Setting, Settings
 
 
 class ConfigError(ValueError):
     """A configuration value is bad; the message names where, the key and what was expected."""
+
+
+#: The array of tables of the notification rules (monitor/notify/rules.py): not a single
+#: value, so not in the registry; docs/notifications.md describes its keys.
+RULES_KEY = "notifications.rule"
 
 
 # ----------------------------------------------------------------------------- loading
@@ -123,6 +130,9 @@ def _read_file(path: Path) -> dict[str, Any]:
             raise ConfigError(f"{path}: '{section}' must be a table [{section}].")
         for key, value in table.items():
             name = f"{section}.{key}"
+            if name == RULES_KEY:  # an array of tables, read by monitor/notify/rules.py
+                flat[name] = value
+                continue
             if name not in BY_NAME:
                 known = ", ".join(s.key for s in SETTINGS if s.section == section)
                 raise ConfigError(f"{path}: unknown key '{name}'; [{section}] takes {known}.")
@@ -144,11 +154,18 @@ def load_settings(
     values: dict[str, Any] = {s.name: s.default for s in SETTINGS}
     base = Path.cwd()
     source = None
+    rules: tuple[Rule, ...] = ()
     if path is not None:
         p = Path(path)
         source = str(p)
         base = p.resolve().parent
         for name, raw in _read_file(p).items():
+            if name == RULES_KEY:
+                try:
+                    rules = parse_rules(raw, str(p))
+                except RuleError as exc:
+                    raise ConfigError(str(exc)) from exc
+                continue
             setting = BY_NAME[name]
             value = _convert(setting, raw, str(p))
             if setting.kind == "path" and value:
@@ -177,7 +194,20 @@ def load_settings(
         section: cls(**{s.key: values[s.name] for s in SETTINGS if s.section == section})
         for section, cls in GROUPS.items()
     }
+    groups["notifications"] = replace(groups["notifications"], rules=rules)
+    _check_targets(groups["notifications"], source or "settings")
     return Settings(source=source, **groups)
+
+
+def _check_targets(n: Any, where: str) -> None:
+    """A rule that names a target must have it configured (the file or the environment)."""
+    for i, rule in enumerate(n.rules, 1):
+        if rule.webhook and not n.webhook_url:
+            raise ConfigError(f"{where}: notifications.rule #{i} sets webhook = true, but "
+                              "'notifications.webhook_url' is empty.")
+        if rule.email_to and not (n.smtp_host and n.smtp_from):
+            raise ConfigError(f"{where}: notifications.rule #{i} sends e-mail, but "
+                              "'notifications.smtp_host' or 'notifications.smtp_from' is empty.")
 
 
 # ----------------------------------------------------------------------------- docs
@@ -202,6 +232,11 @@ def example_file() -> str:
             default = "" if s.name == "service.data_dir" else s.default
             out.append(f"# {s.help} (env {s.env})")
             out.append(f"# {s.key} = {_toml(default)}")
+        if section == "notifications":
+            out += ["", "# Any number of rules; each sends the transitions it matches (docs/notifications.md).",
+                    "# [[notifications.rule]]", '# groups = ["Hall 2"]', '# kinds = ["resonance_proximity"]',
+                    '# min_severity = "alert"', '# transitions = ["raised", "escalated", "cleared"]',
+                    "# webhook = true", '# email_to = ["maintenance@example.com"]']
     return "\n".join(out) + "\n"
 
 
@@ -226,7 +261,8 @@ def render_docs() -> str:
         "`[section]`. Every setting can also be set by its environment variable",
         "(`WHIRLWATCH_SECTION_KEY`), which wins over the file; flags such as `--broker`,",
         "`--database` and `--machines` win over both. Keep secrets (`broker.password`, a",
-        "`database.url` with a password, `dashboard.secret_key`) in the environment.",
+        "`database.url` with a password, `dashboard.secret_key`, the notification secrets) in",
+        "the environment.",
         "",
         "A bad value stops the service with one sentence naming the file (or variable), the",
         "key and what was expected, e.g.",
@@ -260,6 +296,10 @@ def render_docs() -> str:
             )
             help_text = s.help.replace("|", "\\|") + (" Secret: never logged." if s.secret else "")
             out.append(f"| `{s.name}` | {kind} | {default} | `{s.env}` | {help_text} |")
+        if section == "notifications":
+            out += ["", "Which alarm transitions are sent, and to whom, is set by `[[notifications.rule]]`",
+                    "tables (keys `machines`, `groups`, `kinds`, `min_severity`, `transitions`, `webhook`,",
+                    "`email_to`): docs/notifications.md, with the webhook body and its signature."]
         out.append("")
     out += ["## Example", "", "```toml", example_file().rstrip("\n"), "```", ""]
     return "\n".join(out)

@@ -35,7 +35,7 @@ TIME_BUCKETS = (0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.
 class ServiceMetrics:
     """Counters and gauges: messages in (by kind), rejected (by reason), processing time,
     in flight, alarm transitions, alarms by state, database retries and errors, batch
-    reruns, readings set aside, publish failures; and, once :meth:`watch_health` is
+    reruns, readings set aside, publish failures, notifications (by target); and, once :meth:`watch_health` is
     called, the health view's gauges read at each scrape."""
 
     def __init__(self) -> None:
@@ -79,6 +79,29 @@ class ServiceMetrics:
             "whirlwatch_processing_errors",
             "Readings set aside as dead letters because processing them failed, by error class.",
             ["error"], registry=r,
+        )
+
+        # Notifications (monitor/notify/dispatch.py), by target: webhook, email.
+        self.notifications_delivered = Counter(
+            "whirlwatch_notifications_delivered", "Alarm transitions delivered, by target.", ["target"],
+            registry=r,
+        )
+        self.notification_failures = Counter(
+            "whirlwatch_notification_failures", "Failed delivery attempts (each retry counts), by target.",
+            ["target"], registry=r,
+        )
+        self.notifications_given_up = Counter(
+            "whirlwatch_notifications_given_up",
+            "Alarm transitions not delivered after the last attempt, by target.", ["target"], registry=r,
+        )
+        self.notifications_dropped = Counter(
+            "whirlwatch_notifications_dropped",
+            "Alarm transitions dropped because the target's queue was full, by target.", ["target"],
+            registry=r,
+        )
+        self.notification_queue = Gauge(
+            "whirlwatch_notification_queue", "Alarm transitions waiting for delivery, by target.", ["target"],
+            registry=r,
         )
 
     def observe(self, seconds: float) -> None:

@@ -16,10 +16,13 @@ import os
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from monitor.io.mqtt_names import MqttConfigError, is_topic_level, is_topic_prefix, parse_broker_url
 from monitor.model.timefmt import time_zone
+
+if TYPE_CHECKING:
+    from monitor.notify.rules import Rule
 
 ENV_PREFIX = "WHIRLWATCH_"
 
@@ -115,6 +118,12 @@ def _address(v: str) -> str | None:
     if not host or not port.isdigit() or not 0 < int(port) < 65536:
         return "HOST:PORT (or empty to turn it off)"
     return None
+
+
+def _http_url(v: str) -> str | None:
+    if v == "" or v.startswith(("http://", "https://")) and len(v.split("://", 1)[1]) > 0:
+        return None
+    return "an http:// or https:// URL (or empty for none)"
 
 
 def _time_zone(v: str) -> str | None:
@@ -290,6 +299,37 @@ SETTINGS: tuple[Setting, ...] = (
         True,
         "Publish the retained machine status on {prefix}/{machine}/status.",
     ),
+    # notifications (docs/notifications.md; the rules are [[notifications.rule]] tables)
+    Setting("notifications.dashboard_url", "str", "",
+            "Base URL of the dashboard as the receivers reach it (https://cm.example.com); e-mails link to {dashboard_url}/alarms/{id}.",
+            check=_http_url),
+    Setting("notifications.webhook_url", "str", "",
+            "URL the rules with webhook = true POST each alarm event to; empty turns the webhook off.",
+            check=_http_url),
+    Setting("notifications.webhook_secret", "str", "",
+            "Key of the HMAC-SHA256 signature of each webhook body (header X-Whirlwatch-Signature); keep it in the environment.",
+            secret=True),
+    Setting("notifications.smtp_host", "str", "", "SMTP server for e-mail; empty turns e-mail off."),
+    Setting("notifications.smtp_port", "int", 587, "SMTP submission port (STARTTLS is always used).",
+            minimum=1, maximum=65535),
+    Setting("notifications.smtp_username", "str", "", "SMTP login name; empty sends without login."),
+    Setting("notifications.smtp_password", "str", "", "SMTP login password; keep it in the environment.",
+            secret=True),
+    Setting("notifications.smtp_from", "str", "", "Sender address of the e-mails."),
+    Setting("notifications.smtp_ca_file", "path", "",
+            "CA certificate file (PEM) to verify the SMTP server; empty uses the system store."),
+    Setting("notifications.queue_size", "int", 1000,
+            "Most transitions waiting per target; more are dropped, counted and logged.",
+            minimum=1, maximum=1000000),
+    Setting("notifications.max_attempts", "int", 5, "Most delivery attempts per transition and target.",
+            minimum=1, maximum=100),
+    Setting("notifications.backoff_s", "float", 2.0,
+            "Wait before the second attempt, s; each further wait doubles (exponential back-off).",
+            minimum=0.0),
+    Setting("notifications.backoff_max_s", "float", 300.0, "Longest wait between two attempts, s.",
+            minimum=0.0),
+    Setting("notifications.timeout_s", "float", 10.0, "Network timeout of one delivery attempt, s.",
+            minimum=0.1, maximum=600.0),
     # service
     Setting(
         "service.data_dir",
@@ -430,6 +470,28 @@ class AlarmSettings:
 
 
 @dataclass(frozen=True)
+class NotificationSettings:
+    """The ``[notifications]`` table; ``rules`` are its ``[[notifications.rule]]`` tables
+    (:class:`monitor.notify.rules.Rule`), read by :func:`monitor.config.load_settings`."""
+
+    dashboard_url: str = default("notifications.dashboard_url")
+    webhook_url: str = default("notifications.webhook_url")
+    webhook_secret: str = field(default=default("notifications.webhook_secret"), repr=False)
+    smtp_host: str = default("notifications.smtp_host")
+    smtp_port: int = default("notifications.smtp_port")
+    smtp_username: str = default("notifications.smtp_username")
+    smtp_password: str = field(default=default("notifications.smtp_password"), repr=False)
+    smtp_from: str = default("notifications.smtp_from")
+    smtp_ca_file: str = default("notifications.smtp_ca_file")
+    queue_size: int = default("notifications.queue_size")
+    max_attempts: int = default("notifications.max_attempts")
+    backoff_s: float = default("notifications.backoff_s")
+    backoff_max_s: float = default("notifications.backoff_max_s")
+    timeout_s: float = default("notifications.timeout_s")
+    rules: tuple[Rule, ...] = ()
+
+
+@dataclass(frozen=True)
 class ServiceSettings:
     data_dir: str = default("service.data_dir")
     machines_file: str = default("service.machines_file")
@@ -454,6 +516,7 @@ GROUPS: dict[str, type] = {
     "retention": RetentionSettings,
     "spectra": SpectraSettings,
     "alarms": AlarmSettings,
+    "notifications": NotificationSettings,
     "service": ServiceSettings,
     "dashboard": DashboardSettings,
 }
@@ -470,6 +533,7 @@ class Settings:
     alarms: AlarmSettings
     service: ServiceSettings
     dashboard: DashboardSettings
+    notifications: NotificationSettings = NotificationSettings()
     source: str | None = None
 
     def get(self, name: str) -> Any:

@@ -57,14 +57,17 @@ def traffic(name: str, start: int = 0, stop: int | None = None, *, end_ts: float
     return [(t, json.dumps(p, separators=(",", ":")).encode()) for _, (t, p) in plan]
 
 
-def offline_service(url: str, clock: Callable[[], float] | None = None, **settings: object) -> Service:
+def offline_service(url: str, clock: Callable[[], float] | None = None, config: Path | None = None,
+                    **settings: object) -> Service:
     """A service on the store at ``url`` that is never started: no broker, nothing
-    published; readings go in through ``handle_batch``. ``settings`` are dotted settings
-    names with ``_`` for ``.`` (``spectra_snapshot_interval_s=300``); retention is off."""
+    published; readings go in through ``handle_batch`` (and their transitions to the
+    notifier, if any, through ``announce``). ``config``: a service file read first (the
+    notification rules live there); ``settings`` are dotted settings names with ``_`` for
+    ``.`` (``spectra_snapshot_interval_s=300``); retention is off."""
     overrides: dict[str, object] = {"broker.url": "mqtt://127.0.0.1:1", "database.url": url,
                                     "retention.enabled": False}
     overrides.update({k.replace("_", ".", 1): v for k, v in settings.items()})
-    return Service(load_settings(None, env={}, overrides=overrides), clock=clock, stale_check_s=0)
+    return Service(load_settings(config, env={}, overrides=overrides), clock=clock, stale_check_s=0)
 
 
 def message(reading: Waveform | SpeedReading) -> tuple[str, bytes]:

@@ -17,7 +17,7 @@ from dashboard_seed import PASSWORDS, seed
 from fixtures_db import fresh_database
 
 from dashboard import create_app
-from dashboard.wording import evidence_rows, subject_words
+from monitor.wording import evidence_rows, subject_words
 
 BACKENDS = ["sqlite", pytest.param("postgresql", marks=pytest.mark.postgres)]
 #: The seeded fans' pedestal mode: damping ratio 0.04 (tests/dashboard_seed.py), so

@@ -11,7 +11,8 @@ never waiting for more), in this order (docs/service.md):
    alarm transitions with their evidence, each machine's detector state written once;
 3. commit, then acknowledge every message of the batch;
 4. hand each alarm transition and at most one retained status per machine to the
-   publisher's outbound queue (QoS 1, not waiting for the PUBACKs).
+   publisher's outbound queue (QoS 1, not waiting for the PUBACKs), and each alarm
+   transition to the notifier's queues (monitor/notify/dispatch.py, not waiting either).
 
 A crash at any instant leaves either nothing or everything of a batch committed, and its
 messages unacknowledged until it is: the broker redelivers, the existence check skips the
@@ -51,6 +52,7 @@ from monitor.io.rejection_count import RejectionCounter
 from monitor.io.source import Message, Source
 from monitor.metrics import MetricsServer, ServiceMetrics
 from monitor.model.registry import Registry
+from monitor.notify.dispatch import Notifier
 from monitor.service.cadence import SnapshotCadence
 from monitor.service.core import Core
 from monitor.service.failures import Retrier
@@ -205,6 +207,12 @@ class Service:
         self.registry_changes = RegistryChanges(
             self.core, unsettled=[m for m in start.with_open_alarms if m in known],
             unretired=[m for m in start.unretired if m not in known])
+        # Notifications: their own queues and threads, fed after each commit (announce).
+        self.notifier: Notifier | None = None
+        if settings.notifications.rules:
+            self.notifier = Notifier(settings.notifications, self.store, self.metrics,
+                                     lambda m: getattr(self.registry.by_id().get(m), "location", None))
+            self.notifier.start()
         self._given_source = source
         self.source: Source[Any] | None = None
         self.publisher: Publisher | None = None
@@ -282,26 +290,26 @@ class Service:
             src.ack(m)
         # Again after the acks, so an idle service does not show its last batch as in flight.
         self.metrics.in_flight.set(src.stats.in_flight)
-        self._announce(outs)
+        self.announce(outs)
 
     # -- changes made outside the readings (each returns the alarm events it published)
 
     def check_stale(self) -> list[dict[str, Any]]:
         """Raise stale-stream alarms as of the clock; publish them; return the events."""
-        return self._announce(check_stale(self.core))
+        return self.announce(check_stale(self.core))
 
     def sync_acknowledgements(self) -> list[dict[str, Any]]:
         """Apply the acknowledgements made in the dashboard to the detectors now, not at
         the machines' next readings, and publish them (alarm events and retained status);
         run every :data:`~monitor.service.periodic.ACK_SYNC_S` by the periodic thread."""
-        return self._announce(sync_acknowledgements(self.core))
+        return self.announce(sync_acknowledgements(self.core))
 
     def apply_registry_requests(self) -> list[dict[str, Any]]:
         """Registry edits, live (the periodic thread runs this every 0.5 s; see
         monitor/service/registry_changes.py): alarms of what left a machine's entry, or of
         a retired machine, closed, recorded and published (a retired machine's retained
         status removed); pending baseline restarts applied."""
-        return self._announce(self.registry_changes.settle())
+        return self.announce(self.registry_changes.settle())
 
     # -- outbound
 
@@ -324,11 +332,14 @@ class Service:
             self.metrics.publish_failures.inc()
             log.warning("publishing failed", extra={"machine": out.machine, "error": str(exc)})
 
-    def _announce(self, outs: list[Outcome]) -> list[dict[str, Any]]:
-        """Publish outcomes (after their commit), count and log their alarm transitions;
-        returns their events."""
+    def announce(self, outs: list[Outcome]) -> list[dict[str, Any]]:
+        """Publish outcomes (after their commit), hand their alarm transitions to the
+        notifier (its queues; never waiting: monitor/notify/dispatch.py), count and log
+        them; returns their events."""
         for out in outs:
             self.publish(out)
+            if self.notifier is not None and out.events:
+                self.notifier.submit(out.events)
             for e in out.events:
                 self.metrics.transitions.labels(transition=str(e.get("transition"))).inc()
                 log.info("alarm transition", extra={
@@ -434,6 +445,8 @@ class Service:
             self.publisher.stop()
         if self._periodic is not None:
             self._periodic.join(5.0)
+        if self.notifier is not None:
+            self.notifier.stop()
         if self._prober is not None:
             self._prober.join(1.0)  # a probe waiting on a silent database ends with its timeouts
         if self.metrics_server is not None:

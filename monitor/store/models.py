@@ -593,3 +593,6 @@ class PassageRow(Base):
     decided_by: Mapped[str | None] = mapped_column(String(100))
     decided_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime)
     accepted_mode: Mapped[str | None] = mapped_column(String(200))
+
+# The notification delivery records live in their own module (one idea; models.py's size).
+from monitor.store.delivery_models import NotificationDelivery  # noqa: E402,F401

@@ -20,6 +20,7 @@ By idea:
 - :mod:`~monitor.store.reads.waveforms`: stored raw time waveforms;
 - :mod:`~monitor.store.reads.alarms`: the alarm history, in the one JSON shape of an alarm
   (REST API and MQTT alarm events);
+- :mod:`~monitor.store.reads.notifications`: the notification delivery attempts of an alarm;
 - :mod:`~monitor.store.reads.passages`: the passages of run-ups and coast-downs, and the
   candidate modes among them;
 - :mod:`~monitor.store.reads.people`: users, API tokens and the audit trail;
@@ -59,6 +60,7 @@ from monitor.store.reads.machines import (
     mode_named,
     recent_baseline_restarts,
 )
+from monitor.store.reads.notifications import alarm_deliveries, delivery_json
 from monitor.store.reads.overview import (
     MAX_OVERVIEW_PAGE,
     OVERVIEW_STATES,
@@ -115,7 +117,9 @@ __all__ = [
     "OPEN_STATES",
     "StartState",
     "alarm_counts_by_state",
+    "alarm_deliveries",
     "alarm_json",
+    "delivery_json",
     "alarms_by_id",
     "baseline_restart_json",
     "current_margins",
