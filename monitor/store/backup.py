@@ -252,11 +252,27 @@ def postgres_dump_revision(file: Path) -> str | None:
     return None
 
 
+def postgres_dump_schema(file: Path) -> str:
+    """The schema whose ``alembic_version`` table custom-format dump ``file`` holds
+    (from pg_restore's table of contents); BackupError when it holds none."""
+    exe = _tool("pg_restore", f"pg_restore --list {file}")
+    listing = _run([exe, "--list", str(file)], dict(os.environ), f"pg_restore reading {file}")
+    found = re.search(rf"^\d+; \d+ \d+ TABLE (\S+) {VERSION_TABLE} ", listing, re.MULTILINE)
+    if found is None:
+        raise BackupError(f"{file} holds no whirlwatch schema revision; it is not a whirlwatch backup.")
+    return found.group(1)
+
+
 def restore_postgres(url: URL, file: Path) -> None:
     """``pg_restore`` of dump ``file`` into the database at ``url`` in one transaction,
     dropping first whatever of the dump's objects exist there (``--clean --if-exists``:
     a schema-only dump recreates its schema, and an upgraded empty store has the tables)."""
     pg = pg_target(url)
+    dumped = postgres_dump_schema(file)
+    if dumped != (pg.schema or "public"):
+        raise BackupError(
+            f"{file} holds schema {dumped!r} but the database URL names schema {pg.schema or 'public'!r}; "
+            "a dump is restored into the schema it was taken from (set options=-csearch_path to it).")
     exe = _tool("pg_restore", f"pg_restore --clean --if-exists --dbname {url.database} {file}")
     cmd = [exe, "--no-owner", "--no-privileges", "--single-transaction", "--exit-on-error",
            "--clean", "--if-exists", *pg.args]
