@@ -253,3 +253,19 @@ def test_postgres_refuses_a_dump_of_another_schema(tmp_path):
         text = _one_sentence(r.output)
         assert _pg_schema(one) in text and _pg_schema(two) in text
         assert table_rows(two) == {}
+
+
+def test_restore_of_an_older_backup_upgrades_it(tmp_path):
+    """A backup of an earlier release's store restores and is brought to the newest schema
+    (tests/test_upgrade_previous.py checks that an upgrade keeps the rows)."""
+    from monitor.store.migrate import upgrade
+
+    old = f"sqlite:///{tmp_path / 'old.sqlite'}"
+    older = known_revisions()[-3]
+    upgrade(old, older)
+    file = tmp_path / "old.backup"
+    r = _cli("db", "backup", str(file), "--database", old)
+    assert r.exit_code == 0 and f"revision {older}" in r.output, r.output
+    r = _cli("db", "restore", str(file), "--database", f"sqlite:///{tmp_path / 'new.sqlite'}")
+    assert r.exit_code == 0, r.output
+    assert f"schema revision {older}" in r.output and f"schema revision {known_revisions()[-1]}" in r.output
