@@ -261,3 +261,24 @@ def test_build_and_run_the_image():
     compose_cmd = shlex.split(f"{exe} compose -f {COMPOSE} config --quiet")
     env = dict(SECRETS)
     subprocess.run(compose_cmd, check=True, timeout=60, env={**os.environ, **env})
+
+
+def test_the_commands_docs_deploy_shows_are_cli_commands():
+    """Every ``docker compose run ... migrate ARGS`` and ``docker run ... whirlwatch:local
+    ARGS`` line of docs/deploy.md, and its ``whirlwatch db ...`` lines, parse as commands."""
+    text = (ROOT / "docs" / "deploy.md").read_text()
+    shown = []
+    for line in text.splitlines():
+        line = line.split("#", 1)[0].strip().strip("`")
+        if line.startswith("docker compose run"):
+            words = shlex.split(line)
+            shown.append(words[words.index("migrate") + 1:])
+        elif line.startswith("docker run --rm whirlwatch:local"):
+            shown.append(shlex.split(line)[4:])
+        elif line.startswith("whirlwatch db "):
+            shown.append([w for w in shlex.split(line)[1:] if w not in ("[--database", "URL", "|", "--config", "FILE]", "[--force]")]
+                         + (["--force"] if "[--force]" in line else []))
+    commands = [args for args in shown if args[:1] != ["--help"]]
+    assert len(commands) >= 5, shown
+    for args in commands:
+        check_cli(args)
