@@ -269,3 +269,14 @@ def test_restore_of_an_older_backup_upgrades_it(tmp_path):
     r = _cli("db", "restore", str(file), "--database", f"sqlite:///{tmp_path / 'new.sqlite'}")
     assert r.exit_code == 0, r.output
     assert f"schema revision {older}" in r.output and f"schema revision {known_revisions()[-1]}" in r.output
+
+
+@pytest.mark.postgres
+def test_postgres_without_the_client_tools_says_what_to_run(tmp_path, monkeypatch):
+    with fresh_database("postgresql", tmp_path) as url:
+        seed(url)
+        monkeypatch.setenv("PATH", str(tmp_path))  # a PATH without pg_dump and pg_restore
+        r = _cli("db", "backup", str(tmp_path / "x.dump"), "--database", url)
+        text = _one_sentence(r.output)
+        assert "pg_dump is not on PATH" in text and "pg_dump --format=custom" in text
+        assert not (tmp_path / "x.dump").exists()
