@@ -291,6 +291,8 @@ def backup(url: str, target: Path, *, force: bool = False) -> str:
         raise BackupError(f"{target} is a directory; name a file.")
     parsed = normalise_url(url)
     path = sqlite_file(parsed)
+    if path is not None and path.exists() and path.resolve() == target.resolve():
+        raise BackupError(f"{target} is the store itself; name another file.")
     if path is not None:
         return backup_sqlite(path, target)
     if parsed.get_backend_name() != "postgresql":
@@ -316,6 +318,8 @@ def restore(url: str, file: Path, *, force: bool = False) -> RestoreResult:
     path = sqlite_file(parsed)
     if path is None and parsed.get_backend_name() != "postgresql":
         raise BackupError(f"database URL {shown} is neither a SQLite file nor PostgreSQL.")
+    if path is not None and path.exists() and path.resolve() == file.resolve():
+        raise BackupError(f"{file} is the store itself; restore from a backup file.")
     revision = check_revision(sqlite_revision(file) if path is not None else postgres_dump_revision(file), file)
     engine = make_engine(parsed)
     try:
