@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from collections.abc import Callable
+from pathlib import Path
 from typing import TYPE_CHECKING, Any, TypeVar
 
 import click
@@ -114,3 +115,41 @@ def thin_cmd(database_url: str | None, config_file: str | None) -> None:
         f"{result.dead_letters} dead letters",
         err=True,
     )
+
+
+@db.command("backup")
+@database_options
+@click.argument("file", type=click.Path(dir_okay=False, path_type=Path))
+@click.option("--force", is_flag=True, default=False, help="Replace FILE if it exists.")
+def backup_cmd(database_url: str | None, config_file: str | None, file: Path, force: bool) -> None:
+    """Copy the store into FILE while the service runs (SQLite: the online backup API;
+    PostgreSQL: pg_dump's custom format; docs/deploy.md)."""
+    from monitor.store.backup import BackupError, backup
+    from monitor.store.db import StoreError
+
+    url = resolve_database_url(database_url, config_file)
+    try:
+        revision = backup(url, file, force=force)
+    except (BackupError, StoreError) as exc:
+        raise click.ClickException(str(exc)) from None
+    click.echo(f"backed up the store at schema revision {revision} into {file}", err=True)
+
+
+@db.command("restore")
+@database_options
+@click.argument("file", type=click.Path(dir_okay=False, path_type=Path))
+@click.option("--force", is_flag=True, default=False,
+              help="Replace a store that already holds data (everything in it is lost).")
+def restore_cmd(database_url: str | None, config_file: str | None, file: Path, force: bool) -> None:
+    """Restore the store from FILE (made by `db backup`), then bring it to the newest
+    schema; refuses a store that holds data unless --force. Stop the service first."""
+    from monitor.store.backup import BackupError, restore
+    from monitor.store.db import StoreError
+
+    url = resolve_database_url(database_url, config_file)
+    try:
+        done = restore(url, file, force=force)
+    except (BackupError, StoreError) as exc:
+        raise click.ClickException(str(exc)) from None
+    click.echo(f"restored {file} (schema revision {done.file_revision}); the store is at "
+               f"schema revision {done.store_revision}", err=True)
