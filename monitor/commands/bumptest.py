@@ -9,6 +9,10 @@ hit is checked on the force channel (``monitor.modes.hits``): refused hits are l
 with a warning, and a point none of whose hits is usable is refused: one sentence naming
 the file, the channels and what is wrong, exit status 1, no modes and no comparison.
 
+FILE may also be a recording (.csv, .wav, .uff/.unv; docs/import-export.md): ``--machine``
+names its machine, ``--point`` each channel (``--unit``, ``--calibration``), and each block
+of ``--block-samples`` is one hit; its blocks go the same way as a stream file's lines.
+
 Lines are validated by ``monitor.io.ingest.decode_message`` like live traffic, without the
 age limits (a recording is old by nature). Without ``--machines`` every machine and point
 of the file is accepted (the point's quantity taken from the unit of its first waveform).
