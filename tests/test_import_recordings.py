@@ -214,7 +214,14 @@ def test_uff58_recovers_samples_and_sample_rate(tmp_path, precision, even, binar
     # E13.5 keeps 6 significant digits, E20.12 13, float32 24 bits (IEEE 754).
     rel = {("single", False): 5e-6, ("double", False): 5e-13, ("single", True): 2**-24}.get(
         (precision, binary), 1e-15)
-    assert np.allclose(ch.samples, x, rtol=rel, atol=rel * 0.5 * 1e-30 + 1e-15 + rel * 1e-3)
+    assert np.allclose(ch.samples, x, rtol=rel, atol=1e-15)
+
+
+def test_truncated_binary_uff_is_refused(tmp_path):
+    path = tmp_path / "cut.uff"
+    path.write_bytes(_uff58(_signal(1000), FS, binary=True)[:-3000])
+    with pytest.raises(RecordingError, match="truncated"):
+        read_recording(path)
 
 
 def test_increment_field_digits_give_the_sample_rate():
@@ -225,8 +232,8 @@ def test_increment_field_digits_give_the_sample_rate():
 
 
 @pytest.mark.parametrize("mutate, word", [
-    (lambda b: b.replace(b"    58\n", b"    58\n" + b"garbage\n" * 0, 1).replace(
-        b"         4      1000         1", b"         x      1000         1", 1), "published layout"),
+    (lambda b: b.replace(b"         4      1000         1", b"         x      1000         1", 1),
+     "published layout"),
     (lambda b: b.replace(b"    1         0", b"    4         0", 1), "frequency response function"),
     (lambda b: b[: len(b) // 2], "closing '-1'"),
     (lambda b: b"not a universal file\n" + b, "no universal file"),

@@ -109,7 +109,8 @@ def _blocks(path: Path, data: bytes) -> list[tuple[str, bytes, int]]:
                                            "byte counts.") from None
             end = body_start
             for _ in range(n_ascii):
-                end = data.index(b"\n", end) + 1 if b"\n" in data[end:] else len(data)
+                nl = data.find(b"\n", end)
+                end = nl + 1 if nl >= 0 else len(data)
             body = data[body_start:end + n_bytes]
             if len(data) < end + n_bytes:
                 raise RecordingError(path, f"is truncated: data-set 58b at line {i + 2} states {n_bytes} bytes "
