@@ -11,6 +11,7 @@ follows the published record layout (formats as in monitor/io/uff58.py's docstri
 
 from __future__ import annotations
 
+import base64
 import csv
 import json
 import math
@@ -215,6 +216,21 @@ def test_uff58_recovers_samples_and_sample_rate(tmp_path, precision, even, binar
     rel = {("single", False): 5e-6, ("double", False): 5e-13, ("single", True): 2**-24}.get(
         (precision, binary), 1e-15)
     assert np.allclose(ch.samples, x, rtol=rel, atol=1e-15)
+
+
+def test_uff_data_sets_are_channels_in_file_order(tmp_path):
+    x, y = _signal(1000), -2.0 * _signal(1000)
+    path = tmp_path / "two.uff"
+    path.write_bytes(_uff58(x, FS) + _uff58(y, FS, units_label="g", binary=True))
+    out = tmp_path / "two.jsonl"
+    r = _run("import", str(path), "--machine", "ef-2", "--point", "-", "--point", "de-h", "--start", "0",
+             "--out", str(out))
+    assert r.exit_code == 0, r.output
+    ((topic, payload),) = list(read_messages(out))
+    # The second data-set, its unit from its ordinate units label, samples as float32 (the stream's).
+    assert topic == "whirlwatch/ef-2/de-h/waveform" and payload["unit"] == "g" and payload["fs"] == FS
+    got = np.frombuffer(base64.b64decode(payload["samples_f32"]), dtype="<f4")
+    assert np.allclose(got, y, rtol=2**-23, atol=1e-12)
 
 
 def test_truncated_binary_uff_is_refused(tmp_path):
