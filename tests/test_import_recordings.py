@@ -338,6 +338,13 @@ def test_import_into_the_store_through_the_service(tmp_path):
         assert ref is not None and sn.n_bins == ref.amplitude.size
         # Stored as float32 (monitor/store/models.py): equal to float32 rounding.
         assert np.allclose(sn.amplitude_array(), ref.amplitude, rtol=2**-23, atol=1e-12 * ref.amplitude.max())
+    # And against the signal itself: its 24.7 Hz sinusoid of 0.25 full scale x 40 m/s^2 =
+    # 10 m/s^2 peak reads, on the largest bin near it, between 10 and 10 less the Hann
+    # window's worst scalloping loss, 1.42 dB (Harris 1978, Table 1).
+    native = by_kind["native"]
+    amp = native.amplitude_array().astype(float) * (math.sqrt(2) if native.scaling == "rms" else 1.0)
+    near = np.abs(native.freq_hz() - 24.7) <= native.df_hz
+    assert 10 * 10 ** (-1.42 / 20) * 0.99 <= amp[near].max() <= 10 * 1.01
     # A machine the store does not know is not stored, and the command says so.
     r = _run("import", str(path), "--machine", "nope", "--point", "de-h", "--unit", "m/s^2",
              "--start", "0", "--store", "--database", url)
