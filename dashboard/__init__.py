@@ -91,6 +91,7 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
         audit,
         auth,
         evidence_api,
+        export_api,
         health,
         login_limits,
         machines,
@@ -108,6 +109,7 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     app.register_blueprint(alarms.bp)
     app.register_blueprint(api.bp)
     app.register_blueprint(evidence_api.bp)
+    app.register_blueprint(export_api.bp)
     app.register_blueprint(audit.api_bp)
     app.register_blueprint(health.bp)
     # The API authenticates tokens itself and checks CSRF only for session writes.

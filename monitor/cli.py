@@ -72,6 +72,7 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "demo": ("monitor.commands.demo", "demo"),
     "bumptest": ("monitor.commands.bumptest", "bumptest"),
     "passage": ("monitor.commands.passage", "passage"),
+    "import": ("monitor.commands.import_recording", "import_recording"),
 }
 
 

@@ -9,6 +9,10 @@ hit is checked on the force channel (``monitor.modes.hits``): refused hits are l
 with a warning, and a point none of whose hits is usable is refused: one sentence naming
 the file, the channels and what is wrong, exit status 1, no modes and no comparison.
 
+FILE may also be a recording (.csv, .wav, .uff/.unv; docs/import-export.md): ``--machine``
+names its machine, ``--point`` each channel (``--unit``, ``--calibration``), and each block
+of ``--block-samples`` is one hit; its blocks go the same way as a stream file's lines.
+
 Lines are validated by ``monitor.io.ingest.decode_message`` like live traffic, without the
 age limits (a recording is old by nature). Without ``--machines`` every machine and point
 of the file is accepted (the point's quantity taken from the unit of its first waveform).
@@ -26,7 +30,7 @@ import json
 import math
 import sys
 from collections import defaultdict
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterable, Iterator
 from pathlib import Path
 from typing import Any
 
@@ -35,9 +39,11 @@ import numpy as np
 
 from monitor.commands.analyse import FILE_LIMITS, Outcome, count_lines, format_or_dash
 from monitor.commands.db import database_options, open_store
+from monitor.commands.import_recording import messages_of, recording_options, recording_waveforms
 from monitor.commands.usage import usage_errors
 from monitor.io.ingest import decode_message, parse_topic
 from monitor.io.ingest_limits import Rejected
+from monitor.io.recording_files import FORMATS as RECORDING_FORMATS
 from monitor.io.streams import DEFAULT_PREFIX, StreamError, read_stream
 from monitor.model import units, validate
 from monitor.model.jsonsafe import jsonable
@@ -149,9 +155,12 @@ def read_hits(
     machine_id: str | None = None,
     outcome: Outcome,
     on_line: Callable[[], None] = lambda: None,
+    messages: Iterable[tuple[str, bytes]] | None = None,
 ) -> tuple[dict[tuple[str, str], list[Waveform]], dict[str, list[tuple[Waveform, str]]], Registry]:
     """Waveforms of ``path`` by (machine, point), force blocks by machine (with their
-    unit), and the registry used (``registry`` or one built from the file)."""
+    unit), and the registry used (``registry`` or one built from the file). ``messages``:
+    the file's messages already made (a recording's, monitor/commands/import_recording.py)
+    in place of the stream file's lines."""
     reg = registry if registry is not None else Registry()
     adhoc = registry is None
     hits: dict[tuple[str, str], list[Waveform]] = defaultdict(list)
@@ -163,7 +172,8 @@ def read_hits(
         outcome.reject("malformed_line", str(exc))
         on_line()
 
-    for topic, payload in read_stream(path, on_error=on_error):
+    source = messages if messages is not None else read_stream(path, on_error=on_error)
+    for topic, payload in source:
         outcome.seen += 1
         on_line()
         try:
@@ -423,13 +433,27 @@ def _results(
 @click.option("--record", is_flag=True,
               help="Compare with the modes stored in the database and record mode-shift alarms there.")
 @database_options
+@recording_options
 def bumptest(file: Path, machines_file: Path | None, machine_id: str | None,
              band: tuple[float, float] | None, force_point: str | None,
              force_range: float | None, tolerance_pct: float, as_json: bool, prefix: str,
-             record: bool, database_url: str | None, config_file: str | None) -> None:
+             record: bool, database_url: str | None, config_file: str | None,
+             **recording: Any) -> None:
     """Identify natural frequencies, damping (half-power and logarithmic decrement) and
-    amplification factors from the impact-test hits in stream FILE (.jsonl)."""
-    total = check_file(file)
+    amplification factors from the impact-test hits in FILE: a stream file (.jsonl), or a
+    recording (.csv, .wav, .uff/.unv) whose channels --point names (--machine required),
+    each block of --block-samples one hit."""
+    messages = None
+    if file.suffix.lower() in RECORDING_FORMATS:
+        if machine_id is None:
+            raise click.UsageError("a recording needs --machine: the machine its channels belong to.")
+        messages = messages_of(recording_waveforms(file, machine_id, **recording), prefix)
+        total = len(messages)
+    else:
+        if recording["points"]:
+            raise click.UsageError("--point maps the channels of a recording (.csv, .wav, .uff); "
+                                   f"{file.name} is a stream file.")
+        total = check_file(file)
     with usage_errors():
         if band is not None:
             validate.ordered_pair(band, "--band")
@@ -439,7 +463,7 @@ def bumptest(file: Path, machines_file: Path | None, machine_id: str | None,
     registry, store = comparison_registry(record, machines_file, database_url, config_file)
     try:
         _bumptest(file, total, registry, store, machine_id, band, force_point, force_range,
-                  tolerance_pct, as_json, prefix, machines_file)
+                  tolerance_pct, as_json, prefix, machines_file, messages)
     finally:
         if store is not None:
             store.close()
@@ -448,7 +472,7 @@ def bumptest(file: Path, machines_file: Path | None, machine_id: str | None,
 def _bumptest(file: Path, total: int, registry: Registry | None, store: Any, machine_id: str | None,
               band: tuple[float, float] | None, force_point: str | None,
               force_range: float | None, tolerance_pct: float, as_json: bool, prefix: str,
-              machines_file: Path | None) -> None:
+              machines_file: Path | None, messages: list[tuple[str, bytes]] | None = None) -> None:
     if registry is not None and machine_id is not None:
         try:
             registry.machine(machine_id)
@@ -459,7 +483,7 @@ def _bumptest(file: Path, total: int, registry: Registry | None, store: Any, mac
     with click.progressbar(length=total, label="reading hits", file=sys.stderr) as bar:
         hits, forces, _ = read_hits(
             file, registry, prefix=prefix, force_point=force_point, machine_id=machine_id,
-            outcome=outcome, on_line=lambda: bar.update(1),
+            outcome=outcome, on_line=lambda: bar.update(1), messages=messages,
         )
     if not hits:
         outcome.report("waveforms accepted")

@@ -17,6 +17,8 @@ By idea:
   accepted readings);
 - :mod:`~monitor.store.reads.spectra`: stored spectra, a point's waterfall and the
   spectrum its baseline was learned from;
+- :mod:`~monitor.store.reads.exports`: trends and stored spectra as tables for CSV and
+  Parquet exports;
 - :mod:`~monitor.store.reads.waveforms`: stored raw time waveforms;
 - :mod:`~monitor.store.reads.alarms`: the alarm history, in the one JSON shape of an alarm
   (REST API and MQTT alarm events);
@@ -48,6 +50,13 @@ from monitor.store.reads.evaluations import (
     mode_bands,
     nearest_margin,
     point_zone_limits,
+)
+from monitor.store.reads.exports import (
+    TREND_FEATURES,
+    TooManyRows,
+    check_features,
+    spectrum_table,
+    trend_table,
 )
 from monitor.store.reads.machines import (
     baseline_restart_json,
@@ -172,4 +181,9 @@ __all__ = [
     "find_waveforms",
     "get_waveform",
     "waveform_json",
+    "TREND_FEATURES",
+    "TooManyRows",
+    "check_features",
+    "spectrum_table",
+    "trend_table",
 ]
