@@ -290,6 +290,14 @@ SETTINGS: tuple[Setting, ...] = (
         True,
         "Publish the retained machine status on {prefix}/{machine}/status.",
     ),
+    Setting(
+        "alarms.max_shelve_hours",
+        "int",
+        168,
+        "Longest an engineer may shelve an alarm for, hours (ISA-18.2 shelving is time-limited; 7 days is common practice).",
+        minimum=1,
+        maximum=8760,
+    ),
     # service
     Setting(
         "service.data_dir",
@@ -427,6 +435,7 @@ class SpectraSettings:
 class AlarmSettings:
     publish: bool = default("alarms.publish")
     publish_status: bool = default("alarms.publish_status")
+    max_shelve_hours: int = default("alarms.max_shelve_hours")
 
 
 @dataclass(frozen=True)

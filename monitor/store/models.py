@@ -13,7 +13,7 @@ Tables (see docs/store.md for the full schema and the retention policy):
 - ``waveform_snapshots``: raw time waveforms as compressed float32, kept on their own
   cadence and with every alarm transition of a waveform as evidence.
 - ``speed_readings``: the speed stream, unique on (machine, ts).
-- ``alarms`` and ``alarm_transitions``: the alarm history, never thinned.
+- ``alarms`` and ``alarm_transitions``: the alarm history (with shelving), never thinned.
 - ``users`` and ``api_tokens``: dashboard logins and hashed API tokens;
   ``audit_events`` every change to them, with who, when and from where.
 - ``dead_letters``: rejected messages with their reason and first bytes.
@@ -392,6 +392,10 @@ class Alarm(Base):
     acknowledged_by: Mapped[str | None] = mapped_column(String(100))
     acknowledged_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime)
     ack_comment: Mapped[str | None] = mapped_column(Text)
+    # Shelved until this time (ISA-18.2 shelving; monitor/store/shelving.py), by whom, why.
+    shelved_until: Mapped[dt.datetime | None] = mapped_column(UTCDateTime)
+    shelved_by: Mapped[str | None] = mapped_column(String(100))
+    shelve_comment: Mapped[str | None] = mapped_column(Text)
     evidence: Mapped[dict[str, Any] | None] = mapped_column(JSON)
     last_transition: Mapped[str] = mapped_column(String(32))
     last_transition_at: Mapped[dt.datetime] = mapped_column(UTCDateTime)
@@ -420,6 +424,7 @@ class AlarmTransitionRow(Base):
         BigId, ForeignKey("spectrum_snapshots.id")
     )
     user: Mapped[str | None] = mapped_column(String(100))
+    shelved: Mapped[bool] = mapped_column(Boolean, default=False)  # recorded while shelved
 
     alarm: Mapped[Alarm] = relationship(back_populates="transitions")
 
