@@ -10,6 +10,7 @@ in its state after the transition, with the transition's own fields added.
 
 from __future__ import annotations
 
+import datetime as dt
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -203,20 +204,27 @@ def alarm_events(session: Session, trans: Sequence[Transition], ids: Sequence[in
     """Alarm events (REST alarm JSON with its current state, plus the transition): first
     those made outside the readings and recorded already (``outside``: alarms closed by a
     registry change, acknowledgements), which came before the readings' own (``trans``,
-    recorded as alarms ``ids``)."""
+    recorded as alarms ``ids``). An event of an alarm shelved at the transition's time
+    carries ``shelved`` true: nothing is sent for it (monitor/store/shelving.py)."""
     out: list[dict[str, Any]] = []
     for t in outside:
         row = reads.newest_alarm_with_ref(session, t.alarm_id)
-        body = reads.alarm_json(row) if row is not None else dict(t.alarm)
+        body = reads.alarm_json(row, now=_at(t)) if row is not None else dict(t.alarm)
         body.update(transition_fields(t))
         out.append(body)
     rows = reads.alarms_by_id(session, ids)
     for t, aid in zip(trans, ids, strict=False):
         row = rows.get(aid)
-        body = reads.alarm_json(row) if row is not None else dict(t.alarm)
+        body = reads.alarm_json(row, now=_at(t)) if row is not None else dict(t.alarm)
         body.update(transition_fields(t))
         out.append(body)
     return out
+
+
+def _at(t: Transition) -> dt.datetime:
+    """The transition's time: an event shows the alarm shelved as it was then (its
+    ``shelved``, monitor/store/shelving.py)."""
+    return dt.datetime.fromtimestamp(float(t.ts), dt.UTC)
 
 
 def transition_fields(t: Transition) -> dict[str, Any]:

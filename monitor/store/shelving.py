@@ -70,12 +70,12 @@ def shelve_alarm(session: Session, by: Actor, alarm: Alarm, until: dt.datetime, 
 def unshelve_alarm(session: Session, by: Actor | None, alarm: Alarm, now: dt.datetime) -> Alarm:
     """End the shelving of ``alarm`` at ``now``: an ``unshelved`` transition, and an audit row
     for an engineer's action (``by``; None: the shelving time ran out, the service's job)."""
-    expired = by is None
     alarm.shelved_until = None
-    _step(session, alarm, "unshelved", now, None if expired else by.name,
-          {"reason": SHELF_EXPIRED} if expired else {"reason": "unshelved by an engineer"})
-    if by is not None:
-        record(session, by, "alarm_unshelve", str(alarm.id), {})
+    if by is None:
+        _step(session, alarm, "unshelved", now, None, {"reason": SHELF_EXPIRED})
+        return alarm
+    _step(session, alarm, "unshelved", now, by.name, {"reason": "unshelved by an engineer"})
+    record(session, by, "alarm_unshelve", str(alarm.id), {})
     return alarm
 
 

@@ -20,6 +20,8 @@ By idea:
 - :mod:`~monitor.store.reads.waveforms`: stored raw time waveforms;
 - :mod:`~monitor.store.reads.alarms`: the alarm history, in the one JSON shape of an alarm
   (REST API and MQTT alarm events);
+- :mod:`~monitor.store.reads.out_of_service`: the periods of planned work lasting, a
+  machine's recent ones;
 - :mod:`~monitor.store.reads.passages`: the passages of run-ups and coast-downs, and the
   candidate modes among them;
 - :mod:`~monitor.store.reads.people`: users, API tokens and the audit trail;
@@ -59,6 +61,7 @@ from monitor.store.reads.machines import (
     mode_named,
     recent_baseline_restarts,
 )
+from monitor.store.reads.out_of_service import lasting_out_of_service, machine_periods
 from monitor.store.reads.overview import (
     MAX_OVERVIEW_PAGE,
     OVERVIEW_STATES,
@@ -114,6 +117,8 @@ __all__ = [
     "OPEN_STATES",
     "StartState",
     "alarm_counts_by_state",
+    "lasting_out_of_service",
+    "machine_periods",
     "alarm_json",
     "alarms_by_id",
     "baseline_restart_json",
