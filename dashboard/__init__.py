@@ -98,6 +98,7 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
         login_limits,
         machines,
         overview,
+        shelving,
         tokens,
         users,
     )
@@ -112,10 +113,13 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     app.register_blueprint(api.bp)
     app.register_blueprint(evidence_api.bp)
     app.register_blueprint(audit.api_bp)
+    app.register_blueprint(shelving.bp)
+    app.register_blueprint(shelving.api_bp)
     # The API authenticates tokens itself and checks CSRF only for session writes.
     app.extensions["csrf"].exempt(api.bp)
     app.extensions["csrf"].exempt(evidence_api.bp)
     app.extensions["csrf"].exempt(audit.api_bp)
+    app.extensions["csrf"].exempt(shelving.api_bp)
     login_limits.install(app)
 
     zone = time_zone(app.config["TIME_ZONE"])
@@ -132,6 +136,6 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     def _inject():
         from dashboard.security import current
 
-        return {"principal": current(), "time_zone": app.config["TIME_ZONE"]}
+        return {"principal": current(), "time_zone": app.config["TIME_ZONE"], **shelving.planned_work_banner()}
 
     return app
