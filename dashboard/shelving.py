@@ -5,8 +5,8 @@ planned work lasting that every page shows.
 Each write needs the engineer role and a comment; the store writes the change and its
 audit row (monitor/store/shelving.py, monitor/store/out_of_service.py) and the request
 commits. A refusal is one sentence: 400 for a blank comment or a time in the past or
-beyond ``MAX_SHELVE_HOURS``, 403 below the engineer role, 404 for an unknown alarm or
-machine, 409 when the alarm or machine is not in a state the change applies to.
+beyond ``MAX_SHELVE_HOURS``, 403 below the engineer role, 404 for an unknown alarm,
+machine or point, 409 when the alarm or machine is not in a state the change applies to.
 """
 
 from __future__ import annotations
@@ -60,9 +60,9 @@ def read_until(value: Any, *, local: bool) -> dt.datetime | None:
     """Field ``until`` as an aware UTC time, None when absent or empty: RFC 3339 or epoch
     seconds (the API, :func:`dashboard.alarms.parse_time`), or a form's
     ``YYYY-MM-DDTHH:MM`` in the plant's time zone (``local``)."""
-    if value is None or value == "":
+    if value is None or (local and value == ""):
         return None
-    if not isinstance(value, str):
+    if not isinstance(value, str) or not value:
         raise BadRequest("Field 'until' must be a date-time string such as 2026-12-05T06:00:00Z.")
     if local and LOCAL_TIME.fullmatch(value):
         try:
@@ -128,8 +128,10 @@ def _machine(machine_id: str, point: Any) -> tuple[Machine, str | None]:
         raise NotFound(f"No machine with id {machine_id!r}.")
     if point is None or point == "":
         return m, None
-    if not isinstance(point, str) or point not in {p.id for p in m.points}:
-        raise BadRequest(f"Field 'point' must be a point of machine {m.id!r} or left out, got {point!r}.")
+    if not isinstance(point, str):
+        raise BadRequest("Field 'point' must be a point id (a string) or left out.")
+    if point not in {p.id for p in m.points}:
+        raise NotFound(f"Machine {m.id!r} has no point {point!r}.")
     return m, point
 
 

@@ -108,7 +108,8 @@ def test_the_live_api_answers_as_described(tmp_path_factory, tmp_path):
         store.close()
     with dashboard_server(url) as port:
         done = subprocess.run(
-            [tool, "run", f"http://127.0.0.1:{port}/api/v1/openapi.json", "--checks", "all",
+            [tool, "--config-file", str(ROOT / "tests" / "schemathesis.toml"), "run",
+             f"http://127.0.0.1:{port}/api/v1/openapi.json", "--checks", "all",
              "--max-examples", str(MAX_EXAMPLES), "--max-time", str(BUDGET_S), "--seed", SEED,
              "--workers", "1", "--no-color", "-H", f"Authorization: Bearer {token}"],
             capture_output=True, text=True, timeout=TIME_LIMIT_S, cwd=tmp_path)

@@ -141,7 +141,7 @@ def test_out_of_service_refusals_banner_and_return(client):
     h = {"X-CSRFToken": tok}
     refused(client.post(url, json={"comment": ""}, headers=h), 400, "'comment' is required")
     refused(client.post(url, json={"comment": "x", "until": later(minutes=-5)}, headers=h), 400, "must lie in the future")
-    refused(client.post(url, json={"comment": "x", "point": "nope"}, headers=h), 400, "'point' must be a point")
+    refused(client.post(url, json={"comment": "x", "point": "nope"}, headers=h), 404, "has no point 'nope'")
     refused(client.post("/api/v1/machines/nope/out-of-service", json={"comment": "x"}, headers=h), 404, "No machine")
     refused(client.post("/api/v1/machines/fan-001/return-to-service", headers=h), 409, "is not out of service")
     assert client.get("/api/v1/out-of-service").get_json()["items"] == []
