@@ -119,6 +119,7 @@ def test_out_of_service_raises_nothing_learns_nothing_then_returns(url):
             clock.t = ts
             (out,) = svc.handle_batch([message(reading(ts, ZONE_C_MM_S))])
             assert out.events == []
+            assert out.status["out_of_service"] is True and out.status["out_of_service_points"] == []
         assert alarms(store) == []
         assert growth_state(url) == learnt
         with store.session() as s:
@@ -140,6 +141,7 @@ def test_out_of_service_raises_nothing_learns_nothing_then_returns(url):
         ts = clock.t + 60.0
         clock.t = ts
         (out,) = svc.handle_batch([message(reading(ts, ZONE_C_MM_S))])
+        assert out.status["out_of_service"] is False
         raised = [e for e in out.events if e["transition"] == "raised"]
         assert [(e["kind"], e["subject"], e["severity"]) for e in raised] == [("amplitude_growth", "overall", "alert")]
         # Learning resumes: the reading went into the baseline.
@@ -161,6 +163,7 @@ def test_point_out_of_service_leaves_a_lasting_period_alone(url):
                 put_out_of_service(s, ENGINEER, "pump-s", "de-v", "another reason", None, when(T0))
         (out,) = svc.handle_batch([message(reading(T0 + 60.0, ZONE_C_MM_S))])
         assert out.events == []
+        assert out.status["out_of_service_points"] == ["de-v"] and out.status["out_of_service"] is False
         # The period ends by itself at its 'until': the same reading raises.
         clock.t = T0 + 660.0
         (out,) = svc.handle_batch([message(reading(T0 + 660.0, ZONE_C_MM_S))])

@@ -11,7 +11,8 @@ in its state after the transition, with the transition's own fields added.
 from __future__ import annotations
 
 import datetime as dt
-from collections.abc import Iterable, Mapping, Sequence
+import time
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -105,10 +106,12 @@ ZONES = ("A", "B", "C", "D")
 
 
 class StatusBoard:
-    """The status views of the machines this process monitors."""
+    """The status views of the machines this process monitors; ``clock`` (epoch s, the
+    service's) dates what is out of service in a status."""
 
-    def __init__(self, machines: Iterable[str]) -> None:
+    def __init__(self, machines: Iterable[str], clock: Callable[[], float] = time.time) -> None:
         self._views: dict[str, MachineView] = {m: MachineView() for m in machines}
+        self.clock = clock
 
     def saw_waveform(self, machine: str, evaluation: ReadingEvaluation, speed_source: str = "measured") -> None:
         """A waveform of ``machine`` was evaluated: its time, zone and overall level, and its
@@ -195,8 +198,20 @@ def retained_statuses(db: Session | Connection, board: StatusBoard,
     detector and stored (``machine_status``, for the overview) in the caller's
     transaction, so the stored status is always the one published after the commit."""
     bodies = {m: board.status(m, ev) for m, ev in evaluators.items()}
+    mark_out_of_service(db, bodies, board.clock())
     save_statuses(db, bodies.values())
     return bodies
+
+
+def mark_out_of_service(db: Session | Connection, bodies: Mapping[str, dict[str, Any]], now_s: float) -> None:
+    """Add to each status whether its machine is out of service at ``now_s`` (epoch s;
+    ``out_of_service``) and which of its points are (``out_of_service_points``;
+    docs/alarms.md, "Shelving and out of service")."""
+    marks = reads.out_of_service_marks(db, dt.datetime.fromtimestamp(now_s, dt.UTC), bodies)
+    for machine, body in bodies.items():
+        mine = marks.get(machine, [])
+        body["out_of_service"] = None in mine
+        body["out_of_service_points"] = [p for p in mine if p is not None]
 
 
 def alarm_events(session: Session, trans: Sequence[Transition], ids: Sequence[int],

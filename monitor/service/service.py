@@ -190,7 +190,7 @@ class Service:
             settings=settings, store=self.store,
             states=DetectorStates(registry, follower, self._now,
                                   postgres=self.store.engine.dialect.name == "postgresql"),
-            board=StatusBoard(m.id for m in registry.machines),
+            board=StatusBoard((m.id for m in registry.machines), self._now),
             cadence=SnapshotCadence(settings.spectra.snapshot_interval_s),
             waveform_cadence=SnapshotCadence(settings.spectra.waveform_interval_s, waveforms=True),
             retrier=Retrier(self._stop, self.metrics), metrics=self.metrics, clock=self._now,

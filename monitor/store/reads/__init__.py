@@ -61,7 +61,11 @@ from monitor.store.reads.machines import (
     mode_named,
     recent_baseline_restarts,
 )
-from monitor.store.reads.out_of_service import lasting_out_of_service, machine_periods
+from monitor.store.reads.out_of_service import (
+    lasting_out_of_service,
+    machine_periods,
+    out_of_service_marks,
+)
 from monitor.store.reads.overview import (
     MAX_OVERVIEW_PAGE,
     OVERVIEW_STATES,
@@ -119,6 +123,7 @@ __all__ = [
     "alarm_counts_by_state",
     "lasting_out_of_service",
     "machine_periods",
+    "out_of_service_marks",
     "alarm_json",
     "alarms_by_id",
     "baseline_restart_json",

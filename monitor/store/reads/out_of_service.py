@@ -7,7 +7,7 @@ from __future__ import annotations
 import datetime as dt
 from collections.abc import Collection
 
-from sqlalchemy import select
+from sqlalchemy import Connection, select
 from sqlalchemy.orm import Session
 
 from monitor.store.out_of_service import OutOfService, lasting
@@ -25,6 +25,22 @@ def lasting_out_of_service(s: Session, now: dt.datetime,
         q = q.where(OutOfService.machine_id.in_(sorted(machines)))
     q = q.order_by(OutOfService.machine_id, OutOfService.point_id, OutOfService.id).limit(MAX_LISTED)
     return list(s.scalars(q))
+
+
+def out_of_service_marks(db: Session | Connection, now: dt.datetime,
+                         machines: Collection[str]) -> dict[str, list[str | None]]:
+    """What of ``machines`` is out of service at ``now``: per machine, the point ids of its
+    lasting periods (None for the whole machine); one statement (on a Session or the
+    service's Connection)."""
+    if not machines:
+        return {}
+    rows = db.execute(select(OutOfService.machine_id, OutOfService.point_id)
+                      .where(*lasting(now), OutOfService.machine_id.in_(sorted(machines)))
+                      .order_by(OutOfService.machine_id, OutOfService.point_id))
+    out: dict[str, list[str | None]] = {}
+    for machine, point in rows:
+        out.setdefault(machine, []).append(point)
+    return out
 
 
 def machine_periods(s: Session, machine: str, limit: int = 20) -> list[OutOfService]:
