@@ -210,3 +210,27 @@ def test_shelved_alarm_keeps_its_transitions_flagged_and_unshelves_at_its_time(u
         assert acts == ["alarm_shelve"]  # the service's unshelving is a transition, not a person's act
     finally:
         store.close()
+
+
+def test_a_new_raise_while_shelved_is_shelved_too(url):
+    # ISA-18.2 shelves the alarm (its identity), not one occurrence of it.
+    clock = Clock(T0)
+    svc = offline_service(url, clock=clock)
+    store = svc.store
+    try:
+        svc.handle_batch([message(reading(T0, ZONE_C_MM_S))])
+        (first,) = alarms(store)
+        with store.transaction() as s:
+            shelve_alarm(s, ENGINEER, s.get(Alarm, first.id), when(T0 + 3600.0), "repair booked", when(T0 + 10.0))
+        (out,) = svc.handle_batch([message(reading(T0 + 60.0, ZONE_A_MM_S))])
+        assert [(e["transition"], e["shelved"]) for e in out.events] == [("cleared", True)]
+        (out,) = svc.handle_batch([message(reading(T0 + 120.0, ZONE_C_MM_S))])
+        (ev,) = out.events
+        assert ev["transition"] == "raised" and ev["id"] != first.id
+        assert ev["shelved"] and ev["shelved_by"] == "eng" and ev["shelve_comment"] == "repair booked"
+        # Both rows end their shelving at its time.
+        clock.t = T0 + 3600.0
+        assert sorted(svc.unshelve_expired()) == [first.id, ev["id"]]
+        assert not any(is_suppressed(a, when(clock.t)) for a in alarms(store))
+    finally:
+        store.close()
