@@ -234,3 +234,23 @@ def test_a_new_raise_while_shelved_is_shelved_too(url):
         assert not any(is_suppressed(a, when(clock.t)) for a in alarms(store))
     finally:
         store.close()
+
+
+def test_open_alarms_stay_as_they_are_while_out_of_service(url):
+    clock = Clock(T0)
+    svc = offline_service(url, clock=clock)
+    store = svc.store
+    try:
+        svc.handle_batch([message(reading(T0, ZONE_C_MM_S))])
+        with store.transaction() as s:
+            put_out_of_service(s, ENGINEER, "pump-s", None, "bearing change", None, when(T0 + 10.0))
+        # Zone D (ISO 20816-3, Table A.1, group 2 flexible: above C/D 7.1 mm/s) would
+        # escalate to severe, zone A would clear: out of service neither happens.
+        for k, level in enumerate((ZONE_D_MM_S, ZONE_A_MM_S)):
+            clock.t = T0 + 60.0 * (k + 1)
+            (out,) = svc.handle_batch([message(reading(clock.t, level))])
+            assert out.events == []
+        (a,) = alarms(store)
+        assert (a.state, a.severity, a.last_transition) == ("active", "alert", "raised")
+    finally:
+        store.close()
