@@ -187,7 +187,7 @@ class MachineEvaluator:
             overall_velocity_mm_s_rms=overall, zone=zone, zone_limits=limits, margins=margins,
             approach=approach, features=feats, health=health,
             growth_ignored=None if ignored is None else ignored.text(),
-            machine_alarms_suppressed=suppressed, transitions=tuple(trans),
+            machine_alarms_suppressed=suppressed, transitions=tuple(trans), out_of_service=False,
         )
         return out
 
