@@ -17,6 +17,8 @@ plus these of our own (docs/security.md describes each and how to set it):
 - ``TIME_ZONE``: the plant's IANA time zone; pages and charts show every time in it,
   24-hour, with its UTC offset (the template filter ``ts`` here, ``WW.when`` in the
   browser; the API keeps ISO 8601 UTC).
+- ``MAX_SHELVE_HOURS``: the longest an engineer may shelve an alarm for, hours (the
+  settings' ``alarms.max_shelve_hours``; docs/alarms.md, "Shelving and out of service").
 - ``SECRET_KEY``: signs the session cookie; a random key per process when not given
   (sessions then end when the process restarts, and several processes need one key).
 """
@@ -33,6 +35,7 @@ from flask_wtf.csrf import CSRFProtect
 from werkzeug.middleware.proxy_fix import ProxyFix
 
 from monitor.model.timefmt import plant_time, time_zone
+from monitor.settings import default
 from monitor.store.db import DEFAULT_BUSY_TIMEOUT_MS
 
 DEFAULTS: dict[str, Any] = {
@@ -46,6 +49,7 @@ DEFAULTS: dict[str, Any] = {
     "BEHIND_TLS_PROXY": False,
     "OVERVIEW_REFRESH_S": 15,
     "TIME_ZONE": "UTC",
+    "MAX_SHELVE_HOURS": default("alarms.max_shelve_hours"),
     "SESSION_COOKIE_HTTPONLY": True,
     "SESSION_COOKIE_SAMESITE": "Lax",
     "PERMANENT_SESSION_LIFETIME": timedelta(hours=12),
@@ -96,6 +100,7 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
         login_limits,
         machines,
         overview,
+        shelving,
         tokens,
         users,
     )
@@ -112,10 +117,13 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     app.register_blueprint(export_api.bp)
     app.register_blueprint(audit.api_bp)
     app.register_blueprint(health.bp)
+    app.register_blueprint(shelving.bp)
+    app.register_blueprint(shelving.api_bp)
     # The API authenticates tokens itself and checks CSRF only for session writes.
     app.extensions["csrf"].exempt(api.bp)
     app.extensions["csrf"].exempt(evidence_api.bp)
     app.extensions["csrf"].exempt(audit.api_bp)
+    app.extensions["csrf"].exempt(shelving.api_bp)
     login_limits.install(app)
 
     zone = time_zone(app.config["TIME_ZONE"])
@@ -132,6 +140,6 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     def _inject():
         from dashboard.security import current
 
-        return {"principal": current(), "time_zone": app.config["TIME_ZONE"]}
+        return {"principal": current(), "time_zone": app.config["TIME_ZONE"], **shelving.planned_work_banner()}
 
     return app

@@ -25,7 +25,7 @@ Server = BaseWSGIServer | MultiSocketServer
 
 def app_config(settings: Settings) -> dict[str, Any]:
     """The :func:`dashboard.create_app` settings that ``settings`` (the registry's
-    ``[database]`` and ``[dashboard]``) give."""
+    ``[database]``, ``[dashboard]`` and ``alarms.max_shelve_hours``) give."""
     d = settings.dashboard
     config: dict[str, Any] = {
         "DATABASE_URL": settings.database.url,
@@ -33,6 +33,7 @@ def app_config(settings: Settings) -> dict[str, Any]:
         "BEHIND_TLS_PROXY": d.behind_tls_proxy,
         "LOGIN_LIMIT_STORAGE_URL": d.limiter_storage,
         "TIME_ZONE": d.time_zone,
+        "MAX_SHELVE_HOURS": settings.alarms.max_shelve_hours,
     }
     if d.secret_key:
         config["SECRET_KEY"] = d.secret_key

@@ -330,6 +330,14 @@ SETTINGS: tuple[Setting, ...] = (
             minimum=0.0),
     Setting("notifications.timeout_s", "float", 10.0, "Network timeout of one delivery attempt, s.",
             minimum=0.1, maximum=600.0),
+    Setting(
+        "alarms.max_shelve_hours",
+        "int",
+        168,
+        "Longest an engineer may shelve an alarm for, hours (ISA-18.2 shelving is time-limited; 7 days is common practice).",
+        minimum=1,
+        maximum=8760,
+    ),
     # service
     Setting(
         "service.data_dir",
@@ -467,6 +475,7 @@ class SpectraSettings:
 class AlarmSettings:
     publish: bool = default("alarms.publish")
     publish_status: bool = default("alarms.publish_status")
+    max_shelve_hours: int = default("alarms.max_shelve_hours")
 
 
 @dataclass(frozen=True)

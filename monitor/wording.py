@@ -251,6 +251,7 @@ def evidence_rows(evidence: Mapping[str, Any] | None, when: Callable[[Any], str]
         "message": lambda v: EvidenceRow("What was seen", str(v)),
         "cause": lambda v: EvidenceRow("Cause", str(v)),
         "comment": lambda v: EvidenceRow("Comment", str(v)),
+        "until": lambda v: EvidenceRow("Shelved until", when(v)),  # a shelving step
         "speed_hz": lambda v: EvidenceRow("Running speed", speed(v)),
         "value": lambda v: EvidenceRow(f"Value of {feature_words(ev['name'])}" if ev.get("name") else "Value",
                                        level(v, unit)),

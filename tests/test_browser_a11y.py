@@ -122,6 +122,26 @@ def _failed_sign_in(page, server) -> None:
     page.wait_for_selector("#login-form")
 
 
+def _out_of_service(page, server) -> None:
+    # The machine page with a period out of service (its list, the return form) and the
+    # banner every page then shows (docs/alarms.md, "Shelving and out of service").
+    _machine(page, server, "fan-002")
+    page.fill("#out-of-service-form input[name=comment]", "coupling realignment")
+    page.click("#out-of-service-form button[type=submit]")
+    page.wait_for_selector("#machine-out-of-service")
+    page.wait_for_selector("body[data-loaded='1']")
+
+
+def _shelved_alarm(page, server) -> None:
+    page.goto(server + "/alarms/?state=open")
+    page.click("#alarms-table tbody tr >> nth=0 >> a.evidence-link")
+    until = (dt.datetime.now(dt.UTC) + dt.timedelta(hours=4)).strftime("%Y-%m-%dT%H:%M")
+    page.fill("#shelve-form input[name=until]", until)
+    page.fill("#shelve-form input[name=comment]", "known, repair booked")
+    page.click("#shelve-form button[type=submit]")
+    page.wait_for_selector("#alarm-shelved")
+
+
 #: Each page of the dashboard, in the state that shows most of it: name -> (user who sees
 #: all of it, how to get there, the endpoints of dashboard/*.py it covers).
 PAGES = {
@@ -141,6 +161,9 @@ PAGES = {
     # The phone layout (tables as cards, the header on two rows, site.css).
     "overview-phone": ("ada", lambda p, s: p.goto(s + "/"), set()),
     "alarms-phone": ("eng", lambda p, s: p.goto(s + "/alarms/"), set()),
+    # Last: what they change shows on the pages after them.
+    "out-of-service": ("eng", _out_of_service, {"machines.detail"}),
+    "shelved-alarm": ("eng", _shelved_alarm, {"alarms.detail"}),
 }
 #: Viewport width of a common phone, CSS px (as tests/test_browser_layout.py).
 PHONE_PX = 390

@@ -88,6 +88,9 @@ def test_rules_match_by_machine_group_kind_severity_and_transition():
     assert Rule(min_severity="alert", **base).matches({**event, "severity": "severe"}, None)
     assert not Rule(transitions=("cleared",), webhook=True).matches({**event, "transition": "raised"}, None)
     assert not_shelved(event)
+    # ISA-18.2 / IEC 62682: a shelved alarm is not annunciated; the event of a transition
+    # made while the alarm was shelved says so.
+    assert not not_shelved({**event, "shelved": True, "shelved_until": "2099-01-01T00:00:00Z"})
 
 
 def test_matching_rules_merge_their_targets():

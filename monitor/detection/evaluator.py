@@ -42,7 +42,7 @@ from __future__ import annotations
 
 import math
 from collections import deque
-from collections.abc import Mapping, Sequence
+from collections.abc import Collection, Mapping, Sequence
 from typing import TYPE_CHECKING, Any
 
 from monitor.analysis.waveform import ReadingAnalysis
@@ -80,6 +80,8 @@ MODE_REMOVED = "mode removed from the registry"
 EXCITATION_REMOVED = "excitation removed from the registry"
 POINT_RETIRED = "point retired from the registry"
 MACHINE_RETIRED = "machine retired from the registry"
+#: Why growth left out a reading of a point out of service (its ``growth_ignored``).
+OUT_OF_SERVICE = "out of service"
 
 #: Severity of each sensor-health check (docs/alarms.md).
 SENSOR_FAULT_SEVERITY: dict[HealthCheck, Severity] = {
@@ -185,9 +187,42 @@ class MachineEvaluator:
             overall_velocity_mm_s_rms=overall, zone=zone, zone_limits=limits, margins=margins,
             approach=approach, features=feats, health=health,
             growth_ignored=None if ignored is None else ignored.text(),
-            machine_alarms_suppressed=suppressed, transitions=tuple(trans),
+            machine_alarms_suppressed=suppressed, transitions=tuple(trans), out_of_service=False,
         )
         return out
+
+    # ------------------------------------------------------------------ out of service
+
+    def evaluate_out_of_service(self, analysis: ReadingAnalysis | None,
+                                waveform: Waveform | None = None) -> ReadingEvaluation:
+        """Evaluate a reading of a point out of service (planned work; ISA-18.2 / IEC 62682
+        "out of service"): its zone, margins and sensor health are worked out for the
+        record, but the alarm engine, the resonance stays and the growth baselines and
+        trends are left untouched (no transition, nothing learnt; open alarms stay as they
+        are). Only the point's arrival times move on, so its stale-stream check counts
+        from its latest reading once it is back in service. Marked ``out_of_service``."""
+        src = analysis if analysis is not None else waveform
+        if src is None:
+            raise ValueError("evaluate_out_of_service needs an analysis or a waveform, got neither.")
+        if src.machine != self.machine.id:
+            raise ValueError(f"reading is for machine {src.machine!r}, this evaluator is for {self.machine.id!r}.")
+        point = self.machine.point(src.point)
+        ts = float(src.ts)
+        self._note_arrival(point.id, ts)
+        health = check_waveform(waveform, point) if waveform is not None else HealthReport()
+        limits = self._limits[point.id]
+        speed = float(analysis.speed_hz) if analysis is not None else None
+        margins = self._resonance.rows(speed) if speed is not None and math.isfinite(speed) and speed > 0 \
+            else _NO_MARGINS
+        overall = float(analysis.overall_velocity_mm_s_rms) if analysis is not None else None
+        zone = zone_of(overall, limits) if overall is not None and math.isfinite(overall) and overall >= 0 else None
+        return ReadingEvaluation(
+            machine=self.machine.id, point=point.id, ts=ts, reading_id=src.reading_id, speed_hz=speed,
+            overall_velocity_mm_s_rms=overall, zone=zone, zone_limits=limits, margins=margins, approach=(),
+            features=(), health=health, growth_ignored=OUT_OF_SERVICE, machine_alarms_suppressed=True,
+            out_of_service=True)
+
+    # ------------------------------------------------------------------ speed
 
     def evaluate_speed(self, reading: SpeedReading) -> SpeedEvaluation:
         """A running-speed message (Hz, from the speed topic or a tach) for this machine:
@@ -252,11 +287,14 @@ class MachineEvaluator:
         grid = self._resonance.grid
         return grid.rows(grid.compute(speed_hz))
 
-    def check_stale(self, now: float) -> list[Transition]:
+    def check_stale(self, now: float, out_of_service: Collection[str] = ()) -> list[Transition]:
         """Raise ``sensor_fault``/``stale`` for points silent for ``stale_intervals``
-        expected intervals at time ``now`` (epoch seconds); cleared by the next reading."""
+        expected intervals at time ``now`` (epoch seconds); cleared by the next reading.
+        Points in ``out_of_service`` (ids) are not checked: planned work raises nothing."""
         out: list[Transition] = []
         for pid, last in sorted(self._last_ts.items()):
+            if pid in out_of_service:
+                continue
             exp = self._expected_interval(pid)
             if is_stale(last, now, exp, self.settings.stale_intervals):
                 key = AlarmKey(self.machine.id, pid, "sensor_fault", "stale")
@@ -398,7 +436,8 @@ class MachineEvaluator:
             return None
         return sorted(d)[len(d) // 2]
 
-    def _arrival(self, pid: str, ts: float, rid: str | None) -> list[Transition]:
+    def _note_arrival(self, pid: str, ts: float) -> None:
+        """Move the arrival time and interval history of ``pid`` on (a reading at ``ts``)."""
         last = self._last_ts.get(pid)
         if last is None:
             self._last_ts[pid] = ts
@@ -408,6 +447,9 @@ class MachineEvaluator:
                 d = self._intervals[pid] = deque(maxlen=10)
             d.append(ts - last)
             self._last_ts[pid] = ts
+
+    def _arrival(self, pid: str, ts: float, rid: str | None) -> list[Transition]:
+        self._note_arrival(pid, ts)
         key = self._key(pid, "sensor_fault", "stale")
         a = self.engine.alarm(key)
         if a is not None and a.state != "cleared":

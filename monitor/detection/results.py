@@ -69,8 +69,9 @@ class ReadingEvaluation:
     the reading's speed (a sequence of :class:`MarginRow`, built on first use);
     ``approach`` forecasts from the speed trend; ``features`` the growth features;
     ``growth_ignored`` why growth skipped the reading (None when used);
-    ``machine_alarms_suppressed`` when sensor health flagged the reading; ``transitions``
-    the alarm transitions the reading caused.
+    ``machine_alarms_suppressed`` when sensor health flagged the reading (or it was out of
+    service); ``transitions`` the alarm transitions the reading caused; ``out_of_service``
+    when its point was out of service (planned work: nothing raised, nothing learnt).
     """
 
     machine: str
@@ -88,6 +89,7 @@ class ReadingEvaluation:
     growth_ignored: str | None
     machine_alarms_suppressed: bool
     transitions: tuple[Transition, ...] = field(default_factory=tuple)
+    out_of_service: bool = False
 
     def feature(self, name: str) -> FeatureEvaluation | None:
         """The growth feature ``name`` of this reading, or None."""
@@ -122,6 +124,8 @@ class ReadingEvaluation:
             "machine_alarms_suppressed": self.machine_alarms_suppressed,
             "transitions": [t.to_json() for t in self.transitions],
         }
+        if self.out_of_service:
+            out["out_of_service"] = True
         if margins:
             out["margins"] = [m.to_json() for m in self.margins]
         return out

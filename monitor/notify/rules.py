@@ -87,10 +87,11 @@ def targets_for(rules: Iterable[Rule], event: Mapping[str, Any], location: str |
 
 def not_shelved(event: Mapping[str, Any]) -> bool:
     """The hook that keeps shelved alarms from being notified: True while ``event``'s
-    alarm may be sent. Every transition is eligible until alarm shelving exists; the
-    shelving work makes this read the alarm's shelving fields of the event (it is the
-    one place asked, by :class:`monitor.notify.dispatch.Notifier` before any rule)."""
-    return True
+    alarm may be sent. The service builds each event with the alarm's shelving as it was at
+    the transition's time (monitor/service/payloads.py; the one rule is
+    monitor/store/shelving.py ``is_suppressed``), so a shelved alarm's event carries
+    ``shelved`` true. Asked by :class:`monitor.notify.dispatch.Notifier` before any rule."""
+    return not event.get("shelved", False)
 
 
 def _strings(value: Any, where: str, key: str, allowed: tuple[str, ...] | None = None) -> tuple[str, ...]:

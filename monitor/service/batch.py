@@ -9,7 +9,8 @@
 3. ``DetectorStates.take``: the detector states of the machines touched, locked and
    brought up to date (monitor/service/states.py), with the changes made outside the
    readings (registry closings, acknowledgements);
-4. :func:`evaluate`: each new reading through its machine's detector, in arrival order;
+4. :func:`evaluate`: each new reading through its machine's detector, in arrival order
+   (one of equipment out of service for the record only: monitor/service/suppression.py);
    :func:`track_passages`: each through its machine's passage trackers, the mode-shift
    alarms of the passages found (monitor/service/passages.py);
    :func:`clear_processing_faults` for the streams processed again;
@@ -57,6 +58,8 @@ from monitor.service.items import (
 from monitor.service.passages import FoundPassage, feed_reading
 from monitor.service.payloads import StatusBoard, alarm_events, retained_statuses
 from monitor.service.states import DetectorStates
+from monitor.service.suppression import NONE as NO_WORK
+from monitor.service.suppression import PlannedWork, planned_work
 from monitor.store import add_dead_letter, record_transitions
 from monitor.store.models import (
     Measurement,
@@ -99,6 +102,7 @@ class Evaluated:
     item: Decoded
     evaluation: ReadingEvaluation | None
     transitions: list[Transition]
+    out_of_service: bool = False
 
 
 @dataclass
@@ -134,10 +138,11 @@ def commit_batch(core: Core, items: Sequence[Item], *, check_all: bool = True) -
         if fresh:
             touched = latest_per_machine(fresh)
             taken = core.states.take(s, sorted(touched))
+            work = planned_work(s, touched, core.clock())
             waves = [it for it in fresh if isinstance(it, WaveformMessage) and it.analysis is not None]
             kept = core.cadence.kept(c, waves)
             waves_kept = core.waveform_cadence.kept(c, waves)
-            evaluated = evaluate(fresh, taken.evaluators, core.board)
+            evaluated = evaluate(fresh, taken.evaluators, core.board, work)
             found = track_passages(evaluated, taken.evaluators, core.states)
             clear_processing_faults(evaluated, taken.evaluators)
             rows = build_rows(evaluated, kept, core.cadence)
@@ -198,13 +203,16 @@ def latest_per_machine(readings: Sequence[Decoded]) -> dict[str, float]:
 
 
 def evaluate(readings: Sequence[Decoded], evaluators: Mapping[str, MachineEvaluator],
-             board: StatusBoard) -> list[Evaluated]:
+             board: StatusBoard, work: PlannedWork = NO_WORK) -> list[Evaluated]:
     """Each reading through its machine's detector, in arrival order; the status views
-    follow."""
+    follow. Readings of equipment out of service (``work``) go through
+    :func:`evaluate_out_of_service` instead."""
     out: list[Evaluated] = []
     for it in readings:
         ev = evaluators[it.machine]
-        if isinstance(it, WaveformMessage):
+        if work.covers(it.machine, it.reading.point if isinstance(it, WaveformMessage) else None):
+            out.append(evaluate_out_of_service(it, ev, board))
+        elif isinstance(it, WaveformMessage):
             evaluation = ev.evaluate(it.analysis, it.reading)
             out.append(Evaluated(it, evaluation, list(evaluation.transitions)))
             board.saw_waveform(it.machine, evaluation,
@@ -216,6 +224,19 @@ def evaluate(readings: Sequence[Decoded], evaluators: Mapping[str, MachineEvalua
     return out
 
 
+def evaluate_out_of_service(it: Decoded, ev: MachineEvaluator, board: StatusBoard) -> Evaluated:
+    """A reading of equipment out of service (monitor/service/suppression.py): a waveform
+    is evaluated for the record only (nothing raised, nothing learnt), a speed message is
+    shown but advances no resonance alarm."""
+    if isinstance(it, WaveformMessage):
+        evaluation = ev.evaluate_out_of_service(it.analysis, it.reading)
+        board.saw_waveform(it.machine, evaluation,
+                           it.analysis.speed_source if it.analysis is not None else "measured")
+        return Evaluated(it, evaluation, [], out_of_service=True)
+    board.saw_speed(it.machine, it.reading.ts, it.reading.speed_hz)
+    return Evaluated(it, None, [], out_of_service=True)
+
+
 def track_passages(evaluated: Sequence[Evaluated], evaluators: Mapping[str, MachineEvaluator],
                    states: DetectorStates) -> list[FoundPassage]:
     """Each reading through its machine's passage trackers, in arrival order; the passages
@@ -223,6 +244,8 @@ def track_passages(evaluated: Sequence[Evaluated], evaluators: Mapping[str, Mach
     completed them (monitor/service/passages.py)."""
     out: list[FoundPassage] = []
     for e in evaluated:
+        if e.out_of_service:
+            continue  # planned work: its sweeps are no evidence of the machine's modes
         machine = e.item.machine
         found, trans = feed_reading(states.passages(machine), evaluators[machine], e.item, e.evaluation)
         out += found

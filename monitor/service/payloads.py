@@ -10,7 +10,9 @@ in its state after the transition, with the transition's own fields added.
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Mapping, Sequence
+import datetime as dt
+import time
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -104,10 +106,12 @@ ZONES = ("A", "B", "C", "D")
 
 
 class StatusBoard:
-    """The status views of the machines this process monitors."""
+    """The status views of the machines this process monitors; ``clock`` (epoch s, the
+    service's) dates what is out of service in a status."""
 
-    def __init__(self, machines: Iterable[str]) -> None:
+    def __init__(self, machines: Iterable[str], clock: Callable[[], float] = time.time) -> None:
         self._views: dict[str, MachineView] = {m: MachineView() for m in machines}
+        self.clock = clock
 
     def saw_waveform(self, machine: str, evaluation: ReadingEvaluation, speed_source: str = "measured") -> None:
         """A waveform of ``machine`` was evaluated: its time, zone and overall level, and its
@@ -194,8 +198,20 @@ def retained_statuses(db: Session | Connection, board: StatusBoard,
     detector and stored (``machine_status``, for the overview) in the caller's
     transaction, so the stored status is always the one published after the commit."""
     bodies = {m: board.status(m, ev) for m, ev in evaluators.items()}
+    mark_out_of_service(db, bodies, board.clock())
     save_statuses(db, bodies.values())
     return bodies
+
+
+def mark_out_of_service(db: Session | Connection, bodies: Mapping[str, dict[str, Any]], now_s: float) -> None:
+    """Add to each status whether its machine is out of service at ``now_s`` (epoch s;
+    ``out_of_service``) and which of its points are (``out_of_service_points``;
+    docs/alarms.md, "Shelving and out of service")."""
+    marks = reads.out_of_service_marks(db, dt.datetime.fromtimestamp(now_s, dt.UTC), bodies)
+    for machine, body in bodies.items():
+        mine = marks.get(machine, [])
+        body["out_of_service"] = None in mine
+        body["out_of_service_points"] = [p for p in mine if p is not None]
 
 
 def alarm_events(session: Session, trans: Sequence[Transition], ids: Sequence[int],
@@ -203,20 +219,27 @@ def alarm_events(session: Session, trans: Sequence[Transition], ids: Sequence[in
     """Alarm events (REST alarm JSON with its current state, plus the transition): first
     those made outside the readings and recorded already (``outside``: alarms closed by a
     registry change, acknowledgements), which came before the readings' own (``trans``,
-    recorded as alarms ``ids``)."""
+    recorded as alarms ``ids``). An event of an alarm shelved at the transition's time
+    carries ``shelved`` true: nothing is sent for it (monitor/store/shelving.py)."""
     out: list[dict[str, Any]] = []
     for t in outside:
         row = reads.newest_alarm_with_ref(session, t.alarm_id)
-        body = reads.alarm_json(row) if row is not None else dict(t.alarm)
+        body = reads.alarm_json(row, now=_at(t)) if row is not None else dict(t.alarm)
         body.update(transition_fields(t))
         out.append(body)
     rows = reads.alarms_by_id(session, ids)
     for t, aid in zip(trans, ids, strict=False):
         row = rows.get(aid)
-        body = reads.alarm_json(row) if row is not None else dict(t.alarm)
+        body = reads.alarm_json(row, now=_at(t)) if row is not None else dict(t.alarm)
         body.update(transition_fields(t))
         out.append(body)
     return out
+
+
+def _at(t: Transition) -> dt.datetime:
+    """The transition's time: an event shows the alarm shelved as it was then (its
+    ``shelved``, monitor/store/shelving.py)."""
+    return dt.datetime.fromtimestamp(float(t.ts), dt.UTC)
 
 
 def transition_fields(t: Transition) -> dict[str, Any]:

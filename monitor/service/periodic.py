@@ -2,7 +2,8 @@
 
 Every 0.5 s (:func:`run_jobs`): registry edits and baseline restarts
 (monitor/service/registry_changes.py) and, on SQLite, a passive WAL checkpoint; less
-often: stale streams (:func:`check_stale`), acknowledgements made in the dashboard
+often: stale streams (:func:`check_stale`; not of points out of service), shelvings
+whose time has passed (monitor/service/suppression.py), acknowledgements made in the dashboard
 (:func:`sync_acknowledgements`, every :data:`ACK_SYNC_S`), retention (its own interval),
 and the alarm gauges of the metrics. A failing job is logged (once per
 ``LOG_REPEAT_S`` per job) and never ends the loop.
@@ -17,12 +18,16 @@ from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
+from sqlalchemy.orm import Session
+
+from monitor.detection.evaluator import MachineEvaluator
 from monitor.metrics import ServiceMetrics
 from monitor.service.core import Core
 from monitor.service.failures import short_cause
 from monitor.service.items import Outcome, OutcomeKind
 from monitor.service.logs import RepeatGate
 from monitor.service.payloads import alarm_events, retained_statuses
+from monitor.service.suppression import planned_work
 from monitor.store import Store, apply_retention, reads, record_transitions
 from monitor.store.retention import RetentionPolicy
 
@@ -77,7 +82,7 @@ def check_stale(core: Core) -> list[Outcome]:
             with core.transaction() as s:
                 evs, outside = core.states.take(s, [mid], acks=False)
                 ev, closed = evs[mid], outside.get(mid, [])
-                trans = ev.check_stale(now)
+                trans = ev.check_stale(now, out_of_service_points(s, ev, now))
                 if not (trans or closed):
                     return None
                 ids = record_transitions(s, trans) if trans else []
@@ -91,6 +96,13 @@ def check_stale(core: Core) -> list[Outcome]:
         if o is not None:
             outs.append(o)
     return outs
+
+
+def out_of_service_points(s: Session, ev: MachineEvaluator, now: float) -> frozenset[str]:
+    """The points of ``ev``'s machine out of service at ``now`` (epoch s): no stale-stream
+    alarm for planned work (monitor/service/suppression.py)."""
+    m = ev.machine
+    return planned_work(s, [m.id], now).points_of(m.id, [p.id for p in m.points])
 
 
 def machines_to_sync(core: Core) -> list[str]:

@@ -80,6 +80,7 @@ from monitor.service.periodic import (
 from monitor.service.registry_changes import RegistryChanges
 from monitor.service.registry_follow import RegistryFollower, start_registry
 from monitor.service.states import DetectorStates
+from monitor.service.suppression import UNSHELVE_S, unshelve_expired
 from monitor.settings import Settings
 from monitor.store import Store
 from monitor.store.reads import StartState, start_state
@@ -191,7 +192,7 @@ class Service:
             settings=settings, store=self.store,
             states=DetectorStates(registry, follower, self._now,
                                   postgres=self.store.engine.dialect.name == "postgresql"),
-            board=StatusBoard(m.id for m in registry.machines),
+            board=StatusBoard((m.id for m in registry.machines), self._now),
             cadence=SnapshotCadence(settings.spectra.snapshot_interval_s),
             waveform_cadence=SnapshotCadence(settings.spectra.waveform_interval_s, waveforms=True),
             retrier=Retrier(self._stop, self.metrics), metrics=self.metrics, clock=self._now,
@@ -298,6 +299,11 @@ class Service:
         """Raise stale-stream alarms as of the clock; publish them; return the events."""
         return self.announce(check_stale(self.core))
 
+    def unshelve_expired(self) -> list[int]:
+        """Record the ``unshelved`` transition of each alarm whose shelving time has passed
+        (monitor/service/suppression.py); the alarm ids. Run every :data:`UNSHELVE_S`."""
+        return unshelve_expired(self.core)
+
     def sync_acknowledgements(self) -> list[dict[str, Any]]:
         """Apply the acknowledgements made in the dashboard to the detectors now, not at
         the machines' next readings, and publish them (alarm events and retained status);
@@ -372,6 +378,7 @@ class Service:
         if self.stale_check_s > 0:
             jobs.append(PeriodicJob("stale streams", self.stale_check_s, self.check_stale))
         jobs.append(PeriodicJob("acknowledgements", ACK_SYNC_S, self.sync_acknowledgements))
+        jobs.append(PeriodicJob("shelving ended", UNSHELVE_S, self.unshelve_expired))
         retention = self.settings.retention
         if retention.enabled:
             jobs.append(PeriodicJob("retention", retention.interval_s,

@@ -13,6 +13,7 @@ from monitor.store.auth import (
 )
 from monitor.store.db import Store, StoreError, make_engine, normalise_url, session_factory
 from monitor.store.migrate import upgrade
+from monitor.store.out_of_service import OutOfService
 from monitor.store.registry_sync import export_registry, import_registry
 from monitor.store.retention import RetentionPolicy, apply_retention
 from monitor.store.writes import (
@@ -24,6 +25,7 @@ from monitor.store.writes import (
 
 __all__ = [
     "AuthError",
+    "OutOfService",
     "RetentionPolicy",
     "Store",
     "StoreError",

@@ -1,4 +1,6 @@
-"""The audit trail of users, passwords, roles, tokens, sign-ins and sign-outs.
+"""The audit trail of users, passwords, roles, tokens, sign-ins and sign-outs, and of the
+engineers' alarm-management actions: shelving an alarm and ending it, putting equipment
+out of service and returning it (monitor/store/shelving.py, monitor/store/out_of_service.py).
 
 Every change is one row of ``audit_events``: who (``actor``), what (``action`` and
 ``detail``), to whom (``target``), when (``at``, UTC) and from where (``address``: the
@@ -20,6 +22,7 @@ from monitor.store.models import AuditEvent
 ACTIONS = (
     "user_create", "sign_in", "sign_out", "password_change", "password_reset", "role_change",
     "user_disable", "user_enable", "user_delete", "token_create", "token_revoke",
+    "alarm_shelve", "alarm_unshelve", "out_of_service", "return_to_service",
 )
 
 

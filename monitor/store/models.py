@@ -1,28 +1,14 @@
 """SQLAlchemy 2.x models of the whirlwatch store.
 
-Tables (see docs/store.md for the full schema and the retention policy):
-
-- ``machines``, ``measurement_points``, ``modes`` and ``mode_history``: the machine
-  registry as the service uses it, with every mode change recorded (who, when, old and
-  new values); ``registry_state`` holds the registry version every registry write moves
-  on, ``baseline_restarts`` the engineers' requests to learn baselines again.
-- ``measurements``: one row per analysed reading, unique on (machine, point, ts) so a
-  redelivered MQTT message inserts nothing.
-- ``spectrum_snapshots``: compressed float32 spectra, kept on a cadence and with every
-  alarm transition as evidence.
-- ``waveform_snapshots``: raw time waveforms as compressed float32, kept on their own
-  cadence and with every alarm transition of a waveform as evidence.
-- ``speed_readings``: the speed stream, unique on (machine, ts).
-- ``alarms`` and ``alarm_transitions``: the alarm history, never thinned.
-- ``users`` and ``api_tokens``: dashboard logins and hashed API tokens;
-  ``audit_events`` every change to them, with who, when and from where.
-- ``dead_letters``: rejected messages with their reason and first bytes.
-- ``detector_state``: one JSON snapshot per machine so a restarted service can rebuild
-  its detectors; ``passage_trackers`` the state of its live passage trackers beside it;
-  ``machine_status`` the retained status the service last published for it (the overview).
-- ``passages``: the resonance passages of the run-ups and coast-downs the service saw,
-  with their Bode points; one matching no stored mode is a candidate mode an engineer
-  accepts or rejects.
+Tables (docs/store.md gives the full schema and the retention policy): the registry
+(``machines``, ``measurement_points``, ``modes``, ``mode_history``, ``registry_state``,
+``baseline_restarts``); readings (``measurements`` unique on machine, point and ts,
+``speed_readings``, compressed float32 ``spectrum_snapshots`` and
+``waveform_snapshots``); alarms (``alarms``, ``alarm_transitions``, never thinned);
+people (``users``, ``api_tokens``, ``audit_events``); ``dead_letters``; the service's own
+state (``detector_state``, ``passage_trackers``, ``machine_status``); ``passages`` with
+their Bode points and candidate modes. Notification deliveries and out-of-service
+periods have modules of their own (delivery_models, out_of_service).
 
 Times are stored as UTC: ``UTCDateTime`` accepts aware datetimes, stores naive UTC on
 SQLite (which has no time zone type) and ``timestamptz`` on PostgreSQL, and always
@@ -392,6 +378,10 @@ class Alarm(Base):
     acknowledged_by: Mapped[str | None] = mapped_column(String(100))
     acknowledged_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime)
     ack_comment: Mapped[str | None] = mapped_column(Text)
+    # Shelved until this time (ISA-18.2 shelving; monitor/store/shelving.py), by whom, why.
+    shelved_until: Mapped[dt.datetime | None] = mapped_column(UTCDateTime)
+    shelved_by: Mapped[str | None] = mapped_column(String(100))
+    shelve_comment: Mapped[str | None] = mapped_column(Text)
     evidence: Mapped[dict[str, Any] | None] = mapped_column(JSON)
     last_transition: Mapped[str] = mapped_column(String(32))
     last_transition_at: Mapped[dt.datetime] = mapped_column(UTCDateTime)
@@ -420,6 +410,7 @@ class AlarmTransitionRow(Base):
         BigId, ForeignKey("spectrum_snapshots.id")
     )
     user: Mapped[str | None] = mapped_column(String(100))
+    shelved: Mapped[bool] = mapped_column(Boolean, default=False)  # recorded while shelved
 
     alarm: Mapped[Alarm] = relationship(back_populates="transitions")
 

@@ -37,6 +37,7 @@ from monitor.store.models import (
     pack_amplitudes,
     utcnow,
 )
+from monitor.store.shelving import inherit_shelf, is_suppressed
 
 CLOSED_STATES = frozenset({"cleared"})
 #: The unique key of a stored spectrum.
@@ -387,7 +388,8 @@ def record_transitions(
 
     An alarm is identified by (machine, point, kind, subject); a transition opens a new alarm row when none of that identity is open
     (state not ``cleared``). A transition already stored (same alarm identity, name and
-    instant) is skipped, so replays are no-ops. Returns the alarm ids touched, in order.
+    instant) is skipped, so replays are no-ops. A transition at a time the alarm is shelved
+    is flagged ``shelved`` (monitor/store/shelving.py). Returns the alarm ids touched, in order.
     """
     ids: list[int] = []
     for raw in transitions:
@@ -419,6 +421,7 @@ def record_transitions(
         if isinstance(evidence, dict) and hints is not None and t.kind == "amplitude_growth":
             evidence["hints"] = [dict(x) for x in hints]
         if alarm is None:
+            previous = session.scalars(select(Alarm).where(_key_filter(t)).order_by(Alarm.id.desc()).limit(1)).first()
             alarm = Alarm(
                 ref=t.ref,
                 machine_id=t.machine,
@@ -432,6 +435,7 @@ def record_transitions(
                 last_transition_at=t.at,
             )
             session.add(alarm)
+            inherit_shelf(session, alarm, previous, t.at)
         alarm.severity = t.severity
         alarm.state = t.state
         alarm.last_transition = t.name
@@ -457,6 +461,7 @@ def record_transitions(
                 evidence=evidence,
                 spectrum_snapshot_id=spectrum_snapshot_id,
                 user=t.user,
+                shelved=is_suppressed(alarm, t.at),
             )
         )
         session.flush()

@@ -23,6 +23,8 @@ By idea:
 - :mod:`~monitor.store.reads.alarms`: the alarm history, in the one JSON shape of an alarm
   (REST API and MQTT alarm events);
 - :mod:`~monitor.store.reads.notifications`: the notification delivery attempts of an alarm;
+- :mod:`~monitor.store.reads.out_of_service`: the periods of planned work lasting, a
+  machine's recent ones;
 - :mod:`~monitor.store.reads.passages`: the passages of run-ups and coast-downs, and the
   candidate modes among them;
 - :mod:`~monitor.store.reads.people`: users, API tokens and the audit trail;
@@ -70,6 +72,11 @@ from monitor.store.reads.machines import (
     recent_baseline_restarts,
 )
 from monitor.store.reads.notifications import alarm_deliveries, delivery_json
+from monitor.store.reads.out_of_service import (
+    lasting_out_of_service,
+    machine_periods,
+    out_of_service_marks,
+)
 from monitor.store.reads.overview import (
     MAX_OVERVIEW_PAGE,
     OVERVIEW_STATES,
@@ -127,6 +134,9 @@ __all__ = [
     "StartState",
     "alarm_counts_by_state",
     "alarm_deliveries",
+    "lasting_out_of_service",
+    "machine_periods",
+    "out_of_service_marks",
     "alarm_json",
     "delivery_json",
     "alarms_by_id",

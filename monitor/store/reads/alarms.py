@@ -13,7 +13,8 @@ from sqlalchemy import func, select
 from sqlalchemy.orm import Session, selectinload
 
 from monitor.model.timefmt import iso_utc
-from monitor.store.models import Alarm
+from monitor.store.models import Alarm, utcnow
+from monitor.store.shelving import shelf_json
 
 #: The states of an alarm not cleared: every state of monitor/detection/alarms.py but
 #: ``CLOSED_STATES`` (monitor/store/writes.py), listed so the (state, machine_id) index
@@ -21,10 +22,11 @@ from monitor.store.models import Alarm
 OPEN_STATES = ("active", "acknowledged")
 
 
-def alarm_json(alarm: Alarm, *, with_transitions: bool = False) -> dict[str, Any]:
+def alarm_json(alarm: Alarm, *, with_transitions: bool = False, now: dt.datetime | None = None) -> dict[str, Any]:
     """The alarm in the JSON shape of the REST API (docs/api.md), with its transitions
     (oldest first) when asked; an MQTT alarm event is this object (without transitions)
-    with the event's own fields added (monitor/service/payloads.py)."""
+    with the event's own fields added (monitor/service/payloads.py). Its shelving is as of
+    ``now`` (default: the clock; monitor/store/shelving.py)."""
     out: dict[str, Any] = {
         "id": alarm.id,
         "machine": alarm.machine_id,
@@ -41,12 +43,13 @@ def alarm_json(alarm: Alarm, *, with_transitions: bool = False) -> dict[str, Any
         "evidence": alarm.evidence,
         "last_transition": alarm.last_transition,
         "last_transition_at": iso_utc(alarm.last_transition_at),
+        **shelf_json(alarm, utcnow() if now is None else now),
     }
     if with_transitions:
         out["transitions"] = [
             {"id": t.id, "transition": t.transition, "severity": t.severity, "state": t.state,
              "at": iso_utc(t.at), "user": t.user, "evidence": t.evidence,
-             "spectrum_id": t.spectrum_snapshot_id}
+             "spectrum_id": t.spectrum_snapshot_id, "shelved": bool(t.shelved)}
             for t in alarm.transitions
         ]
     return out
