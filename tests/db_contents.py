@@ -5,6 +5,7 @@ database whatever the models say."""
 from __future__ import annotations
 
 import datetime as dt
+from collections.abc import Mapping, Sequence
 from typing import Any
 
 from sqlalchemy import MetaData, select
@@ -26,9 +27,11 @@ def _value(v: Any) -> Any:
     return v
 
 
-def table_rows(url: str, *, skip: tuple[str, ...] = (VERSION_TABLE,)) -> dict[str, list[tuple]]:
+def table_rows(url: str, *, skip: tuple[str, ...] = (VERSION_TABLE,),
+               columns: Mapping[str, Sequence[str]] | None = None) -> dict[str, list[tuple]]:
     """``{table: sorted rows}`` of every table at ``url`` but ``skip``; each row a tuple of
-    its columns in the table's order."""
+    its columns in the table's order, or of ``columns[table]`` only when given (the
+    columns an older revision had: what an upgrade must keep)."""
     engine = make_engine(url)
     try:
         meta = MetaData()
@@ -38,9 +41,21 @@ def table_rows(url: str, *, skip: tuple[str, ...] = (VERSION_TABLE,)) -> dict[st
             for name, tbl in meta.tables.items():
                 if name in skip:
                     continue
-                rows = [tuple(_value(v) for v in r) for r in conn.execute(select(tbl))]
+                cols = [tbl.c[c] for c in columns[name]] if columns and name in columns else list(tbl.c)
+                rows = [tuple(_value(v) for v in r) for r in conn.execute(select(*cols))]
                 out[name] = sorted(rows, key=repr)
         return out
+    finally:
+        engine.dispose()
+
+
+def table_columns(url: str) -> dict[str, list[str]]:
+    """``{table: column names in order}`` of every table at ``url``."""
+    engine = make_engine(url)
+    try:
+        meta = MetaData()
+        meta.reflect(engine)
+        return {name: [c.name for c in tbl.c] for name, tbl in meta.tables.items()}
     finally:
         engine.dispose()
 
