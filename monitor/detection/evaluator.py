@@ -48,7 +48,7 @@ from typing import TYPE_CHECKING, Any
 from monitor.analysis.waveform import ReadingAnalysis
 from monitor.detection.alarms import AlarmEngine, AlarmKey, AlarmKind, Severity, Transition
 from monitor.detection.approach import ApproachForecast
-from monitor.detection.growth_watch import SENSOR_FAULT, SWEEP, GrowthWatch, Ignored
+from monitor.detection.growth_watch import SENSOR_FAULT, STOPPED, SWEEP, GrowthWatch, Ignored
 from monitor.detection.health import HealthCheck, HealthReport, check_waveform, is_stale
 from monitor.detection.margins import MarginRow, MarginRows
 from monitor.detection.resonance import ResonanceWatch
@@ -57,6 +57,7 @@ from monitor.detection.results import (
     ReadingEvaluation,
     SpeedEvaluation,
 )
+from monitor.detection.running import RunJudgement, RunningWatch
 from monitor.detection.state_json import (
     STATE_FORMAT,
     float_out,
@@ -117,6 +118,9 @@ class MachineEvaluator:
         self.engine = AlarmEngine(s.persistence)
         self._resonance = ResonanceWatch(machine, s)
         self._growth = GrowthWatch(machine, s)
+        self.running = RunningWatch(
+            s.min_running_speed_hz if s.min_running_speed_hz is not None else machine.speed_range_hz[0],
+            s.stopped_overall_mm_s)
         self._last_ts: dict[str, float] = {}
         self._intervals: dict[str, deque[float]] = {}
         self._keys: dict[tuple[str | None, str, str], AlarmKey] = {}
@@ -157,8 +161,9 @@ class MachineEvaluator:
         margins = _NO_MARGINS
         sweeping: list[str] = []
         one_x_bands: tuple[str, ...] = ()
+        run = self._judge_running(analysis, ts) if analysis is not None and health.ok else None
         if speed is not None and math.isfinite(speed) and speed > 0:
-            if not suppressed:
+            if not suppressed and not _false_speed(run, analysis):
                 sweeping, approach, t, one_x_bands = self._resonance.at_speed(self.engine, ts, speed, rid)
                 trans += t
             margins = self._resonance.rows(speed)
@@ -173,6 +178,8 @@ class MachineEvaluator:
             zone = zone_of(overall, limits) if math.isfinite(overall) and overall >= 0 else None
             if not health.ok:
                 ignored = Ignored(SENSOR_FAULT, health.checks)
+            elif run is not None and run.stopped:
+                ignored = Ignored(STOPPED, (run.reason or "",))
             elif sweeping:
                 ignored = Ignored(SWEEP, tuple(sweeping))
             feats, t = self._growth.reading(self.engine, analysis, point.id, limits, ignored, one_x_bands)
@@ -185,7 +192,7 @@ class MachineEvaluator:
             overall_velocity_mm_s_rms=overall, zone=zone, zone_limits=limits, margins=margins,
             approach=approach, features=feats, health=health,
             growth_ignored=None if ignored is None else ignored.text(),
-            machine_alarms_suppressed=suppressed, transitions=tuple(trans),
+            machine_alarms_suppressed=suppressed, transitions=tuple(trans), running=run,
         )
         return out
 
@@ -200,6 +207,7 @@ class MachineEvaluator:
         if not (math.isfinite(sp) and sp >= 0):
             raise ValueError(f"speed_hz must be a finite speed >= 0, got {reading.speed_hz!r}.")
         ts = float(reading.ts)
+        self.running.saw_speed(ts, sp)
         if sp == 0.0:
             self._resonance.stopped()
             return SpeedEvaluation(self.machine.id, ts, sp, _NO_MARGINS, (), (), ())
@@ -256,6 +264,8 @@ class MachineEvaluator:
         """Raise ``sensor_fault``/``stale`` for points silent for ``stale_intervals``
         expected intervals at time ``now`` (epoch seconds); cleared by the next reading."""
         out: list[Transition] = []
+        if self._stale_quiet(now):
+            return out
         for pid, last in sorted(self._last_ts.items()):
             exp = self._expected_interval(pid)
             if is_stale(last, now, exp, self.settings.stale_intervals):
@@ -347,6 +357,7 @@ class MachineEvaluator:
             "stays": self._resonance.stays_snapshot(),
             "last_ts": {p: float_out(t) for p, t in self._last_ts.items()},
             "intervals": {p: floats_out(d) for p, d in self._intervals.items()},
+            "running": self.running.snapshot(),
         }
 
     @classmethod
@@ -378,8 +389,20 @@ class MachineEvaluator:
         ev._fault_seen = {k.point for k in ev.engine.alarm_keys()
                           if k.kind == "sensor_fault" and k.subject != "stale" and k.point is not None}
         ev._resonance.restore(ev.engine.alarm_keys())
+        ev.running.restore(data.get("running"))
         ev._orphans_checked = not ev.engine.active()
         return ev
+
+    # ------------------------------------------------------------------ running / stopped
+
+    def _judge_running(self, analysis: ReadingAnalysis, ts: float) -> RunJudgement:
+        """Whether ``analysis`` was taken with the machine running (monitor/detection/running.py)."""
+        return self.running.judge(ts, float(analysis.speed_hz), analysis.speed_source,
+                                  float(analysis.overall_velocity_mm_s_rms))
+
+    def _stale_quiet(self, now: float) -> bool:
+        """No stale-stream alarm while a stop is detected or announced (monitor/detection/running.py)."""
+        return self.running.quiet_at(now)
 
     # ------------------------------------------------------------------ internals
 
@@ -433,3 +456,10 @@ class MachineEvaluator:
                   "value": f.value if f else None, "reading_id": rid}
             out += self.engine.update(key, ts, lvl, lvl, ev, rid)
         return out
+
+
+def _false_speed(run: RunJudgement | None, analysis: ReadingAnalysis | None) -> bool:
+    """A stopped reading's speed estimated from its spectrum is not the running speed (the
+    estimate is searched inside the operating range: below it, it locks onto a harmonic);
+    it does not feed the resonance alarms."""
+    return run is not None and run.stopped and analysis is not None and analysis.speed_source == "estimated"

@@ -57,6 +57,7 @@ from monitor.service.items import (
 from monitor.service.passages import FoundPassage, feed_reading
 from monitor.service.payloads import StatusBoard, alarm_events, retained_statuses
 from monitor.service.states import DetectorStates
+from monitor.service.stops import apply_announced_stops
 from monitor.store import add_dead_letter, record_transitions
 from monitor.store.models import (
     Measurement,
@@ -134,6 +135,7 @@ def commit_batch(core: Core, items: Sequence[Item], *, check_all: bool = True) -
         if fresh:
             touched = latest_per_machine(fresh)
             taken = core.states.take(s, sorted(touched))
+            apply_announced_stops(c, taken.evaluators, min(it.reading.ts for it in fresh))
             waves = [it for it in fresh if isinstance(it, WaveformMessage) and it.analysis is not None]
             kept = core.cadence.kept(c, waves)
             waves_kept = core.waveform_cadence.kept(c, waves)
@@ -211,7 +213,8 @@ def evaluate(readings: Sequence[Decoded], evaluators: Mapping[str, MachineEvalua
                                it.analysis.speed_source if it.analysis is not None else "measured")
         else:
             r = it.reading
-            out.append(Evaluated(it, None, ev.observe_speed(r) if r.speed_hz > 0 else []))
+            # Speed 0 too: it ends the stays in bands and says the machine stopped.
+            out.append(Evaluated(it, None, ev.observe_speed(r)))
             board.saw_speed(r.machine, r.ts, r.speed_hz)
     return out
 
