@@ -94,6 +94,7 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
         login_limits,
         machines,
         overview,
+        stops_api,
         tokens,
         users,
     )
@@ -107,10 +108,12 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     app.register_blueprint(alarms.bp)
     app.register_blueprint(api.bp)
     app.register_blueprint(evidence_api.bp)
+    app.register_blueprint(stops_api.bp)
     app.register_blueprint(audit.api_bp)
     # The API authenticates tokens itself and checks CSRF only for session writes.
     app.extensions["csrf"].exempt(api.bp)
     app.extensions["csrf"].exempt(evidence_api.bp)
+    app.extensions["csrf"].exempt(stops_api.bp)
     app.extensions["csrf"].exempt(audit.api_bp)
     login_limits.install(app)
 

@@ -16,11 +16,11 @@ import datetime as dt
 from collections.abc import Iterable
 from typing import Any, cast
 
-from sqlalchemy import ForeignKey, Index, String, Table, Text, select
+from sqlalchemy import ForeignKey, Index, String, Table, Text, exists, select
 from sqlalchemy.orm import Mapped, Session, mapped_column
 
 from monitor.model.timefmt import iso_utc
-from monitor.store.models import Base, BigId, UTCDateTime, utcnow
+from monitor.store.models import Base, BigId, MachineStatus, UTCDateTime, utcnow
 
 #: Longest stop that may be announced, days: a stop longer than a quarter is a machine
 #: out of service, not a planned stop (our choice).
@@ -47,8 +47,14 @@ class MachineStop(Base):
     ended_by: Mapped[str | None] = mapped_column(String(100))
 
 
-def check_stop(starts_at: dt.datetime, ends_at: dt.datetime, comment: str) -> None:
-    """ValueError, one sentence naming the field, for a stop that cannot be announced."""
+#: How far ahead a stop may be announced, days (our choice).
+MAX_AHEAD_DAYS = 365.0
+
+
+def check_stop(starts_at: dt.datetime, ends_at: dt.datetime, comment: str, now: dt.datetime) -> None:
+    """ValueError, one sentence naming the field, for a stop that cannot be announced at
+    ``now``: a comment is required, 'until' must be after 'from' and after now, 'from' at
+    most :data:`MAX_AHEAD_DAYS` ahead, and the stop at most :data:`MAX_STOP_DAYS` long."""
     if not isinstance(comment, str) or not comment.strip():
         raise ValueError("'comment' is required: say why the machine is stopped.")
     if len(comment) > MAX_COMMENT:
@@ -56,6 +62,11 @@ def check_stop(starts_at: dt.datetime, ends_at: dt.datetime, comment: str) -> No
     if not ends_at > starts_at:
         raise ValueError(f"'until' ({iso_utc(ends_at.timestamp())}) must be after 'from' "
                          f"({iso_utc(starts_at.timestamp())}).")
+    if not ends_at > now:
+        raise ValueError(f"'until' ({iso_utc(ends_at.timestamp())}) must be in the future.")
+    if starts_at - now > dt.timedelta(days=MAX_AHEAD_DAYS):
+        raise ValueError(f"'from' may be at most {MAX_AHEAD_DAYS:g} days ahead, got "
+                         f"{iso_utc(starts_at.timestamp())}.")
     if ends_at - starts_at > dt.timedelta(days=MAX_STOP_DAYS):
         raise ValueError(f"a stop may last at most {MAX_STOP_DAYS:g} days; put the machine out of "
                          "service for longer work.")
@@ -65,9 +76,10 @@ def announce_stop(s: Session, machine_id: str, starts_at: dt.datetime, ends_at: 
                   comment: str, user: str) -> MachineStop:
     """Record an announced stop (inside the caller's transaction); ValueError naming the
     field for bad values (:func:`check_stop`). The caller checks the machine exists."""
-    check_stop(starts_at, ends_at, comment)
+    now = utcnow()
+    check_stop(starts_at, ends_at, comment, now)
     row = MachineStop(machine_id=machine_id, starts_at=starts_at, ends_at=ends_at, comment=comment.strip(),
-                      announced_by=user[:100], announced_at=utcnow())
+                      announced_by=user[:100], announced_at=now)
     s.add(row)
     s.flush()
     return row
@@ -114,6 +126,27 @@ def announced_stops(db: Any, machines: Iterable[str], after: float) -> dict[str,
     for mid, start, until in rows:
         out.setdefault(mid, []).append((_epoch(start), _epoch(until)))
     return out
+
+
+def stop_in_force(machine_id: Any, now: dt.datetime) -> Any:
+    """An SQL ``EXISTS`` for a stop of ``machine_id`` (a column or a value) announced at
+    ``now``: the overview asks it in the statement that reads its page."""
+    return exists().where(MachineStop.machine_id == machine_id, MachineStop.starts_at <= now,
+                          MachineStop.ends_at > now)
+
+
+def running_json(s: Session, machine_id: str) -> dict[str, Any]:
+    """Running or stopped for the machine page and ``GET /api/v1/machines/{id}``: the
+    service's latest judgement (its retained status), stopped while an announced stop is
+    in force, and the stops not over yet."""
+    body = s.scalar(select(MachineStatus.status).where(MachineStatus.machine_id == machine_id))
+    r = (body or {}).get("running") or {}
+    now = utcnow()
+    stops = [stop_json(x, now) for x in machine_stops(s, machine_id, current_after=now, limit=10)]
+    announced = any(x["current"] for x in stops)
+    return {"state": "stopped" if announced else r.get("state"),
+            "reason": "stop announced" if announced else r.get("reason"), "at": r.get("at"),
+            "stop_announced": announced, "stops": stops}
 
 
 def _epoch(value: dt.datetime) -> float:

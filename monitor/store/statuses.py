@@ -79,6 +79,7 @@ def status_values(body: Mapping[str, Any]) -> dict[str, Any]:
         "zone_point": worst.get("point"),
         "overall_mm_s_rms": _finite(worst.get("overall_mm_s_rms")),
         "margin_gap_pct": gap,
+        "running": (body.get("running") or {}).get("state"),
         "nearest_margin": nearest,
         "status": dict(body),
         "updated_at": utcnow(),

@@ -1,5 +1,6 @@
 """Announced stops: ``machine_stops``, one row per stop an engineer announced for planned
-work (from, until, why, who; when ended early and by whom).
+work (from, until, why, who; when ended early and by whom); ``machine_status.running``,
+the machine running or stopped as its retained status says (the overview shows it).
 
 Revision ID: 0007
 Revises: 0006
@@ -41,8 +42,12 @@ def upgrade() -> None:
     )
     op.create_index(op.f("ix_machine_stops_machine_id_ends_at"), "machine_stops", ["machine_id", "ends_at"],
                     unique=False)
+    with op.batch_alter_table("machine_status") as batch:
+        batch.add_column(sa.Column("running", sa.String(length=16), nullable=True))
 
 
 def downgrade() -> None:
+    with op.batch_alter_table("machine_status") as batch:
+        batch.drop_column("running")
     op.drop_index(op.f("ix_machine_stops_machine_id_ends_at"), table_name="machine_stops")
     op.drop_table("machine_stops")
