@@ -12,10 +12,17 @@ from flask import Blueprint, jsonify, request
 
 from dashboard.alarms import acting_user, parse_time
 from dashboard.db import db_session
-from dashboard.errors import BadRequest, NotFound
+from dashboard.errors import BadRequest, Conflict, NotFound
 from dashboard.security import require
 from monitor.store import reads
-from monitor.store.machine_stops import announce_stop, end_stop, get_stop, machine_stops, stop_json
+from monitor.store.machine_stops import (
+    StopTimesError,
+    announce_stop,
+    end_stop,
+    get_stop,
+    machine_stops,
+    stop_json,
+)
 from monitor.store.models import Machine, utcnow
 
 bp = Blueprint("stops_api", __name__, url_prefix="/api/v1")
@@ -33,13 +40,12 @@ def _machine_or_404(machine_id: str) -> Machine:
 
 def _time_field(data: dict, name: str, required: bool) -> dt.datetime | None:
     value = data.get(name)
-    if value is None:
-        if required:
-            raise BadRequest(f"Field {name!r} is required: an ISO 8601 time.")
-        return None
-    if not isinstance(value, str):
+    if value is not None and not isinstance(value, str):
         raise BadRequest(f"Field {name!r} must be an ISO 8601 time (string), got {type(value).__name__}.")
-    return parse_time(value, name)
+    when = parse_time(value, name)
+    if when is None and required:
+        raise BadRequest(f"Field {name!r} is required: an ISO 8601 time.")
+    return when
 
 
 @bp.get("/machines/<machine_id>/stops")
@@ -67,14 +73,15 @@ def announce(machine_id: str):
     if extra:
         raise BadRequest(f"Unknown field {extra[0]!r}; allowed: from, until, comment.")
     start = _time_field(data, "from", required=False) or utcnow()
-    until = _time_field(data, "until", required=True)
-    assert until is not None
+    until = _time_field(data, "until", required=True) or utcnow()
     comment = data.get("comment")
     if not isinstance(comment, str):
         raise BadRequest("Field 'comment' is required: say why the machine is stopped.")
     s = db_session()
     try:
         row = announce_stop(s, m.id, start, until, comment, acting_user())
+    except StopTimesError as exc:
+        raise Conflict(str(exc)) from None
     except ValueError as exc:
         raise BadRequest(str(exc)) from None
     s.commit()

@@ -67,18 +67,21 @@ def test_an_announced_stop_shows_the_machine_stopped_until_it_is_ended(client) -
     assert item["stop_announced"] is False and item["running"] == "running"  # the service's judgement
 
 
-@pytest.mark.parametrize("body, field", [
-    ({"until": "2020-01-01T00:00:00Z", "comment": "old"}, "'until'"),
-    ({"comment": "no end"}, "'until'"),
-    ({"until": "2999-01-01T00:00:00Z", "comment": "   "}, "'comment'"),
-    ({"until": "2999-01-01T00:00:00Z", "comment": "far", "from": "2998-12-01T00:00:00Z"}, "'from'"),
-    ({"until": "tomorrow", "comment": "x"}, "'until'"),
-    ({"until": "2999-01-01T00:00:00Z", "comment": "x", "why": "y"}, "'why'"),
+@pytest.mark.parametrize("body, status, field", [
+    # Malformed: 400. Well formed but not fitting the clock or the length limits: 409.
+    ({"comment": "no end"}, 400, "'until'"),
+    ({"until": "", "comment": "no end"}, 400, "'until'"),
+    ({"until": "2999-01-01T00:00:00Z", "comment": "   "}, 400, "'comment'"),
+    ({"until": "tomorrow", "comment": "x"}, 400, "'until'"),
+    ({"until": "2999-01-01T00:00:00Z", "comment": "x", "why": "y"}, 400, "'why'"),
+    ({"until": "2020-01-01T00:00:00Z", "comment": "old"}, 409, "'until'"),
+    ({"until": "2999-01-01T00:00:00Z", "comment": "far", "from": "2998-12-01T00:00:00Z"}, 409, "'from'"),
+    ({"until": "2999-01-01T00:00:00Z", "comment": "long"}, 409, "92 days"),
 ])
-def test_a_stop_that_cannot_be_announced_is_refused_naming_the_field(client, body, field) -> None:
+def test_a_stop_that_cannot_be_announced_is_refused_naming_the_field(client, body, status, field) -> None:
     h = {"X-CSRFToken": login(client, "eng")}
     r = client.post("/api/v1/machines/fan-000/stops", json=body, headers=h)
-    assert r.status_code == 400 and field in r.get_json()["error"]["message"], r.get_data(as_text=True)
+    assert r.status_code == status and field in r.get_json()["error"]["message"], r.get_data(as_text=True)
 
 
 def test_only_an_engineer_announces_and_only_known_machines(client) -> None:

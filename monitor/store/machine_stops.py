@@ -47,6 +47,10 @@ class MachineStop(Base):
     ended_by: Mapped[str | None] = mapped_column(String(100))
 
 
+class StopTimesError(ValueError):
+    """The times of a stop do not fit (not ahead of now, too far ahead, too long)."""
+
+
 #: How far ahead a stop may be announced, days (our choice).
 MAX_AHEAD_DAYS = 365.0
 
@@ -60,15 +64,15 @@ def check_stop(starts_at: dt.datetime, ends_at: dt.datetime, comment: str, now: 
     if len(comment) > MAX_COMMENT:
         raise ValueError(f"'comment' must be at most {MAX_COMMENT} characters, got {len(comment)}.")
     if not ends_at > starts_at:
-        raise ValueError(f"'until' ({iso_utc(ends_at.timestamp())}) must be after 'from' "
+        raise StopTimesError(f"'until' ({iso_utc(ends_at.timestamp())}) must be after 'from' "
                          f"({iso_utc(starts_at.timestamp())}).")
     if not ends_at > now:
-        raise ValueError(f"'until' ({iso_utc(ends_at.timestamp())}) must be in the future.")
+        raise StopTimesError(f"'until' ({iso_utc(ends_at.timestamp())}) must be in the future.")
     if starts_at - now > dt.timedelta(days=MAX_AHEAD_DAYS):
-        raise ValueError(f"'from' may be at most {MAX_AHEAD_DAYS:g} days ahead, got "
+        raise StopTimesError(f"'from' may be at most {MAX_AHEAD_DAYS:g} days ahead, got "
                          f"{iso_utc(starts_at.timestamp())}.")
     if ends_at - starts_at > dt.timedelta(days=MAX_STOP_DAYS):
-        raise ValueError(f"a stop may last at most {MAX_STOP_DAYS:g} days; put the machine out of "
+        raise StopTimesError(f"a stop may last at most {MAX_STOP_DAYS:g} days; put the machine out of "
                          "service for longer work.")
 
 
