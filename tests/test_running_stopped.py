@@ -68,9 +68,9 @@ MODEL = MachineModel("rig-7", modes=(ModalMode(45.0, 0.03, 100.0, default_partic
                      force_noise_n=10.0, sensor_noise_m_s2=0.02)
 
 
-def run(profile: SpeedProfile, start: float, interval_s: float = 4.0, seed: int = 3) -> list:
+def run(profile: SpeedProfile, start: float, interval_s: float = 4.0, seed: int = 3, speed: bool = True) -> list:
     return simulate_run(MODEL, profile, points=["de-h"], fs_hz=FS_HZ, block_samples=BLOCK, interval_s=interval_s,
-                        start_ts=start, seed=seed)
+                        start_ts=start, seed=seed, speed_readings=speed)
 
 
 def feed(url: str, readings: list, clock: Clock, per_batch: int = 2, **service: Any) -> list[dict]:
@@ -140,13 +140,15 @@ def test_no_growth_learning_while_stopped(tmp_path: Path) -> None:
     assert [f for ts, f in meas if ts >= START + 3600.0] == [True] * counts["machine stopped"]
 
 
-def test_stopped_overall_level_marks_stopped_at_any_speed(tmp_path: Path) -> None:
-    # The same steady run judged against a threshold above its level: every reading is
-    # stopped by level (0 turns the test off: none is).
+@pytest.mark.parametrize("speed_stream", [False, True])
+def test_the_stopped_level_judges_when_no_speed_is_measured(tmp_path: Path, speed_stream: bool) -> None:
+    # A steady run at 20 Hz judged against a level threshold above its level: without a
+    # measured speed (the estimate cannot leave the operating range) the level says
+    # stopped; a measured speed inside the range says running whatever the level.
     url = store_with(f"sqlite:///{tmp_path / 'level.sqlite'}", rig(stopped_overall_mm_s=100.0))
-    feed(url, run(SpeedProfile.steady(20.0, 20.0), START), Clock(START))
+    feed(url, run(SpeedProfile.steady(20.0, 20.0), START, speed=speed_stream), Clock(START))
     meas, _, _ = stored(url)
-    assert meas and all(f for _, f in meas)
+    assert meas and all(f != speed_stream for _, f in meas)
 
 
 def _stale_events(url: str, clock: Clock, at: float, **service: Any) -> list[dict]:

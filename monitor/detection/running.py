@@ -14,9 +14,12 @@ A reading is *stopped* when
   the speed stream within :data:`SPEED_FRESH_S` of the reading. A speed estimated from the
   spectrum is searched inside the operating range only (so it cannot fall below it: on a
   coast-down it locks onto 2x), and is judged only against a minimum set above the range;
-- or its overall velocity is below ``stopped_overall_mm_s`` (0.3 mm/s RMS by default:
-  common practice, a level below the residual vibration of a running machine on its
-  mounts and above the noise floor of an industrial accelerometer channel);
+- or, when no measured speed is at hand (the speed is estimated), its overall velocity is
+  below ``stopped_overall_mm_s`` (0.3 mm/s RMS by default: common practice, a level below
+  the residual vibration of a running machine on its mounts and above the noise floor of
+  an industrial accelerometer channel). A measured speed inside the operating range says
+  running whatever the level: a smooth machine running below the threshold keeps its
+  growth watch (a defect growing from 0.2 mm/s would otherwise go unseen);
 - or an engineer announced a stop that covers the reading's time.
 
 The machine is stopped while its latest judgement says so (a reading, or a speed message
@@ -72,12 +75,17 @@ class RunJudgement:
 def judge_running(speed_hz: float | None, overall_mm_s: float | None, min_speed_hz: float,
                   stopped_overall_mm_s: float, speed_source: str | None = None) -> RunJudgement:
     """Judge one reading from its running speed (Hz, None if unknown) and overall velocity
-    (mm/s RMS, None if unknown): stopped below ``min_speed_hz`` or below
-    ``stopped_overall_mm_s`` (0 disables the level test). Pure."""
+    (mm/s RMS, None if unknown): stopped below ``min_speed_hz``; else, unless the speed
+    was measured (``speed_source`` 'measured' or 'speed stream': a measured speed in the
+    operating range is the better evidence, and a smooth machine running at a low level
+    must keep its growth watch), below ``stopped_overall_mm_s`` (0 disables the level
+    test). Pure."""
     if speed_hz is not None and math.isfinite(speed_hz) and speed_hz < min_speed_hz:
         return RunJudgement(STOPPED, f"speed {speed_hz:.2f} Hz below the minimum running speed "
                                      f"{min_speed_hz:.2f} Hz", speed_hz, speed_source)
-    if overall_mm_s is not None and math.isfinite(overall_mm_s) and overall_mm_s < stopped_overall_mm_s:
+    measured = speed_source in ("measured", "speed stream") and speed_hz is not None
+    if (not measured and overall_mm_s is not None and math.isfinite(overall_mm_s)
+            and overall_mm_s < stopped_overall_mm_s):
         return RunJudgement(STOPPED, f"overall {overall_mm_s:.2f} mm/s RMS below the stopped threshold "
                                      f"{stopped_overall_mm_s:.2f} mm/s RMS", speed_hz, speed_source)
     return RunJudgement(RUNNING, None, speed_hz, speed_source)

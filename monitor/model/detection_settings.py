@@ -65,8 +65,8 @@ class DetectionSettings:
         Below this running speed, Hz, the machine is stopped (monitor/detection/running.py);
         None takes the bottom of the registry's ``speed_range_rpm``.
     stopped_overall_mm_s : float
-        Below this overall velocity, mm/s RMS, a reading is taken with the machine stopped
-        (0.3, common practice; 0 turns the level test off).
+        With no measured speed, below this overall velocity, mm/s RMS, a reading is taken
+        with the machine stopped (0.3, common practice; 0 turns the level test off).
     """
 
     required_margin_pct: float | None = None
