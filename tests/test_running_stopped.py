@@ -231,3 +231,22 @@ def test_min_running_speed_is_checked_at_the_door() -> None:
         check_machine(rig(min_running_speed_hz=-1.0))
     with pytest.raises(ValueError, match="stopped_overall_mm_s"):
         check_machine(rig(stopped_overall_mm_s="low"))
+
+
+def test_readings_during_an_announced_stop_are_stopped(tmp_path: Path) -> None:
+    # A machine turned by hand or on test runs during planned work: its readings, even at
+    # running speed, are stored flagged and teach the baseline nothing.
+    url = store_with(f"sqlite:///{tmp_path / 'planned.sqlite'}", rig())
+    readings = run(SpeedProfile.steady(20.0, 20.0), START)
+    store = Store.open(url)
+    try:
+        with store.transaction() as s:
+            announce_stop(s, "rig-7", dt.datetime.fromtimestamp(START - 60.0, dt.UTC),
+                          dt.datetime.fromtimestamp(START + 3600.0, dt.UTC), "shaft alignment", "eng")
+    finally:
+        store.close()
+    statuses = feed(url, readings, Clock(START))
+    meas, _, _ = stored(url)
+    assert meas and all(f for _, f in meas)
+    assert statuses[-1]["running"]["state"] == "stopped" and statuses[-1]["running"]["announced_until"]
+    assert stored_evaluator_state(url, "rig-7")["ignored"]["de-h"]["machine stopped"] == len(meas)
