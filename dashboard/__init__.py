@@ -101,6 +101,7 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
         machines,
         overview,
         shelving,
+        stops_api,
         tokens,
         users,
     )
@@ -115,6 +116,7 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     app.register_blueprint(api.bp)
     app.register_blueprint(evidence_api.bp)
     app.register_blueprint(export_api.bp)
+    app.register_blueprint(stops_api.bp)
     app.register_blueprint(audit.api_bp)
     app.register_blueprint(health.bp)
     app.register_blueprint(shelving.bp)
@@ -122,6 +124,7 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     # The API authenticates tokens itself and checks CSRF only for session writes.
     app.extensions["csrf"].exempt(api.bp)
     app.extensions["csrf"].exempt(evidence_api.bp)
+    app.extensions["csrf"].exempt(stops_api.bp)
     app.extensions["csrf"].exempt(audit.api_bp)
     app.extensions["csrf"].exempt(shelving.api_bp)
     login_limits.install(app)

@@ -280,11 +280,16 @@ def test_format_1_state_is_converted_and_detection_goes_on_as_if_uninterrupted(
         back = through_store(url, "sp-2", old)
     restored, version = evaluator_from_state(machine, back)
     assert version == 40
-    # Converted on load: the same state as the uninterrupted run, to the bit.
-    assert same(restored.snapshot(), reference.snapshot())
+    # Converted on load: the same state as the uninterrupted run, to the bit, but for the
+    # running judgement, which format 1 predates: the next reading makes it.
+    def judged_apart(snap: dict) -> dict:
+        return {k: v for k, v in snap.items() if k != "running"}
+
+    assert same(judged_apart(restored.snapshot()), judged_apart(reference.snapshot()))
     for a, w in readings[40:]:
         got, want = restored.evaluate(a, w), reference.evaluate(a, w)
         assert same(value_out(got.to_json()), value_out(want.to_json()))
+    assert same(restored.snapshot(), reference.snapshot())
 
 
 def test_format_1_null_where_only_numbers_belong_is_refused() -> None:

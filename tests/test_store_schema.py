@@ -25,7 +25,7 @@ def test_upgrade_head_matches_models(database_url):
         assert diff == []
         tables = set(inspect(engine).get_table_names()) - {"alembic_version"}
         assert tables == set(Base.metadata.tables)
-        assert current_revision(engine) == "0008"
+        assert current_revision(engine) == "0009"
     finally:
         engine.dispose()
 
@@ -35,7 +35,7 @@ def test_upgrade_twice_is_harmless(database_url):
     upgrade(database_url)
     engine = make_engine(database_url)
     try:
-        assert current_revision(engine) == "0008"
+        assert current_revision(engine) == "0009"
     finally:
         engine.dispose()
 
@@ -55,7 +55,7 @@ def test_upgrade_from_0001_keeps_the_registry(database_url):
                 "INSERT INTO modes (machine_id, name, frequency_hz, source, position, updated_at) "
                 "VALUES ('ef-2', 'sway', 1e-80, '', 0, :t)"), {"t": "2026-01-01 00:00:00"})
         upgrade(database_url)
-        assert current_revision(engine) == "0008"
+        assert current_revision(engine) == "0009"
         with engine.connect() as conn:
             assert conn.execute(text("SELECT version FROM registry_state")).all() == [(0,)]
             assert conn.execute(text("SELECT registry_version, file_digest FROM machines")).all() == [(0, None)]

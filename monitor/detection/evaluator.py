@@ -48,7 +48,7 @@ from typing import TYPE_CHECKING, Any
 from monitor.analysis.waveform import ReadingAnalysis
 from monitor.detection.alarms import AlarmEngine, AlarmKey, AlarmKind, Severity, Transition
 from monitor.detection.approach import ApproachForecast
-from monitor.detection.growth_watch import SENSOR_FAULT, SWEEP, GrowthWatch, Ignored
+from monitor.detection.growth_watch import SENSOR_FAULT, STOPPED, SWEEP, GrowthWatch, Ignored
 from monitor.detection.health import HealthCheck, HealthReport, check_waveform, is_stale
 from monitor.detection.margins import MarginRow, MarginRows
 from monitor.detection.resonance import ResonanceWatch
@@ -57,6 +57,7 @@ from monitor.detection.results import (
     ReadingEvaluation,
     SpeedEvaluation,
 )
+from monitor.detection.running import RunJudgement, RunningWatch
 from monitor.detection.state_json import (
     STATE_FORMAT,
     float_out,
@@ -119,6 +120,9 @@ class MachineEvaluator:
         self.engine = AlarmEngine(s.persistence)
         self._resonance = ResonanceWatch(machine, s)
         self._growth = GrowthWatch(machine, s)
+        self.running = RunningWatch(
+            s.min_running_speed_hz if s.min_running_speed_hz is not None else machine.speed_range_hz[0],
+            s.stopped_overall_mm_s)
         self._last_ts: dict[str, float] = {}
         self._intervals: dict[str, deque[float]] = {}
         self._keys: dict[tuple[str | None, str, str], AlarmKey] = {}
@@ -159,8 +163,9 @@ class MachineEvaluator:
         margins = _NO_MARGINS
         sweeping: list[str] = []
         one_x_bands: tuple[str, ...] = ()
+        run = self._judge_running(analysis, ts) if analysis is not None and health.ok else None
         if speed is not None and math.isfinite(speed) and speed > 0:
-            if not suppressed:
+            if not suppressed and not _false_speed(run, analysis):
                 sweeping, approach, t, one_x_bands = self._resonance.at_speed(self.engine, ts, speed, rid)
                 trans += t
             margins = self._resonance.rows(speed)
@@ -175,6 +180,8 @@ class MachineEvaluator:
             zone = zone_of(overall, limits) if math.isfinite(overall) and overall >= 0 else None
             if not health.ok:
                 ignored = Ignored(SENSOR_FAULT, health.checks)
+            elif run is not None and run.stopped:
+                ignored = Ignored(STOPPED, (run.reason or "",))
             elif sweeping:
                 ignored = Ignored(SWEEP, tuple(sweeping))
             feats, t = self._growth.reading(self.engine, analysis, point.id, limits, ignored, one_x_bands)
@@ -187,7 +194,7 @@ class MachineEvaluator:
             overall_velocity_mm_s_rms=overall, zone=zone, zone_limits=limits, margins=margins,
             approach=approach, features=feats, health=health,
             growth_ignored=None if ignored is None else ignored.text(),
-            machine_alarms_suppressed=suppressed, transitions=tuple(trans), out_of_service=False,
+            machine_alarms_suppressed=suppressed, transitions=tuple(trans), out_of_service=False, running=run,
         )
         return out
 
@@ -235,6 +242,7 @@ class MachineEvaluator:
         if not (math.isfinite(sp) and sp >= 0):
             raise ValueError(f"speed_hz must be a finite speed >= 0, got {reading.speed_hz!r}.")
         ts = float(reading.ts)
+        self.running.saw_speed(ts, sp)
         if sp == 0.0:
             self._resonance.stopped()
             return SpeedEvaluation(self.machine.id, ts, sp, _NO_MARGINS, (), (), ())
@@ -292,6 +300,8 @@ class MachineEvaluator:
         expected intervals at time ``now`` (epoch seconds); cleared by the next reading.
         Points in ``out_of_service`` (ids) are not checked: planned work raises nothing."""
         out: list[Transition] = []
+        if self._stale_quiet(now):
+            return out
         for pid, last in sorted(self._last_ts.items()):
             if pid in out_of_service:
                 continue
@@ -385,6 +395,7 @@ class MachineEvaluator:
             "stays": self._resonance.stays_snapshot(),
             "last_ts": {p: float_out(t) for p, t in self._last_ts.items()},
             "intervals": {p: floats_out(d) for p, d in self._intervals.items()},
+            "running": self.running.snapshot(),
         }
 
     @classmethod
@@ -416,8 +427,20 @@ class MachineEvaluator:
         ev._fault_seen = {k.point for k in ev.engine.alarm_keys()
                           if k.kind == "sensor_fault" and k.subject != "stale" and k.point is not None}
         ev._resonance.restore(ev.engine.alarm_keys())
+        ev.running.restore(data.get("running"))
         ev._orphans_checked = not ev.engine.active()
         return ev
+
+    # ------------------------------------------------------------------ running / stopped
+
+    def _judge_running(self, analysis: ReadingAnalysis, ts: float) -> RunJudgement:
+        """Whether ``analysis`` was taken with the machine running (monitor/detection/running.py)."""
+        return self.running.judge(ts, float(analysis.speed_hz), analysis.speed_source,
+                                  float(analysis.overall_velocity_mm_s_rms))
+
+    def _stale_quiet(self, now: float) -> bool:
+        """No stale-stream alarm while a stop is detected or announced (monitor/detection/running.py)."""
+        return self.running.quiet_at(now)
 
     # ------------------------------------------------------------------ internals
 
@@ -475,3 +498,10 @@ class MachineEvaluator:
                   "value": f.value if f else None, "reading_id": rid}
             out += self.engine.update(key, ts, lvl, lvl, ev, rid)
         return out
+
+
+def _false_speed(run: RunJudgement | None, analysis: ReadingAnalysis | None) -> bool:
+    """A stopped reading's speed estimated from its spectrum is not the running speed (the
+    estimate is searched inside the operating range: below it, it locks onto a harmonic);
+    it does not feed the resonance alarms."""
+    return run is not None and run.stopped and analysis is not None and analysis.speed_source == "estimated"

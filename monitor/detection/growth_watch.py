@@ -5,7 +5,8 @@ engine (docs/alarms.md, "amplitude_growth").
 
 Which readings each rule sees:
 
-- a reading sensor health flagged is judged by no rule (it neither raises nor clears);
+- a reading sensor health flagged, or taken with the machine stopped
+  (:mod:`monitor.detection.running`), is judged by no rule (it neither raises nor clears);
 - a reading taken while the speed sweeps an excitation through a required band
   (:mod:`monitor.detection.dwell`) is judged by its zone only: it feeds no baseline and no
   trend window;
@@ -37,9 +38,12 @@ from monitor.model.registry import Machine
 
 #: Why growth leaves a reading out: the key its count goes under (``ignored_readings`` of
 #: a growth transition's evidence) and the start of ``growth_ignored``.
-IgnoreReason = Literal["sensor fault", "sweep through band"]
+IgnoreReason = Literal["sensor fault", "sweep through band", "machine stopped"]
 SENSOR_FAULT: IgnoreReason = "sensor fault"
 SWEEP: IgnoreReason = "sweep through band"
+#: Taken with the machine stopped (monitor/detection/running.py): judged by no rule, as a
+#: sensor fault's reading.
+STOPPED: IgnoreReason = "machine stopped"
 
 
 class Ignored(NamedTuple):

@@ -18,6 +18,7 @@ from monitor.detection.approach import ApproachForecast
 from monitor.detection.growth_rules import FeatureVerdict
 from monitor.detection.health import HealthReport
 from monitor.detection.margins import MarginRow, MarginRows
+from monitor.detection.running import RunJudgement
 from monitor.detection.zones import Zone, ZoneLimits
 
 
@@ -71,7 +72,9 @@ class ReadingEvaluation:
     ``growth_ignored`` why growth skipped the reading (None when used);
     ``machine_alarms_suppressed`` when sensor health flagged the reading (or it was out of
     service); ``transitions`` the alarm transitions the reading caused; ``out_of_service``
-    when its point was out of service (planned work: nothing raised, nothing learnt).
+    when its point was out of service (planned work: nothing raised, nothing learnt);
+    ``running`` whether the machine was running or stopped (monitor/detection/running.py;
+    None when the analysis failed).
     """
 
     machine: str
@@ -90,6 +93,12 @@ class ReadingEvaluation:
     machine_alarms_suppressed: bool
     transitions: tuple[Transition, ...] = field(default_factory=tuple)
     out_of_service: bool = False
+    running: RunJudgement | None = None
+
+    @property
+    def stopped(self) -> bool:
+        """The reading was taken with the machine stopped (stored flagged, no growth)."""
+        return self.running is not None and self.running.stopped
 
     def feature(self, name: str) -> FeatureEvaluation | None:
         """The growth feature ``name`` of this reading, or None."""
@@ -123,6 +132,8 @@ class ReadingEvaluation:
             "health": self.health.to_json(), "growth_ignored": self.growth_ignored,
             "machine_alarms_suppressed": self.machine_alarms_suppressed,
             "transitions": [t.to_json() for t in self.transitions],
+            "running": None if self.running is None else self.running.to_json(),
+            "stopped": self.stopped,
         }
         if self.out_of_service:
             out["out_of_service"] = True

@@ -230,7 +230,17 @@ def check_machine(machine: Machine) -> Machine:
     if len(set(names)) != len(names):
         raise RegistryError(f"{where}: mode names must be unique, got {names!r}.")
     _check_settings(machine.settings, where)
+    _check_min_running_speed(machine.settings, hi, where)
     return machine
+
+
+def _check_min_running_speed(settings: Mapping[str, Any], top_rpm: float, where: str) -> None:
+    """``min_running_speed_hz`` (validated as a number by the detection settings) must lie
+    below the top of the operating range, or the machine would never count as running."""
+    v = settings.get("min_running_speed_hz")
+    if v is not None and isinstance(v, int | float) and v * 60.0 >= top_rpm:
+        raise RegistryError(f"{where}: 'min_running_speed_hz' must be below the top of speed_range_rpm "
+                            f"({top_rpm / 60.0:g} Hz), got {v!r}.")
 
 
 def _check_settings(settings: Mapping[str, Any], where: str) -> None:

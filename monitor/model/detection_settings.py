@@ -61,6 +61,12 @@ class DetectionSettings:
         the last intervals).
     stale_intervals : float
         A point is stale after this many expected intervals without a reading (3).
+    min_running_speed_hz : float or None
+        Below this running speed, Hz, the machine is stopped (monitor/detection/running.py);
+        None takes the bottom of the registry's ``speed_range_rpm``.
+    stopped_overall_mm_s : float
+        With no measured speed, below this overall velocity, mm/s RMS, a reading is taken
+        with the machine stopped (0.3, common practice; 0 turns the level test off).
     """
 
     required_margin_pct: float | None = None
@@ -80,6 +86,8 @@ class DetectionSettings:
     speed_history: int = 12
     reading_interval_s: float | None = None
     stale_intervals: float = 3.0
+    min_running_speed_hz: float | None = None
+    stopped_overall_mm_s: float = 0.3
 
     @classmethod
     def from_mapping(cls, settings: Mapping[str, Any], where: str = "settings") -> DetectionSettings:
@@ -124,6 +132,9 @@ class DetectionSettings:
         num("resonance_dwell_s", 0.0, 86400.0)
         num("speed_history", 3, integer=True)
         num("stale_intervals", 1.0)
+        num("stopped_overall_mm_s", 0.0, 100.0)
+        if self.min_running_speed_hz is not None:
+            num("min_running_speed_hz", 0.0, lo_open=True)
         if self.reading_interval_s is not None:
             num("reading_interval_s", 0.0, lo_open=True)
         r = self.growth_ratios

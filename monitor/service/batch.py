@@ -60,6 +60,7 @@ from monitor.service.payloads import StatusBoard, alarm_events, retained_statuse
 from monitor.service.states import DetectorStates
 from monitor.service.suppression import NONE as NO_WORK
 from monitor.service.suppression import PlannedWork, planned_work
+from monitor.service.stops import apply_announced_stops
 from monitor.store import add_dead_letter, record_transitions
 from monitor.store.models import (
     Measurement,
@@ -139,6 +140,7 @@ def commit_batch(core: Core, items: Sequence[Item], *, check_all: bool = True) -
             touched = latest_per_machine(fresh)
             taken = core.states.take(s, sorted(touched))
             work = planned_work(s, touched, core.clock())
+            apply_announced_stops(c, taken.evaluators, min(it.reading.ts for it in fresh))
             waves = [it for it in fresh if isinstance(it, WaveformMessage) and it.analysis is not None]
             kept = core.cadence.kept(c, waves)
             waves_kept = core.waveform_cadence.kept(c, waves)
@@ -219,7 +221,8 @@ def evaluate(readings: Sequence[Decoded], evaluators: Mapping[str, MachineEvalua
                                it.analysis.speed_source if it.analysis is not None else "measured")
         else:
             r = it.reading
-            out.append(Evaluated(it, None, ev.observe_speed(r) if r.speed_hz > 0 else []))
+            # Speed 0 too: it ends the stays in bands and says the machine stopped.
+            out.append(Evaluated(it, None, ev.observe_speed(r)))
             board.saw_speed(r.machine, r.ts, r.speed_hz)
     return out
 

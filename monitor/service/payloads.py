@@ -24,6 +24,7 @@ from monitor.detection.evaluator import MachineEvaluator
 from monitor.detection.margins import MarginRow
 from monitor.detection.results import ReadingEvaluation
 from monitor.model.timefmt import iso_utc, parse_iso_utc
+from monitor.service.stops import running_status
 from monitor.store import reads
 from monitor.store.statuses import save_statuses
 
@@ -154,6 +155,7 @@ class StatusBoard:
             "worst_zone": view.worst_zone(),
             "speed_source": view.speed_source,
             "speed_at": iso_utc(view.speed_ts),
+            "running": running_status(ev, view.ts),
             "active_alarms": [
                 {"ref": a.id, "point": a.key.point, "kind": a.key.kind, "subject": a.key.subject,
                  "severity": a.severity, "state": a.state}

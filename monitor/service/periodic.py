@@ -28,6 +28,7 @@ from monitor.service.items import Outcome, OutcomeKind
 from monitor.service.logs import RepeatGate
 from monitor.service.payloads import alarm_events, retained_statuses
 from monitor.service.suppression import planned_work
+from monitor.service.stops import apply_announced_stops
 from monitor.store import Store, apply_retention, reads, record_transitions
 from monitor.store.retention import RetentionPolicy
 
@@ -82,6 +83,7 @@ def check_stale(core: Core) -> list[Outcome]:
             with core.transaction() as s:
                 evs, outside = core.states.take(s, [mid], acks=False)
                 ev, closed = evs[mid], outside.get(mid, [])
+                apply_announced_stops(s, evs, now)
                 trans = ev.check_stale(now, out_of_service_points(s, ev, now))
                 if not (trans or closed):
                     return None

@@ -12,6 +12,7 @@ from monitor.store.auth import (
     verify_password,
 )
 from monitor.store.db import Store, StoreError, make_engine, normalise_url, session_factory
+from monitor.store.machine_stops import MachineStop  # noqa: F401 (its table in the metadata)
 from monitor.store.migrate import upgrade
 from monitor.store.out_of_service import OutOfService
 from monitor.store.registry_sync import export_registry, import_registry

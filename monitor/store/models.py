@@ -525,6 +525,7 @@ class MachineStatus(Base):
     zone_point: Mapped[str | None] = mapped_column(String(64))
     overall_mm_s_rms: Mapped[float | None] = mapped_column(Float)
     margin_gap_pct: Mapped[float | None] = mapped_column(Float)
+    running: Mapped[str | None] = mapped_column(String(16))  # 'running' / 'stopped' / None
     nearest_margin: Mapped[dict[str, Any] | None] = mapped_column(JSON)
     status: Mapped[dict[str, Any]] = mapped_column(JSON)
     updated_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)

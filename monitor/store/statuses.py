@@ -56,7 +56,7 @@ def blank_status(machine: str) -> dict[str, Any]:
     (docs/schemas/status.json)."""
     return {"machine": machine, "ts": None, "state": "normal", "speed_hz": None, "speed_source": None,
             "speed_at": None, "nearest_margin": None, "zone": None, "zones": {}, "overall_mm_s_rms": {},
-            "worst_zone": None, "active_alarms": []}
+            "worst_zone": None, "running": None, "active_alarms": []}
 
 
 def status_values(body: Mapping[str, Any]) -> dict[str, Any]:
@@ -79,6 +79,7 @@ def status_values(body: Mapping[str, Any]) -> dict[str, Any]:
         "zone_point": worst.get("point"),
         "overall_mm_s_rms": _finite(worst.get("overall_mm_s_rms")),
         "margin_gap_pct": gap,
+        "running": (body.get("running") or {}).get("state"),
         "nearest_margin": nearest,
         "status": dict(body),
         "updated_at": utcnow(),

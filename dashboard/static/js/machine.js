@@ -344,6 +344,11 @@
     speed.textContent = machine.speed_hz === null ? "–" : WW.num(machine.speed_rpm, 0) + " r/min (" + WW.num(machine.speed_hz, 2) + " Hz)";
     speed.title = machine.speed_at ? (machine.speed_source === "speed_topic" ? "speed topic, " : "reading, ") + WW.when(machine.speed_at) : "";
     speed.dataset.source = machine.speed_source || "";
+    const run = machine.running || {};
+    const running = document.getElementById("fact-running");
+    running.textContent = run.state || "–";
+    running.title = run.reason || "";
+    running.dataset.state = run.state || "";
     document.getElementById("fact-last").textContent = WW.when(machine.last_reading_at);
     document.getElementById("fact-orders").textContent = orderList().map(o => o + "x").join(", ") || "–";
   }

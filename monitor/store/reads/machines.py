@@ -15,6 +15,7 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session, aliased
 
 from monitor.model.timefmt import iso_utc
+from monitor.store.machine_stops import running_json
 from monitor.store.models import (
     BaselineRestart,
     Machine,
@@ -181,4 +182,5 @@ def machine_detail(s: Session, m: Machine) -> dict[str, Any]:
         "latest_spectra": [spectrum_json(sn, speed_hz=spectrum_speeds[sn.id]) for sn in spectra],
         "likely_causes": machine_hints_json(m, points, latest, spectra, margins),
         "baseline_restarts": [baseline_restart_json(r) for r in recent_baseline_restarts(s, m.id)],
+        "running": running_json(s, m.id),
     }

@@ -22,7 +22,8 @@ from sqlalchemy.orm import Session
 
 from monitor.detection.alarms import LEVELS, severity_rank
 from monitor.model.timefmt import iso_utc
-from monitor.store.models import Machine, MachineStatus
+from monitor.store.machine_stops import stop_in_force
+from monitor.store.models import Machine, MachineStatus, utcnow
 from monitor.store.reads.evaluations import nearest_margin
 from monitor.store.statuses import NO_DATA_RANK, NORMAL_RANK
 
@@ -109,6 +110,8 @@ def _item(r: Any) -> dict[str, Any]:
         "worst_zone": None if r.zone is None else {
             "point": r.zone_point, "zone": r.zone, "overall_mm_s_rms": r.overall_mm_s_rms},
         "active_alarms": r.active_alarms,
+        # The service's latest judgement; stopped while an announced stop is in force.
+        "running": "stopped" if r.stop_announced else r.running, "stop_announced": bool(r.stop_announced),
         "worst_severity": LEVELS[NORMAL_RANK - r.state_rank] if r.state_rank < NORMAL_RANK else None,
     }
 
@@ -121,7 +124,8 @@ def overview_page(s: Session, q: OverviewQuery) -> dict[str, Any]:
     rows = s.execute(
         select(Machine.id, Machine.name, Machine.location, Machine.machine_class,
                _S.ts, _S.state_rank, _S.active_alarms, _S.speed_hz, _S.speed_source, _S.speed_at,
-               _S.zone, _S.zone_point, _S.overall_mm_s_rms, _S.nearest_margin)
+               _S.zone, _S.zone_point, _S.overall_mm_s_rms, _S.nearest_margin, _S.running,
+               stop_in_force(Machine.id, utcnow()).label("stop_announced"))
         .select_from(_S).join(Machine, Machine.id == _S.machine_id)
         .where(*conds).order_by(*_order(q.sort)).offset(q.offset).limit(q.limit + 1)).all()
     # Every active machine has one status row (and only they): counted from its index.
