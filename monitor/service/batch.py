@@ -58,9 +58,9 @@ from monitor.service.items import (
 from monitor.service.passages import FoundPassage, feed_reading
 from monitor.service.payloads import StatusBoard, alarm_events, retained_statuses
 from monitor.service.states import DetectorStates
+from monitor.service.stops import apply_announced_stops
 from monitor.service.suppression import NONE as NO_WORK
 from monitor.service.suppression import PlannedWork, planned_work
-from monitor.service.stops import apply_announced_stops
 from monitor.store import add_dead_letter, record_transitions
 from monitor.store.models import (
     Measurement,

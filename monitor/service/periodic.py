@@ -27,8 +27,8 @@ from monitor.service.failures import short_cause
 from monitor.service.items import Outcome, OutcomeKind
 from monitor.service.logs import RepeatGate
 from monitor.service.payloads import alarm_events, retained_statuses
-from monitor.service.suppression import planned_work
 from monitor.service.stops import apply_announced_stops
+from monitor.service.suppression import planned_work
 from monitor.store import Store, apply_retention, reads, record_transitions
 from monitor.store.retention import RetentionPolicy
 
