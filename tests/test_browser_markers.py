@@ -101,7 +101,9 @@ def test_harmonics_of_1x_at_the_speed_of_the_spectrum(server, page):  # noqa: F8
     label = page.get_attribute("#chart-spectrum", "aria-label")
     assert "Harmonics of 1x" in label and f"8x {8 * speed:.2f} Hz" in label
     page.locator("#chart-spectrum + details.chart-data summary").click()
-    assert any("Harmonics of 1x" in li for li in page.locator("details.chart-data[data-for='chart-spectrum'] .chart-marks li").all_inner_texts())
+    # the table is built on the details' toggle event, which comes after the click returns
+    marks = page.locator("details.chart-data[data-for='chart-spectrum'] .chart-marks li", has_text="Harmonics of 1x")
+    marks.first.wait_for(timeout=10_000)
     page.locator("#chart-spectrum + details.chart-data summary").click()
     page.locator("#spectrum-panel").screenshot(path=str(ARTIFACTS / "spectrum-harmonics-of-1x.png"))
     page.uncheck("#marks-run")
