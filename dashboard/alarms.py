@@ -77,6 +77,14 @@ def before(t: dt.datetime, span: dt.timedelta) -> dt.datetime:
         return _UTC_MIN
 
 
+def time_span(args: Mapping[str, str], default: dt.timedelta) -> tuple[dt.datetime, dt.datetime]:
+    """The ``from`` and ``to`` query parameters as aware UTC datetimes: ``to`` defaults to
+    now and ``from`` to ``default`` before it. A ``from`` after ``to`` is an empty window,
+    not an error."""
+    t1 = parse_time(args.get("to"), "to") or dt.datetime.now(dt.UTC)
+    return parse_time(args.get("from"), "from") or before(t1, default), t1
+
+
 def parse_filters(args: Mapping[str, str]) -> dict:
     """The alarm filters shared by the page, the CSV export and the API."""
     f: dict = {}

@@ -14,13 +14,12 @@ from flask import Blueprint, Response, jsonify, request
 
 from dashboard.alarms import (
     acting_user,
-    before,
     do_acknowledge,
     parse_filters,
     parse_page,
-    parse_time,
+    time_span,
 )
-from dashboard.db import db_session
+from dashboard.db import db_session, machine_or_404
 from dashboard.errors import BadRequest, Conflict, NotFound
 from dashboard.machines import decide_candidate
 from dashboard.overview import parse_overview
@@ -41,12 +40,6 @@ DEFAULT_TREND_SPAN = dt.timedelta(days=7)
 #: Passages per page by default (each carries its sweep's Bode points).
 DEFAULT_PASSAGE_PAGE = 20
 
-
-def _machine_or_404(machine_id: str) -> Machine:
-    m = reads.get_machine(db_session(), machine_id)
-    if m is None:
-        raise NotFound(f"No machine with id {machine_id!r}.")
-    return m
 
 
 def _body() -> dict:
@@ -75,17 +68,14 @@ def machines():
 @bp.get("/machines/<machine_id>")
 @require("viewer")
 def machine(machine_id: str):
-    return jsonify(reads.machine_detail(db_session(), _machine_or_404(machine_id)))
+    return jsonify(reads.machine_detail(db_session(), machine_or_404(machine_id)))
 
 
 @bp.get("/machines/<machine_id>/trends")
 @require("viewer")
 def machine_trends(machine_id: str):
-    m = _machine_or_404(machine_id)
-    now = dt.datetime.now(dt.UTC)
-    t1 = parse_time(request.args.get("to"), "to") or now
-    t0 = parse_time(request.args.get("from"), "from") or before(t1, DEFAULT_TREND_SPAN)
-    # 'from' after 'to' is an empty window: no readings, not an error.
+    m = machine_or_404(machine_id)
+    t0, t1 = time_span(request.args, DEFAULT_TREND_SPAN)
     try:
         n = int(request.args.get("max_points", DEFAULT_TREND_POINTS))
     except ValueError:
@@ -107,7 +97,7 @@ def machine_trends(machine_id: str):
 @bp.get("/machines/<machine_id>/modes")
 @require("viewer")
 def machine_modes(machine_id: str):
-    m = _machine_or_404(machine_id)
+    m = machine_or_404(machine_id)
     s = db_session()
     return jsonify({"items": [reads.mode_json(x) for x in reads.machine_modes(s, m.id)], "next": None,
                     "history": reads.mode_history(s, m.id)})
@@ -142,7 +132,7 @@ def _name_clash(m: Machine, name: str, except_id: int | None) -> None:
 @bp.post("/machines/<machine_id>/modes")
 @require("engineer")
 def create_mode(machine_id: str):
-    m = _machine_or_404(machine_id)
+    m = machine_or_404(machine_id)
     values = _parse_mode_body(m, _body(), None)
     _name_clash(m, values.name, None)
     s = db_session()
@@ -154,7 +144,7 @@ def create_mode(machine_id: str):
 @bp.put("/machines/<machine_id>/modes/<int:mode_id>")
 @require("engineer")
 def update_mode(machine_id: str, mode_id: int):
-    m = _machine_or_404(machine_id)
+    m = machine_or_404(machine_id)
     mode = db_session().get(Mode, mode_id)
     if mode is None or mode.machine_id != m.id:
         raise NotFound(f"Machine {m.id!r} has no mode with id {mode_id}.")
@@ -170,7 +160,7 @@ def update_mode(machine_id: str, mode_id: int):
 @require("engineer")
 def restart_baseline(machine_id: str):
     """Ask the service to learn the baselines of a point (or every point) again."""
-    _machine_or_404(machine_id)
+    machine_or_404(machine_id)
     data = _body()
     extra = sorted(set(data) - {"point", "comment"})
     if extra:
@@ -195,7 +185,7 @@ def restart_baseline(machine_id: str):
 @bp.get("/machines/<machine_id>/passages")
 @require("viewer")
 def machine_passages(machine_id: str):
-    m = _machine_or_404(machine_id)
+    m = machine_or_404(machine_id)
     limit, cursor = parse_page(request.args, DEFAULT_PASSAGE_PAGE)
     rows, nxt = reads.find_passages(db_session(), m.id, before_id=cursor, limit=limit)
     return jsonify({"items": [reads.passage_json(p) for p in rows],

@@ -11,7 +11,10 @@ from flask import Flask, current_app, g, has_request_context, request
 from sqlalchemy import Connection, event
 from sqlalchemy.orm import Session
 
+from dashboard.errors import NotFound
+from monitor.store import reads
 from monitor.store.db import hold_write_lock
+from monitor.store.models import Machine
 
 #: Methods that never change anything (RFC 9110, section 9.2.1, "safe methods").
 READ_METHODS = frozenset({"GET", "HEAD", "OPTIONS"})
@@ -50,3 +53,11 @@ def _hold_write_lock(_session: Session, _transaction: object, connection: Connec
 
 def engine():
     return current_app.extensions["whirlwatch_engine"]
+
+
+def machine_or_404(machine_id: str) -> Machine:
+    """The machine ``machine_id`` from the request's session; NotFound when there is none."""
+    m = reads.get_machine(db_session(), machine_id)
+    if m is None:
+        raise NotFound(f"No machine with id {machine_id!r}.")
+    return m

@@ -15,8 +15,8 @@ from collections.abc import Mapping
 
 from flask import Blueprint, jsonify, request
 
-from dashboard.alarms import MAX_LIMIT, before, parse_time
-from dashboard.db import db_session
+from dashboard.alarms import MAX_LIMIT, time_span
+from dashboard.db import db_session, machine_or_404
 from dashboard.errors import BadRequest, Conflict, NotFound
 from dashboard.security import require
 from monitor.analysis.envelope_view import envelope_view
@@ -38,12 +38,6 @@ MAX_WAVEFORM_LIST = MAX_LIMIT
 DEFAULT_WAVEFORM_LIST = 100
 
 
-def _machine_or_404(machine_id: str) -> Machine:
-    m = reads.get_machine(db_session(), machine_id)
-    if m is None:
-        raise NotFound(f"No machine with id {machine_id!r}.")
-    return m
-
 
 def _point(m: Machine, args: Mapping[str, str], *, required: bool) -> str | None:
     """The ``point`` parameter, one of the machine's points (NotFound otherwise)."""
@@ -64,10 +58,6 @@ def _kind(args: Mapping[str, str]) -> str:
     return kind
 
 
-def _span(args: Mapping[str, str]) -> tuple[dt.datetime, dt.datetime]:
-    t1 = parse_time(args.get("to"), "to") or dt.datetime.now(dt.UTC)
-    return parse_time(args.get("from"), "from") or before(t1, DEFAULT_SPAN), t1
-
 
 def _int(args: Mapping[str, str], name: str, default: int, top: int) -> int:
     raw = args.get(name)
@@ -83,9 +73,9 @@ def _int(args: Mapping[str, str], name: str, default: int, top: int) -> int:
 @bp.get("/machines/<machine_id>/waveforms")
 @require("viewer")
 def machine_waveforms(machine_id: str):
-    m = _machine_or_404(machine_id)
+    m = machine_or_404(machine_id)
     point = _point(m, request.args, required=False)
-    t0, t1 = _span(request.args)
+    t0, t1 = time_span(request.args, DEFAULT_SPAN)
     limit = _int(request.args, "limit", DEFAULT_WAVEFORM_LIST, MAX_WAVEFORM_LIST)
     rows = reads.find_waveforms(db_session(), m.id, point, t0, t1, limit)
     try:
@@ -112,7 +102,7 @@ def waveform(waveform_id: int):
 @require("viewer")
 def waveform_envelope(waveform_id: int):
     w = _waveform_or_404(waveform_id)
-    m = _machine_or_404(w.machine_id)
+    m = machine_or_404(w.machine_id)
     if units.quantity_of(w.unit) != "acceleration":
         raise Conflict(f"Waveform {w.id} is in {w.unit}: the envelope spectrum needs an acceleration waveform.")
     try:
@@ -133,10 +123,10 @@ def waveform_envelope(waveform_id: int):
 @bp.get("/machines/<machine_id>/waterfall")
 @require("viewer")
 def machine_waterfall(machine_id: str):
-    m = _machine_or_404(machine_id)
+    m = machine_or_404(machine_id)
     point = _point(m, request.args, required=True)
     assert point is not None
-    t0, t1 = _span(request.args)
+    t0, t1 = time_span(request.args, DEFAULT_SPAN)
     n = _int(request.args, "max_rows", DEFAULT_WATERFALL_ROWS, MAX_WATERFALL_ROWS)
     bins = _int(request.args, "max_bins", reads.MAX_SPECTRUM_BINS, 65536)
     order = request.args.get("order") or "time"
@@ -151,7 +141,7 @@ def machine_waterfall(machine_id: str):
 def machine_compare(machine_id: str):
     """A point's spectrum (``now``: a stored spectrum id; default its newest) against the
     spectrum its baseline was learned from."""
-    m = _machine_or_404(machine_id)
+    m = machine_or_404(machine_id)
     point = _point(m, request.args, required=True)
     assert point is not None
     kind = _kind(request.args)
@@ -171,7 +161,7 @@ def machine_compare(machine_id: str):
 @bp.get("/machines/<machine_id>/passages/<int:passage_id>/sweep")
 @require("viewer")
 def passage_sweep(machine_id: str, passage_id: int):
-    m = _machine_or_404(machine_id)
+    m = machine_or_404(machine_id)
     p = reads.get_passage(db_session(), m.id, passage_id)
     if p is None:
         raise NotFound(f"Machine {m.id!r} has no passage with id {passage_id}.")

@@ -14,8 +14,8 @@ from collections.abc import Mapping
 
 from flask import Blueprint, Response, request
 
-from dashboard.alarms import before, parse_time
-from dashboard.db import db_session
+from dashboard.alarms import time_span
+from dashboard.db import db_session, machine_or_404
 from dashboard.errors import BadRequest, NotFound
 from dashboard.evidence_api import KINDS
 from dashboard.security import require
@@ -29,12 +29,6 @@ DEFAULT_EXPORT_ROWS = 100_000
 MAX_EXPORT_ROWS = 1_000_000
 DEFAULT_SPAN = dt.timedelta(days=7)
 
-
-def _machine_or_404(machine_id: str) -> Machine:
-    m = reads.get_machine(db_session(), machine_id)
-    if m is None:
-        raise NotFound(f"No machine with id {machine_id!r}.")
-    return m
 
 
 def _format(args: Mapping[str, str]) -> str:
@@ -54,10 +48,6 @@ def _max_rows(args: Mapping[str, str]) -> int:
         raise BadRequest(f"Parameter 'max_rows' must be an integer 1-{MAX_EXPORT_ROWS}, got {n}.")
     return n
 
-
-def _span(args: Mapping[str, str]) -> tuple[dt.datetime, dt.datetime]:
-    t1 = parse_time(args.get("to"), "to") or dt.datetime.now(dt.UTC)
-    return parse_time(args.get("from"), "from") or before(t1, DEFAULT_SPAN), t1
 
 
 def _points(m: Machine) -> list[str]:
@@ -83,9 +73,9 @@ def _answer(columns: dict, fmt: str, name: str) -> Response:
 @require("viewer")
 def export_trends(machine_id: str):
     """Every reading of the points in the range with the features asked for."""
-    m = _machine_or_404(machine_id)
+    m = machine_or_404(machine_id)
     fmt, limit = _format(request.args), _max_rows(request.args)
-    t0, t1 = _span(request.args)
+    t0, t1 = time_span(request.args, DEFAULT_SPAN)
     points = _points(m)
     try:
         features = reads.check_features(list(dict.fromkeys(f for f in request.args.getlist("feature") if f)))
@@ -102,9 +92,9 @@ def export_trends(machine_id: str):
 @require("viewer")
 def export_spectra(machine_id: str):
     """Every bin of the stored spectra of one kind of the points in the range."""
-    m = _machine_or_404(machine_id)
+    m = machine_or_404(machine_id)
     fmt, limit = _format(request.args), _max_rows(request.args)
-    t0, t1 = _span(request.args)
+    t0, t1 = time_span(request.args, DEFAULT_SPAN)
     points = _points(m)
     kind = request.args.get("kind") or "velocity"
     if kind not in KINDS:

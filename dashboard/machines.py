@@ -6,7 +6,7 @@ from __future__ import annotations
 from flask import Blueprint, flash, redirect, render_template, request, url_for
 
 from dashboard.alarms import acting_user, with_words
-from dashboard.db import db_session
+from dashboard.db import db_session, machine_or_404
 from dashboard.errors import BadRequest, Conflict, NotFound
 from dashboard.security import require
 from monitor.model.registry import RegistryError
@@ -31,9 +31,7 @@ PAGE_ALARMS = 50
 @require("viewer")
 def detail(machine_id: str):
     s = db_session()
-    m = reads.get_machine(s, machine_id)
-    if m is None:
-        raise NotFound(f"No machine with id {machine_id!r}.")
+    m = machine_or_404(machine_id)
     passages = [reads.passage_json(p, with_points=False)
                 for p in reads.find_passages(s, m.id, limit=PAGE_PASSAGES)[0]]
     alarms = [with_words(reads.alarm_json(a)) for a in reads.find_alarms(s, machine=m.id, limit=PAGE_ALARMS)[0]]
@@ -45,9 +43,7 @@ def decide_candidate(machine_id: str, passage_id: int, *, accept: bool, name: st
     candidate mode of passage ``passage_id``, for the signed-in engineer, and commit.
     NotFound, Conflict (no open candidate, a mode of that name exists) or BadRequest."""
     s = db_session()
-    m = reads.get_machine(s, machine_id)
-    if m is None:
-        raise NotFound(f"No machine with id {machine_id!r}.")
+    m = machine_or_404(machine_id)
     p = reads.get_passage(s, m.id, passage_id)
     if p is None:
         raise NotFound(f"Machine {m.id!r} has no passage with id {passage_id}.")

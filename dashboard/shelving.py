@@ -18,7 +18,7 @@ from typing import Any
 from flask import Blueprint, current_app, flash, jsonify, redirect, request, url_for
 
 from dashboard.alarms import MAX_COMMENT, parse_time
-from dashboard.db import db_session
+from dashboard.db import db_session, machine_or_404
 from dashboard.errors import BadRequest, Conflict, NotFound
 from dashboard.redirects import same_origin_path
 from dashboard.security import actor, current, require
@@ -122,10 +122,7 @@ def do_unshelve(alarm_id: int) -> Alarm:
 
 
 def _machine(machine_id: str, point: Any) -> tuple[Machine, str | None]:
-    s = db_session()
-    m = reads.get_machine(s, machine_id)
-    if m is None:
-        raise NotFound(f"No machine with id {machine_id!r}.")
+    m = machine_or_404(machine_id)
     if point is None or point == "":
         return m, None
     if not isinstance(point, str):

@@ -11,10 +11,9 @@ import datetime as dt
 from flask import Blueprint, jsonify, request
 
 from dashboard.alarms import acting_user, parse_time
-from dashboard.db import db_session
+from dashboard.db import db_session, machine_or_404
 from dashboard.errors import BadRequest, Conflict, NotFound
 from dashboard.security import require
-from monitor.store import reads
 from monitor.store.machine_stops import (
     StopTimesError,
     announce_stop,
@@ -23,19 +22,13 @@ from monitor.store.machine_stops import (
     machine_stops,
     stop_json,
 )
-from monitor.store.models import Machine, utcnow
+from monitor.store.models import utcnow
 
 bp = Blueprint("stops_api", __name__, url_prefix="/api/v1")
 
 #: Stops listed per machine, newest first.
 STOP_LIST = 50
 
-
-def _machine_or_404(machine_id: str) -> Machine:
-    m = reads.get_machine(db_session(), machine_id)
-    if m is None:
-        raise NotFound(f"No machine with id {machine_id!r}.")
-    return m
 
 
 def _time_field(data: dict, name: str, required: bool) -> dt.datetime | None:
@@ -52,7 +45,7 @@ def _time_field(data: dict, name: str, required: bool) -> dt.datetime | None:
 @require("viewer")
 def list_stops(machine_id: str):
     """The machine's announced stops, newest first (``current=true``: those not over)."""
-    m = _machine_or_404(machine_id)
+    m = machine_or_404(machine_id)
     current = request.args.get("current", "false")
     if current not in ("true", "false"):
         raise BadRequest(f"Parameter 'current' must be true or false, got {current!r}.")
@@ -65,7 +58,7 @@ def list_stops(machine_id: str):
 @require("engineer")
 def announce(machine_id: str):
     """Announce a planned stop: ``{"from"?, "until", "comment"}``."""
-    m = _machine_or_404(machine_id)
+    m = machine_or_404(machine_id)
     data = request.get_json(silent=True)
     if not isinstance(data, dict):
         raise BadRequest("The request body must be a JSON object (Content-Type: application/json).")
@@ -92,7 +85,7 @@ def announce(machine_id: str):
 @require("engineer")
 def end(machine_id: str, stop_id: int):
     """End an announced stop now (a stop over already is returned as it is)."""
-    m = _machine_or_404(machine_id)
+    m = machine_or_404(machine_id)
     s = db_session()
     row = get_stop(s, m.id, stop_id)
     if row is None:
